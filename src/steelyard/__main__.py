@@ -1,0 +1,5 @@
+"""``python -m steelyard``."""
+
+from steelyard.cli import main
+
+main()

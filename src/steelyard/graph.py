@@ -1,0 +1,311 @@
+"""The framework-neutral layer graph every loader produces and every rule reads.
+
+A :class:`Checkpoint` holds lazily readable :class:`Tensor` objects and the :class:`Layer`
+views built over them. A layer's weights are always exposed in one canonical orientation,
+``[out, in/groups, *kernel]``, so rules never need to know where a file came from.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from enum import Enum
+
+import numpy as np
+
+from steelyard.dtypes import to_float32
+
+
+class Format(str, Enum):
+    """Checkpoint container formats steelyard reads."""
+
+    SAFETENSORS = "safetensors"
+    ONNX = "onnx"
+    KERAS_H5 = "keras-h5"
+    KERAS = "keras"
+    NPZ = "npz"
+    PYTORCH = "pytorch"
+
+
+class LayerKind(str, Enum):
+    """Unit-producing operations with stored weights."""
+
+    DENSE = "dense"
+    CONV = "conv"
+    CONV_TRANSPOSE = "conv-transpose"
+    EMBEDDING = "embedding"
+    RECURRENT = "recurrent"
+
+
+class Activation(str, Enum):
+    """The nonlinearity that follows a layer's units."""
+
+    RELU = "relu"
+    LEAKY_RELU = "leaky-relu"
+    GELU = "gelu"
+    SILU = "silu"
+    SIGMOID = "sigmoid"
+    TANH = "tanh"
+    SOFTMAX = "softmax"
+    HARD_SIGMOID = "hard-sigmoid"
+    IDENTITY = "identity"
+    UNKNOWN = "unknown"
+
+    @property
+    def positive_homogeneous(self) -> bool:
+        """f(a·x) = a·f(x) for a > 0: rescaling a unit's row can be undone downstream."""
+        return self in (Activation.RELU, Activation.LEAKY_RELU, Activation.IDENTITY)
+
+    @property
+    def relu_family(self) -> bool:
+        """Zero (or nearly) for every negative pre-activation."""
+        return self in (Activation.RELU, Activation.LEAKY_RELU)
+
+    @property
+    def non_negative_output(self) -> bool:
+        """The output is never negative, so consumers see non-negative inputs."""
+        return self in (
+            Activation.RELU,
+            Activation.SIGMOID,
+            Activation.SOFTMAX,
+            Activation.HARD_SIGMOID,
+        )
+
+
+class Link(str, Enum):
+    """How a layer's ``inputs_from`` was established."""
+
+    GRAPH = "graph"
+    CONFIG = "config"
+    INFERRED = "inferred"
+    NONE = "none"
+
+
+class TensorRole(str, Enum):
+    """What a stored tensor is, which decides whether it counts as a parameter."""
+
+    PARAMETER = "parameter"
+    """A floating-point model tensor (weights, biases, norm parameters, running statistics)."""
+    QUANTIZED = "quantized"
+    """An integer weight tensor of a quantized model; counted as parameters."""
+    BOOKKEEPING = "bookkeeping"
+    """Integer shapes, indices, counters, position ids, scales' zero points: not counted."""
+    OPTIMIZER = "optimizer"
+    """Optimizer state: kept aside as gradient support, never counted."""
+
+
+class NormKind(str, Enum):
+    """Normalisations whose channels are a layer's units."""
+
+    BATCH = "batch"
+    LAYER = "layer"
+    GROUP = "group"
+    INSTANCE = "instance"
+    RMS = "rms"
+
+
+@dataclass(frozen=True, slots=True)
+class Tensor:
+    """One stored tensor, read only when asked."""
+
+    name: str
+    """Stored name (see the JSON contract for what that means per format)."""
+    shape: tuple[int, ...]
+    """Shape as stored."""
+    dtype: str
+    """Short stored dtype name, e.g. ``bf16`` or ``i64``."""
+    role: TensorRole
+    """Whether the tensor counts as a parameter."""
+    reader: Callable[[], np.ndarray] = field(repr=False, compare=False)
+    """Returns the decoded array in stored orientation (dtype as stored, native byte order)."""
+
+    @property
+    def size(self) -> int:
+        """Number of elements."""
+        return math.prod(self.shape)
+
+    def read(self) -> np.ndarray:
+        """The array as stored (decoded, not converted)."""
+        return self.reader()
+
+    def read_float32(self) -> np.ndarray:
+        """The array converted to float32 for analysis."""
+        return to_float32(np.asarray(self.reader()))
+
+
+@dataclass(frozen=True, slots=True)
+class Norm:
+    """A normalisation whose channels are one layer's units."""
+
+    kind: NormKind
+    scale: str | None
+    """Tensor name of γ (None when the norm has no affine scale)."""
+    shift: str | None = None
+    """Tensor name of β."""
+    mean: str | None = None
+    """Running mean (batch normalisation in inference form)."""
+    var: str | None = None
+    """Running variance (batch normalisation in inference form)."""
+    eps: float = 1e-5
+
+
+@dataclass(frozen=True, slots=True)
+class Constraint:
+    """A weight constraint declared in the file (Keras ``kernel_constraint``)."""
+
+    kind: str
+    """``max-norm``, ``unit-norm``, ``non-neg`` or ``min-max-norm``."""
+    max_value: float | None = None
+    min_value: float | None = None
+    rate: float = 1.0
+    """Canonical-view axes the norm is taken over is always 'all but the unit axis'
+    when ``per_unit`` is True; otherwise the declared axes did not map onto units."""
+    per_unit: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class Regularizer:
+    """A weight penalty declared in the file: l1·Σ|w| + l2·Σw² (Keras convention)."""
+
+    l1: float = 0.0
+    l2: float = 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class Layer:
+    """A unit-producing op with stored weights, in canonical orientation."""
+
+    name: str
+    kind: LayerKind
+    weight: str
+    """Stored name of the weight tensor."""
+    bias: str | None
+    units: int
+    """Rows of the canonical view."""
+    in_per_group: int
+    kernel: tuple[int, ...]
+    groups: int
+    activation: Activation
+    weight_view: Callable[[], np.ndarray] = field(repr=False, compare=False)
+    """Returns float32 ``[units, in_per_group, *kernel]``."""
+    bias_view: Callable[[], np.ndarray] | None = field(default=None, repr=False, compare=False)
+    """Returns float32 ``[units]``."""
+    norm: Norm | None = None
+    inputs_from: tuple[str, ...] = ()
+    """Names of the layers whose units are this layer's inputs (in input order)."""
+    linked_by: Link = Link.NONE
+    gate: str | None = None
+    """For recurrent layers split per gate: which gate (e.g. ``i``, ``f``, ``g``, ``o``)."""
+    constraint: Constraint | None = None
+    regularizer: Regularizer | None = None
+    is_output: bool = False
+    """Feeds no other layer while at least one layer feeds it (a model head)."""
+
+    @property
+    def fan_in(self) -> int:
+        """Inputs per unit: (in/groups) × prod(kernel)."""
+        return self.in_per_group * math.prod(self.kernel)
+
+    def matrix(self) -> np.ndarray:
+        """The canonical weights flattened to ``W[units, fan_in]`` float32."""
+        return self.weight_view().reshape(self.units, self.fan_in)
+
+    def bias_vector(self) -> np.ndarray | None:
+        """Bias as float32 ``[units]`` or None."""
+        return None if self.bias_view is None else self.bias_view().reshape(self.units)
+
+
+@dataclass(frozen=True, slots=True)
+class OptimizerSlots:
+    """Optimizer state for one model tensor, in the tensor's stored orientation."""
+
+    first_moment: Tensor | None
+    second_moment: Tensor | None
+
+
+@dataclass(frozen=True, slots=True)
+class OptimizerState:
+    """Optimizer state stored with the model, mapped to model tensor names."""
+
+    kind: str
+    """``adam``, ``adamw``, ``rmsprop``, ``sgd`` or ``unknown``."""
+    slots: Mapping[str, OptimizerSlots]
+    """Model tensor name → its slots."""
+    step: int | None = None
+    beta1: float | None = None
+    beta2: float | None = None
+    eps: float | None = None
+    weight_decay: float | None = None
+    decoupled: bool | None = None
+    """True for AdamW-style decay applied to the weights, False for decay in the gradient."""
+    source: str = ""
+    """Where in the file the state was found (for the report header)."""
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    """Everything steelyard knows about one checkpoint, read lazily."""
+
+    path: str
+    format: Format
+    tensors: Mapping[str, Tensor]
+    """Every stored tensor by name, optimizer state excluded."""
+    layers: tuple[Layer, ...]
+    file_size: int
+    files: tuple[str, ...] = ()
+    """Every file that was read (shards, external data), the main path first."""
+    optimizer: OptimizerState | None = None
+    notes: tuple[str, ...] = ()
+    """What the loader wants the user to know (e.g. which state-dict key was used)."""
+
+    @property
+    def counted(self) -> list[Tensor]:
+        """Tensors that count as parameters (floating and quantized weights)."""
+        return [
+            t
+            for t in self.tensors.values()
+            if t.role in (TensorRole.PARAMETER, TensorRole.QUANTIZED)
+        ]
+
+    @property
+    def parameters(self) -> int:
+        """Total elements of counted tensors."""
+        return sum(t.size for t in self.counted)
+
+    @property
+    def dtypes(self) -> dict[str, int]:
+        """Counted tensors per stored dtype."""
+        return dict(Counter(t.dtype for t in self.counted))
+
+    def layer(self, name: str) -> Layer | None:
+        """The layer with that name, if any."""
+        for layer in self.layers:
+            if layer.name == name:
+                return layer
+        return None
+
+    def consumers(self) -> dict[str, list[Layer]]:
+        """Layer name → layers that take its units as inputs."""
+        out: dict[str, list[Layer]] = {layer.name: [] for layer in self.layers}
+        for layer in self.layers:
+            for source in layer.inputs_from:
+                if source in out:
+                    out[source].append(layer)
+        return out
+
+
+def mark_outputs(layers: tuple[Layer, ...] | list[Layer]) -> tuple[Layer, ...]:
+    """Set ``is_output`` on layers that feed nothing while something feeds them.
+
+    Loaders call this once their links are known; with no links at all nothing is marked,
+    because then "feeds nothing" carries no information.
+    """
+    from dataclasses import replace
+
+    fed = {source for layer in layers for source in layer.inputs_from}
+    return tuple(
+        replace(layer, is_output=bool(layer.inputs_from) and layer.name not in fed)
+        for layer in layers
+    )

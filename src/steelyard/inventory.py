@@ -1,0 +1,47 @@
+"""The ``steelyard.layers/1`` document: what a checkpoint holds, as plain data."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from steelyard.graph import Checkpoint, Layer
+
+LAYERS_SCHEMA = "steelyard.layers/1"
+
+
+def checkpoint_block(checkpoint: Checkpoint) -> dict[str, Any]:
+    """The ``checkpoint`` object shared by every JSON document."""
+    counted = checkpoint.counted
+    return {
+        "path": checkpoint.path,
+        "format": checkpoint.format.value,
+        "tensors": len(counted),
+        "parameters": sum(t.size for t in counted),
+    }
+
+
+def layer_block(layer: Layer) -> dict[str, Any]:
+    """One entry of ``layers``."""
+    return {
+        "name": layer.name,
+        "kind": layer.kind.value,
+        "weight": layer.weight,
+        "bias": layer.bias,
+        "units": layer.units,
+        "fan_in": layer.fan_in,
+        "groups": layer.groups,
+        "kernel": list(layer.kernel),
+        "activation": layer.activation.value,
+        "norm": layer.norm.scale if layer.norm is not None else None,
+        "inputs_from": list(layer.inputs_from),
+        "linked_by": layer.linked_by.value,
+    }
+
+
+def layers_document(checkpoint: Checkpoint) -> dict[str, Any]:
+    """The whole ``steelyard layers --format json`` document."""
+    return {
+        "schema": LAYERS_SCHEMA,
+        "checkpoint": checkpoint_block(checkpoint),
+        "layers": [layer_block(layer) for layer in checkpoint.layers],
+    }

@@ -1,0 +1,93 @@
+"""Loaders: one module per checkpoint format, chosen by content rather than extension.
+
+:func:`load` is the single entry point: it sniffs the file's first bytes, asks each loader in
+turn, and returns the :class:`~steelyard.graph.Checkpoint` of the first that recognises it.
+"""
+
+from __future__ import annotations
+
+import importlib
+from pathlib import Path
+
+from steelyard.errors import LoadError
+from steelyard.graph import Checkpoint
+from steelyard.loaders.base import Loader
+
+#: (module, class) of each loader, in sniffing order. Imported on first use so that a
+#: broken optional reader never stops the others.
+_REGISTRY: tuple[tuple[str, str], ...] = (
+    ("steelyard.loaders.safetensors", "SafetensorsLoader"),
+    ("steelyard.loaders.npz", "NpzLoader"),
+    ("steelyard.loaders.keras_archive", "KerasArchiveLoader"),
+    ("steelyard.loaders.pytorch", "PytorchLoader"),
+    ("steelyard.loaders.keras_h5", "KerasH5Loader"),
+    ("steelyard.loaders.onnx", "OnnxLoader"),
+)
+
+SUPPORTED = (
+    "safetensors (single or sharded), ONNX, Keras (.keras, legacy .h5, .weights.h5), "
+    "NumPy .npz, PyTorch zip checkpoints"
+)
+
+_HEAD_BYTES = 4096
+
+
+def loaders() -> list[Loader]:
+    """Every available loader, in sniffing order."""
+    found: list[Loader] = []
+    for module_name, class_name in _REGISTRY:
+        try:
+            module = importlib.import_module(module_name)
+        except ModuleNotFoundError as exc:
+            if exc.name == module_name:
+                continue
+            raise
+        found.append(getattr(module, class_name)())
+    return found
+
+
+def resolve(path: Path) -> Path:
+    """The file to read for ``path``: a folder means the one checkpoint it holds."""
+    if not path.exists():
+        raise LoadError(path, "does not exist")
+    if path.is_dir():
+        indexes = sorted(path.glob("*.safetensors.index.json"))
+        if len(indexes) == 1:
+            return indexes[0]
+        singles = sorted(p for p in path.glob("*.safetensors") if p.is_file())
+        if len(singles) == 1 and not indexes:
+            return singles[0]
+        raise LoadError(
+            path, "is a folder; name the checkpoint file (or its *.safetensors.index.json)"
+        )
+    if not path.is_file():
+        raise LoadError(path, "is not a regular file")
+    return path
+
+
+def load(path: str | Path) -> Checkpoint:
+    """Read a checkpoint's structure; tensors stay on disk until a rule asks for them."""
+    target = resolve(Path(path))
+    try:
+        with open(target, "rb") as handle:
+            head = handle.read(_HEAD_BYTES)
+    except OSError as exc:
+        raise LoadError(target, f"cannot be opened ({exc.strerror})") from None
+    if not head:
+        raise LoadError(target, "is empty")
+    for loader in loaders():
+        if loader.sniff(target, head):
+            try:
+                return loader.load(target)
+            except LoadError:
+                raise
+            except (RecursionError, MemoryError) as exc:
+                raise LoadError(target, f"is too deeply nested or too large to read ({exc})") from exc
+            except Exception as exc:
+                # Loaders validate what they read; this net only keeps the one-line contract
+                # for a malformation nobody foresaw. The cause stays chained for --debug.
+                raise LoadError(target, f"is malformed ({type(exc).__name__}: {exc})") from exc
+    raise LoadError(target, f"is not a checkpoint steelyard can read; supported: {SUPPORTED}")
+
+
+__all__ = ["SUPPORTED", "Loader", "load", "loaders", "resolve"]

@@ -1,0 +1,104 @@
+"""What every loader is, and the safety helpers they share.
+
+A loader recognises its format from the file's content and turns the file into a
+:class:`~steelyard.graph.Checkpoint`. It reads tensors lazily and knows nothing of rules.
+Every failure is a :class:`~steelyard.errors.LoadError` naming the file.
+"""
+
+from __future__ import annotations
+
+import os
+import zipfile
+from pathlib import Path
+from typing import Protocol
+
+from steelyard.errors import LoadError
+from steelyard.graph import Checkpoint, Format
+
+#: Largest JSON/pickle/config blob any loader will parse (bounded memory on hostile input).
+MAX_METADATA_BYTES = 100_000_000
+
+
+class Loader(Protocol):
+    """One checkpoint format."""
+
+    format: Format
+
+    def sniff(self, path: Path, head: bytes) -> bool:
+        """True when the file at ``path`` (whose first bytes are ``head``) is this format."""
+        ...
+
+    def load(self, path: Path) -> Checkpoint:
+        """Read the file's structure (not its tensors) into a checkpoint."""
+        ...
+
+
+def inside(folder: Path, relative: str, source: Path) -> Path:
+    """Resolve ``relative`` strictly inside ``folder``, or refuse.
+
+    Absolute paths, ``..`` components and links that escape are all refused, because a
+    checkpoint must never make steelyard read a file outside the model's folder.
+    """
+    if not relative or "\x00" in relative:
+        raise LoadError(source, f"refers to an invalid file name {relative!r}")
+    candidate = Path(relative)
+    if candidate.is_absolute() or relative.startswith(("/", "\\")) or ":" in candidate.parts[0]:
+        raise LoadError(source, f"refers to an absolute path {relative!r}, which is refused")
+    if any(part == ".." for part in Path(relative.replace("\\", "/")).parts):
+        raise LoadError(source, f"refers to {relative!r}, which leaves the model's folder")
+    base = folder.resolve()
+    target = base / candidate
+    if target.is_symlink():
+        raise LoadError(source, f"refers to {relative!r}, which is a symbolic link (refused)")
+    resolved = target.resolve()
+    if resolved != base and base not in resolved.parents:
+        raise LoadError(source, f"refers to {relative!r}, which resolves outside the model's folder")
+    if not resolved.is_file():
+        raise LoadError(source, f"refers to {relative!r}, which does not exist")
+    return resolved
+
+
+def safe_zip_names(archive: zipfile.ZipFile, path: Path) -> dict[str, zipfile.ZipInfo]:
+    """Member names of a zip, refusing traversal names and duplicate members."""
+    members: dict[str, zipfile.ZipInfo] = {}
+    for info in archive.infolist():
+        name = info.filename
+        parts = name.replace("\\", "/").split("/")
+        if name.startswith(("/", "\\")) or ".." in parts or (parts and ":" in parts[0]):
+            raise LoadError(path, f"archive member {name!r} has a path-traversal name")
+        if name in members:
+            raise LoadError(path, f"archive member {name!r} appears twice")
+        if info.compress_type != zipfile.ZIP_STORED and info.file_size > 1100 * info.compress_size + 4096:
+            # Deflate cannot expand more than ~1032:1; a larger claim is a zip bomb or a lie.
+            raise LoadError(path, f"archive member {name!r} claims an impossible compression ratio")
+        members[name] = info
+    return members
+
+
+def read_zip_member(
+    archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, limit: int = MAX_METADATA_BYTES
+) -> bytes:
+    """Read one (small) zip member, refusing members larger than ``limit``."""
+    if info.file_size > limit:
+        raise LoadError(path, f"archive member {info.filename!r} claims {info.file_size} bytes")
+    try:
+        with archive.open(info) as stream:
+            data = stream.read(limit + 1)
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError) as exc:
+        raise LoadError(path, f"archive member {info.filename!r} is unreadable ({exc})") from None
+    if len(data) > limit:
+        raise LoadError(path, f"archive member {info.filename!r} is larger than it claims")
+    return data
+
+
+def open_zip(path: Path) -> zipfile.ZipFile:
+    """Open a zip archive or raise a clean error."""
+    try:
+        return zipfile.ZipFile(path)
+    except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
+        raise LoadError(path, f"is not a readable zip archive ({exc})") from None
+
+
+def file_size(path: Path) -> int:
+    """Size in bytes of a regular file."""
+    return os.stat(path).st_size

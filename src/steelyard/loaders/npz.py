@@ -1,0 +1,159 @@
+"""NumPy ``.npz`` archives: a zip of ``.npy`` members, parsed without ``allow_pickle``.
+
+We parse each member's ``.npy`` header ourselves (it is a literal dict) so that an object
+array is refused at open time, a stored member is memory-mapped, and nothing is unpickled.
+"""
+
+from __future__ import annotations
+
+import ast
+import math
+import mmap
+import struct
+import zipfile
+from collections.abc import Callable
+from pathlib import Path
+
+import ml_dtypes
+import numpy as np
+
+from steelyard.dtypes import FLOAT_DTYPES, name_of
+from steelyard.errors import LoadError
+from steelyard.graph import Checkpoint, Format, Tensor
+from steelyard.loaders.base import file_size, open_zip, read_zip_member, safe_zip_names
+from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
+
+_MAGIC = b"\x93NUMPY"
+_MAX_HEADER = 65_536
+_LOCAL_HEADER = struct.Struct("<4sHHHHHIIIHH")
+
+
+def _parse_header(raw: bytes, path: Path, member: str) -> tuple[np.dtype[np.generic], tuple[int, ...], bool, int]:
+    """dtype, shape, fortran_order and header length of one ``.npy`` member."""
+    if raw[:6] != _MAGIC or len(raw) < 10:
+        raise LoadError(path, f"member {member!r} is not a .npy array")
+    major = raw[6]
+    if major == 1:
+        (length,) = struct.unpack("<H", raw[8:10])
+        start = 10
+    elif major in (2, 3):
+        (length,) = struct.unpack("<I", raw[8:12])
+        start = 12
+    else:
+        raise LoadError(path, f"member {member!r} has unknown .npy version {major}")
+    if length > _MAX_HEADER or start + length > len(raw):
+        raise LoadError(path, f"member {member!r} has a truncated or oversized .npy header")
+    text = raw[start : start + length].decode("latin1")
+    try:
+        header = ast.literal_eval(text)
+    except (ValueError, SyntaxError, MemoryError, RecursionError):
+        raise LoadError(path, f"member {member!r} has a malformed .npy header") from None
+    if not isinstance(header, dict) or set(header) != {"descr", "fortran_order", "shape"}:
+        raise LoadError(path, f"member {member!r} has a malformed .npy header")
+    descr, fortran, shape = header["descr"], header["fortran_order"], header["shape"]
+    if not isinstance(descr, str):
+        raise LoadError(path, f"member {member!r} holds a structured array, which is not a tensor")
+    if not isinstance(shape, tuple) or not all(isinstance(d, int) and d >= 0 for d in shape):
+        raise LoadError(path, f"member {member!r} has an invalid shape {shape!r}")
+    try:
+        dtype = np.dtype(descr)
+    except TypeError:
+        raise LoadError(path, f"member {member!r} has an unknown dtype {descr!r}") from None
+    if dtype.hasobject:
+        raise LoadError(path, f"member {member!r} holds Python objects, which would need pickle (refused)")
+    if dtype.kind == "V" and dtype.itemsize == 2:
+        # ml_dtypes bfloat16 arrays are saved as anonymous 2-byte voids.
+        dtype = np.dtype(ml_dtypes.bfloat16)
+    elif dtype.kind not in "biuf":
+        raise LoadError(path, f"member {member!r} has dtype {descr!r}, which is not numeric")
+    return dtype, tuple(shape), bool(fortran), start + length
+
+
+class NpzLoader:
+    """``numpy.savez`` / ``savez_compressed`` archives, never with pickle."""
+
+    format = Format.NPZ
+
+    def sniff(self, path: Path, head: bytes) -> bool:
+        if head[:4] != b"PK\x03\x04":
+            return False
+        try:
+            with zipfile.ZipFile(path) as archive:
+                names = archive.namelist()
+        except (zipfile.BadZipFile, OSError, ValueError, EOFError):
+            return path.suffix == ".npz"
+        return bool(names) and all(n.endswith(".npy") for n in names)
+
+    def load(self, path: Path) -> Checkpoint:
+        size = file_size(path)
+        tensors: dict[str, Tensor] = {}
+        with open_zip(path) as archive:
+            members = safe_zip_names(archive, path)
+            for member, info in members.items():
+                if not member.endswith(".npy"):
+                    raise LoadError(path, f"member {member!r} is not a .npy array")
+                name = member[: -len(".npy")]
+                with archive.open(info) as stream:
+                    head = stream.read(_MAX_HEADER + 12)
+                dtype, shape, fortran, header_len = _parse_header(head, path, member)
+                expected = math.prod(shape) * dtype.itemsize
+                if info.file_size != header_len + expected:
+                    raise LoadError(
+                        path,
+                        f"member {member!r}: {dtype} {list(shape)} needs {expected} bytes but "
+                        f"the member holds {info.file_size - header_len}",
+                    )
+                short = name_of(dtype)
+                tensors[name] = Tensor(
+                    name=name,
+                    shape=shape,
+                    dtype=short,
+                    role=role_for(name, short in FLOAT_DTYPES),
+                    reader=self._reader(path, size, info, dtype, shape, fortran, header_len),
+                )
+        layers, notes = build_layers(tensors, read_hf_config(path.parent), source=path)
+        return Checkpoint(
+            path=str(path),
+            format=self.format,
+            tensors=tensors,
+            layers=layers,
+            file_size=size,
+            files=(str(path),),
+            notes=tuple(notes),
+        )
+
+    @staticmethod
+    def _reader(
+        path: Path,
+        size: int,
+        info: zipfile.ZipInfo,
+        dtype: np.dtype[np.generic],
+        shape: tuple[int, ...],
+        fortran: bool,
+        header_len: int,
+    ) -> Callable[[], np.ndarray]:
+        count = math.prod(shape)
+        order = "F" if fortran else "C"
+
+        def read() -> np.ndarray:
+            if info.compress_type == zipfile.ZIP_STORED:
+                with open(path, "rb") as handle:
+                    handle.seek(info.header_offset)
+                    local = _LOCAL_HEADER.unpack(handle.read(_LOCAL_HEADER.size))
+                    start = info.header_offset + _LOCAL_HEADER.size + local[9] + local[10]
+                    if start + info.file_size > size:
+                        raise LoadError(path, f"member {info.filename!r} runs past the file end")
+                    if count == 0:
+                        return np.zeros(shape, dtype=dtype, order=order)
+                    mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+                flat = np.frombuffer(mapped, dtype=dtype, count=count, offset=start + header_len)
+            else:
+                with zipfile.ZipFile(path) as archive:
+                    data = read_zip_member(archive, info, path, limit=info.file_size)
+                flat = np.frombuffer(data, dtype=dtype, count=count, offset=header_len)
+            array = flat.reshape(shape, order=order)
+            if array.dtype.byteorder == ">":
+                array = array.astype(array.dtype.newbyteorder("="))
+            return array
+
+        return read

@@ -1,0 +1,1 @@
+"""Renderers: each turns a document or report into a ``str``; none does I/O or reads a clock."""

@@ -1,0 +1,52 @@
+"""The terminal view of ``steelyard layers``: a header and one row per layer."""
+
+from __future__ import annotations
+
+from rich.table import Table
+from rich.text import Text
+
+from steelyard.graph import Checkpoint, Layer
+from steelyard.render.text import human_bytes, human_count, to_text
+
+
+def _shape(layer: Layer) -> str:
+    kernel = "×".join(str(k) for k in layer.kernel)
+    base = f"{layer.units} × {layer.in_per_group}"
+    if layer.groups > 1:
+        base += f" (g={layer.groups})"
+    return f"{base} × {kernel}" if kernel else base
+
+
+def _parameters(layer: Layer) -> int:
+    return layer.units * layer.fan_in + (layer.units if layer.bias else 0)
+
+
+def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 120) -> str:
+    """The header and layer table as text."""
+    dtypes = ", ".join(f"{k} ×{v}" for k, v in sorted(checkpoint.dtypes.items()))
+    header = Text.assemble(
+        ("checkpoint ", "bold"), checkpoint.path, "\n",
+        ("format ", "bold"), checkpoint.format.value,
+        ("   tensors ", "bold"), str(len(checkpoint.counted)),
+        ("   parameters ", "bold"), f"{checkpoint.parameters:,}",
+        ("   dtypes ", "bold"), dtypes or "none",
+        ("   size ", "bold"), human_bytes(checkpoint.file_size),
+    )
+    table = Table(show_edge=False, header_style="bold", pad_edge=False)
+    for column in ("layer", "kind", "out × in × kernel", "activation", "fed by", "parameters"):
+        table.add_column(column, justify="right" if column == "parameters" else "left")
+    for layer in checkpoint.layers:
+        fed = ", ".join(layer.inputs_from) if layer.inputs_from else "—"
+        table.add_row(
+            layer.name,
+            layer.kind.value,
+            _shape(layer),
+            layer.activation.value,
+            f"{fed} ({layer.linked_by.value})" if layer.inputs_from else fed,
+            human_count(_parameters(layer)),
+        )
+    parts: list[object] = [header, table]
+    if not checkpoint.layers:
+        parts = [header, Text("no layers with stored weights were recognised")]
+    parts += [Text(f"note: {note}", style="dim") for note in checkpoint.notes]
+    return to_text(parts, color=color, width=width)  # type: ignore[arg-type]

@@ -1,0 +1,46 @@
+"""Rendering rich renderables to a string, so renderers stay free of I/O."""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Iterable
+
+from rich.console import Console, RenderableType
+
+
+def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width: int = 120) -> str:
+    """Render to text; with ``color`` the string carries ANSI styles for a terminal."""
+    buffer = io.StringIO()
+    console = Console(
+        file=buffer,
+        width=width,
+        color_system="truecolor" if color else None,
+        force_terminal=color,
+        no_color=not color,
+        highlight=False,
+        emoji=False,
+        soft_wrap=False,
+    )
+    for renderable in renderables:
+        console.print(renderable)
+    return buffer.getvalue()
+
+
+def human_count(value: int) -> str:
+    """1234567 → '1.23M' (exact below ten thousand)."""
+    if value < 10_000:
+        return str(value)
+    for unit, size in (("G", 1e9), ("M", 1e6), ("k", 1e3)):
+        if value >= size:
+            return f"{value / size:.3g}{unit}"
+    return str(value)
+
+
+def human_bytes(value: int) -> str:
+    """File sizes in binary units."""
+    size = float(value)
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
+        if size < 1024 or unit == "TiB":
+            return f"{size:.0f} {unit}" if unit == "B" else f"{size:.1f} {unit}"
+        size /= 1024
+    return f"{value} B"

@@ -192,6 +192,9 @@ class Layer:
     """Returns float32 ``[units, in_per_group, *kernel]``."""
     bias_view: Callable[[], np.ndarray] | None = field(default=None, repr=False, compare=False)
     """Returns float32 ``[units]``."""
+    orient: Callable[[np.ndarray], np.ndarray] | None = field(default=None, repr=False, compare=False)
+    """Maps an array shaped like the stored weight tensor to the canonical view; used to
+    put optimizer moments and gradient sidecars in the layer's orientation."""
     norm: Norm | None = None
     inputs_from: tuple[str, ...] = ()
     """Names of the layers whose units are this layer's inputs (in input order)."""
@@ -200,6 +203,9 @@ class Layer:
     """For recurrent layers split per gate: which gate (e.g. ``i``, ``f``, ``g``, ``o``)."""
     constraint: Constraint | None = None
     regularizer: Regularizer | None = None
+    channels_last_inputs: bool = False
+    """A flattening between producer convolutions and this dense layer ran channels-last
+    (Keras): input j·spatial… belongs to channel j otherwise, to channel j mod C here."""
     is_output: bool = False
     """Feeds no other layer while at least one layer feeds it (a model head)."""
 

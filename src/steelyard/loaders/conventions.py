@@ -135,13 +135,18 @@ def _split(name: str) -> tuple[str, str]:
     return "", name
 
 
-def _float_reader(tensor: Tensor, transform: Callable[[np.ndarray], np.ndarray] | None = None
-                  ) -> Callable[[], np.ndarray]:
+def _float_reader(
+    tensor: Tensor, transform: Callable[[np.ndarray], np.ndarray] | None = None
+) -> Callable[[], np.ndarray]:
     def read() -> np.ndarray:
         array = tensor.read_float32()
         return np.ascontiguousarray(transform(array)) if transform else array
 
     return read
+
+
+def _identity(array: np.ndarray) -> np.ndarray:
+    return array
 
 
 def _norm_of(module: _Module) -> Norm | None:
@@ -263,6 +268,7 @@ def _weight_layer(module: _Module, model_type: str) -> Layer | None:
         activation=Activation.UNKNOWN,
         weight_view=_float_reader(weight, transform),
         bias_view=_float_reader(bias) if bias is not None else None,
+        orient=transform or _identity,
     )
 
 
@@ -296,6 +302,7 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
                     groups=1,
                     activation=_GATE_ACT[gate],
                     weight_view=_float_reader(weight, lambda a, s=sl: a[s]),
+                    orient=lambda a, s=sl: a[s],
                     bias_view=_float_reader(bias, lambda a, s=sl: a[s]) if bias is not None else None,
                     gate=gate,
                 )

@@ -1,0 +1,83 @@
+"""Findings: what a rule reports, with a fingerprint that survives value changes."""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from enum import Enum
+from typing import Any
+
+
+class Severity(str, Enum):
+    """How bad a finding is; ``rank`` orders them, worst first."""
+
+    ERROR = "error"
+    WARNING = "warning"
+    INFO = "info"
+
+    @property
+    def rank(self) -> int:
+        """0 for error, 1 for warning, 2 for info."""
+        return _RANK[self]
+
+    def at_least(self, other: Severity) -> bool:
+        """True when this severity is as bad as ``other`` or worse."""
+        return self.rank <= other.rank
+
+
+_RANK = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFO: 2}
+
+
+@dataclass(frozen=True, slots=True)
+class Finding:
+    """One problem a rule saw in one place."""
+
+    rule: str
+    """The rule's name, which is its ID in reports and policies."""
+    severity: Severity
+    layer: str | None
+    """The layer's name, or None for findings about a bare tensor or the whole file."""
+    tensor: str | None
+    """Stored name of the tensor concerned (a layer's weight for layer findings)."""
+    units: tuple[int, ...]
+    """Rows of the canonical view concerned (sorted); empty when the whole tensor is."""
+    score: float
+    """Rule-specific badness used for ranking (documented per rule in docs/rules.md)."""
+    message: str
+    """What was measured against which limit."""
+    hint: str
+    """What to do about it."""
+    evidence: Mapping[str, Any] = field(default_factory=dict)
+    """Small JSON-ready mapping of the numbers behind the finding."""
+    part: str = ""
+    """Which part of the tensor ``units`` index (a recurrent gate), else empty."""
+    checkpoint: str = ""
+    """Path of the checkpoint the finding is about (set by the audit); not fingerprinted."""
+
+    @property
+    def id(self) -> str:
+        """Stable fingerprint of (rule, tensor or layer, units), free of measured values."""
+        where = self.tensor if self.tensor is not None else (self.layer or "")
+        units = ",".join(str(u) for u in self.units)
+        text = "\x1f".join((self.rule, where, self.part, units))
+        return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+def compact_units(units: tuple[int, ...] | list[int], limit: int = 12) -> str:
+    """``0-3,7,9-12`` with a count when long, for terminal reports."""
+    if not units:
+        return "—"
+    ranges: list[str] = []
+    start = prev = units[0]
+    for unit in list(units[1:]) + [None]:  # type: ignore[list-item]
+        if unit is not None and unit == prev + 1:
+            prev = unit
+            continue
+        ranges.append(str(start) if start == prev else f"{start}-{prev}")
+        if unit is not None:
+            start = prev = unit
+    text = ",".join(ranges[:limit])
+    if len(ranges) > limit:
+        text += f",… ({len(units)} units)"
+    return text

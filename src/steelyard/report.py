@@ -1,0 +1,99 @@
+"""The audit report: frozen results that every renderer reads and nothing mutates."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+from steelyard.findings import Finding, Severity
+
+AUDIT_SCHEMA = "steelyard.audit/1"
+
+CAUTION = (
+    "This audit checks weight health only. Passing it does not show that a model is accurate, "
+    "fair or safe: validate on held-out data and follow your organisation's model-risk "
+    "process and applicable rules before deployment."
+)
+
+
+@dataclass(frozen=True, slots=True)
+class LayerHealth:
+    """One row of the per-layer health table."""
+
+    layer: Mapping[str, Any]
+    """The layer as in ``steelyard.layers/1``."""
+    fan_in_norm: tuple[float, float, float]
+    """Min, median and max of the units' incoming-weight L2 norms."""
+    norm_histogram: tuple[int, ...]
+    """Counts of units per log-spaced bin between min and max (for the small bar)."""
+    dead: int
+    twins: int
+    unsupported_share: float | None
+    """Share of the layer's weights flagged unsupported; None when no gradient support."""
+
+
+@dataclass(frozen=True)
+class CheckpointAudit:
+    """The audit of one checkpoint."""
+
+    checkpoint: Mapping[str, Any]
+    """As in ``steelyard.layers/1`` plus ``sha256``."""
+    layers: tuple[LayerHealth, ...]
+    findings: tuple[Finding, ...]
+    """Ranked, ignored ones removed."""
+    gradient_source: str | None
+    notes: tuple[str, ...] = ()
+    ignored: int = 0
+    """Findings silenced by the policy's ``ignore`` entries."""
+    baselined: tuple[Finding, ...] = ()
+    """Findings matched by a baseline (not gated on)."""
+
+    def counts(self) -> dict[str, int]:
+        """Findings per severity (baselined ones excluded)."""
+        out = {s.value: 0 for s in Severity}
+        for finding in self.findings:
+            out[finding.severity.value] += 1
+        return out
+
+    def failing(self, fail_on: Severity | None) -> list[Finding]:
+        """Findings at or above the gate."""
+        if fail_on is None:
+            return []
+        return [f for f in self.findings if f.severity.at_least(fail_on)]
+
+
+@dataclass(frozen=True)
+class Report:
+    """Everything one run produced, with the tool version and time supplied by the caller."""
+
+    tool_version: str
+    created: str
+    """ISO-8601 time of the run (renderers never read a clock)."""
+    fail_on: str
+    policy_source: str
+    audits: tuple[CheckpointAudit, ...]
+    baseline: Mapping[str, Any] | None = None
+    """``{"path", "matched", "fixed": [ids]}`` when a baseline was used."""
+    policy: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def gate(self) -> Severity | None:
+        """Lowest failing severity, None for ``never``."""
+        return None if self.fail_on == "never" else Severity(self.fail_on)
+
+    @property
+    def passed(self) -> bool:
+        """True when no finding (outside the baseline) reaches the gate."""
+        return not any(audit.failing(self.gate) for audit in self.audits)
+
+    def to_json(self) -> str:
+        """The ``steelyard.audit/1`` document."""
+        from steelyard.render.json_report import render_json
+
+        return render_json(self)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The document as plain data."""
+        return json.loads(self.to_json())  # type: ignore[no-any-return]

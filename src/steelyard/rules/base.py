@@ -1,0 +1,77 @@
+"""What a rule is, and the context it runs in.
+
+A rule is one module holding a :data:`RULE` (:class:`RuleSpec`): its name (its ID in reports
+and policies), default severity and thresholds, a one-line why, and ``check(ctx)`` which
+yields findings. The module docstring is the rule's documentation page.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+from steelyard.findings import Finding, Severity
+from steelyard.gradients import GradientSource
+from steelyard.graph import Checkpoint, Layer
+from steelyard.policy import Policy
+from steelyard.stats import LayerStats
+
+DOCS_URL = "https://steelyard.readthedocs.io/en/latest/rules/"
+
+
+@dataclass(frozen=True)
+class AuditContext:
+    """Everything a rule may read: the graph, shared statistics, policy, gradient support."""
+
+    checkpoint: Checkpoint
+    stats: LayerStats
+    policy: Policy
+    gradients: GradientSource | None
+
+
+@dataclass(frozen=True)
+class RuleSpec:
+    """A rule's metadata and its check."""
+
+    name: str
+    severity: Severity
+    """Default severity (a rule may raise or lower it per finding, as documented)."""
+    thresholds: Mapping[str, Any]
+    """Default thresholds; each can be set by a policy (key names are the policy keys)."""
+    summary: str
+    """One line: why this matters."""
+    check: Callable[[AuditContext, RuleSettings], Iterator[Finding]]
+    doc: str
+    """The rule's documentation page (its module docstring)."""
+
+    @property
+    def help_uri(self) -> str:
+        """Where the rule's page is published."""
+        return f"{DOCS_URL}#{self.name}"
+
+
+class RuleSettings:
+    """Effective settings of one rule, resolved per layer from defaults, policy, overrides."""
+
+    def __init__(self, spec_name: str, thresholds: Mapping[str, Any], policy: Policy) -> None:
+        self._rule = spec_name
+        self._defaults = {"enabled": True, **thresholds}
+        self._policy = policy
+
+    def for_layer(self, layer: Layer | None) -> dict[str, Any]:
+        """Settings in force on ``layer`` (None: the rule-wide settings)."""
+        return self._policy.settings(self._rule, self._defaults, layer.name if layer else None)
+
+    def enabled(self, layer: Layer | None) -> bool:
+        """Whether the rule runs on ``layer``."""
+        return bool(self.for_layer(layer)["enabled"])
+
+    def get(self, layer: Layer | None, key: str) -> Any:
+        """One setting on ``layer``."""
+        return self.for_layer(layer)[key]
+
+    def severity(self, layer: Layer | None, default: Severity) -> Severity:
+        """The policy's severity for this rule on ``layer``, else ``default``."""
+        chosen = self.for_layer(layer).get("severity")
+        return Severity(chosen) if chosen else default

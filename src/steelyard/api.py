@@ -1,11 +1,25 @@
-"""The library API: what the CLI calls, and what notebooks and tests call directly."""
+"""The library API: what the CLI calls, and what notebooks and tests call directly.
+
+>>> import steelyard
+>>> report = steelyard.audit("model.safetensors")      # doctest: +SKIP
+>>> report.passed, report.to_json()                     # doctest: +SKIP
+"""
 
 from __future__ import annotations
 
+import datetime as _dt
+import os
+from collections.abc import Sequence
 from pathlib import Path
 
+from steelyard import __version__
+from steelyard.audit import audit_checkpoint
+from steelyard.errors import SteelyardError
+from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import load as _load
+from steelyard.policy import Policy
+from steelyard.report import CheckpointAudit, Report
 
 
 def load(path: str | Path) -> Checkpoint:
@@ -13,6 +27,63 @@ def load(path: str | Path) -> Checkpoint:
     return _load(path)
 
 
-def audit(path: str | Path, grads: str | Path | None = None, policy: object | None = None) -> object:
-    """Audit one checkpoint (implemented with the rules)."""
-    raise NotImplementedError
+def now() -> str:
+    """The run's timestamp: ``SOURCE_DATE_EPOCH`` when set (reproducible builds), else now."""
+    epoch = os.environ.get("SOURCE_DATE_EPOCH")
+    if epoch is not None:
+        try:
+            moment = _dt.datetime.fromtimestamp(int(epoch), tz=_dt.timezone.utc)
+        except (ValueError, OverflowError, OSError):
+            raise SteelyardError(f"SOURCE_DATE_EPOCH={epoch!r} is not a Unix time") from None
+    else:
+        moment = _dt.datetime.now(tz=_dt.timezone.utc)
+    return moment.replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+def gradient_source(
+    checkpoint: Checkpoint, grads: str | Path | None, grads_kind: GradsKind = GradsKind.RMS
+) -> GradientSource | None:
+    """The gradient support to use: the sidecar when given, else the checkpoint's optimizer."""
+    if grads is not None:
+        return sidecar_source(str(grads), grads_kind, _load(grads))
+    return optimizer_source(checkpoint)
+
+
+def audit_one(
+    path: str | Path,
+    policy: Policy,
+    grads: str | Path | None = None,
+    grads_kind: GradsKind = GradsKind.RMS,
+) -> CheckpointAudit:
+    """Load and audit one checkpoint."""
+    checkpoint = _load(path)
+    return audit_checkpoint(checkpoint, policy, gradient_source(checkpoint, grads, grads_kind))
+
+
+def audit_many(
+    paths: Sequence[str | Path],
+    policy: Policy | None = None,
+    grads: str | Path | None = None,
+    grads_kind: GradsKind = GradsKind.RMS,
+    created: str | None = None,
+) -> Report:
+    """Audit several checkpoints under one gate."""
+    chosen = policy or Policy()
+    audits = tuple(audit_one(p, chosen, grads, grads_kind) for p in paths)
+    return Report(
+        tool_version=__version__,
+        created=created or now(),
+        fail_on=chosen.fail_on,
+        policy_source=chosen.source,
+        audits=audits,
+    )
+
+
+def audit(
+    path: str | Path,
+    grads: str | Path | None = None,
+    policy: Policy | None = None,
+    grads_kind: GradsKind = GradsKind.RMS,
+) -> Report:
+    """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document."""
+    return audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind)

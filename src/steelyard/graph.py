@@ -203,6 +203,9 @@ class Layer:
     """For recurrent layers split per gate: which gate (e.g. ``i``, ``f``, ``g``, ``o``)."""
     constraint: Constraint | None = None
     regularizer: Regularizer | None = None
+    from_input: bool = False
+    """The layer reads the model's own inputs (graph inputs), which is where interval bound
+    propagation from a declared input range starts."""
     channels_last_inputs: bool = False
     """A flattening between producer convolutions and this dense layer ran channels-last
     (Keras): input j·spatial… belongs to channel j otherwise, to channel j mod C here."""

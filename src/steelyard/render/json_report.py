@@ -1,0 +1,87 @@
+"""The ``steelyard.audit/1`` JSON document (and ``steelyard.audit-set/1`` for several files)."""
+
+from __future__ import annotations
+
+import json
+import math
+from typing import Any
+
+from steelyard.findings import Finding
+from steelyard.report import AUDIT_SCHEMA, CheckpointAudit, Report
+
+SET_SCHEMA = "steelyard.audit-set/1"
+
+
+def _clean(value: Any) -> Any:
+    """JSON has no NaN or Infinity: write them as null (strings where they are the point)."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {str(k): _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    return value
+
+
+def finding_block(finding: Finding) -> dict[str, Any]:
+    """One entry of ``findings``."""
+    return {
+        "id": finding.id,
+        "rule": finding.rule,
+        "severity": finding.severity.value,
+        "layer": finding.layer,
+        "tensor": finding.tensor,
+        "units": list(finding.units),
+        "score": finding.score,
+        "message": finding.message,
+        "hint": finding.hint,
+        "evidence": dict(finding.evidence),
+    }
+
+
+def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
+    """The document of one checkpoint."""
+    layers = []
+    for health in audit.layers:
+        low, mid, high = health.fan_in_norm
+        layers.append({**health.layer, "fan_in_norm": {"min": low, "median": mid, "max": high}})
+    document: dict[str, Any] = {
+        "schema": AUDIT_SCHEMA,
+        "tool": {"name": "steelyard", "version": report.tool_version},
+        "checkpoint": dict(audit.checkpoint),
+        "layers": layers,
+        "findings": [finding_block(f) for f in audit.findings],
+        "summary": audit.counts(),
+        "gate": {"fail_on": report.fail_on, "passed": not audit.failing(report.gate)},
+        "gradient_source": audit.gradient_source,
+        "notes": list(audit.notes),
+        "created": report.created,
+        "policy": {"source": report.policy_source, **dict(report.policy)},
+    }
+    if report.baseline is not None:
+        document["baseline"] = {
+            **dict(report.baseline),
+            "baselined": [finding_block(f) for f in audit.baselined],
+        }
+    if audit.ignored:
+        document["summary"]["ignored"] = audit.ignored
+    return document
+
+
+def render_json(report: Report) -> str:
+    """The JSON text, findings in rank order."""
+    if len(report.audits) == 1:
+        document = audit_block(report, report.audits[0])
+    else:
+        totals = {"error": 0, "warning": 0, "info": 0}
+        for audit in report.audits:
+            for key, value in audit.counts().items():
+                totals[key] += value
+        document = {
+            "schema": SET_SCHEMA,
+            "tool": {"name": "steelyard", "version": report.tool_version},
+            "audits": [audit_block(report, a) for a in report.audits],
+            "summary": totals,
+            "gate": {"fail_on": report.fail_on, "passed": report.passed},
+        }
+    return json.dumps(_clean(document), indent=2, ensure_ascii=False) + "\n"

@@ -1,0 +1,38 @@
+"""``steelyard rules``: the rule list and one rule's page."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+from rich.table import Table
+
+from steelyard.render.text import to_text
+from steelyard.rules.base import RuleSpec
+
+
+def _thresholds(spec: RuleSpec) -> str:
+    if not spec.thresholds:
+        return "—"
+    return ", ".join(f"{k}={'unset' if v is None else v}" for k, v in spec.thresholds.items())
+
+
+def render_rules(specs: Mapping[str, RuleSpec], *, color: bool = False, width: int = 120) -> str:
+    """One row per rule: name, default severity, thresholds, why."""
+    table = Table(show_edge=False, header_style="bold", pad_edge=False)
+    for column in ("rule", "severity", "thresholds", "why"):
+        table.add_column(column, overflow="fold")
+    for spec in specs.values():
+        table.add_row(spec.name, spec.severity.value, _thresholds(spec), spec.summary)
+    return to_text([table], color=color, width=width)
+
+
+def render_rule(spec: RuleSpec) -> str:
+    """The rule's page: its docstring, defaults and help address."""
+    lines = [
+        spec.doc.strip(),
+        "",
+        f"default severity: {spec.severity.value}",
+        f"thresholds: {_thresholds(spec)}",
+        f"help: {spec.help_uri}",
+    ]
+    return "\n".join(lines) + "\n"

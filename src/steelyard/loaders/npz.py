@@ -139,9 +139,12 @@ class NpzLoader:
             if info.compress_type == zipfile.ZIP_STORED:
                 with open(path, "rb") as handle:
                     handle.seek(info.header_offset)
-                    local = _LOCAL_HEADER.unpack(handle.read(_LOCAL_HEADER.size))
+                    raw = handle.read(_LOCAL_HEADER.size)
+                    if len(raw) != _LOCAL_HEADER.size or raw[:4] != b"PK\x03\x04":
+                        raise LoadError(path, f"member {info.filename!r} has a broken local header")
+                    local = _LOCAL_HEADER.unpack(raw)
                     start = info.header_offset + _LOCAL_HEADER.size + local[9] + local[10]
-                    if start + info.file_size > size:
+                    if start + header_len + count * dtype.itemsize > size:
                         raise LoadError(path, f"member {info.filename!r} runs past the file end")
                     if count == 0:
                         return np.zeros(shape, dtype=dtype, order=order)

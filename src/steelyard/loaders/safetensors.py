@@ -178,6 +178,8 @@ class SafetensorsLoader:
     def sniff(self, path: Path, head: bytes) -> bool:
         if path.name.endswith(_INDEX_SUFFIX) or (path.suffix == ".json" and _is_index(head)):
             return True
+        if path.suffix == ".safetensors":
+            return True  # claim it so that a broken file gets a safetensors-specific reason
         if len(head) < 9:
             return False
         (length,) = struct.unpack("<Q", head[:8])

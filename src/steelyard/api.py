@@ -9,12 +9,14 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
+import struct
+import zipfile
 from collections.abc import Sequence
 from pathlib import Path
 
 from steelyard import __version__
 from steelyard.audit import audit_checkpoint
-from steelyard.errors import SteelyardError
+from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import load as _load
@@ -57,7 +59,12 @@ def audit_one(
 ) -> CheckpointAudit:
     """Load and audit one checkpoint."""
     checkpoint = _load(path)
-    return audit_checkpoint(checkpoint, policy, gradient_source(checkpoint, grads, grads_kind))
+    source = gradient_source(checkpoint, grads, grads_kind)
+    try:
+        return audit_checkpoint(checkpoint, policy, source)
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
+        # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
+        raise LoadError(checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})") from exc
 
 
 def audit_many(

@@ -1,0 +1,382 @@
+"""``unsupported-weight``: large weights that received almost no gradient.
+
+**What it checks.** Each layer's weights ``w`` (batch-norm-folded where an inference-form
+batch norm follows, ``W' = W·γ/sqrt(var+ε)``, because that is the weight the function uses)
+against their *support* ``s``, a per-weight gradient magnitude from a ``--grads`` sidecar or
+the optimizer's second moments (:mod:`steelyard.gradients`). Folding rescales unit j by
+``a_j = γ_j/sqrt(var_j+ε)``; the chain rule gives ``∂E/∂W'_jk = (∂E/∂W_jk)/a_j``, so the
+support is folded the same way, ``s' = s/|a_j|``. A weight is *unsupported* when
+
+* ``|w| >= quantile(|w|, weight-quantile)`` over the layer (default 0.99), and
+* ``|w| >= rms-multiple × RMS(w)`` of the layer (default 3), and
+* ``s <= quantile(s, support-quantile)`` over the layer (default 0.05).
+
+Each flagged weight is scored by its optimal-brain-damage saliency ``½·F·w²`` with the
+diagonal Fisher / Hessian approximated by ``F ≈ s²`` (LeCun, Denker & Solla 1990, "Optimal
+Brain Damage", NIPS 2): the second-order estimate of how much the loss rises when the weight
+is set to zero. The saliency is the same in raw and folded form (``s'·w' = s·w``).
+
+**Why it matters.** A weight far larger than its neighbours that the loss barely pulls on
+was not put there by the data: it is a relic of initialisation, of an early phase of training,
+of a rare input, or of a bug, and it still multiplies its input at inference. Its small
+saliency says removing it would hardly change the training loss; its size says it can change
+the output a lot on inputs unlike the training data.
+
+**The equilibrium ratio.** When an L2 coefficient is known, each layer also gets one line with
+its equilibrium ratio: the median, over weights with ``|w| >= negligible × RMS(w)`` (default
+0.1; exact zeros never count), of ``(λ_eff·|w| + l1) / |∂E/∂w|`` on the *raw* weights (the
+penalty acts on the stored weights, not the folded ones). At a minimum of ``E(w) + penalty``
+the data gradient balances the penalty gradient, ``|∂E/∂w| = λ_eff·|w|`` (Krogh & Hertz 1992,
+"A simple weight decay can improve generalization", NIPS 4), so a converged L2 layer has ratio
+1; with an L1 term the balance of a non-zero weight is ``|∂E/∂w| = λ_eff·|w| + l1`` (the
+subgradient condition). A ratio outside ``[1/equilibrium-band, equilibrium-band]`` (default 3)
+is a warning: above the band the penalty outweighs the data (weights were still decaying, or
+the declared λ is larger than the one that trained them), below it the data outweighs the
+penalty (still learning, or λ was smaller). Inside the band the line is info.
+
+Where λ_eff comes from, first match wins:
+
+* the layer's Keras ``L2``/``L1L2`` kernel regularizer, penalty ``l1·Σ|w| + l2·Σw²``, gradient
+  ``l1·sign(w) + 2·l2·w``: ``λ_eff = 2·l2``, ``l1`` as declared;
+* the policy's ``weight-decay`` wd, PyTorch convention (``wd·w`` added to the gradient):
+  ``λ_eff = wd``;
+* the checkpoint's optimizer ``weight_decay`` wd when the decay is coupled (SGD, Adam,
+  RMSprop with decay in the gradient): ``λ_eff = wd``;
+* decoupled AdamW decay (Loshchilov & Hutter 2019, "Decoupled weight decay regularization",
+  ICLR) updates ``w ← w − lr·(m̂/(sqrt(v̂)+ε) + wd·w)``, which stops moving where
+  ``|m̂| = wd·(sqrt(v̂)+ε)·|w|``. With ``m̂ ≈ ∂E/∂w`` that is an L2 balance with a *per-weight*
+  coefficient ``λ_eff = wd·(sqrt(v̂)+ε)`` (bias-corrected ``v̂``), so it needs the checkpoint's
+  second moments as well as a sidecar; the reported λ_eff is the layer median.
+
+**What the support must hold for the equilibrium.** The balance compares the penalty with the
+*data* gradient ``|∂E/∂w|``, without the penalty term. A ``--grads`` sidecar of kind ``abs``
+holds it directly (``rms`` and ``sq`` too; over several batches all three bound the mean
+gradient from above, and for one full-batch gradient they equal it); the sidecar must be
+taken from the data loss alone. Kind ``fisher`` is not used: per-example gradients do not
+cancel, so they overstate ``|∂E/∂w|``. Optimizer second moments are not used either: with
+coupled decay they are the RMS of the *total* gradient ``∂E/∂w + λ·w``, whose mean is what
+vanishes at the balance, so they measure minibatch noise there; with AdamW they are the scale
+the balance is defined by. Layers whose support is of such a kind get an info line saying the
+equilibrium was not checked. (Unsupported weights are still judged on such support.)
+
+**Without gradients.** With no gradient source, or one that matches no layer's weights, the
+rule yields a single info line (no layer, no tensor) saying it did not run and how to give it
+support: ``--grads FILE`` or a checkpoint saved with its optimizer state.
+
+**Evidence.** Unsupported weights, one finding per layer: ``flagged`` (the count, which the
+audit's health table reads), ``top`` (up to 10 flagged weights by ascending saliency, each
+``unit``, ``input`` (flat fan-in index, input channel × kernel position), ``w``, ``support``,
+``saliency``; folded values when ``folded``), ``total_saliency``, ``weight_limit``,
+``support_limit``, ``rms``. Equilibrium: ``ratio`` (None when infinite), ``lambda_eff``,
+``l1``, ``penalty_source``, ``weights`` counted, ``quartiles``, ``band``, ``status``.
+
+**Severity and score.** Unsupported weights: warning, score ``scoring.score(k/units,
+max|w|/(rms-multiple·RMS))`` for k units holding flagged weights. Equilibrium outside the
+band: warning, score ``scoring.score(counted/size, max(r, 1/r)/band)``. Info lines score 0.
+
+**What to do.** Look at the inputs the flagged weights read: if they are (almost) never active
+in the data, the weight is free to be anything; prune it (its saliency says the loss will
+barely move), constrain or decay it, or fix the data pipeline that starves the input. For an
+equilibrium warning, train longer, or declare the λ that was actually used.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.findings import Finding, Severity
+from steelyard.gradients import GradientSource, GradsKind, optimizer_source
+from steelyard.graph import Layer, NormKind
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.scoring import score
+
+_TOP = 10
+_ADAM_EPS = 1e-8
+"""ε of Adam/AdamW when the checkpoint does not say (the usual default)."""
+
+
+@dataclass(frozen=True)
+class _Penalty:
+    """The penalty gradient λ_eff·w + l1·sign(w) known for one layer."""
+
+    lam: float | np.ndarray
+    """λ_eff, a number or (decoupled AdamW) one value per weight ``[units, fan_in]``."""
+    l1: float
+    source: str
+
+
+def _fold_scale(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
+    """a_j = γ_j/sqrt(var_j+ε) of the batch norm folded into ``layer`` (as in stats)."""
+    norm = layer.norm
+    if norm is None or norm.kind is not NormKind.BATCH or norm.var is None:
+        return None
+    var = ctx.stats.tensor(norm.var)
+    if var is None or var.shape != (layer.units,):
+        return None
+    gamma = ctx.stats.tensor(norm.scale) if norm.scale else None
+    if gamma is None or gamma.shape != (layer.units,):
+        gamma = np.ones(layer.units, np.float32)
+    return np.asarray(gamma, np.float64) / np.sqrt(np.maximum(var.astype(np.float64), 0) + norm.eps)
+
+
+def _unsupported(
+    ctx: AuditContext, settings: RuleSettings, layer: Layer, support: np.ndarray
+) -> Iterator[Finding]:
+    folded = ctx.stats.folded(layer)
+    weights = np.asarray(folded.matrix, np.float64)
+    grads = np.asarray(support, np.float64)
+    if folded.folded:
+        scale = _fold_scale(ctx, layer)
+        if scale is not None:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                grads = grads / np.abs(scale)[:, None]
+    magnitude = np.abs(weights)
+    finite = np.isfinite(magnitude) & np.isfinite(grads)
+    if int(finite.sum()) < 2:
+        return
+    rms = float(np.sqrt(np.mean(magnitude[finite] ** 2)))
+    if not rms > 0:
+        return
+    multiple = float(settings.get(layer, "rms-multiple"))
+    weight_limit = max(
+        float(np.quantile(magnitude[finite], float(settings.get(layer, "weight-quantile")))),
+        multiple * rms,
+    )
+    support_limit = float(
+        np.quantile(grads[finite], float(settings.get(layer, "support-quantile")))
+    )
+    hit = finite & (magnitude >= weight_limit) & (grads <= support_limit)
+    rows, cols = np.nonzero(hit)
+    if rows.size == 0:
+        return
+    w_hit, s_hit = weights[rows, cols], grads[rows, cols]
+    # Optimal brain damage: δE ≈ ½·h_kk·w_k² with the diagonal h_kk ≈ F ≈ s² (LeCun et al. 1990).
+    saliency = 0.5 * s_hit**2 * w_hit**2
+    order = np.lexsort((-np.abs(w_hit), saliency))[:_TOP]
+    units = tuple(int(u) for u in np.unique(rows))
+    largest = float(np.abs(w_hit).max())
+    total = float(saliency.sum())
+    where = "folded " if folded.folded else ""
+    yield Finding(
+        rule=RULE.name,
+        severity=Severity.WARNING,
+        layer=layer.name,
+        tensor=layer.weight,
+        units=units,
+        score=score(len(units) / layer.units, largest / (multiple * rms)),
+        message=(
+            f"{rows.size} {where}weight{'s' if rows.size != 1 else ''} in {len(units)} of "
+            f"{layer.units} units reach |w| up to {largest:.4g} (limit {weight_limit:.4g}, "
+            f"RMS {rms:.4g}) with gradient support <= {support_limit:.4g}; total "
+            f"optimal-brain-damage saliency {total:.4g}"
+        ),
+        hint="check whether the inputs these weights read are ever active in the data; prune, "
+        "constrain or decay them, or fix the pipeline that starves those inputs",
+        evidence={
+            "test": "unsupported",
+            "flagged": int(rows.size),
+            "top": [
+                {
+                    "unit": int(rows[i]),
+                    "input": int(cols[i]),
+                    "w": float(w_hit[i]),
+                    "support": float(s_hit[i]),
+                    "saliency": float(saliency[i]),
+                }
+                for i in order
+            ],
+            "total_saliency": total,
+            "weight_limit": weight_limit,
+            "support_limit": support_limit,
+            "rms": rms,
+            "folded": folded.folded,
+        },
+        part=layer.gate or "",
+    )
+
+
+def _penalty(ctx: AuditContext, layer: Layer) -> _Penalty | str | None:
+    """The layer's known penalty, a reason it cannot be used, or None when none is known."""
+    reg = layer.regularizer
+    if reg is not None and (reg.l2 > 0 or reg.l1 > 0):
+        # Keras: l1·Σ|w| + l2·Σw² has gradient l1·sign(w) + 2·l2·w.
+        return _Penalty(2.0 * reg.l2, reg.l1, f"kernel regularizer (l1={reg.l1:g}, l2={reg.l2:g})")
+    if ctx.policy.weight_decay is not None and ctx.policy.weight_decay > 0:
+        return _Penalty(
+            float(ctx.policy.weight_decay), 0.0, f"policy weight-decay {ctx.policy.weight_decay:g}"
+        )
+    state = ctx.checkpoint.optimizer
+    if state is None or not state.weight_decay or state.weight_decay <= 0:
+        return None
+    wd = float(state.weight_decay)
+    decoupled = state.decoupled if state.decoupled is not None else state.kind == "adamw"
+    if not decoupled or state.kind == "sgd":
+        # For plain SGD decoupled and coupled decay are the same update.
+        return _Penalty(wd, 0.0, f"{state.kind} weight_decay {wd:g} (coupled)")
+    moments = optimizer_source(ctx.checkpoint)
+    root_v = None if moments is None else moments.support(layer)
+    if root_v is None:
+        return (
+            f"decoupled {state.kind} decay {wd:g} balances wd·(sqrt(v̂)+ε)·|w|, and the "
+            "checkpoint holds no second moments for this layer"
+        )
+    eps = state.eps if state.eps is not None else _ADAM_EPS
+    return _Penalty(
+        wd * (root_v + eps), 0.0, f"decoupled {state.kind} decay {wd:g}: wd·(sqrt(v̂)+ε)"
+    )
+
+
+def _support_reason(source: GradientSource) -> str | None:
+    """Why this support cannot stand for |∂E/∂w|, or None when it can."""
+    if source.checkpoint is None:
+        return (
+            "support comes from optimizer second moments, which hold the RMS of the total "
+            "gradient (or set the AdamW scale), not the data gradient |∂E/∂w|"
+        )
+    if source.kind is GradsKind.FISHER:
+        return (
+            "Fisher support sums per-example gradients that do not cancel, so it overstates |∂E/∂w|"
+        )
+    return None
+
+
+def _equilibrium(
+    ctx: AuditContext,
+    settings: RuleSettings,
+    layer: Layer,
+    support: np.ndarray,
+    source: GradientSource,
+) -> Iterator[Finding]:
+    penalty = _penalty(ctx, layer)
+    if penalty is None:
+        return
+    reason = penalty if isinstance(penalty, str) else _support_reason(source)
+    base = {"test": "equilibrium"}
+    if reason is not None:
+        yield Finding(
+            rule=RULE.name,
+            severity=Severity.INFO,
+            layer=layer.name,
+            tensor=layer.weight,
+            units=(),
+            score=0.0,
+            message=f"equilibrium ratio not checked: {reason}",
+            hint="give a --grads sidecar of kind abs holding |∂E/∂w| of the data loss alone",
+            evidence={**base, "status": "not-checked"},
+            part=layer.gate or "",
+        )
+        return
+    assert isinstance(penalty, _Penalty)
+    weights = np.asarray(ctx.stats.matrix(layer), np.float64)
+    grads = np.asarray(support, np.float64)
+    lam = np.broadcast_to(np.asarray(penalty.lam, np.float64), weights.shape)
+    magnitude = np.abs(weights)
+    finite = np.isfinite(magnitude) & np.isfinite(grads) & np.isfinite(lam)
+    if not finite.any():
+        return
+    rms = float(np.sqrt(np.mean(magnitude[finite] ** 2)))
+    counted = (
+        finite & (magnitude > 0) & (magnitude >= float(settings.get(layer, "negligible")) * rms)
+    )
+    if not counted.any():
+        return
+    pull = lam[counted] * magnitude[counted] + penalty.l1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratios = np.where(grads[counted] > 0, pull / grads[counted], np.inf)
+    ratio = float(np.median(ratios))
+    q25, q75 = (float(q) for q in np.quantile(ratios, [0.25, 0.75]))
+    band = float(settings.get(layer, "equilibrium-band"))
+    inside = 1.0 / band <= ratio <= band
+    lam_eff = float(np.median(lam[counted]))
+    shown = f"{ratio:.3g}" if np.isfinite(ratio) else "infinite"
+    message = (
+        f"equilibrium ratio (λ_eff·|w| + l1)/|∂E/∂w| = {shown} (median over {int(counted.sum())} "
+        f"weights, λ_eff = {lam_eff:.4g} from {penalty.source}), "
+        f"{'inside' if inside else 'outside'} [{1 / band:.3g}, {band:.3g}]"
+    )
+    if inside:
+        hint = "informational: the data gradient balances the declared penalty"
+    elif ratio > band:
+        hint = "the penalty outweighs the data gradient: train longer, or declare the smaller λ that was used"
+    else:
+        hint = "the data gradient outweighs the penalty: train longer, or declare the larger λ that was used"
+    excess = max(ratio, 1.0 / ratio) / band if ratio > 0 else float("inf")
+    yield Finding(
+        rule=RULE.name,
+        severity=Severity.INFO if inside else Severity.WARNING,
+        layer=layer.name,
+        tensor=layer.weight,
+        units=(),
+        score=0.0 if inside else score(int(counted.sum()) / weights.size, excess),
+        message=message,
+        hint=hint,
+        evidence={
+            **base,
+            "status": "inside" if inside else "outside",
+            "ratio": ratio if np.isfinite(ratio) else None,
+            "quartiles": [q if np.isfinite(q) else None for q in (q25, q75)],
+            "lambda_eff": lam_eff,
+            "l1": penalty.l1,
+            "penalty_source": penalty.source,
+            "weights": int(counted.sum()),
+            "band": band,
+        },
+        part=layer.gate or "",
+    )
+
+
+def _not_run(source: GradientSource | None) -> Finding:
+    if source is None:
+        why = "no gradient source was given"
+    else:
+        why = f"the gradient source ({source.description}) matched no layer's weights"
+    return Finding(
+        rule=RULE.name,
+        severity=Severity.INFO,
+        layer=None,
+        tensor=None,
+        units=(),
+        score=0.0,
+        message=f"unsupported-weight did not run: {why}",
+        hint="pass --grads FILE (per-weight gradient statistics under the model's tensor names) "
+        "or audit a checkpoint saved with its optimizer state",
+        evidence={"test": "not-run"},
+    )
+
+
+def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+    """Yield unsupported large weights and equilibrium ratios per layer."""
+    source = ctx.gradients
+    supported = False
+    if source is not None:
+        for layer in ctx.checkpoint.layers:
+            if not settings.enabled(layer):
+                continue
+            support = source.support(layer)
+            if support is None or support.shape != (layer.units, layer.fan_in):
+                continue
+            supported = True
+            yield from _unsupported(ctx, settings, layer, support)
+            yield from _equilibrium(ctx, settings, layer, support, source)
+    if not supported:
+        yield _not_run(source)
+
+
+RULE = RuleSpec(
+    name="unsupported-weight",
+    severity=Severity.WARNING,
+    thresholds={
+        "weight-quantile": 0.99,
+        "rms-multiple": 3.0,
+        "support-quantile": 0.05,
+        "equilibrium-band": 3.0,
+        "negligible": 0.1,
+    },
+    summary="a large weight the loss barely pulls on was not put there by the data, yet still "
+    "multiplies its input at inference",
+    check=check,
+    doc=__doc__ or "",
+)

@@ -1,0 +1,1014 @@
+"""PyTorch checkpoints (``torch.save`` zip and legacy files, ``torch.jit.save`` archives).
+
+Nothing in the file is executed and torch is not imported: pickles go through
+:mod:`steelyard.loaders.pickle_safe`, which turns tensors into :class:`TensorRef` records;
+this module checks each record against its storage (``data/<key>``) and builds lazy readers
+that view the storage bytes in place (memory-mapped when the zip member is stored).
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import mmap
+import re
+import struct
+import sys
+import zipfile
+from collections.abc import Callable, Iterator, Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from steelyard.dtypes import ALL_DTYPES, is_float_name
+from steelyard.errors import LoadError
+from steelyard.graph import (
+    Checkpoint,
+    Format,
+    OptimizerSlots,
+    OptimizerState,
+    Tensor,
+    TensorRole,
+)
+from steelyard.loaders.base import (
+    file_size,
+    open_zip,
+    read_zip_member,
+    safe_zip_names,
+)
+from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
+from steelyard.loaders.pickle_safe import (
+    MAX_PICKLE_BYTES,
+    ScriptObject,
+    StorageRef,
+    TensorRef,
+    Unsupported,
+    parse_storage_id,
+    restricted_load,
+)
+
+#: ``torch.serialization.MAGIC_NUMBER`` pickled with protocol 2 (legacy, pre-1.6 format).
+_LEGACY_MAGIC = b"\x80\x02\x8a\x0a" + (0x1950A86A20F9469CFC6C).to_bytes(10, "little") + b"."
+_LEGACY_PROTOCOL = 1001
+_ZIP_MAGIC = b"PK\x03\x04"
+#: Walks over pickled containers stop here (a state dict is a few levels deep).
+_MAX_WALK_DEPTH = 100
+_REREAD = "re-save it with a current torch (torch.save(obj, path) writes the zip format since 1.6)"
+
+_MODEL_KEYS = (
+    "state_dict",
+    "model_state_dict",
+    "model_state",
+    "model",
+    "module",
+    "net",
+    "network",
+    "weights",
+    "params",
+    "model_weights",
+)
+_EMA_KEYS = ("ema", "model_ema", "ema_model", "state_dict_ema", "ema_state_dict", "params_ema")
+_OPTIMIZER_KEYS = (
+    "optimizer",
+    "optimizer_state_dict",
+    "optimizer_state",
+    "optim",
+    "optim_state_dict",
+    "optim_state",
+    "opt",
+    "opt_state",
+    "optimizer_states",
+    "optimizers",
+)
+_PREFIXES = ("module.", "_orig_mod.")
+_BUFFER_LEAVES = {"running_mean", "running_var", "num_batches_tracked"}
+
+
+# --------------------------------------------------------------------------- storage bytes
+
+
+class _Source:
+    """Where each storage's bytes are: spans of the file (mapped) or compressed zip members."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.size = file_size(path)
+        self.spans: dict[str, tuple[int, int]] = {}
+        """key → (file offset, byte length) for bytes stored as-is."""
+        self.members: dict[str, zipfile.ZipInfo] = {}
+        """key → compressed zip member (read whole on demand)."""
+        self._map: mmap.mmap | None = None
+
+    def nbytes(self, key: str) -> int | None:
+        if key in self.spans:
+            return self.spans[key][1]
+        if key in self.members:
+            return int(self.members[key].file_size)
+        return None
+
+    def buffer(self, key: str) -> tuple[Any, int]:
+        """A buffer holding the storage and the offset of its first byte in it."""
+        if key in self.spans:
+            offset, length = self.spans[key]
+            if length == 0:
+                return b"", 0
+            if self._map is None:
+                try:
+                    with open(self.path, "rb") as handle:
+                        self._map = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+                except (OSError, ValueError) as exc:
+                    raise LoadError(self.path, f"cannot be memory-mapped ({exc})") from None
+            if offset + length > len(self._map):
+                raise LoadError(self.path, f"storage {key!r} now lies past the end of the file")
+            return self._map, offset
+        info = self.members[key]
+        with open_zip(self.path) as archive:
+            data = read_zip_member(archive, info, self.path, limit=info.file_size)
+        if len(data) != info.file_size:
+            raise LoadError(
+                self.path, f"storage record {info.filename!r} is shorter than it claims"
+            )
+        return data, 0
+
+
+def _local_data_offset(path: Path, info: zipfile.ZipInfo, size: int) -> int:
+    """Offset of a stored member's bytes, from its local header (checked against the central)."""
+    with open(path, "rb") as handle:
+        handle.seek(info.header_offset)
+        header = handle.read(30)
+        if len(header) != 30 or header[:4] != _ZIP_MAGIC:
+            raise LoadError(path, f"archive member {info.filename!r} has no local header")
+        name_length, extra_length = struct.unpack("<HH", header[26:30])
+        raw_name = handle.read(name_length)
+    expected = info.orig_filename.encode("utf-8" if info.flag_bits & 0x800 else "cp437", "replace")
+    if raw_name != expected:
+        raise LoadError(
+            path,
+            f"archive member {info.filename!r}: local header names "
+            f"{raw_name[:60]!r} (central directory disagrees)",
+        )
+    start: int = info.header_offset + 30 + int(name_length) + int(extra_length)
+    if start + info.compress_size > size:
+        raise LoadError(path, f"archive member {info.filename!r} runs past the end of the file")
+    return start
+
+
+# --------------------------------------------------------------------------- storage table
+
+
+class _Storages:
+    """Resolves persistent ids to checked :class:`StorageRef` records."""
+
+    def __init__(self, path: Path, source: _Source, deferred: bool = False) -> None:
+        self.path = path
+        self.source = source
+        self.refs: dict[str, StorageRef] = {}
+        # Legacy files list storage bytes after the pickle: sizes are checked afterwards.
+        self.deferred = deferred
+
+    def persistent_load(self, pid: object) -> StorageRef:
+        kind, key, location, numel, view = parse_storage_id(pid)
+        if view is not None:
+            raise Unsupported(f"uses pre-1.6 storage views; {_REREAD}")
+        known = self.refs.get(key)
+        if known is not None:
+            if known.kind != kind or known.numel != numel:
+                raise LoadError(self.path, f"storage {key!r} is described twice, differently")
+            return known
+        ref = StorageRef(kind=kind, key=key, location=location, numel=numel)
+        if not self.deferred:
+            self.check(ref)
+        self.refs[key] = ref
+        return ref
+
+    def check(self, ref: StorageRef) -> None:
+        have = self.source.nbytes(ref.key)
+        if have is None:
+            raise LoadError(self.path, f"refers to storage {ref.key!r}, which the file lacks")
+        if ref.kind.untyped:
+            need = ref.numel
+        elif ref.kind.dtype is None:
+            return  # undecodable dtype: refused if a tensor we read uses it
+        else:
+            need = ref.numel * ALL_DTYPES[ref.kind.dtype].itemsize
+        if need != have:
+            raise LoadError(
+                self.path,
+                f"storage {ref.key!r} claims {ref.numel} elements of {ref.kind.torch_name} "
+                f"({need} bytes) but its record holds {have} bytes",
+            )
+
+
+def _storage_elements(ref: TensorRef, path: Path, name: str) -> int:
+    if ref.dtype is None:
+        raise LoadError(
+            path, f"tensor {name!r} has dtype {ref.dtype_name}, which steelyard cannot decode"
+        )
+    itemsize = ALL_DTYPES[ref.dtype].itemsize
+    if ref.storage.kind.untyped:
+        if ref.storage.numel % itemsize:
+            raise LoadError(
+                path,
+                f"tensor {name!r}: its storage of {ref.storage.numel} bytes "
+                f"is not a whole number of {ref.dtype_name} elements",
+            )
+        return ref.storage.numel // itemsize
+    return ref.storage.numel
+
+
+def _make_tensor(
+    ref: TensorRef, name: str, role: TensorRole | None, source: _Source, order: str
+) -> Tensor:
+    """A lazily read tensor over its storage, after checking the view stays inside it."""
+    path = source.path
+    total = _storage_elements(ref, path, name)
+    assert ref.dtype is not None
+    if any(s == 0 for s in ref.size):
+        if ref.offset > total:
+            raise LoadError(
+                path,
+                f"tensor {name!r}: storage offset {ref.offset} is past its "
+                f"storage of {total} elements",
+            )
+    else:
+        last = ref.offset + sum((s - 1) * st for s, st in zip(ref.size, ref.stride, strict=False))
+        if last >= total:
+            raise LoadError(
+                path,
+                f"tensor {name!r}: offset {ref.offset}, size {list(ref.size)} and stride "
+                f"{list(ref.stride)} reach element {last} but its storage holds {total}",
+            )
+    dtype = ALL_DTYPES[ref.dtype]
+    is_float = is_float_name(ref.dtype)
+    return Tensor(
+        name=name,
+        shape=ref.size,
+        dtype=ref.dtype,
+        role=role if role is not None else role_for(name, is_float),
+        reader=_reader(ref, dtype, total, source, order),
+    )
+
+
+def _reader(
+    ref: TensorRef, dtype: np.dtype[Any], total: int, source: _Source, order: str
+) -> Callable[[], np.ndarray]:
+    itemsize = dtype.itemsize
+    native = order == sys.byteorder or itemsize == 1
+    # Strides are applied to unsigned integers of the element size, then reinterpreted:
+    # as_strided cannot handle ml_dtypes types, and a foreign byte order is swapped as ints.
+    raw = np.dtype(f"{'<' if order == 'little' else '>'}u{itemsize}")
+
+    def read() -> np.ndarray:
+        if math.prod(ref.size) == 0:
+            return np.zeros(ref.size, dtype=dtype)
+        buffer, start = source.buffer(ref.storage.key)
+        flat = np.frombuffer(buffer, dtype=raw, count=total, offset=start)
+        view = np.lib.stride_tricks.as_strided(
+            flat[ref.offset :],
+            shape=ref.size,
+            strides=[s * itemsize for s in ref.stride],
+            writeable=False,
+        )
+        if not native:
+            view = view.astype(raw.newbyteorder("="))
+        return view.view(dtype)
+
+    return read
+
+
+# --------------------------------------------------------------------------- the loader
+
+
+class PytorchLoader:
+    """``torch.save`` zip archives (any record name), TorchScript archives, legacy files."""
+
+    format = Format.PYTORCH
+
+    def sniff(self, path: Path, head: bytes) -> bool:
+        if head.startswith(_LEGACY_MAGIC):
+            return True
+        if not head.startswith(_ZIP_MAGIC):
+            return False
+        try:
+            with zipfile.ZipFile(path) as archive:
+                names = archive.namelist()
+        except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError):
+            return False
+        return any(_is_record(name) for name in names)
+
+    def load(self, path: Path) -> Checkpoint:
+        with open(path, "rb") as handle:
+            head = handle.read(len(_LEGACY_MAGIC))
+        if head == _LEGACY_MAGIC:
+            root, storages, order = _read_legacy(path)
+            return _checkpoint(path, root, storages, order, [])
+        return _read_zip(path)
+
+
+def _is_record(name: str) -> bool:
+    return name.endswith("/data.pkl") and name.count("/") == 1
+
+
+def _read_zip(path: Path) -> Checkpoint:
+    size = file_size(path)
+    with open_zip(path) as archive:
+        members = safe_zip_names(archive, path)
+        records = [name for name in members if _is_record(name)]
+        if len(records) != 1:
+            raise LoadError(path, f"holds {len(records)} PyTorch records (*/data.pkl), not one")
+        prefix = records[0][: -len("data.pkl")]
+        order = "little"
+        if f"{prefix}byteorder" in members:
+            text = read_zip_member(archive, members[f"{prefix}byteorder"], path, limit=16)
+            if text not in (b"little", b"big"):
+                raise LoadError(path, f"byteorder record says {text[:16]!r}")
+            order = text.decode()
+        script = f"{prefix}constants.pkl" in members or any(
+            name.startswith(f"{prefix}code/") for name in members
+        )
+        sources = {
+            folder: _zip_source(path, members, f"{prefix}{folder}/", size)
+            for folder in ("data", "constants")
+        }
+        pickled = read_zip_member(archive, members[records[0]], path, limit=MAX_PICKLE_BYTES)
+        storages = _Storages(path, sources["data"])
+        root = restricted_load(pickled, path, "data.pkl", storages.persistent_load, script)
+        notes: list[str] = []
+        if script or isinstance(root, ScriptObject):
+            code = _script_code(archive, members, prefix, path)
+            constants: Any = ()
+            constant_storages = _Storages(path, sources["constants"])
+            if f"{prefix}constants.pkl" in members:
+                blob = read_zip_member(
+                    archive, members[f"{prefix}constants.pkl"], path, limit=MAX_PICKLE_BYTES
+                )
+                constants = restricted_load(
+                    blob, path, "constants.pkl", constant_storages.persistent_load, True
+                )
+            return _script_checkpoint(
+                path, root, constants, (storages, constant_storages), order, code
+            )
+    return _checkpoint(path, root, storages, order, notes)
+
+
+def _zip_source(
+    path: Path, members: Mapping[str, zipfile.ZipInfo], folder: str, size: int
+) -> _Source:
+    source = _Source(path)
+    for name, info in members.items():
+        if not name.startswith(folder) or name.endswith("/"):
+            continue
+        key = name[len(folder) :]
+        if info.flag_bits & 0x1:
+            raise LoadError(path, f"archive member {name!r} is encrypted")
+        if info.compress_type == zipfile.ZIP_STORED:
+            if info.compress_size != info.file_size:
+                raise LoadError(path, f"archive member {name!r} is stored but its sizes differ")
+            source.spans[key] = (_local_data_offset(path, info, size), info.file_size)
+        else:
+            # Deflate expands at most ~1032:1; a larger claim is a lie about the size.
+            if info.file_size > 1100 * info.compress_size + 1024:
+                raise LoadError(path, f"archive member {name!r} claims an implausible size")
+            source.members[key] = info
+    return source
+
+
+# --------------------------------------------------------------------------- legacy format
+
+
+def _read_legacy(path: Path) -> tuple[Any, _Storages, str]:
+    """magic, protocol, sys_info, main pickle, storage keys, then ``numel + bytes`` per key."""
+    size = file_size(path)
+    window = min(size, 1 << 20)
+    while True:
+        with open(path, "rb") as handle:
+            blob = io.BytesIO(handle.read(window))
+        try:
+            return _parse_legacy(path, blob, size, whole=window == size)
+        except _NeedMore:
+            if window >= min(size, MAX_PICKLE_BYTES):
+                if size > MAX_PICKLE_BYTES:
+                    raise LoadError(
+                        path, f"pickles exceed the {MAX_PICKLE_BYTES} byte cap"
+                    ) from None
+                raise LoadError(path, "ends inside its pickles (truncated)") from None
+            window = min(size, MAX_PICKLE_BYTES, window * 8)
+
+
+class _NeedMore(Exception):
+    """The window read so far ends inside a pickle."""
+
+
+def _legacy_pickle(
+    path: Path,
+    blob: io.BytesIO,
+    what: str,
+    whole: bool,
+    persistent: Callable[[object], object] | None = None,
+) -> Any:
+    try:
+        return restricted_load(blob, path, what, persistent)
+    except LoadError:
+        # A pickle cut short by the window fails once it has read to the window's end.
+        if not whole and blob.tell() >= len(blob.getbuffer()):
+            raise _NeedMore() from None
+        raise
+
+
+def _parse_legacy(
+    path: Path, blob: io.BytesIO, size: int, whole: bool
+) -> tuple[Any, _Storages, str]:
+    if _legacy_pickle(path, blob, "magic number", whole) != 0x1950A86A20F9469CFC6C:
+        raise LoadError(path, "has a wrong magic number")
+    protocol = _legacy_pickle(path, blob, "protocol record", whole)
+    if protocol != _LEGACY_PROTOCOL:
+        raise LoadError(path, f"uses legacy protocol {_brief(protocol)}; {_REREAD}")
+    info = _legacy_pickle(path, blob, "sys_info record", whole)
+    if not isinstance(info, dict) or not isinstance(info.get("little_endian"), bool):
+        raise LoadError(path, "has a malformed sys_info record")
+    order = "little" if info["little_endian"] else "big"
+    source = _Source(path)
+    storages = _Storages(path, source, deferred=True)
+    root = _legacy_pickle(path, blob, "main pickle", whole, storages.persistent_load)
+    keys = _legacy_pickle(path, blob, "storage key list", whole)
+    if not isinstance(keys, list) or not all(isinstance(k, str) for k in keys):
+        raise LoadError(path, "has a malformed storage key list")
+    offset = blob.tell()
+    with open(path, "rb") as handle:
+        for key in keys:
+            ref = storages.refs.get(key)
+            if ref is None or key in source.spans:
+                raise LoadError(path, f"lists storage {key!r}, which its pickle never uses")
+            handle.seek(offset)
+            count_bytes = handle.read(8)
+            if len(count_bytes) != 8:
+                raise LoadError(path, f"ends before storage {key!r} (truncated)")
+            numel = int.from_bytes(
+                count_bytes, "little" if order == "little" else "big", signed=True
+            )
+            if ref.kind.untyped or ref.kind.dtype is None:
+                raise LoadError(
+                    path,
+                    f"storage {key!r} has type {ref.kind.torch_name}, which "
+                    f"the legacy format cannot size; {_REREAD}",
+                )
+            itemsize = ALL_DTYPES[ref.kind.dtype].itemsize
+            if numel != ref.numel:
+                raise LoadError(
+                    path,
+                    f"storage {key!r} claims {ref.numel} elements but its record holds {numel}",
+                )
+            start = offset + 8
+            offset = start + numel * itemsize
+            if offset > size:
+                raise LoadError(path, f"storage {key!r} runs past the end of the file")
+            source.spans[key] = (start, numel * itemsize)
+    missing = [key for key in storages.refs if key not in source.spans]
+    if missing:
+        raise LoadError(path, f"refers to storage {missing[0]!r}, which the file lacks")
+    return root, storages, order
+
+
+# --------------------------------------------------------------------------- finding weights
+
+
+@dataclass
+class _Found:
+    tensors: dict[str, TensorRef]
+    where: str | None
+    """The key path of the state dict inside the checkpoint (None: the top level)."""
+    container: Mapping[Any, Any] | None
+    """The dict that held the state dict (where the optimizer would be), if any."""
+    stripped: tuple[str, ...]
+    skipped: list[str]
+
+
+def _brief(value: object) -> str:
+    text = repr(value) if isinstance(value, (int, float, str, bool)) else type(value).__name__
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _tensor_items(mapping: Mapping[Any, Any]) -> dict[str, TensorRef]:
+    return {k: v for k, v in mapping.items() if isinstance(k, str) and isinstance(v, TensorRef)}
+
+
+def _is_state_dict(value: object) -> bool:
+    if not isinstance(value, Mapping) or not value:
+        return False
+    tensors = _tensor_items(value)
+    return bool(tensors) and 2 * len(tensors) >= len(value)
+
+
+def _find_weights(root: object, path: Path) -> _Found:
+    if isinstance(root, TensorRef):
+        return _Found({"tensor": root}, None, None, (), [])
+    if not isinstance(root, Mapping):
+        raise LoadError(
+            path, f"holds a pickled {type(root).__name__}, not a state dict or a checkpoint dict"
+        )
+    container: Mapping[Any, Any] = root
+    where: list[str] = []
+    for _depth in range(3):
+        key = _model_key(container)
+        if key is None:
+            break
+        value = container[key]
+        if _is_state_dict(value):
+            found = _flatten(value, path)
+            return _finish(found, ".".join([*where, key]), container)
+        if not isinstance(value, Mapping):
+            break
+        where.append(key)
+        container = value
+    if _is_state_dict(root):
+        return _finish(_flatten(root, path), None, None)
+    # No known key: gather every entry that is a state dict, except optimizer entries.
+    parts = [
+        k
+        for k, v in root.items()
+        if isinstance(k, str) and k not in _OPTIMIZER_KEYS and _is_state_dict(v)
+    ]
+    if len(parts) == 1:
+        return _finish(_flatten(root[parts[0]], path), parts[0], root)
+    if parts:
+        merged: dict[str, Any] = {}
+        for part in parts:
+            for name, ref in _flatten(root[part], path)[0].items():
+                merged[f"{part}.{name}"] = ref
+        gathered = _finish((merged, []), None, root)
+        gathered.where = ", ".join(repr(p) for p in parts)
+        return gathered
+    keys = ", ".join(_brief(k) for k in list(root)[:8])
+    raise LoadError(
+        path,
+        f"holds no state dict of tensors steelyard can find (top-level keys: {keys or 'none'})",
+    )
+
+
+def _model_key(container: Mapping[Any, Any]) -> str | None:
+    for key in (*_MODEL_KEYS, *_EMA_KEYS):
+        if key in container and isinstance(container[key], Mapping):
+            return key
+    return None
+
+
+def _flatten(mapping: Mapping[Any, Any], path: Path) -> tuple[dict[str, Any], list[str]]:
+    """Tensors of a state dict; nested dicts of tensors get dotted names."""
+    out: dict[str, Any] = {}
+    skipped: list[str] = []
+    stack: list[tuple[str, Mapping[Any, Any], int]] = [("", mapping, 0)]
+    while stack:
+        prefix, current, depth = stack.pop()
+        if depth > _MAX_WALK_DEPTH:
+            raise LoadError(path, "nests its state dict too deeply")
+        nested: list[tuple[str, Mapping[Any, Any], int]] = []
+        for key, value in current.items():
+            name = f"{prefix}{key}" if isinstance(key, str) else None
+            if name is not None and isinstance(value, TensorRef):
+                out[name] = value
+            elif name is not None and isinstance(value, Mapping) and _tensor_items(value):
+                nested.append((f"{name}.", value, depth + 1))
+            else:
+                skipped.append(name if name is not None else _brief(key))
+        stack.extend(reversed(nested))
+    return out, skipped
+
+
+def _finish(
+    flat: tuple[dict[str, Any], list[str]], where: str | None, container: Mapping[Any, Any] | None
+) -> _Found:
+    tensors, skipped = flat
+    stripped: list[str] = []
+    changed = True
+    while changed and tensors:
+        changed = False
+        for prefix in _PREFIXES:
+            if all(name.startswith(prefix) for name in tensors):
+                tensors = {name[len(prefix) :]: ref for name, ref in tensors.items()}
+                stripped.append(prefix)
+                changed = True
+    return _Found(tensors, where, container, tuple(stripped), skipped)
+
+
+def _strip(name: str, prefixes: tuple[str, ...]) -> str:
+    for prefix in prefixes:
+        if name.startswith(prefix):
+            name = name[len(prefix) :]
+    return name
+
+
+def _checkpoint(
+    path: Path, root: object, storages: _Storages, order: str, notes: list[str]
+) -> Checkpoint:
+    found = _find_weights(root, path)
+    source = storages.source
+    tensors = {
+        name: _make_tensor(ref, name, None, source, order) for name, ref in found.tensors.items()
+    }
+    if found.where is not None:
+        notes.append(
+            f"weights read from checkpoint entry {found.where!r}"
+            if not found.where.startswith("'")
+            else f"weights gathered from checkpoint entries {found.where}"
+        )
+    for prefix in found.stripped:
+        notes.append(f"the {prefix!r} prefix was stripped from every tensor name")
+    if found.skipped:
+        notes.append(
+            f"{len(found.skipped)} non-tensor entries of the state dict were not read "
+            f"(e.g. {found.skipped[0]!r})"
+        )
+    optimizer = None
+    container = found.container
+    if container is not None:
+        optimizer = _optimizer_state(path, container, found, source, order, notes)
+        ema = [k for k in _EMA_KEYS if k in container and k != (found.where or "")]
+        if ema and found.where not in _EMA_KEYS:
+            notes.append(f"the checkpoint also holds averaged weights under {ema[0]!r} (not read)")
+        others = [
+            _brief(k)
+            for k in container
+            if k != found.where
+            and k not in _OPTIMIZER_KEYS
+            and k not in _EMA_KEYS
+            and not isinstance(container[k], TensorRef)
+        ]
+        if others:
+            notes.append(f"other checkpoint entries (not weights): {', '.join(others[:8])}")
+    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
+    return Checkpoint(
+        path=str(path),
+        format=Format.PYTORCH,
+        tensors=tensors,
+        layers=layers,
+        file_size=file_size(path),
+        files=(str(path),),
+        optimizer=optimizer,
+        notes=(*notes, *layer_notes),
+    )
+
+
+# --------------------------------------------------------------------------- optimizer state
+
+
+class _Ambiguous(Exception):
+    """The optimizer state cannot be tied to tensor names without guessing."""
+
+
+def _optimizer_state(
+    path: Path,
+    container: Mapping[Any, Any],
+    found: _Found,
+    source: _Source,
+    order: str,
+    notes: list[str],
+) -> OptimizerState | None:
+    keys = [k for k in _OPTIMIZER_KEYS if k in container]
+    if not keys:
+        return None
+    key = keys[0]
+    value = container[key]
+    if isinstance(value, list):
+        if len(value) != 1:
+            notes.append(f"{key!r} holds {len(value)} optimizers; their state was not mapped")
+            return None
+        value = value[0]
+    if not (
+        isinstance(value, Mapping)
+        and isinstance(value.get("state"), Mapping)
+        and isinstance(value.get("param_groups"), list)
+    ):
+        notes.append(f"{key!r} is not a torch optimizer state dict; it was not read")
+        return None
+    try:
+        return _map_optimizer(path, key, value, found, source, order, notes)
+    except _Ambiguous as exc:
+        notes.append(
+            f"the optimizer state in {key!r} could not be mapped to tensor names "
+            f"unambiguously ({exc}); it was not used"
+        )
+        return None
+
+
+def _group_value(groups: list[Mapping[str, Any]], name: str, notes: list[str]) -> Any:
+    values = [g.get(name) for g in groups if name in g]
+    if not values:
+        return None
+    first = values[0]
+    if any(v != first for v in values[1:]):
+        numbers = [v for v in values if isinstance(v, (int, float)) and not isinstance(v, bool)]
+        if name == "weight_decay" and numbers:
+            notes.append(
+                f"param groups use different weight decay ({sorted(set(numbers))}); "
+                "the largest is reported"
+            )
+            return max(numbers)
+        notes.append(f"param groups disagree on {name}; the first group's value is reported")
+    return first
+
+
+def _number(value: object) -> float | None:
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return float(value)
+    return None
+
+
+def _map_optimizer(
+    path: Path,
+    key: str,
+    value: Mapping[Any, Any],
+    found: _Found,
+    source: _Source,
+    order: str,
+    notes: list[str],
+) -> OptimizerState:
+    state: Mapping[Any, Any] = value["state"]
+    groups = value["param_groups"]
+    if not groups or not all(isinstance(g, Mapping) for g in groups):
+        raise _Ambiguous("its param_groups are malformed")
+    ids: list[int] = []
+    for group in groups:
+        params = group.get("params")
+        if not isinstance(params, list) or not all(
+            isinstance(p, int) and not isinstance(p, bool) for p in params
+        ):
+            raise _Ambiguous("a param group does not list integer parameter ids")
+        ids.extend(params)
+    if len(set(ids)) != len(ids):
+        raise _Ambiguous("a parameter id appears twice")
+    names = _names_for(ids, groups, found)
+    model = found.tensors
+
+    kind_slots: set[str] = set()
+    for entry in state.values():
+        if isinstance(entry, Mapping):
+            kind_slots.update(k for k in entry if isinstance(k, str))
+    decoupled_flag = _group_value(groups, "decoupled_weight_decay", notes)
+    decoupled: bool | None = decoupled_flag if isinstance(decoupled_flag, bool) else None
+    if {"exp_avg", "exp_avg_sq"} <= kind_slots:
+        kind = "adamw" if decoupled else "adam"
+        first, second = "exp_avg", "exp_avg_sq"
+        if decoupled is None:
+            notes.append(
+                "the optimizer state does not say whether its weight decay was "
+                "decoupled (AdamW) or added to the gradient (Adam)"
+            )
+    elif "square_avg" in kind_slots:
+        kind, first, second = "rmsprop", "grad_avg", "square_avg"
+        decoupled = False
+    elif "momentum_buffer" in kind_slots or (not kind_slots and "momentum" in groups[0]):
+        kind, first, second = "sgd", "momentum_buffer", ""
+        decoupled = False
+    else:
+        kind, first, second = "unknown", "", ""
+
+    slots: dict[str, OptimizerSlots] = {}
+    steps: list[float] = []
+    for pid, entry in state.items():
+        name = _state_name(pid, ids, names, model)
+        if not isinstance(entry, Mapping):
+            raise _Ambiguous(f"the state of parameter {_brief(pid)} is not a dict")
+        moments: list[Tensor | None] = []
+        for slot in (first, second):
+            ref = entry.get(slot) if slot else None
+            if ref is None:
+                moments.append(None)
+                continue
+            if not isinstance(ref, TensorRef) or ref.size != model[name].size:
+                raise _Ambiguous(
+                    f"the {slot} of parameter {_brief(pid)} does not have the "
+                    f"shape of {name!r} {list(model[name].size)}"
+                )
+            moments.append(
+                _make_tensor(ref, f"{key}.state.{pid}.{slot}", TensorRole.OPTIMIZER, source, order)
+            )
+        for slot in ("exp_avg", "exp_avg_sq", "momentum_buffer", "square_avg"):
+            other = entry.get(slot)
+            if isinstance(other, TensorRef) and other.size != model[name].size:
+                raise _Ambiguous(
+                    f"the {slot} of parameter {_brief(pid)} does not have the shape of {name!r}"
+                )
+        step = _step_value(entry.get("step"), f"{key}.state.{pid}.step", source, order)
+        if step is not None:
+            steps.append(step)
+        slots[name] = OptimizerSlots(first_moment=moments[0], second_moment=moments[1])
+
+    betas = _group_value(groups, "betas", notes)
+    beta1 = beta2 = None
+    if isinstance(betas, (tuple, list)) and len(betas) == 2:
+        beta1, beta2 = _number(betas[0]), _number(betas[1])
+    elif kind == "rmsprop":
+        beta2 = _number(_group_value(groups, "alpha", notes))
+    if kind == "sgd":
+        beta1 = _number(_group_value(groups, "momentum", notes))
+    where = (
+        key
+        if found.where is None or "." not in found.where
+        else (f"{found.where.rsplit('.', 1)[0]}.{key}")
+    )
+    return OptimizerState(
+        kind=kind,
+        slots=slots,
+        step=int(max(steps)) if steps else None,
+        beta1=beta1,
+        beta2=beta2,
+        eps=_number(_group_value(groups, "eps", notes)),
+        weight_decay=_number(_group_value(groups, "weight_decay", notes)),
+        decoupled=decoupled,
+        source=f"{where} in {path.name}",
+    )
+
+
+def _names_for(ids: list[int], groups: list[Mapping[str, Any]], found: _Found) -> list[str]:
+    """Model tensor name of each parameter id, in id order, or raise _Ambiguous."""
+    model = found.tensors
+    if all("param_names" in g for g in groups):
+        names: list[str] = []
+        for group in groups:
+            listed = group["param_names"]
+            if (
+                not isinstance(listed, list)
+                or len(listed) != len(group["params"])
+                or not all(isinstance(n, str) for n in listed)
+            ):
+                raise _Ambiguous("param_names does not match params")
+            names.extend(_strip(n, found.stripped) for n in listed)
+        unknown = [n for n in names if n not in model]
+        if unknown:
+            raise _Ambiguous(f"param_names lists {unknown[0]!r}, which the state dict lacks")
+        return names
+    trainable: list[str] = []
+    seen: set[tuple[str, int, tuple[int, ...], tuple[int, ...]]] = set()
+    for name, ref in model.items():
+        leaf = name.rsplit(".", 1)[-1]
+        if leaf in _BUFFER_LEAVES or ref.dtype is None or not is_float_name(ref.dtype):
+            continue
+        if ref.identity in seen:
+            continue  # a tied copy: named_parameters() lists it once
+        seen.add(ref.identity)
+        trainable.append(name)
+    if len(trainable) != len(ids):
+        raise _Ambiguous(
+            f"it lists {len(ids)} parameters but the state dict has "
+            f"{len(trainable)} trainable tensors"
+        )
+    return trainable
+
+
+def _state_name(
+    pid: object, ids: list[int], names: list[str], model: Mapping[str, TensorRef]
+) -> str:
+    if isinstance(pid, int) and not isinstance(pid, bool) and pid in ids:
+        return names[ids.index(pid)]
+    raise _Ambiguous(f"it holds state for parameter {_brief(pid)}, which no param group lists")
+
+
+def _step_value(value: object, name: str, source: _Source, order: str) -> float | None:
+    if isinstance(value, TensorRef):
+        if value.size != () or value.dtype is None:
+            return None
+        array = _make_tensor(value, name, TensorRole.OPTIMIZER, source, order).read()
+        number = float(np.asarray(array, dtype=np.float64).reshape(()))
+        return number if math.isfinite(number) and number >= 0 else None
+    scalar = _number(value)
+    return scalar if scalar is not None and math.isfinite(scalar) and scalar >= 0 else None
+
+
+# --------------------------------------------------------------------------- TorchScript
+
+_CLASS_LINE = re.compile(r"^class\s+([A-Za-z_]\w*)\s*\(")
+_LIST_LINE = re.compile(r"^\s+(__parameters__|__buffers__)\s*=\s*\[(.*)\]\s*$")
+_MAX_CODE_BYTES = 10_000_000
+
+
+def _script_code(
+    archive: zipfile.ZipFile, members: Mapping[str, zipfile.ZipInfo], prefix: str, path: Path
+) -> dict[str, set[str]]:
+    """Class qualname → its declared parameter names, read from code/*.py as text (never run)."""
+    declared: dict[str, set[str]] = {}
+    budget = _MAX_CODE_BYTES
+    folder = f"{prefix}code/"
+    for name, info in members.items():
+        if not name.startswith(folder) or not name.endswith(".py"):
+            continue
+        if info.file_size > budget:
+            break
+        budget -= info.file_size
+        text = read_zip_member(archive, info, path, limit=info.file_size).decode("utf-8", "replace")
+        module = name[len(folder) : -3].replace("/", ".")
+        current: str | None = None
+        for line in text.splitlines():
+            match = _CLASS_LINE.match(line)
+            if match:
+                current = f"{module}.{match.group(1)}"
+                declared.setdefault(current, set())
+                continue
+            listed = _LIST_LINE.match(line)
+            if current is not None and listed and listed.group(1) == "__parameters__":
+                declared[current].update(re.findall(r'"([^"]+)"', listed.group(2)))
+    return declared
+
+
+def _script_checkpoint(
+    path: Path,
+    root: object,
+    constants: object,
+    storages: tuple[_Storages, _Storages],
+    order: str,
+    declared: Mapping[str, set[str]],
+) -> Checkpoint:
+    named, unread, lists, missing = _walk_script(root, declared)
+    tensors = {
+        name: _make_tensor(ref, name, None, storages[0].source, order)
+        for name, ref in named.items()
+    }
+    notes = ["TorchScript archive: tensors named from its module tree (its code was not run)"]
+    if isinstance(constants, tuple):
+        count = 0
+        for index, value in enumerate(constants):
+            if isinstance(value, TensorRef):
+                name = f"CONSTANTS.c{index}"
+                tensors[name] = _make_tensor(value, name, None, storages[1].source, order)
+                count += 1
+        if count:
+            notes.append(
+                f"{count} tensors from constants.pkl are named CONSTANTS.c<i> "
+                "(as the archive's code refers to them)"
+            )
+    if lists:
+        notes.append(f"{lists} tensors held only in lists were named <attribute>.<index>")
+    if unread:
+        notes.append(
+            f"{unread} objects of custom TorchScript classes (e.g. packed weights) "
+            "could not be read"
+        )
+    if missing:
+        notes.append(
+            f"{len(missing)} declared parameters were not found in the module tree "
+            f"(e.g. {missing[0]!r})"
+        )
+    if not tensors:
+        raise LoadError(path, "is a TorchScript archive with no tensors steelyard can find")
+    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
+    return Checkpoint(
+        path=str(path),
+        format=Format.PYTORCH,
+        tensors=tensors,
+        layers=layers,
+        file_size=file_size(path),
+        files=(str(path),),
+        notes=(*notes, *layer_notes),
+    )
+
+
+def _walk_script(
+    root: object, declared: Mapping[str, set[str]]
+) -> tuple[dict[str, TensorRef], int, int, list[str]]:
+    named: dict[str, TensorRef] = {}
+    seen: set[tuple[str, int, tuple[int, ...], tuple[int, ...]]] = set()
+    unread = lists = 0
+    missing: list[str] = []
+    visited: set[int] = set()
+
+    def objects() -> Iterator[tuple[str, ScriptObject, int]]:
+        stack: list[tuple[str, object, int]] = [("", root, 0)]
+        while stack:
+            prefix, obj, depth = stack.pop()
+            if isinstance(obj, ScriptObject) and id(obj) not in visited and depth <= 100:
+                visited.add(id(obj))
+                yield prefix, obj, depth
+                if isinstance(obj.state, dict):
+                    children = [
+                        (f"{prefix}{k}.", v, depth + 1)
+                        for k, v in obj.state.items()
+                        if isinstance(k, str) and isinstance(v, ScriptObject)
+                    ]
+                    stack.extend(reversed(children))
+
+    found = list(objects())
+    for prefix, obj, _depth in found:
+        if not isinstance(obj.state, dict):
+            unread += 1
+            continue
+        for key, value in obj.state.items():
+            if isinstance(key, str) and isinstance(value, TensorRef):
+                named[f"{prefix}{key}"] = value
+                seen.add(value.identity)
+    # Lists (an LSTM's _flat_weights) mostly repeat named tensors: keep only the new ones.
+    for prefix, obj, _depth in found:
+        if not isinstance(obj.state, dict):
+            continue
+        for key, value in obj.state.items():
+            if not isinstance(key, str) or not isinstance(value, list):
+                continue
+            for index, item in enumerate(value):
+                if isinstance(item, TensorRef) and item.identity not in seen:
+                    named[f"{prefix}{key}.{index}"] = item
+                    seen.add(item.identity)
+                    lists += 1
+        for parameter in sorted(declared.get(obj.qualname, ())):
+            if f"{prefix}{parameter}" not in named and obj.state.get(parameter) is not None:
+                missing.append(f"{prefix}{parameter}")
+    return named, unread, lists, missing

@@ -11,7 +11,7 @@ import datetime as _dt
 import os
 import struct
 import zipfile
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from steelyard import __version__
@@ -20,6 +20,7 @@ from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import load as _load
+from steelyard.loaders import resolve
 from steelyard.policy import Policy
 from steelyard.report import CheckpointAudit, Report
 
@@ -67,22 +68,63 @@ def audit_one(
         raise LoadError(checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})") from exc
 
 
+#: File endings a folder is searched for when it is not itself one checkpoint.
+CHECKPOINT_SUFFIXES = (
+    ".safetensors", ".onnx", ".keras", ".h5", ".hdf5", ".npz", ".pt", ".pth", ".bin", ".ckpt",
+)
+
+
+def expand_paths(paths: Sequence[str | Path]) -> list[Path]:
+    """Files to audit: a folder that is one checkpoint (a shard set) stays one; any other
+    folder stands for the checkpoints inside it (recursively, sorted)."""
+    out: list[Path] = []
+    for raw in paths:
+        path = Path(raw)
+        if not path.is_dir():
+            out.append(path)
+            continue
+        try:
+            out.append(resolve(path))
+            continue
+        except LoadError:
+            pass
+        indexes = sorted(path.rglob("*.safetensors.index.json"))
+        sharded = {p.parent for p in indexes}
+        found = [*indexes]
+        for candidate in sorted(path.rglob("*")):
+            if candidate.is_symlink() or not candidate.is_file():
+                continue
+            if candidate.suffix in CHECKPOINT_SUFFIXES and not (
+                candidate.suffix == ".safetensors" and candidate.parent in sharded
+            ):
+                found.append(candidate)
+        if not found:
+            raise LoadError(path, "is a folder holding no checkpoint files")
+        out.extend(sorted(found))
+    return out
+
+
 def audit_many(
     paths: Sequence[str | Path],
     policy: Policy | None = None,
     grads: str | Path | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     created: str | None = None,
+    on_checkpoint: Callable[[str], None] | None = None,
 ) -> Report:
     """Audit several checkpoints under one gate."""
     chosen = policy or Policy()
-    audits = tuple(audit_one(p, chosen, grads, grads_kind) for p in paths)
+    audits: list[CheckpointAudit] = []
+    for path in paths:
+        if on_checkpoint is not None:
+            on_checkpoint(str(path))
+        audits.append(audit_one(path, chosen, grads, grads_kind))
     return Report(
         tool_version=__version__,
         created=created or now(),
         fail_on=chosen.fail_on,
         policy_source=chosen.source,
-        audits=audits,
+        audits=tuple(audits),
     )
 
 

@@ -1,6 +1,7 @@
 """The command line: parses, calls :mod:`steelyard.api`, writes, and picks the exit code.
 
 Exit codes: 0 the gate passed, 1 findings at or above ``--fail-on``, 2 bad input or usage.
+Reports go to stdout or ``--output``; progress and diagnostics go to stderr.
 """
 
 from __future__ import annotations
@@ -13,15 +14,13 @@ from enum import Enum
 from pathlib import Path
 from typing import NoReturn
 
-from typing_extensions import assert_never
-
 import typer
+from typing_extensions import assert_never
 
 from steelyard import __version__, api
 from steelyard.errors import SteelyardError
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
-from steelyard.policy import Policy
 from steelyard.render.layers_table import render_layers
 from steelyard.report import Report
 
@@ -32,6 +31,8 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
+_STATE = {"debug": False}
+
 
 class LayersFormat(str, Enum):
     """Output formats of ``steelyard layers``."""
@@ -40,65 +41,14 @@ class LayersFormat(str, Enum):
     json = "json"
 
 
-def _color() -> bool:
-    return sys.stdout.isatty() and "NO_COLOR" not in os.environ
-
-
-def _width() -> int:
-    try:
-        return max(80, os.get_terminal_size(sys.stdout.fileno()).columns)
-    except OSError:
-        return 120
-
-
-def _fail(error: SteelyardError) -> NoReturn:
-    typer.echo(f"steelyard: error: {error}", err=True)
-    raise typer.Exit(2)
-
-
-_DEBUG = {"on": False}
-
-
-def _version(value: bool) -> None:
-    if value:
-        typer.echo(f"steelyard {__version__}")
-        raise typer.Exit(0)
-
-
-@app.callback()
-def _root(
-    debug: bool = typer.Option(False, "--debug", help="Show tracebacks instead of one-line errors."),
-    version: bool = typer.Option(
-        False, "--version", callback=_version, is_eager=True, help="Print the version and exit."
-    ),
-) -> None:
-    _DEBUG["on"] = debug
-
-
-@app.command()
-def layers(
-    path: Path = typer.Argument(..., help="Checkpoint file, shard index, or folder."),
-    format: LayersFormat = typer.Option(LayersFormat.table, "--format", "-f", help="Output format."),
-) -> None:
-    """Show the layer graph steelyard reads from a checkpoint."""
-    try:
-        checkpoint = api.load(path)
-        if format is LayersFormat.json:
-            text = json.dumps(layers_document(checkpoint), indent=2) + "\n"
-        else:
-            text = render_layers(checkpoint, color=_color(), width=_width())
-    except SteelyardError as error:
-        if _DEBUG["on"]:
-            raise
-        _fail(error)
-    sys.stdout.write(text)
-
-
 class AuditFormat(str, Enum):
     """Output formats of ``steelyard audit``."""
 
     table = "table"
     json = "json"
+    markdown = "markdown"
+    sarif = "sarif"
+    junit = "junit"
 
 
 class FailOn(str, Enum):
@@ -110,17 +60,41 @@ class FailOn(str, Enum):
     never = "never"
 
 
-def _render(report: Report, chosen: AuditFormat) -> str:
-    from steelyard.render.table_report import render_table
+def _color(stream: object = None) -> bool:
+    target = stream or sys.stdout
+    return bool(getattr(target, "isatty", lambda: False)()) and "NO_COLOR" not in os.environ
 
-    if chosen is AuditFormat.json:
-        return report.to_json()
-    if chosen is AuditFormat.table:
-        return render_table(report, color=_color(), width=_width())
-    assert_never(chosen)
+
+def _width() -> int:
+    try:
+        return max(80, os.get_terminal_size(sys.stdout.fileno()).columns)
+    except (OSError, ValueError):
+        return 120
+
+
+def _fail(error: SteelyardError) -> NoReturn:
+    if _STATE["debug"]:
+        raise error
+    typer.echo(f"steelyard: error: {error}", err=True)
+    raise typer.Exit(2)
+
+
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"steelyard {__version__}")
+        raise typer.Exit(0)
+
+
+@app.callback()
+def _root(
+    debug: bool = typer.Option(False, "--debug", help="Show tracebacks instead of one-line errors."),
+    version: bool = typer.Option(False, "--version", callback=_version, is_eager=True, help="Print the version and exit."),
+) -> None:
+    _STATE["debug"] = debug
 
 
 def _write(text: str, output: Path | None) -> None:
+    """Write to stdout, or atomically to ``output`` (a reader never sees half a report)."""
     if output is None:
         sys.stdout.write(text)
         return
@@ -134,28 +108,85 @@ def _write(text: str, output: Path | None) -> None:
 
 
 @app.command()
+def layers(
+    path: Path = typer.Argument(..., help="Checkpoint file, shard index, or folder."),
+    format: LayersFormat = typer.Option(LayersFormat.table, "--format", "-f", help="Output format."),
+) -> None:
+    """Show the layer graph steelyard reads from a checkpoint."""
+    try:
+        checkpoint = api.load(path)
+        if format is LayersFormat.json:
+            text = json.dumps(layers_document(checkpoint), indent=2) + "\n"
+        elif format is LayersFormat.table:
+            text = render_layers(checkpoint, color=_color(), width=_width())
+        else:
+            assert_never(format)
+    except SteelyardError as error:
+        _fail(error)
+    sys.stdout.write(text)
+
+
+def _render(report: Report, chosen: AuditFormat) -> str:
+    from steelyard.render.junit import render_junit
+    from steelyard.render.markdown import render_markdown
+    from steelyard.render.sarif import render_sarif
+    from steelyard.render.table_report import render_table
+
+    if chosen is AuditFormat.json:
+        return report.to_json()
+    if chosen is AuditFormat.table:
+        return render_table(report, color=_color(), width=_width())
+    if chosen is AuditFormat.markdown:
+        return render_markdown(report)
+    if chosen is AuditFormat.sarif:
+        return render_sarif(report)
+    if chosen is AuditFormat.junit:
+        return render_junit(report)
+    assert_never(chosen)
+
+
+@app.command()
 def audit(
     paths: list[Path] = typer.Argument(..., help="Checkpoint files, shard indexes, or folders."),
-    grads: Path | None = typer.Option(None, "--grads", help="Sidecar file of per-weight gradient statistics."),
+    grads: Path | None = typer.Option(None, "--grads", help="Sidecar file of per-weight gradient statistics (same tensor names)."),
     grads_kind: GradsKind = typer.Option(GradsKind.RMS, "--grads-kind", help="What the sidecar holds."),
-    format: AuditFormat = typer.Option(AuditFormat.table, "--format", "-f", help="Output format."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report here (atomically)."),
-    fail_on: FailOn = typer.Option(FailOn.error, "--fail-on", help="Lowest severity that fails the gate."),
+    format: AuditFormat | None = typer.Option(None, "--format", "-f", help="Output format [default: table]."),
+    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report here, atomically."),
+    fail_on: FailOn | None = typer.Option(None, "--fail-on", help="Lowest severity that fails the gate [default: the policy's, else error]."),
+    policy_file: Path | None = typer.Option(None, "--policy", help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards]."),
+    baseline: Path | None = typer.Option(None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."),
+    write_baseline: Path | None = typer.Option(None, "--write-baseline", help="Record the current findings as a baseline file."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress or diagnostics on stderr."),
 ) -> None:
-    """Audit checkpoints' weight health; exit 1 when a finding reaches --fail-on."""
+    """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
+    from dataclasses import replace
+
+    from steelyard.baseline import apply_baseline, baseline_text, read_baseline
+    from steelyard.policy_file import load_policy
+    from steelyard.progress import Progress
+
     try:
-        policy = Policy(fail_on=fail_on.value)
-        report = api.audit_many(paths, policy=policy, grads=grads, grads_kind=grads_kind)
-        _write(_render(report, format), output)
+        policy = load_policy(policy_file)
+        if fail_on is not None:
+            policy = replace(policy, fail_on=fail_on.value)
+        accepted = read_baseline(baseline) if baseline is not None else None
+        targets = api.expand_paths(paths)
+        with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(targets)) as progress:
+            report = api.audit_many(targets, policy=policy, grads=grads, grads_kind=grads_kind, on_checkpoint=progress.advance)
+        if accepted is not None:
+            report = apply_baseline(report, accepted)
+        if write_baseline is not None:
+            _write(baseline_text(report.audits, __version__), write_baseline)
+        _write(_render(report, format or AuditFormat.table), output)
+        if not quiet and output is not None:
+            typer.echo(f"steelyard: wrote {output}", err=True)
     except SteelyardError as error:
-        if _DEBUG["on"]:
-            raise
         _fail(error)
     raise typer.Exit(0 if report.passed else 1)
 
 
 @app.command()
-def rules(name: str | None = typer.Argument(None, help="A rule's name to explain in full.")) -> None:
+def rules(name: str | None = typer.Argument(None, help="A rule's name, to explain it in full.")) -> None:
     """List every rule, or explain one with its math."""
     from steelyard.render.rules_text import render_rule, render_rules
     from steelyard.rules import registry
@@ -170,6 +201,31 @@ def rules(name: str | None = typer.Argument(None, help="A rule's name to explain
         typer.echo(f"steelyard: error: no rule named {name!r}{hint}", err=True)
         raise typer.Exit(2)
     sys.stdout.write(render_rule(specs[name]))
+
+
+@app.command()
+def policy(
+    init: bool = typer.Option(False, "--init", help="Write a commented starter steelyard.toml with every default."),
+    show: bool = typer.Option(False, "--show", help="Print the effective policy."),
+    policy_file: Path | None = typer.Option(None, "--policy", help="Policy file to show instead of the discovered one."),
+    force: bool = typer.Option(False, "--force", help="With --init, overwrite an existing file."),
+) -> None:
+    """Write a starter policy, or show the one in force."""
+    from steelyard.policy_file import POLICY_FILE, load_policy, policy_text, starter_text
+
+    try:
+        if init == show:
+            raise SteelyardError("say --init or --show")
+        if init:
+            target = Path(POLICY_FILE)
+            if target.exists() and not force:
+                raise SteelyardError(f"{target}: already exists (use --force to overwrite)")
+            _write(starter_text(), target)
+            typer.echo(f"steelyard: wrote {target}", err=True)
+            return
+        sys.stdout.write(policy_text(load_policy(policy_file)))
+    except SteelyardError as error:
+        _fail(error)
 
 
 def main() -> None:

@@ -1,0 +1,286 @@
+"""Reading and validating policy files (``steelyard.toml`` or ``[tool.steelyard]``).
+
+Every mistake is a :class:`~steelyard.errors.PolicyError` naming the key and the file, with a
+"did you mean" suggestion for near misses, because a policy typo that silently does nothing
+is worse than no policy.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import sys
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+from steelyard.errors import PolicyError
+from steelyard.findings import Severity
+from steelyard.policy import Ignore, LayerOverride, Policy
+from steelyard.rules import registry
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on 3.10 only
+    import tomli as tomllib
+
+POLICY_FILE = "steelyard.toml"
+_TOP_KEYS = ("fail-on", "input-range", "weight-decay", "frozen", "rules", "override", "ignore")
+_FAIL_ON = ("error", "warning", "info", "never")
+_SEVERITIES = tuple(s.value for s in Severity)
+#: Thresholds that are fractions or cosines (must lie in [0, 1]).
+_UNIT_INTERVAL = ("cosine", "quantile", "share", "support-quantile", "weight-quantile", "error-share")
+
+
+def _suggest(word: str, choices: list[str] | tuple[str, ...]) -> str:
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f" (did you mean {close[0]!r}?)" if close else ""
+
+
+def _fail(source: str, key: str, problem: str) -> PolicyError:
+    return PolicyError(f"{source}: policy key {key!r} {problem}")
+
+
+def discover(start: Path | None = None) -> tuple[Path, str] | None:
+    """The nearest ``steelyard.toml``, else ``pyproject.toml`` with ``[tool.steelyard]``,
+    walking up from ``start``; returns the file and ``file`` or ``pyproject``."""
+    folder = (start or Path.cwd()).resolve()
+    for candidate in (folder, *folder.parents):
+        own = candidate / POLICY_FILE
+        if own.is_file():
+            return own, "file"
+        project = candidate / "pyproject.toml"
+        if project.is_file():
+            try:
+                data = tomllib.loads(project.read_text(encoding="utf-8"))
+            except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError):
+                continue
+            if isinstance(data.get("tool"), dict) and "steelyard" in data["tool"]:
+                return project, "pyproject"
+    return None
+
+
+def load_policy(path: Path | None = None, start: Path | None = None) -> Policy:
+    """The policy from ``path``, or discovered from ``start``; built-in defaults when none."""
+    if path is not None:
+        if not path.is_file():
+            raise PolicyError(f"{path}: policy file does not exist")
+        found: tuple[Path, str] | None = (path, "pyproject" if path.name == "pyproject.toml" else "file")
+    else:
+        found = discover(start)
+    if found is None:
+        return Policy()
+    file, kind = found
+    try:
+        data = tomllib.loads(file.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise PolicyError(f"{file}: is not valid TOML ({exc})") from None
+    if kind == "pyproject":
+        data = data.get("tool", {}).get("steelyard", {})
+        source = f"{file} [tool.steelyard]"
+    else:
+        source = str(file)
+    if not isinstance(data, dict):
+        raise PolicyError(f"{source}: the policy must be a table")
+    return parse_policy(data, source)
+
+
+def _number(source: str, key: str, value: Any, *, allow_none: bool = False) -> float | None:
+    if value is None and allow_none:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise _fail(source, key, f"must be a number, not {type(value).__name__}")
+    if not math.isfinite(value):
+        raise _fail(source, key, "must be finite")
+    return float(value)
+
+
+def _rule_settings(source: str, where: str, rule: str, table: Any) -> dict[str, Any]:
+    specs = registry()
+    if rule not in specs:
+        raise _fail(source, where, f"names no rule{_suggest(rule, tuple(specs))}")
+    if not isinstance(table, dict):
+        raise _fail(source, where, "must be a table")
+    spec = specs[rule]
+    allowed = ("enabled", "severity", *spec.thresholds)
+    out: dict[str, Any] = {}
+    for key, value in table.items():
+        full = f"{where}.{key}"
+        if key not in allowed:
+            raise _fail(source, full, f"is not a setting of {rule}{_suggest(key, allowed)}")
+        if key == "enabled":
+            if not isinstance(value, bool):
+                raise _fail(source, full, "must be true or false")
+        elif key == "severity":
+            if value not in _SEVERITIES:
+                raise _fail(source, full, f"must be one of {', '.join(_SEVERITIES)}")
+        else:
+            default = spec.thresholds[key]
+            if isinstance(default, bool):
+                if not isinstance(value, bool):
+                    raise _fail(source, full, "must be true or false")
+            elif default is None or isinstance(default, (int, float)):
+                number = _number(source, full, value)
+                assert number is not None
+                if number < 0:
+                    raise _fail(source, full, f"must be >= 0, not {value}")
+                if any(key.endswith(k) for k in _UNIT_INTERVAL) and number > 1:
+                    raise _fail(source, full, f"must lie in [0, 1], not {value}")
+                value = int(value) if isinstance(default, int) and not isinstance(default, bool) and float(value).is_integer() else value
+            elif isinstance(default, str) and not isinstance(value, str):
+                raise _fail(source, full, "must be a string")
+        out[key] = value
+    return out
+
+
+def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
+    """Validate a parsed policy table."""
+    for key in data:
+        if key not in _TOP_KEYS:
+            raise _fail(source, key, f"is unknown{_suggest(key, _TOP_KEYS)}")
+    fail_on = data.get("fail-on", "error")
+    if fail_on not in _FAIL_ON:
+        raise _fail(source, "fail-on", f"must be one of {', '.join(_FAIL_ON)}{_suggest(str(fail_on), _FAIL_ON)}")
+    input_range = None
+    if "input-range" in data:
+        value = data["input-range"]
+        if not isinstance(value, list) or len(value) != 2:
+            raise _fail(source, "input-range", "must be a pair [low, high]")
+        low, high = (_number(source, "input-range", v) for v in value)
+        assert low is not None and high is not None
+        if low > high:
+            raise _fail(source, "input-range", f"has low {low} above high {high}")
+        input_range = (low, high)
+    weight_decay = None
+    if "weight-decay" in data:
+        weight_decay = _number(source, "weight-decay", data["weight-decay"])
+        if weight_decay is not None and weight_decay < 0:
+            raise _fail(source, "weight-decay", "must be >= 0")
+    frozen = data.get("frozen", [])
+    if not isinstance(frozen, list) or not all(isinstance(g, str) for g in frozen):
+        raise _fail(source, "frozen", "must be a list of layer-name globs")
+    rules_table = data.get("rules", {})
+    if not isinstance(rules_table, dict):
+        raise _fail(source, "rules", "must be a table of rule tables")
+    rules = {name: _rule_settings(source, f"rules.{name}", name, table) for name, table in rules_table.items()}
+    overrides: list[LayerOverride] = []
+    for index, entry in enumerate(_table_list(source, "override", data.get("override", []))):
+        where = f"override[{index}]"
+        glob = entry.get("layers")
+        if not isinstance(glob, str) or not glob:
+            raise _fail(source, f"{where}.layers", "is required: a glob over layer names")
+        settings = {
+            rule: _rule_settings(source, f"{where}.{rule}", rule, table)
+            for rule, table in entry.items()
+            if rule != "layers"
+        }
+        overrides.append(LayerOverride(layers=glob, rules=settings))
+    ignores: list[Ignore] = []
+    specs = registry()
+    for index, entry in enumerate(_table_list(source, "ignore", data.get("ignore", []))):
+        where = f"ignore[{index}]"
+        for key in entry:
+            if key not in ("rule", "layers", "reason"):
+                raise _fail(source, f"{where}.{key}", f"is unknown{_suggest(key, ('rule', 'layers', 'reason'))}")
+        rule = entry.get("rule")
+        if rule not in specs:
+            raise _fail(source, f"{where}.rule", f"names no rule{_suggest(str(rule), tuple(specs))}")
+        reason = entry.get("reason")
+        if not isinstance(reason, str) or not reason.strip():
+            raise _fail(source, f"{where}.reason", "is required: say why the finding is accepted")
+        layers = entry.get("layers", "*")
+        if not isinstance(layers, str):
+            raise _fail(source, f"{where}.layers", "must be a glob string")
+        ignores.append(Ignore(rule=str(rule), layers=layers, reason=reason))
+    return Policy(
+        fail_on=str(fail_on),
+        rules=rules,
+        overrides=tuple(overrides),
+        ignore=tuple(ignores),
+        input_range=input_range,
+        weight_decay=weight_decay,
+        frozen=tuple(frozen),
+        source=source,
+    )
+
+
+def _table_list(source: str, key: str, value: Any) -> list[dict[str, Any]]:
+    if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+        raise _fail(source, key, f"must be an array of tables ([[{key}]])")
+    return value
+
+
+def starter_text() -> str:
+    """A commented ``steelyard.toml`` holding every default."""
+    lines = [
+        "# steelyard policy: thresholds that gate the weight audit in CI.",
+        "# Every value below is the built-in default; delete what you do not change.",
+        "",
+        '# Lowest severity that fails the gate: "error", "warning", "info" or "never".',
+        'fail-on = "error"',
+        "",
+        "# Range of every model input, for interval bound propagation in dead-unit.",
+        "# input-range = [0.0, 1.0]",
+        "",
+        "# L2 coefficient in the PyTorch convention (wd·w added to the gradient).",
+        "# weight-decay = 1e-4",
+        "",
+        "# Layers that must not change between two checkpoints (steelyard compare).",
+        '# frozen = ["encoder.*"]',
+        "",
+    ]
+    for spec in registry().values():
+        lines.append(f"# {spec.name}: {spec.summary}")
+        lines.append(f"[rules.{spec.name}]")
+        lines.append("enabled = true")
+        lines.append(f'# severity = "{spec.severity.value}"')
+        for key, value in spec.thresholds.items():
+            if value is None:
+                lines.append(f"# {key} = <unset>")
+            elif isinstance(value, bool):
+                lines.append(f"{key} = {'true' if value else 'false'}")
+            elif isinstance(value, str):
+                lines.append(f'{key} = "{value}"')
+            else:
+                lines.append(f"{key} = {value!r}")
+        lines.append("")
+    lines += [
+        "# Per-layer settings, applied in order after the rule tables:",
+        "# [[override]]",
+        '# layers = "classifier*"',
+        "# fan-in-norm = { ratio = 4.0 }",
+        "",
+        "# Accepted findings; a reason is required:",
+        "# [[ignore]]",
+        '# rule = "twin-units"',
+        '# layers = "embed*"',
+        '# reason = "tied embeddings duplicate rows by design"',
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def policy_text(policy: Policy) -> str:
+    """The effective policy as TOML-like text for ``steelyard policy --show``."""
+    lines = [f"# effective policy from {policy.source}", f'fail-on = "{policy.fail_on}"']
+    if policy.input_range is not None:
+        lines.append(f"input-range = [{policy.input_range[0]!r}, {policy.input_range[1]!r}]")
+    if policy.weight_decay is not None:
+        lines.append(f"weight-decay = {policy.weight_decay!r}")
+    if policy.frozen:
+        lines.append("frozen = [" + ", ".join(f'"{g}"' for g in policy.frozen) + "]")
+    for spec in registry().values():
+        merged = policy.settings(spec.name, {"enabled": True, **spec.thresholds}, None)
+        lines.append("")
+        lines.append(f"[rules.{spec.name}]")
+        for key, value in merged.items():
+            rendered = "<unset>" if value is None else ("true" if value is True else "false" if value is False else repr(value))
+            lines.append(f"{key} = {rendered}")
+    for override in policy.overrides:
+        lines += ["", "[[override]]", f'layers = "{override.layers}"']
+        for rule, settings in override.rules.items():
+            inner = ", ".join(f"{k} = {v!r}" for k, v in settings.items())
+            lines.append(f"{rule} = {{ {inner} }}")
+    for entry in policy.ignore:
+        lines += ["", "[[ignore]]", f'rule = "{entry.rule}"', f'layers = "{entry.layers}"', f'reason = "{entry.reason}"']
+    return "\n".join(lines) + "\n"

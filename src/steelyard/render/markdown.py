@@ -1,0 +1,68 @@
+"""Markdown for a pull-request comment: verdict, counts, top findings, the rest collapsed."""
+
+from __future__ import annotations
+
+from steelyard.findings import Finding, compact_units
+from steelyard.report import CAUTION, CheckpointAudit, Report
+
+#: Findings shown in the main table; the rest go in a collapsible block.
+TOP = 10
+
+
+def _cell(text: str) -> str:
+    return text.replace("|", "\\|").replace("\n", " ")
+
+
+def _rows(findings: tuple[Finding, ...] | list[Finding]) -> list[str]:
+    lines = ["| severity | rule | layer | units | finding |", "| --- | --- | --- | --- | --- |"]
+    for finding in findings:
+        lines.append(
+            f"| {finding.severity.value} | `{finding.rule}` | `{_cell(finding.layer or '—')}` | "
+            f"{_cell(compact_units(finding.units, limit=6))} | {_cell(finding.message)} |"
+        )
+    return lines
+
+
+def _audit(report: Report, audit: CheckpointAudit) -> list[str]:
+    counts = audit.counts()
+    failing = audit.failing(report.gate)
+    verdict = "⚪ report only" if report.gate is None else ("❌ **fail**" if failing else "✅ **pass**")
+    block = audit.checkpoint
+    lines = [
+        f"### `{block['path']}`: {verdict}",
+        "",
+        f"{block['format']}, {int(block['parameters']):,} parameters, {len(audit.layers)} layers; "
+        f"gradient support: {audit.gradient_source or 'none'}.",
+        "",
+        f"**{counts['error']}** errors, **{counts['warning']}** warnings, **{counts['info']}** info "
+        f"(gate: `--fail-on {report.fail_on}`).",
+        "",
+    ]
+    if audit.baselined:
+        lines += [f"{len(audit.baselined)} findings matched the baseline.", ""]
+    if audit.findings:
+        lines += _rows(audit.findings[:TOP])
+        rest = audit.findings[TOP:]
+        if rest:
+            lines += ["", f"<details><summary>{len(rest)} more findings</summary>", ""]
+            lines += _rows(rest)
+            lines += ["", "</details>"]
+    else:
+        lines.append("No findings.")
+    lines.append("")
+    return lines
+
+
+def render_markdown(report: Report) -> str:
+    """The comment body."""
+    overall = "✅ passed" if report.passed else "❌ failed"
+    if report.gate is None:
+        overall = "⚪ report only"
+    lines = [f"## steelyard weight audit: {overall}", ""]
+    for audit in report.audits:
+        lines += _audit(report, audit)
+    if report.baseline is not None:
+        fixed = report.baseline.get("fixed", [])
+        lines += [f"Baseline `{report.baseline['path']}`: {report.baseline['matched']} matched, {len(fixed)} fixed.", ""]
+    lines += [f"_{CAUTION}_", "", f"<sub>steelyard {report.tool_version}, policy: {report.policy_source}</sub>", ""]
+    return "\n".join(lines)

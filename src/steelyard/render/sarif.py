@@ -1,0 +1,121 @@
+"""SARIF 2.1.0 (OASIS standard), the format code-scanning services accept.
+
+One ``result`` per finding, the checkpoint file as the artifact location and the layer and
+tensor as logical locations; the ``rules`` table comes from the rule registry and docs.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from typing import Any
+
+from steelyard.findings import Finding, Severity
+from steelyard.render.json_report import _clean
+from steelyard.report import Report
+from steelyard.rules import registry
+
+SARIF_SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
+INFORMATION_URI = "https://steelyard.readthedocs.io/"
+
+
+def level(severity: Severity) -> str:
+    """SARIF ``level`` of a severity (SARIF 2.1.0 §3.27.10)."""
+    return {Severity.ERROR: "error", Severity.WARNING: "warning", Severity.INFO: "note"}[severity]
+
+
+def _uri(path: str) -> str:
+    try:
+        relative = os.path.relpath(path)
+    except ValueError:
+        relative = path
+    if relative.startswith(".."):
+        relative = os.path.abspath(path)
+    return relative.replace(os.sep, "/")
+
+
+def _rules_table() -> tuple[list[dict[str, Any]], dict[str, int]]:
+    rules: list[dict[str, Any]] = []
+    index: dict[str, int] = {}
+    for position, spec in enumerate(registry().values()):
+        index[spec.name] = position
+        rules.append(
+            {
+                "id": spec.name,
+                "name": "".join(part.capitalize() for part in spec.name.split("-")),
+                "shortDescription": {"text": spec.summary},
+                "fullDescription": {"text": spec.doc.strip().split("\n\n")[0]},
+                "help": {"text": spec.doc.strip(), "markdown": spec.doc.strip()},
+                "helpUri": spec.help_uri,
+                "defaultConfiguration": {"level": level(spec.severity)},
+                "properties": {"thresholds": dict(spec.thresholds)},
+            }
+        )
+    return rules, index
+
+
+def _result(finding: Finding, artifact: int, rule_index: dict[str, int], baselined: bool) -> dict[str, Any]:
+    logical = []
+    if finding.layer:
+        logical.append({"name": finding.layer, "kind": "module"})
+    if finding.tensor:
+        logical.append({"name": finding.tensor, "fullyQualifiedName": f"{finding.layer or ''}/{finding.tensor}", "kind": "variable"})
+    result: dict[str, Any] = {
+        "ruleId": finding.rule,
+        "level": level(finding.severity),
+        "message": {"text": f"{finding.message}. {finding.hint}."},
+        "locations": [
+            {
+                "physicalLocation": {"artifactLocation": {"uri": _uri(finding.checkpoint), "index": artifact}},
+                "logicalLocations": logical,
+            }
+        ],
+        "partialFingerprints": {"steelyardFindingId/v1": finding.id},
+        "rank": min(100.0, finding.score),
+        "properties": {"units": list(finding.units), "score": finding.score, "evidence": dict(finding.evidence)},
+    }
+    if finding.rule in rule_index:
+        result["ruleIndex"] = rule_index[finding.rule]
+    if baselined:
+        result["baselineState"] = "unchanged"
+    return result
+
+
+def render_sarif(report: Report) -> str:
+    """The SARIF log as text."""
+    rules, rule_index = _rules_table()
+    artifacts: list[dict[str, Any]] = []
+    results: list[dict[str, Any]] = []
+    for position, audit in enumerate(report.audits):
+        block = audit.checkpoint
+        artifacts.append(
+            {
+                "location": {"uri": _uri(str(block["path"]))},
+                "hashes": {"sha-256": str(block.get("sha256", ""))},
+                "properties": {"format": block["format"], "parameters": block["parameters"]},
+            }
+        )
+        results += [_result(f, position, rule_index, False) for f in audit.findings]
+        results += [_result(f, position, rule_index, True) for f in audit.baselined]
+    log = {
+        "$schema": SARIF_SCHEMA_URI,
+        "version": "2.1.0",
+        "runs": [
+            {
+                "tool": {
+                    "driver": {
+                        "name": "steelyard",
+                        "version": report.tool_version,
+                        "semanticVersion": report.tool_version,
+                        "informationUri": INFORMATION_URI,
+                        "rules": rules,
+                    }
+                },
+                "invocations": [{"executionSuccessful": True, "startTimeUtc": report.created}],
+                "artifacts": artifacts,
+                "results": results,
+                "properties": {"gate": {"fail_on": report.fail_on, "passed": report.passed}},
+            }
+        ],
+    }
+    return json.dumps(_clean(log), indent=2, ensure_ascii=False) + "\n"

@@ -65,12 +65,23 @@ def audit_one(
         return audit_checkpoint(checkpoint, policy, source)
     except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
         # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
-        raise LoadError(checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})") from exc
+        raise LoadError(
+            checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})"
+        ) from exc
 
 
 #: File endings a folder is searched for when it is not itself one checkpoint.
 CHECKPOINT_SUFFIXES = (
-    ".safetensors", ".onnx", ".keras", ".h5", ".hdf5", ".npz", ".pt", ".pth", ".bin", ".ckpt",
+    ".safetensors",
+    ".onnx",
+    ".keras",
+    ".h5",
+    ".hdf5",
+    ".npz",
+    ".pt",
+    ".pth",
+    ".bin",
+    ".ckpt",
 )
 
 

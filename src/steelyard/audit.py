@@ -77,7 +77,9 @@ def _health(layer: Layer, stats: LayerStats, findings: list[Finding], graded: bo
     share = None
     if graded:
         flagged = [f for f in mine if f.rule == "unsupported-weight" and "flagged" in f.evidence]
-        share = sum(int(f.evidence["flagged"]) for f in flagged) / max(1, layer.units * layer.fan_in)
+        share = sum(int(f.evidence["flagged"]) for f in flagged) / max(
+            1, layer.units * layer.fan_in
+        )
     return LayerHealth(
         layer=layer_block(layer),
         fan_in_norm=(low, mid, high),
@@ -99,7 +101,9 @@ def audit_checkpoint(
     ranked = rank(findings)
     block = dict(checkpoint_block(checkpoint))
     block["sha256"] = sha256_of(checkpoint.files or (checkpoint.path,))
-    health = tuple(_health(layer, stats, findings, gradients is not None) for layer in checkpoint.layers)
+    health = tuple(
+        _health(layer, stats, findings, gradients is not None) for layer in checkpoint.layers
+    )
     return CheckpointAudit(
         checkpoint=block,
         layers=health,

@@ -54,7 +54,11 @@ def _entries_of(document: Any, path: str) -> dict[str, dict[str, Any]]:
         raise BaselineError(f"{path}: baseline has no 'findings' list")
     entries: dict[str, dict[str, Any]] = {}
     for index, item in enumerate(findings):
-        if not isinstance(item, dict) or not isinstance(item.get("id"), str) or not isinstance(item.get("rule"), str):
+        if (
+            not isinstance(item, dict)
+            or not isinstance(item.get("id"), str)
+            or not isinstance(item.get("rule"), str)
+        ):
             raise BaselineError(f"{path}: finding {index} has no string 'id' and 'rule'")
         entries[item["id"]] = {k: item.get(k) for k in ("rule", "layer", "tensor", "units")}
     return entries
@@ -99,7 +103,16 @@ def baseline_text(audits: Sequence[CheckpointAudit], tool_version: str) -> str:
     for audit in audits:
         for finding in (*audit.findings, *audit.baselined):
             block = finding_block(finding)
-            findings.append({k: block[k] for k in ("id", "rule", "severity", "layer", "tensor", "units", "message")}
-                            | {"checkpoint": str(audit.checkpoint.get("path", ""))})
-    document = {"schema": BASELINE_SCHEMA, "tool": {"name": "steelyard", "version": tool_version}, "findings": findings}
+            findings.append(
+                {
+                    k: block[k]
+                    for k in ("id", "rule", "severity", "layer", "tensor", "units", "message")
+                }
+                | {"checkpoint": str(audit.checkpoint.get("path", ""))}
+            )
+    document = {
+        "schema": BASELINE_SCHEMA,
+        "tool": {"name": "steelyard", "version": tool_version},
+        "findings": findings,
+    }
     return json.dumps(document, indent=2, ensure_ascii=False) + "\n"

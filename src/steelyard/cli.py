@@ -87,8 +87,12 @@ def _version(value: bool) -> None:
 
 @app.callback()
 def _root(
-    debug: bool = typer.Option(False, "--debug", help="Show tracebacks instead of one-line errors."),
-    version: bool = typer.Option(False, "--version", callback=_version, is_eager=True, help="Print the version and exit."),
+    debug: bool = typer.Option(
+        False, "--debug", help="Show tracebacks instead of one-line errors."
+    ),
+    version: bool = typer.Option(
+        False, "--version", callback=_version, is_eager=True, help="Print the version and exit."
+    ),
 ) -> None:
     _STATE["debug"] = debug
 
@@ -110,7 +114,9 @@ def _write(text: str, output: Path | None) -> None:
 @app.command()
 def layers(
     path: Path = typer.Argument(..., help="Checkpoint file, shard index, or folder."),
-    format: LayersFormat = typer.Option(LayersFormat.table, "--format", "-f", help="Output format."),
+    format: LayersFormat = typer.Option(
+        LayersFormat.table, "--format", "-f", help="Output format."
+    ),
 ) -> None:
     """Show the layer graph steelyard reads from a checkpoint."""
     try:
@@ -148,15 +154,37 @@ def _render(report: Report, chosen: AuditFormat) -> str:
 @app.command()
 def audit(
     paths: list[Path] = typer.Argument(..., help="Checkpoint files, shard indexes, or folders."),
-    grads: Path | None = typer.Option(None, "--grads", help="Sidecar file of per-weight gradient statistics (same tensor names)."),
-    grads_kind: GradsKind = typer.Option(GradsKind.RMS, "--grads-kind", help="What the sidecar holds."),
-    format: AuditFormat | None = typer.Option(None, "--format", "-f", help="Output format [default: table]."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write the report here, atomically."),
-    fail_on: FailOn | None = typer.Option(None, "--fail-on", help="Lowest severity that fails the gate [default: the policy's, else error]."),
-    policy_file: Path | None = typer.Option(None, "--policy", help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards]."),
-    baseline: Path | None = typer.Option(None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."),
-    write_baseline: Path | None = typer.Option(None, "--write-baseline", help="Record the current findings as a baseline file."),
-    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress or diagnostics on stderr."),
+    grads: Path | None = typer.Option(
+        None, "--grads", help="Sidecar file of per-weight gradient statistics (same tensor names)."
+    ),
+    grads_kind: GradsKind = typer.Option(
+        GradsKind.RMS, "--grads-kind", help="What the sidecar holds."
+    ),
+    format: AuditFormat | None = typer.Option(
+        None, "--format", "-f", help="Output format [default: table]."
+    ),
+    output: Path | None = typer.Option(
+        None, "--output", "-o", help="Write the report here, atomically."
+    ),
+    fail_on: FailOn | None = typer.Option(
+        None,
+        "--fail-on",
+        help="Lowest severity that fails the gate [default: the policy's, else error].",
+    ),
+    policy_file: Path | None = typer.Option(
+        None,
+        "--policy",
+        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
+    ),
+    baseline: Path | None = typer.Option(
+        None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."
+    ),
+    write_baseline: Path | None = typer.Option(
+        None, "--write-baseline", help="Record the current findings as a baseline file."
+    ),
+    quiet: bool = typer.Option(
+        False, "--quiet", "-q", help="No progress or diagnostics on stderr."
+    ),
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
     from dataclasses import replace
@@ -172,7 +200,13 @@ def audit(
         accepted = read_baseline(baseline) if baseline is not None else None
         targets = api.expand_paths(paths)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(targets)) as progress:
-            report = api.audit_many(targets, policy=policy, grads=grads, grads_kind=grads_kind, on_checkpoint=progress.advance)
+            report = api.audit_many(
+                targets,
+                policy=policy,
+                grads=grads,
+                grads_kind=grads_kind,
+                on_checkpoint=progress.advance,
+            )
         if accepted is not None:
             report = apply_baseline(report, accepted)
         if write_baseline is not None:
@@ -186,7 +220,9 @@ def audit(
 
 
 @app.command()
-def rules(name: str | None = typer.Argument(None, help="A rule's name, to explain it in full.")) -> None:
+def rules(
+    name: str | None = typer.Argument(None, help="A rule's name, to explain it in full."),
+) -> None:
     """List every rule, or explain one with its math."""
     from steelyard.render.rules_text import render_rule, render_rules
     from steelyard.rules import registry
@@ -205,9 +241,13 @@ def rules(name: str | None = typer.Argument(None, help="A rule's name, to explai
 
 @app.command()
 def policy(
-    init: bool = typer.Option(False, "--init", help="Write a commented starter steelyard.toml with every default."),
+    init: bool = typer.Option(
+        False, "--init", help="Write a commented starter steelyard.toml with every default."
+    ),
     show: bool = typer.Option(False, "--show", help="Print the effective policy."),
-    policy_file: Path | None = typer.Option(None, "--policy", help="Policy file to show instead of the discovered one."),
+    policy_file: Path | None = typer.Option(
+        None, "--policy", help="Policy file to show instead of the discovered one."
+    ),
     force: bool = typer.Option(False, "--force", help="With --init, overwrite an existing file."),
 ) -> None:
     """Write a starter policy, or show the one in force."""

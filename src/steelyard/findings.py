@@ -70,7 +70,7 @@ def compact_units(units: tuple[int, ...] | list[int], limit: int = 12) -> str:
         return "—"
     ranges: list[str] = []
     start = prev = units[0]
-    for unit in list(units[1:]) + [None]:  # type: ignore[list-item]
+    for unit in [*units[1:], None]:
         if unit is not None and unit == prev + 1:
             prev = unit
             continue

@@ -44,7 +44,14 @@ class GradientSource:
     def support(self, layer: Layer) -> np.ndarray | None:
         """``|∂E/∂w|``-like magnitudes shaped ``[units, fan_in]``, or None when unknown."""
         if self.checkpoint is not None:
-            twin = next((x for x in self.checkpoint.layers if x.weight == layer.weight and x.gate == layer.gate), None)
+            twin = next(
+                (
+                    x
+                    for x in self.checkpoint.layers
+                    if x.weight == layer.weight and x.gate == layer.gate
+                ),
+                None,
+            )
             if twin is not None and (twin.units, twin.fan_in) == (layer.units, layer.fan_in):
                 raw = twin.matrix()
             elif layer.orient is not None and layer.weight in self.checkpoint.tensors:
@@ -78,7 +85,7 @@ def _from_optimizer(model: Checkpoint, layer: Layer) -> np.ndarray | None:
     second = np.maximum(second.reshape(layer.units, layer.fan_in), 0.0)
     if state.step and state.beta2 and 0 < state.beta2 < 1:
         # Adam's bias correction: v̂ = v / (1 − β₂^t) (Kingma & Ba 2015, Algorithm 1).
-        second = second / (1.0 - state.beta2 ** state.step)
+        second = second / (1.0 - state.beta2**state.step)
     return np.sqrt(second)
 
 
@@ -98,4 +105,6 @@ def sidecar_source(path: str, kind: GradsKind, loaded: Checkpoint) -> GradientSo
     """Support from a sidecar file of gradient statistics."""
     if not loaded.tensors:
         raise SteelyardError(f"{path}: gradient file holds no tensors")
-    return GradientSource(description=f"{kind.value} gradients from {path}", checkpoint=loaded, kind=kind)
+    return GradientSource(
+        description=f"{kind.value} gradients from {path}", checkpoint=loaded, kind=kind
+    )

@@ -192,7 +192,9 @@ class Layer:
     """Returns float32 ``[units, in_per_group, *kernel]``."""
     bias_view: Callable[[], np.ndarray] | None = field(default=None, repr=False, compare=False)
     """Returns float32 ``[units]``."""
-    orient: Callable[[np.ndarray], np.ndarray] | None = field(default=None, repr=False, compare=False)
+    orient: Callable[[np.ndarray], np.ndarray] | None = field(
+        default=None, repr=False, compare=False
+    )
     """Maps an array shaped like the stored weight tensor to the canonical view; used to
     put optimizer moments and gradient sidecars in the layer's orientation."""
     norm: Norm | None = None

@@ -29,7 +29,14 @@ _TOP_KEYS = ("fail-on", "input-range", "weight-decay", "frozen", "rules", "overr
 _FAIL_ON = ("error", "warning", "info", "never")
 _SEVERITIES = tuple(s.value for s in Severity)
 #: Thresholds that are fractions or cosines (must lie in [0, 1]).
-_UNIT_INTERVAL = ("cosine", "quantile", "share", "support-quantile", "weight-quantile", "error-share")
+_UNIT_INTERVAL = (
+    "cosine",
+    "quantile",
+    "share",
+    "support-quantile",
+    "weight-quantile",
+    "error-share",
+)
 
 
 def _suggest(word: str, choices: list[str] | tuple[str, ...]) -> str:
@@ -65,7 +72,10 @@ def load_policy(path: Path | None = None, start: Path | None = None) -> Policy:
     if path is not None:
         if not path.is_file():
             raise PolicyError(f"{path}: policy file does not exist")
-        found: tuple[Path, str] | None = (path, "pyproject" if path.name == "pyproject.toml" else "file")
+        found: tuple[Path, str] | None = (
+            path,
+            "pyproject" if path.name == "pyproject.toml" else "file",
+        )
     else:
         found = discover(start)
     if found is None:
@@ -126,7 +136,13 @@ def _rule_settings(source: str, where: str, rule: str, table: Any) -> dict[str, 
                     raise _fail(source, full, f"must be >= 0, not {value}")
                 if any(key.endswith(k) for k in _UNIT_INTERVAL) and number > 1:
                     raise _fail(source, full, f"must lie in [0, 1], not {value}")
-                value = int(value) if isinstance(default, int) and not isinstance(default, bool) and float(value).is_integer() else value
+                value = (
+                    int(value)
+                    if isinstance(default, int)
+                    and not isinstance(default, bool)
+                    and float(value).is_integer()
+                    else value
+                )
             elif isinstance(default, str) and not isinstance(value, str):
                 raise _fail(source, full, "must be a string")
         out[key] = value
@@ -140,7 +156,11 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
             raise _fail(source, key, f"is unknown{_suggest(key, _TOP_KEYS)}")
     fail_on = data.get("fail-on", "error")
     if fail_on not in _FAIL_ON:
-        raise _fail(source, "fail-on", f"must be one of {', '.join(_FAIL_ON)}{_suggest(str(fail_on), _FAIL_ON)}")
+        raise _fail(
+            source,
+            "fail-on",
+            f"must be one of {', '.join(_FAIL_ON)}{_suggest(str(fail_on), _FAIL_ON)}",
+        )
     input_range = None
     if "input-range" in data:
         value = data["input-range"]
@@ -162,7 +182,10 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
     rules_table = data.get("rules", {})
     if not isinstance(rules_table, dict):
         raise _fail(source, "rules", "must be a table of rule tables")
-    rules = {name: _rule_settings(source, f"rules.{name}", name, table) for name, table in rules_table.items()}
+    rules = {
+        name: _rule_settings(source, f"rules.{name}", name, table)
+        for name, table in rules_table.items()
+    }
     overrides: list[LayerOverride] = []
     for index, entry in enumerate(_table_list(source, "override", data.get("override", []))):
         where = f"override[{index}]"
@@ -181,10 +204,16 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
         where = f"ignore[{index}]"
         for key in entry:
             if key not in ("rule", "layers", "reason"):
-                raise _fail(source, f"{where}.{key}", f"is unknown{_suggest(key, ('rule', 'layers', 'reason'))}")
+                raise _fail(
+                    source,
+                    f"{where}.{key}",
+                    f"is unknown{_suggest(key, ('rule', 'layers', 'reason'))}",
+                )
         rule = entry.get("rule")
         if rule not in specs:
-            raise _fail(source, f"{where}.rule", f"names no rule{_suggest(str(rule), tuple(specs))}")
+            raise _fail(
+                source, f"{where}.rule", f"names no rule{_suggest(str(rule), tuple(specs))}"
+            )
         reason = entry.get("reason")
         if not isinstance(reason, str) or not reason.strip():
             raise _fail(source, f"{where}.reason", "is required: say why the finding is accepted")
@@ -274,7 +303,11 @@ def policy_text(policy: Policy) -> str:
         lines.append("")
         lines.append(f"[rules.{spec.name}]")
         for key, value in merged.items():
-            rendered = "<unset>" if value is None else ("true" if value is True else "false" if value is False else repr(value))
+            rendered = (
+                "<unset>"
+                if value is None
+                else ("true" if value is True else "false" if value is False else repr(value))
+            )
             lines.append(f"{key} = {rendered}")
     for override in policy.overrides:
         lines += ["", "[[override]]", f'layers = "{override.layers}"']
@@ -282,5 +315,11 @@ def policy_text(policy: Policy) -> str:
             inner = ", ".join(f"{k} = {v!r}" for k, v in settings.items())
             lines.append(f"{rule} = {{ {inner} }}")
     for entry in policy.ignore:
-        lines += ["", "[[ignore]]", f'rule = "{entry.rule}"', f'layers = "{entry.layers}"', f'reason = "{entry.reason}"']
+        lines += [
+            "",
+            "[[ignore]]",
+            f'rule = "{entry.rule}"',
+            f'layers = "{entry.layers}"',
+            f'reason = "{entry.reason}"',
+        ]
     return "\n".join(lines) + "\n"

@@ -20,8 +20,12 @@ class Progress:
         if enabled:
             console = Console(file=sys.stderr, no_color="NO_COLOR" in os.environ)
             self._bar = _RichProgress(
-                TextColumn("auditing {task.description}"), BarColumn(), MofNCompleteColumn(),
-                TimeElapsedColumn(), console=console, transient=True,
+                TextColumn("auditing {task.description}"),
+                BarColumn(),
+                MofNCompleteColumn(),
+                TimeElapsedColumn(),
+                console=console,
+                transient=True,
             )
             self._task = self._bar.add_task("", total=total)
 
@@ -30,7 +34,12 @@ class Progress:
             self._bar.start()
         return self
 
-    def __exit__(self, kind: type[BaseException] | None, value: BaseException | None, trace: TracebackType | None) -> None:
+    def __exit__(
+        self,
+        kind: type[BaseException] | None,
+        value: BaseException | None,
+        trace: TracebackType | None,
+    ) -> None:
         if self._bar is not None:
             self._bar.stop()
 

@@ -96,4 +96,4 @@ class Report:
 
     def to_dict(self) -> dict[str, Any]:
         """The document as plain data."""
-        return json.loads(self.to_json())  # type: ignore[no-any-return]
+        return json.loads(self.to_json())

@@ -82,7 +82,9 @@ def load(path: str | Path) -> Checkpoint:
             except LoadError:
                 raise
             except (RecursionError, MemoryError) as exc:
-                raise LoadError(target, f"is too deeply nested or too large to read ({exc})") from exc
+                raise LoadError(
+                    target, f"is too deeply nested or too large to read ({exc})"
+                ) from exc
             except Exception as exc:
                 # Loaders validate what they read; this net only keeps the one-line contract
                 # for a malformation nobody foresaw. The cause stays chained for --debug.

@@ -52,7 +52,9 @@ def inside(folder: Path, relative: str, source: Path) -> Path:
         raise LoadError(source, f"refers to {relative!r}, which is a symbolic link (refused)")
     resolved = target.resolve()
     if resolved != base and base not in resolved.parents:
-        raise LoadError(source, f"refers to {relative!r}, which resolves outside the model's folder")
+        raise LoadError(
+            source, f"refers to {relative!r}, which resolves outside the model's folder"
+        )
     if not resolved.is_file():
         raise LoadError(source, f"refers to {relative!r}, which does not exist")
     return resolved
@@ -68,7 +70,10 @@ def safe_zip_names(archive: zipfile.ZipFile, path: Path) -> dict[str, zipfile.Zi
             raise LoadError(path, f"archive member {name!r} has a path-traversal name")
         if name in members:
             raise LoadError(path, f"archive member {name!r} appears twice")
-        if info.compress_type != zipfile.ZIP_STORED and info.file_size > 1100 * info.compress_size + 4096:
+        if (
+            info.compress_type != zipfile.ZIP_STORED
+            and info.file_size > 1100 * info.compress_size + 4096
+        ):
             # Deflate cannot expand more than ~1032:1; a larger claim is a zip bomb or a lie.
             raise LoadError(path, f"archive member {name!r} claims an impossible compression ratio")
         members[name] = info

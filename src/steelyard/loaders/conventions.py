@@ -149,6 +149,15 @@ def _identity(array: np.ndarray) -> np.ndarray:
     return array
 
 
+def _rows(rows: slice) -> Callable[[np.ndarray], np.ndarray]:
+    """A transform taking one gate's rows of a stacked recurrent matrix."""
+
+    def take(array: np.ndarray) -> np.ndarray:
+        return array[rows]
+
+    return take
+
+
 def _norm_of(module: _Module) -> Norm | None:
     """A module that is a normalisation (1-D weight and/or running statistics)."""
     leaves = module.leaves
@@ -172,8 +181,9 @@ def _norm_of(module: _Module) -> Norm | None:
         kind = NormKind.RMS if "layernorm" not in module.name.lower() else NormKind.LAYER
     if re.search(r"(group_?norm|(^|[._])gn\d*$)", module.name, re.IGNORECASE):
         kind = NormKind.GROUP
-    return Norm(kind=kind, scale=weight.name, shift=bias.name if bias is not None else None,
-                eps=1e-5)
+    return Norm(
+        kind=kind, scale=weight.name, shift=bias.name if bias is not None else None, eps=1e-5
+    )
 
 
 def _unit_count(module: _Module) -> int:
@@ -206,13 +216,13 @@ def build_layers(
     layers: list[Layer] = []
     norms: dict[str, Norm] = {}
     for module_name in order:
-        module = modules[module_name]
-        norm = _norm_of(module)
+        entry = modules[module_name]
+        norm = _norm_of(entry)
         if norm is not None:
             norms[module_name] = norm
             continue
-        layers.extend(_recurrent_layers(module))
-        layer = _weight_layer(module, model_type)
+        layers.extend(_recurrent_layers(entry))
+        layer = _weight_layer(entry, model_type)
         if layer is not None:
             layers.append(layer)
 
@@ -240,7 +250,11 @@ def _weight_layer(module: _Module, model_type: str) -> Layer | None:
             transform = np.transpose
         else:
             out, fan = shape
-        kind = LayerKind.EMBEDDING if _EMBEDDING.search(module.name) and bias is None else LayerKind.DENSE
+        kind = (
+            LayerKind.EMBEDDING
+            if _EMBEDDING.search(module.name) and bias is None
+            else LayerKind.DENSE
+        )
         kernel: tuple[int, ...] = ()
     elif len(shape) in (3, 4, 5):
         if _TRANSPOSED.search(module.name):
@@ -301,9 +315,9 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
                     kernel=(),
                     groups=1,
                     activation=_GATE_ACT[gate],
-                    weight_view=_float_reader(weight, lambda a, s=sl: a[s]),
-                    orient=lambda a, s=sl: a[s],
-                    bias_view=_float_reader(bias, lambda a, s=sl: a[s]) if bias is not None else None,
+                    weight_view=_float_reader(weight, _rows(sl)),
+                    orient=_rows(sl),
+                    bias_view=_float_reader(bias, _rows(sl)) if bias is not None else None,
                     gate=gate,
                 )
             )
@@ -331,8 +345,9 @@ def _sibling_norm(name: str, parent: str, leaf: str, norms: Mapping[str, Norm]) 
     return None
 
 
-def _attach_norms(layers: list[Layer], modules: Mapping[str, _Module],
-                  norms: Mapping[str, Norm]) -> list[Layer]:
+def _attach_norms(
+    layers: list[Layer], modules: Mapping[str, _Module], norms: Mapping[str, Norm]
+) -> list[Layer]:
     out: list[Layer] = []
     for layer in layers:
         if layer.kind in (LayerKind.RECURRENT, LayerKind.EMBEDDING):
@@ -371,7 +386,8 @@ def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Laye
         if previous is not None and not found:
             found.append(previous)
         found = [
-            name for name in found
+            name
+            for name in found
             if by_name[name].units * (layer.groups or 1) == layer.in_per_group * layer.groups
             and by_name[name].kind is not LayerKind.EMBEDDING
         ]
@@ -395,7 +411,9 @@ def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Laye
     return linked, bool(sources)
 
 
-def _previous_sibling(layer: Layer, parent: str, leaf: str, by_name: Mapping[str, Layer]) -> str | None:
+def _previous_sibling(
+    layer: Layer, parent: str, leaf: str, by_name: Mapping[str, Layer]
+) -> str | None:
     prefix = f"{parent}." if parent else ""
     if leaf.isdigit():
         for index in range(int(leaf) - 1, -1, -1):

@@ -12,6 +12,7 @@ import mmap
 import struct
 import zipfile
 from collections.abc import Callable
+from typing import Literal
 from pathlib import Path
 
 import ml_dtypes
@@ -28,7 +29,9 @@ _MAX_HEADER = 65_536
 _LOCAL_HEADER = struct.Struct("<4sHHHHHIIIHH")
 
 
-def _parse_header(raw: bytes, path: Path, member: str) -> tuple[np.dtype[np.generic], tuple[int, ...], bool, int]:
+def _parse_header(
+    raw: bytes, path: Path, member: str
+) -> tuple[np.dtype[np.generic], tuple[int, ...], bool, int]:
     """dtype, shape, fortran_order and header length of one ``.npy`` member."""
     if raw[:6] != _MAGIC or len(raw) < 10:
         raise LoadError(path, f"member {member!r} is not a .npy array")
@@ -60,7 +63,9 @@ def _parse_header(raw: bytes, path: Path, member: str) -> tuple[np.dtype[np.gene
     except TypeError:
         raise LoadError(path, f"member {member!r} has an unknown dtype {descr!r}") from None
     if dtype.hasobject:
-        raise LoadError(path, f"member {member!r} holds Python objects, which would need pickle (refused)")
+        raise LoadError(
+            path, f"member {member!r} holds Python objects, which would need pickle (refused)"
+        )
     if dtype.kind == "V" and dtype.itemsize == 2:
         # ml_dtypes bfloat16 arrays are saved as anonymous 2-byte voids.
         dtype = np.dtype(ml_dtypes.bfloat16)
@@ -133,7 +138,7 @@ class NpzLoader:
         header_len: int,
     ) -> Callable[[], np.ndarray]:
         count = math.prod(shape)
-        order = "F" if fortran else "C"
+        order: Literal["C", "F"] = "F" if fortran else "C"
 
         def read() -> np.ndarray:
             if info.compress_type == zipfile.ZIP_STORED:

@@ -19,7 +19,7 @@ import numpy as np
 
 from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES
 from steelyard.errors import LoadError
-from steelyard.graph import Checkpoint, Format, Tensor, TensorRole
+from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside
 from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
 
@@ -69,9 +69,7 @@ class _Shard:
             if length > MAX_METADATA_BYTES:
                 raise LoadError(path, f"header claims {length} bytes, more than the 100 MB cap")
             if 8 + length > self.size:
-                raise LoadError(
-                    path, f"header claims {length} bytes but the file has {self.size}"
-                )
+                raise LoadError(path, f"header claims {length} bytes but the file has {self.size}")
             raw = handle.read(length)
         try:
             header = json.loads(raw.decode("utf-8"), object_pairs_hook=_no_duplicates)
@@ -158,7 +156,9 @@ class _Shard:
                     self._map = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
             count = (end - begin) // ALL_DTYPES[dtype].itemsize
             flat = np.frombuffer(
-                self._map, dtype=ALL_DTYPES[dtype].newbyteorder("<"), count=count,
+                self._map,
+                dtype=ALL_DTYPES[dtype].newbyteorder("<"),
+                count=count,
                 offset=self.data_start + begin,
             )
             return flat.reshape(shape)
@@ -186,10 +186,7 @@ class SafetensorsLoader:
         return head[8:9] == b"{" and length > 1
 
     def load(self, path: Path) -> Checkpoint:
-        if path.name.endswith(".json"):
-            shards = self._shards_from_index(path)
-        else:
-            shards = [_Shard(path)]
+        shards = self._shards_from_index(path) if path.name.endswith(".json") else [_Shard(path)]
         tensors: dict[str, Tensor] = {}
         for shard in shards:
             for name, (dtype, shape, _b, _e) in shard.entries.items():

@@ -20,7 +20,9 @@ def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
     gate = report.gate
     tests = failures = 0
     for rule in registry():
-        places = [*layer_names] + (["(checkpoint)"] if any(k == (rule, "(checkpoint)") for k in by_case) else [])
+        places = [*layer_names] + (
+            ["(checkpoint)"] if any(k == (rule, "(checkpoint)") for k in by_case) else []
+        )
         for layer in places:
             tests += 1
             case = ET.SubElement(suite, "testcase", classname=f"{rule}", name=layer, file=path)
@@ -28,7 +30,9 @@ def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
             failing = [f for f in found if gate is not None and f.severity.at_least(gate)]
             for finding in failing:
                 failures += 1
-                node = ET.SubElement(case, "failure", message=finding.message, type=finding.severity.value)
+                node = ET.SubElement(
+                    case, "failure", message=finding.message, type=finding.severity.value
+                )
                 node.text = f"{finding.message}\nhint: {finding.hint}\nunits: {list(finding.units)}\nid: {finding.id}"
             below = [f for f in found if f not in failing]
             if below:

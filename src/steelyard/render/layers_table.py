@@ -25,12 +25,19 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
     """The header and layer table as text."""
     dtypes = ", ".join(f"{k} ×{v}" for k, v in sorted(checkpoint.dtypes.items()))
     header = Text.assemble(
-        ("checkpoint ", "bold"), checkpoint.path, "\n",
-        ("format ", "bold"), checkpoint.format.value,
-        ("   tensors ", "bold"), str(len(checkpoint.counted)),
-        ("   parameters ", "bold"), f"{checkpoint.parameters:,}",
-        ("   dtypes ", "bold"), dtypes or "none",
-        ("   size ", "bold"), human_bytes(checkpoint.file_size),
+        ("checkpoint ", "bold"),
+        checkpoint.path,
+        "\n",
+        ("format ", "bold"),
+        checkpoint.format.value,
+        ("   tensors ", "bold"),
+        str(len(checkpoint.counted)),
+        ("   parameters ", "bold"),
+        f"{checkpoint.parameters:,}",
+        ("   dtypes ", "bold"),
+        dtypes or "none",
+        ("   size ", "bold"),
+        human_bytes(checkpoint.file_size),
     )
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
     for column in ("layer", "kind", "out × in × kernel", "activation", "fed by", "parameters"):

@@ -26,7 +26,9 @@ def _rows(findings: tuple[Finding, ...] | list[Finding]) -> list[str]:
 def _audit(report: Report, audit: CheckpointAudit) -> list[str]:
     counts = audit.counts()
     failing = audit.failing(report.gate)
-    verdict = "⚪ report only" if report.gate is None else ("❌ **fail**" if failing else "✅ **pass**")
+    verdict = (
+        "⚪ report only" if report.gate is None else ("❌ **fail**" if failing else "✅ **pass**")
+    )
     block = audit.checkpoint
     lines = [
         f"### `{block['path']}`: {verdict}",
@@ -63,6 +65,14 @@ def render_markdown(report: Report) -> str:
         lines += _audit(report, audit)
     if report.baseline is not None:
         fixed = report.baseline.get("fixed", [])
-        lines += [f"Baseline `{report.baseline['path']}`: {report.baseline['matched']} matched, {len(fixed)} fixed.", ""]
-    lines += [f"_{CAUTION}_", "", f"<sub>steelyard {report.tool_version}, policy: {report.policy_source}</sub>", ""]
+        lines += [
+            f"Baseline `{report.baseline['path']}`: {report.baseline['matched']} matched, {len(fixed)} fixed.",
+            "",
+        ]
+    lines += [
+        f"_{CAUTION}_",
+        "",
+        f"<sub>steelyard {report.tool_version}, policy: {report.policy_source}</sub>",
+        "",
+    ]
     return "\n".join(lines)

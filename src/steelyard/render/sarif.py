@@ -15,7 +15,9 @@ from steelyard.render.json_report import _clean
 from steelyard.report import Report
 from steelyard.rules import registry
 
-SARIF_SCHEMA_URI = "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
+SARIF_SCHEMA_URI = (
+    "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
+)
 INFORMATION_URI = "https://steelyard.readthedocs.io/"
 
 
@@ -54,25 +56,39 @@ def _rules_table() -> tuple[list[dict[str, Any]], dict[str, int]]:
     return rules, index
 
 
-def _result(finding: Finding, artifact: int, rule_index: dict[str, int], baselined: bool) -> dict[str, Any]:
+def _result(
+    finding: Finding, artifact: int, rule_index: dict[str, int], baselined: bool
+) -> dict[str, Any]:
     logical = []
     if finding.layer:
         logical.append({"name": finding.layer, "kind": "module"})
     if finding.tensor:
-        logical.append({"name": finding.tensor, "fullyQualifiedName": f"{finding.layer or ''}/{finding.tensor}", "kind": "variable"})
+        logical.append(
+            {
+                "name": finding.tensor,
+                "fullyQualifiedName": f"{finding.layer or ''}/{finding.tensor}",
+                "kind": "variable",
+            }
+        )
     result: dict[str, Any] = {
         "ruleId": finding.rule,
         "level": level(finding.severity),
         "message": {"text": f"{finding.message}. {finding.hint}."},
         "locations": [
             {
-                "physicalLocation": {"artifactLocation": {"uri": _uri(finding.checkpoint), "index": artifact}},
+                "physicalLocation": {
+                    "artifactLocation": {"uri": _uri(finding.checkpoint), "index": artifact}
+                },
                 "logicalLocations": logical,
             }
         ],
         "partialFingerprints": {"steelyardFindingId/v1": finding.id},
         "rank": min(100.0, finding.score),
-        "properties": {"units": list(finding.units), "score": finding.score, "evidence": dict(finding.evidence)},
+        "properties": {
+            "units": list(finding.units),
+            "score": finding.score,
+            "evidence": dict(finding.evidence),
+        },
     }
     if finding.rule in rule_index:
         result["ruleIndex"] = rule_index[finding.rule]

@@ -24,7 +24,7 @@ def spark(histogram: tuple[int, ...]) -> str:
     if not histogram or max(histogram) == 0:
         return ""
     top = max(histogram)
-    return "".join(" " if c == 0 else _BARS[min(7, int(math.ceil(7 * c / top)))] for c in histogram)
+    return "".join(" " if c == 0 else _BARS[min(7, math.ceil(7 * c / top))] for c in histogram)
 
 
 def _number(value: float) -> str:
@@ -36,22 +36,35 @@ def _verdict(report: Report, audit: CheckpointAudit) -> Text:
     failing = audit.failing(report.gate)
     summary = f"{counts['error']} errors, {counts['warning']} warnings, {counts['info']} info"
     if report.gate is None:
-        return Text.assemble(("REPORT ONLY ", "bold"), f"{summary} (gate disabled: --fail-on never)")
+        return Text.assemble(
+            ("REPORT ONLY ", "bold"), f"{summary} (gate disabled: --fail-on never)"
+        )
     if failing:
-        return Text.assemble(("FAIL ", "bold red"), f"{summary}; {len(failing)} at or above {report.fail_on}")
+        return Text.assemble(
+            ("FAIL ", "bold red"), f"{summary}; {len(failing)} at or above {report.fail_on}"
+        )
     return Text.assemble(("PASS ", "bold green"), f"{summary}; none at or above {report.fail_on}")
 
 
 def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
     block = audit.checkpoint
     header = Text.assemble(
-        ("checkpoint ", "bold"), str(block["path"]), "\n",
-        ("format ", "bold"), str(block["format"]),
-        ("   parameters ", "bold"), f"{int(block['parameters']):,}",
-        ("   layers ", "bold"), str(len(audit.layers)),
-        ("   gradient support ", "bold"), audit.gradient_source or "none", "\n",
-        ("policy ", "bold"), report.policy_source,
-        ("   sha256 ", "bold"), str(block.get("sha256", ""))[:16] + "…",
+        ("checkpoint ", "bold"),
+        str(block["path"]),
+        "\n",
+        ("format ", "bold"),
+        str(block["format"]),
+        ("   parameters ", "bold"),
+        f"{int(block['parameters']):,}",
+        ("   layers ", "bold"),
+        str(len(audit.layers)),
+        ("   gradient support ", "bold"),
+        audit.gradient_source or "none",
+        "\n",
+        ("policy ", "bold"),
+        report.policy_source,
+        ("   sha256 ", "bold"),
+        str(block.get("sha256", ""))[:16] + "…",
     )
     parts: list[RenderableType] = [header, _verdict(report, audit), Text("")]
     specs = registry()
@@ -74,24 +87,61 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
             )
         parts.append(findings)
         if len(audit.findings) > MAX_SHOWN:
-            parts.append(Text(f"… and {len(audit.findings) - MAX_SHOWN} more (use --format json)", style="dim"))
+            parts.append(
+                Text(
+                    f"… and {len(audit.findings) - MAX_SHOWN} more (use --format json)", style="dim"
+                )
+            )
     else:
         parts.append(Text("no findings", style="green"))
     if audit.baselined:
-        parts.append(Text(f"{len(audit.baselined)} findings matched the baseline and are not gated on", style="dim"))
+        parts.append(
+            Text(
+                f"{len(audit.baselined)} findings matched the baseline and are not gated on",
+                style="dim",
+            )
+        )
     if audit.ignored:
-        parts.append(Text(f"{audit.ignored} findings silenced by the policy's ignore entries", style="dim"))
+        parts.append(
+            Text(f"{audit.ignored} findings silenced by the policy's ignore entries", style="dim")
+        )
     if audit.layers:
-        health = Table(title="layer health", show_edge=False, header_style="bold", pad_edge=False, title_justify="left")
-        for column in ("layer", "kind", "units", "fan-in norm min", "median", "max", "distribution", "dead", "twins", "unsupported"):
-            health.add_column(column, justify="left" if column in ("layer", "kind", "distribution") else "right")
+        health = Table(
+            title="layer health",
+            show_edge=False,
+            header_style="bold",
+            pad_edge=False,
+            title_justify="left",
+        )
+        for column in (
+            "layer",
+            "kind",
+            "units",
+            "fan-in norm min",
+            "median",
+            "max",
+            "distribution",
+            "dead",
+            "twins",
+            "unsupported",
+        ):
+            health.add_column(
+                column, justify="left" if column in ("layer", "kind", "distribution") else "right"
+            )
         for row in audit.layers:
             low, mid, high = row.fan_in_norm
             share = "—" if row.unsupported_share is None else f"{100 * row.unsupported_share:.2g}%"
             health.add_row(
-                str(row.layer["name"]), str(row.layer["kind"]), human_count(int(row.layer["units"])),
-                _number(low), _number(mid), _number(high), spark(row.norm_histogram),
-                str(row.dead or "—"), str(row.twins or "—"), share,
+                str(row.layer["name"]),
+                str(row.layer["kind"]),
+                human_count(int(row.layer["units"])),
+                _number(low),
+                _number(mid),
+                _number(high),
+                spark(row.norm_histogram),
+                str(row.dead or "—"),
+                str(row.twins or "—"),
+                share,
             )
         parts += [Text(""), health]
     parts += [Text(f"note: {note}", style="dim") for note in audit.notes]
@@ -107,8 +157,13 @@ def render_table(report: Report, *, color: bool = False, width: int = 120) -> st
         parts.extend(_audit(report, audit))
     if len(report.audits) > 1:
         verdict = "PASS" if report.passed else "FAIL"
-        parts.append(Text.assemble(("overall ", "bold"), (verdict, "bold green" if report.passed else "bold red"),
-                                   f" over {len(report.audits)} checkpoints"))
+        parts.append(
+            Text.assemble(
+                ("overall ", "bold"),
+                (verdict, "bold green" if report.passed else "bold red"),
+                f" over {len(report.audits)} checkpoints",
+            )
+        )
     parts += [Text(""), Text(CAUTION, style="italic")]
     return to_text([Group(*parts)], color=color, width=width)
 

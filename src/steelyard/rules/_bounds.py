@@ -45,9 +45,13 @@ class IntervalBounds:
         self._pre: dict[str, Bounds | None] = {}
         layers = stats.checkpoint.layers
         self._sources = {layer.name for layer in layers if layer.from_input}
-        if not self._sources and layers and not layers[0].inputs_from:
-            if layers[0].kind in (LayerKind.DENSE, LayerKind.CONV):
-                self._sources.add(layers[0].name)
+        first = layers[0] if layers else None
+        if not self._sources and first is not None and not first.inputs_from and first.kind in (
+            LayerKind.DENSE,
+            LayerKind.CONV,
+        ):
+            # Without graph inputs marked, only the first layer is safely fed by the inputs.
+            self._sources.add(first.name)
 
     def pre_activation(self, layer: Layer, depth: int = 0) -> Bounds | None:
         """Lower and upper pre-activation bounds of each unit, or None when unknown."""
@@ -66,7 +70,9 @@ class IntervalBounds:
         parts: list[Bounds] = []
         for producer in producers:
             pre = self.pre_activation(producer, depth + 1)
-            if pre is None or (producer.norm is not None and not self.stats.folded(producer).folded):
+            if pre is None or (
+                producer.norm is not None and not self.stats.folded(producer).folded
+            ):
                 return None
             post = _activate(producer.activation, *pre)
             if post is None:

@@ -45,14 +45,20 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
             continue
         tol = float(settings.get(layer, "tolerance"))
         base = dict(rule=RULE.name, layer=layer.name, tensor=layer.weight, part=layer.gate or "")
-        if not constraint.per_unit or (constraint.kind == "min-max-norm" and constraint.rate != 1.0):
+        if not constraint.per_unit or (
+            constraint.kind == "min-max-norm" and constraint.rate != 1.0
+        ):
             yield Finding(
-                **base,  # type: ignore[arg-type]
+                **base,
                 severity=Severity.INFO,
                 units=(),
                 score=0.0,
                 message=f"declared {constraint.kind} constraint is not judged "
-                + ("(its axes do not map onto units)" if not constraint.per_unit else f"(rate {constraint.rate} < 1)"),
+                + (
+                    "(its axes do not map onto units)"
+                    if not constraint.per_unit
+                    else f"(rate {constraint.rate} < 1)"
+                ),
                 hint="nothing to do; steelyard cannot verify this constraint exactly",
                 evidence={"constraint": constraint.kind},
             )
@@ -64,23 +70,43 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
             low = weights.min(axis=1) if weights.size else np.zeros(layer.units)
             bad = np.flatnonzero(low < -tol * max(scale, 1e-30))
             worst = float(-low[bad].min()) if bad.size else 0.0
-            measured, limit_text, excess = f"most negative weight {-worst:.6g}", "0", 1 + worst / max(scale, 1e-30)
+            measured, limit_text, excess = (
+                f"most negative weight {-worst:.6g}",
+                "0",
+                1 + worst / max(scale, 1e-30),
+            )
         else:
             upper = constraint.max_value if constraint.kind != "unit-norm" else 1.0
-            lower = constraint.min_value if constraint.kind == "min-max-norm" else (1.0 if constraint.kind == "unit-norm" else None)
-            too_big = norms > (upper * (1 + tol)) if upper is not None else np.zeros(layer.units, bool)
-            too_small = norms < (lower * (1 - tol)) if lower is not None else np.zeros(layer.units, bool)
+            lower = (
+                constraint.min_value
+                if constraint.kind == "min-max-norm"
+                else (1.0 if constraint.kind == "unit-norm" else None)
+            )
+            too_big = (
+                norms > (upper * (1 + tol)) if upper is not None else np.zeros(layer.units, bool)
+            )
+            too_small = (
+                norms < (lower * (1 - tol)) if lower is not None else np.zeros(layer.units, bool)
+            )
             bad = np.flatnonzero(too_big | too_small)
             if not bad.size:
                 continue
-            ratios = np.where(too_big[bad], norms[bad] / (upper or 1.0), (lower or 1.0) / np.maximum(norms[bad], 1e-30))
+            ratios = np.where(
+                too_big[bad],
+                norms[bad] / (upper or 1.0),
+                (lower or 1.0) / np.maximum(norms[bad], 1e-30),
+            )
             excess = float(ratios.max())
             measured = f"row norms {float(norms[bad].min()):.6g} to {float(norms[bad].max()):.6g}"
-            limit_text = f"[{lower:g}, {upper:g}]" if lower is not None and upper is not None else f"<= {upper:g}"
+            limit_text = (
+                f"[{lower:g}, {upper:g}]"
+                if lower is not None and upper is not None
+                else f"<= {upper:g}"
+            )
         if not bad.size:
             continue
         yield Finding(
-            **base,  # type: ignore[arg-type]
+            **base,
             severity=Severity.ERROR,
             units=tuple(int(u) for u in bad),
             score=score(bad.size / layer.units, excess),

@@ -51,7 +51,10 @@ def _constant(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[in
     finite = rows[np.isfinite(rows)]
     if finite.size == 0:
         return set()
-    limit = max(float(settings.get(layer, "floor")), float(settings.get(layer, "constant")) * float(np.median(finite)))
+    limit = max(
+        float(settings.get(layer, "floor")),
+        float(settings.get(layer, "constant")) * float(np.median(finite)),
+    )
     return {int(u) for u in np.flatnonzero(rows <= limit)}
 
 
@@ -84,7 +87,9 @@ def _never_active(
     if ctx.stats.inputs_non_negative(layer):
         folded = ctx.stats.folded(layer)
         nonpositive = np.all(folded.matrix <= 0, axis=1) & (folded.bias <= 0)
-        return {int(u) for u in np.flatnonzero(nonpositive)}, "non-negative inputs, non-positive weights"
+        return {
+            int(u) for u in np.flatnonzero(nonpositive)
+        }, "non-negative inputs, non-positive weights"
     return set(), ""
 
 
@@ -96,13 +101,17 @@ def _silenced(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[in
     median = float(np.median(magnitude))
     if median <= 0:
         return set()
-    return {int(u) for u in np.flatnonzero(magnitude <= float(settings.get(layer, "silenced")) * median)}
+    return {
+        int(u) for u in np.flatnonzero(magnitude <= float(settings.get(layer, "silenced")) * median)
+    }
 
 
 def _saving(ctx: AuditContext, layer: Layer, dead: int) -> int:
     per_unit = layer.fan_in + (1 if layer.bias else 0)
     if layer.norm is not None:
-        per_unit += sum(1 for n in (layer.norm.scale, layer.norm.shift, layer.norm.mean, layer.norm.var) if n)
+        per_unit += sum(
+            1 for n in (layer.norm.scale, layer.norm.shift, layer.norm.mean, layer.norm.var) if n
+        )
     for consumer in ctx.stats.consumers(layer):
         block = ctx.stats.consumer_block(layer, consumer)
         if block is not None:
@@ -129,11 +138,19 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
         if not dead:
             continue
         share = len(dead) / layer.units
-        severity = Severity.ERROR if share >= float(settings.get(layer, "error-share")) else Severity.WARNING
+        severity = (
+            Severity.ERROR
+            if share >= float(settings.get(layer, "error-share"))
+            else Severity.WARNING
+        )
         named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
         saving = _saving(ctx, layer, len(dead))
-        evidence: dict[str, object] = {name: sorted(units) for name, units in tests.items() if units}
-        evidence.update(dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving)
+        evidence: dict[str, object] = {
+            name: sorted(units) for name, units in tests.items() if units
+        }
+        evidence.update(
+            dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving
+        )
         if how:
             evidence["never_active_by"] = how
         yield Finding(
@@ -154,7 +171,13 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 RULE = RuleSpec(
     name="dead-unit",
     severity=Severity.WARNING,
-    thresholds={"floor": 1e-8, "constant": 1e-3, "unused": 1e-3, "silenced": 1e-3, "error-share": 0.5},
+    thresholds={
+        "floor": 1e-8,
+        "constant": 1e-3,
+        "unused": 1e-3,
+        "silenced": 1e-3,
+        "error-share": 0.5,
+    },
     summary="a unit whose output cannot change or is never read costs parameters and contributes nothing",
     check=check,
     doc=__doc__ or "",

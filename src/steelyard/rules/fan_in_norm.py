@@ -95,20 +95,24 @@ def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterat
             severity, status = Severity.INFO, "normalised"
         elif out_norms is not None and test == "relative":
             out_median = float(np.median(out_norms))
-            product = (norms[hit] / median) * (out_norms[hit] / out_median) if out_median > 0 else None
-            if product is not None and bool(np.all(product <= float(settings.get(layer, "rescalable-product")))):
+            product = (
+                (norms[hit] / median) * (out_norms[hit] / out_median) if out_median > 0 else None
+            )
+            if product is not None and bool(
+                np.all(product <= float(settings.get(layer, "rescalable-product")))
+            ):
                 severity, status = Severity.INFO, "rescalable"
                 factors = np.sqrt(out_norms[hit] / np.maximum(norms[hit], 1e-30))
                 order = np.argsort(-norms[hit])[:_TOP]
-                evidence["balancing_factor"] = {
-                    str(int(hit[i])): float(factors[i]) for i in order
-                }
+                evidence["balancing_factor"] = {str(int(hit[i])): float(factors[i]) for i in order}
         order = np.argsort(-norms[hit])[:_TOP]
         evidence["norms"] = {str(int(hit[i])): float(norms[hit][i]) for i in order}
         evidence["status"] = status
         word = "the layer's median" if test == "relative" else "the policy's max-norm"
         limit_text = (
-            f"{ratio_limit:g} × median {median:.4g} = {limit:.4g}" if test == "relative" else f"{limit:.4g}"
+            f"{ratio_limit:g} × median {median:.4g} = {limit:.4g}"
+            if test == "relative"
+            else f"{limit:.4g}"
         )
         message = (
             f"{hit.size} of {layer.units} units have incoming L2 norm up to "
@@ -118,7 +122,9 @@ def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterat
             message += "; a normalisation follows, so the raw scale does not change the function"
             hint = "informational: judge this layer after its normalisation"
         elif status == "rescalable":
-            message += "; the consumers' columns are correspondingly small, so the units are rescalable"
+            message += (
+                "; the consumers' columns are correspondingly small, so the units are rescalable"
+            )
             hint = "rebalance: scale each unit's row by its balancing factor a and its consumer columns by 1/a"
         else:
             hint = "retrain with weight decay or a max-norm constraint on this layer, or lower its learning rate"
@@ -149,7 +155,12 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 RULE = RuleSpec(
     name="fan-in-norm",
     severity=Severity.WARNING,
-    thresholds={"ratio": 8.0, "max-norm": None, "rescalable-product": 2.0, "include-embeddings": False},
+    thresholds={
+        "ratio": 8.0,
+        "max-norm": None,
+        "rescalable-product": 2.0,
+        "include-embeddings": False,
+    },
     summary="a unit whose incoming weights grew far past its neighbours' dominates its layer and amplifies noise",
     check=check,
     doc=__doc__ or "",

@@ -52,9 +52,7 @@ def _units(layer: Layer, relation: str, bad: np.ndarray) -> tuple[int, ...] | No
     try:
         if relation == "weight" and layer.orient is not None:
             rows = np.asarray(layer.orient(bad)).reshape(layer.units, -1).any(axis=1)
-        elif relation == "bias" and layer.gate is None and bad.size == layer.units:
-            rows = bad.reshape(layer.units)
-        elif relation == "per-unit" and bad.size == layer.units:
+        elif (relation == "bias" and layer.gate is None and bad.size == layer.units) or (relation == "per-unit" and bad.size == layer.units):
             rows = bad.reshape(layer.units)
         else:
             return None
@@ -81,12 +79,17 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
     """Yield one error per tensor holding NaN or ±Inf."""
     owners = _owners(ctx)
     candidates: list[tuple[str, Tensor, str]] = [
-        (name, t, "model") for name, t in ctx.checkpoint.tensors.items() if t.role is TensorRole.PARAMETER
+        (name, t, "model")
+        for name, t in ctx.checkpoint.tensors.items()
+        if t.role is TensorRole.PARAMETER
     ]
     state = ctx.checkpoint.optimizer
     if state is not None:
         for name, slots in state.slots.items():
-            for slot_name, slot in (("first moment", slots.first_moment), ("second moment", slots.second_moment)):
+            for slot_name, slot in (
+                ("first moment", slots.first_moment),
+                ("second moment", slots.second_moment),
+            ):
                 if slot is not None:
                     candidates.append((name, slot, f"optimizer {slot_name}"))
     for name, tensor, source in candidates:
@@ -120,8 +123,14 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
             ),
             hint="do not ship this checkpoint; find the training step where values diverged "
             "and restart from the last checkpoint that passed",
-            evidence={"nan": nan, "posinf": pos, "neginf": neg, "elements": int(bad.size),
-                      "first_positions": positions, "source": source},
+            evidence={
+                "nan": nan,
+                "posinf": pos,
+                "neginf": neg,
+                "elements": int(bad.size),
+                "first_positions": positions,
+                "source": source,
+            },
         )
 
 

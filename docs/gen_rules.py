@@ -45,11 +45,68 @@ def render() -> str:
     return "\n".join(parts).replace("\n\n\n", "\n\n")
 
 
+POLICY_HEADER = """# Policy
+
+A policy holds the thresholds that gate the audit, in the repository next to the model code.
+steelyard reads, in order: the file given with `--policy FILE`; else the nearest
+`steelyard.toml`; else `[tool.steelyard]` in the nearest `pyproject.toml`, both found by
+walking up from the working directory. The report header says which one was used;
+`steelyard policy --show` prints the effective policy and `steelyard policy --init` writes the
+starter file below. An unknown key, a wrong type or an out-of-range value exits 2 with a line
+naming the key and the file (and a "did you mean" suggestion for near misses).
+
+## Keys
+
+| key | type | meaning |
+| --- | --- | --- |
+| `fail-on` | `"error"`, `"warning"`, `"info"`, `"never"` | lowest severity that fails the gate (the CLI's `--fail-on` wins) |
+| `input-range` | `[low, high]` | range of every model input; enables interval bound propagation in `dead-unit` |
+| `weight-decay` | number >= 0 | L2 coefficient in the PyTorch convention (wd·w added to the gradient), for `unsupported-weight`'s equilibrium ratio |
+| `frozen` | list of globs | layers that must not change between two checkpoints (`steelyard compare`) |
+| `[rules.<rule>]` | table | per rule: `enabled` (bool), `severity` (`"error"`, `"warning"`, `"info"`: replaces the rule's own choice), and each of the rule's thresholds (see `rules.md`) |
+| `[[override]]` | array of tables | `layers = "<glob over layer names>"` plus `<rule> = { key = value, ... }` tables; applied in order after `[rules.*]`, so later overrides win |
+| `[[ignore]]` | array of tables | `rule`, `layers` (glob, default `*`) and a required `reason`: findings silenced, counted in the report |
+
+In `pyproject.toml` the same keys go under `[tool.steelyard]`, e.g. `[tool.steelyard.rules.fan-in-norm]`
+and `[[tool.steelyard.override]]`.
+
+## Example
+
+```toml
+fail-on = "warning"
+input-range = [0.0, 1.0]
+
+[rules.twin-units]
+include-embeddings = false
+
+[[override]]
+layers = "classifier*"
+fan-in-norm = { ratio = 4.0, max-norm = 3.0 }
+
+[[ignore]]
+rule = "untrained-layer"
+layers = "pooler*"
+reason = "the pooler is unused downstream and was never trained"
+```
+
+## The starter file (every default)
+
+"""
+
+
+def render_policy() -> str:
+    """docs/policy.md: the keys, an example, and the generated starter file."""
+    from steelyard.policy_file import starter_text
+
+    return POLICY_HEADER + "```toml\n" + starter_text() + "```\n"
+
+
 def main() -> int:
-    """Write docs/rules.md next to this script."""
-    target = Path(__file__).with_name("rules.md")
-    target.write_text(render(), encoding="utf-8")
-    print(f"wrote {target}")
+    """Write docs/rules.md and docs/policy.md next to this script."""
+    for name, text in (("rules.md", render()), ("policy.md", render_policy())):
+        target = Path(__file__).with_name(name)
+        target.write_text(text, encoding="utf-8")
+        print(f"wrote {target}")
     return 0
 
 

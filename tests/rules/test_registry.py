@@ -35,3 +35,4 @@ def test_docs_rules_md_is_current() -> None:
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     assert (DOCS / "rules.md").read_text(encoding="utf-8") == module.render(), "run python docs/gen_rules.py"
+    assert (DOCS / "policy.md").read_text(encoding="utf-8") == module.render_policy(), "run python docs/gen_rules.py"

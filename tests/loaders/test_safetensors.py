@@ -221,3 +221,26 @@ def test_mutated_files_read_or_fail_cleanly(tmp_path: Path, data: st.DataObject)
             tensor.read_float32()
     except LoadError:
         pass
+
+
+def test_layout_file_overrides_orientation_activation_and_links(tmp_path: Path, rng: np.random.Generator) -> None:
+    # A TF-style export stores dense kernels [in, out]; the user says so in a layout file.
+    k1 = rng.normal(size=(6, 10)).astype(np.float32)
+    k2 = rng.normal(size=(10, 3)).astype(np.float32)
+    path = tmp_path / "tf.safetensors"
+    st_numpy.save_file({"dense_a.weight": k1, "dense_b.weight": k2}, path)
+    assert load(path).layer("dense_b").inputs_from == ()  # type: ignore[union-attr]
+    (tmp_path / "tf.layout.toml").write_text(
+        'orientation = "in-out"\n'
+        '[[layer]]\nname = "dense_a"\nactivation = "relu"\n'
+        '[[layer]]\nname = "dense_b"\ninputs-from = ["dense_a"]\nactivation = "softmax"\n'
+    )
+    checkpoint = load(path)
+    first, second = checkpoint.layer("dense_a"), checkpoint.layer("dense_b")
+    assert first is not None and second is not None
+    assert (first.units, first.fan_in) == (10, 6) and first.activation.value == "relu"
+    np.testing.assert_array_equal(first.matrix(), k1.T)
+    assert second.inputs_from == ("dense_a",) and second.is_output
+    (tmp_path / "tf.layout.toml").write_text('[[layer]]\nname = "nope"\n')
+    with pytest.raises(LoadError, match="checkpoint lacks"):
+        load(path)

@@ -37,7 +37,8 @@ _EMBEDDING = re.compile(
 )
 _NORM = re.compile(r"(norm|^ln|[._]ln|ln_?\d*$|bn\d*$|^bn|[._]bn|layernorm|gn\d*$)", re.IGNORECASE)
 _TRANSPOSED = re.compile(r"(convtranspose|conv_transpose|deconv|upconv|transposed)", re.IGNORECASE)
-_RECURRENT = re.compile(r"^(weight|bias)_(ih|hh)_l(\d+)(_reverse)?$")
+#: ``weight_ih_l0`` (nn.LSTM/GRU/RNN) and ``weight_ih`` (nn.LSTMCell/GRUCell/RNNCell).
+_RECURRENT = re.compile(r"^(weight|bias)_(ih|hh)(?:_l(\d+))?(_reverse)?$")
 #: Producer → consumer leaf names that mark the two halves of a feed-forward block.
 _PAIRS: tuple[tuple[str, str], ...] = (
     ("fc1", "fc2"),
@@ -106,10 +107,6 @@ def read_hf_config(folder: Path) -> dict[str, Any] | None:
     except (UnicodeDecodeError, ValueError, RecursionError) as exc:
         raise LoadError(candidate, f"is not valid JSON ({exc})") from None
     return data if isinstance(data, dict) else None
-
-
-def _natural(name: str) -> list[Any]:
-    return [int(part) if part.isdigit() else part for part in re.split(r"(\d+)", name)]
 
 
 @dataclass
@@ -208,7 +205,8 @@ def build_layers(
     for name, tensor in tensors.items():
         module, leaf = _split(name)
         modules.setdefault(module, _Module(module, {})).leaves[leaf] = tensor
-    order = sorted(modules, key=_natural)
+    # First appearance is module registration order for state dicts, the best order we have.
+    order = list(modules)
     model_type = str((config or {}).get("model_type", "")).lower()
     hidden_act = _HF_ACT.get(str((config or {}).get("hidden_act", "")).lower())
     notes: list[str] = []
@@ -228,6 +226,11 @@ def build_layers(
 
     layers = _attach_norms(layers, modules, norms)
     layers, linked = _link(layers, hidden_act)
+    layout = read_layout(source)
+    if layout is not None:
+        layers = apply_layout(layers, tensors, layout, source)
+        notes.append(f"layers adjusted by the layout file {layout['__path__']}")
+        linked = linked or any(layer.inputs_from for layer in layers)
     if config is not None:
         notes.append("layer roles refined with config.json beside the checkpoint")
     if layers and not linked:
@@ -294,8 +297,9 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
         if not match or match.group(1) != "weight" or len(weight.shape) != 2:
             continue
         _, which, depth, reverse = match.groups()
-        suffix = f"_{which}_l{depth}{reverse or ''}"
-        hh = module.leaves.get(f"weight_hh_l{depth}{reverse or ''}")
+        level = f"_l{depth}" if depth is not None else ""
+        suffix = f"_{which}{level}{reverse or ''}"
+        hh = module.leaves.get(f"weight_hh{level}{reverse or ''}")
         hidden = hh.shape[1] if hh is not None and len(hh.shape) == 2 else None
         rows = weight.shape[0]
         if not hidden or rows % hidden or rows // hidden not in _GATES:
@@ -306,7 +310,7 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
             sl = slice(index * hidden, (index + 1) * hidden)
             out.append(
                 Layer(
-                    name=f"{module.name}.{which}_l{depth}{reverse or ''}.{gate}",
+                    name=f"{module.name}.{which}{level}{reverse or ''}.{gate}",
                     kind=LayerKind.RECURRENT,
                     weight=weight.name,
                     bias=bias.name if bias is not None else None,
@@ -429,3 +433,102 @@ def _previous_sibling(
             if name in by_name:
                 return name
     return None
+
+
+#: Layout files beside a checkpoint: ``<file stem>.layout.toml`` or ``steelyard.layout.toml``.
+LAYOUT_NAMES = ("{stem}.layout.toml", "steelyard.layout.toml")
+_ACTIVATIONS = {a.value: a for a in Activation}
+_KINDS = {k.value: k for k in LayerKind}
+
+
+def read_layout(source: Path) -> dict[str, Any] | None:
+    """The user's layout file for ``source``, validated, or None."""
+    import tomllib
+
+    for pattern in LAYOUT_NAMES:
+        candidate = source.parent / pattern.format(stem=source.name.split(".")[0])
+        if candidate.is_file() and not candidate.is_symlink():
+            break
+    else:
+        return None
+    try:
+        data = tomllib.loads(candidate.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError) as exc:
+        raise LoadError(candidate, f"is not a valid layout file ({exc})") from None
+    for key in data:
+        if key not in ("orientation", "layer"):
+            raise LoadError(
+                candidate, f"layout key {key!r} is unknown (use 'orientation' or [[layer]])"
+            )
+    if data.get("orientation", "out-in") not in ("out-in", "in-out"):
+        raise LoadError(candidate, 'layout \'orientation\' must be "out-in" or "in-out"')
+    entries = data.get("layer", [])
+    if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
+        raise LoadError(candidate, "layout [[layer]] entries must be tables")
+    allowed = {"name", "orientation", "activation", "inputs-from", "kind"}
+    for entry in entries:
+        unknown = set(entry) - allowed
+        if unknown or not isinstance(entry.get("name"), str):
+            raise LoadError(
+                candidate, f"layout [[layer]] needs a 'name' and only {sorted(allowed)}"
+            )
+        if entry.get("orientation", "out-in") not in ("out-in", "in-out"):
+            raise LoadError(
+                candidate, f"layer {entry['name']!r}: orientation must be out-in or in-out"
+            )
+        if entry.get("activation", "unknown") not in _ACTIVATIONS:
+            raise LoadError(
+                candidate, f"layer {entry['name']!r}: unknown activation {entry['activation']!r}"
+            )
+        if entry.get("kind", "dense") not in _KINDS:
+            raise LoadError(candidate, f"layer {entry['name']!r}: unknown kind {entry['kind']!r}")
+        sources = entry.get("inputs-from", [])
+        if not isinstance(sources, list) or not all(isinstance(x, str) for x in sources):
+            raise LoadError(
+                candidate, f"layer {entry['name']!r}: inputs-from must be a list of names"
+            )
+    data["__path__"] = str(candidate)
+    return data
+
+
+def apply_layout(
+    layers: list[Layer], tensors: Mapping[str, Tensor], layout: Mapping[str, Any], source: Path
+) -> list[Layer]:
+    """Apply the user's orientation, activation, kind and link overrides."""
+    by_name = {entry["name"]: entry for entry in layout.get("layer", [])}
+    known = {layer.name for layer in layers}
+    for name in by_name:
+        if name not in known:
+            raise LoadError(
+                str(layout["__path__"]), f"layout names layer {name!r}, which the checkpoint lacks"
+            )
+    default = layout.get("orientation", "out-in")
+    out: list[Layer] = []
+    for layer in layers:
+        entry = by_name.get(layer.name, {})
+        orientation = entry.get("orientation", default)
+        update: dict[str, Any] = {}
+        weight = tensors[layer.weight]
+        if orientation == "in-out" and len(weight.shape) == 2 and layer.gate is None:
+            update.update(
+                units=weight.shape[1],
+                in_per_group=weight.shape[0],
+                weight_view=_float_reader(weight, np.transpose),
+                orient=np.transpose,
+            )
+            bias = tensors.get(layer.bias) if layer.bias else None
+            if bias is not None and bias.shape != (weight.shape[1],):
+                update.update(bias=None, bias_view=None)
+        if "activation" in entry:
+            update["activation"] = _ACTIVATIONS[entry["activation"]]
+        if "kind" in entry:
+            update["kind"] = _KINDS[entry["kind"]]
+        if "inputs-from" in entry:
+            missing = [n for n in entry["inputs-from"] if n not in known]
+            if missing:
+                raise LoadError(
+                    str(layout["__path__"]), f"layer {layer.name!r} is fed by unknown {missing}"
+                )
+            update.update(inputs_from=tuple(entry["inputs-from"]), linked_by=Link.INFERRED)
+        out.append(replace(layer, **update) if update else layer)
+    return out

@@ -40,8 +40,14 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
         human_bytes(checkpoint.file_size),
     )
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
-    for column in ("layer", "kind", "out × in × kernel", "activation", "fed by", "parameters"):
-        table.add_column(column, justify="right" if column == "parameters" else "left")
+    longest = max((len(layer.name) for layer in checkpoint.layers), default=5)
+    table.add_column("layer", min_width=min(longest, 60), overflow="fold")
+    for column in ("kind", "out × in × kernel", "activation", "fed by", "parameters"):
+        table.add_column(
+            column,
+            justify="right" if column == "parameters" else "left",
+            overflow="fold",
+        )
     for layer in checkpoint.layers:
         fed = ", ".join(layer.inputs_from) if layer.inputs_from else "—"
         table.add_row(

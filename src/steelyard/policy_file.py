@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import difflib
 import math
-import sys
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
@@ -19,10 +18,7 @@ from steelyard.findings import Severity
 from steelyard.policy import Ignore, LayerOverride, Policy
 from steelyard.rules import registry
 
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised on 3.10 only
-    import tomli as tomllib
+from steelyard._toml import tomllib
 
 POLICY_FILE = "steelyard.toml"
 _TOP_KEYS = ("fail-on", "input-range", "weight-decay", "frozen", "rules", "override", "ignore")

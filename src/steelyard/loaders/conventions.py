@@ -443,7 +443,7 @@ _KINDS = {k.value: k for k in LayerKind}
 
 def read_layout(source: Path) -> dict[str, Any] | None:
     """The user's layout file for ``source``, validated, or None."""
-    import tomllib
+    from steelyard._toml import tomllib
 
     for pattern in LAYOUT_NAMES:
         candidate = source.parent / pattern.format(stem=source.name.split(".")[0])

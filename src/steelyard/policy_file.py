@@ -13,12 +13,11 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from steelyard._toml import tomllib
 from steelyard.errors import PolicyError
 from steelyard.findings import Severity
 from steelyard.policy import Ignore, LayerOverride, Policy
 from steelyard.rules import registry
-
-from steelyard._toml import tomllib
 
 POLICY_FILE = "steelyard.toml"
 _TOP_KEYS = ("fail-on", "input-range", "weight-decay", "frozen", "rules", "override", "ignore")

@@ -1,0 +1,203 @@
+"""Float views of quantized ONNX weights.
+
+Every quantized operator in the ONNX operator set dequantizes linearly,
+``w = (q - zero_point) * scale``, with one scale per tensor, per channel of one axis, or
+(DequantizeLinear 21+) per block along that axis. DequantizeLinear's axis defaults to 1;
+QLinearConv and ConvInteger weights are per output channel (axis 0 of ``[M, C/g, k...]``);
+QLinearMatMul and MatMulInteger ``B [K, N]`` per column. ConvInteger and MatMulInteger carry
+no scale: exporters multiply their (Cast) output by ``input_scale * weight_scale`` in a Mul,
+which the loader finds and hands in as ``scale``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from steelyard.loaders.onnx_consts import DTYPES, Node
+from steelyard.loaders.onnx_fold import Folder, View
+
+_F32 = DTYPES[1]
+
+
+def per_axis(shape: tuple[int, ...], size: int) -> bool:
+    """True when a scale/zero-point of ``shape`` is one value, or one per ``size`` channels."""
+    squeezed = tuple(d for d in shape if d != 1)
+    return math.prod(shape) == 1 or squeezed == (size,)
+
+
+def _f32(view: View | None) -> np.ndarray | None:
+    return None if view is None else np.asarray(view.read()).astype(np.float32)
+
+
+def _along(values: np.ndarray, axis: int, rank: int) -> np.ndarray:
+    """A per-channel vector shaped to broadcast along ``axis`` of a rank-``rank`` array."""
+    flat = values.reshape(-1)
+    if flat.size == 1:
+        return flat.reshape(())
+    shape = [1] * rank
+    shape[axis] = flat.size
+    return flat.reshape(shape)
+
+
+def dequantize(folder: Folder, node: Node) -> View | None:
+    """The float view of a DequantizeLinear whose inputs are all constants."""
+    q = folder.fold(node.input(0))
+    scale = folder.fold(node.input(1))
+    zero = folder.fold(node.input(2)) if node.input(2) else None
+    if q is None or scale is None or (node.input(2) and zero is None):
+        return None
+    rank = len(q.shape)
+    axis = node.get_int("axis", 1)
+    axis = axis + rank if axis < 0 else axis
+    block = node.get_int("block_size", 0)
+    if zero is not None and zero.shape != scale.shape:
+        return None
+    if math.prod(scale.shape) == 1:
+        mode = "tensor"
+    elif block > 0 and len(scale.shape) == rank and 0 <= axis < rank:
+        expected = tuple(-(-d // block) if i == axis else d for i, d in enumerate(q.shape))
+        if scale.shape != expected:
+            return None
+        mode = "block"
+    elif 0 <= axis < rank and per_axis(scale.shape, q.shape[axis]) and len(scale.shape) == 1:
+        mode = "axis"
+    else:
+        return None
+    read_q, read_s = q.read, scale.read
+    read_z = zero.read if zero is not None else None
+    length = q.shape[axis] if rank else 0
+
+    def read() -> np.ndarray:
+        values = np.asarray(read_q()).astype(np.float32)
+        s = np.asarray(read_s()).astype(np.float32)
+        z = np.asarray(read_z()).astype(np.float32) if read_z else np.zeros_like(s)
+        if mode == "block":
+            s = np.repeat(s, block, axis=axis).take(range(length), axis=axis)
+            z = np.repeat(z, block, axis=axis).take(range(length), axis=axis)
+        elif mode == "axis":
+            s, z = _along(s, axis, rank), _along(z, axis, rank)
+        else:
+            s, z = s.reshape(()), z.reshape(())
+        # reference formula: ONNX DequantizeLinear, y = (x - x_zero_point) * x_scale
+        return np.asarray((values - z) * s, dtype=np.float32)
+
+    aux = tuple(dict.fromkeys((*q.aux, *scale.sources, *(zero.sources if zero else ()))))
+    return View(q.source, q.shape, _F32, read, q.sources, aux, (*q.via, "DequantizeLinear"), True)
+
+
+@dataclass(frozen=True)
+class QuantWeight:
+    """A quantized layer's canonical float weight (and bias) views."""
+
+    weight: str
+    shape: tuple[int, ...]
+    """Canonical ``[out, in/groups, *kernel]``."""
+    read: Callable[[], np.ndarray] = field(repr=False)
+    bias: str | None = None
+    bias_read: Callable[[], np.ndarray] | None = field(default=None, repr=False)
+    scale_found: bool = True
+
+
+def _weight(
+    q: View, scale: View | None, zero: View | None, rows_axis: int, transpose: bool
+) -> Callable[[], np.ndarray]:
+    read_q = q.read
+    read_s = scale.read if scale is not None else None
+    read_z = zero.read if zero is not None else None
+    rank = len(q.shape)
+
+    def read() -> np.ndarray:
+        values = np.asarray(read_q()).astype(np.float32)
+        s = np.asarray(read_s()).astype(np.float32) if read_s else np.ones(1, np.float32)
+        z = np.asarray(read_z()).astype(np.float32) if read_z else np.zeros(1, np.float32)
+        # reference formula: ONNX QLinearConv/QLinearMatMul/ConvInteger/MatMulInteger,
+        # real value = (quantized - zero_point) * scale, per output channel or per tensor
+        out = (values - _along(z, rows_axis, rank)) * _along(s, rows_axis, rank)
+        return np.ascontiguousarray(out.T if transpose else out, dtype=np.float32)
+
+    return read
+
+
+def _scales_fit(views: tuple[View | None, ...], size: int) -> bool:
+    return all(v is None or per_axis(v.shape, size) for v in views)
+
+
+def qlinear_conv(folder: Folder, node: Node) -> QuantWeight | None:
+    """QLinearConv ``(x, x_scale, x_zp, w, w_scale, w_zp, y_scale, y_zp, B)``."""
+    q = folder.fold(node.input(3))
+    scale, zero = folder.fold(node.input(4)), folder.fold(node.input(5))
+    if q is None or scale is None or len(q.shape) < 3 or q.dtype.is_float:
+        return None
+    units = q.shape[0]
+    if not _scales_fit((scale, zero), units):
+        return None
+    bias_key, bias_read = None, None
+    bias = folder.fold(node.input(8))
+    x_scale = folder.scalar(node.input(1))
+    if bias is not None and x_scale is not None and per_axis(bias.shape, units):
+        read_b, read_s = bias.read, scale.read
+
+        def bias_read_f() -> np.ndarray:
+            # reference: ONNX QLinearConv, B is quantized with scale x_scale * w_scale, zp 0
+            b = np.asarray(read_b()).astype(np.float32).reshape(-1)
+            s = np.asarray(read_s()).astype(np.float32).reshape(-1)
+            return np.asarray(b * np.float32(x_scale) * s, dtype=np.float32).reshape(units)
+
+        bias_key, bias_read = bias.source, bias_read_f
+    return QuantWeight(q.source, q.shape, _weight(q, scale, zero, 0, False), bias_key, bias_read)
+
+
+def qlinear_matmul(folder: Folder, node: Node) -> QuantWeight | None:
+    """QLinearMatMul ``(a, a_scale, a_zp, b, b_scale, b_zp, y_scale, y_zp)`` with constant b."""
+    q = folder.fold(node.input(3))
+    scale, zero = folder.fold(node.input(4)), folder.fold(node.input(5))
+    if q is None or scale is None or len(q.shape) != 2 or q.dtype.is_float:
+        return None
+    if not _scales_fit((scale, zero), q.shape[1]):
+        return None
+    shape = (q.shape[1], q.shape[0])
+    return QuantWeight(q.source, shape, _weight(q, scale, zero, 1, True))
+
+
+def conv_integer(folder: Folder, node: Node, scale_key: str | None) -> QuantWeight | None:
+    """ConvInteger ``(x, w, x_zp, w_zp)``; ``scale_key`` is the weight scale found downstream."""
+    q = folder.fold(node.input(1))
+    zero = folder.fold(node.input(3)) if node.input(3) else None
+    scale = folder.fold(scale_key) if scale_key else None
+    if q is None or len(q.shape) < 3 or q.dtype.is_float:
+        return None
+    if not _scales_fit((zero,), q.shape[0]) or not _scales_fit((scale,), q.shape[0]):
+        return None
+    return QuantWeight(
+        q.source, q.shape, _weight(q, scale, zero, 0, False), scale_found=scale is not None
+    )
+
+
+def matmul_integer(folder: Folder, node: Node, scale_key: str | None) -> QuantWeight | None:
+    """MatMulInteger ``(a, b, a_zp, b_zp)`` with constant ``b [K, N]``."""
+    q = folder.fold(node.input(1))
+    zero = folder.fold(node.input(3)) if node.input(3) else None
+    scale = folder.fold(scale_key) if scale_key else None
+    if q is None or len(q.shape) != 2 or q.dtype.is_float:
+        return None
+    if not _scales_fit((zero,), q.shape[1]) or not _scales_fit((scale,), q.shape[1]):
+        return None
+    shape = (q.shape[1], q.shape[0])
+    return QuantWeight(
+        q.source, shape, _weight(q, scale, zero, 1, True), scale_found=scale is not None
+    )
+
+
+#: op → (input positions holding quantized weights, positions holding scales / zero points).
+ROLE_INPUTS: dict[str, tuple[tuple[int, ...], tuple[int, ...]]] = {
+    "DequantizeLinear": ((0,), (1, 2)),
+    "QuantizeLinear": ((), (1, 2)),
+    "QLinearConv": ((3, 8), (1, 2, 4, 5, 6, 7)),
+    "QLinearMatMul": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    "ConvInteger": ((1,), (2, 3)),
+    "MatMulInteger": ((0, 1), (2, 3)),
+}

@@ -555,7 +555,9 @@ class RestrictedUnpickler(pickle._Unpickler):
         _BUILD(self)
 
     def _refuse_opcode(self) -> None:
-        raise Unsupported("uses a pickle opcode steelyard does not accept (INST, OBJ or EXT)")
+        raise Unsupported(
+            "uses a pickle opcode steelyard does not accept (INST, OBJ, EXT, BYTEARRAY8 or buffers)"
+        )
 
 
 def _depth(value: tuple[Any, ...], limit: int = MAX_TUPLE_DEPTH + 1) -> int:
@@ -582,7 +584,18 @@ RestrictedUnpickler.dispatch[pickle.INT[0]] = RestrictedUnpickler._load_int
 RestrictedUnpickler.dispatch[pickle.LONG[0]] = RestrictedUnpickler._load_long
 _BUILD: Callable[[Any], None] = pickle._Unpickler.dispatch[pickle.BUILD[0]]
 RestrictedUnpickler.dispatch[pickle.BUILD[0]] = RestrictedUnpickler._load_build
-for _op in (pickle.INST, pickle.OBJ, pickle.EXT1, pickle.EXT2, pickle.EXT4):
+# BYTEARRAY8 allocates its declared length before reading (a hostile length costs gigabytes);
+# out-of-band buffers never occur in torch files. Neither are needed, so all are refused.
+for _op in (
+    pickle.INST,
+    pickle.OBJ,
+    pickle.EXT1,
+    pickle.EXT2,
+    pickle.EXT4,
+    pickle.BYTEARRAY8,
+    pickle.NEXT_BUFFER,
+    pickle.READONLY_BUFFER,
+):
     RestrictedUnpickler.dispatch[_op[0]] = RestrictedUnpickler._refuse_opcode
 
 

@@ -15,6 +15,7 @@ import re
 import struct
 import sys
 import zipfile
+import zlib
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -125,7 +126,7 @@ class _Source:
             return self._map, offset
         info = self.members[key]
         with open_zip(self.path) as archive:
-            data = read_zip_member(archive, info, self.path, limit=info.file_size)
+            data = _member(archive, info, self.path, info.file_size)
         if len(data) != info.file_size:
             raise LoadError(
                 self.path, f"storage record {info.filename!r} is shorter than it claims"
@@ -133,8 +134,20 @@ class _Source:
         return data, 0
 
 
+def _member(archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, limit: int) -> bytes:
+    """``read_zip_member``, also refusing encrypted members and corrupt deflate streams."""
+    if info.flag_bits & 0x1:
+        raise LoadError(path, f"archive member {info.filename!r} is encrypted")
+    try:
+        return read_zip_member(archive, info, path, limit=limit)
+    except zlib.error as exc:
+        raise LoadError(path, f"archive member {info.filename!r} is corrupt ({exc})") from None
+
+
 def _local_data_offset(path: Path, info: zipfile.ZipInfo, size: int) -> int:
     """Offset of a stored member's bytes, from its local header (checked against the central)."""
+    if not 0 <= info.header_offset <= size - 30:
+        raise LoadError(path, f"archive member {info.filename!r} has no local header")
     with open(path, "rb") as handle:
         handle.seek(info.header_offset)
         header = handle.read(30)
@@ -321,7 +334,7 @@ def _read_zip(path: Path) -> Checkpoint:
         prefix = records[0][: -len("data.pkl")]
         order = "little"
         if f"{prefix}byteorder" in members:
-            text = read_zip_member(archive, members[f"{prefix}byteorder"], path, limit=16)
+            text = _member(archive, members[f"{prefix}byteorder"], path, 16)
             if text not in (b"little", b"big"):
                 raise LoadError(path, f"byteorder record says {text[:16]!r}")
             order = text.decode()
@@ -332,7 +345,7 @@ def _read_zip(path: Path) -> Checkpoint:
             folder: _zip_source(path, members, f"{prefix}{folder}/", size)
             for folder in ("data", "constants")
         }
-        pickled = read_zip_member(archive, members[records[0]], path, limit=MAX_PICKLE_BYTES)
+        pickled = _member(archive, members[records[0]], path, MAX_PICKLE_BYTES)
         storages = _Storages(path, sources["data"])
         root = restricted_load(pickled, path, "data.pkl", storages.persistent_load, script)
         notes: list[str] = []
@@ -341,9 +354,7 @@ def _read_zip(path: Path) -> Checkpoint:
             constants: Any = ()
             constant_storages = _Storages(path, sources["constants"])
             if f"{prefix}constants.pkl" in members:
-                blob = read_zip_member(
-                    archive, members[f"{prefix}constants.pkl"], path, limit=MAX_PICKLE_BYTES
-                )
+                blob = _member(archive, members[f"{prefix}constants.pkl"], path, MAX_PICKLE_BYTES)
                 constants = restricted_load(
                     blob, path, "constants.pkl", constant_storages.persistent_load, True
                 )
@@ -896,7 +907,7 @@ def _script_code(
         if info.file_size > budget:
             break
         budget -= info.file_size
-        text = read_zip_member(archive, info, path, limit=info.file_size).decode("utf-8", "replace")
+        text = _member(archive, info, path, info.file_size).decode("utf-8", "replace")
         module = name[len(folder) : -3].replace("/", ".")
         current: str | None = None
         for line in text.splitlines():

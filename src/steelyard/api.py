@@ -16,6 +16,7 @@ from pathlib import Path
 
 from steelyard import __version__
 from steelyard.audit import audit_checkpoint
+from steelyard.compare.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
@@ -147,3 +148,33 @@ def audit(
 ) -> Report:
     """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document."""
     return audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind)
+
+
+def compare(
+    old: str | Path,
+    new: str | Path,
+    policy: Policy | None = None,
+    created: str | None = None,
+) -> CompareReport:
+    """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
+    ``steelyard.compare/1`` document."""
+    from steelyard.compare import compare_checkpoints
+
+    chosen = policy or Policy()
+    before = _load(old)
+    after = _load(new)
+    try:
+        comparison = compare_checkpoints(before, after, chosen)
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
+        # Tensors are read lazily, so a file can turn out broken only when it is compared.
+        raise LoadError(
+            f"{before.path} or {after.path}", f"could not be read ({type(exc).__name__}: {exc})"
+        ) from exc
+    return CompareReport(
+        tool_version=__version__,
+        created=created or now(),
+        fail_on=chosen.fail_on,
+        policy_source=chosen.source,
+        comparison=comparison,
+        frozen=tuple(chosen.frozen),
+    )

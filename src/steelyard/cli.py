@@ -18,6 +18,7 @@ import typer
 from typing_extensions import assert_never
 
 from steelyard import __version__, api
+from steelyard.compare.report import CompareReport
 from steelyard.errors import SteelyardError
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
@@ -212,6 +213,82 @@ def audit(
         if write_baseline is not None:
             _write(baseline_text(report.audits, __version__), write_baseline)
         _write(_render(report, format or AuditFormat.table), output)
+        if not quiet and output is not None:
+            typer.echo(f"steelyard: wrote {output}", err=True)
+    except SteelyardError as error:
+        _fail(error)
+    raise typer.Exit(0 if report.passed else 1)
+
+
+class CompareFormat(str, Enum):
+    """Output formats of ``steelyard compare``."""
+
+    table = "table"
+    json = "json"
+    markdown = "markdown"
+    sarif = "sarif"
+    junit = "junit"
+
+
+def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
+    from steelyard.render.compare_formats import (
+        render_compare_junit,
+        render_compare_markdown,
+        render_compare_sarif,
+    )
+    from steelyard.render.compare_table import render_compare_table
+
+    if chosen is CompareFormat.json:
+        return report.to_json()
+    if chosen is CompareFormat.table:
+        return render_compare_table(report, color=_color(), width=_width())
+    if chosen is CompareFormat.markdown:
+        return render_compare_markdown(report)
+    if chosen is CompareFormat.sarif:
+        return render_compare_sarif(report)
+    if chosen is CompareFormat.junit:
+        return render_compare_junit(report)
+    assert_never(chosen)
+
+
+@app.command()
+def compare(
+    old: Path = typer.Argument(..., help="The earlier checkpoint (file, shard index, or folder)."),
+    new: Path = typer.Argument(..., help="The later checkpoint, in the same or another format."),
+    format: CompareFormat | None = typer.Option(
+        None, "--format", "-f", help="Output format [default: table]."
+    ),
+    output: Path | None = typer.Option(
+        None, "--output", "-o", help="Write the report here, atomically."
+    ),
+    fail_on: FailOn | None = typer.Option(
+        None,
+        "--fail-on",
+        help="Lowest severity that fails the gate [default: the policy's, else error].",
+    ),
+    policy_file: Path | None = typer.Option(
+        None,
+        "--policy",
+        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
+    ),
+    quiet: bool = typer.Option(
+        False, "--quiet", "-q", help="No progress or diagnostics on stderr."
+    ),
+) -> None:
+    """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
+    from dataclasses import replace
+
+    from steelyard.policy_file import load_policy
+    from steelyard.progress import Progress
+
+    try:
+        policy = load_policy(policy_file)
+        if fail_on is not None:
+            policy = replace(policy, fail_on=fail_on.value)
+        with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
+            progress.advance(f"{old} → {new}")
+            report = api.compare(old, new, policy=policy)
+        _write(_render_compare(report, format or CompareFormat.table), output)
         if not quiet and output is not None:
             typer.echo(f"steelyard: wrote {output}", err=True)
     except SteelyardError as error:

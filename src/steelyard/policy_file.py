@@ -100,8 +100,15 @@ def _number(source: str, key: str, value: Any, *, allow_none: bool = False) -> f
     return float(value)
 
 
+def _known_rules() -> dict[str, Any]:
+    """Audit rules and ``steelyard compare``'s rules: one policy file configures both."""
+    from steelyard.compare.rules import compare_registry
+
+    return {**registry(), **compare_registry()}
+
+
 def _rule_settings(source: str, where: str, rule: str, table: Any) -> dict[str, Any]:
-    specs = registry()
+    specs = _known_rules()
     if rule not in specs:
         raise _fail(source, where, f"names no rule{_suggest(rule, tuple(specs))}")
     if not isinstance(table, dict):
@@ -194,7 +201,7 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
         }
         overrides.append(LayerOverride(layers=glob, rules=settings))
     ignores: list[Ignore] = []
-    specs = registry()
+    specs = _known_rules()
     for index, entry in enumerate(_table_list(source, "ignore", data.get("ignore", []))):
         where = f"ignore[{index}]"
         for key in entry:

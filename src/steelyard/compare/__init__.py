@@ -1,0 +1,366 @@
+"""``steelyard compare OLD NEW``: what changed between two checkpoints, and is it healthy.
+
+The pipeline: audit both checkpoints (the audit rules, unchanged) → match layers
+(:mod:`~steelyard.compare.matching`) → line each pair up (exact, precision-only, permuted or
+changed; :mod:`~steelyard.compare.diff`) → verify permutations against their consumers →
+measure → comparison rules (:mod:`~steelyard.compare.rules`) → one
+:class:`~steelyard.compare.report.Comparison`. NEW's audit findings are split into those
+already present in OLD (reported, not gated on, like a baseline) and new ones (gated on).
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from steelyard.audit import audit_checkpoint
+from steelyard.compare.diff import (
+    Alignment,
+    Side,
+    align,
+    aligned_old,
+    compare_parts,
+    cosine,
+    fan_in_summary,
+    new_nonfinite,
+    relative,
+    sums,
+    top_units,
+)
+from steelyard.compare.matching import Pair, match_layers
+from steelyard.compare.report import CompareReport, Comparison, LayerDiff, Status, UnitChange
+from steelyard.compare.rules import (
+    CompareContext,
+    CompareRuleSpec,
+    compare_registry,
+    run_compare_rules,
+)
+from steelyard.findings import Finding
+from steelyard.gradients import optimizer_source
+from steelyard.graph import Checkpoint, Layer
+from steelyard.inventory import layer_block
+from steelyard.policy import Policy
+from steelyard.ranking import rank
+from steelyard.report import CheckpointAudit
+
+__all__ = [
+    "CompareReport",
+    "CompareRuleSpec",
+    "Comparison",
+    "LayerDiff",
+    "Status",
+    "UnitChange",
+    "compare_checkpoints",
+    "compare_registry",
+]
+
+
+def _topological(pairs: Sequence[Pair], side: Side) -> list[Pair]:
+    """Same-shape pairs with producers before consumers (NEW's order breaks ties and cycles)."""
+    chosen = [p for p in pairs if p.same_shape]
+    by_name = {p.new.name: p for p in chosen if p.new is not None}
+    done: set[str] = set()
+    order: list[Pair] = []
+
+    def visit(name: str, trail: set[str]) -> None:
+        if name in done or name in trail:
+            return
+        trail.add(name)
+        layer = by_name[name].new
+        assert layer is not None
+        for producer in side.stats.producers(layer):
+            if producer.name in by_name:
+                visit(producer.name, trail)
+        done.add(name)
+        order.append(by_name[name])
+
+    for pair in chosen:
+        assert pair.new is not None
+        visit(pair.new.name, set())
+    return order
+
+
+def _align_all(
+    pairs: Sequence[Pair], old: Side, new: Side
+) -> tuple[dict[str, Alignment], dict[str, str]]:
+    """Alignment of every same-shape pair, keyed by NEW's layer name, with the reasons a
+    row permutation was rejected. A permutation stands only when every consumer of the layer
+    lines up under it; rejecting one can break another, so this repeats until stable."""
+    order = _topological(pairs, new)
+    allowed = {p.new.name for p in order if p.new is not None}
+    rejected: dict[str, str] = {}
+    while True:
+        perms: dict[str, np.ndarray] = {}
+        results: dict[str, Alignment] = {}
+        for pair in order:
+            assert pair.old is not None and pair.new is not None
+            result = align(old, pair.old, new, pair.new, perms, pair.new.name in allowed)
+            results[pair.new.name] = result
+            if result.rows is not None:
+                perms[pair.new.name] = result.rows
+        bad: dict[str, str] = {}
+        for pair in order:
+            assert pair.new is not None
+            result = results[pair.new.name]
+            if result.rows is None:
+                continue
+            consumers = new.stats.consumers(pair.new)
+            if not consumers:
+                bad[pair.new.name] = (
+                    "its rows are OLD's in another order, but no layer is known to "
+                    "read its units, so the reorder may change the outputs"
+                )
+                continue
+            broken = [
+                c.name
+                for c in consumers
+                if c.name not in results or results[c.name].outcome == "changed"
+            ]
+            if broken:
+                bad[pair.new.name] = (
+                    f"its rows are OLD's in another order, but {', '.join(broken)} "
+                    "does not read them in that order"
+                )
+        if not bad:
+            return results, rejected
+        allowed -= set(bad)
+        rejected.update(bad)
+
+
+def _removed(layer: Layer, side: Side) -> LayerDiff:
+    return LayerDiff(
+        name=layer.name,
+        status=Status.REMOVED,
+        old_name=layer.name,
+        new_name=None,
+        matched_by=None,
+        old_layer=layer_block(layer),
+        new_layer=None,
+        fan_in_norm_old=fan_in_summary(side.stats.row_norms(layer)),
+    )
+
+
+def _structural(pair: Pair, old: Side, new: Side) -> LayerDiff:
+    """An added layer, or a matched one whose shape changed."""
+    layer = pair.new
+    assert layer is not None
+    parts: list[tuple[np.ndarray | None, np.ndarray]] = [(None, new.matrix(layer))]
+    parts += [(None, values) for values, _ in new.vectors(layer).values()]
+    found = new_nonfinite(parts)
+    elements = sum(p[1].size for p in parts)
+    if pair.old is None:
+        return LayerDiff(
+            name=layer.name,
+            status=Status.ADDED,
+            old_name=None,
+            new_name=layer.name,
+            matched_by=None,
+            old_layer=None,
+            new_layer=layer_block(layer),
+            fan_in_norm_new=fan_in_summary(new.stats.row_norms(layer)),
+            nonfinite_new=found.count,
+            nonfinite_units=found.units,
+            elements=elements,
+        )
+    before = pair.old
+    old_parts = [old.matrix(before), *(v for v, _ in old.vectors(before).values())]
+    already = any(not np.all(np.isfinite(p)) for p in old_parts)
+    note = (
+        f"{before.kind.value} {before.units}×{before.fan_in} (groups {before.groups}) → "
+        f"{layer.kind.value} {layer.units}×{layer.fan_in} (groups {layer.groups})"
+    )
+    return LayerDiff(
+        name=layer.name,
+        status=Status.RESHAPED,
+        old_name=before.name,
+        new_name=layer.name,
+        matched_by=pair.matched_by,
+        old_layer=layer_block(before),
+        new_layer=layer_block(layer),
+        fan_in_norm_old=fan_in_summary(old.stats.row_norms(before)),
+        fan_in_norm_new=fan_in_summary(new.stats.row_norms(layer)),
+        nonfinite_new=0 if already else found.count,
+        nonfinite_units=() if already else found.units,
+        elements=elements,
+        note=note,
+    )
+
+
+def _matched(
+    pair: Pair, result: Alignment, rejected: str, old: Side, new: Side
+) -> tuple[LayerDiff, float, float]:
+    """A same-shape pair, measured after undoing any verified permutation; also returns
+    Σ(B−A)² and ΣA² for the overall change."""
+    before, layer = pair.old, pair.new
+    assert before is not None and layer is not None
+    rows, columns = result.rows, result.columns
+    if rows is not None:
+        checks, _ = compare_parts(old, before, new, layer, columns, rows)
+        moved = sum(c.moved for c in checks.values())
+    else:
+        moved = result.moved
+    same = result.outcome in ("exact", "precision", "permuted")
+    a = aligned_old(old, before, columns, rows)
+    b = new.matrix(layer)
+    measured = sums(a, b)
+    old_vectors, new_vectors = old.vectors(before), new.vectors(layer)
+    bias_change = None
+    if "bias" in old_vectors and "bias" in new_vectors:
+        old_bias = old_vectors["bias"][0] if rows is None else old_vectors["bias"][0][rows]
+        delta = new_vectors["bias"][0].astype(np.float64) - old_bias.astype(np.float64)
+        bias_change = relative(
+            float(np.dot(delta, delta)), float(np.dot(old_bias.astype(np.float64), old_bias))
+        )
+    parts: list[tuple[np.ndarray | None, np.ndarray]] = [(a, b)]
+    for key, (values, _) in new_vectors.items():
+        previous = old_vectors.get(key)
+        if previous is None:
+            parts.append((None, values))
+        else:
+            parts.append((previous[0] if rows is None else previous[0][rows], values))
+    found = new_nonfinite(parts)
+    dead_new = new.dead(layer)
+    dead_old = old.dead(before)
+    if rows is not None:
+        dead_old = frozenset(i for i, r in enumerate(rows.tolist()) if r in dead_old)
+    change = relative(measured.diff_sq, measured.old_sq)
+    notes = [n for n in (result.note, rejected) if n]
+    if result.columns is not None and not same:
+        notes.append("compared after undoing the permutation of its inputs")
+    diff = LayerDiff(
+        name=layer.name,
+        status=Status.SAME if same else Status.CHANGED,
+        old_name=before.name,
+        new_name=layer.name,
+        matched_by=pair.matched_by,
+        old_layer=layer_block(before),
+        new_layer=layer_block(layer),
+        relative_change=None if math.isnan(change) else change,
+        cosine=cosine(measured),
+        bias_relative_change=None
+        if bias_change is None or math.isnan(bias_change)
+        else bias_change,
+        fan_in_norm_old=fan_in_summary(old.stats.row_norms(before)),
+        fan_in_norm_new=fan_in_summary(new.stats.row_norms(layer)),
+        units_died=tuple(sorted(dead_new - dead_old)),
+        units_revived=tuple(sorted(dead_old - dead_new)),
+        permuted=same and (rows is not None or columns is not None),
+        moved_units=0 if rows is None else int(np.count_nonzero(rows != np.arange(rows.size))),
+        precision_only=result.outcome == "precision",
+        precision=result.lower if result.outcome == "precision" else None,
+        top_units=() if same else top_units(measured, b),
+        moved_elements=0 if same else moved,
+        elements=result.elements,
+        nonfinite_new=found.count,
+        nonfinite_units=found.units,
+        note="; ".join(notes),
+    )
+    finite = math.isfinite(measured.diff_sq) and math.isfinite(measured.old_sq)
+    return diff, measured.diff_sq if finite else 0.0, measured.old_sq if finite else 0.0
+
+
+def _rank_key(diff: LayerDiff) -> tuple[int, float, str]:
+    if diff.status.structural:
+        group = {Status.RESHAPED: 0, Status.REMOVED: 1, Status.ADDED: 2}[diff.status]
+        return (0, float(group), diff.name)
+    value = diff.relative_change
+    magnitude = math.inf if value is None else value
+    return (1 if diff.status is Status.CHANGED else 2, -magnitude, diff.name)
+
+
+def _unit_map(
+    pairs: Sequence[Pair], alignments: dict[str, Alignment]
+) -> dict[str, tuple[str, np.ndarray | None]]:
+    out: dict[str, tuple[str, np.ndarray | None]] = {}
+    for pair in pairs:
+        if pair.old is not None and pair.new is not None:
+            result = alignments.get(pair.new.name)
+            out[pair.new.name] = (pair.old.name, result.rows if result is not None else None)
+    return out
+
+
+def split_audit(
+    old_audit: CheckpointAudit,
+    new_audit: CheckpointAudit,
+    pairs: Sequence[Pair],
+    alignments: dict[str, Alignment],
+) -> tuple[list[Finding], list[Finding]]:
+    """NEW's audit findings split into (new, already present in OLD).
+
+    A finding is present in OLD when OLD has one with the same id (rule, tensor, part, units),
+    or, for files whose tensor names differ, the same rule, part and units on the matched layer
+    (units mapped through a verified permutation).
+    """
+    old_ids = {f.id for f in old_audit.findings}
+    old_keys = {(f.rule, f.layer, f.part, f.units) for f in old_audit.findings if f.layer}
+    mapping = _unit_map(pairs, alignments)
+    fresh: list[Finding] = []
+    present: list[Finding] = []
+    for finding in new_audit.findings:
+        known = finding.id in old_ids
+        if not known and finding.layer in mapping:
+            old_name, rows = mapping[finding.layer]
+            units = finding.units
+            if rows is not None and all(u < rows.size for u in units):
+                units = tuple(sorted(int(rows[u]) for u in units))
+            known = (finding.rule, old_name, finding.part, units) in old_keys
+        (present if known else fresh).append(finding)
+    return fresh, present
+
+
+def _frozen_notes(policy: Policy, old: Checkpoint) -> list[str]:
+    names = [layer.name for layer in old.layers]
+    return [
+        f"frozen glob {glob!r} matches no layer of OLD"
+        for glob in policy.frozen
+        if not any(fnmatch.fnmatchcase(n, glob) for n in names)
+    ]
+
+
+def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Comparison:
+    """Compare two loaded checkpoints under one policy."""
+    old_audit = audit_checkpoint(old, policy, optimizer_source(old))
+    new_audit = audit_checkpoint(new, policy, optimizer_source(new))
+    old_side, new_side = Side(old, policy), Side(new, policy)
+    pairs = match_layers(old.layers, new.layers)
+    alignments, rejected = _align_all(pairs, old_side, new_side)
+    diffs: list[LayerDiff] = []
+    total_diff = total_base = 0.0
+    for pair in pairs:
+        if pair.new is None:
+            assert pair.old is not None
+            diffs.append(_removed(pair.old, old_side))
+        elif not pair.same_shape:
+            diffs.append(_structural(pair, old_side, new_side))
+        else:
+            name = pair.new.name
+            diff, diff_sq, base_sq = _matched(
+                pair, alignments[name], rejected.get(name, ""), old_side, new_side
+            )
+            diffs.append(diff)
+            total_diff += diff_sq
+            total_base += base_sq
+    ranked = tuple(sorted(diffs, key=_rank_key))
+    context = CompareContext(old=old, new=new, policy=policy, diffs=ranked)
+    findings, ignored = run_compare_rules(context)
+    fresh, present = split_audit(old_audit, new_audit, pairs, alignments)
+    notes = [
+        *_frozen_notes(policy, old),
+        *(f"OLD: {n}" for n in old.notes),
+        *(f"NEW: {n}" for n in new.notes),
+    ]
+    overall = relative(total_diff, total_base) if total_base > 0 or total_diff > 0 else None
+    return Comparison(
+        old=old_audit.checkpoint,
+        new=new_audit.checkpoint,
+        layers=ranked,
+        findings=rank(findings),
+        audit_new=rank(fresh),
+        audit_present=rank(present),
+        overall_relative_change=None if overall is None or math.isnan(overall) else overall,
+        notes=tuple(notes),
+        ignored=ignored + new_audit.ignored,
+    )

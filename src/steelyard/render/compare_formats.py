@@ -1,0 +1,222 @@
+"""Markdown, SARIF and JUnit for ``steelyard compare``.
+
+SARIF and JUnit reuse the audit renderers through a small adapter: the comparison becomes an
+audit :class:`~steelyard.report.Report` of NEW whose findings are the gated ones and whose
+baselined findings are those already present in OLD; the comparison rules are then added to
+SARIF's rules table and to JUnit's test cases, which the audit renderers build from the audit
+registry only. Markdown has its own short body: verdict, layer changes, findings, caution.
+"""
+
+from __future__ import annotations
+
+import json
+import xml.etree.ElementTree as ET
+from collections import defaultdict
+from typing import Any
+
+from steelyard.compare.report import CompareReport, LayerDiff, Status
+from steelyard.compare.rules import compare_registry
+from steelyard.findings import Finding
+from steelyard.ranking import rank
+from steelyard.render.compare_table import number, overview
+from steelyard.render.markdown import TOP, _cell, _rows
+from steelyard.render.sarif import level
+from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
+
+
+def as_audit_report(report: CompareReport) -> Report:
+    """The comparison as an audit report of NEW (present-in-OLD findings as baselined)."""
+    comparison = report.comparison
+    seen: set[str] = set()
+    layers: list[LayerHealth] = []
+    for diff in comparison.layers:
+        block = diff.new_layer or diff.old_layer
+        if block is None or diff.name in seen:
+            continue
+        seen.add(diff.name)
+        norms = diff.fan_in_norm_new or diff.fan_in_norm_old or (float("nan"),) * 3
+        layers.append(
+            LayerHealth(
+                layer={**block, "name": diff.name},
+                fan_in_norm=norms,
+                norm_histogram=(),
+                dead=0,
+                twins=0,
+                unsupported_share=None,
+            )
+        )
+    audit = CheckpointAudit(
+        checkpoint=comparison.new,
+        layers=tuple(layers),
+        findings=rank(comparison.gated),
+        gradient_source=None,
+        notes=comparison.notes,
+        ignored=comparison.ignored,
+        baselined=comparison.audit_present,
+    )
+    return Report(
+        tool_version=report.tool_version,
+        created=report.created,
+        fail_on=report.fail_on,
+        policy_source=report.policy_source,
+        audits=(audit,),
+        baseline={
+            "path": str(comparison.old.get("path", "")),
+            "matched": len(comparison.audit_present),
+            "fixed": [],
+        },
+    )
+
+
+# ---- SARIF --------------------------------------------------------------------------------
+def render_compare_sarif(report: CompareReport) -> str:
+    """SARIF 2.1.0: the audit's log of NEW plus the comparison rules in the rules table."""
+    from steelyard.render.sarif import render_sarif
+
+    log: dict[str, Any] = json.loads(render_sarif(as_audit_report(report)))
+    run = log["runs"][0]
+    rules: list[dict[str, Any]] = run["tool"]["driver"]["rules"]
+    index: dict[str, int] = {}
+    for spec in compare_registry().values():
+        index[spec.name] = len(rules)
+        rules.append(
+            {
+                "id": spec.name,
+                "name": "".join(part.capitalize() for part in spec.name.split("-")),
+                "shortDescription": {"text": spec.summary},
+                "fullDescription": {"text": spec.doc.split("\n\n")[0]},
+                "help": {"text": spec.doc, "markdown": spec.doc},
+                "helpUri": spec.help_uri,
+                "defaultConfiguration": {"level": level(spec.severity)},
+                "properties": {"thresholds": dict(spec.thresholds), "command": "compare"},
+            }
+        )
+    for result in run["results"]:
+        if result["ruleId"] in index:
+            result["ruleIndex"] = index[result["ruleId"]]
+    comparison = report.comparison
+    run["properties"]["compare"] = {
+        "old": dict(comparison.old),
+        "new": dict(comparison.new),
+        "layers": comparison.statuses(),
+    }
+    return json.dumps(log, indent=2, ensure_ascii=False) + "\n"
+
+
+# ---- JUnit --------------------------------------------------------------------------------
+def render_compare_junit(report: CompareReport) -> str:
+    """JUnit XML: the audit's suite for NEW plus one test case per comparison rule and layer."""
+    from steelyard.render.junit import render_junit
+
+    root = ET.fromstring(render_junit(as_audit_report(report)).split("\n", 1)[1])
+    suite = root.find("testsuite")
+    assert suite is not None
+    comparison = report.comparison
+    path = str(comparison.new.get("path", ""))
+    by_case: dict[tuple[str, str], list[Finding]] = defaultdict(list)
+    for finding in comparison.findings:
+        by_case[(finding.rule, finding.layer or "(checkpoint)")].append(finding)
+    names = list(dict.fromkeys(d.name for d in comparison.layers))
+    gate = report.gate
+    tests = failures = 0
+    for rule in compare_registry():
+        extra = ["(checkpoint)"] if (rule, "(checkpoint)") in by_case else []
+        for layer in [*names, *extra]:
+            tests += 1
+            case = ET.SubElement(
+                suite, "testcase", classname=f"compare.{rule}", name=layer, file=path
+            )
+            found = by_case.get((rule, layer), [])
+            failing = [f for f in found if gate is not None and f.severity.at_least(gate)]
+            for finding in failing:
+                failures += 1
+                node = ET.SubElement(
+                    case, "failure", message=finding.message, type=finding.severity.value
+                )
+                node.text = f"{finding.message}\nhint: {finding.hint}\nunits: {list(finding.units)}\nid: {finding.id}"
+            below = [f for f in found if f not in failing]
+            if below:
+                out = ET.SubElement(case, "system-out")
+                out.text = "\n".join(f"[{f.severity.value}] {f.message}" for f in below)
+    for node in (suite, root):
+        node.set("tests", str(int(node.get("tests", "0")) + tests))
+        node.set("failures", str(int(node.get("failures", "0")) + failures))
+    ET.indent(root)
+    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
+
+
+# ---- Markdown -----------------------------------------------------------------------------
+def _layer_rows(layers: tuple[LayerDiff, ...] | list[LayerDiff]) -> list[str]:
+    lines = [
+        "| layer | status | relative change | cosine | died | revived |",
+        "| --- | --- | --- | --- | --- | --- |",
+    ]
+    for diff in layers:
+        status = diff.status.value
+        if diff.permuted:
+            status += " (permuted)"
+        elif diff.precision_only:
+            status += f" ({diff.precision or 'precision'} rounding)"
+        lines.append(
+            f"| `{_cell(diff.name)}` | {status} | {number(diff.relative_change)} | {number(diff.cosine)} | "
+            f"{len(diff.units_died) or '—'} | {len(diff.units_revived) or '—'} |"
+        )
+    return lines
+
+
+def render_compare_markdown(report: CompareReport) -> str:
+    """A pull-request comment body."""
+    comparison = report.comparison
+    if report.gate is None:
+        verdict = "⚪ report only"
+    else:
+        verdict = "❌ failed" if comparison.failing(report.gate) else "✅ passed"
+    counts = comparison.counts()
+    old, new = comparison.old, comparison.new
+    lines = [
+        f"## steelyard compare: {verdict}",
+        "",
+        f"`{_cell(str(old['path']))}` ({old['format']}) → `{_cell(str(new['path']))}` ({new['format']})",
+        "",
+        f"**{counts['error']}** errors, **{counts['warning']}** warnings, **{counts['info']}** info "
+        f"(gate: `--fail-on {report.fail_on}`).",
+        "",
+        overview(report) + ".",
+        "",
+    ]
+    if comparison.audit_present:
+        lines += [
+            f"{len(comparison.audit_present)} audit findings of NEW were already present in OLD (not gated).",
+            "",
+        ]
+    moved = [
+        d
+        for d in comparison.layers
+        if d.status is not Status.SAME or d.permuted or d.precision_only
+    ]
+    if moved:
+        lines += _layer_rows(moved[:TOP])
+        if len(moved) > TOP:
+            lines += ["", f"<details><summary>{len(moved) - TOP} more layers</summary>", ""]
+            lines += _layer_rows(moved[TOP:])
+            lines += ["", "</details>"]
+        lines.append("")
+    else:
+        lines += ["Every layer is identical.", ""]
+    gated = rank(comparison.gated)
+    if gated:
+        lines += _rows(gated[:TOP])
+        if len(gated) > TOP:
+            lines += ["", f"<details><summary>{len(gated) - TOP} more findings</summary>", ""]
+            lines += _rows(gated[TOP:])
+            lines += ["", "</details>"]
+    else:
+        lines.append("No findings.")
+    lines += [
+        "",
+        f"_{CAUTION}_",
+        "",
+        f"<sub>steelyard {report.tool_version}, policy: {report.policy_source}</sub>",
+        "",
+    ]
+    return "\n".join(lines)

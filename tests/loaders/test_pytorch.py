@@ -464,6 +464,54 @@ def test_ambiguous_optimizer_is_not_guessed(
     assert set(checkpoint.tensors) == {"fc.weight", "fc.bias"}
 
 
+def test_tied_weights_count_once_for_the_optimizer(tmp_path: Path) -> None:
+    # named_parameters() lists a tied parameter once (torch convention), the state dict twice.
+    model = {"emb.weight": T("0", 6, (2, 3), (3, 1)), "head.weight": T("0", 6, (2, 3), (3, 1))}
+    optimizer = _optimizer([(2, 3)], [0])
+    storages = {"0": _floats(np.ones(6)), "m0": _floats(np.ones(6)), "v0": _floats(np.ones(6))}
+    path = _archive(
+        tmp_path / "tied.pt", _pickle({"model": model, "optimizer": optimizer}), storages
+    )
+    checkpoint = load(path)
+    assert checkpoint.optimizer is not None
+    assert list(checkpoint.optimizer.slots) == ["emb.weight"]
+
+
+def test_lightning_style_optimizer_list_and_nested_parts(tmp_path: Path) -> None:
+    model = {"fc.weight": T("0", 6, (2, 3), (3, 1)), "fc.bias": T("1", 2, (2,), (1,))}
+    storages = {"0": _floats(np.ones(6)), "1": _floats(np.ones(2))}
+    for key in ("m0", "v0"):
+        storages[key] = _floats(np.full(6, 0.5))
+    for key in ("m1", "v1"):
+        storages[key] = _floats(np.full(2, 0.5))
+    data = _pickle({"state_dict": model, "optimizer_states": [_optimizer([(2, 3), (2,)], [0, 1])]})
+    checkpoint = load(_archive(tmp_path / "pl.pt", data, storages))
+    assert checkpoint.optimizer is not None
+    assert checkpoint.optimizer.source == "optimizer_states in pl.pt"
+    slots = checkpoint.optimizer.slots["fc.bias"]
+    assert slots.second_moment is not None
+    np.testing.assert_array_equal(slots.second_moment.read(), np.full(2, 0.5, np.float32))
+    # No known key: every state dict entry is gathered, named by its entry.
+    parts = _pickle(
+        {"encoder": {"w": T("0", 6, (6,), (1,))}, "decoder": {"w": T("1", 2, (2,), (1,))}}
+    )
+    gathered = load(_archive(tmp_path / "parts.pt", parts, storages))
+    assert set(gathered.tensors) == {"encoder.w", "decoder.w"}
+    assert any("gathered" in note for note in gathered.notes)
+
+
+def test_pre_04_tar_checkpoint_is_refused_clearly(tmp_path: Path) -> None:
+    import tarfile
+
+    path = tmp_path / "old.pt"
+    with tarfile.open(path, "w", format=tarfile.USTAR_FORMAT) as archive:
+        for name in ("sys_info", "pickle", "storages", "tensors"):
+            info = tarfile.TarInfo(name)
+            info.size = 0
+            archive.addfile(info)
+    _refused(path, "pre-0.4", "torch.save(obj, path)")
+
+
 # --------------------------------------------------------------------------- hostile pickles
 
 

@@ -173,6 +173,8 @@ def _int(value: object, what: str, minimum: int = 0) -> int:
 def _ints(value: object, what: str) -> tuple[int, ...]:
     if not isinstance(value, (tuple, list)) or len(value) > MAX_DIMS:
         raise Unsupported(f"{what} is not a short list of integers")
+    if all(type(v) is int and v >= 0 for v in value):
+        return tuple(value)
     return tuple(_int(v, what) for v in value)
 
 
@@ -521,12 +523,15 @@ class RestrictedUnpickler(pickle._Unpickler):
         for item in top:
             if isinstance(item, tuple) and item:
                 known = self._depths.get(id(item))
-                inner = known[1] if known is not None and known[0] is item else _depth(item)
-                depth = max(depth, inner + 1)
+                # Flat tuples are not recorded (most are): measure them directly.
+                inner = known[1] if known is not None else _depth(item)
+                if inner >= depth:
+                    depth = inner + 1
         if depth > MAX_TUPLE_DEPTH:
             raise Unsupported(f"nests tuples more than {MAX_TUPLE_DEPTH} deep")
-        # Keep the tuple itself so its id cannot be reused by another object.
-        self._depths[id(top)] = (top, depth)
+        if depth > 1:
+            # Keep the tuple itself alive so its id cannot be reused by another object.
+            self._depths[id(top)] = (top, depth)
 
     def _load_int(self) -> None:
         data = self.readline()

@@ -19,7 +19,7 @@ import zlib
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, BinaryIO
 
 import numpy as np
 
@@ -144,17 +144,16 @@ def _member(archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, limit: 
         raise LoadError(path, f"archive member {info.filename!r} is corrupt ({exc})") from None
 
 
-def _local_data_offset(path: Path, info: zipfile.ZipInfo, size: int) -> int:
+def _local_data_offset(path: Path, handle: BinaryIO, info: zipfile.ZipInfo, size: int) -> int:
     """Offset of a stored member's bytes, from its local header (checked against the central)."""
     if not 0 <= info.header_offset <= size - 30:
         raise LoadError(path, f"archive member {info.filename!r} has no local header")
-    with open(path, "rb") as handle:
-        handle.seek(info.header_offset)
-        header = handle.read(30)
-        if len(header) != 30 or header[:4] != _ZIP_MAGIC:
-            raise LoadError(path, f"archive member {info.filename!r} has no local header")
-        name_length, extra_length = struct.unpack("<HH", header[26:30])
-        raw_name = handle.read(name_length)
+    handle.seek(info.header_offset)
+    header = handle.read(30)
+    if len(header) != 30 or header[:4] != _ZIP_MAGIC:
+        raise LoadError(path, f"archive member {info.filename!r} has no local header")
+    name_length, extra_length = struct.unpack("<HH", header[26:30])
+    raw_name = handle.read(name_length)
     expected = info.orig_filename.encode("utf-8" if info.flag_bits & 0x800 else "cp437", "replace")
     if raw_name != expected:
         raise LoadError(
@@ -300,7 +299,7 @@ class PytorchLoader:
     format = Format.PYTORCH
 
     def sniff(self, path: Path, head: bytes) -> bool:
-        if head.startswith(_LEGACY_MAGIC):
+        if head.startswith(_LEGACY_MAGIC) or _is_tar_checkpoint(head):
             return True
         if not head.startswith(_ZIP_MAGIC):
             return False
@@ -313,11 +312,18 @@ class PytorchLoader:
 
     def load(self, path: Path) -> Checkpoint:
         with open(path, "rb") as handle:
-            head = handle.read(len(_LEGACY_MAGIC))
-        if head == _LEGACY_MAGIC:
+            head = handle.read(512)
+        if _is_tar_checkpoint(head):
+            raise LoadError(path, f"is a pre-0.4 PyTorch tar checkpoint; {_REREAD}")
+        if head.startswith(_LEGACY_MAGIC):
             root, storages, order = _read_legacy(path)
             return _checkpoint(path, root, storages, order, [])
         return _read_zip(path)
+
+
+def _is_tar_checkpoint(head: bytes) -> bool:
+    # torch < 0.4 wrote a tar whose first member is "sys_info" (ustar magic at byte 257).
+    return head[:9] == b"sys_info\x00" and head[257:262] == b"ustar"
 
 
 def _is_record(name: str) -> bool:
@@ -368,22 +374,29 @@ def _zip_source(
     path: Path, members: Mapping[str, zipfile.ZipInfo], folder: str, size: int
 ) -> _Source:
     source = _Source(path)
-    for name, info in members.items():
-        if not name.startswith(folder) or name.endswith("/"):
-            continue
-        key = name[len(folder) :]
-        if info.flag_bits & 0x1:
-            raise LoadError(path, f"archive member {name!r} is encrypted")
-        if info.compress_type == zipfile.ZIP_STORED:
-            if info.compress_size != info.file_size:
-                raise LoadError(path, f"archive member {name!r} is stored but its sizes differ")
-            source.spans[key] = (_local_data_offset(path, info, size), info.file_size)
-        else:
-            # Deflate expands at most ~1032:1; a larger claim is a lie about the size.
-            if info.file_size > 1100 * info.compress_size + 1024:
-                raise LoadError(path, f"archive member {name!r} claims an implausible size")
-            source.members[key] = info
+    with open(path, "rb") as handle:
+        for name, info in members.items():
+            if name.startswith(folder) and not name.endswith("/"):
+                _add_member(source, path, handle, name[len(folder) :], info, size)
     return source
+
+
+def _add_member(
+    source: _Source, path: Path, handle: BinaryIO, key: str, info: zipfile.ZipInfo, size: int
+) -> None:
+    """Record where one storage member's bytes are (stored) or how to inflate them."""
+    name = info.filename
+    if info.flag_bits & 0x1:
+        raise LoadError(path, f"archive member {name!r} is encrypted")
+    if info.compress_type == zipfile.ZIP_STORED:
+        if info.compress_size != info.file_size:
+            raise LoadError(path, f"archive member {name!r} is stored but its sizes differ")
+        source.spans[key] = (_local_data_offset(path, handle, info, size), info.file_size)
+    else:
+        # Deflate expands at most ~1032:1; a larger claim is a lie about the size.
+        if info.file_size > 1100 * info.compress_size + 1024:
+            raise LoadError(path, f"archive member {name!r} claims an implausible size")
+        source.members[key] = info
 
 
 # --------------------------------------------------------------------------- legacy format
@@ -750,6 +763,7 @@ def _map_optimizer(
     if len(set(ids)) != len(ids):
         raise _Ambiguous("a parameter id appears twice")
     names = _names_for(ids, groups, found)
+    positions = dict(zip(ids, names, strict=True))
     model = found.tensors
 
     kind_slots: set[str] = set()
@@ -778,7 +792,7 @@ def _map_optimizer(
     slots: dict[str, OptimizerSlots] = {}
     steps: list[float] = []
     for pid, entry in state.items():
-        name = _state_name(pid, ids, names, model)
+        name = _state_name(pid, positions)
         if not isinstance(entry, Mapping):
             raise _Ambiguous(f"the state of parameter {_brief(pid)} is not a dict")
         moments: list[Tensor | None] = []
@@ -868,11 +882,9 @@ def _names_for(ids: list[int], groups: list[Mapping[str, Any]], found: _Found) -
     return trainable
 
 
-def _state_name(
-    pid: object, ids: list[int], names: list[str], model: Mapping[str, TensorRef]
-) -> str:
-    if isinstance(pid, int) and not isinstance(pid, bool) and pid in ids:
-        return names[ids.index(pid)]
+def _state_name(pid: object, positions: Mapping[int, str]) -> str:
+    if isinstance(pid, int) and not isinstance(pid, bool) and pid in positions:
+        return positions[pid]
     raise _Ambiguous(f"it holds state for parameter {_brief(pid)}, which no param group lists")
 
 

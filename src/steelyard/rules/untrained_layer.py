@@ -1,0 +1,326 @@
+"""``untrained-layer``: a layer whose weights are still what an initializer draws.
+
+**What it checks.** Two tests, both of which must pass for a finding.
+
+1. *Distribution.* A seeded sample of the weights (all of them up to ``sample`` = 20,000,
+   else a uniform random draw of that many) is compared with each standard initializer for
+   the layer's fan-in and fan-out by the Kolmogorov–Smirnov distance
+   D = supₓ |F_n(x) − F(x)|. The candidates, with fan_in = (in/groups)·prod(kernel) and
+   fan_out = out·prod(kernel) as PyTorch and Keras compute them:
+
+   * ``pytorch-default``: U(±1/√fan_in). PyTorch's Linear and Conv layers use
+     kaiming_uniform with a = √5, whose bound gain·√(3/fan_in) with gain = √(2/(1+a²)) is
+     exactly 1/√fan_in;
+   * ``glorot-uniform`` U(±√(6/(fan_in+fan_out))), Keras's default kernel initializer;
+     ``glorot-normal`` N(0, 2/(fan_in+fan_out)) as PyTorch's xavier_normal draws it, and
+     ``glorot-truncated-normal``, the same standard deviation as Keras draws it: a normal
+     truncated at ±2 of its own standard deviation, widened by 1/0.8796 (the standard
+     deviation of a unit normal truncated to (−2, 2)) so that the result has the target
+     standard deviation (Glorot & Bengio 2010, "Understanding the difficulty of training deep
+     feedforward neural networks", AISTATS);
+   * ``he-normal`` N(0, 2/fan_in) (PyTorch kaiming_normal), ``he-truncated-normal`` (Keras
+     he_normal), ``he-uniform`` U(±√(6/fan_in)) (He et al. 2015, "Delving deep into
+     rectifiers", ICCV);
+   * ``lecun-uniform`` U(±√(3/fan_in)), ``lecun-normal`` N(0, 1/fan_in) and
+     ``lecun-truncated-normal`` (Keras and JAX lecun_normal) (LeCun et al. 1998, "Efficient
+     BackProp");
+   * ``normal-0.02`` N(0, 0.02²), the N(0, 0.02) initialisation of Radford et al. 2018
+     ("Improving language understanding by generative pre-training"), common since in
+     transformer codebases, and ``truncated-normal-0.02``, a normal of standard deviation 0.02
+     truncated at ±0.04 as the BERT reference implementation draws it (common practice, no
+     published source);
+   * grouped convolutions also get the Keras depthwise fans (fan_in = channels·prod(kernel),
+     fan_out = multiplier·prod(kernel)); transposed convolutions swap the roles as both
+     frameworks do (fan_in = out/groups·prod(kernel)); recurrent gate layers get PyTorch's
+     U(±1/√hidden) (``pytorch-recurrent``) and Glorot fans over all gates of the tensor;
+   * embeddings are included: an untouched table is as suspicious as an untouched layer. Their
+     candidates are ``normal-1`` N(0, 1) (PyTorch nn.Embedding), ``keras-embedding-uniform``
+     U(±0.05) (Keras Embedding's default ``uniform``), ``normal-0.02`` and
+     ``truncated-normal-0.02``.
+
+   The limit ``ks`` defaults to max(1.95/√n, ``ks-floor`` 0.02) for a sample of n values:
+   1.95/√n is the asymptotic Kolmogorov critical value at α = 0.001 (c(α) = √(−ln(α/2)/2)),
+   so a sample that truly comes from the candidate stays below it 999 times in 1000; the floor
+   keeps large samples from failing on what storage does to a drawn value (bf16 or fp16
+   rounding shifts the empirical CDF by up to a few thousandths) and on the tiny drift of a
+   few optimizer steps. The best candidate is the one with the smallest D.
+
+2. *Spectrum.* No singular value of W[units, fan_in] may lie beyond the Marchenko–Pastur edge
+   σ(√m + √n) (Marchenko & Pastur 1967) by more than ``edge-fluctuations`` (4) Tracy–Widom
+   fluctuations (σ/2)(1/√m + 1/√n)^{1/3} (Johnstone 2001, carried from the eigenvalue to the
+   singular value; see :mod:`steelyard.rules._spectrum`), σ being the element standard
+   deviation of the best candidate. Training grows a few strong directions, which leave the
+   bulk; a layer that matches an initializer's histogram but has such an outlier was trained
+   and is not reported. The top singular value comes from ``numpy.linalg.svd`` for matrices of
+   up to 2^18 entries (about 512 × 512) and from seeded subspace iteration beyond (block 16,
+   up to 40 rounds, stopping when a round adds less than 5 % of a fluctuation or once the
+   value passes the limit). The iteration never overestimates, and it converges fastest for
+   the outliers it looks for; on a bulk without outliers it may stop a few fluctuations low,
+   which does not change the answer. (A full SVD of a 1024 × 4096 matrix takes seconds, so
+   the iteration takes over well below min(m, n) = 1024.)
+
+Layers with fewer than ``min-weights`` (256) weights or min(units, fan_in) < ``min-dim`` (8)
+are skipped: at 256 values the KS limit is already 0.12, wide enough for several candidates
+to match a trained layer, and below 8 rows the Marchenko–Pastur edge is not yet a usable
+description of a random matrix. Constant matrices (all zeros, say) are left to ``dead-unit``:
+they match no continuous candidate.
+
+**Why it matters.** Weights that are still their initial random draw compute nothing learned.
+The usual cause is not a lazy optimizer but a checkpoint that was never loaded into the layer
+(renamed keys with non-strict loading, a head re-created after loading), a layer frozen by
+mistake, or one left out of the optimizer's parameter groups.
+
+**Severity and score.** Warning; error for an output layer, whose outputs are then random.
+Score = ``scoring.score(1.0, limit / D)``: the whole layer is implicated, and the closer the
+match the higher it ranks.
+
+**What to do.** Check that the checkpoint was really loaded into this layer (compare the state
+dict keys, load strictly), that the layer is not frozen and that the optimizer received its
+parameters; then retrain it.
+"""
+
+from __future__ import annotations
+
+import math
+import zlib
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.findings import Finding, Severity
+from steelyard.graph import Layer, LayerKind
+from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.scoring import score
+
+_SQRT2 = math.sqrt(2.0)
+_ERF = np.frompyfunc(math.erf, 1, 1)
+
+
+def _phi(z: np.ndarray) -> np.ndarray:
+    """Standard normal CDF, Φ(z) = (1 + erf(z/√2)) / 2, evaluated with math.erf."""
+    return 0.5 * (1.0 + np.asarray(_ERF(z / _SQRT2), dtype=np.float64))
+
+
+#: Standard deviation of a unit normal truncated to (−2, 2): sqrt(1 − 2·2φ(2)/(Φ(2) − Φ(−2))).
+_MASS = math.erf(2.0 / _SQRT2)
+TRUNCATED_STD = math.sqrt(1.0 - 4.0 * math.exp(-2.0) / math.sqrt(2.0 * math.pi) / _MASS)
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One initializer for one layer shape."""
+
+    name: str
+    family: str
+    """``uniform`` (bound ``scale``), ``normal`` (std ``scale``) or ``truncated`` (a normal of
+    std ``scale`` truncated at ±2·``scale``)."""
+    scale: float
+
+    @property
+    def std(self) -> float:
+        """Standard deviation of one drawn element."""
+        if self.family == "uniform":
+            return self.scale / math.sqrt(3.0)
+        if self.family == "truncated":
+            return self.scale * TRUNCATED_STD
+        return self.scale
+
+    def cdf(self, x: np.ndarray) -> np.ndarray:
+        """The candidate's CDF at ``x``."""
+        if self.family == "uniform":
+            return np.asarray(
+                np.clip((x + self.scale) / (2.0 * self.scale), 0.0, 1.0), dtype=np.float64
+            )
+        if self.family == "normal":
+            return _phi(x / self.scale)
+        inner = (_phi(np.clip(x / self.scale, -2.0, 2.0)) - (1.0 - _MASS) / 2.0) / _MASS
+        return np.asarray(np.clip(inner, 0.0, 1.0), dtype=np.float64)
+
+
+def _variance_scaling(prefix: str, fan_in: int, fan_out: int) -> list[Candidate]:
+    """Glorot, He and LeCun candidates for one pair of fans."""
+    avg = (fan_in + fan_out) / 2.0
+    out: list[Candidate] = []
+    for name, variance in (
+        (f"glorot{prefix}", 1.0 / avg),
+        (f"he{prefix}", 2.0 / fan_in),
+        (f"lecun{prefix}", 1.0 / fan_in),
+    ):
+        std = math.sqrt(variance)
+        out.append(Candidate(f"{name}-uniform", "uniform", math.sqrt(3.0) * std))
+        out.append(Candidate(f"{name}-normal", "normal", std))
+        out.append(Candidate(f"{name}-truncated-normal", "truncated", std / TRUNCATED_STD))
+    return out
+
+
+def _fans(layer: Layer) -> tuple[int, int]:
+    receptive = math.prod(layer.kernel)
+    if layer.kind is LayerKind.CONV_TRANSPOSE:
+        return (
+            layer.units // max(1, layer.groups)
+        ) * receptive, layer.in_per_group * layer.groups * receptive
+    return layer.fan_in, layer.units * receptive
+
+
+def candidates(layer: Layer, gates: int = 1) -> list[Candidate]:
+    """The initializers a layer of this kind and shape could have been drawn from."""
+    small = [
+        Candidate("normal-0.02", "normal", 0.02),
+        Candidate("truncated-normal-0.02", "truncated", 0.02),
+    ]
+    if layer.kind is LayerKind.EMBEDDING:
+        return [
+            Candidate("normal-1", "normal", 1.0),
+            Candidate("keras-embedding-uniform", "uniform", 0.05),
+            *small,
+        ]
+    fan_in, fan_out = _fans(layer)
+    found = [Candidate("pytorch-default", "uniform", 1.0 / math.sqrt(fan_in))]
+    found += _variance_scaling("", fan_in, fan_out)
+    receptive = math.prod(layer.kernel)
+    if layer.groups > 1 and layer.kind is LayerKind.CONV:
+        depth_in = layer.in_per_group * layer.groups * receptive
+        depth_out = max(1, layer.units // layer.groups) * receptive
+        found += _variance_scaling("-depthwise", depth_in, depth_out)
+    if layer.kind is LayerKind.RECURRENT:
+        found.append(Candidate("pytorch-recurrent", "uniform", 1.0 / math.sqrt(layer.units)))
+        found += _variance_scaling("-all-gates", layer.fan_in, gates * layer.units)
+    return found + small
+
+
+def ks_distance(sorted_sample: np.ndarray, cdf: Callable[[np.ndarray], np.ndarray]) -> float:
+    """Kolmogorov–Smirnov statistic of a sorted sample against a continuous CDF."""
+    n = sorted_sample.size
+    values = cdf(sorted_sample)
+    upper = np.arange(1, n + 1) / n - values
+    lower = values - np.arange(0, n) / n
+    return float(max(upper.max(), lower.max()))
+
+
+def ks_limit(n: int, floor: float) -> float:
+    """max(1.95/√n, floor): the α = 0.001 Kolmogorov critical value, floored."""
+    return max(1.95 / math.sqrt(n), floor)
+
+
+def _sample(matrix: np.ndarray, size: int, seed: int) -> np.ndarray:
+    flat = matrix.reshape(-1)
+    if flat.size > size:
+        rng = np.random.default_rng(seed)
+        flat = flat[rng.choice(flat.size, size=size, replace=False)]
+    return np.sort(flat.astype(np.float64))
+
+
+def _gates(ctx: AuditContext, layer: Layer) -> int:
+    return sum(1 for other in ctx.checkpoint.layers if other.weight == layer.weight) or 1
+
+
+def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    m, n = layer.units, layer.fan_in
+    if m * n < int(settings.get(layer, "min-weights")) or min(m, n) < int(
+        settings.get(layer, "min-dim")
+    ):
+        return
+    matrix = ctx.stats.matrix(layer)
+    if not np.all(np.isfinite(matrix)):
+        return  # nonfinite's business
+    seed = zlib.crc32(layer.name.encode("utf-8")) ^ int(settings.get(layer, "seed"))
+    sample = _sample(matrix, int(settings.get(layer, "sample")), seed)
+    if sample[0] == sample[-1]:
+        return
+    chosen = settings.get(layer, "ks")
+    limit = (
+        float(chosen)
+        if chosen is not None
+        else ks_limit(sample.size, float(settings.get(layer, "ks-floor")))
+    )
+    scored = sorted(
+        ((ks_distance(sample, c.cdf), c) for c in candidates(layer, _gates(ctx, layer))),
+        key=lambda item: item[0],
+    )
+    distance, best = scored[0]
+    if distance > limit:
+        return
+    edge = mp_edge(best.std, m, n)
+    fluctuation = edge_fluctuation(best.std, m, n)
+    allowed = float(settings.get(layer, "edge-fluctuations"))
+    top, method = top_singular_value(
+        matrix, seed, tolerance=0.05 * fluctuation, stop_above=edge + allowed * fluctuation
+    )
+    beyond = (top - edge) / fluctuation
+    if beyond > allowed:
+        return  # a direction grew out of the bulk: trained
+    severity = Severity.ERROR if layer.is_output else Severity.WARNING
+    runner_up = scored[1] if len(scored) > 1 else None
+    evidence: dict[str, object] = {
+        "initializer": best.name,
+        "ks": round(distance, 6),
+        "ks_limit": round(limit, 6),
+        "sample": int(sample.size),
+        "top_singular": top,
+        "mp_edge": edge,
+        "fluctuation": fluctuation,
+        "beyond_edge": round(beyond, 4),
+        "edge_fluctuations": allowed,
+        "sigma": best.std,
+        "spectrum": method,
+    }
+    if runner_up is not None:
+        evidence["runner_up"] = {"initializer": runner_up[1].name, "ks": round(runner_up[0], 6)}
+    yield Finding(
+        rule=RULE.name,
+        severity=severity,
+        layer=layer.name,
+        tensor=layer.weight,
+        units=(),
+        score=score(1.0, limit / max(distance, 1e-9)),
+        message=(
+            f"the weights look freshly initialised: their distribution matches {best.name} "
+            f"(KS distance {distance:.4f} <= {limit:.4f}) and the top singular value {top:.4g} "
+            f"stays within {allowed:g} fluctuations of the Marchenko–Pastur edge {edge:.4g}"
+            + (
+                "; this is an output layer, so the model's outputs are random"
+                if layer.is_output
+                else ""
+            )
+        ),
+        hint="check that the checkpoint was really loaded into this layer (matching keys, strict "
+        "loading), that the layer is not frozen and that the optimizer received its parameters",
+        evidence=evidence,
+        part=layer.gate or "",
+    )
+
+
+def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    """Findings on one layer (the per-layer part of :func:`check`)."""
+    if settings.enabled(layer) and (
+        layer.kind is not LayerKind.EMBEDDING or settings.get(layer, "include-embeddings")
+    ):
+        yield from _layer(ctx, settings, layer)
+
+
+def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+    """Yield one finding per layer that still looks like its initial draw."""
+    for layer in ctx.checkpoint.layers:
+        yield from check_layer(ctx, settings, layer)
+
+
+RULE = RuleSpec(
+    name="untrained-layer",
+    severity=Severity.WARNING,
+    thresholds={
+        "ks": None,
+        "ks-floor": 0.02,
+        "edge-fluctuations": 4.0,
+        "sample": 20000,
+        "min-weights": 256,
+        "min-dim": 8,
+        "seed": 0,
+        "include-embeddings": True,
+    },
+    summary="a layer whose weights are still an initializer's random draw computes nothing learned, "
+    "usually because the checkpoint was never loaded into it",
+    check=check,
+    doc=__doc__ or "",
+)

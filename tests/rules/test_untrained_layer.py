@@ -1,0 +1,228 @@
+"""``untrained-layer``: fresh initializer draws are flagged, trained or spiked matrices are not.
+
+References: the initializers are drawn with numpy from their published formulas (Glorot &
+Bengio 2010; He et al. 2015; PyTorch's documented U(±1/√fan_in) default; Keras's truncated
+normal at ±2 standard deviations); the KS statistic and the CDFs against ``scipy.stats``; the
+Marchenko–Pastur edge and the Tracy–Widom scale against ``numpy.linalg.svd`` of sampled
+matrices, with the Tracy–Widom β=1 mean −1.21 and standard deviation 1.27 (Tracy & Widom
+1996, "On orthogonal and symplectic matrix ensembles", Comm. Math. Phys. 177); real PyTorch
+initialisations from ``fixtures/real/torch`` when present.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import pytest
+from safetensors.numpy import save_file
+
+from steelyard.audit import run_rules
+from steelyard.findings import Finding, Severity
+from steelyard.loaders import load
+from steelyard.policy import Policy
+from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
+from steelyard.rules.untrained_layer import (
+    RULE,
+    TRUNCATED_STD,
+    Candidate,
+    ks_distance,
+    ks_limit,
+)
+
+TORCH_FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "real" / "torch"
+FAN_OUT, FAN_IN = 256, 512
+
+
+def _run(path: Path, policy: Policy | None = None) -> list[Finding]:
+    findings, _, _ = run_rules(load(path), policy or Policy(), None, rules={RULE.name: RULE})
+    return findings
+
+
+def _save(tmp_path: Path, tensors: dict[str, np.ndarray]) -> Path:
+    path = tmp_path / "model.safetensors"
+    save_file({k: np.ascontiguousarray(v, dtype=np.float32) for k, v in tensors.items()}, str(path))
+    return path
+
+
+def _truncated(rng: np.random.Generator, std: float, shape: tuple[int, ...]) -> np.ndarray:
+    """Keras-style truncated normal: pre-truncation std = std/0.8796…, redraw beyond ±2 of it."""
+    wide = std / 0.87962566103423978  # reference: the constant in Keras's VarianceScaling
+    out = rng.normal(0.0, wide, size=shape)
+    while True:
+        bad = np.abs(out) > 2 * wide
+        if not bad.any():
+            return out
+        out[bad] = rng.normal(0.0, wide, size=int(bad.sum()))
+
+
+# name → numpy draw of a [FAN_OUT, FAN_IN] Dense kernel by the published formula
+_AVG = math.sqrt(2.0 / (FAN_IN + FAN_OUT))
+DRAWS: dict[str, Callable[[np.random.Generator], np.ndarray]] = {
+    # PyTorch Linear: kaiming_uniform(a=√5) → U(±1/√fan_in) (PyTorch nn.Linear docs)
+    "pytorch-default": lambda r: r.uniform(-1, 1, (FAN_OUT, FAN_IN)) / math.sqrt(FAN_IN),
+    # Glorot & Bengio 2010, eq. 16: U(±√(6/(fan_in+fan_out)))
+    "glorot-uniform": lambda r: (
+        r.uniform(-1, 1, (FAN_OUT, FAN_IN)) * math.sqrt(6 / (FAN_IN + FAN_OUT))
+    ),
+    "glorot-normal": lambda r: r.normal(0, _AVG, (FAN_OUT, FAN_IN)),
+    "glorot-truncated-normal": lambda r: _truncated(r, _AVG, (FAN_OUT, FAN_IN)),
+    # He et al. 2015: N(0, 2/fan_in); uniform variant ±√(6/fan_in)
+    "he-normal": lambda r: r.normal(0, math.sqrt(2 / FAN_IN), (FAN_OUT, FAN_IN)),
+    "he-uniform": lambda r: r.uniform(-1, 1, (FAN_OUT, FAN_IN)) * math.sqrt(6 / FAN_IN),
+    "he-truncated-normal": lambda r: _truncated(r, math.sqrt(2 / FAN_IN), (FAN_OUT, FAN_IN)),
+    # Radford et al. 2018: N(0, 0.02)
+    "normal-0.02": lambda r: r.normal(0, 0.02, (FAN_OUT, FAN_IN)),
+}
+
+
+def test_truncated_normal_constant() -> None:
+    scipy_stats = pytest.importorskip("scipy.stats")
+    # reference: scipy.stats.truncnorm and the literal constant Keras and JAX use
+    assert scipy_stats.truncnorm(-2, 2).std() == pytest.approx(TRUNCATED_STD, rel=1e-12)
+    assert pytest.approx(0.87962566103423978, rel=1e-12) == TRUNCATED_STD
+
+
+def test_cdfs_and_ks_statistic_match_scipy() -> None:
+    scipy_stats = pytest.importorskip("scipy.stats")
+    rng = np.random.default_rng(1)
+    x = np.sort(rng.normal(0, 0.7, 3000))
+    references = [
+        (Candidate("u", "uniform", 0.9), scipy_stats.uniform(-0.9, 1.8)),
+        (Candidate("n", "normal", 0.6), scipy_stats.norm(0, 0.6)),
+        (Candidate("t", "truncated", 0.5), scipy_stats.truncnorm(-2, 2, loc=0, scale=0.5)),
+    ]
+    for candidate, frozen in references:
+        # reference: scipy.stats CDFs and scipy.stats.kstest
+        np.testing.assert_allclose(candidate.cdf(x), frozen.cdf(x), atol=1e-12)
+        expected = scipy_stats.kstest(x, frozen.cdf).statistic
+        assert ks_distance(x, candidate.cdf) == pytest.approx(expected, abs=1e-12)
+        assert candidate.std == pytest.approx(frozen.std(), rel=1e-9)
+
+
+def test_ks_limit_is_the_alpha_0001_critical_value_with_a_floor() -> None:
+    # reference: asymptotic Kolmogorov critical value c(α) = sqrt(−ln(α/2)/2)
+    c = math.sqrt(-math.log(0.001 / 2) / 2)
+    assert ks_limit(100, 0.02) == pytest.approx(1.95 / 10)
+    assert abs(c - 1.95) < 0.005
+    assert ks_limit(20000, 0.02) == 0.02
+
+
+@pytest.mark.parametrize("name", sorted(DRAWS))
+def test_fresh_draws_are_flagged_with_the_right_initializer(tmp_path: Path, name: str) -> None:
+    rng = np.random.default_rng(sorted(DRAWS).index(name))
+    weight = DRAWS[name](rng)
+    findings = _run(_save(tmp_path, {"fc1.weight": weight, "fc1.bias": np.zeros(FAN_OUT)}))
+    assert len(findings) == 1
+    found = findings[0]
+    assert found.evidence["initializer"] == name
+    assert found.evidence["ks"] <= found.evidence["ks_limit"]
+    assert found.severity is Severity.WARNING
+
+
+def test_fresh_conv_and_embedding_are_flagged(tmp_path: Path) -> None:
+    rng = np.random.default_rng(3)
+    fan_in = 16 * 3 * 3
+    conv = rng.uniform(-1, 1, (32, 16, 3, 3)) / math.sqrt(fan_in)  # PyTorch Conv2d default
+    table = rng.normal(0, 1, (1000, 64))  # PyTorch nn.Embedding default N(0, 1)
+    findings = _run(_save(tmp_path, {"conv1.weight": conv, "embed_tokens.weight": table}))
+    by_layer = {f.layer: f.evidence["initializer"] for f in findings}
+    assert by_layer == {"conv1": "pytorch-default", "embed_tokens": "normal-1"}
+
+
+def test_planted_spike_beyond_the_edge_is_not_flagged(tmp_path: Path) -> None:
+    rng = np.random.default_rng(4)
+    weight = DRAWS["pytorch-default"](rng)
+    sigma = 1 / math.sqrt(FAN_IN) / math.sqrt(3)
+    u = rng.normal(size=FAN_OUT)
+    v = rng.normal(size=FAN_IN)
+    # A rank-one direction of strength 1.5·σ·(mn)^{1/4}, past the BBP threshold σ·(mn)^{1/4}:
+    # it leaves the bulk (as training's first strong directions do) but barely moves the
+    # histogram.
+    theta = 1.5 * sigma * (FAN_IN * FAN_OUT) ** 0.25
+    spiked = weight + theta * np.outer(u / np.linalg.norm(u), v / np.linalg.norm(v))
+    sample = np.sort(spiked.reshape(-1))
+    assert ks_distance(sample, Candidate("p", "uniform", 1 / math.sqrt(FAN_IN)).cdf) < 0.02
+    top = np.linalg.svd(spiked, compute_uv=False)[0]  # reference: numpy.linalg.svd
+    edge = mp_edge(sigma, FAN_OUT, FAN_IN)
+    assert top > edge + 4 * edge_fluctuation(sigma, FAN_OUT, FAN_IN)
+    assert _run(_save(tmp_path, {"fc1.weight": spiked})) == []
+
+
+def test_a_trained_layer_is_not_flagged(tmp_path: Path) -> None:
+    rng = np.random.default_rng(5)
+    weight = rng.uniform(-1, 1, (64, 128)) / math.sqrt(128)
+    teacher = rng.normal(size=(64, 3)) @ rng.normal(size=(3, 128)) / 4
+    x = rng.normal(size=(512, 128))
+    for _ in range(200):  # full-batch gradient descent on 0.5·mean‖Wx − Tx‖²
+        weight -= 0.5 * ((x @ weight.T - x @ teacher.T).T @ x) / x.shape[0]
+    assert _run(_save(tmp_path, {"fc1.weight": weight})) == []
+
+
+def test_an_untouched_output_layer_is_an_error(tmp_path: Path) -> None:
+    rng = np.random.default_rng(6)
+    tensors = {
+        "fc1.weight": rng.uniform(-1, 1, (64, 128)) / math.sqrt(128),
+        "fc2.weight": rng.uniform(-1, 1, (32, 64)) / math.sqrt(64),
+    }
+    severities = {f.layer: f.severity for f in _run(_save(tmp_path, tensors))}
+    assert severities == {"fc1": Severity.WARNING, "fc2": Severity.ERROR}
+
+
+def test_tiny_layers_are_skipped(tmp_path: Path) -> None:
+    rng = np.random.default_rng(7)
+    path = _save(tmp_path, {"fc1.weight": rng.uniform(-1, 1, (12, 16)) / 4})
+    assert _run(path) == []
+    lowered = Policy(rules={RULE.name: {"min-weights": 64}})
+    assert [f.evidence["initializer"] for f in _run(path, lowered)] == ["pytorch-default"]
+
+
+def test_marchenko_pastur_edge_and_tracy_widom_scale_against_sampled_matrices() -> None:
+    rng = np.random.default_rng(8)
+    for m, n, draw in ((64, 128, "normal"), (100, 50, "uniform")):
+        z = []
+        for _ in range(60):
+            if draw == "normal":
+                a = rng.normal(0, 0.3, (m, n))
+            else:
+                a = rng.uniform(-1, 1, (m, n)) * 0.3 * math.sqrt(3)
+            top = np.linalg.svd(a, compute_uv=False)[0]  # reference: numpy.linalg.svd
+            z.append((top - mp_edge(0.3, m, n)) / edge_fluctuation(0.3, m, n))
+        scores = np.array(z)
+        # Tracy–Widom β=1: mean −1.21, sd 1.27 (finite sizes shift the mean a little lower)
+        assert -2.3 < scores.mean() < -0.6
+        assert 0.7 < scores.std() < 1.9
+        assert scores.max() < 4.0
+
+
+def test_subspace_iteration_against_numpy_svd() -> None:
+    rng = np.random.default_rng(9)
+    m, n = 700, 500  # above the full-SVD size, so the iteration runs
+    sigma = 0.05
+    base = rng.normal(0, sigma, (m, n))
+    fluctuation = edge_fluctuation(sigma, m, n)
+    u, v = rng.normal(size=m), rng.normal(size=n)
+    spike = 2.0 * sigma * (m * n) ** 0.25 * np.outer(u / np.linalg.norm(u), v / np.linalg.norm(v))
+    for matrix in (base, base + spike):
+        estimate, method = top_singular_value(matrix, seed=0)
+        exact = np.linalg.svd(matrix, compute_uv=False)[0]  # reference: numpy.linalg.svd
+        assert method == "subspace"
+        assert estimate <= exact * (1 + 1e-5)
+        assert exact - estimate < 0.5 * fluctuation
+
+
+def test_real_untouched_pytorch_linear(tmp_path: Path) -> None:
+    fixture = TORCH_FIXTURES / "mlp_state_dict.pt"
+    if not fixture.exists():
+        pytest.skip(
+            "fixtures/real/torch/mlp_state_dict.pt (a freshly constructed nn.Linear) is absent"
+        )
+    # An untouched torch.nn.Linear(8, 16) as PyTorch itself initialised it (128 weights:
+    # under the default size floor, so the floor is lowered for this layer).
+    policy = Policy(rules={RULE.name: {"min-weights": 128}})
+    findings = _run(fixture, policy)
+    assert [(f.layer, f.evidence["initializer"]) for f in findings] == [
+        ("net.0", "pytorch-default")
+    ]

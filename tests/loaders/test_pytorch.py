@@ -134,6 +134,21 @@ def test_torchscript_names_and_notes() -> None:
     assert any("TorchScript" in note for note in checkpoint.notes)
 
 
+def test_protocol_4_file_with_parameter_and_plain_values() -> None:
+    import pickletools
+
+    path = TORCH / "protocol4_extras.pt"
+    with zipfile.ZipFile(path) as archive:
+        opcodes = {
+            op.name for op, _, _ in pickletools.genops(archive.read("protocol4_extras/data.pkl"))
+        }
+    assert "STACK_GLOBAL" in opcodes  # reference: pickletools' reading of torch's output
+    checkpoint = load(path)
+    assert set(checkpoint.tensors) == {"param", "double", "flag"}
+    assert checkpoint.tensors["flag"].read().dtype == np.bool_
+    assert any("non-tensor" in note for note in checkpoint.notes)
+
+
 def test_layers_from_pytorch_names() -> None:
     cnn = load(TORCH / "cnn_bn_state_dict.pt")
     # PyTorch naming habits (common practice, no source): bn1 follows conv1, and in a

@@ -286,6 +286,26 @@ def _frozenset(items: object = ()) -> frozenset[Any]:
     return frozenset(_set(items))
 
 
+def _slice(*args: object) -> slice:
+    if len(args) > 3 or not all(a is None or type(a) is int for a in args):
+        raise Unsupported("a slice is built from something other than integers")
+    return slice(*args)
+
+
+def _bytearray(data: object = b"", encoding: object = None) -> bytearray:
+    if isinstance(data, bytes) and encoding is None:
+        return bytearray(data)
+    if isinstance(data, str) and encoding in ("latin1", "latin-1"):
+        return bytearray(data.encode("latin-1"))
+    raise Unsupported("a bytearray is built from something other than bytes")
+
+
+def _complex(real: object = 0.0, imag: object = 0.0) -> complex:
+    if not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in (real, imag)):
+        raise Unsupported("a complex number is built from something other than numbers")
+    return complex(float(real), float(imag))  # type: ignore[arg-type]
+
+
 def _codecs_encode(text: object, encoding: object = "utf-8") -> bytes:
     # Protocol 2 stores bytes as _codecs.encode(<latin-1 text>, 'latin1'): pure data.
     if not isinstance(text, str) or encoding not in ("latin1", "latin-1"):
@@ -400,6 +420,9 @@ def _build_allowlist() -> dict[str, object]:
         "torch.device": _device,
         "builtins.set": _set,
         "builtins.frozenset": _frozenset,
+        "builtins.slice": _slice,
+        "builtins.bytearray": _bytearray,
+        "builtins.complex": _complex,
         "_codecs.encode": _codecs_encode,
         "torch.jit._pickle.build_intlist": _same_list(int, "build_intlist"),
         "torch.jit._pickle.build_doublelist": _same_list(float, "build_doublelist"),

@@ -564,6 +564,9 @@ def _find_weights(root: object, path: Path) -> _Found:
         gathered = _finish((merged, []), None, root)
         gathered.where = ", ".join(repr(p) for p in parts)
         return gathered
+    if _tensor_items(root):
+        # Tensors beside other values, under no known key: the top level is the state dict.
+        return _finish(_flatten(root, path), None, None)
     keys = ", ".join(_brief(k) for k in list(root)[:8])
     raise LoadError(
         path,

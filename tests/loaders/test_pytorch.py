@@ -685,3 +685,43 @@ def test_torch_is_never_imported() -> None:
     load(TORCH / "train_adam.pt")
     load(TORCH / "ts_cnn.pt")
     assert "torch" not in sys.modules
+
+
+@settings(
+    max_examples=120,
+    deadline=3000,
+    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
+)
+@given(
+    stem=st.sampled_from(["train_adam", "ts_cnn", "views_shared", "protocol4_extras"]),
+    edits=st.lists(
+        st.tuples(st.floats(0.0, 1.0), st.integers(0, 2), st.binary(min_size=1, max_size=6)),
+        min_size=1,
+        max_size=4,
+    ),
+)
+def test_damaged_pickles_read_or_fail_cleanly(
+    tmp_path: Path, stem: str, edits: list[tuple[float, int, bytes]]
+) -> None:
+    # Edit the pickle itself and re-zip it with a valid CRC, so the unpickler sees the damage.
+    with zipfile.ZipFile(TORCH / f"{stem}.pt") as archive:
+        members = [(info.filename, archive.read(info)) for info in archive.infolist()]
+    name, data = next((n, bytearray(d)) for n, d in members if n.endswith("/data.pkl"))
+    for where, action, blob in edits:
+        at = min(int(where * len(data)), len(data) - 1)
+        if action == 0:
+            data[at] ^= blob[0] or 1
+        elif action == 1:
+            del data[at : at + len(blob)]
+        else:
+            data[at:at] = blob
+    path = tmp_path / f"pkl_{stem}.pt"
+    with zipfile.ZipFile(path, "w") as archive:
+        for member, blob in members:
+            archive.writestr(member, bytes(data) if member == name else blob)
+    try:
+        checkpoint = load(path)
+        for tensor in checkpoint.tensors.values():
+            assert isinstance(tensor.read(), np.ndarray)
+    except LoadError as error:
+        assert "\n" not in str(error)

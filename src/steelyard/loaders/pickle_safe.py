@@ -458,6 +458,13 @@ _EXPLAINED: dict[str, str] = {
         "read; save the dequantized state dict instead"
     ),
     "torch._utils._rebuild_sparse_tensor": "stores a sparse tensor, which steelyard does not read",
+    "torch._utils._rebuild_meta_tensor_no_storage": (
+        "stores a tensor on the meta device, which has no values to read"
+    ),
+    "torch._utils._rebuild_device_tensor_from_numpy": (
+        "stores a device tensor through numpy (torch._utils._rebuild_device_tensor_from_numpy), "
+        "which steelyard does not read; save it from the CPU"
+    ),
     "torch._utils._rebuild_wrapper_subclass": (
         "stores a tensor subclass (torch._utils._rebuild_wrapper_subclass), which steelyard "
         "does not read"
@@ -643,7 +650,7 @@ def restricted_load(
     except LoadError:
         raise
     except Unsupported as exc:
-        raise LoadError(path, f"{what} {exc}") from None
+        raise LoadError(path, f"{what}: {exc}") from None
     except RecursionError:
         raise LoadError(path, f"{what} is nested too deeply") from None
     except MemoryError:

@@ -507,6 +507,8 @@ class _Found:
     """The dict that held the state dict (where the optimizer would be), if any."""
     stripped: tuple[str, ...]
     skipped: list[str]
+    parts: tuple[str, ...] = ()
+    """The entries of the container whose tensors were used (one, or several gathered)."""
 
 
 def _brief(value: object) -> str:
@@ -527,7 +529,7 @@ def _is_state_dict(value: object) -> bool:
 
 def _find_weights(root: object, path: Path) -> _Found:
     if isinstance(root, TensorRef):
-        return _Found({"tensor": root}, None, None, (), [])
+        return _Found({"tensor": root}, None, None, (), [], ())
     if not isinstance(root, Mapping):
         raise LoadError(
             path, f"holds a pickled {type(root).__name__}, not a state dict or a checkpoint dict"
@@ -540,8 +542,7 @@ def _find_weights(root: object, path: Path) -> _Found:
             break
         value = container[key]
         if _is_state_dict(value):
-            found = _flatten(value, path)
-            return _finish(found, ".".join([*where, key]), container)
+            return _finish(_flatten(value, path), ".".join([*where, key]), container, (key,))
         if not isinstance(value, Mapping):
             break
         where.append(key)
@@ -555,15 +556,13 @@ def _find_weights(root: object, path: Path) -> _Found:
         if isinstance(k, str) and k not in _OPTIMIZER_KEYS and _is_state_dict(v)
     ]
     if len(parts) == 1:
-        return _finish(_flatten(root[parts[0]], path), parts[0], root)
+        return _finish(_flatten(root[parts[0]], path), parts[0], root, (parts[0],))
     if parts:
         merged: dict[str, Any] = {}
         for part in parts:
             for name, ref in _flatten(root[part], path)[0].items():
                 merged[f"{part}.{name}"] = ref
-        gathered = _finish((merged, []), None, root)
-        gathered.where = ", ".join(repr(p) for p in parts)
-        return gathered
+        return _finish((merged, []), None, root, tuple(parts))
     if _tensor_items(root):
         # Tensors beside other values, under no known key: the top level is the state dict.
         return _finish(_flatten(root, path), None, None)
@@ -604,7 +603,10 @@ def _flatten(mapping: Mapping[Any, Any], path: Path) -> tuple[dict[str, Any], li
 
 
 def _finish(
-    flat: tuple[dict[str, Any], list[str]], where: str | None, container: Mapping[Any, Any] | None
+    flat: tuple[dict[str, Any], list[str]],
+    where: str | None,
+    container: Mapping[Any, Any] | None,
+    parts: tuple[str, ...] = (),
 ) -> _Found:
     tensors, skipped = flat
     stripped: list[str] = []
@@ -616,7 +618,7 @@ def _finish(
                 tensors = {name[len(prefix) :]: ref for name, ref in tensors.items()}
                 stripped.append(prefix)
                 changed = True
-    return _Found(tensors, where, container, tuple(stripped), skipped)
+    return _Found(tensors, where, container, tuple(stripped), skipped, parts)
 
 
 def _strip(name: str, prefixes: tuple[str, ...]) -> str:
@@ -635,11 +637,10 @@ def _checkpoint(
         name: _make_tensor(ref, name, None, source, order) for name, ref in found.tensors.items()
     }
     if found.where is not None:
-        notes.append(
-            f"weights read from checkpoint entry {found.where!r}"
-            if not found.where.startswith("'")
-            else f"weights gathered from checkpoint entries {found.where}"
-        )
+        notes.append(f"weights read from checkpoint entry {found.where!r}")
+    elif len(found.parts) > 1:
+        entries = ", ".join(repr(p) for p in found.parts)
+        notes.append(f"weights gathered from checkpoint entries {entries}, named <entry>.<name>")
     for prefix in found.stripped:
         notes.append(f"the {prefix!r} prefix was stripped from every tensor name")
     if found.skipped:
@@ -651,13 +652,13 @@ def _checkpoint(
     container = found.container
     if container is not None:
         optimizer = _optimizer_state(path, container, found, source, order, notes)
-        ema = [k for k in _EMA_KEYS if k in container and k != (found.where or "")]
-        if ema and found.where not in _EMA_KEYS:
+        ema = [k for k in _EMA_KEYS if k in container and k not in found.parts]
+        if ema and not set(found.parts) & set(_EMA_KEYS):
             notes.append(f"the checkpoint also holds averaged weights under {ema[0]!r} (not read)")
         others = [
             _brief(k)
             for k in container
-            if k != found.where
+            if k not in found.parts
             and k not in _OPTIMIZER_KEYS
             and k not in _EMA_KEYS
             and not isinstance(container[k], TensorRef)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import zipfile
+import zlib
 from pathlib import Path
 from typing import Protocol
 
@@ -89,7 +90,7 @@ def read_zip_member(
     try:
         with archive.open(info) as stream:
             data = stream.read(limit + 1)
-    except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError) as exc:
+    except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError, zlib.error) as exc:
         raise LoadError(path, f"archive member {info.filename!r} is unreadable ({exc})") from None
     if len(data) > limit:
         raise LoadError(path, f"archive member {info.filename!r} is larger than it claims")
@@ -100,7 +101,7 @@ def open_zip(path: Path) -> zipfile.ZipFile:
     """Open a zip archive or raise a clean error."""
     try:
         return zipfile.ZipFile(path)
-    except (zipfile.BadZipFile, OSError, ValueError, EOFError) as exc:
+    except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError) as exc:
         raise LoadError(path, f"is not a readable zip archive ({exc})") from None
 
 

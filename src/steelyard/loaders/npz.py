@@ -85,7 +85,7 @@ class NpzLoader:
         try:
             with zipfile.ZipFile(path) as archive:
                 names = archive.namelist()
-        except (zipfile.BadZipFile, OSError, ValueError, EOFError):
+        except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError):
             return path.suffix == ".npz"
         return bool(names) and all(n.endswith(".npy") for n in names)
 

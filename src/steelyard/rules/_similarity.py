@@ -31,6 +31,9 @@ DESIGN_RECALL = 0.999
 MEASURED_RECALL = 0.99
 #: Buckets up to this size enumerate their pairs directly; larger ones use a Gram product.
 _SMALL_BUCKET = 32
+#: Most partners kept per row. A layer of many identical rows (a constant initialisation,
+#: say) would otherwise yield n²/2 pairs; 64 partners per row keep such a group connected.
+PARTNERS = 64
 #: Slack of the float32 pre-filter before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
 _SLACK = 1e-4
@@ -62,6 +65,16 @@ def _confirm(
     return first[keep], second[keep], cos[keep]
 
 
+def _cap_partners(hits: np.ndarray) -> np.ndarray:
+    """At most ``PARTNERS`` hits per row (``hits`` is in row-major order, as argwhere gives)."""
+    if hits.shape[0] <= PARTNERS:
+        return hits
+    rows = hits[:, 0]
+    starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
+    rank = np.arange(rows.size) - np.repeat(starts, np.diff(np.r_[starts, rows.size]))
+    return hits[rank < PARTNERS]
+
+
 def exact_pairs(
     unit: np.ndarray, threshold: float, negative: bool = False
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -79,6 +92,7 @@ def exact_pairs(
             mask |= gram <= -loose
         hits = np.argwhere(mask)
         hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
+        hits = _cap_partners(hits)
         firsts.append(hits[:, 0] + start)
         seconds.append(hits[:, 1] + start)
     first = np.concatenate(firsts) if firsts else np.zeros(0, np.int64)

@@ -197,11 +197,10 @@ def _matched(
     before, layer = pair.old, pair.new
     assert before is not None and layer is not None
     rows, columns = result.rows, result.columns
+    checks = result.checks
     if rows is not None:
         checks, _ = compare_parts(old, before, new, layer, columns, rows)
-        moved = sum(c.moved for c in checks.values())
-    else:
-        moved = result.moved
+    moved = sum(c.moved for c in checks.values())
     same = result.outcome in ("exact", "precision", "permuted")
     a = aligned_old(old, before, columns, rows)
     b = new.matrix(layer)
@@ -230,6 +229,14 @@ def _matched(
     notes = [n for n in (result.note, rejected) if n]
     if result.columns is not None and not same:
         notes.append("compared after undoing the permutation of its inputs")
+    if not same and "weight" in checks and checks["weight"].within:
+        others = sorted(k for k, c in checks.items() if not c.within)
+        notes.append(
+            f"weights {'identical' if checks['weight'].exact else 'within precision'}; "
+            f"{', '.join(others)} changed"
+        )
+    if measured.old_sq == 0 and measured.diff_sq > 0:
+        notes.append("OLD's weights are all zero, so the relative change is infinite")
     diff = LayerDiff(
         name=layer.name,
         status=Status.SAME if same else Status.CHANGED,

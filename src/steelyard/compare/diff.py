@@ -221,21 +221,45 @@ class PartCheck:
     lower: str | None
 
 
+def _rows_of(step: np.ndarray | None, rows: slice, count: int) -> np.ndarray | None:
+    if step is None or step.ndim == 0 or step.shape[0] != count:
+        return step
+    return step[rows]
+
+
 def check_part(old: Stored, new: Stored) -> PartCheck:
-    """Compare one part elementwise."""
-    a = old.values.astype(np.float64)
-    b = new.values.astype(np.float64)
-    same = _equal(a, b)
-    if bool(same.all()):
-        return PartCheck(True, True, 0, int(a.size), None)
-    bound = tolerance(old, new)
-    if bound is None:
-        return PartCheck(False, False, int((~same).sum()), int(a.size), None)
-    limit, lower = bound
-    with np.errstate(invalid="ignore"):
-        within = same | (np.abs(b - a) <= limit)
-    moved = int((~within).sum())
-    return PartCheck(False, moved == 0, moved, int(a.size), lower)
+    """Compare one part elementwise, in blocks of rows (bounded memory on huge layers)."""
+    a, b = old.values, new.values
+    size = int(b.size)
+    if a.shape != b.shape:
+        return PartCheck(False, False, size, size, None)
+    if np.array_equal(a, b, equal_nan=True):
+        return PartCheck(True, True, 0, size, None)
+    count = a.shape[0] if a.ndim else 1
+    block = max(1, _BLOCK_ELEMENTS // max(1, size // max(1, count)))
+    moved = 0
+    lower: str | None = None
+    explained = True
+    for start in range(0, count, block):
+        rows = slice(start, start + block)
+        first = a[rows].astype(np.float64) if a.ndim else a.astype(np.float64)
+        second = b[rows].astype(np.float64) if b.ndim else b.astype(np.float64)
+        same = _equal(first, second)
+        if bool(same.all()):
+            continue
+        bound = tolerance(
+            Stored(first, old.dtype, _rows_of(old.step, rows, count)),
+            Stored(second, new.dtype, _rows_of(new.step, rows, count)),
+        )
+        if bound is None:
+            explained = False
+            moved += int((~same).sum())
+            continue
+        limit, lower = bound
+        with np.errstate(invalid="ignore"):
+            within = same | (np.abs(second - first) <= limit)
+        moved += int((~within).sum())
+    return PartCheck(False, moved == 0 and explained, moved, size, lower if explained else None)
 
 
 # ---- permutations -------------------------------------------------------------------------

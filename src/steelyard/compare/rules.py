@@ -274,7 +274,8 @@ def _loose_nonfinite(ctx: CompareContext) -> Iterator[Finding]:
                 tensor=name,
                 units=(),
                 score=score(count / max(1, bad.size), 1e6),
-                message=f"tensor {name!r} holds {count} non-finite values that were finite in OLD",
+                message=f"tensor {name!r} holds {count} non-finite value{'s' if count != 1 else ''} "
+                "that were finite in OLD",
                 hint="do not ship NEW; find the training step between the two checkpoints where "
                 "values diverged",
                 evidence={
@@ -315,7 +316,8 @@ def new_nonfinite(ctx: CompareContext, settings: RuleSettings) -> Iterator[Findi
             tensor=_weight(diff),
             units=diff.nonfinite_units,
             score=score(diff.nonfinite_new / max(1, elements), 1e6),
-            message=f"{diff.nonfinite_new} non-finite values in NEW where OLD was finite"
+            message=f"{diff.nonfinite_new} non-finite value{'s' if diff.nonfinite_new != 1 else ''} "
+            "in NEW where OLD was finite"
             + (f" (layer {diff.status.value} in NEW)" if diff.status.structural else ""),
             hint="do not ship NEW; find the training step between the two checkpoints where "
             "values diverged",

@@ -260,7 +260,7 @@ def starter_text() -> str:
         '# frozen = ["encoder.*"]',
         "",
     ]
-    for spec in registry().values():
+    for spec in _known_rules().values():
         lines.append(f"# {spec.name}: {spec.summary}")
         lines.append(f"[rules.{spec.name}]")
         lines.append("enabled = true")
@@ -300,7 +300,7 @@ def policy_text(policy: Policy) -> str:
         lines.append(f"weight-decay = {policy.weight_decay!r}")
     if policy.frozen:
         lines.append("frozen = [" + ", ".join(f'"{g}"' for g in policy.frozen) + "]")
-    for spec in registry().values():
+    for spec in _known_rules().values():
         merged = policy.settings(spec.name, {"enabled": True, **spec.thresholds}, None)
         lines.append("")
         lines.append(f"[rules.{spec.name}]")

@@ -235,6 +235,7 @@ def test_safetensors_and_onnx_of_the_same_weights_compare_as_same(
     from onnx.reference import ReferenceEvaluator
 
     tensors = mlp_tensors(rng, (6, 16, 4))
+    tensors["fc1.weight"][3] = 0.0  # a dead unit on both sides: present in OLD, not new
     st = write_safetensors(tmp_path / "m.safetensors", tensors)
     model = _onnx_mlp(tmp_path / "m.onnx", tensors, trans_b)
     x = rng.normal(size=(8, 6)).astype(np.float32)
@@ -247,6 +248,8 @@ def test_safetensors_and_onnx_of_the_same_weights_compare_as_same(
         ("same", "position")
     ] * 2
     assert report.passed and not _rules(document, "compare")
+    dead = [f for f in document["findings"] if f["rule"] == "dead-unit"]
+    assert dead and dead[0]["units"] == [3] and dead[0]["present_in_old"] is True
 
 
 def test_layers_with_renamed_tensors_match_by_position_with_a_removed_layer(

@@ -59,27 +59,31 @@ __all__ = [
 
 
 def _topological(pairs: Sequence[Pair], side: Side) -> list[Pair]:
-    """Same-shape pairs with producers before consumers (NEW's order breaks ties and cycles)."""
-    chosen = [p for p in pairs if p.same_shape]
+    """Same-shape pairs with producers before consumers (NEW's order breaks ties and cycles).
+
+    Iterative depth-first search, so a chain of thousands of layers cannot exhaust the stack.
+    """
+    chosen = [p for p in pairs if p.same_shape and p.new is not None]
     by_name = {p.new.name: p for p in chosen if p.new is not None}
-    done: set[str] = set()
+    state: dict[str, int] = {}  # 1 on the stack, 2 placed
     order: list[Pair] = []
-
-    def visit(name: str, trail: set[str]) -> None:
-        if name in done or name in trail:
-            return
-        trail.add(name)
-        layer = by_name[name].new
-        assert layer is not None
-        for producer in side.stats.producers(layer):
-            if producer.name in by_name:
-                visit(producer.name, trail)
-        done.add(name)
-        order.append(by_name[name])
-
     for pair in chosen:
         assert pair.new is not None
-        visit(pair.new.name, set())
+        stack = [(pair.new.name, False)]
+        while stack:
+            name, expanded = stack.pop()
+            if expanded:
+                state[name] = 2
+                order.append(by_name[name])
+                continue
+            if state.get(name):
+                continue
+            state[name] = 1
+            stack.append((name, True))
+            layer = by_name[name].new
+            assert layer is not None
+            producers = [p.name for p in side.stats.producers(layer) if p.name in by_name]
+            stack.extend((p, False) for p in reversed(producers) if not state.get(p))
     return order
 
 

@@ -697,3 +697,33 @@ def test_frozen_layer_with_moved_running_statistics_fails(
     assert conv1["status"] == "changed" and conv1["relative_change"] == 0.0
     assert "norm.mean" in conv1["note"] and conv1["moved_elements"] == 8
     assert not report.passed and "frozen-layer-moved" in _rules(report.to_dict())
+
+
+# ---- real exports of one model --------------------------------------------------------------
+DEMO = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
+
+
+@pytest.mark.parametrize(
+    "other",
+    ["npz", "h5", "keras", "weights.h5", "onnx", "torch-export.onnx", "pt"],
+)
+def test_real_exports_of_one_model_compare_as_same(other: str) -> None:
+    # fixtures/demo/make_demo.py writes one trained model through safetensors, numpy, Keras,
+    # torch and the ONNX exporter (reference writers); every export must compare as same
+    old, new = DEMO / "pumpwear-healthy.safetensors", DEMO / f"pumpwear-healthy.{other}"
+    if not new.exists():
+        pytest.skip(f"{new.name} is not among the committed fixtures")
+    document = api.compare(old, new).to_dict()
+    assert len(document["layers"]) == 3
+    assert {(e["status"], e["precision_only"], e["permuted"]) for e in document["layers"]} == {
+        ("same", False, False)
+    }
+    assert not _rules(document, "compare")
+
+
+def test_the_bf16_export_of_the_demo_model_is_precision_only() -> None:
+    new = DEMO / "pumpwear-healthy.bf16.safetensors"
+    if not new.exists():
+        pytest.skip("the bf16 demo export is not among the committed fixtures")
+    document = api.compare(DEMO / "pumpwear-healthy.safetensors", new).to_dict()
+    assert {(e["status"], e["precision"]) for e in document["layers"]} == {("same", "bf16")}

@@ -30,7 +30,6 @@ Canonical views, rows are always output units:
 from __future__ import annotations
 
 import math
-import mmap
 from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, replace
@@ -51,13 +50,7 @@ from steelyard.graph import (
     TensorRole,
     mark_outputs,
 )
-from steelyard.loaders.onnx_consts import (
-    MAX_MODEL_BYTES,
-    FileBytes,
-    Malformed,
-    Node,
-    strip_raw_data,
-)
+from steelyard.loaders.onnx_consts import FileBytes, Node
 from steelyard.loaders.onnx_fold import Folder, View
 from steelyard.loaders.onnx_graph import Graphs, Tracer, per_unit
 from steelyard.loaders.onnx_quant import (
@@ -65,13 +58,13 @@ from steelyard.loaders.onnx_quant import (
     QuantWeight,
     conv_integer,
     dequantize,
+    integer_scale,
     matmul_integer,
     qlinear_conv,
     qlinear_matmul,
 )
+from steelyard.loaders.onnx_wire import looks_like_model, parse_model
 
-#: ModelProto field number → wire type, for the content sniff.
-_MODEL_FIELDS = {1: 0, 2: 2, 3: 2, 4: 2, 5: 0, 6: 2, 7: 2, 8: 2, 14: 2, 20: 2, 25: 2, 26: 2}
 _GATES = {"LSTM": ("i", "o", "f", "c"), "GRU": ("z", "r", "h"), "RNN": ("h",)}
 #: The gate whose units form the hidden state a recurrent layer outputs.
 _HIDDEN_GATE = {"LSTM": "o", "GRU": "h", "RNN": "h"}
@@ -88,72 +81,6 @@ _RECURRENT_ACTS = {
     "LeakyRelu": Activation.LEAKY_RELU,
 }
 Array = Callable[[], np.ndarray]
-
-
-def _looks_like_model(head: bytes, size: int) -> bool:
-    """Walk the first protobuf fields: each must be a ModelProto field of the right type."""
-    pos, fields = 0, 0
-    while pos < len(head):
-        tag, pos, ok = _head_varint(head, pos)
-        if not ok:
-            return fields > 0 and len(head) < size  # cut off by the end of the head
-        number, wire = tag >> 3, tag & 7
-        if _MODEL_FIELDS.get(number) != wire:
-            return False
-        if wire == 0:
-            value, pos, ok = _head_varint(head, pos)
-            if not ok:
-                return len(head) < size
-            if number == 1 and not 1 <= value < 1 << 16:
-                return False
-        else:
-            length, pos, ok = _head_varint(head, pos)
-            if not ok:
-                return len(head) < size
-            if pos + length > size:
-                return False
-            pos += length
-        fields += 1
-    return fields > 0
-
-
-def _head_varint(head: bytes, pos: int) -> tuple[int, int, bool]:
-    value, shift = 0, 0
-    while pos < len(head) and shift < 64:
-        byte = head[pos]
-        pos += 1
-        value |= (byte & 0x7F) << shift
-        if not byte & 0x80:
-            return value, pos, True
-        shift += 7
-    return value, pos, False
-
-
-def _parse(path: Path, files: FileBytes) -> ModelProto:
-    if files.size == 0:
-        raise LoadError(path, "is empty")
-    if files.size > MAX_MODEL_BYTES:
-        raise LoadError(path, f"is {files.size} bytes, past the 2 GiB protobuf limit of ONNX")
-    try:
-        with (
-            open(path, "rb") as handle,
-            mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as mapped,
-        ):
-            stripped = strip_raw_data(mapped)
-    except Malformed as exc:
-        raise LoadError(path, f"is not a valid ONNX protobuf ({exc})") from None
-    except (OSError, ValueError) as exc:
-        raise LoadError(path, f"cannot be read ({exc})") from None
-    model = ModelProto()
-    try:
-        model.ParseFromString(stripped)
-    except Exception as exc:  # protobuf raises DecodeError, RuntimeError… by backend
-        raise LoadError(
-            path, f"is not a valid ONNX protobuf ({type(exc).__name__}: {exc})"
-        ) from None
-    if not model.HasField("graph"):
-        raise LoadError(path, "has no graph, so it is not an ONNX model")
-    return model
 
 
 @dataclass
@@ -459,40 +386,15 @@ class _Builder:
             )
         return [draft]
 
-    def _integer_scale(self, node: Node) -> tuple[str | None, str | None]:
-        """The constant weight scale applied after an integer op (Cast → Mul), and the Mul output."""
-        key = node.outputs[0] if node.outputs else ""
-        for _ in range(2):
-            consumers = self.graphs.consumers.get(key, [])
-            if len(consumers) != 1:
-                return None, None
-            user, position = consumers[0]
-            if user.op == "Cast":
-                key = user.outputs[0] if user.outputs else ""
-                continue
-            if user.op != "Mul":
-                return None, None
-            other = user.input(1 - position)
-            out = user.outputs[0] if user.outputs else None
-            if self.folder.is_const(other):
-                self.bookkeeping.update(self.folder.fold(other).sources)  # type: ignore[union-attr]
-                return other, out
-            found = self.graphs.producer.get(other)
-            if found is not None and found[0].op == "Mul":
-                consts = [k for k in found[0].inputs if self.folder.is_const(k)]
-                if len(consts) == 1:
-                    self.bookkeeping.update(self.folder.fold(consts[0]).sources)  # type: ignore[union-attr]
-                    return consts[0], out
-            return None, out
-        return None, None
-
     def quantized(self, node: Node) -> list[_Draft]:
         groups = node.get_int("group", 1)
         if node.op == "QLinearConv":
             return self._quantized(node, qlinear_conv(self.folder, node), LayerKind.CONV, groups)
         if node.op == "QLinearMatMul":
             return self._quantized(node, qlinear_matmul(self.folder, node), LayerKind.DENSE, 1)
-        scale, after = self._integer_scale(node)
+        scale, after = integer_scale(self.graphs.consumers, self.graphs.producer, self.folder, node)
+        if scale is not None:
+            self.bookkeeping.update(self.folder.fold(scale).sources)  # type: ignore[union-attr]
         if node.op == "ConvInteger":
             found = conv_integer(self.folder, node, scale)
             return self._quantized(node, found, LayerKind.CONV, groups, after)
@@ -670,7 +572,7 @@ class OnnxLoader:
             size = path.stat().st_size
         except OSError:
             return False
-        return bool(head) and _looks_like_model(head, size)
+        return bool(head) and looks_like_model(head, size)
 
     def load(self, path: Path) -> Checkpoint:
         """Read the model's structure; tensor bytes stay on disk until read."""
@@ -678,7 +580,7 @@ class OnnxLoader:
             files = FileBytes(path)
         except OSError as exc:
             raise LoadError(path, f"cannot be opened ({exc.strerror})") from None
-        model = _parse(path, files)
+        model = parse_model(path, files.size)
         graphs = Graphs(files)
         graphs.walk(model.graph)
         folder = Folder(graphs.stored, graphs.producer, path, dequantize)

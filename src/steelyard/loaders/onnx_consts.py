@@ -1,11 +1,8 @@
-"""ONNX stored tensors: the wire pass that leaves weight bytes on disk, and their decoding.
+"""ONNX stored tensors and nodes: element types, lazy decoding, Constant values.
 
-An ONNX file is one protobuf message, so the package can only parse all of it at once. To keep
-weights on disk until a rule asks for them, :func:`strip_raw_data` walks the protobuf wire
-format first and swaps every ``TensorProto.raw_data`` payload of 20 bytes or more for a
-20-byte marker holding the payload's file offset and length. The rebuilt (small) message is
-then parsed by the ``onnx`` package, and a tensor's reader memory-maps its bytes later.
-Payloads shorter than a marker stay inline, so a 20-byte ``raw_data`` is always a marker.
+A tensor's bytes are never copied at load time: ``raw_data`` payloads were replaced by file
+offsets (:mod:`steelyard.loaders.onnx_wire`) and external data is memory-mapped on first read.
+Every claim of a TensorProto (type, shape, byte ranges) is checked before a byte is viewed.
 """
 
 from __future__ import annotations
@@ -24,122 +21,12 @@ import numpy as np
 
 from steelyard.errors import LoadError
 from steelyard.loaders.base import file_size, inside
+from steelyard.loaders.onnx_wire import MARK, MARK_LEN
 
-#: A protobuf message cannot exceed 2 GiB; ONNX files past that use external data.
-MAX_MODEL_BYTES = 2**31 - 1
-#: Nesting bound for the wire walk (the protobuf runtime's own default recursion limit).
-MAX_DEPTH = 100
 #: Highest tensor rank accepted (ONNX itself has no limit; real models stay under 10).
 MAX_RANK = 32
 #: Largest dense tensor a sparse tensor may expand to.
 MAX_DENSE_BYTES = 2**31
-
-_MARK = b"SYRD"
-_MARK_LEN = 20  # magic + u64 offset + u64 length
-
-# Message kinds of onnx.proto that can (transitively) hold a TensorProto.
-_MODEL, _GRAPH, _NODE, _ATTR, _TENSOR, _SPARSE, _TRAINING, _FUNCTION = range(8)
-#: kind → {field number: child kind} for the length-delimited fields worth descending into.
-_CHILDREN: dict[int, dict[int, int]] = {
-    _MODEL: {7: _GRAPH, 20: _TRAINING, 25: _FUNCTION},
-    _GRAPH: {1: _NODE, 5: _TENSOR, 15: _SPARSE},
-    _NODE: {5: _ATTR},
-    _ATTR: {5: _TENSOR, 6: _GRAPH, 10: _TENSOR, 11: _GRAPH, 22: _SPARSE, 23: _SPARSE},
-    _SPARSE: {1: _TENSOR, 2: _TENSOR},
-    _TRAINING: {1: _GRAPH, 2: _GRAPH},
-    _FUNCTION: {7: _NODE, 11: _ATTR},
-    _TENSOR: {},
-}
-_RAW_DATA = 9
-
-
-class Malformed(Exception):
-    """The wire walk met bytes that are not a protobuf message (converted to LoadError)."""
-
-
-def _varint(buf: Any, pos: int, end: int) -> tuple[int, int]:
-    result = 0
-    shift = 0
-    while True:
-        if pos >= end:
-            raise Malformed("a varint runs past the end of its message")
-        byte = buf[pos]
-        pos += 1
-        result |= (byte & 0x7F) << shift
-        if not byte & 0x80:
-            return result, pos
-        shift += 7
-        if shift >= 70:
-            raise Malformed("a varint is longer than 10 bytes")
-
-
-def _encode_varint(value: int) -> bytes:
-    out = bytearray()
-    while True:
-        byte = value & 0x7F
-        value >>= 7
-        if value:
-            out.append(byte | 0x80)
-        else:
-            out.append(byte)
-            return bytes(out)
-
-
-def _rebuild(buf: Any, start: int, end: int, kind: int, depth: int) -> bytes | None:
-    """The message in ``buf[start:end]`` with raw payloads swapped, or None if unchanged."""
-    if depth > MAX_DEPTH:
-        raise Malformed(f"messages are nested more than {MAX_DEPTH} deep")
-    children = _CHILDREN[kind]
-    parts: list[bytes] = []
-    copied = start
-    pos = start
-    while pos < end:
-        field_start = pos
-        tag, pos = _varint(buf, pos, end)
-        number, wire = tag >> 3, tag & 7
-        if number == 0:
-            raise Malformed("a field has number 0")
-        if wire == 0:
-            _, pos = _varint(buf, pos, end)
-        elif wire == 1:
-            pos += 8
-        elif wire == 5:
-            pos += 4
-        elif wire == 2:
-            tag_end = pos
-            length, pos = _varint(buf, pos, end)
-            body = pos
-            pos += length
-            if pos > end:
-                raise Malformed("a field's length runs past the end of its message")
-            replacement: bytes | None = None
-            if kind == _TENSOR and number == _RAW_DATA and length >= _MARK_LEN:
-                marker = _MARK + struct.pack("<QQ", body, length)
-                replacement = bytes(buf[field_start:tag_end]) + _encode_varint(_MARK_LEN) + marker
-            elif number in children:
-                inner = _rebuild(buf, body, pos, children[number], depth + 1)
-                if inner is not None:
-                    replacement = (
-                        bytes(buf[field_start:tag_end]) + _encode_varint(len(inner)) + inner
-                    )
-            if replacement is not None:
-                parts.append(bytes(buf[copied:field_start]))
-                parts.append(replacement)
-                copied = pos
-        else:
-            raise Malformed(f"a field uses wire type {wire}, which ONNX never writes")
-        if pos > end:
-            raise Malformed("a field runs past the end of its message")
-    if not parts:
-        return None
-    parts.append(bytes(buf[copied:end]))
-    return b"".join(parts)
-
-
-def strip_raw_data(buf: Any) -> bytes:
-    """The model message with every large ``raw_data`` replaced by an offset marker."""
-    rebuilt = _rebuild(buf, 0, len(buf), _MODEL, 0)
-    return bytes(buf[:]) if rebuilt is None else rebuilt
 
 
 @dataclass(frozen=True)
@@ -239,8 +126,6 @@ class Stored:
     shape: tuple[int, ...]
     dtype: DType
     reader: Callable[[], np.ndarray] = field(repr=False)
-    external: str | None = None
-    """The external data file holding it, if any."""
 
 
 class FileBytes:
@@ -396,14 +281,14 @@ def tensor(proto: Any, key: str, files: FileBytes) -> Stored | None:
                 f"({size} bytes)",
             )
         reader = _raw_reader(files, target, offset, dtype, shape, count)
-        return Stored(key, shape, dtype, reader, external=str(target))
+        return Stored(key, shape, dtype, reader)
     if int(proto.data_location) != 0:
         raise LoadError(path, f"{where} has unknown data_location {proto.data_location}")
     if proto.HasField("raw_data"):
         raw = proto.raw_data
         needed = packed_bytes(dtype, count)
-        if len(raw) == _MARK_LEN:
-            if raw[:4] != _MARK:
+        if len(raw) == MARK_LEN:
+            if raw[:4] != MARK:
                 raise LoadError(path, f"{where} has an unreadable raw_data field")
             offset, length = struct.unpack("<QQ", raw[4:])
             if offset + length > files.size:
@@ -502,14 +387,7 @@ def sparse(proto: Any, key: str, files: FileBytes) -> Stored | None:
         dense[flat] = values.reader()
         return dense.reshape(shape)
 
-    return Stored(key, shape, dtype, read, external=values.external)
-
-
-def _constant_array(value: np.ndarray) -> Callable[[], np.ndarray]:
-    def read() -> np.ndarray:
-        return value
-
-    return read
+    return Stored(key, shape, dtype, read)
 
 
 # --- nodes and attributes -------------------------------------------------------------------

@@ -25,8 +25,10 @@ from steelyard.loaders.onnx_fold import Folder, View
 
 #: Deepest subgraph nesting walked (protobuf's own recursion limit stops far deeper files).
 MAX_NESTING = 32
-#: Steps any single forward or backward walk may take.
+#: Steps any single forward walk may take.
 MAX_STEPS = 256
+#: Values one backward walk may visit before the answer is "unknown".
+MAX_VISITS = 100_000
 
 _CONTROL_FLOW = ("If", "Loop", "Scan")
 
@@ -257,7 +259,6 @@ class Tracer:
     unit_outputs: Mapping[str, tuple[str, ...]]
     """Value key → names of the layers whose units it carries (empty for embeddings)."""
     _memo: dict[str, tuple[str, ...] | None] = field(default_factory=dict)
-    _active: set[str] = field(default_factory=set)
 
     def next(self, key: str) -> tuple[list[tuple[Node, int]], list[str]]:
         """Consumers of ``key`` (control-flow nodes excluded) and the values it aliases."""
@@ -358,7 +359,11 @@ class Tracer:
             mul = next(n for n, _ in nodes if n.op == "Mul")
             if sigmoid.outputs and set(mul.inputs) == {key, sigmoid.outputs[0]}:
                 return Activation.SILU
-        if 2 <= len(nodes) <= 4 and not aliases and self._reaches_gelu(nodes):
+        if (
+            2 <= len(nodes) <= 4
+            and not aliases
+            and (self._reaches_gelu(nodes) or self._quick_gelu(key, nodes))
+        ):
             return Activation.GELU
         if all(self.feeds_layer(n, p) for n, p in nodes):
             return Activation.IDENTITY
@@ -378,6 +383,23 @@ class Tracer:
                     for out in current.outputs:
                         following.extend(n for n, _ in self.graphs.consumers.get(out, []))
                 frontier, hops = following, hops + 1
+        return False
+
+    def _quick_gelu(self, key: str, nodes: list[tuple[Node, int]]) -> bool:
+        """x·σ(1.702·x), the sigmoid approximation of GELU."""
+        if len(nodes) != 2 or {n.op for n, _ in nodes} != {"Mul"}:
+            return False
+        for node, position in nodes:
+            gain = self.folder.scalar(node.input(1 - position))
+            users = self.graphs.consumers.get(node.outputs[0], []) if node.outputs else []
+            if gain is None or abs(gain - 1.702) > 1e-3 or len(users) != 1:
+                continue
+            sigmoid = users[0][0]
+            if sigmoid.op != "Sigmoid" or not sigmoid.outputs:
+                continue
+            other = next(n for n, _ in nodes if n is not node)
+            if set(other.inputs) == {key, sigmoid.outputs[0]}:
+                return True
         return False
 
     def _norm(self, node: Node, units: int, trailing: int) -> Norm | None:
@@ -426,54 +448,77 @@ class Tracer:
     # -- backward --------------------------------------------------------------------------
 
     def sources(self, key: str) -> tuple[str, ...] | None:
-        """Layers whose units reach value ``key`` (in input order), None when unknown."""
+        """Layers whose units reach value ``key`` (in input order), None when unknown.
+
+        An explicit-stack depth-first walk (a chain of thousands of ops must not exhaust
+        Python's recursion), memoised across calls; a cycle makes the answer unknown.
+        """
         if not key:
             return ()
-        if key in self._memo:
-            return self._memo[key]
-        if key in self._active or len(self._active) >= MAX_STEPS:
-            return None
-        self._active.add(key)
-        try:
-            found = self._sources(key)
-        finally:
-            self._active.discard(key)
-        self._memo[key] = found
-        return found
+        memo = self._memo
+        stack: list[tuple[str, list[str] | None]] = [(key, None)]
+        expanded: set[str] = set()
+        visits = 0
+        while stack:
+            current, deps = stack[-1]
+            if current in memo:
+                stack.pop()
+                continue
+            if deps is None:
+                visits += 1
+                if visits > MAX_VISITS:
+                    return None
+                done, value = self._step(current)
+                if done:
+                    memo[current] = value
+                    stack.pop()
+                    continue
+                deps = value or []
+                stack[-1] = (current, deps)
+                expanded.add(current)
+                # A dependency already expanded is an ancestor: a cycle, left unresolved.
+                stack.extend(
+                    (d, None) for d in reversed(deps) if d not in memo and d not in expanded
+                )
+                continue
+            stack.pop()
+            expanded.discard(current)
+            names: list[str] = []
+            for dep in deps:
+                found = memo.get(dep)
+                if found is None:
+                    memo[current] = None
+                    break
+                names.extend(found)
+            else:
+                memo[current] = tuple(dict.fromkeys(names))
+        return memo.get(key)
 
-    def _union(self, keys: list[str]) -> tuple[str, ...] | None:
-        names: list[str] = []
-        for key in keys:
-            found = self.sources(key)
-            if found is None:
-                return None
-            names.extend(found)
-        return tuple(dict.fromkeys(names))
-
-    def _sources(self, key: str) -> tuple[str, ...] | None:
+    def _step(self, key: str) -> tuple[bool, Any]:
+        """(True, answer) when ``key`` decides on its own, else (False, keys to combine)."""
         if key in self.unit_outputs:
-            return self.unit_outputs[key]
+            return True, self.unit_outputs[key]
         if key in self.graphs.backward:
-            return self._union(self.graphs.backward[key])
+            return False, list(self.graphs.backward[key])
         if key in self.graphs.stored or self.folder.is_const(key):
-            return ()
+            return True, ()
         found = self.graphs.producer.get(key)
         if found is None:
-            return ()  # a graph input
+            return True, ()  # a graph input
         node, position = found
         if not node.standard and node.domain != "com.microsoft":
-            return None
+            return True, None
         if node.op == "DynamicQuantizeLinear":
-            return self.sources(node.input(0)) if position == 0 else ()
+            return (False, [node.input(0)]) if position == 0 else (True, ())
         if node.op == "Reshape" and node.input(1) and not self.folder.is_const(node.input(1)):
-            return None  # a run-time shape: the unit mapping is not known
+            return True, None  # a run-time shape: the unit mapping is not known
         if node.op in _BACK_THROUGH:
-            return self.sources(node.input(0))
+            return False, [node.input(0)] if node.input(0) else []
         if node.op in _ELEMENTWISE:
-            return self._union([k for k in node.inputs if k and not self.folder.is_const(k)])
+            return False, [k for k in node.inputs if k and not self.folder.is_const(k)]
         if node.op == "Concat":
-            return self._union([k for k in node.inputs if k])
-        return None
+            return False, [k for k in node.inputs if k]
+        return True, None
 
 
 def _squeezes_to(shape: tuple[int, ...], units: int) -> bool:

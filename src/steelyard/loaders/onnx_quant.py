@@ -12,7 +12,7 @@ which the loader finds and hands in as ``scale``.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -190,6 +190,42 @@ def matmul_integer(folder: Folder, node: Node, scale_key: str | None) -> QuantWe
     return QuantWeight(
         q.source, shape, _weight(q, scale, zero, 1, True), scale_found=scale is not None
     )
+
+
+def integer_scale(
+    consumers: Mapping[str, list[tuple[Node, int]]],
+    producer: Mapping[str, tuple[Node, int]],
+    folder: Folder,
+    node: Node,
+) -> tuple[str | None, str | None]:
+    """The constant weight scale applied after ConvInteger/MatMulInteger, and the rescaled value.
+
+    Exporters write ``Cast(int32 → float) → Mul(·, s)`` with ``s`` the weight scale itself or
+    ``Mul(input_scale, weight_scale)``; the returned value key is the Mul's output (where the
+    layer's float units are), the scale key None when no constant scale was found.
+    """
+    key = node.outputs[0] if node.outputs else ""
+    for _ in range(2):
+        users = consumers.get(key, [])
+        if len(users) != 1:
+            return None, None
+        user, position = users[0]
+        if user.op == "Cast":
+            key = user.outputs[0] if user.outputs else ""
+            continue
+        if user.op != "Mul":
+            return None, None
+        other = user.input(1 - position)
+        out = user.outputs[0] if user.outputs else None
+        if folder.is_const(other):
+            return other, out
+        found = producer.get(other)
+        if found is not None and found[0].op == "Mul":
+            consts = [k for k in found[0].inputs if folder.is_const(k)]
+            if len(consts) == 1:
+                return consts[0], out
+        return None, out
+    return None, None
 
 
 #: op → (input positions holding quantized weights, positions holding scales / zero points).

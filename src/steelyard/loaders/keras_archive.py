@@ -2,28 +2,25 @@
 ``model.weights.h5``.
 
 The weights member is read in place: Keras stores it uncompressed, so h5py gets a bounded
-window onto the archive's bytes (nothing is unpacked to disk). A compressed member is copied
-into memory, up to a cap. ``config.json`` supplies the layer classes, links, activations,
+window onto the archive's bytes and tensors are byte ranges of the archive (nothing is
+unpacked to disk). A compressed member is inflated into memory, up to a cap, on each use. ``config.json`` supplies the layer classes, links, activations,
 constraints, regularizers and the optimizer's hyperparameters.
 """
 
 from __future__ import annotations
 
-import contextlib
-import io
 import struct
 import zipfile
-from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
-
-import h5py
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders import keras_common as kc
+from steelyard.loaders import keras_hdf5 as kh
+from steelyard.loaders import keras_optimizer as ko
 from steelyard.loaders.base import file_size, open_zip, read_zip_member, safe_zip_names
-from steelyard.loaders.keras_h5 import H5Store, Opener, read_weights_h5
+from steelyard.loaders.keras_h5 import read_weights_h5
+from steelyard.loaders.keras_hdf5 import H5Store, Location, isolated
 
 CONFIG = "config.json"
 METADATA = "metadata.json"
@@ -32,50 +29,6 @@ NPZ_WEIGHTS = "model.weights.npz"
 #: A compressed weights member is decompressed into memory only up to this size.
 MAX_IN_MEMORY = 1 << 30
 _LOCAL_HEADER = struct.Struct("<4s5H3L2H")
-
-
-class _Window(io.RawIOBase):
-    """Read-only, seekable view of ``length`` bytes of ``raw`` starting at ``start``."""
-
-    def __init__(self, raw: io.BufferedReader, start: int, length: int) -> None:
-        super().__init__()
-        self._raw = raw
-        self._start = start
-        self._length = length
-        self._pos = 0
-
-    def readable(self) -> bool:
-        return True
-
-    def seekable(self) -> bool:
-        return True
-
-    def tell(self) -> int:
-        return self._pos
-
-    def seek(self, offset: int, whence: int = io.SEEK_SET) -> int:
-        if whence == io.SEEK_SET:
-            target = offset
-        elif whence == io.SEEK_CUR:
-            target = self._pos + offset
-        elif whence == io.SEEK_END:
-            target = self._length + offset
-        else:
-            raise ValueError(f"bad whence {whence}")
-        if target < 0:
-            raise ValueError("negative seek position")
-        self._pos = target
-        return target
-
-    def readinto(self, buffer: Any) -> int:
-        view = memoryview(buffer).cast("B")
-        count = max(0, min(len(view), self._length - self._pos))
-        if count == 0:
-            return 0
-        self._raw.seek(self._start + self._pos)
-        got = int(self._raw.readinto(view[:count]) or 0)
-        self._pos += got
-        return got
 
 
 def _data_start(path: Path, info: zipfile.ZipInfo, archive_size: int) -> int:
@@ -95,24 +48,6 @@ def _data_start(path: Path, info: zipfile.ZipInfo, archive_size: int) -> int:
     return start
 
 
-def _window_opener(path: Path, start: int, length: int) -> Opener:
-    @contextlib.contextmanager
-    def opened() -> Iterator[Any]:
-        with open(path, "rb") as raw, h5py.File(_Window(raw, start, length), "r") as f:
-            yield f
-
-    return opened
-
-
-def _memory_opener(data: bytes) -> Opener:
-    @contextlib.contextmanager
-    def opened() -> Iterator[Any]:
-        with h5py.File(io.BytesIO(data), "r") as f:
-            yield f
-
-    return opened
-
-
 class KerasArchiveLoader:
     """``.keras`` zip archives written by Keras 3."""
 
@@ -130,61 +65,70 @@ class KerasArchiveLoader:
         return CONFIG in names and (WEIGHTS in names or NPZ_WEIGHTS in names)
 
     def load(self, path: Path) -> Checkpoint:
-        """Read the archive's structure; tensors stay in the archive until read."""
-        size = file_size(path)
-        with open_zip(path) as archive:
-            members = safe_zip_names(archive, path)
-            if WEIGHTS not in members:
-                if NPZ_WEIGHTS in members:
-                    raise LoadError(
-                        path,
-                        f"keeps its weights in {NPZ_WEIGHTS}, which holds pickled objects (refused)",
-                    )
-                raise LoadError(path, f"is a zip archive without {WEIGHTS}")
-            if CONFIG not in members:
-                raise LoadError(path, f"is a zip archive without {CONFIG}")
-            config = kc.parse_json(read_zip_member(archive, members[CONFIG], path), path, CONFIG)
-            notes: list[str] = []
-            if METADATA in members:
-                metadata = kc.parse_json(
-                    read_zip_member(archive, members[METADATA], path), path, METADATA
+        """Read the archive's structure (in a time-limited child process); tensors stay in
+        the archive until read."""
+        return isolated(path, load_archive, (path,), kh.LOAD_TIMEOUT)
+
+
+def load_archive(path: Path) -> Checkpoint:
+    """The checkpoint of one ``.keras`` archive (runs inside :func:`isolated`)."""
+    size = file_size(path)
+    with open_zip(path) as archive:
+        members = safe_zip_names(archive, path)
+        if WEIGHTS not in members:
+            if NPZ_WEIGHTS in members:
+                raise LoadError(
+                    path,
+                    f"keeps its weights in {NPZ_WEIGHTS}, which holds pickled objects (refused)",
                 )
-                version = metadata.get("keras_version") if isinstance(metadata, dict) else None
-                if isinstance(version, str):
-                    notes.append(f"saved by Keras {version[:40]}")
-            info = members[WEIGHTS]
-            if info.flag_bits & 0x1:
-                raise LoadError(path, f"archive member {WEIGHTS!r} is encrypted")
-            if info.compress_type == zipfile.ZIP_STORED:
-                if info.compress_size != info.file_size:
-                    raise LoadError(path, f"archive member {WEIGHTS!r} has inconsistent sizes")
-                start = _data_start(path, info, size)
-                opener = _window_opener(path, start, info.file_size)
-            else:
-                data = read_zip_member(archive, info, path, limit=MAX_IN_MEMORY)
-                opener = _memory_opener(data)
-        if not isinstance(config, dict):
-            raise LoadError(path, f"{CONFIG} is not a JSON object")
-        graph = kc.parse_model(config, path)
-        if graph is None:
-            notes.append(f"{CONFIG} does not list the model's layers (subclassed model?)")
+            raise LoadError(path, f"is a zip archive without {WEIGHTS}")
+        if CONFIG not in members:
+            raise LoadError(path, f"is a zip archive without {CONFIG}")
+        config = kc.parse_json(read_zip_member(archive, members[CONFIG], path), path, CONFIG)
+        notes: list[str] = []
+        if METADATA in members:
+            metadata = kc.parse_json(
+                read_zip_member(archive, members[METADATA], path), path, METADATA
+            )
+            version = metadata.get("keras_version") if isinstance(metadata, dict) else None
+            if isinstance(version, str):
+                notes.append(f"saved by Keras {version[:40]}")
+        info = members[WEIGHTS]
+        if info.flag_bits & 0x1:
+            raise LoadError(path, f"archive member {WEIGHTS!r} is encrypted")
+        if info.compress_type == zipfile.ZIP_STORED:
+            if info.compress_size != info.file_size:
+                raise LoadError(path, f"archive member {WEIGHTS!r} has inconsistent sizes")
+            location = Location(path, info.file_size, start=_data_start(path, info, size))
         else:
-            notes.extend(graph.notes)
-        compile_config = config.get("compile_config")
-        opt = kc.optimizer_config(
-            compile_config.get("optimizer") if isinstance(compile_config, dict) else None
-        )
-        store = H5Store(path, opener, info.file_size)
-        with store.open() as f:
-            tensors, layers, optimizer, more = read_weights_h5(store, f, graph, opt)
-        notes.extend(more)
-        return Checkpoint(
-            path=str(path),
-            format=self.format,
-            tensors=tensors,
-            layers=layers,
-            file_size=size,
-            files=(str(path),),
-            optimizer=optimizer,
-            notes=tuple(notes),
-        )
+            if info.file_size > MAX_IN_MEMORY:
+                raise LoadError(
+                    path,
+                    f"archive member {WEIGHTS!r} inflates to {info.file_size} bytes, over the cap",
+                )
+            location = Location(path, info.file_size, member=WEIGHTS, member_limit=MAX_IN_MEMORY)
+    if not isinstance(config, dict):
+        raise LoadError(path, f"{CONFIG} is not a JSON object")
+    graph = kc.parse_model(config, path)
+    if graph is None:
+        notes.append(f"{CONFIG} does not list the model's layers (subclassed model?)")
+    else:
+        notes.extend(graph.notes)
+    compile_config = config.get("compile_config")
+    opt = ko.optimizer_config(
+        compile_config.get("optimizer") if isinstance(compile_config, dict) else None
+    )
+    store = H5Store(path, location)
+    with store.open() as f:
+        tensors, layers, optimizer, more = read_weights_h5(store, f, graph, opt)
+    notes.extend(more)
+    return Checkpoint(
+        path=str(path),
+        format=Format.KERAS,
+        tensors=tensors,
+        layers=layers,
+        file_size=size,
+        files=(str(path),),
+        optimizer=optimizer,
+        notes=tuple(notes),
+    )

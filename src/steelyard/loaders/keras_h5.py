@@ -1,335 +1,35 @@
 """Keras HDF5 files: legacy whole models (Keras 2 and 3), Keras 2 weights-only ``.h5``, and
 Keras 3 ``.weights.h5``.
 
-h5py follows external links, external storage and virtual datasets silently, so every path
-is walked one link at a time and every dataset is checked before it is touched. Tensors are
-read on demand: each reader reopens the file and re-checks its dataset.
+Tensor names are dataset paths: below ``model_weights`` (or the root) for legacy files,
+inside the file for ``.weights.h5``. All HDF5 access goes through the checked
+:class:`~steelyard.loaders.keras_hdf5.H5Store`; tensors are read on demand.
 """
 
 from __future__ import annotations
 
-import contextlib
 import math
 import re
-from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
 
 import h5py
-import ml_dtypes
-import numpy as np
 
-from steelyard.dtypes import name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, OptimizerState, Tensor, TensorRole
 from steelyard.loaders import keras_common as kc
-from steelyard.loaders.base import MAX_METADATA_BYTES, file_size
-
-MAGIC = b"\x89HDF\r\n\x1a\n"
-#: Largest tensor we agree to decode (bounded memory on hostile shapes).
-MAX_TENSOR_BYTES = 1 << 34
-#: A filtered (compressed) dataset may expand this much over its stored bytes…
-MAX_EXPANSION = 1000
-#: …and any dataset up to this size is allowed regardless.
-SMALL_DATASET = 1 << 20
-MAX_NODES = 200_000
-MAX_ATTR_ELEMENTS = 1_000_000
-MAX_SOFT_HOPS = 8
-
-#: What h5py raises on damaged or unexpected files; always converted to LoadError.
-H5_ERRORS: tuple[type[BaseException], ...] = (
-    OSError,
-    KeyError,
-    ValueError,
-    TypeError,
-    RuntimeError,
-    IndexError,
-    AttributeError,
-    OverflowError,
-    SystemError,
+from steelyard.loaders import keras_hdf5 as kh
+from steelyard.loaders import keras_optimizer as ko
+from steelyard.loaders.base import file_size
+from steelyard.loaders.keras_hdf5 import (
+    H5_ERRORS,
+    H5Store,
+    Location,
+    has_hdf5_magic,
+    isolated,
+    reason,
 )
-
-Opener = Callable[[], contextlib.AbstractContextManager[Any]]
-
-
-def _open_path(path: Path) -> Opener:
-    def opener() -> contextlib.AbstractContextManager[Any]:
-        handle: contextlib.AbstractContextManager[Any] = h5py.File(path, "r", locking=False)
-        return handle
-
-    return opener
-
-
-class H5Store:
-    """Checked, lazy access to the datasets of one HDF5 weights file.
-
-    ``opener`` opens the file (on disk, or a window inside an archive); ``limit`` is the
-    number of bytes the HDF5 file occupies, which no dataset's storage may exceed.
-    """
-
-    def __init__(self, source: Path, opener: Opener, limit: int) -> None:
-        self.source = source
-        self.opener = opener
-        self.limit = limit
-
-    def fail(self, reason: str) -> LoadError:
-        """A LoadError naming the file."""
-        return LoadError(self.source, reason)
-
-    @contextlib.contextmanager
-    def open(self) -> Iterator[Any]:
-        """The open h5py file; h5py errors become LoadError."""
-        try:
-            handle = self.opener()
-        except LoadError:
-            raise
-        except H5_ERRORS as exc:
-            raise self.fail(f"is not a readable HDF5 file ({_reason(exc)})") from None
-        try:
-            with handle as f:
-                yield f
-        except LoadError:
-            raise
-        except H5_ERRORS as exc:
-            raise self.fail(f"is a damaged HDF5 file ({_reason(exc)})") from None
-
-    # -- paths ----------------------------------------------------------------------------
-
-    def _parts(self, path: str) -> list[str]:
-        parts = path.split("/") if path else []
-        if any(part in ("", ".", "..") for part in parts):
-            raise self.fail(f"refers to the invalid HDF5 path {path!r}")
-        return parts
-
-    def link(self, group: Any, name: str, where: str) -> Any:
-        """The link ``name`` in ``group`` (not followed); refuses external and user links."""
-        if not isinstance(group, h5py.Group):
-            raise self.fail(f"HDF5 path {where!r} goes through a dataset")
-        link = group.get(name, getlink=True)
-        if link is None:
-            raise self.fail(f"has no HDF5 object {where!r}")
-        if isinstance(link, h5py.ExternalLink):
-            raise self.fail(
-                f"HDF5 object {where!r} is an external link to {link.filename!r} (refused)"
-            )
-        if not isinstance(link, (h5py.SoftLink, h5py.HardLink)):
-            raise self.fail(f"HDF5 object {where!r} is a user-defined link (refused)")
-        return link
-
-    def resolve(self, f: Any, path: str) -> Any:
-        """The object at ``path``, following soft links only when they stay inside the top-level
-        group the path starts in (hard links are followed as HDF5 does)."""
-        parts = self._parts(path)
-        if not parts:
-            return f
-        top = parts[0]
-        trail: list[str] = []
-        node, hops, i = f, 0, 0
-        while i < len(parts):
-            where = "/".join([*trail, parts[i]])
-            link = self.link(node, parts[i], where)
-            if isinstance(link, h5py.SoftLink):
-                hops += 1
-                if hops > MAX_SOFT_HOPS:
-                    raise self.fail(f"HDF5 soft links at {where!r} loop")
-                target = str(link.path)
-                full = target.lstrip("/") if target.startswith("/") else "/".join([*trail, target])
-                redirected = self._parts(full)
-                if not redirected or redirected[0] != top:
-                    raise self.fail(
-                        f"HDF5 soft link {where!r} points to {target!r}, outside {top!r} (refused)"
-                    )
-                parts, node, trail, i = redirected + parts[i + 1 :], f, [], 0
-                continue
-            node = node[parts[i]]
-            trail.append(parts[i])
-            i += 1
-        return node
-
-    def exists(self, f: Any, path: str) -> bool:
-        """Whether ``path`` names an object (links checked as in :meth:`resolve`)."""
-        parts = self._parts(path)
-        node = f
-        for depth, part in enumerate(parts):
-            if not isinstance(node, h5py.Group) or part not in node:
-                return False
-            self.link(node, part, "/".join(parts[: depth + 1]))
-            node = self.resolve(f, "/".join(parts[: depth + 1]))
-        return True
-
-    def group(self, f: Any, path: str) -> Any:
-        """The group at ``path`` or LoadError."""
-        node = self.resolve(f, path)
-        if not isinstance(node, h5py.Group):
-            raise self.fail(f"HDF5 object {path!r} is not a group")
-        return node
-
-    # -- attributes -----------------------------------------------------------------------
-
-    def _attr(self, obj: Any, key: str) -> Any:
-        if key not in obj.attrs:
-            return None
-        attr = h5py.h5a.open(obj.id, key.encode("utf-8"))
-        shape = attr.shape or ()
-        try:
-            stored = int(attr.get_storage_size())
-        except H5_ERRORS:
-            stored = 0  # h5py reports an empty attribute's zero size as an error
-        if math.prod(shape) > MAX_ATTR_ELEMENTS or stored > MAX_METADATA_BYTES:
-            raise self.fail(f"HDF5 attribute {key!r} is larger than the cap")
-        return obj.attrs[key]
-
-    def attr_text(self, obj: Any, key: str) -> str | None:
-        """A string attribute (bytes decoded), None when absent."""
-        value = self._attr(obj, key)
-        if value is None:
-            return None
-        if isinstance(value, np.ndarray) and value.shape == ():
-            value = value[()]
-        if isinstance(value, bytes):
-            try:
-                return value.decode("utf-8")
-            except UnicodeDecodeError:
-                raise self.fail(f"HDF5 attribute {key!r} is not UTF-8 text") from None
-        if isinstance(value, str):
-            return value
-        raise self.fail(f"HDF5 attribute {key!r} is not text")
-
-    def attr_strings(self, obj: Any, key: str) -> list[str] | None:
-        """A list-of-strings attribute (``layer_names``, ``weight_names``), None when absent."""
-        value = self._attr(obj, key)
-        if value is None:
-            return None
-        items = value.reshape(-1).tolist() if isinstance(value, np.ndarray) else [value]
-        out: list[str] = []
-        for item in items:
-            if isinstance(item, bytes):
-                try:
-                    item = item.decode("utf-8")
-                except UnicodeDecodeError:
-                    raise self.fail(f"HDF5 attribute {key!r} holds non-UTF-8 names") from None
-            if not isinstance(item, str):
-                if isinstance(value, np.ndarray) and value.size == 0:
-                    break
-                raise self.fail(f"HDF5 attribute {key!r} holds a non-string {item!r}")
-            out.append(item)
-        return out
-
-    # -- datasets -------------------------------------------------------------------------
-
-    def check_dataset(self, obj: Any, path: str) -> tuple[tuple[int, ...], str, np.dtype[Any]]:
-        """Shape, short dtype name and numpy dtype of a dataset we agree to read."""
-        if not isinstance(obj, h5py.Dataset):
-            raise self.fail(f"HDF5 object {path!r} is not a dataset")
-        if obj.is_virtual:
-            raise self.fail(f"dataset {path!r} is a virtual dataset (refused)")
-        if obj.external:
-            raise self.fail(f"dataset {path!r} keeps its data in external files (refused)")
-        shape = obj.shape
-        if shape is None:
-            raise self.fail(f"dataset {path!r} has no dataspace")
-        shape = tuple(int(d) for d in shape)
-        stored = obj.dtype
-        numeric = (stored.kind == "f" and stored.itemsize in (2, 4, 8)) or (
-            stored.kind in "iub" and stored.itemsize in (1, 2, 4, 8)
-        )
-        if numeric and stored.fields is None:
-            dtype = stored
-        elif stored.kind == "V" and stored.itemsize == 2 and stored.fields is None:
-            # Keras 3 stores bfloat16 as 2-byte opaque data tagged with a dtype attribute.
-            if self.attr_text(obj, "dtype") != "bfloat16":
-                raise self.fail(f"dataset {path!r} holds opaque data, not numbers")
-            dtype = np.dtype(ml_dtypes.bfloat16)
-        else:
-            raise self.fail(f"dataset {path!r} has unsupported dtype {stored}")
-        declared = math.prod(shape) * dtype.itemsize
-        storage = int(obj.id.get_storage_size())
-        filtered = obj.id.get_create_plist().get_nfilters() > 0
-        if declared > MAX_TENSOR_BYTES:
-            raise self.fail(f"dataset {path!r} declares {declared} bytes, over the cap")
-        if storage > self.limit:
-            raise self.fail(
-                f"dataset {path!r} claims {storage} stored bytes, more than the file holds"
-            )
-        allowed = storage * (MAX_EXPANSION if filtered else 1)
-        if declared > max(allowed, 0) and declared > (SMALL_DATASET if filtered else 0):
-            raise self.fail(
-                f"dataset {path!r} declares {declared} bytes but stores {storage} (refused)"
-            )
-        return shape, name_of(dtype), dtype.newbyteorder("=")
-
-    def tensor(self, f: Any, path: str, name: str, role: TensorRole | None = None) -> Tensor:
-        """A lazily read tensor for the dataset at ``path`` (checked now and at each read)."""
-        obj = self.resolve(f, path)
-        shape, short, dtype = self.check_dataset(obj, path)
-        is_float = dtype.kind == "f" or short == "bf16"
-        if role is None:
-            role = TensorRole.PARAMETER if is_float else TensorRole.BOOKKEEPING
-        return Tensor(
-            name=name, shape=shape, dtype=short, role=role, reader=self._reader(path, shape, dtype)
-        )
-
-    def _reader(
-        self, path: str, shape: tuple[int, ...], dtype: np.dtype[Any]
-    ) -> Callable[[], np.ndarray]:
-        def read() -> np.ndarray:
-            with self.open() as f:
-                obj = self.resolve(f, path)
-                now, _, _ = self.check_dataset(obj, path)
-                if now != shape:
-                    raise self.fail(f"dataset {path!r} changed shape since it was listed")
-                try:
-                    raw = np.asarray(obj[()])
-                except H5_ERRORS as exc:
-                    raise self.fail(f"dataset {path!r} cannot be read ({_reason(exc)})") from None
-            if raw.dtype.kind == "V":
-                raw = raw.view(ml_dtypes.bfloat16)
-            if raw.shape != shape:
-                raise self.fail(f"dataset {path!r} read as shape {raw.shape}, not {shape}")
-            return raw.astype(dtype, copy=False)
-
-        return read
-
-    def datasets(self, f: Any, top: str) -> list[str]:
-        """Every dataset path under group ``top``, natural order (``vars/10`` after ``vars/9``).
-
-        Soft links are refused here: Keras never writes them, and listing through them could
-        alias or loop."""
-        out: list[str] = []
-        budget = [MAX_NODES]
-
-        def walk(group: Any, prefix: str, depth: int) -> None:
-            if depth > kc.MAX_DEPTH:
-                raise self.fail(f"HDF5 groups under {prefix!r} nest too deeply")
-            names = list(group.keys())
-            budget[0] -= len(names)
-            if budget[0] < 0:
-                raise self.fail(f"has more than {MAX_NODES} HDF5 objects")
-            for name in sorted(names, key=kc.natural_key):
-                where = f"{prefix}/{name}" if prefix else name
-                self._parts(where)
-                link = self.link(group, name, where)
-                if isinstance(link, h5py.SoftLink):
-                    raise self.fail(f"HDF5 object {where!r} is a soft link (refused)")
-                child = group[name]
-                if isinstance(child, h5py.Group):
-                    walk(child, where, depth + 1)
-                elif isinstance(child, h5py.Dataset):
-                    out.append(where)
-                else:
-                    raise self.fail(f"HDF5 object {where!r} is neither group nor dataset")
-
-        node = self.resolve(f, top)
-        if isinstance(node, h5py.Dataset):
-            return [top]
-        walk(node, top, 0)
-        return out
-
-
-def _reason(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    return text[:200]
-
+from steelyard.loaders.keras_layers import build_layers
 
 # --------------------------------------------------------------------------------------------
 # Keras 3 .weights.h5 (also the inside of a .keras archive)
@@ -339,7 +39,7 @@ def read_weights_h5(
     store: H5Store,
     f: Any,
     graph: kc.ModelGraph | None,
-    opt: kc.OptimizerConfig | None,
+    opt: ko.OptimizerConfig | None,
 ) -> tuple[dict[str, Tensor], tuple[Any, ...], OptimizerState | None, list[str]]:
     """Tensors, layers, optimizer state and notes of a ``.weights.h5`` layout."""
     notes: list[str] = []
@@ -362,7 +62,7 @@ def read_weights_h5(
                 "no model config: layer kinds were inferred from the weight file's keys; "
                 "activations and links are unknown"
             )
-    layers, more = kc.build_layers(atoms, store.source, have_config)
+    layers, more = build_layers(atoms, store.source, have_config)
     notes.extend(more)
     optimizer = None
     if "optimizer" in f:
@@ -388,29 +88,38 @@ def _vars_path(atom: kc.Atom) -> str:
     return f"{atom.key_path}/cell/vars" if atom.cls in kc.RNN_GATES else f"{atom.key_path}/vars"
 
 
+class _Indexed:
+    """Tensors grouped by the folder they sit in, so ``vars/<i>`` lookups are cheap."""
+
+    def __init__(self, tensors: dict[str, Tensor]) -> None:
+        self.folders: dict[str, list[tuple[str, Tensor]]] = {}
+        for name, tensor in tensors.items():
+            folder, _, leaf = name.rpartition("/")
+            self.folders.setdefault(folder, []).append((leaf, tensor))
+
+    def get(self, prefix: str) -> list[Tensor] | None:
+        """Tensors ``<prefix>/<i>`` in numeric order; None when a name is not an index."""
+        entries = self.folders.get(prefix, [])
+        if not all(leaf.isdigit() for leaf, _ in entries):
+            return None
+        return [tensor for _, tensor in sorted(entries, key=lambda item: int(item[0]))]
+
+
 def _indexed(tensors: dict[str, Tensor], prefix: str) -> list[Tensor] | None:
     """Tensors ``<prefix>/<i>`` in numeric order; None when a name is not an index."""
-    found: list[tuple[int, Tensor]] = []
-    for name, tensor in tensors.items():
-        if name.startswith(prefix + "/"):
-            rest = name[len(prefix) + 1 :]
-            if "/" in rest:
-                continue
-            if not rest.isdigit():
-                return None
-            found.append((int(rest), tensor))
-    return [tensor for _, tensor in sorted(found, key=lambda item: item[0])]
+    return _Indexed(tensors).get(prefix)
 
 
 def _attach_vars(
     store: H5Store, f: Any, atoms: list[kc.Atom], tensors: dict[str, Tensor], notes: list[str]
 ) -> None:
     mismatched: list[str] = []
+    index = _Indexed(tensors)
     for atom in atoms:
         if not atom.key_path:
             continue
         prefix = _vars_path(atom)
-        variables = _indexed(tensors, prefix)
+        variables = index.get(prefix)
         if variables is None:
             mismatched.append(f"{atom.name} (non-numeric variable names)")
             continue
@@ -447,6 +156,7 @@ def _atoms_from_keys(store: H5Store, f: Any, tensors: dict[str, Tensor]) -> list
     atoms: list[kc.Atom] = []
     if "layers" not in f:
         return atoms
+    index = _Indexed(tensors)
 
     def walk(path: str, depth: int) -> None:
         if depth > kc.MAX_DEPTH:
@@ -473,7 +183,7 @@ def _atoms_from_keys(store: H5Store, f: Any, tensors: dict[str, Tensor]) -> list
                 top=key,
             )
             prefix = _vars_path(atom)
-            variables = _indexed(tensors, prefix) or []
+            variables = index.get(prefix) or []
             if store.exists(f, prefix):
                 named = store.attr_text(store.group(f, prefix), "name")
                 if named and cls not in kc.RNN_GATES:
@@ -501,7 +211,7 @@ def _weights_optimizer(
     store: H5Store,
     f: Any,
     atoms: list[kc.Atom],
-    opt: kc.OptimizerConfig | None,
+    opt: ko.OptimizerConfig | None,
     have_config: bool,
 ) -> tuple[OptimizerState | None, str | None]:
     source = "optimizer/vars"
@@ -516,8 +226,8 @@ def _weights_optimizer(
         return None, None
     group_name = store.attr_text(store.group(f, source), "name")
     if have_config:
-        trainable = kc.iter_trainable(atoms)
-        result = kc.map_keras3_ordered(variables, trainable, opt, group_name, source)
+        trainable = ko.iter_trainable(atoms)
+        result = ko.map_keras3_ordered(variables, trainable, opt, group_name, source)
         return result.state, result.note
     result = _unordered_optimizer(variables, atoms, group_name, source)
     return result.state, result.note
@@ -525,14 +235,14 @@ def _weights_optimizer(
 
 def _unordered_optimizer(
     variables: list[Tensor], atoms: list[kc.Atom], group_name: str | None, source: str
-) -> kc.OptimizerResult:
+) -> ko.OptimizerResult:
     """Without a config the model order is known only within one layer class (Keras numbers
     keys in container order). The order is used only when the slot shapes force exactly one
     interleaving of the classes."""
     base = re.sub(r"_\d+$", "", group_name or "")
     kind = {"adam": "adam", "adam_w": "adamw", "sgd": "sgd", "rm_sprop": "rmsprop"}.get(base)
     if kind is None:
-        return kc.OptimizerResult(
+        return ko.OptimizerResult(
             note=f"optimizer state in {source} not mapped: no config names the optimizer"
         )
     trainable_by_atom = {
@@ -545,7 +255,7 @@ def _unordered_optimizer(
     per_var = {"adam": [2], "adamw": [2], "sgd": [1, 0], "rmsprop": [1]}[kind]
     fits = [k for k in per_var if len(variables) - k * total in (1, 2)]
     if len(fits) != 1:
-        return kc.OptimizerResult(
+        return ko.OptimizerResult(
             note=f"optimizer state in {source} not mapped: {len(variables)} variables do not fit "
             f"{total} model variables"
         )
@@ -555,15 +265,15 @@ def _unordered_optimizer(
     shapes = [slots[i * k].shape for i in range(total)] if k else []
     order = _interleave(atoms, trainable_by_atom, shapes) if k else []
     if order is None:
-        return kc.OptimizerResult(
+        return ko.OptimizerResult(
             note=f"optimizer state in {source} not mapped: without a config the model order of "
             "its layers is ambiguous"
         )
-    layout = kc.OptimizerConfig(
+    layout = ko.OptimizerConfig(
         {"adam": "Adam", "adamw": "AdamW", "sgd": "SGD", "rmsprop": "RMSprop"}[kind],
         {"momentum": 0.9 if k else 0.0} if kind == "sgd" else {},
     )
-    return kc.map_keras3_ordered(variables, order, layout, group_name, source)
+    return ko.map_keras3_ordered(variables, order, layout, group_name, source)
 
 
 def _interleave(
@@ -693,11 +403,11 @@ def read_legacy(
                 "no model config: layer kinds were inferred from default layer names; "
                 "activations and links are unknown"
             )
-    layers, more = kc.build_layers(atoms, store.source, graph is not None)
+    layers, more = build_layers(atoms, store.source, graph is not None)
     notes.extend(more)
     optimizer = None
     if "optimizer_weights" in f:
-        opt = kc.optimizer_config(
+        opt = ko.optimizer_config(
             training.get("optimizer_config") if isinstance(training, dict) else None
         )
         optimizer, note = _legacy_optimizer(store, f, atoms, groups, opt, version)
@@ -782,7 +492,7 @@ def _legacy_optimizer(
     f: Any,
     atoms: list[kc.Atom],
     groups: list[tuple[str, list[tuple[str, Tensor]]]],
-    opt: kc.OptimizerConfig | None,
+    opt: ko.OptimizerConfig | None,
     version: str,
 ) -> tuple[OptimizerState | None, str | None]:
     source = "optimizer_weights"
@@ -798,21 +508,21 @@ def _legacy_optimizer(
     ]
     keras2 = version.startswith(("1.", "2.")) or (not version and any(":" in n for n in names))
     if not keras2:
-        trainable = kc.iter_trainable(atoms)
-        result = kc.map_keras3_named(names, variables, trainable, opt, source)
+        trainable = ko.iter_trainable(atoms)
+        result = ko.map_keras3_named(names, variables, trainable, opt, source)
         return result.state, result.note
     if "iterations" in names[0] and all(re.fullmatch(r"Variable(_\d+)?:\d+", n) for n in names[1:]):
-        trainable = kc.iter_trainable(atoms)
+        trainable = ko.iter_trainable(atoms)
         weight_of = {t.name: w for _, items in groups for w, t in items}
         pairs = [(weight_of.get(t.name, t.name), t) for t in trainable]
-        result = kc.map_keras20(names, variables, pairs, opt, source)
+        result = ko.map_keras20(names, variables, pairs, opt, source)
         return result.state, result.note
     by_variable: dict[str, Tensor | None] = {}
     for _, items in groups:
         for weight, tensor in items:
             key = re.sub(r":\d+$", "", weight)
             by_variable[key] = None if key in by_variable else tensor
-    result = kc.map_tf_keras_named(names, variables, by_variable, opt, source)
+    result = ko.map_tf_keras_named(names, variables, by_variable, opt, source)
     return result.state, result.note
 
 
@@ -820,22 +530,35 @@ def _legacy_optimizer(
 # The loader
 
 
-def has_hdf5_magic(path: Path, head: bytes) -> bool:
-    """HDF5 signature at offset 0 or at a user-block boundary (512, 1024, 2048, …)."""
-    offsets = [0] + [512 << i for i in range(12)]
-    for offset in offsets:
-        if offset + 8 <= len(head):
-            if head[offset : offset + 8] == MAGIC:
-                return True
-        else:
-            try:
-                with open(path, "rb") as handle:
-                    handle.seek(offset)
-                    if handle.read(8) == MAGIC:
-                        return True
-            except OSError:
-                return False
-    return False
+def load_h5_file(path: Path) -> Checkpoint:
+    """The checkpoint of one Keras HDF5 file (runs inside :func:`isolated`)."""
+    size = file_size(path)
+    store = H5Store(path, Location(path, size))
+    with store.open() as f:
+        try:
+            if "model_weights" in f or "layer_names" in f.attrs:
+                tensors, layers, optimizer, notes = read_legacy(store, f)
+            elif "layers" in f or "vars" in f or "optimizer" in f:
+                tensors, layers, optimizer, notes = read_weights_h5(store, f, None, None)
+            else:
+                raise store.fail(
+                    "is an HDF5 file without Keras weights (no model_weights, layer_names "
+                    "or layers)"
+                )
+        except LoadError:
+            raise
+        except H5_ERRORS as exc:
+            raise store.fail(f"is a damaged HDF5 file ({reason(exc)})") from None
+    return Checkpoint(
+        path=str(path),
+        format=Format.KERAS_H5,
+        tensors=tensors,
+        layers=layers,
+        file_size=size,
+        files=(str(path),),
+        optimizer=optimizer,
+        notes=tuple(notes),
+    )
 
 
 class KerasH5Loader:
@@ -848,31 +571,5 @@ class KerasH5Loader:
         return has_hdf5_magic(path, head)
 
     def load(self, path: Path) -> Checkpoint:
-        """Read the file's structure; tensors stay on disk."""
-        size = file_size(path)
-        store = H5Store(path, _open_path(path), size)
-        with store.open() as f:
-            try:
-                if "model_weights" in f or "layer_names" in f.attrs:
-                    tensors, layers, optimizer, notes = read_legacy(store, f)
-                elif "layers" in f or "vars" in f or "optimizer" in f:
-                    tensors, layers, optimizer, notes = read_weights_h5(store, f, None, None)
-                else:
-                    raise store.fail(
-                        "is an HDF5 file without Keras weights (no model_weights, layer_names "
-                        "or layers)"
-                    )
-            except LoadError:
-                raise
-            except H5_ERRORS as exc:
-                raise store.fail(f"is a damaged HDF5 file ({_reason(exc)})") from None
-        return Checkpoint(
-            path=str(path),
-            format=self.format,
-            tensors=tensors,
-            layers=layers,
-            file_size=size,
-            files=(str(path),),
-            optimizer=optimizer,
-            notes=tuple(notes),
-        )
+        """Read the file's structure (in a time-limited child process); tensors stay on disk."""
+        return isolated(path, load_h5_file, (path,), kh.LOAD_TIMEOUT)

@@ -1,0 +1,625 @@
+"""Checked access to HDF5 files for the Keras loaders, with the HDF5 library kept at arm's length.
+
+h5py follows external links, external storage and virtual datasets silently, so every path
+is walked one link at a time and every dataset is checked (dtype, storage, size caps) before
+it is touched. The HDF5 C library can also loop forever on damaged structures (a zero-sized
+global-heap object is enough), which no Python timeout interrupts: so every HDF5 call runs in
+a child process with a time limit (:func:`isolated`). Tensors Keras stores contiguously are
+then read without HDF5 at all, as bounded byte ranges at the offsets the library reported.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import math
+import multiprocessing
+import os
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from multiprocessing.connection import Connection
+from pathlib import Path
+from typing import Any, TypeVar
+
+import h5py
+import ml_dtypes
+import numpy as np
+
+from steelyard.dtypes import name_of
+from steelyard.errors import LoadError
+from steelyard.graph import Tensor, TensorRole
+from steelyard.loaders.base import MAX_METADATA_BYTES, open_zip, read_zip_member, safe_zip_names
+from steelyard.loaders.keras_common import MAX_DEPTH, natural_key
+
+MAGIC = b"\x89HDF\r\n\x1a\n"
+#: Largest tensor we agree to decode (bounded memory on hostile shapes).
+MAX_TENSOR_BYTES = 1 << 34
+#: A filtered (compressed) dataset may expand this much over its stored bytes…
+MAX_EXPANSION = 1000
+#: …and any dataset up to this size is allowed regardless.
+SMALL_DATASET = 1 << 20
+MAX_NODES = 200_000
+MAX_ATTR_ELEMENTS = 1_000_000
+MAX_SOFT_HOPS = 8
+#: Seconds the HDF5 library may spend reading a file's structure (it is a few ms normally).
+LOAD_TIMEOUT = 120.0
+#: Seconds for an HDF5 read of one chunked dataset, plus one second per 20 MB.
+READ_TIMEOUT = 60.0
+#: Address space a reader process may add to what it inherited.
+CHILD_MEMORY = 4 << 30
+
+#: What h5py raises on damaged or unexpected files; always converted to LoadError.
+H5_ERRORS: tuple[type[BaseException], ...] = (
+    OSError,
+    KeyError,
+    ValueError,
+    TypeError,
+    RuntimeError,
+    IndexError,
+    AttributeError,
+    OverflowError,
+    SystemError,
+)
+
+T = TypeVar("T")
+
+
+# --------------------------------------------------------------------------------------------
+# Running the HDF5 library in a child process
+
+
+def _context() -> Any:
+    methods = multiprocessing.get_all_start_methods()
+    # fork keeps the parent's state (and is cheap); spawn re-imports, which also works.
+    return multiprocessing.get_context("fork" if "fork" in methods else "spawn")
+
+
+def _limit_memory(extra: int) -> None:
+    """Best effort: cap the child's address space at what it has plus ``extra``."""
+    try:
+        import resource
+
+        with open("/proc/self/statm") as handle:
+            current = int(handle.read().split()[0]) * os.sysconf("SC_PAGE_SIZE")
+        soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+        want = current + extra
+        if hard != resource.RLIM_INFINITY:
+            want = min(want, hard)
+        if soft == resource.RLIM_INFINITY or soft > want:
+            resource.setrlimit(resource.RLIMIT_AS, (want, hard))
+    except (ImportError, OSError, ValueError):
+        pass
+
+
+def _child(conn: Connection, fn: Callable[..., Any], args: tuple[Any, ...], memory: int) -> None:
+    _limit_memory(memory)
+    message: tuple[str, Any]
+    try:
+        message = ("ok", fn(*args))
+    except LoadError as exc:
+        message = ("load", (exc.path, exc.reason))
+    except BaseException as exc:  # reported to the parent as one LoadError line
+        message = ("error", f"{type(exc).__name__}: {exc}"[:300])
+    try:
+        conn.send(message)
+    except BaseException as exc:
+        conn.send(("error", f"the result could not be returned ({type(exc).__name__})"))
+    conn.close()
+
+
+def isolated(
+    source: Path,
+    fn: Callable[..., T],
+    args: tuple[Any, ...],
+    timeout: float,
+    memory: int = CHILD_MEMORY,
+) -> T:
+    """``fn(*args)`` run in a child process: a hang becomes a LoadError after ``timeout``
+    seconds, a crash of the C library a LoadError instead of a dead interpreter."""
+    ctx = _context()
+    receiver, sender = ctx.Pipe(duplex=False)
+    process = ctx.Process(target=_child, args=(sender, fn, args, memory), daemon=True)
+    try:
+        process.start()
+    except (OSError, AssertionError, ValueError, RuntimeError):
+        # No child processes here (e.g. inside a daemonic worker): run unprotected.
+        receiver.close()
+        sender.close()
+        return fn(*args)
+    sender.close()
+    try:
+        if not receiver.poll(timeout):
+            raise LoadError(
+                source,
+                f"was not read within {timeout:g} s: the HDF5 library is stuck on a damaged "
+                "structure (refused)",
+            )
+        try:
+            status, payload = receiver.recv()
+        except (EOFError, OSError):
+            process.join(5)
+            raise LoadError(
+                source, f"made the HDF5 reader fail (exit code {process.exitcode}); damaged file?"
+            ) from None
+    finally:
+        receiver.close()
+        if process.is_alive():
+            process.kill()
+        process.join()
+    if status == "ok":
+        result: T = payload
+        return result
+    if status == "load":
+        raise LoadError(payload[0], payload[1])
+    raise LoadError(source, f"is malformed ({payload})")
+
+
+# --------------------------------------------------------------------------------------------
+# Where the HDF5 bytes are, and readers that need no HDF5
+
+
+class _Window(io.RawIOBase):
+    """Read-only, seekable view of ``length`` bytes of ``raw`` starting at ``start``."""
+
+    def __init__(self, raw: io.BufferedReader, start: int, length: int) -> None:
+        super().__init__()
+        self._raw = raw
+        self._start = start
+        self._length = length
+        self._pos = 0
+
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def tell(self) -> int:
+        return self._pos
+
+    def seek(self, offset: int, whence: int = io.SEEK_SET) -> int:
+        base = {io.SEEK_SET: 0, io.SEEK_CUR: self._pos, io.SEEK_END: self._length}.get(whence)
+        if base is None or base + offset < 0:
+            raise ValueError("bad seek")
+        self._pos = base + offset
+        return self._pos
+
+    def readinto(self, buffer: Any) -> int:
+        view = memoryview(buffer).cast("B")
+        count = max(0, min(len(view), self._length - self._pos))
+        if count == 0:
+            return 0
+        self._raw.seek(self._start + self._pos)
+        got = int(self._raw.readinto(view[:count]) or 0)
+        self._pos += got
+        return got
+
+
+@dataclass(frozen=True)
+class Location:
+    """Where an HDF5 file's bytes are: a file, a stored window of an archive (``start``,
+    ``length``), or a compressed archive ``member`` that is inflated again on each use."""
+
+    path: Path
+    length: int
+    start: int = 0
+    member: str | None = None
+    member_limit: int = 0
+
+    def _member(self) -> bytes:
+        assert self.member is not None
+        with open_zip(self.path) as archive:
+            members = safe_zip_names(archive, self.path)
+            info = members.get(self.member)
+            if info is None:
+                raise LoadError(self.path, f"archive member {self.member!r} has disappeared")
+            return read_zip_member(archive, info, self.path, limit=self.member_limit)
+
+    @contextlib.contextmanager
+    def open_h5(self) -> Iterator[Any]:
+        """The file opened with h5py (only ever called inside :func:`isolated`)."""
+        if self.member is not None:
+            with h5py.File(io.BytesIO(self._member()), "r") as f:
+                yield f
+        elif self.start == 0:
+            with h5py.File(self.path, "r", locking=False) as f:
+                yield f
+        else:
+            with (
+                open(self.path, "rb") as raw,
+                h5py.File(_Window(raw, self.start, self.length), "r") as f,
+            ):
+                yield f
+
+    def read(self, offset: int, count: int, what: str) -> bytes:
+        """``count`` bytes at ``offset`` of the HDF5 file, refusing ranges outside it."""
+        if offset < 0 or count < 0 or offset + count > self.length:
+            raise LoadError(
+                self.path, f"{what}: bytes {offset}..{offset + count} lie outside the file"
+            )
+        if self.member is not None:
+            data = self._member()[offset : offset + count]
+        else:
+            try:
+                with open(self.path, "rb") as handle:
+                    handle.seek(self.start + offset)
+                    data = handle.read(count)
+            except OSError as exc:
+                raise LoadError(self.path, f"{what} cannot be read ({exc.strerror})") from None
+        if len(data) != count:
+            raise LoadError(self.path, f"{what}: the file ends before its data (truncated?)")
+        return data
+
+
+def _dtype(tag: str) -> np.dtype[Any]:
+    return np.dtype(ml_dtypes.bfloat16) if tag == "bf16" else np.dtype(tag)
+
+
+@dataclass(frozen=True)
+class RawReader:
+    """A contiguous dataset read as a plain byte range (no HDF5 involved)."""
+
+    location: Location
+    offset: int
+    shape: tuple[int, ...]
+    dtype: str
+    name: str
+
+    def __call__(self) -> np.ndarray:
+        dtype = _dtype(self.dtype)
+        count = math.prod(self.shape) * dtype.itemsize
+        data = self.location.read(self.offset, count, f"dataset {self.name!r}")
+        array = np.frombuffer(data, dtype=dtype).reshape(self.shape)
+        return array.astype(dtype.newbyteorder("="), copy=False)
+
+
+@dataclass(frozen=True)
+class InlineReader:
+    """A small dataset kept in its object header (compact layout), copied at load time."""
+
+    data: bytes
+    shape: tuple[int, ...]
+    dtype: str
+
+    def __call__(self) -> np.ndarray:
+        dtype = _dtype(self.dtype)
+        return (
+            np.frombuffer(self.data, dtype=dtype)
+            .reshape(self.shape)
+            .astype(dtype.newbyteorder("="), copy=False)
+        )
+
+
+def _read_dataset(location: Location, path: str, shape: tuple[int, ...], source: Path) -> Any:
+    store = H5Store(source, location)
+    with store.open() as f:
+        obj = store.resolve(f, path)
+        now, _, dtype = store.check_dataset(obj, path)
+        if now != shape:
+            raise store.fail(f"dataset {path!r} changed shape since it was listed")
+        try:
+            raw = np.asarray(obj[()])
+        except H5_ERRORS as exc:
+            raise store.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
+    if raw.dtype.kind == "V":
+        raw = raw.view(ml_dtypes.bfloat16)
+    if raw.shape != shape:
+        raise store.fail(f"dataset {path!r} read as shape {raw.shape}, not {shape}")
+    return raw.astype(dtype, copy=False)
+
+
+@dataclass(frozen=True)
+class IsolatedReader:
+    """A chunked (possibly compressed) dataset: read by h5py in a child process."""
+
+    location: Location
+    path: str
+    shape: tuple[int, ...]
+    dtype: str
+    source: Path
+
+    def __call__(self) -> np.ndarray:
+        size = math.prod(self.shape) * _dtype(self.dtype).itemsize
+        timeout = READ_TIMEOUT + size / 20e6
+        array: np.ndarray = isolated(
+            self.source,
+            _read_dataset,
+            (self.location, self.path, self.shape, self.source),
+            timeout,
+            memory=CHILD_MEMORY + 2 * size,
+        )
+        return array
+
+
+# --------------------------------------------------------------------------------------------
+# Checked structure access (inside the child)
+
+
+class H5Store:
+    """Checked access to the structure of one HDF5 weights file at ``location``.
+
+    ``source`` is the file named in errors (the ``.h5`` or the ``.keras`` archive). No
+    dataset's storage may exceed the HDF5 file's size.
+    """
+
+    def __init__(self, source: Path, location: Location) -> None:
+        self.source = source
+        self.location = location
+        self.limit = location.length
+
+    def fail(self, reason: str) -> LoadError:
+        """A LoadError naming the file."""
+        return LoadError(self.source, reason)
+
+    @contextlib.contextmanager
+    def open(self) -> Iterator[Any]:
+        """The open h5py file; h5py errors become LoadError."""
+        try:
+            with self.location.open_h5() as f:
+                yield f
+        except LoadError:
+            raise
+        except H5_ERRORS as exc:
+            raise self.fail(f"is a damaged HDF5 file ({reason(exc)})") from None
+
+    # -- paths ----------------------------------------------------------------------------
+
+    def _parts(self, path: str) -> list[str]:
+        parts = path.split("/") if path else []
+        if any(part in ("", ".", "..") for part in parts):
+            raise self.fail(f"refers to the invalid HDF5 path {path!r}")
+        return parts
+
+    def link(self, group: Any, name: str, where: str) -> Any:
+        """The link ``name`` in ``group`` (not followed); refuses external and user links."""
+        if not isinstance(group, h5py.Group):
+            raise self.fail(f"HDF5 path {where!r} goes through a dataset")
+        link = group.get(name, getlink=True)
+        if link is None:
+            raise self.fail(f"has no HDF5 object {where!r}")
+        if isinstance(link, h5py.ExternalLink):
+            raise self.fail(
+                f"HDF5 object {where!r} is an external link to {link.filename!r} (refused)"
+            )
+        if not isinstance(link, (h5py.SoftLink, h5py.HardLink)):
+            raise self.fail(f"HDF5 object {where!r} is a user-defined link (refused)")
+        return link
+
+    def resolve(self, f: Any, path: str) -> Any:
+        """The object at ``path``, following soft links only when they stay inside the top-level
+        group the path starts in (hard links are followed as HDF5 does)."""
+        parts = self._parts(path)
+        if not parts:
+            return f
+        top = parts[0]
+        trail: list[str] = []
+        node, hops, i = f, 0, 0
+        while i < len(parts):
+            where = "/".join([*trail, parts[i]])
+            if isinstance(node, h5py.Group) and parts[i] not in node:
+                raise self.fail(f"has no HDF5 object {path!r} ({where!r} is missing)")
+            link = self.link(node, parts[i], where)
+            if isinstance(link, h5py.SoftLink):
+                hops += 1
+                if hops > MAX_SOFT_HOPS:
+                    raise self.fail(f"HDF5 soft links at {where!r} loop")
+                target = str(link.path)
+                full = target.lstrip("/") if target.startswith("/") else "/".join([*trail, target])
+                redirected = self._parts(full)
+                if not redirected or redirected[0] != top:
+                    raise self.fail(
+                        f"HDF5 soft link {where!r} points to {target!r}, outside {top!r} (refused)"
+                    )
+                parts, node, trail, i = redirected + parts[i + 1 :], f, [], 0
+                continue
+            node = node[parts[i]]
+            trail.append(parts[i])
+            i += 1
+        return node
+
+    def exists(self, f: Any, path: str) -> bool:
+        """Whether ``path`` names an object (links checked as in :meth:`resolve`)."""
+        parts = self._parts(path)
+        node = f
+        for depth, part in enumerate(parts):
+            if not isinstance(node, h5py.Group) or part not in node:
+                return False
+            self.link(node, part, "/".join(parts[: depth + 1]))
+            node = self.resolve(f, "/".join(parts[: depth + 1]))
+        return True
+
+    def group(self, f: Any, path: str) -> Any:
+        """The group at ``path`` or LoadError."""
+        node = self.resolve(f, path)
+        if not isinstance(node, h5py.Group):
+            raise self.fail(f"HDF5 object {path!r} is not a group")
+        return node
+
+    # -- attributes -----------------------------------------------------------------------
+
+    def _attr(self, obj: Any, key: str) -> Any:
+        if key not in obj.attrs:
+            return None
+        attr = h5py.h5a.open(obj.id, key.encode("utf-8"))
+        shape = attr.shape or ()
+        try:
+            stored = int(attr.get_storage_size())
+        except H5_ERRORS:
+            stored = 0  # h5py reports an empty attribute's zero size as an error
+        if math.prod(shape) > MAX_ATTR_ELEMENTS or stored > MAX_METADATA_BYTES:
+            raise self.fail(f"HDF5 attribute {key!r} is larger than the cap")
+        return obj.attrs[key]
+
+    def attr_text(self, obj: Any, key: str) -> str | None:
+        """A string attribute (bytes decoded), None when absent."""
+        value = self._attr(obj, key)
+        if value is None:
+            return None
+        if isinstance(value, np.ndarray) and value.shape == ():
+            value = value[()]
+        if isinstance(value, bytes):
+            try:
+                return value.decode("utf-8")
+            except UnicodeDecodeError:
+                raise self.fail(f"HDF5 attribute {key!r} is not UTF-8 text") from None
+        if isinstance(value, str):
+            return value
+        raise self.fail(f"HDF5 attribute {key!r} is not text")
+
+    def attr_strings(self, obj: Any, key: str) -> list[str] | None:
+        """A list-of-strings attribute (``layer_names``, ``weight_names``), None when absent."""
+        value = self._attr(obj, key)
+        if value is None:
+            return None
+        items = value.reshape(-1).tolist() if isinstance(value, np.ndarray) else [value]
+        out: list[str] = []
+        for item in items:
+            if isinstance(item, bytes):
+                try:
+                    item = item.decode("utf-8")
+                except UnicodeDecodeError:
+                    raise self.fail(f"HDF5 attribute {key!r} holds non-UTF-8 names") from None
+            if not isinstance(item, str):
+                if isinstance(value, np.ndarray) and value.size == 0:
+                    break
+                raise self.fail(f"HDF5 attribute {key!r} holds a non-string {item!r}")
+            out.append(item)
+        return out
+
+    # -- datasets -------------------------------------------------------------------------
+
+    def check_dataset(self, obj: Any, path: str) -> tuple[tuple[int, ...], str, np.dtype[Any]]:
+        """Shape, short dtype name and numpy dtype of a dataset we agree to read."""
+        if not isinstance(obj, h5py.Dataset):
+            raise self.fail(f"HDF5 object {path!r} is not a dataset")
+        if obj.is_virtual:
+            raise self.fail(f"dataset {path!r} is a virtual dataset (refused)")
+        if obj.external:
+            raise self.fail(f"dataset {path!r} keeps its data in external files (refused)")
+        shape = obj.shape
+        if shape is None:
+            raise self.fail(f"dataset {path!r} has no dataspace")
+        shape = tuple(int(d) for d in shape)
+        stored = obj.dtype
+        numeric = (stored.kind == "f" and stored.itemsize in (2, 4, 8)) or (
+            stored.kind in "iub" and stored.itemsize in (1, 2, 4, 8)
+        )
+        if numeric and stored.fields is None:
+            dtype = stored
+        elif stored.kind == "V" and stored.itemsize == 2 and stored.fields is None:
+            # Keras 3 stores bfloat16 as 2-byte opaque data tagged with a dtype attribute.
+            if self.attr_text(obj, "dtype") != "bfloat16":
+                raise self.fail(f"dataset {path!r} holds opaque data, not numbers")
+            dtype = np.dtype(ml_dtypes.bfloat16)
+        else:
+            raise self.fail(f"dataset {path!r} has unsupported dtype {stored}")
+        declared = math.prod(shape) * dtype.itemsize
+        storage = int(obj.id.get_storage_size())
+        filtered = obj.id.get_create_plist().get_nfilters() > 0
+        if declared > MAX_TENSOR_BYTES:
+            raise self.fail(f"dataset {path!r} declares {declared} bytes, over the cap")
+        if storage > self.limit:
+            raise self.fail(
+                f"dataset {path!r} claims {storage} stored bytes, more than the file holds"
+            )
+        allowed = storage * (MAX_EXPANSION if filtered else 1)
+        if declared > max(allowed, 0) and declared > (SMALL_DATASET if filtered else 0):
+            raise self.fail(
+                f"dataset {path!r} declares {declared} bytes but stores {storage} (refused)"
+            )
+        return shape, name_of(dtype), dtype.newbyteorder("=")
+
+    def tensor(self, f: Any, path: str, name: str, role: TensorRole | None = None) -> Tensor:
+        """A lazily read tensor for the dataset at ``path``, checked now."""
+        obj = self.resolve(f, path)
+        shape, short, dtype = self.check_dataset(obj, path)
+        is_float = dtype.kind == "f" or short == "bf16"
+        if role is None:
+            role = TensorRole.PARAMETER if is_float else TensorRole.BOOKKEEPING
+        return Tensor(
+            name=name, shape=shape, dtype=short, role=role, reader=self._reader(obj, path, shape)
+        )
+
+    def _reader(self, obj: Any, path: str, shape: tuple[int, ...]) -> Callable[[], np.ndarray]:
+        stored = obj.dtype
+        tag = "bf16" if stored.kind == "V" else stored.str
+        size = math.prod(shape) * stored.itemsize
+        layout = obj.id.get_create_plist().get_layout()
+        if size == 0:
+            return InlineReader(b"", shape, tag)
+        if layout == h5py.h5d.CONTIGUOUS:
+            offset = obj.id.get_offset()
+            if offset is None:
+                raise self.fail(f"dataset {path!r} has no stored data")
+            offset = int(offset)
+            if offset + size > self.limit:
+                raise self.fail(f"dataset {path!r} claims data past the end of the file")
+            return RawReader(self.location, offset, shape, tag, path)
+        if layout == h5py.h5d.COMPACT:
+            try:
+                data = np.ascontiguousarray(obj[()]).tobytes()
+            except H5_ERRORS as exc:
+                raise self.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
+            if len(data) != size:
+                raise self.fail(f"dataset {path!r} holds {len(data)} bytes, not {size}")
+            return InlineReader(data, shape, tag)
+        return IsolatedReader(self.location, path, shape, tag, self.source)
+
+    def datasets(self, f: Any, top: str) -> list[str]:
+        """Every dataset path under group ``top``, natural order (``vars/10`` after ``vars/9``).
+
+        Soft links are refused here: Keras never writes them, and listing through them could
+        alias or loop."""
+        out: list[str] = []
+        budget = [MAX_NODES]
+
+        def walk(group: Any, prefix: str, depth: int) -> None:
+            if depth > MAX_DEPTH:
+                raise self.fail(f"HDF5 groups under {prefix!r} nest too deeply")
+            names = list(group.keys())
+            budget[0] -= len(names)
+            if budget[0] < 0:
+                raise self.fail(f"has more than {MAX_NODES} HDF5 objects")
+            for name in sorted(names, key=natural_key):
+                where = f"{prefix}/{name}" if prefix else name
+                self._parts(where)
+                link = self.link(group, name, where)
+                if isinstance(link, h5py.SoftLink):
+                    raise self.fail(f"HDF5 object {where!r} is a soft link (refused)")
+                child = group[name]
+                if isinstance(child, h5py.Group):
+                    walk(child, where, depth + 1)
+                elif isinstance(child, h5py.Dataset):
+                    out.append(where)
+                else:
+                    raise self.fail(f"HDF5 object {where!r} is neither group nor dataset")
+
+        node = self.resolve(f, top)
+        if isinstance(node, h5py.Dataset):
+            return [top]
+        walk(node, top, 0)
+        return out
+
+
+def reason(exc: BaseException) -> str:
+    """First line of an h5py error, for a one-line LoadError."""
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return text[:200]
+
+
+def has_hdf5_magic(path: Path, head: bytes) -> bool:
+    """HDF5 signature at offset 0 or at a user-block boundary (512, 1024, 2048, …)."""
+    offsets = [0] + [512 << i for i in range(12)]
+    for offset in offsets:
+        if offset + 8 <= len(head):
+            if head[offset : offset + 8] == MAGIC:
+                return True
+        else:
+            try:
+                with open(path, "rb") as handle:
+                    handle.seek(offset)
+                    if handle.read(8) == MAGIC:
+                        return True
+            except OSError:
+                return False
+    return False

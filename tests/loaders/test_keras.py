@@ -890,6 +890,32 @@ def test_weights_h5_numeric_order_roles_and_bf16(tmp_path: Path) -> None:
     np.testing.assert_array_equal(dense.weight_view(), bf16.astype(np.float32).T)
 
 
+def test_optimizer_with_counters_only_has_no_slots(tmp_path: Path) -> None:
+    # Keras 3 creates iteration and learning_rate with the optimizer; slots come at the first
+    # step (FORMATS.md: ``iteration``, ``learning_rate``, then per variable its slots).
+    path = tmp_path / "fresh.weights.h5"
+    _weights_h5(path, {
+        "layers/dense/vars/0": np.ones((3, 2), np.float32),
+        "layers/dense/vars/1": np.zeros(2, np.float32),
+        "optimizer/vars/0": np.array(0, np.int64),
+        "optimizer/vars/1": np.array(0.001, np.float32),
+    })  # fmt: skip
+    with h5py.File(path, "a") as f:
+        f["optimizer/vars"].attrs["name"] = "adam"
+    ck = load(path)
+    assert ck.optimizer is not None
+    assert ck.optimizer.kind == "adam" and ck.optimizer.step == 0
+    assert dict(ck.optimizer.slots) == {}
+    # one slot short of Adam's two per variable: ambiguous, so nothing is mapped
+    with h5py.File(path, "a") as f:
+        f["optimizer/vars/2"] = np.zeros((3, 2), np.float32)
+        f["optimizer/vars/3"] = np.zeros((3, 2), np.float32)
+        f["optimizer/vars/4"] = np.zeros(2, np.float32)
+    ck = load(path)
+    assert ck.optimizer is None
+    assert any("not mapped" in note for note in ck.notes)
+
+
 def test_user_block_hdf5_is_recognised(tmp_path: Path) -> None:
     path = tmp_path / "ub.weights.h5"
     with h5py.File(path, "w", userblock_size=512) as f:

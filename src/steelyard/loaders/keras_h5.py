@@ -252,6 +252,8 @@ def _unordered_optimizer(
         for atom in atoms
     }
     total = sum(len(v) for v in trainable_by_atom.values())
+    if len(variables) <= 2 and all(v.shape == () for v in variables):
+        return ko.map_keras3_ordered(variables, [], None, group_name, source)  # counters only
     per_var = {"adam": [2], "adamw": [2], "sgd": [1, 0], "rmsprop": [1]}[kind]
     fits = [k for k in per_var if len(variables) - k * total in (1, 2)]
     if len(fits) != 1:

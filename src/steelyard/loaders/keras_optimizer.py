@@ -235,6 +235,13 @@ def map_keras3_ordered(
         layouts = [layout]
         known_config = True
     n = len(trainable)
+    if len(variables) <= 2 and all(v.shape == () for v in variables):
+        # Built but never stepped: only the counters exist, so there are no moments at all.
+        kind = opt.kind
+        counters = _state(
+            opt if known_config else None, kind, {}, read_step(variables[0]), source, True
+        )
+        return OptimizerResult(counters)
     fits = [lay for lay in layouts if len(variables) - len(lay) * n in (1, 2)]
     if len(fits) != 1:
         return OptimizerResult(

@@ -1,8 +1,9 @@
 """ONNX models: stored tensors, layers in canonical orientation, and exact graph links.
 
 Tensors come from initializers, sparse initializers and Constant nodes, in the main graph
-and in every If/Loop/Scan body. Weight bytes stay on disk (see
-:mod:`steelyard.loaders.onnx_consts`); layers read them through look-through views
+and in every If/Loop/Scan body. Weight bytes stay on disk until read (see
+:mod:`steelyard.loaders.onnx_wire` and :mod:`steelyard.loaders.onnx_consts`); layers read
+them through look-through views
 (:mod:`steelyard.loaders.onnx_fold`), quantized ones through their dequantization
 (:mod:`steelyard.loaders.onnx_quant`). Links, biases, norms and activations come from the
 node graph (:mod:`steelyard.loaders.onnx_graph`), so they are exact, never guessed.
@@ -50,7 +51,7 @@ from steelyard.graph import (
     TensorRole,
     mark_outputs,
 )
-from steelyard.loaders.onnx_consts import FileBytes, Node
+from steelyard.loaders.onnx_consts import FileBytes, Node, text
 from steelyard.loaders.onnx_fold import Folder, View
 from steelyard.loaders.onnx_graph import Graphs, Tracer, per_unit
 from steelyard.loaders.onnx_quant import (
@@ -554,8 +555,11 @@ def _roles(
 
 
 def _describe(model: ModelProto) -> str:
-    opsets = ", ".join(f"{o.domain or 'ai.onnx'} {o.version}" for o in model.opset_import) or "none"
-    producer = " ".join(p for p in (model.producer_name, model.producer_version) if p)
+    opsets = (
+        ", ".join(f"{text(o.domain) or 'ai.onnx'} {o.version}" for o in model.opset_import)
+        or "none"
+    )
+    producer = " ".join(p for p in (text(model.producer_name), text(model.producer_version)) if p)
     return f"ONNX IR version {model.ir_version}, opsets: {opsets}" + (
         f", produced by {producer}" if producer else ""
     )

@@ -29,6 +29,17 @@ MAX_RANK = 32
 MAX_DENSE_BYTES = 2**31
 
 
+def text(value: Any) -> str:
+    """A protobuf string field as ``str``.
+
+    The protobuf runtime hands back ``bytes`` for a string field that is not valid UTF-8;
+    such bytes are kept distinct (and printable) with backslash escapes.
+    """
+    if isinstance(value, str):
+        return value
+    return bytes(value).decode("utf-8", "backslashreplace")
+
+
 @dataclass(frozen=True)
 class DType:
     """One ONNX element type."""
@@ -259,7 +270,7 @@ def tensor(proto: Any, key: str, files: FileBytes) -> Stored | None:
     count = math.prod(shape)
     reader: Callable[[], np.ndarray]
     if int(proto.data_location) == 1:
-        keys = {entry.key: entry.value for entry in proto.external_data}
+        keys = {text(entry.key): text(entry.value) for entry in proto.external_data}
         location = keys.get("location")
         if location is None:
             raise LoadError(path, f"{where} is stored externally but names no location")

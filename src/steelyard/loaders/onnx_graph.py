@@ -20,7 +20,7 @@ from typing import Any
 
 from steelyard.errors import LoadError
 from steelyard.graph import Activation, Norm, NormKind
-from steelyard.loaders.onnx_consts import FileBytes, Node, Stored, constant, sparse, tensor
+from steelyard.loaders.onnx_consts import FileBytes, Node, Stored, constant, sparse, tensor, text
 from steelyard.loaders.onnx_fold import Folder, View
 
 #: Deepest subgraph nesting walked (protobuf's own recursion limit stops far deeper files).
@@ -91,12 +91,13 @@ class Graphs:
             return local[name]
 
         for proto in graph.initializer:
-            key = self._key(proto.name, scope)
-            if proto.name:
-                local[proto.name] = key
+            name = text(proto.name)
+            key = self._key(name, scope)
+            if name:
+                local[name] = key
             self._store(key, tensor(proto, key, self.files))
         for proto in graph.sparse_initializer:
-            name = proto.values.name
+            name = text(proto.values.name)
             key = self._key(name, scope)
             if name:
                 local[name] = key
@@ -104,13 +105,14 @@ class Graphs:
         inputs: list[str] = []
         for value in graph.input:
             # IR < 4 lists initializers as graph inputs too: those stay the stored tensor.
-            if value.name not in local:
-                local[value.name] = self._key(value.name, scope)
-            inputs.append(local[value.name])
+            name = text(value.name)
+            if name not in local:
+                local[name] = self._key(name, scope)
+            inputs.append(local[name])
         pending: list[tuple[Any, list[str]]] = []
         for proto in graph.node:
             outs: list[str] = []
-            for name in proto.output:
+            for name in map(text, proto.output):
                 if name:
                     local[name] = self._key(name, scope)
                 outs.append(local[name] if name else "")
@@ -118,16 +120,17 @@ class Graphs:
         for proto, outs in pending:
             attrs: dict[str, Any] = {}
             for attr in proto.attribute:
-                if attr.name in attrs:
+                attr_name = text(attr.name)
+                if attr_name in attrs:
                     raise LoadError(
-                        self.path, f"node {proto.name!r} repeats attribute {attr.name!r}"
+                        self.path, f"node {text(proto.name)!r} repeats attribute {attr_name!r}"
                     )
-                attrs[attr.name] = attr
+                attrs[attr_name] = attr
             node = Node(
-                op=proto.op_type,
-                domain=proto.domain,
-                name=proto.name,
-                inputs=[resolve(name) for name in proto.input],
+                op=text(proto.op_type),
+                domain=text(proto.domain),
+                name=text(proto.name),
+                inputs=[resolve(text(name)) for name in proto.input],
                 outputs=outs,
                 attrs=attrs,
                 scope=scope,
@@ -147,7 +150,7 @@ class Graphs:
                 sub_scope = f"{scope}{node.label}.{attr_name}/"
                 sub_in, sub_out = self._walk(subgraph, sub_scope, scopes, depth + 1)
                 self._alias(node, sub_in, sub_out)
-        return inputs, [resolve(value.name) for value in graph.output]
+        return inputs, [resolve(text(value.name)) for value in graph.output]
 
     def _alias(self, node: Node, sub_in: list[str], sub_out: list[str]) -> None:
         """Connect a body's inputs and outputs to its control-flow node's values."""
@@ -365,7 +368,7 @@ class Tracer:
             and (self._reaches_gelu(nodes) or self._quick_gelu(key, nodes))
         ):
             return Activation.GELU
-        if all(self.feeds_layer(n, p) for n, p in nodes):
+        if not aliases and all(self.feeds_layer(n, p) for n, p in nodes):
             return Activation.IDENTITY
         return Activation.UNKNOWN
 

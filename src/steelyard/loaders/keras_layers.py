@@ -179,6 +179,7 @@ class _LayerFactory:
             groups=1,
             activation=activation,
             weight_view=_view(kernel, dense_canonical),
+            orient=dense_canonical,
             bias_view=bias_view,
             **self._extras(atom, "kernel", kernel, {1}),
         )
@@ -214,6 +215,7 @@ class _LayerFactory:
             groups=groups,
             activation=activation,
             weight_view=_view(kernel, view),
+            orient=view,
             bias_view=bias_view,
             **self._extras(atom, "kernel", kernel, {unit_axis}),
         )
@@ -247,6 +249,7 @@ class _LayerFactory:
             groups=channels,
             activation=activation,
             weight_view=_view(kernel, depthwise_canonical),
+            orient=depthwise_canonical,
             bias_view=bias_view,
             **self._extras(atom, "depthwise", kernel, {rank, rank + 1}),
         )
@@ -291,6 +294,7 @@ class _LayerFactory:
             groups=1,
             activation=activation,
             weight_view=_view(point, conv_canonical),
+            orient=conv_canonical,
             bias_view=bias_view,
             inputs_from=(depth_name,),
             linked_by=Link.CONFIG,
@@ -317,6 +321,7 @@ class _LayerFactory:
             groups=1,
             activation=Activation.IDENTITY,
             weight_view=_view(table, _same),
+            orient=_same,
             constraint=constraint_of(conf.get("embeddings_constraint"), 2, {0}),
             regularizer=regularizer_of(conf.get("embeddings_regularizer")),
         )
@@ -382,6 +387,7 @@ class _LayerFactory:
                         groups=1,
                         activation=gate_acts[gate],
                         weight_view=_view(tensor, _gate_columns(columns)),
+                        orient=_gate_columns(columns),
                         bias_view=bias_view,
                         gate=gate,
                         **extras,

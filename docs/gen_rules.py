@@ -5,6 +5,7 @@ Run ``python docs/gen_rules.py``; a test fails when the committed file is out of
 
 from __future__ import annotations
 
+import inspect
 import sys
 from pathlib import Path
 
@@ -41,6 +42,22 @@ def render() -> str:
             f"*Default severity:* {spec.severity.value}. *Thresholds:* {thresholds}.\n",
             f"*Why, in one line:* {spec.summary}.\n",
             spec.doc.strip().replace("\n**", "\n\n**").replace("\n\n\n", "\n\n") + "\n",
+        ]
+    from steelyard.compare.rules import compare_registry
+
+    parts.append(
+        "\n## Comparison rules (`steelyard compare`)\n\n"
+        "These run on two checkpoints; see `compare.md`. The same policy file configures them.\n"
+    )
+    for spec in compare_registry().values():
+        thresholds = ", ".join(
+            f"`{k}` = {'unset' if v is None else v}" for k, v in spec.thresholds.items()
+        ) or "none"
+        parts += [
+            f"\n### {spec.name}\n",
+            f"*Default severity:* {spec.severity.value}. *Thresholds:* {thresholds}.\n",
+            f"*Why, in one line:* {spec.summary}.\n",
+            inspect.cleandoc(spec.doc) + "\n",
         ]
     return "\n".join(parts).replace("\n\n\n", "\n\n")
 

@@ -2,21 +2,25 @@
 
 from __future__ import annotations
 
+import inspect
 from collections.abc import Mapping
 
 from rich.table import Table
 
+from steelyard.compare.rules import CompareRuleSpec
 from steelyard.render.text import to_text
 from steelyard.rules.base import RuleSpec
 
+AnySpec = RuleSpec | CompareRuleSpec
 
-def _thresholds(spec: RuleSpec) -> str:
+
+def _thresholds(spec: AnySpec) -> str:
     if not spec.thresholds:
         return "—"
     return ", ".join(f"{k}={'unset' if v is None else v}" for k, v in spec.thresholds.items())
 
 
-def render_rules(specs: Mapping[str, RuleSpec], *, color: bool = False, width: int = 120) -> str:
+def render_rules(specs: Mapping[str, AnySpec], *, color: bool = False, width: int = 120) -> str:
     """One row per rule: name, default severity, thresholds, why."""
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
     for column in ("rule", "severity", "thresholds", "why"):
@@ -26,10 +30,10 @@ def render_rules(specs: Mapping[str, RuleSpec], *, color: bool = False, width: i
     return to_text([table], color=color, width=width)
 
 
-def render_rule(spec: RuleSpec) -> str:
+def render_rule(spec: AnySpec) -> str:
     """The rule's page: its docstring, defaults and help address."""
     lines = [
-        spec.doc.strip(),
+        inspect.cleandoc(spec.doc),
         "",
         f"default severity: {spec.severity.value}",
         f"thresholds: {_thresholds(spec)}",

@@ -8,7 +8,7 @@ from rich.console import Group, RenderableType
 from rich.table import Table
 from rich.text import Text
 
-from steelyard.findings import Severity, compact_units
+from steelyard.findings import Finding, Severity, compact_units
 from steelyard.render.text import human_bytes, human_count, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.rules import registry
@@ -29,6 +29,27 @@ def spark(histogram: tuple[int, ...]) -> str:
 
 def _number(value: float) -> str:
     return "—" if not math.isfinite(value) else f"{value:.3g}"
+
+
+def _grouped(findings: tuple[Finding, ...]) -> list[tuple[Finding, list[str]]]:
+    """Info findings that say the same thing about several layers become one row."""
+    rows: list[tuple[Finding, list[str]]] = []
+    for finding in findings:
+        if finding.severity is Severity.INFO and not finding.units:
+            for seen, layers in rows:
+                if (seen.severity, seen.rule, seen.message, seen.hint) == (
+                    finding.severity,
+                    finding.rule,
+                    finding.message,
+                    finding.hint,
+                ) and not seen.units:
+                    layers.append(finding.layer or "—")
+                    break
+            else:
+                rows.append((finding, [finding.layer] if finding.layer else []))
+        else:
+            rows.append((finding, [finding.layer] if finding.layer else []))
+    return rows
 
 
 def _verdict(report: Report, audit: CheckpointAudit) -> Text:
@@ -71,17 +92,20 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
     if audit.findings:
         findings = Table(show_edge=False, header_style="bold", pad_edge=False, expand=False)
         for column in ("#", "severity", "rule", "layer", "units", "finding"):
-            findings.add_column(column, overflow="fold")
-        for index, finding in enumerate(audit.findings[:MAX_SHOWN], 1):
-            why = specs[finding.rule].summary if finding.rule in specs else ""
+            findings.add_column(column, overflow="fold", max_width=24 if column == "layer" else None)
+        explained: set[str] = set()
+        for index, (finding, layers) in enumerate(_grouped(audit.findings[:MAX_SHOWN]), 1):
             body = Text(finding.message)
-            body.append(f"\nwhy: {why}", style="dim")
+            if finding.rule not in explained and finding.rule in specs:
+                # The why is the rule's, not the finding's: say it once per report.
+                body.append(f"\nwhy: {specs[finding.rule].summary}", style="dim")
+                explained.add(finding.rule)
             body.append(f"\nhint: {finding.hint}", style="italic")
             findings.add_row(
                 str(index),
                 Text(finding.severity.value, style=_STYLE[finding.severity]),
                 finding.rule,
-                finding.layer or "—",
+                ", ".join(layers) or "—",
                 compact_units(finding.units, limit=6),
                 body,
             )

@@ -15,7 +15,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 
 from steelyard import __version__
-from steelyard.audit import audit_checkpoint
+from steelyard.audit import audit_checkpoint, default_jobs
 from steelyard.compare.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
@@ -58,12 +58,13 @@ def audit_one(
     policy: Policy,
     grads: str | Path | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
+    jobs: int | None = None,
 ) -> CheckpointAudit:
-    """Load and audit one checkpoint."""
+    """Load and audit one checkpoint (``jobs`` threads, default: the machine's cores)."""
     checkpoint = _load(path)
     source = gradient_source(checkpoint, grads, grads_kind)
     try:
-        return audit_checkpoint(checkpoint, policy, source)
+        return audit_checkpoint(checkpoint, policy, source, jobs=_jobs(jobs))
     except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
         # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
         raise LoadError(
@@ -116,6 +117,14 @@ def expand_paths(paths: Sequence[str | Path]) -> list[Path]:
     return out
 
 
+def _jobs(jobs: int | None) -> int:
+    if jobs is None:
+        return default_jobs()
+    if jobs < 1:
+        raise SteelyardError(f"jobs must be at least 1, not {jobs}")
+    return jobs
+
+
 def audit_many(
     paths: Sequence[str | Path],
     policy: Policy | None = None,
@@ -123,14 +132,19 @@ def audit_many(
     grads_kind: GradsKind = GradsKind.RMS,
     created: str | None = None,
     on_checkpoint: Callable[[str], None] | None = None,
+    jobs: int | None = None,
 ) -> Report:
-    """Audit several checkpoints under one gate."""
+    """Audit several checkpoints under one gate.
+
+    ``jobs`` is the number of worker threads per checkpoint (default: the machine's cores);
+    the report is the same for every value.
+    """
     chosen = policy or Policy()
     audits: list[CheckpointAudit] = []
     for path in paths:
         if on_checkpoint is not None:
             on_checkpoint(str(path))
-        audits.append(audit_one(path, chosen, grads, grads_kind))
+        audits.append(audit_one(path, chosen, grads, grads_kind, jobs))
     return Report(
         tool_version=__version__,
         created=created or now(),
@@ -145,9 +159,10 @@ def audit(
     grads: str | Path | None = None,
     policy: Policy | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
+    jobs: int | None = None,
 ) -> Report:
     """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document."""
-    return audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind)
+    return audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs)
 
 
 def compare(

@@ -4,8 +4,11 @@ from __future__ import annotations
 
 import hashlib
 import math
-from collections.abc import Iterable
+import os
+from collections.abc import Callable, Iterable, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import replace
+from typing import TypeVar
 
 import numpy as np
 
@@ -21,6 +24,9 @@ from steelyard.stats import LayerStats
 
 _HASH_CHUNK = 8 * 2**20
 
+T = TypeVar("T")
+R = TypeVar("R")
+
 
 def sha256_of(files: Iterable[str]) -> str:
     """SHA-256 over the bytes of every file of the checkpoint, in order."""
@@ -32,27 +38,85 @@ def sha256_of(files: Iterable[str]) -> str:
     return digest.hexdigest()
 
 
+def default_jobs() -> int:
+    """Worker threads when none are asked for: the cores this process may run on."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):  # pragma: no cover - not every platform has affinity
+        return max(1, os.cpu_count() or 1)
+
+
+def _map(pool: ThreadPoolExecutor | None, work: Callable[[T], R], items: Sequence[T]) -> list[R]:
+    """``[work(x) for x in items]``, on the pool when there is one; order is kept."""
+    if pool is None:
+        return [work(item) for item in items]
+    return list(pool.map(work, items))
+
+
 def run_rules(
     checkpoint: Checkpoint,
     policy: Policy,
     gradients: GradientSource | None,
     rules: dict[str, RuleSpec] | None = None,
+    jobs: int = 1,
 ) -> tuple[list[Finding], int, LayerStats]:
-    """Every enabled rule's findings (policy severities applied, ignores removed)."""
+    """Every enabled rule's findings (policy severities applied, ignores removed).
+
+    Rules with a per-layer hook run layer by layer: each task runs every such rule on one
+    layer while that layer's data is in memory, then releases it, so each tensor is read
+    once. Rules without one run whole afterwards. ``jobs`` > 1 runs tasks on that many
+    threads (numpy releases the GIL in the heavy loops); the findings are collected in the
+    same order as with one, so the report does not depend on ``jobs``.
+    """
     stats = LayerStats(checkpoint)
     context = AuditContext(checkpoint=checkpoint, stats=stats, policy=policy, gradients=gradients)
+    specs = list((rules or registry()).values())
+    settings = {spec.name: RuleSettings(spec.name, spec.thresholds, policy) for spec in specs}
+    hooked = [spec for spec in specs if spec.layer_check is not None]
+
+    def one_layer(layer: Layer) -> list[list[Finding]]:
+        try:
+            out: list[list[Finding]] = []
+            for spec in hooked:
+                assert spec.layer_check is not None
+                out.append(list(spec.layer_check(context, settings[spec.name], layer)))
+            return out
+        finally:
+            stats.release(layer)
+
+    def whole(spec: RuleSpec) -> list[Finding]:
+        if spec.layer_check is None:
+            return list(spec.check(context, settings[spec.name]))
+        return list(spec.finish(context, settings[spec.name])) if spec.finish else []
+
+    pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
+    try:
+        per_layer = _map(pool, one_layer, checkpoint.layers) if hooked else []
+        if any(spec.tensor_scan for spec in specs):
+            _map(pool, stats.nonfinite, stats.scan_targets())
+        rest = _map(pool, whole, specs)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+
     findings: list[Finding] = []
     ignored = 0
-    for spec in (rules or registry()).values():
-        settings = RuleSettings(spec.name, spec.thresholds, policy)
-        for finding in spec.check(context, settings):
+    for index, spec in enumerate(specs):
+        produced: list[Finding] = []
+        if spec.layer_check is not None:
+            column = hooked.index(spec)
+            for results in per_layer:
+                produced += results[column]
+        produced += rest[index]
+        rule_settings = settings[spec.name]
+        for finding in produced:
             layer = checkpoint.layer(finding.layer) if finding.layer else None
-            if not settings.enabled(layer):
+            if not rule_settings.enabled(layer):
                 continue
             if policy.ignored(spec.name, finding.layer) is not None:
                 ignored += 1
                 continue
-            chosen = settings.for_layer(layer).get("severity")
+            chosen = rule_settings.for_layer(layer).get("severity")
             if chosen:
                 finding = replace(finding, severity=Severity(chosen))
             findings.append(replace(finding, checkpoint=checkpoint.path))
@@ -95,12 +159,23 @@ def audit_checkpoint(
     policy: Policy,
     gradients: GradientSource | None,
     rules: dict[str, RuleSpec] | None = None,
+    jobs: int = 1,
 ) -> CheckpointAudit:
-    """Audit one loaded checkpoint."""
-    findings, ignored, stats = run_rules(checkpoint, policy, gradients, rules)
+    """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it)."""
+    files = checkpoint.files or (checkpoint.path,)
+    if jobs > 1:
+        # Hashing is a sequential pass over every byte; with a spare thread it overlaps the
+        # rules instead of adding to them (hashlib releases the GIL on large updates).
+        with ThreadPoolExecutor(max_workers=1) as hasher:
+            digest = hasher.submit(sha256_of, files)
+            findings, ignored, stats = run_rules(checkpoint, policy, gradients, rules, jobs)
+            sha256 = digest.result()
+    else:
+        findings, ignored, stats = run_rules(checkpoint, policy, gradients, rules)
+        sha256 = sha256_of(files)
     ranked = rank(findings)
     block = dict(checkpoint_block(checkpoint))
-    block["sha256"] = sha256_of(checkpoint.files or (checkpoint.path,))
+    block["sha256"] = sha256
     health = tuple(
         _health(layer, stats, findings, gradients is not None) for layer in checkpoint.layers
     )

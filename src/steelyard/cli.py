@@ -186,6 +186,14 @@ def audit(
     quiet: bool = typer.Option(
         False, "--quiet", "-q", help="No progress or diagnostics on stderr."
     ),
+    jobs: int | None = typer.Option(
+        None,
+        "--jobs",
+        "-j",
+        min=1,
+        help="Worker threads per checkpoint [default: the machine's cores]; the report is "
+        "the same for every value.",
+    ),
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
     from dataclasses import replace
@@ -207,6 +215,7 @@ def audit(
                 grads=grads,
                 grads_kind=grads_kind,
                 on_checkpoint=progress.advance,
+                jobs=jobs,
             )
         if accepted is not None:
             report = apply_baseline(report, accepted)

@@ -120,6 +120,12 @@ class Tensor:
     """Whether the tensor counts as a parameter."""
     reader: Callable[[], np.ndarray] = field(repr=False, compare=False)
     """Returns the decoded array in stored orientation (dtype as stored, native byte order)."""
+    read_span: Callable[[int, int], np.ndarray] | None = field(
+        default=None, repr=False, compare=False
+    )
+    """Optional: elements ``[start, stop)`` of the flattened tensor, dtype as stored. A loader
+    that sets it promises both readers are safe to call from several threads at once; the
+    audit then streams large tensors block by block instead of reading them whole."""
 
     @property
     def size(self) -> int:
@@ -131,8 +137,30 @@ class Tensor:
         return self.reader()
 
     def read_float32(self) -> np.ndarray:
-        """The array converted to float32 for analysis."""
+        """The array converted to float32 for analysis (chunk by chunk when it can be)."""
+        if self.read_span is not None and self.dtype != "f32" and self.size:
+            from steelyard.streaming import float32_from_spans
+
+            return float32_from_spans(self.read_span, self.shape)
         return to_float32(np.asarray(self.reader()))
+
+
+@dataclass(frozen=True, slots=True)
+class RowSlice:
+    """An ``orient`` that takes rows ``[start, stop)`` of the stored tensor's first axis
+    (every row when ``stop`` is None) and reorders nothing else.
+
+    A layer whose ``orient`` is a RowSlice has a canonical matrix that is one contiguous run
+    of the stored elements, so the audit can stream it row-block by row-block.
+    """
+
+    start: int = 0
+    stop: int | None = None
+
+    def __call__(self, array: np.ndarray) -> np.ndarray:
+        if self.start == 0 and self.stop is None:
+            return array
+        return array[self.start : self.stop]
 
 
 @dataclass(frozen=True, slots=True)

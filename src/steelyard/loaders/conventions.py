@@ -24,6 +24,7 @@ from steelyard.graph import (
     Link,
     Norm,
     NormKind,
+    RowSlice,
     Tensor,
     TensorRole,
     mark_outputs,
@@ -142,17 +143,13 @@ def _float_reader(
     return read
 
 
-def _identity(array: np.ndarray) -> np.ndarray:
-    return array
+#: Stored orientation is canonical; a RowSlice (not a bare function) tells the audit so.
+_identity = RowSlice()
 
 
-def _rows(rows: slice) -> Callable[[np.ndarray], np.ndarray]:
+def _rows(rows: slice) -> RowSlice:
     """A transform taking one gate's rows of a stacked recurrent matrix."""
-
-    def take(array: np.ndarray) -> np.ndarray:
-        return array[rows]
-
-    return take
+    return RowSlice(rows.start or 0, rows.stop)
 
 
 def _norm_of(module: _Module) -> Norm | None:

@@ -1,4 +1,4 @@
-"""safetensors files, single or sharded, parsed and memory-mapped without the package.
+"""safetensors files, single or sharded, parsed and read without the package.
 
 We parse the header ourselves because the package's numpy backend cannot read FP8 (one FP8
 tensor breaks the whole file) and needs ``ml_dtypes`` imported for BF16. Every claim of the
@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import json
 import math
-import mmap
 import struct
 from collections.abc import Callable
 from pathlib import Path
@@ -93,7 +92,6 @@ class _Shard:
             self.entries[name] = (dtype, shape, begin, end)
             spans.append((begin, end, name))
         self._check_tiling(spans)
-        self._map: mmap.mmap | None = None
 
     def _check_entry(self, name: str, entry: Any) -> tuple[str, tuple[int, ...], int, int]:
         path = self.path
@@ -145,25 +143,51 @@ class _Shard:
                 f"has {self.size - self.data_start - position} bytes after the last tensor",
             )
 
+    def _read_into(self, buffer: np.ndarray, offset: int) -> np.ndarray:
+        """Fill ``buffer`` with the bytes at ``offset`` of the data section.
+
+        Positional reads into a fresh array rather than a memory map: mapped pages that were
+        read stay in the process's resident set until the kernel needs them back, so a
+        map of a 3 GB checkpoint ends up counted as 3 GB however carefully it is streamed.
+        A private file object per call keeps concurrent reads from several threads safe.
+        """
+        view = buffer.reshape(-1).view(np.uint8).data
+        with open(self.path, "rb", buffering=0) as handle:
+            handle.seek(self.data_start + offset)
+            done = 0
+            while done < view.nbytes:
+                got = handle.readinto(view[done:])
+                if not got:
+                    raise LoadError(
+                        self.path, "ended before the tensor data its header describes (truncated?)"
+                    )
+                done += got
+        return buffer
+
     def reader(self, name: str) -> Callable[[], np.ndarray]:
         dtype, shape, begin, end = self.entries[name]
+        stored = ALL_DTYPES[dtype].newbyteorder("<")
 
         def read() -> np.ndarray:
             if end == begin:
                 return np.zeros(shape, dtype=ALL_DTYPES[dtype])
-            if self._map is None:
-                with open(self.path, "rb") as handle:
-                    self._map = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
-            count = (end - begin) // ALL_DTYPES[dtype].itemsize
-            flat = np.frombuffer(
-                self._map,
-                dtype=ALL_DTYPES[dtype].newbyteorder("<"),
-                count=count,
-                offset=self.data_start + begin,
-            )
-            return flat.reshape(shape)
+            return self._read_into(np.empty(shape, dtype=stored), begin)
 
         return read
+
+    def span_reader(self, name: str) -> Callable[[int, int], np.ndarray]:
+        dtype, shape, begin, _end = self.entries[name]
+        stored = ALL_DTYPES[dtype].newbyteorder("<")
+        size = math.prod(shape)
+
+        def read_span(start: int, stop: int) -> np.ndarray:
+            start, stop = max(0, start), min(size, stop)
+            buffer = np.empty(max(0, stop - start), dtype=stored)
+            if buffer.size == 0:
+                return buffer
+            return self._read_into(buffer, begin + start * stored.itemsize)
+
+        return read_span
 
 
 def _is_index(head: bytes) -> bool:
@@ -198,6 +222,7 @@ class SafetensorsLoader:
                     dtype=dtype,
                     role=role_for(name, dtype in FLOAT_DTYPES),
                     reader=shard.reader(name),
+                    read_span=shard.span_reader(name),
                 )
         config = read_hf_config(path.parent)
         layers, notes = build_layers(tensors, config, source=path)

@@ -10,6 +10,7 @@ exactly how inputs combine, the bounds are unknown (None) rather than guessed.
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 
@@ -43,22 +44,32 @@ class IntervalBounds:
         self.stats = stats
         self.lo, self.hi = float(input_range[0]), float(input_range[1])
         self._pre: dict[str, Bounds | None] = {}
+        self._lock = threading.RLock()
         layers = stats.checkpoint.layers
         self._sources = {layer.name for layer in layers if layer.from_input}
         first = layers[0] if layers else None
-        if not self._sources and first is not None and not first.inputs_from and first.kind in (
-            LayerKind.DENSE,
-            LayerKind.CONV,
+        if (
+            not self._sources
+            and first is not None
+            and not first.inputs_from
+            and first.kind
+            in (
+                LayerKind.DENSE,
+                LayerKind.CONV,
+            )
         ):
             # Without graph inputs marked, only the first layer is safely fed by the inputs.
             self._sources.add(first.name)
 
     def pre_activation(self, layer: Layer, depth: int = 0) -> Bounds | None:
         """Lower and upper pre-activation bounds of each unit, or None when unknown."""
-        if layer.name not in self._pre:
-            self._pre[layer.name] = None  # cycle guard
-            self._pre[layer.name] = self._compute(layer, depth)
-        return self._pre[layer.name]
+        # One lock for the whole recursion: another thread must never see the cycle guard's
+        # None as a result, or the outcome would depend on scheduling.
+        with self._lock:
+            if layer.name not in self._pre:
+                self._pre[layer.name] = None  # cycle guard
+                self._pre[layer.name] = self._compute(layer, depth)
+            return self._pre[layer.name]
 
     def _inputs(self, layer: Layer, depth: int) -> Bounds | None:
         channels = layer.in_per_group * layer.groups

@@ -44,11 +44,40 @@ class RuleSpec:
     check: Callable[[AuditContext, RuleSettings], Iterator[Finding]]
     doc: str
     """The rule's documentation page (its module docstring)."""
+    layer_check: LayerCheck | None = None
+    """Optional per-layer part of ``check``. When set, ``check(ctx, settings)`` must yield
+    exactly ``layer_check(ctx, settings, layer)`` for each layer in order, then ``finish``
+    (build it with :func:`layered`). The audit then runs every rule's hook on a layer while
+    that layer's data is in memory, and layers in parallel (``--jobs``)."""
+    finish: Callable[[AuditContext, RuleSettings], Iterator[Finding]] | None = None
+    """Optional whole-checkpoint findings yielded after the per-layer ones."""
+    tensor_scan: bool = False
+    """The rule asks ``ctx.stats.nonfinite`` of every tensor in ``ctx.stats.scan_targets()``;
+    the audit counts them in parallel before the rule runs."""
 
     @property
     def help_uri(self) -> str:
         """Where the rule's page is published."""
         return f"{DOCS_URL}#{self.name}"
+
+
+LayerCheck = Callable[[AuditContext, "RuleSettings", Layer], Iterator[Finding]]
+"""A rule's findings on one layer."""
+
+
+def layered(
+    layer_check: LayerCheck,
+    finish: Callable[[AuditContext, RuleSettings], Iterator[Finding]] | None = None,
+) -> Callable[[AuditContext, RuleSettings], Iterator[Finding]]:
+    """The whole-checkpoint ``check`` made of a per-layer hook and an optional finish."""
+
+    def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+        for layer in ctx.checkpoint.layers:
+            yield from layer_check(ctx, settings, layer)
+        if finish is not None:
+            yield from finish(ctx, settings)
+
+    return check
 
 
 class RuleSettings:

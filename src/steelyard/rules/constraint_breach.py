@@ -33,95 +33,91 @@ from collections.abc import Iterator
 import numpy as np
 
 from steelyard.findings import Finding, Severity
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.graph import Layer
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """Yield one error per layer whose declared constraint does not hold."""
-    for layer in ctx.checkpoint.layers:
-        constraint = layer.constraint
-        if constraint is None or not settings.enabled(layer):
-            continue
-        tol = float(settings.get(layer, "tolerance"))
-        base = dict(rule=RULE.name, layer=layer.name, tensor=layer.weight, part=layer.gate or "")
-        if not constraint.per_unit or (
-            constraint.kind == "min-max-norm" and constraint.rate != 1.0
-        ):
-            yield Finding(
-                **base,
-                severity=Severity.INFO,
-                units=(),
-                score=0.0,
-                message=f"declared {constraint.kind} constraint is not judged "
-                + (
-                    "(its axes do not map onto units)"
-                    if not constraint.per_unit
-                    else f"(rate {constraint.rate} < 1)"
-                ),
-                hint="nothing to do; steelyard cannot verify this constraint exactly",
-                evidence={"constraint": constraint.kind},
-            )
-            continue
-        weights = ctx.stats.matrix(layer)
-        norms = ctx.stats.row_norms(layer)
-        if constraint.kind == "non-neg":
-            scale = float(np.max(np.abs(weights))) if weights.size else 0.0
-            low = weights.min(axis=1) if weights.size else np.zeros(layer.units)
-            bad = np.flatnonzero(low < -tol * max(scale, 1e-30))
-            worst = float(-low[bad].min()) if bad.size else 0.0
-            measured, limit_text, excess = (
-                f"most negative weight {-worst:.6g}",
-                "0",
-                1 + worst / max(scale, 1e-30),
-            )
-        else:
-            upper = constraint.max_value if constraint.kind != "unit-norm" else 1.0
-            lower = (
-                constraint.min_value
-                if constraint.kind == "min-max-norm"
-                else (1.0 if constraint.kind == "unit-norm" else None)
-            )
-            too_big = (
-                norms > (upper * (1 + tol)) if upper is not None else np.zeros(layer.units, bool)
-            )
-            too_small = (
-                norms < (lower * (1 - tol)) if lower is not None else np.zeros(layer.units, bool)
-            )
-            bad = np.flatnonzero(too_big | too_small)
-            if not bad.size:
-                continue
-            ratios = np.where(
-                too_big[bad],
-                norms[bad] / (upper or 1.0),
-                (lower or 1.0) / np.maximum(norms[bad], 1e-30),
-            )
-            excess = float(ratios.max())
-            measured = f"row norms {float(norms[bad].min()):.6g} to {float(norms[bad].max()):.6g}"
-            limit_text = (
-                f"[{lower:g}, {upper:g}]"
-                if lower is not None and upper is not None
-                else f"<= {upper:g}"
-            )
-        if not bad.size:
-            continue
+def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    """Yield an error when the layer's declared constraint does not hold."""
+    constraint = layer.constraint
+    if constraint is None or not settings.enabled(layer):
+        return
+    tol = float(settings.get(layer, "tolerance"))
+    base = dict(rule=RULE.name, layer=layer.name, tensor=layer.weight, part=layer.gate or "")
+    if not constraint.per_unit or (constraint.kind == "min-max-norm" and constraint.rate != 1.0):
         yield Finding(
             **base,
-            severity=Severity.ERROR,
-            units=tuple(int(u) for u in bad),
-            score=score(bad.size / layer.units, excess),
-            message=f"{bad.size} of {layer.units} units break the declared {constraint.kind} constraint "
-            f"({measured}; limit {limit_text}, tolerance {tol:g})",
-            hint="check which weights were shipped: re-export from the training run or inspect the code "
-            "that loaded or edited this checkpoint",
-            evidence={
-                "constraint": constraint.kind,
-                "max_value": constraint.max_value,
-                "min_value": constraint.min_value,
-                "worst_excess": excess,
-                "norms": {str(int(u)): float(norms[u]) for u in bad[:10]},
-            },
+            severity=Severity.INFO,
+            units=(),
+            score=0.0,
+            message=f"declared {constraint.kind} constraint is not judged "
+            + (
+                "(its axes do not map onto units)"
+                if not constraint.per_unit
+                else f"(rate {constraint.rate} < 1)"
+            ),
+            hint="nothing to do; steelyard cannot verify this constraint exactly",
+            evidence={"constraint": constraint.kind},
         )
+        return
+    norms = ctx.stats.row_norms(layer)
+    if constraint.kind == "non-neg":
+        weights = ctx.stats.matrix(layer)
+        scale = float(np.max(np.abs(weights))) if weights.size else 0.0
+        low = weights.min(axis=1) if weights.size else np.zeros(layer.units)
+        bad = np.flatnonzero(low < -tol * max(scale, 1e-30))
+        worst = float(-low[bad].min()) if bad.size else 0.0
+        measured, limit_text, excess = (
+            f"most negative weight {-worst:.6g}",
+            "0",
+            1 + worst / max(scale, 1e-30),
+        )
+    else:
+        upper = constraint.max_value if constraint.kind != "unit-norm" else 1.0
+        lower = (
+            constraint.min_value
+            if constraint.kind == "min-max-norm"
+            else (1.0 if constraint.kind == "unit-norm" else None)
+        )
+        too_big = norms > (upper * (1 + tol)) if upper is not None else np.zeros(layer.units, bool)
+        too_small = (
+            norms < (lower * (1 - tol)) if lower is not None else np.zeros(layer.units, bool)
+        )
+        bad = np.flatnonzero(too_big | too_small)
+        if not bad.size:
+            return
+        ratios = np.where(
+            too_big[bad],
+            norms[bad] / (upper or 1.0),
+            (lower or 1.0) / np.maximum(norms[bad], 1e-30),
+        )
+        excess = float(ratios.max())
+        measured = f"row norms {float(norms[bad].min()):.6g} to {float(norms[bad].max()):.6g}"
+        limit_text = (
+            f"[{lower:g}, {upper:g}]"
+            if lower is not None and upper is not None
+            else f"<= {upper:g}"
+        )
+    if not bad.size:
+        return
+    yield Finding(
+        **base,
+        severity=Severity.ERROR,
+        units=tuple(int(u) for u in bad),
+        score=score(bad.size / layer.units, excess),
+        message=f"{bad.size} of {layer.units} units break the declared {constraint.kind} constraint "
+        f"({measured}; limit {limit_text}, tolerance {tol:g})",
+        hint="check which weights were shipped: re-export from the training run or inspect the code "
+        "that loaded or edited this checkpoint",
+        evidence={
+            "constraint": constraint.kind,
+            "max_value": constraint.max_value,
+            "min_value": constraint.min_value,
+            "worst_excess": excess,
+            "norms": {str(int(u)): float(norms[u]) for u in bad[:10]},
+        },
+    )
 
 
 RULE = RuleSpec(
@@ -129,6 +125,7 @@ RULE = RuleSpec(
     severity=Severity.ERROR,
     thresholds={"tolerance": 1e-4},
     summary="weights that break a constraint the file declares were edited, or come from another run",
-    check=check,
+    check=layered(check_layer),
     doc=__doc__ or "",
+    layer_check=check_layer,
 )

@@ -41,13 +41,12 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
 from steelyard.rules._bounds import IntervalBounds, finite_range
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
 
 def _constant(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[int]:
-    folded = ctx.stats.folded(layer)
-    rows = np.sqrt(np.einsum("ij,ij->i", folded.matrix, folded.matrix, dtype=np.float64))
+    rows = ctx.stats.folded_row_norms(layer)
     finite = rows[np.isfinite(rows)]
     if finite.size == 0:
         return set()
@@ -113,59 +112,57 @@ def _saving(ctx: AuditContext, layer: Layer, dead: int) -> int:
             1 for n in (layer.norm.scale, layer.norm.shift, layer.norm.mean, layer.norm.var) if n
         )
     for consumer in ctx.stats.consumers(layer):
-        block = ctx.stats.consumer_block(layer, consumer)
-        if block is not None:
-            per_unit += block.shape[1]
+        width = ctx.stats.consumer_block_width(layer, consumer)
+        if width is not None:
+            per_unit += width
     return per_unit * dead
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """Yield one finding per layer with dead units."""
+def _bounds(ctx: AuditContext) -> IntervalBounds | None:
+    """Interval bounds from the policy's input range, built once per audit."""
     declared = finite_range(ctx.policy.input_range) if ctx.policy.input_range else None
-    bounds = IntervalBounds(ctx.stats, declared) if declared else None
-    for layer in ctx.checkpoint.layers:
-        if layer.kind is LayerKind.EMBEDDING or not settings.enabled(layer):
-            continue
-        tests: dict[str, set[int]] = {"constant": _constant(ctx, settings, layer)}
-        if layer.kind is not LayerKind.RECURRENT:
-            tests["unused"] = _unused(ctx, settings, layer)
-            active, how = _never_active(ctx, settings, layer, bounds)
-            tests["never-active"] = active
-            tests["silenced"] = _silenced(ctx, settings, layer)
-        else:
-            how = ""
-        dead = sorted(set().union(*tests.values()))
-        if not dead:
-            continue
-        share = len(dead) / layer.units
-        severity = (
-            Severity.ERROR
-            if share >= float(settings.get(layer, "error-share"))
-            else Severity.WARNING
-        )
-        named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
-        saving = _saving(ctx, layer, len(dead))
-        evidence: dict[str, object] = {
-            name: sorted(units) for name, units in tests.items() if units
-        }
-        evidence.update(
-            dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving
-        )
-        if how:
-            evidence["never_active_by"] = how
-        yield Finding(
-            rule=RULE.name,
-            severity=severity,
-            layer=layer.name,
-            tensor=layer.weight,
-            units=tuple(dead),
-            score=score(share, 1 + len(dead)),
-            message=f"{len(dead)} of {layer.units} units are dead ({named})",
-            hint=f"pruning them saves exactly {saving} parameters; if many died, retrain with a lower "
-            "learning rate, leaky activations or a weaker penalty",
-            evidence=evidence,
-            part=layer.gate or "",
-        )
+    return IntervalBounds(ctx.stats, declared) if declared else None
+
+
+def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    """Yield the finding for one layer's dead units, if it has any."""
+    if layer.kind is LayerKind.EMBEDDING or not settings.enabled(layer):
+        return
+    bounds = ctx.stats.shared(f"dead-unit:bounds:{ctx.policy.input_range!r}", lambda: _bounds(ctx))
+    tests: dict[str, set[int]] = {"constant": _constant(ctx, settings, layer)}
+    if layer.kind is not LayerKind.RECURRENT:
+        tests["unused"] = _unused(ctx, settings, layer)
+        active, how = _never_active(ctx, settings, layer, bounds)
+        tests["never-active"] = active
+        tests["silenced"] = _silenced(ctx, settings, layer)
+    else:
+        how = ""
+    dead = sorted(set().union(*tests.values()))
+    if not dead:
+        return
+    share = len(dead) / layer.units
+    severity = (
+        Severity.ERROR if share >= float(settings.get(layer, "error-share")) else Severity.WARNING
+    )
+    named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
+    saving = _saving(ctx, layer, len(dead))
+    evidence: dict[str, object] = {name: sorted(units) for name, units in tests.items() if units}
+    evidence.update(dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving)
+    if how:
+        evidence["never_active_by"] = how
+    yield Finding(
+        rule=RULE.name,
+        severity=severity,
+        layer=layer.name,
+        tensor=layer.weight,
+        units=tuple(dead),
+        score=score(share, 1 + len(dead)),
+        message=f"{len(dead)} of {layer.units} units are dead ({named})",
+        hint=f"pruning them saves exactly {saving} parameters; if many died, retrain with a lower "
+        "learning rate, leaky activations or a weaker penalty",
+        evidence=evidence,
+        part=layer.gate or "",
+    )
 
 
 RULE = RuleSpec(
@@ -179,6 +176,7 @@ RULE = RuleSpec(
         "error-share": 0.5,
     },
     summary="a unit whose output cannot change or is never read costs parameters and contributes nothing",
-    check=check,
+    check=layered(check_layer),
     doc=__doc__ or "",
+    layer_check=check_layer,
 )

@@ -43,7 +43,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
 _TOP = 10
@@ -142,14 +142,13 @@ def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterat
         )
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """Yield outlier fan-in norms per layer."""
-    for layer in ctx.checkpoint.layers:
-        if not settings.enabled(layer):
-            continue
-        if layer.kind is LayerKind.EMBEDDING and not settings.get(layer, "include-embeddings"):
-            continue
-        yield from _relative(ctx, settings, layer)
+def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    """Yield one layer's outlier fan-in norms."""
+    if not settings.enabled(layer):
+        return
+    if layer.kind is LayerKind.EMBEDDING and not settings.get(layer, "include-embeddings"):
+        return
+    yield from _relative(ctx, settings, layer)
 
 
 RULE = RuleSpec(
@@ -162,6 +161,7 @@ RULE = RuleSpec(
         "include-embeddings": False,
     },
     summary="a unit whose incoming weights grew far past its neighbours' dominates its layer and amplifies noise",
-    check=check,
+    check=layered(check_layer),
     doc=__doc__ or "",
+    layer_check=check_layer,
 )

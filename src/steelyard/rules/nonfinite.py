@@ -52,7 +52,9 @@ def _units(layer: Layer, relation: str, bad: np.ndarray) -> tuple[int, ...] | No
     try:
         if relation == "weight" and layer.orient is not None:
             rows = np.asarray(layer.orient(bad)).reshape(layer.units, -1).any(axis=1)
-        elif (relation == "bias" and layer.gate is None and bad.size == layer.units) or (relation == "per-unit" and bad.size == layer.units):
+        elif (relation == "bias" and layer.gate is None and bad.size == layer.units) or (
+            relation == "per-unit" and bad.size == layer.units
+        ):
             rows = bad.reshape(layer.units)
         else:
             return None
@@ -93,6 +95,10 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
                 if slot is not None:
                     candidates.append((name, slot, f"optimizer {slot_name}"))
     for name, tensor, source in candidates:
+        # The counts come from the audit's one pass over every tensor; only a tensor that
+        # holds non-finite values is read again, for positions and units.
+        if not any(ctx.stats.nonfinite(tensor)):
+            continue
         found = _scan(tensor)
         if found is None:
             continue
@@ -141,4 +147,5 @@ RULE = RuleSpec(
     summary="NaN or ±Inf in a weight, bias, norm statistic or optimizer state breaks every output that depends on it",
     check=check,
     doc=__doc__ or "",
+    tensor_scan=True,
 )

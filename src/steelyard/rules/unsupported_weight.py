@@ -90,7 +90,7 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source
 from steelyard.graph import Layer, NormKind
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
 _TOP = 10
@@ -347,22 +347,34 @@ def _not_run(source: GradientSource | None) -> Finding:
     )
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """Yield unsupported large weights and equilibrium ratios per layer."""
+def _support(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> np.ndarray | None:
+    """The layer's gradient support when the rule runs on it, else None."""
     source = ctx.gradients
-    supported = False
-    if source is not None:
-        for layer in ctx.checkpoint.layers:
-            if not settings.enabled(layer):
-                continue
-            support = source.support(layer)
-            if support is None or support.shape != (layer.units, layer.fan_in):
-                continue
-            supported = True
-            yield from _unsupported(ctx, settings, layer, support)
-            yield from _equilibrium(ctx, settings, layer, support, source)
-    if not supported:
-        yield _not_run(source)
+    if source is None or not settings.enabled(layer):
+        return None
+    support = source.support(layer)
+    if support is None or support.shape != (layer.units, layer.fan_in):
+        return None
+    return support
+
+
+def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    """Yield one layer's unsupported large weights and equilibrium ratio."""
+    support = _support(ctx, settings, layer)
+    if support is None or ctx.gradients is None:
+        return
+    yield from _unsupported(ctx, settings, layer, support)
+    yield from _equilibrium(ctx, settings, layer, support, ctx.gradients)
+
+
+def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+    """The one info line when no layer had gradient support."""
+    source = ctx.gradients
+    if source is not None and any(
+        _support(ctx, settings, layer) is not None for layer in ctx.checkpoint.layers
+    ):
+        return
+    yield _not_run(source)
 
 
 RULE = RuleSpec(
@@ -377,6 +389,8 @@ RULE = RuleSpec(
     },
     summary="a large weight the loss barely pulls on was not put there by the data, yet still "
     "multiplies its input at inference",
-    check=check,
+    check=layered(check_layer, finish),
     doc=__doc__ or "",
+    layer_check=check_layer,
+    finish=finish,
 )

@@ -1,0 +1,163 @@
+"""Target B: the full audit of a ~20M-parameter checkpoint against just reading it.
+
+Run from the repository root::
+
+    python bench/audit_speed.py                 # fp32, 5 rounds
+    python bench/audit_speed.py --dtype bf16 --rounds 7
+
+The checkpoint is a seeded transformer-shaped safetensors file (vocabulary 8000, width 512,
+4 blocks with 1408-wide feed-forward layers, untied head: about 21M parameters). Each round
+runs, each in a fresh child process, (1) the baseline: every tensor read with the
+``safetensors`` package (``safetensors.numpy.load_file``), and (2) the full audit,
+``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Only the call
+itself is timed (imports excluded); the page cache is warm for both after the first round.
+The ratio is median audit time / median baseline time of the same run.
+
+Targets: ratio < 5; peak memory (VmHWM − resident set after imports) < 3 × the largest
+tensor + 200 MiB. The share of each rule is measured in one more child that times every
+rule's hooks and whole-checkpoint checks on one thread.
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from _common import (
+    MIB,
+    WEIGHTS,
+    MemoryProbe,
+    Shape,
+    emit,
+    machine,
+    mib,
+    run_child,
+    write_checkpoint,
+)
+
+SHAPE = Shape(vocab=8000, hidden=512, intermediate=1408, layers=4)
+
+
+def child(mode: str, path: str, jobs: str) -> None:
+    if mode == "baseline":
+        from safetensors.numpy import load_file
+
+        with MemoryProbe() as probe:
+            seconds = time.perf_counter()
+            tensors = load_file(path)
+            seconds = time.perf_counter() - seconds
+            del tensors
+        emit({"seconds": seconds, **probe.report()})
+    elif mode == "audit":
+        from steelyard.api import audit
+
+        with MemoryProbe() as probe:
+            seconds = time.perf_counter()
+            report = audit(path, jobs=int(jobs) if jobs != "default" else None)
+            seconds = time.perf_counter() - seconds
+        emit({"seconds": seconds, "findings": len(report.audits[0].findings), **probe.report()})
+    elif mode == "shares":
+        emit(rule_shares(path))
+
+
+def rule_shares(path: str) -> dict[str, float]:
+    """Seconds per rule on one thread (hooks timed per layer, data loads charged to the
+    first rule that asks for them, as in a real run)."""
+    from steelyard.api import load
+    from steelyard.policy import Policy
+    from steelyard.rules import AuditContext, RuleSettings, registry
+    from steelyard.stats import LayerStats
+
+    checkpoint = load(path)
+    stats = LayerStats(checkpoint)
+    ctx = AuditContext(checkpoint=checkpoint, stats=stats, policy=Policy(), gradients=None)
+    specs = list(registry().values())
+    spent = {spec.name: 0.0 for spec in specs}
+    settings = {s.name: RuleSettings(s.name, s.thresholds, ctx.policy) for s in specs}
+    for layer in checkpoint.layers:
+        for spec in specs:
+            if spec.layer_check is not None:
+                start = time.perf_counter()
+                list(spec.layer_check(ctx, settings[spec.name], layer))
+                spent[spec.name] += time.perf_counter() - start
+        stats.release(layer)
+    for spec in specs:
+        start = time.perf_counter()
+        if spec.layer_check is None:
+            list(spec.check(ctx, settings[spec.name]))
+        elif spec.finish is not None:
+            list(spec.finish(ctx, settings[spec.name]))
+        spent[spec.name] += time.perf_counter() - start
+    from steelyard.audit import sha256_of
+
+    start = time.perf_counter()
+    sha256_of(checkpoint.files or (checkpoint.path,))
+    spent["(sha256 of the files)"] = time.perf_counter() - start
+    return spent
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--dtype", choices=("f32", "bf16"), default="f32")
+    parser.add_argument("--rounds", type=int, default=5)
+    parser.add_argument("--jobs", default="default")
+    parser.add_argument("--weights", choices=WEIGHTS, default="trained")
+    parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        child(*args.child)
+        return
+    folder = Path(tempfile.mkdtemp(prefix="steelyard-bench-"))
+    try:
+        path = write_checkpoint(
+            folder, SHAPE, args.dtype, shard_bytes=2**40, seed=1, weights=args.weights
+        )
+        itemsize = 2 if args.dtype == "bf16" else 4
+        largest = SHAPE.largest * itemsize
+        print(f"machine: {machine()}")
+        print(
+            f"checkpoint: {SHAPE.parameters:,} parameters {args.dtype} ({args.weights}), "
+            f"{path.stat().st_size / MIB:,.1f} MiB, largest tensor {mib(largest)}"
+        )
+        base, full = [], []
+        for _ in range(args.rounds):
+            base.append(run_child(Path(__file__), ["baseline", str(path), args.jobs]))
+            full.append(run_child(Path(__file__), ["audit", str(path), args.jobs]))
+        t_base = statistics.median(r["seconds"] for r in base)
+        t_full = statistics.median(r["seconds"] for r in full)
+        peak = max(r["vm_hwm"] - r["start_rss"] for r in full)
+        anon = max(r["peak_anon"] - r["start_anon"] for r in full)
+        base_peak = max(r["vm_hwm"] - r["start_rss"] for r in base)
+        limit = 3 * largest + 200 * MIB
+        ratio = t_full / t_base
+        print(
+            f"baseline (safetensors.numpy.load_file): median {t_base * 1e3:.1f} ms, "
+            f"peak {mib(base_peak)}"
+        )
+        print(
+            f"full audit (jobs {args.jobs}): median {t_full * 1e3:.1f} ms, "
+            f"peak {mib(peak)} (anonymous {mib(anon)}), findings {full[0]['findings']}"
+        )
+        print(f"ratio {ratio:.2f} (target < 5): {'ok' if ratio < 5 else 'OVER'}")
+        print(
+            f"peak {mib(peak)} vs 3 × {mib(largest)} + 200 MiB = {mib(limit)}: "
+            f"{'ok' if peak < limit else 'OVER'}"
+        )
+        shares = run_child(Path(__file__), ["shares", str(path), "1"])
+        total = sum(shares.values())
+        print("time per rule on one thread (data loads charged to the first rule asking):")
+        for name, seconds in sorted(shares.items(), key=lambda kv: -kv[1]):
+            print(f"  {name:<24}{seconds * 1e3:9.1f} ms  {100 * seconds / total:5.1f} %")
+        if ratio >= 5 or peak >= limit:
+            sys.exit(1)
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,65 @@
+"""Reading tensors in bounded blocks and converting them to float32 one chunk at a time.
+
+A bf16 tensor converted in one go needs its stored bytes and its float32 copy in memory at
+once (three times the stored size); converted chunk by chunk into a preallocated float32
+array it needs the float32 copy plus one chunk. The helpers here are what loaders and
+:class:`~steelyard.stats.LayerStats` use to keep peak memory near the largest block.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+
+import ml_dtypes
+import numpy as np
+
+#: Float32 bytes converted per chunk (and the default row-block size of streamed passes).
+CHUNK_BYTES = 16 * 2**20
+
+_BF16 = np.dtype(ml_dtypes.bfloat16)
+
+#: Reads elements [start, stop) of a flattened tensor, in its stored dtype.
+SpanReader = Callable[[int, int], np.ndarray]
+
+
+def convert_into(source: np.ndarray, out: np.ndarray) -> None:
+    """Write ``source`` converted to float32 into ``out`` (same element count), exactly.
+
+    bf16 is the upper half of an IEEE float32, so widening is a 16-bit shift of the bit
+    pattern (NaN payloads and infinities included); that is several times faster than a
+    generic cast and releases the GIL. Every other dtype goes through numpy's cast.
+    """
+    flat_out = out.reshape(-1)
+    flat_in = source.reshape(-1)
+    if flat_in.dtype == _BF16 and flat_in.dtype.byteorder in ("=", "|", "<"):
+        np.left_shift(flat_in.view(np.uint16), 16, out=flat_out.view(np.uint32), dtype=np.uint32)
+    else:
+        flat_out[...] = flat_in
+
+
+def float32_from_spans(read_span: SpanReader, shape: tuple[int, ...]) -> np.ndarray:
+    """The whole tensor as float32, read and converted one chunk at a time."""
+    out = np.empty(shape, dtype=np.float32)
+    flat = out.reshape(-1)
+    for start, stop in chunks(flat.size):
+        convert_into(read_span(start, stop), flat[start:stop])
+    return out
+
+
+def chunks(size: int, chunk_elements: int | None = None) -> Iterator[tuple[int, int]]:
+    """``(start, stop)`` element ranges of at most ``chunk_elements`` (default: one
+    :data:`CHUNK_BYTES` of float32) covering ``size``."""
+    step = max(1, chunk_elements if chunk_elements is not None else CHUNK_BYTES // 4)
+    for start in range(0, size, step):
+        yield start, min(size, start + step)
+
+
+def row_blocks(
+    rows: int, row_elements: int, block_bytes: int | None = None
+) -> Iterator[tuple[int, int]]:
+    """``(start, stop)`` row ranges whose float32 size stays near ``block_bytes`` (default
+    :data:`CHUNK_BYTES`), at least one row each."""
+    budget = block_bytes if block_bytes is not None else CHUNK_BYTES
+    per_block = max(1, budget // max(1, 4 * row_elements))
+    for start in range(0, rows, per_block):
+        yield start, min(rows, start + per_block)

@@ -1,0 +1,180 @@
+"""Streaming reads, chunked float32 conversion, the one-pass layer statistics and ``--jobs``.
+
+References: ``ml_dtypes`` casts (bf16/fp8 widening), the ``safetensors`` package's numpy
+reader (tensor bytes), ``numpy.linalg.norm`` (row and column norms), ``numpy.isnan`` /
+``numpy.isposinf`` / ``numpy.isneginf`` (non-finite counts).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import ml_dtypes
+import numpy as np
+import pytest
+import safetensors.numpy
+
+from steelyard import api, streaming
+from steelyard.audit import run_rules
+from steelyard.errors import LoadError
+from steelyard.policy import Policy
+from steelyard.stats import LayerStats
+from tests.conftest import mlp_tensors, write_safetensors
+
+
+def test_bf16_widening_matches_ml_dtypes_on_every_bit_pattern() -> None:
+    patterns = np.arange(2**16, dtype=np.uint16).view(ml_dtypes.bfloat16)
+    out = np.empty(patterns.size, np.float32)
+    streaming.convert_into(patterns, out)
+    # reference: ml_dtypes.bfloat16 -> float32 cast (NaN payloads and signed zeros included)
+    assert np.array_equal(out.view(np.uint32), patterns.astype(np.float32).view(np.uint32))
+
+
+@pytest.mark.parametrize(
+    "dtype", [np.float16, ml_dtypes.float8_e4m3fn, ml_dtypes.float8_e5m2, np.float64]
+)
+def test_other_dtypes_convert_as_numpy_casts(dtype: type, rng: np.random.Generator) -> None:
+    values = (rng.standard_normal(1000) * 3).astype(dtype)
+    out = np.empty(values.size, np.float32)
+    streaming.convert_into(values, out)
+    # reference: numpy / ml_dtypes astype(float32)
+    np.testing.assert_array_equal(out, values.astype(np.float32))
+
+
+def _small_chunks(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Blocks of a few hundred bytes so that tiny tensors take many chunks and row blocks."""
+    monkeypatch.setattr(streaming, "CHUNK_BYTES", 256)
+
+
+def test_spans_and_chunked_float32_equal_the_reference_reader(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _small_chunks(monkeypatch)
+    stored = {
+        "a.weight": rng.standard_normal((37, 11)).astype(ml_dtypes.bfloat16),
+        "b.weight": rng.standard_normal((5, 3, 2, 2)).astype(np.float16),
+        "c.bias": rng.standard_normal(7).astype(np.float32),
+    }
+    path = write_safetensors(tmp_path / "m.safetensors", stored)
+    reference = safetensors.numpy.load_file(str(path))  # reference: safetensors package
+    checkpoint = api.load(path)
+    for name, tensor in checkpoint.tensors.items():
+        assert tensor.read_span is not None
+        np.testing.assert_array_equal(tensor.read(), reference[name])
+        flat = reference[name].reshape(-1)
+        np.testing.assert_array_equal(tensor.read_span(3, 9), flat[3:9])
+        widened = tensor.read_float32()
+        assert widened.dtype == np.float32
+        np.testing.assert_array_equal(widened, reference[name].astype(np.float32))
+
+
+def test_truncated_file_is_a_load_error_when_read(tmp_path: Path, rng: np.random.Generator) -> None:
+    path = write_safetensors(tmp_path / "m.safetensors", mlp_tensors(rng))
+    checkpoint = api.load(path)
+    size = path.stat().st_size
+    with open(path, "r+b") as handle:  # the file shrinks after its header was checked
+        handle.truncate(size - 16)
+    with pytest.raises(LoadError, match="ended before"):
+        for tensor in checkpoint.tensors.values():
+            tensor.read()
+
+
+def _mlp_with_defects(tmp_path: Path, rng: np.random.Generator) -> Path:
+    tensors = mlp_tensors(rng, (24, 40, 30, 5))
+    tensors["fc1.weight"][3] = 0.0
+    tensors["fc1.weight"][5] *= 40.0
+    tensors["fc2.weight"][:, 9] = 0.0
+    tensors["fc2.weight"][2, 4] = np.inf
+    tensors["fc3.weight"][1, 1] = np.nan
+    stored = {k: v.astype(ml_dtypes.bfloat16) for k, v in tensors.items()}
+    return write_safetensors(tmp_path / "mlp.safetensors", stored)
+
+
+def test_one_pass_statistics_match_numpy(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _small_chunks(monkeypatch)
+    path = _mlp_with_defects(tmp_path, rng)
+    checkpoint = api.load(path)
+    reference = {k: v.astype(np.float32) for k, v in safetensors.numpy.load_file(str(path)).items()}
+    # stream_bytes=0: every matrix is streamed in row blocks and never kept.
+    stats = LayerStats(checkpoint, stream_bytes=0)
+    linked = 0
+    for layer in checkpoint.layers:
+        weights = reference[layer.weight]
+        with np.errstate(invalid="ignore", over="ignore"):
+            # reference: numpy.linalg.norm over each unit's row
+            np.testing.assert_allclose(
+                stats.row_norms(layer), np.linalg.norm(weights.astype(np.float64), axis=1)
+            )
+        np.testing.assert_array_equal(stats.matrix(layer), weights)
+        for consumer in stats.consumers(layer):
+            block = stats.consumer_block(layer, consumer)
+            assert block is not None
+            assert stats.consumer_block_width(layer, consumer) == block.shape[1]
+            norms = stats.column_norms(layer, consumer)
+            assert norms is not None
+            with np.errstate(invalid="ignore", over="ignore"):
+                # reference: numpy.linalg.norm of the consumer's columns for each unit
+                expected = np.linalg.norm(weights_of(reference, consumer.weight), axis=0)
+            np.testing.assert_allclose(norms, expected, rtol=1e-12)
+            linked += 1
+    assert linked == 2
+    for name, tensor in checkpoint.tensors.items():
+        values = reference[name]
+        # reference: numpy.isnan / isposinf / isneginf
+        expected = (
+            int(np.isnan(values).sum()),
+            int(np.isposinf(values).sum()),
+            int(np.isneginf(values).sum()),
+        )
+        assert stats.nonfinite(tensor) == expected
+    assert sum(sum(stats.nonfinite(t)) for t in checkpoint.tensors.values()) == 2
+
+
+def weights_of(reference: dict[str, np.ndarray], name: str) -> np.ndarray:
+    return reference[name].astype(np.float64)
+
+
+def test_findings_do_not_depend_on_jobs_or_block_size(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = _mlp_with_defects(tmp_path, rng)
+    policy = Policy(input_range=(0.0, 1.0))
+    plain = run_rules(api.load(path), policy, None, jobs=1)[0]
+    threaded = run_rules(api.load(path), policy, None, jobs=3)[0]
+    _small_chunks(monkeypatch)
+    streamed = run_rules(api.load(path), policy, None, jobs=2)[0]
+    assert {f.rule for f in plain} >= {"nonfinite", "dead-unit", "fan-in-norm"}
+    assert plain == threaded == streamed
+
+
+def test_reports_from_the_cli_are_identical_for_any_jobs(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    from typer.testing import CliRunner
+
+    from steelyard.cli import app
+
+    path = _mlp_with_defects(tmp_path, rng)
+    outputs = []
+    for jobs in ("1", "2"):
+        result = CliRunner().invoke(
+            app,
+            ["audit", str(path), "--format", "json", "--jobs", jobs, "--quiet"],
+            env={**os.environ, "SOURCE_DATE_EPOCH": "1700000000"},
+        )
+        assert result.exit_code == 1, result.output
+        outputs.append(json.loads(result.stdout))
+    assert outputs[0] == outputs[1]
+    assert "nonfinite" in json.dumps(outputs[0])
+
+
+def test_jobs_must_be_positive(tmp_path: Path, rng: np.random.Generator) -> None:
+    path = write_safetensors(tmp_path / "m.safetensors", mlp_tensors(rng))
+    from steelyard.errors import SteelyardError
+
+    with pytest.raises(SteelyardError):
+        api.audit(path, jobs=0)

@@ -307,7 +307,7 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
             sl = slice(index * hidden, (index + 1) * hidden)
             out.append(
                 Layer(
-                    name=f"{module.name}.{which}{level}{reverse or ''}.{gate}",
+                    name=f"{module.name + '.' if module.name else ''}{which}{level}{reverse or ''}.{gate}",
                     kind=LayerKind.RECURRENT,
                     weight=weight.name,
                     bias=bias.name if bias is not None else None,

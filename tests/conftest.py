@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 from pathlib import Path
 
 import numpy as np
@@ -31,7 +32,7 @@ def rng() -> np.random.Generator:
 def mlp_tensors(rng: np.random.Generator, widths: tuple[int, ...] = (6, 16, 4)) -> dict[str, np.ndarray]:
     """PyTorch-named weights of an MLP: fc1.weight [out, in], fc1.bias, fc2..."""
     tensors: dict[str, np.ndarray] = {}
-    for index, (fan_in, fan_out) in enumerate(zip(widths[:-1], widths[1:]), 1):
+    for index, (fan_in, fan_out) in enumerate(itertools.pairwise(widths), 1):
         tensors[f"fc{index}.weight"] = (rng.normal(size=(fan_out, fan_in)) / np.sqrt(fan_in)).astype(np.float32)
         tensors[f"fc{index}.bias"] = (0.01 * rng.normal(size=fan_out)).astype(np.float32)
     return tensors

@@ -7,6 +7,6 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
-from steelyard.api import audit, load  # noqa: E402
+from steelyard.api import audit, load
 
 __all__ = ["__version__", "audit", "load"]

@@ -12,8 +12,8 @@ import mmap
 import struct
 import zipfile
 from collections.abc import Callable
-from typing import Literal
 from pathlib import Path
+from typing import Literal
 
 import ml_dtypes
 import numpy as np

@@ -9,9 +9,13 @@ The checkpoint is a seeded transformer-shaped safetensors file (vocabulary 8000,
 4 blocks with 1408-wide feed-forward layers, untied head: about 21M parameters). Each round
 runs, each in a fresh child process, (1) the baseline: every tensor read with the
 ``safetensors`` package (``safetensors.numpy.load_file``), and (2) the full audit,
-``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Only the call
-itself is timed (imports excluded); the page cache is warm for both after the first round.
+``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Each child
+makes one untimed warm-up call first (module imports done lazily on first use, page cache),
+then times the second call; peak memory is the child's VmHWM, warm-up included.
 The ratio is median audit time / median baseline time of the same run.
+
+A third child per round runs the audit with ``twin-units`` and ``untrained-layer`` disabled
+by policy (``core``), separating the shared pass and the other rules from those two.
 
 Targets: ratio < 5; peak memory (VmHWM − resident set after imports) < 3 × the largest
 tensor + 200 MiB. The share of each rule is measured in one more child that times every
@@ -45,20 +49,28 @@ SHAPE = Shape(vocab=8000, hidden=512, intermediate=1408, layers=4)
 
 def child(mode: str, path: str, jobs: str) -> None:
     if mode == "baseline":
+        import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
         from safetensors.numpy import load_file
 
+        load_file(path)  # warm-up: first-call imports and the page cache
         with MemoryProbe() as probe:
             seconds = time.perf_counter()
             tensors = load_file(path)
             seconds = time.perf_counter() - seconds
             del tensors
         emit({"seconds": seconds, **probe.report()})
-    elif mode == "audit":
+    elif mode in ("audit", "core"):
         from steelyard.api import audit
+        from steelyard.policy import Policy
 
+        off = {"enabled": False}
+        policy = (
+            Policy(rules={"twin-units": off, "untrained-layer": off}) if mode == "core" else None
+        )
+        audit(path, policy=policy, jobs=1)  # warm-up: lazy imports of loaders and rules
         with MemoryProbe() as probe:
             seconds = time.perf_counter()
-            report = audit(path, jobs=int(jobs) if jobs != "default" else None)
+            report = audit(path, policy=policy, jobs=int(jobs) if jobs != "default" else None)
             seconds = time.perf_counter() - seconds
         emit({"seconds": seconds, "findings": len(report.audits[0].findings), **probe.report()})
     elif mode == "shares":
@@ -124,12 +136,15 @@ def main() -> None:
             f"checkpoint: {SHAPE.parameters:,} parameters {args.dtype} ({args.weights}), "
             f"{path.stat().st_size / MIB:,.1f} MiB, largest tensor {mib(largest)}"
         )
-        base, full = [], []
+        base, full, core = [], [], []
         for _ in range(args.rounds):
             base.append(run_child(Path(__file__), ["baseline", str(path), args.jobs]))
             full.append(run_child(Path(__file__), ["audit", str(path), args.jobs]))
+            core.append(run_child(Path(__file__), ["core", str(path), args.jobs]))
         t_base = statistics.median(r["seconds"] for r in base)
         t_full = statistics.median(r["seconds"] for r in full)
+        t_core = statistics.median(r["seconds"] for r in core)
+        core_peak = max(r["vm_hwm"] - r["start_rss"] for r in core)
         peak = max(r["vm_hwm"] - r["start_rss"] for r in full)
         anon = max(r["peak_anon"] - r["start_anon"] for r in full)
         base_peak = max(r["vm_hwm"] - r["start_rss"] for r in base)
@@ -144,6 +159,10 @@ def main() -> None:
             f"peak {mib(peak)} (anonymous {mib(anon)}), findings {full[0]['findings']}"
         )
         print(f"ratio {ratio:.2f} (target < 5): {'ok' if ratio < 5 else 'OVER'}")
+        print(
+            f"core audit (twin-units and untrained-layer off): median {t_core * 1e3:.1f} ms, "
+            f"ratio {t_core / t_base:.2f}, peak {mib(core_peak)}"
+        )
         print(
             f"peak {mib(peak)} vs 3 × {mib(largest)} + 200 MiB = {mib(limit)}: "
             f"{'ok' if peak < limit else 'OVER'}"

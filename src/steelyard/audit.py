@@ -5,8 +5,10 @@ from __future__ import annotations
 import hashlib
 import math
 import os
-from collections.abc import Callable, Iterable, Sequence
+import threading
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import contextmanager
 from dataclasses import replace
 from typing import TypeVar
 
@@ -20,7 +22,7 @@ from steelyard.policy import Policy
 from steelyard.ranking import rank
 from steelyard.report import CheckpointAudit, LayerHealth
 from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
-from steelyard.stats import LayerStats
+from steelyard.stats import STREAM_BYTES, LayerStats
 
 _HASH_CHUNK = 8 * 2**20
 
@@ -53,6 +55,29 @@ def _map(pool: ThreadPoolExecutor | None, work: Callable[[T], R], items: Sequenc
     return list(pool.map(work, items))
 
 
+class _Admission:
+    """A counting semaphore whose holders take several slots at once (all of them to run
+    alone); every acquisition is atomic, so it cannot deadlock."""
+
+    def __init__(self, capacity: int) -> None:
+        self.capacity = max(1, capacity)
+        self._free = self.capacity
+        self._ready = threading.Condition()
+
+    @contextmanager
+    def slots(self, count: int) -> Iterator[None]:
+        count = min(max(1, count), self.capacity)
+        with self._ready:
+            self._ready.wait_for(lambda: self._free >= count)
+            self._free -= count
+        try:
+            yield
+        finally:
+            with self._ready:
+                self._free += count
+                self._ready.notify_all()
+
+
 def run_rules(
     checkpoint: Checkpoint,
     policy: Policy,
@@ -64,8 +89,8 @@ def run_rules(
 
     Rules with a per-layer hook run layer by layer: each task runs every such rule on one
     layer while that layer's data is in memory, then releases it, so each tensor is read
-    once. Rules without one run whole afterwards. ``jobs`` > 1 runs tasks on that many
-    threads (numpy releases the GIL in the heavy loops); the findings are collected in the
+    once. Rules without one run whole afterwards, one at a time. ``jobs`` > 1 runs layer
+    tasks on that many threads (a layer too large for the matrix cache runs alone) (numpy releases the GIL in the heavy loops); the findings are collected in the
     same order as with one, so the report does not depend on ``jobs``.
     """
     stats = LayerStats(checkpoint)
@@ -74,15 +99,21 @@ def run_rules(
     settings = {spec.name: RuleSettings(spec.name, spec.thresholds, policy) for spec in specs}
     hooked = [spec for spec in specs if spec.layer_check is not None]
 
+    admission = _Admission(jobs)
+
     def one_layer(layer: Layer) -> list[list[Finding]]:
-        try:
-            out: list[list[Finding]] = []
-            for spec in hooked:
-                assert spec.layer_check is not None
-                out.append(list(spec.layer_check(context, settings[spec.name], layer)))
-            return out
-        finally:
-            stats.release(layer)
+        # A layer whose matrix is too large to cache runs alone, so two of the largest
+        # (embedding, head) never hold their working sets at the same time.
+        weight = jobs if 4 * layer.units * layer.fan_in > STREAM_BYTES else 1
+        with admission.slots(weight):
+            try:
+                out: list[list[Finding]] = []
+                for spec in hooked:
+                    assert spec.layer_check is not None
+                    out.append(list(spec.layer_check(context, settings[spec.name], layer)))
+                return out
+            finally:
+                stats.release(layer)
 
     def whole(spec: RuleSpec) -> list[Finding]:
         if spec.layer_check is None:
@@ -94,7 +125,9 @@ def run_rules(
         per_layer = _map(pool, one_layer, checkpoint.layers) if hooked else []
         if any(spec.tensor_scan for spec in specs):
             _map(pool, stats.nonfinite, stats.scan_targets())
-        rest = _map(pool, whole, specs)
+        # Rules without a hook scan every layer themselves: one after another, because two
+        # at once hold two working sets while BLAS already keeps every core busy.
+        rest = [whole(spec) for spec in specs]
     finally:
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)

@@ -8,6 +8,7 @@ from __future__ import annotations
 import inspect
 import sys
 from pathlib import Path
+from typing import Any
 
 from steelyard.rules import registry
 from steelyard.rules.scoring import __doc__ as SCORING_DOC
@@ -30,35 +31,33 @@ Findings are ordered by severity, then score (higher first), then rule, then loc
 """
 
 
+def _section(spec: Any, heading: str, body: str) -> list[str]:
+    """One rule's part of the page: heading, defaults, one-line why, doc page."""
+    thresholds = ", ".join(
+        f"`{k}` = {'unset' if v is None else v}" for k, v in spec.thresholds.items()
+    ) or "none"
+    return [
+        f"\n{heading} {spec.name}\n",
+        f"*Default severity:* {spec.severity.value}. *Thresholds:* {thresholds}.\n",
+        f"*Why, in one line:* {spec.summary}.\n",
+        body + "\n",
+    ]
+
+
 def render() -> str:
     """The whole Markdown page."""
     parts = [HEADER, (SCORING_DOC or "").strip(), "\n"]
     for spec in registry().values():
-        thresholds = ", ".join(
-            f"`{k}` = {'unset' if v is None else v}" for k, v in spec.thresholds.items()
-        ) or "none"
-        parts += [
-            f"\n## {spec.name}\n",
-            f"*Default severity:* {spec.severity.value}. *Thresholds:* {thresholds}.\n",
-            f"*Why, in one line:* {spec.summary}.\n",
-            spec.doc.strip().replace("\n**", "\n\n**").replace("\n\n\n", "\n\n") + "\n",
-        ]
+        body = spec.doc.strip().replace("\n**", "\n\n**").replace("\n\n\n", "\n\n")
+        parts += _section(spec, "##", body)
     from steelyard.compare.rules import compare_registry
 
     parts.append(
         "\n## Comparison rules (`steelyard compare`)\n\n"
         "These run on two checkpoints; see `compare.md`. The same policy file configures them.\n"
     )
-    for spec in compare_registry().values():
-        thresholds = ", ".join(
-            f"`{k}` = {'unset' if v is None else v}" for k, v in spec.thresholds.items()
-        ) or "none"
-        parts += [
-            f"\n### {spec.name}\n",
-            f"*Default severity:* {spec.severity.value}. *Thresholds:* {thresholds}.\n",
-            f"*Why, in one line:* {spec.summary}.\n",
-            inspect.cleandoc(spec.doc) + "\n",
-        ]
+    for compare_spec in compare_registry().values():
+        parts += _section(compare_spec, "###", inspect.cleandoc(compare_spec.doc))
     return "\n".join(parts).replace("\n\n\n", "\n\n")
 
 

@@ -4,7 +4,7 @@ Run from the repository root::
 
     python bench/twin_recall.py
 
-For layers 1024, 2048 and 4096 units wide (fan-in 256) we plant twin pairs whose cosine is
+For layers 512, 1024, 2048 and 4096 units wide (fan-in 256) we plant twin pairs whose cosine is
 spread evenly over [threshold, 1] (the hardest pairs sit at the threshold itself), in two
 backgrounds: independent Gaussian rows, and rows sharing a common direction (average cosine
 about 0.3, as in trained layers whose units share a bias direction). The exact blocked search
@@ -79,7 +79,7 @@ def main() -> int:
     print(
         f"threshold {THRESHOLD}; columns: units, background, signs, bits×tables, pairs, recall, exact s, hashed s"
     )
-    for units in (1024, 2048, 4096):
+    for units in (512, 1024, 2048, 4096):
         bits, tables = hash_plan(units, THRESHOLD)
         for shared, label in ((0.0, "independent"), (0.65, "shared-direction")):
             for negative in (False, True):

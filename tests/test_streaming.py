@@ -134,6 +134,28 @@ def test_one_pass_statistics_match_numpy(
     assert sum(sum(stats.nonfinite(t)) for t in checkpoint.tensors.values()) == 2
 
 
+@pytest.mark.parametrize("stream_bytes", [0, 2**30])
+def test_weight_samples_are_the_same_values_however_the_layer_is_read(
+    tmp_path: Path,
+    rng: np.random.Generator,
+    monkeypatch: pytest.MonkeyPatch,
+    stream_bytes: int,
+) -> None:
+    _small_chunks(monkeypatch)
+    stored = {"wide.weight": rng.standard_normal((300, 40)).astype(ml_dtypes.bfloat16)}
+    path = write_safetensors(tmp_path / "m.safetensors", stored)
+    # reference: safetensors package reader, positions by numpy's Generator.choice
+    weights = safetensors.numpy.load_file(str(path))["wide.weight"].astype(np.float32)
+    positions = np.random.default_rng(7).choice(weights.size, size=500, replace=False)
+    expected = np.sort(weights.reshape(-1)[positions].astype(np.float64))
+    checkpoint = api.load(path)
+    (layer,) = checkpoint.layers
+    stats = LayerStats(checkpoint, stream_bytes=stream_bytes)
+    np.testing.assert_array_equal(stats.sample(layer, 500, 7), expected)
+    everything = stats.sample(layer, weights.size + 1, 7)  # asks for more than there are
+    np.testing.assert_array_equal(everything, np.sort(weights.reshape(-1).astype(np.float64)))
+
+
 def weights_of(reference: dict[str, np.ndarray], name: str) -> np.ndarray:
     return reference[name].astype(np.float64)
 

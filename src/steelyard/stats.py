@@ -297,6 +297,28 @@ class LayerStats:
             pass
         return full
 
+    def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:
+        """A seeded uniform sample of ``size`` of the layer's weights (all of them when it has
+        no more), sorted, float64. The positions are ``default_rng(seed).choice(units·fan_in,
+        size, replace=False)``; a layer too large to cache is streamed in row blocks for them
+        instead of being assembled, so the result never depends on how it was read."""
+        units, fan_in = layer.units, layer.fan_in
+        total = units * fan_in
+        if total <= size:
+            return np.sort(self.matrix(layer).reshape(-1).astype(np.float64))
+        positions = np.sort(np.random.default_rng(seed).choice(total, size=size, replace=False))
+        source = self._streamable(layer)
+        cached = self._cache.get(("matrix", layer.name))
+        if cached is not None or source is None or 4 * total <= self._stream_bytes:
+            flat = self.matrix(layer).reshape(-1)
+            return np.sort(flat[positions].astype(np.float64))
+        picked = np.empty(size, dtype=np.float64)
+        scratch = np.empty(0, dtype=np.float32)
+        for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
+            lo, hi = np.searchsorted(positions, (a * fan_in, b * fan_in))
+            picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
+        return np.sort(picked)
+
     def bias(self, layer: Layer) -> np.ndarray | None:
         """Bias as float32 ``[units]``."""
         return self._memo(layer, "bias", lambda: self._locked(layer.bias, layer.bias_vector))

@@ -26,10 +26,15 @@ from steelyard.policy import Policy
 from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
 from steelyard.rules.untrained_layer import (
     RULE,
+    SPREAD_ROWS,
+    TRUNCATED_KURTOSIS,
     TRUNCATED_STD,
     Candidate,
+    erf,
     ks_distance,
     ks_limit,
+    row_spread,
+    spread_limit,
 )
 
 TORCH_FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "real" / "torch"
@@ -95,11 +100,22 @@ def test_cdfs_and_ks_statistic_match_scipy() -> None:
         (Candidate("t", "truncated", 0.5), scipy_stats.truncnorm(-2, 2, loc=0, scale=0.5)),
     ]
     for candidate, frozen in references:
-        # reference: scipy.stats CDFs and scipy.stats.kstest
-        np.testing.assert_allclose(candidate.cdf(x), frozen.cdf(x), atol=1e-12)
+        # reference: scipy.stats CDFs and scipy.stats.kstest. The normal CDFs use the
+        # Abramowitz & Stegun 7.1.26 erf (|error| <= 1.5e-7, so <= 7.5e-8 on a CDF).
+        np.testing.assert_allclose(candidate.cdf(x), frozen.cdf(x), atol=1e-7)
         expected = scipy_stats.kstest(x, frozen.cdf).statistic
-        assert ks_distance(x, candidate.cdf) == pytest.approx(expected, abs=1e-12)
+        assert ks_distance(x, candidate.cdf) == pytest.approx(expected, abs=1e-7)
         assert candidate.std == pytest.approx(frozen.std(), rel=1e-9)
+
+
+def test_erf_meets_its_published_error_bound() -> None:
+    # reference: Python's math.erf; bound from Abramowitz & Stegun (1964), formula 7.1.26
+    x = np.linspace(-7.0, 7.0, 200_001)
+    exact = np.array([math.erf(v) for v in x])
+    error = np.abs(erf(x) - exact)
+    assert error.max() <= 1.5e-7
+    assert error.max() > 1e-9  # it is the approximation, not math.erf itself
+    np.testing.assert_array_equal(erf(-x), -erf(x))  # odd
 
 
 def test_ks_limit_is_the_alpha_0001_critical_value_with_a_floor() -> None:
@@ -130,6 +146,61 @@ def test_fresh_conv_and_embedding_are_flagged(tmp_path: Path) -> None:
     findings = _run(_save(tmp_path, {"conv1.weight": conv, "embed_tokens.weight": table}))
     by_layer = {f.layer: f.evidence["initializer"] for f in findings}
     assert by_layer == {"conv1": "pytorch-default", "embed_tokens": "normal-1"}
+
+
+def test_truncated_normal_kurtosis_matches_scipy() -> None:
+    scipy_stats = pytest.importorskip("scipy.stats")
+    # reference: scipy.stats.truncnorm moments (excess kurtosis + 3)
+    expected = float(scipy_stats.truncnorm(-2, 2).stats(moments="k")) + 3.0
+    assert pytest.approx(expected, rel=1e-10) == TRUNCATED_KURTOSIS
+    assert Candidate("u", "uniform", 1.0).kurtosis == 9 / 5  # handbook: uniform kurtosis 1.8
+    assert Candidate("n", "normal", 1.0).kurtosis == 3.0
+
+
+_FAMILIES: dict[str, tuple[Callable[[np.random.Generator, tuple[int, int]], np.ndarray], float]] = {
+    "normal": (lambda r, s: r.normal(0.0, 1.0, s), 3.0),
+    "uniform": (lambda r, s: r.uniform(-1.0, 1.0, s), 9 / 5),
+    "truncated": (lambda r, s: _truncated(r, 1.0, s), TRUNCATED_KURTOSIS),
+}
+
+
+@pytest.mark.parametrize("family", sorted(_FAMILIES))
+@pytest.mark.parametrize(("units", "fan_in", "draws"), [(64, 8, 400), (64, 512, 200), (1024, 1024, 8)])
+def test_row_spread_of_fresh_draws_stays_near_one_and_under_the_limit(
+    family: str, units: int, fan_in: int, draws: int
+) -> None:
+    # reference: i.i.d. draws by numpy; the sum of n i.i.d. squares has variance n(μ₄ − μ₂²)
+    draw, kurtosis = _FAMILIES[family]
+    rng = np.random.default_rng(units + fan_in)
+    values = []
+    for _ in range(draws):
+        weights = draw(rng, (units, fan_in))
+        values.append(row_spread(np.einsum("ij,ij->i", weights, weights), fan_in, kurtosis))
+    assert max(values) < spread_limit(units, 10.0)
+    # calibrated, not merely loose: the average is 1 up to the small-n skew of S and noise
+    assert 0.85 < float(np.mean(values)) < 1.2
+
+
+def test_row_spread_sees_training_and_ignores_a_padding_row(tmp_path: Path) -> None:
+    rng = np.random.default_rng(11)
+    fresh = rng.normal(0.0, 1.0, (512, 2048))
+    squares = np.einsum("ij,ij->i", fresh, fresh)
+    assert row_spread(squares, 2048, 3.0) < spread_limit(512, 10.0)
+    # row scales spread lognormally by 5 %, as the mildest training does: R ≈ 1 + 0.01/(2/n)
+    scaled = squares * rng.lognormal(0.0, 0.05, 512) ** 2
+    assert row_spread(scaled, 2048, 3.0) > 3 * spread_limit(512, 10.0)
+    table = rng.normal(0.0, 1.0, (300, 64))  # PyTorch nn.Embedding default N(0, 1) ...
+    table[0] = 0.0  # ... with its padding_idx row zeroed, as nn.Embedding does
+    assert table.shape[0] >= SPREAD_ROWS
+    findings = _run(_save(tmp_path, {"embed_tokens.weight": table}))
+    assert [f.evidence["initializer"] for f in findings] == ["normal-1"]
+    assert findings[0].evidence["row_spread"] < findings[0].evidence["row_spread_limit"]
+
+
+def test_units_of_different_norms_are_not_flagged(tmp_path: Path) -> None:
+    rng = np.random.default_rng(12)
+    weight = DRAWS["he-normal"](rng) * rng.lognormal(0.0, 0.3, (FAN_OUT, 1))
+    assert _run(_save(tmp_path, {"fc1.weight": weight})) == []
 
 
 def test_planted_spike_beyond_the_edge_is_not_flagged(tmp_path: Path) -> None:

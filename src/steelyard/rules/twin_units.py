@@ -40,17 +40,20 @@ evidence gives the parameter saving (the dropped row, fan_in + 1 with a bias, it
 parameters and its consumer columns) and the squared-norm saving
 ‖r_k‖² + ‖u_k‖² − (‖u_i + s·u_k‖² − ‖u_i‖²), computed on the folded rows.
 
-**Search.** Rows are normalised and compared with blocked Gram products (a block of rows against
-every later row, BLAS), keeping entries past the threshold. Layers wider than ``exact-limit``
-(4096) use a sub-quadratic candidate search instead: random-hyperplane sign hashing (SimHash)
-over several tables sized so that a pair exactly at the threshold collides in some table with
-probability >= 0.999, then an exact cosine check of every candidate. Seeded, so deterministic.
-Each row keeps at most 64 partners, which bounds the work on a layer of copies (a constant
-initialisation) while keeping it one connected group; groups of more than 512 members are
-checked for cancellation against their kept unit only.
-Measured against the exact search with planted twins on layers 1024–4096 wide
-(``bench/twin_recall.py``): pooled recall 0.9998 over 10,752 pairs, worst single layer 0.992;
-the rule documents recall >= 0.99.
+**Search.** Rows are normalised in float32 (their norms come from the shared one-pass
+statistics, in float64) and every candidate pair is confirmed in float64. Layers of up to
+``exact-limit`` (512) units compare blocks of rows with every later row by Gram products (BLAS),
+n²·d/2 multiply-adds. Wider layers use a sub-quadratic candidate search: random-hyperplane sign
+hashing (SimHash) over several tables sized so that a pair exactly at the threshold collides in
+some table with probability >= 0.9999 (16 bits × 11 tables at cosine 0.995: 176 projections
+per row, one BLAS product, n·d·176), then an exact cosine check of every candidate. Seeded, so
+deterministic. Each row keeps at most 64 partners, which bounds the work on a layer of copies
+(a constant initialisation) while keeping it one connected group; groups of more than 512
+members are checked for cancellation against their kept unit only. A layer whose twins could
+not be reported (no known consumer and ``report-unlinked`` false) is not searched at all.
+Measured against the exact search with planted twins on layers 512–4096 wide
+(``bench/twin_recall.py``): recall 1.0 over 11,520 pairs (no pair missed; a quarter of them lie
+within 0.00125 of the threshold); the rule documents recall >= 0.99 per layer.
 
 **Scope.** Embeddings are skipped unless ``include-embeddings`` is true. Recurrent gate layers are
 skipped (a hidden unit is the product of several gates and its own recurrence, so a twin row in
@@ -83,8 +86,8 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Activation, Layer, LayerKind, NormKind
-from steelyard.rules._similarity import normalise, similar_pairs
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules._similarity import scaled, similar_pairs
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
 #: Rows below this fraction of the layer's largest row norm have no reliable direction.
@@ -122,28 +125,63 @@ def _eligible(layer: Layer, settings: RuleSettings) -> bool:
     return layer.norm is None or layer.norm.kind is NormKind.BATCH
 
 
-def _rows(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
+@dataclass(frozen=True)
+class _Rows:
+    """The deployed rows r_j = [w'_j; b'_j] of one layer, without copying its matrix."""
+
+    matrix: np.ndarray
+    """W' (float32, the shared statistics' own array: never written to)."""
+    bias: np.ndarray
+    norms: np.ndarray
+    """‖r_j‖ in float64 (non-finite when the row holds a NaN or an infinity)."""
+
+    def take(self, units: np.ndarray | list[int]) -> np.ndarray:
+        """r_j of the given units, float64 (the few rows a merge touches)."""
+        index = np.asarray(units, dtype=np.int64)
+        out = np.empty((index.size, self.matrix.shape[1] + 1), dtype=np.float64)
+        out[:, :-1] = self.matrix[index]
+        out[:, -1] = self.bias[index]
+        return out
+
+    def unit(self) -> np.ndarray:
+        """r_j/‖r_j‖ as one new float32 array (the only layer-sized copy the rule makes)."""
+        return scaled(self.matrix, self.norms, self.bias)
+
+
+def _rows(ctx: AuditContext, layer: Layer) -> _Rows | None:
     folded = ctx.stats.folded(layer)
     if layer.norm is not None and not folded.folded:
         return None  # a batch norm we could not fold: the deployed rows are unknown
-    # float32 keeps wide layers affordable; the few rows a merge touches are cast to float64.
-    bias = np.asarray(folded.bias, dtype=np.float32).reshape(-1, 1)
-    return np.hstack([np.asarray(folded.matrix, dtype=np.float32), bias])
+    bias = np.asarray(folded.bias, dtype=np.float32).reshape(-1)
+    # The weight part of each norm comes from the shared one-pass statistics (float64 sums).
+    weights = ctx.stats.folded_row_norms(layer)
+    norms = np.sqrt(weights**2 + bias.astype(np.float64) ** 2)
+    return _Rows(folded.matrix, bias, norms)
+
+
+def _consumers_known(ctx: AuditContext, layer: Layer) -> bool:
+    """Whether every consumer's block for this layer's units can be built (nothing is read)."""
+    consumers = ctx.stats.consumers(layer)
+    if not consumers:
+        return False
+    for consumer in consumers:
+        producers = ctx.stats.producers(consumer)
+        if len(producers) != len(consumer.inputs_from):
+            return False  # an unknown producer: the column offsets are not reliable
+        channels = consumer.in_per_group * consumer.groups
+        if len(producers) > 1 and sum(p.units for p in producers) != channels:
+            return False  # residual sum or gated product: the columns are shared
+        if ctx.stats.consumer_block_width(layer, consumer) is None:
+            return False
+    return True
 
 
 def _consumer_blocks(ctx: AuditContext, layer: Layer) -> list[np.ndarray] | None:
     """Every consumer's block for this layer's units; None when any mapping is unknown."""
-    consumers = ctx.stats.consumers(layer)
-    if not consumers:
+    if not _consumers_known(ctx, layer):
         return None
     blocks: list[np.ndarray] = []
-    for consumer in consumers:
-        producers = ctx.stats.producers(consumer)
-        if len(producers) != len(consumer.inputs_from):
-            return None  # an unknown producer: the column offsets are not reliable
-        channels = consumer.in_per_group * consumer.groups
-        if len(producers) > 1 and sum(p.units for p in producers) != channels:
-            return None  # residual sum or gated product: the columns are shared
+    for consumer in ctx.stats.consumers(layer):
         block = ctx.stats.consumer_block(layer, consumer)
         if block is None or block.shape[0] != layer.units:
             return None
@@ -157,15 +195,15 @@ def _columns(blocks: list[np.ndarray], units: np.ndarray) -> np.ndarray:
 
 
 def _twin_pairs(
-    rows: np.ndarray, layer: Layer, settings: RuleSettings
+    rows: _Rows, layer: Layer, settings: RuleSettings
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     """Twin pairs (i, k, cos) by the activation's rules; searches within conv groups."""
     threshold = float(settings.get(layer, "cosine"))
     tolerance = float(settings.get(layer, "norm-tolerance"))
     activation = layer.activation
     negative = activation in (Activation.IDENTITY, Activation.TANH)
-    unit, norms = normalise(rows)
-    finite = np.isfinite(norms) & np.all(np.isfinite(rows), axis=1)
+    unit, norms = rows.unit(), rows.norms
+    finite = np.isfinite(norms)  # a NaN or infinity anywhere in a row makes its norm so
     largest = float(norms[finite].max(initial=0.0))
     valid = finite & (norms > _TINY * largest) if largest > 0 else np.zeros_like(finite)
     per_group = layer.units // max(1, layer.groups)
@@ -219,30 +257,32 @@ def _components(first: np.ndarray, second: np.ndarray, units: int) -> list[np.nd
     return [np.array(sorted(g)) for g in groups.values() if len(g) > 1]
 
 
-def _relative_scales(rows: np.ndarray, members: np.ndarray, homogeneous: bool) -> np.ndarray:
+def _relative_scales(rows: _Rows, members: np.ndarray, homogeneous: bool) -> np.ndarray:
     """t_j with r_j ≈ t_j·r_anchor (anchor = first member)."""
-    anchor = rows[members[0]].astype(np.float64)
-    dots = np.asarray(rows[members].astype(np.float64) @ anchor, dtype=np.float64)
+    taken = rows.take(members)
+    anchor = taken[0]
+    dots = np.asarray(taken @ anchor, dtype=np.float64)
     if homogeneous:
         return np.asarray(dots / float(anchor @ anchor), dtype=np.float64)
     return np.asarray(np.sign(dots), dtype=np.float64)
 
 
 def _merge(
-    rows: np.ndarray, members: np.ndarray, contributions: np.ndarray, t: np.ndarray
+    rows: _Rows, members: np.ndarray, contributions: np.ndarray, t: np.ndarray
 ) -> _Group:
     strength = np.linalg.norm(contributions, axis=1) if contributions.size else np.abs(t)
     pick = int(np.argmax(strength))
     keep = int(members[pick])
-    r_keep = rows[keep].astype(np.float64)
+    taken = rows.take(members)
+    lengths = np.linalg.norm(taken, axis=1)
+    cos = (taken @ taken[pick]) / (lengths * lengths[pick])
     scales: dict[int, float] = {}
     cosines: dict[int, float] = {}
     for index, unit in enumerate(members.tolist()):
         if unit == keep:
             continue
         scales[unit] = float(t[index] / t[pick])
-        r = rows[unit].astype(np.float64)
-        cosines[unit] = float(r @ r_keep / (np.linalg.norm(r) * np.linalg.norm(r_keep)))
+        cosines[unit] = float(cos[index])
     return _Group(tuple(int(u) for u in members), keep, scales, cosines)
 
 
@@ -282,7 +322,7 @@ def _cancelling(contributions: np.ndarray, keep: int) -> tuple[float, tuple[int,
 
 
 def _savings(
-    layer: Layer, rows: np.ndarray, members: np.ndarray, columns: np.ndarray | None, group: _Group
+    layer: Layer, rows: _Rows, members: np.ndarray, columns: np.ndarray | None, group: _Group
 ) -> tuple[int, float]:
     """(parameters, squared norm) saved by the merge; ``columns`` row p is unit members[p]."""
     norm_params = 0
@@ -292,7 +332,7 @@ def _savings(
     width = 0 if columns is None else columns.shape[1]
     per_unit = layer.fan_in + (1 if layer.bias else 0) + norm_params + width
     dropped = list(group.scales)
-    squared = sum(float(np.sum(rows[k].astype(np.float64) ** 2)) for k in dropped)
+    squared = float(np.sum(rows.take(dropped) ** 2)) if dropped else 0.0
     if columns is not None:
         where = {int(unit): p for p, unit in enumerate(members.tolist())}
         u_keep = columns[where[group.keep]]
@@ -307,15 +347,16 @@ def _limited(mapping: dict[int, float], size: int) -> dict[str, float]:
 
 
 def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+    linked = _consumers_known(ctx, layer)
+    if not linked and not settings.get(layer, "report-unlinked"):
+        return  # nothing could be reported, so the search is not run at all
     rows = _rows(ctx, layer)
     if rows is None:
         return
     first, second, _, method = _twin_pairs(rows, layer, settings)
     if first.size == 0:
         return
-    blocks = _consumer_blocks(ctx, layer)
-    if blocks is None and not settings.get(layer, "report-unlinked"):
-        return
+    blocks = _consumer_blocks(ctx, layer) if linked else None
     ratio_limit = float(settings.get(layer, "lopsided-ratio"))
     homogeneous = layer.activation.positive_homogeneous
     for members in _components(first, second, layer.units):
@@ -431,12 +472,6 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
         yield from _layer(ctx, settings, layer)
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """Yield one finding per lopsided or cancelling twin group."""
-    for layer in ctx.checkpoint.layers:
-        yield from check_layer(ctx, settings, layer)
-
-
 RULE = RuleSpec(
     name="twin-units",
     severity=Severity.WARNING,
@@ -444,13 +479,14 @@ RULE = RuleSpec(
         "cosine": 0.995,
         "norm-tolerance": 0.05,
         "lopsided-ratio": 4.0,
-        "exact-limit": 4096,
+        "exact-limit": 512,
         "seed": 0,
         "include-embeddings": False,
         "report-unlinked": False,
     },
     summary="two units computing the same function with lopsided or cancelling consumer weights "
     "are one unit paid for twice, a sign the layer was trained without weight decay",
-    check=check,
+    check=layered(check_layer),
     doc=__doc__ or "",
+    layer_check=check_layer,
 )

@@ -20,7 +20,7 @@ from steelyard import api, streaming
 from steelyard.audit import run_rules
 from steelyard.errors import LoadError
 from steelyard.policy import Policy
-from steelyard.stats import LayerStats
+from steelyard.stats import LayerStats, sums_of_squares
 from tests.conftest import mlp_tensors, write_safetensors
 
 
@@ -105,9 +105,12 @@ def test_one_pass_statistics_match_numpy(
     for layer in checkpoint.layers:
         weights = reference[layer.weight]
         with np.errstate(invalid="ignore", over="ignore"):
-            # reference: numpy.linalg.norm over each unit's row
+            # reference: numpy.linalg.norm over each unit's row, in float64 (the pass sums in
+            # float32, hence the tolerance)
             np.testing.assert_allclose(
-                stats.row_norms(layer), np.linalg.norm(weights.astype(np.float64), axis=1)
+                stats.row_norms(layer),
+                np.linalg.norm(weights.astype(np.float64), axis=1),
+                rtol=1e-6,
             )
         np.testing.assert_array_equal(stats.matrix(layer), weights)
         for consumer in stats.consumers(layer):
@@ -119,7 +122,7 @@ def test_one_pass_statistics_match_numpy(
             with np.errstate(invalid="ignore", over="ignore"):
                 # reference: numpy.linalg.norm of the consumer's columns for each unit
                 expected = np.linalg.norm(weights_of(reference, consumer.weight), axis=0)
-            np.testing.assert_allclose(norms, expected, rtol=1e-12)
+            np.testing.assert_allclose(norms, expected, rtol=1e-6)
             linked += 1
     assert linked == 2
     for name, tensor in checkpoint.tensors.items():
@@ -154,6 +157,24 @@ def test_weight_samples_are_the_same_values_however_the_layer_is_read(
     np.testing.assert_array_equal(stats.sample(layer, 500, 7), expected)
     everything = stats.sample(layer, weights.size + 1, 7)  # asks for more than there are
     np.testing.assert_array_equal(everything, np.sort(weights.reshape(-1).astype(np.float64)))
+
+
+def test_sums_of_squares_are_exact_for_huge_tiny_and_nonfinite_rows() -> None:
+    rng = np.random.default_rng(3)
+    block = rng.standard_normal((6, 4096)).astype(np.float32)
+    block[1] *= np.float32(1e25)  # squares overflow float32
+    block[2] *= np.float32(1e-25)  # squares underflow float32
+    block[3] = 0.0
+    block[4, 7] = np.nan
+    block[5, 9] = np.inf
+    # reference: numpy.linalg.norm in float64
+    expected = np.linalg.norm(block.astype(np.float64), axis=1) ** 2
+    got = sums_of_squares(block, axis=1)
+    np.testing.assert_allclose(got[:4], expected[:4], rtol=1e-6)
+    assert got[1] > 1e50 and 0 < got[2] < 1e-40 and got[3] == 0.0
+    assert np.isnan(got[4]) and got[5] == np.inf
+    columns = sums_of_squares(block[:4].T.copy(), axis=0)
+    np.testing.assert_allclose(columns, expected[:4], rtol=1e-6)
 
 
 def weights_of(reference: dict[str, np.ndarray], name: str) -> np.ndarray:

@@ -8,7 +8,13 @@ a tensor is the expensive part of an audit, so it happens here, once.
 norms, the column norms a producer needs from it) reads its weights in one pass: row blocks
 of about :data:`~steelyard.streaming.CHUNK_BYTES` are converted to float32 and, on the way,
 give the row sums of squares, the per-column sums of squares a producer's ``column_norms``
-are made of, and the NaN/±Inf counts of the weight tensor. Matrices up to
+are made of, and the NaN/±Inf counts of the weight tensor. Sums of squares accumulate in
+float32, which BLAS-style SIMD does several times faster than float64 (relative error about
+1e-6 on rows 16k wide, far inside every rule's tolerance); rows or columns whose float32 sum
+could have overflowed or underflowed (outside 1e-30 … 1e30, or not finite) are summed again
+in float64, so huge and tiny weights keep exact norms. A finite float64 sum of squares
+proves its row finite, so the NaN/±Inf counts only look at rows whose sum is not (tensors
+stored as float64, whose values may not fit float32, are counted as stored). Matrices up to
 :data:`STREAM_BYTES` (float32) are assembled and kept in a bounded LRU cache for the rules
 that need every weight; larger ones are only streamed, and are read whole again only if a
 rule asks for the full matrix.
@@ -205,21 +211,28 @@ class LayerStats:
             full = whole
             iterator = iter([(a, b, whole[a:b]) for a, b in row_blocks(units, fan_in)])
         else:
-            tensor, first = source
-            covers = first == 0 and units == tensor.shape[0]
-            tensor = tensor if covers else None  # counts only for whole tensors
+            stored, first = source
+            covers = first == 0 and units == stored.shape[0]
+            tensor = stored if covers else None  # counts only for whole tensors
             full = np.empty((units, fan_in), dtype=np.float32) if keep else None
             scratch = None if keep else np.empty(0, dtype=np.float32)
+            stored_wide = _ITEMSIZE[stored.dtype] > 4
             iterator = self._stream_rows(
-                source, units, fan_in, full, scratch, counts if covers else None
+                source, units, fan_in, full, scratch, counts if covers and stored_wide else None
             )
+        # float32 blocks of float32-or-narrower tensors are counted from their row sums.
+        by_rows = tensor is not None and _ITEMSIZE[tensor.dtype] <= 4
         for a, b, block in iterator:
-            rows[a:b] = np.einsum("ij,ij->i", block, block, dtype=np.float64)
+            squares = sums_of_squares(block, axis=1)
+            rows[a:b] = squares
+            if by_rows:
+                bad = ~np.isfinite(squares)
+                if bad.any():
+                    _count_into(block[bad], counts)
             if columns is not None:
                 for group in range(a // per_group, min(groups, (b - 1) // per_group + 1)):
                     lo, hi = max(a, group * per_group), min(b, (group + 1) * per_group)
-                    part = block[lo - a : hi - a]
-                    columns[group] += np.einsum("ij,ij->j", part, part, dtype=np.float64)
+                    columns[group] += sums_of_squares(block[lo - a : hi - a], axis=0)
         with self._guard:
             self._small[(layer.name, "summary")] = _Summary(rows, columns)
             if tensor is not None:
@@ -237,7 +250,6 @@ class LayerStats:
     ) -> Iterator[tuple[int, int, np.ndarray]]:
         tensor, first = source
         assert tensor.read_span is not None
-        wide = _ITEMSIZE[tensor.dtype] >= 4
         for a, b in row_blocks(units, fan_in):
             stored = tensor.read_span((first + a) * fan_in, (first + b) * fan_in)
             if full is not None:
@@ -248,8 +260,8 @@ class LayerStats:
                     scratch = np.empty((b - a) * fan_in, dtype=np.float32)
                 block = scratch[: (b - a) * fan_in].reshape(b - a, fan_in)
             convert_into(stored, block)
-            if counts is not None:
-                _count_into(stored if wide else block, counts)
+            if counts is not None:  # float64 storage: counted as stored
+                _count_into(stored, counts)
             yield a, b, block
 
     def _summary(self, layer: Layer) -> _Summary:
@@ -588,9 +600,26 @@ def _count_into(values: np.ndarray, counts: list[int]) -> None:
     counts[2] += int(np.isneginf(values).sum())
 
 
+def sums_of_squares(block: np.ndarray, axis: int) -> np.ndarray:
+    """Σ x² of a float32 block along ``axis`` (1: per row, 0: per column), as float64.
+
+    Accumulated in float32; entries whose float32 sum lies outside [1e-30, 1e30] (or is not
+    finite) are summed again in float64, where float32 may have overflowed, underflowed or
+    met a NaN/Inf (see the module docstring).
+    """
+    spec = "ij,ij->i" if axis == 1 else "ij,ij->j"
+    rough = np.einsum(spec, block, block)
+    out = rough.astype(np.float64)
+    risky = np.flatnonzero(~((rough >= 1e-30) & (rough <= 1e30)))
+    if risky.size:
+        part = block[risky] if axis == 1 else block[:, risky]
+        out[risky] = np.einsum(spec, part, part, dtype=np.float64)
+    return out
+
+
 def _row_norms(matrix: np.ndarray) -> np.ndarray:
-    """Row L2 norms with float64 accumulation (wide float32 rows lose digits otherwise)."""
-    return np.sqrt(np.einsum("ij,ij->i", matrix, matrix, dtype=np.float64))
+    """Row L2 norms (see :func:`sums_of_squares`)."""
+    return np.sqrt(sums_of_squares(np.asarray(matrix, dtype=np.float32), axis=1))
 
 
 __all__ = ["CHUNK_BYTES", "Folded", "LayerStats"]

@@ -108,8 +108,9 @@ def test_small_noise_gives_the_numpy_relative_change(
         np.linalg.norm(a, axis=1),
         np.linalg.norm(b, axis=1),
     )  # reference: numpy.linalg.norm
-    assert fc1["fan_in_norm_old"]["median"] == pytest.approx(float(np.median(rows_old)), rel=1e-9)
-    assert fc1["fan_in_norm_new"]["max"] == pytest.approx(float(rows_new.max()), rel=1e-9)
+    # row norms accumulate in float32 (stats.sums_of_squares): about 1e-7 relative here
+    assert fc1["fan_in_norm_old"]["median"] == pytest.approx(float(np.median(rows_old)), rel=1e-6)
+    assert fc1["fan_in_norm_new"]["max"] == pytest.approx(float(rows_new.max()), rel=1e-6)
     per_unit = np.linalg.norm(b - a, axis=1) / rows_old
     assert fc1["top_units"][0]["unit"] == int(np.argmax(per_unit))
     assert fc1["top_units"][0]["relative_change"] == pytest.approx(float(per_unit.max()), rel=1e-9)

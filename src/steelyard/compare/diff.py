@@ -576,8 +576,9 @@ def _find_rows(
     """Row permutation of weights together with bias and normalisation vectors."""
     old_norms = np.sort(old_side.stats.row_norms(old))
     new_norms = np.sort(new_side.stats.row_norms(new))
-    # cheap refusal: permuted rows keep their norms (up to summation order of the columns)
-    if not np.allclose(old_norms, new_norms, rtol=1e-6, atol=0.0, equal_nan=True):
+    # cheap refusal: permuted rows keep their norms (up to the float32 summation order of
+    # the columns, about 1e-6 relative; the exact check follows)
+    if not np.allclose(old_norms, new_norms, rtol=1e-4, atol=0.0, equal_nan=True):
         return None
     old_parts = [aligned_old(old_side, old, columns, None)]
     new_parts = [new_side.matrix(new)]

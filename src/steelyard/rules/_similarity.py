@@ -1,8 +1,13 @@
 """Finding pairs of nearly parallel rows: blocked exact search and a hashed candidate search.
 
 Both return the same thing, every pair ``i < k`` whose cosine is ``>= threshold`` (and, when
-``negative`` is set, also ``<= -threshold``), with the cosine recomputed in float64, so the
-two searches agree on every pair they both see.
+``negative`` is set, also ``<= -threshold``), with the cosine recomputed in float64 from the
+rows themselves, so the two searches agree on every pair they both see.
+
+The rows are a :class:`Rows` view: a float32 matrix, an optional extra last column (a bias)
+and float64 norms. Neither search copies the whole layer: the hashed one projects the stored
+rows directly (a sign hash is unchanged by scaling a row, so nothing needs normalising), and
+only the rows of candidate pairs are gathered.
 
 * :func:`exact_pairs` multiplies blocks of normalised rows with every later row (BLAS) and
   keeps the entries past the threshold (``np.argwhere``). Cost n²·d/2, memory one block.
@@ -20,6 +25,7 @@ The measured recall against the exact search is printed by ``bench/twin_recall.p
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -34,45 +40,108 @@ _SMALL_BUCKET = 32
 #: Most partners kept per row. A layer of many identical rows (a constant initialisation,
 #: say) would otherwise yield n²/2 pairs; 64 partners per row keep such a group connected.
 PARTNERS = 64
-#: Slack of the float32 pre-filter before the float64 check (float32 dot products of unit
+#: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
 _SLACK = 1e-4
+
+_EMPTY = np.zeros(0, np.int64)
+
+
+@dataclass(frozen=True)
+class Rows:
+    """Rows r_j = [matrix_j, extra_j] and their float64 norms, viewed without copying."""
+
+    matrix: np.ndarray
+    """``[n, d]`` float32 (never written to)."""
+    norms: np.ndarray
+    """‖r_j‖, float64 (non-finite for a row holding a NaN or an infinity)."""
+    extra: np.ndarray | None = None
+    """An optional last column ``[n]`` (a bias), part of every row."""
+
+    @classmethod
+    def of(cls, rows: np.ndarray) -> Rows:
+        """A view of plain rows, with their norms computed in float64."""
+        matrix = np.asarray(rows, dtype=np.float32)
+        return cls(matrix, np.sqrt(np.einsum("ij,ij->i", matrix, matrix, dtype=np.float64)))
+
+    @property
+    def count(self) -> int:
+        return int(self.matrix.shape[0])
+
+    def take(self, index: np.ndarray | list[int], dtype: type = np.float64) -> np.ndarray:
+        """The rows at ``index`` (extra column included), as ``dtype``."""
+        index = np.asarray(index, dtype=np.int64)
+        width = self.matrix.shape[1] + (0 if self.extra is None else 1)
+        out = np.empty((index.size, width), dtype=dtype)
+        out[:, : self.matrix.shape[1]] = self.matrix[index]
+        if self.extra is not None:
+            out[:, -1] = self.extra[index]
+        return out
+
+    def unit(self, index: np.ndarray) -> np.ndarray:
+        """r_j/‖r_j‖ at ``index`` as float32 (rows with a zero or non-finite norm become 0)."""
+        return scaled(self.take(index, np.float32), self.norms[index])
+
+    def project(self, planes: np.ndarray) -> np.ndarray:
+        """Every row times ``planes`` (``[d (+1), k]``), one BLAS product on the stored rows."""
+        d = self.matrix.shape[1]
+        out = np.asarray(self.matrix @ planes[:d])
+        if self.extra is not None:
+            out += self.extra[:, None].astype(np.float32) * planes[d]
+        return out
 
 
 def normalise(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Unit-norm float32 copies of ``rows`` and their float64 norms (zero rows stay zero)."""
-    norms = np.sqrt(np.einsum("ij,ij->i", rows, rows, dtype=np.float64))
-    return scaled(rows, norms), norms
+    view = Rows.of(rows)
+    return scaled(view.matrix, view.norms), view.norms
 
 
-def scaled(rows: np.ndarray, norms: np.ndarray, extra: np.ndarray | None = None) -> np.ndarray:
-    """``[rows | extra] / norms`` as one new float32 array (rows with a zero or non-finite norm
-    become zero), written in place so no intermediate copy of a wide layer is made."""
+def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
+    """``rows / norms`` as a new float32 array; rows with a zero or non-finite norm become 0."""
     usable = np.isfinite(norms) & (norms > 0)
     scale = np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
-    width = rows.shape[1] + (0 if extra is None else 1)
-    out = np.empty((rows.shape[0], width), dtype=np.float32)
+    out = np.empty(rows.shape, dtype=np.float32)
     with np.errstate(invalid="ignore", over="ignore"):
-        np.multiply(rows, scale[:, None], out=out[:, : rows.shape[1]])
-        if extra is not None:
-            out[:, -1] = np.asarray(extra, dtype=np.float32) * scale
+        np.multiply(rows, scale[:, None], out=out)
     out[~usable] = 0.0
     return out
 
 
 def _confirm(
-    unit: np.ndarray, first: np.ndarray, second: np.ndarray, threshold: float, negative: bool
+    rows: Rows, first: np.ndarray, second: np.ndarray, threshold: float, negative: bool
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Float64 cosines of candidate pairs, keeping those past the threshold."""
+    """Cosines of candidate pairs, keeping those past the threshold: a float32 pass over the
+    gathered rows, then float64 for the pairs it cannot rule out."""
     if first.size == 0:
-        empty = np.zeros(0, np.int64)
-        return empty, empty, np.zeros(0)
-    cos = np.empty(first.size)
-    step = max(1, BLOCK_BYTES // max(1, unit.shape[1] * 16))
+        return _EMPTY, _EMPTY, np.zeros(0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return _confirm_pairs(rows, first, second, threshold, negative)
+
+
+def _confirm_pairs(
+    rows: Rows, first: np.ndarray, second: np.ndarray, threshold: float, negative: bool
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    width = rows.matrix.shape[1] + 1
+    step = max(1, BLOCK_BYTES // (8 * width))
+    rough = np.empty(first.size)
     for start in range(0, first.size, step):
-        a = unit[first[start : start + step]].astype(np.float64)
-        b = unit[second[start : start + step]].astype(np.float64)
-        cos[start : start + step] = np.einsum("ij,ij->i", a, b)
+        a, b = first[start : start + step], second[start : start + step]
+        dots = np.einsum("ij,ij->i", rows.matrix[a], rows.matrix[b], dtype=np.float32)
+        if rows.extra is not None:
+            dots = dots + rows.extra[a] * rows.extra[b]
+        rough[start : start + step] = dots / (rows.norms[a] * rows.norms[b])
+    loose = threshold - _SLACK
+    maybe = rough >= loose
+    if negative:
+        maybe |= rough <= -loose
+    first, second = first[maybe], second[maybe]
+    cos = np.empty(first.size)
+    step = max(1, BLOCK_BYTES // (16 * width))
+    for start in range(0, first.size, step):
+        a, b = first[start : start + step], second[start : start + step]
+        dots = np.einsum("ij,ij->i", rows.take(a), rows.take(b))
+        cos[start : start + step] = dots / (rows.norms[a] * rows.norms[b])
     keep = cos >= threshold
     if negative:
         keep |= cos <= -threshold
@@ -89,10 +158,11 @@ def _cap_partners(hits: np.ndarray) -> np.ndarray:
     return hits[rank < PARTNERS]
 
 
-def exact_pairs(
-    unit: np.ndarray, threshold: float, negative: bool = False
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every pair ``i < k`` of unit rows past the cosine threshold, by blocked Gram products."""
+def _gram_candidates(
+    unit: np.ndarray, threshold: float, negative: bool
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pairs ``i < k`` of normalised rows whose float32 cosine is within slack of the
+    threshold, by blocked Gram products."""
     n = unit.shape[0]
     block = max(1, BLOCK_BYTES // max(1, 4 * n))
     firsts: list[np.ndarray] = []
@@ -109,9 +179,19 @@ def exact_pairs(
         hits = _cap_partners(hits)
         firsts.append(hits[:, 0] + start)
         seconds.append(hits[:, 1] + start)
-    first = np.concatenate(firsts) if firsts else np.zeros(0, np.int64)
-    second = np.concatenate(seconds) if seconds else np.zeros(0, np.int64)
-    return _confirm(unit, first.astype(np.int64), second.astype(np.int64), threshold, negative)
+    if not firsts:
+        return _EMPTY, _EMPTY
+    return np.concatenate(firsts).astype(np.int64), np.concatenate(seconds).astype(np.int64)
+
+
+def exact_pairs(
+    rows: np.ndarray | Rows, threshold: float, negative: bool = False
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every pair ``i < k`` of rows past the cosine threshold, by blocked Gram products."""
+    view = rows if isinstance(rows, Rows) else Rows.of(rows)
+    every = np.arange(view.count)
+    first, second = _gram_candidates(view.unit(every), threshold, negative)
+    return _confirm(view, first, second, threshold, negative)
 
 
 def hash_plan(n: int, threshold: float) -> tuple[int, int]:
@@ -126,9 +206,10 @@ def hash_plan(n: int, threshold: float) -> tuple[int, int]:
 
 
 def _bucket_pairs(
-    order: np.ndarray, keys: np.ndarray, unit: np.ndarray, threshold: float, negative: bool
+    order: np.ndarray, keys: np.ndarray, rows: Rows, threshold: float, negative: bool
 ) -> tuple[list[np.ndarray], list[np.ndarray]]:
-    """Candidate pairs of rows sharing a key (``order`` sorts ``keys``)."""
+    """Candidate pairs of rows sharing a key (``order`` sorts ``keys``; negative keys are
+    rows left out, each alone in its bucket)."""
     sorted_keys = keys[order]
     starts = np.flatnonzero(np.r_[True, sorted_keys[1:] != sorted_keys[:-1]])
     sizes = np.diff(np.r_[starts, sorted_keys.size])
@@ -145,27 +226,35 @@ def _bucket_pairs(
         b = order[offset:][same]
         firsts.append(np.minimum(a, b))
         seconds.append(np.maximum(a, b))
-    # Large buckets (rows that hash alike in bulk): exact search inside the bucket.
+    # Large buckets (rows that hash alike in bulk): a Gram search inside the bucket.
     for index in np.flatnonzero(sizes > _SMALL_BUCKET):
         members = np.sort(order[starts[index] : starts[index] + sizes[index]])
-        a, b, _ = exact_pairs(unit[members], threshold, negative)
+        a, b = _gram_candidates(rows.unit(members), threshold, negative)
         firsts.append(members[a])
         seconds.append(members[b])
     return firsts, seconds
 
 
 def candidate_pairs(
-    unit: np.ndarray, threshold: float, negative: bool = False, seed: int = 0
+    rows: np.ndarray | Rows,
+    threshold: float,
+    negative: bool = False,
+    seed: int = 0,
+    usable: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Pairs past the cosine threshold found through sign-hash buckets (see module docstring)."""
-    n, width = unit.shape
+    """Pairs past the cosine threshold found through sign-hash buckets (see module docstring);
+    only rows where ``usable`` is true take part."""
+    view = rows if isinstance(rows, Rows) else Rows.of(rows)
+    n = view.count
+    width = view.matrix.shape[1] + (0 if view.extra is None else 1)
     bits, tables = hash_plan(n, threshold)
     rng = np.random.default_rng(seed)
     # Every table's hyperplanes in one matrix, so the projection is a single BLAS product.
     planes = rng.standard_normal((width, bits * tables), dtype=np.float32)
-    signs = (unit @ planes) > 0
+    signs = view.project(planes) > 0
     weights = 1 << np.arange(bits, dtype=np.int64)
     mask = (1 << bits) - 1
+    outside = None if usable is None else ~np.asarray(usable, dtype=bool)
     firsts: list[np.ndarray] = []
     seconds: list[np.ndarray] = []
     for table in range(tables):
@@ -173,21 +262,33 @@ def candidate_pairs(
         if negative:
             # x and −x get complementary keys; key the pair {key, ~key} by its smaller member.
             keys = np.minimum(keys, keys ^ mask)
+        if outside is not None:
+            keys[outside] = -1 - np.flatnonzero(outside)  # distinct keys: never in a pair
         order = np.argsort(keys, kind="stable")
-        found_a, found_b = _bucket_pairs(order, keys, unit, threshold, negative)
+        found_a, found_b = _bucket_pairs(order, keys, view, threshold, negative)
         firsts += found_a
         seconds += found_b
     if not firsts:
-        empty = np.zeros(0, np.int64)
-        return empty, empty, np.zeros(0)
+        return _EMPTY, _EMPTY, np.zeros(0)
     code = np.unique(np.concatenate(firsts).astype(np.int64) * n + np.concatenate(seconds))
-    return _confirm(unit, code // n, code % n, threshold, negative)
+    return _confirm(view, code // n, code % n, threshold, negative)
 
 
 def similar_pairs(
-    unit: np.ndarray, threshold: float, negative: bool, exact_limit: int, seed: int = 0
+    rows: Rows,
+    threshold: float,
+    negative: bool,
+    exact_limit: int,
+    seed: int = 0,
+    usable: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
-    """Exact search up to ``exact_limit`` rows, hashed candidates beyond; names the method."""
-    if unit.shape[0] <= exact_limit:
-        return (*exact_pairs(unit, threshold, negative), "exact")
-    return (*candidate_pairs(unit, threshold, negative, seed), "hashed")
+    """Pairs among the ``usable`` rows: exact search up to ``exact_limit`` of them, hashed
+    candidates beyond; names the method."""
+    members = np.arange(rows.count) if usable is None else np.flatnonzero(usable)
+    if members.size < 2:
+        return _EMPTY, _EMPTY, np.zeros(0), "exact"
+    if members.size <= exact_limit:
+        first, second = _gram_candidates(rows.unit(members), threshold, negative)
+        a, b, cos = _confirm(rows, members[first], members[second], threshold, negative)
+        return a, b, cos, "exact"
+    return (*candidate_pairs(rows, threshold, negative, seed, usable), "hashed")

@@ -86,7 +86,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Activation, Layer, LayerKind, NormKind
-from steelyard.rules._similarity import scaled, similar_pairs
+from steelyard.rules._similarity import Rows, similar_pairs
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
 from steelyard.rules.scoring import score
 
@@ -125,30 +125,7 @@ def _eligible(layer: Layer, settings: RuleSettings) -> bool:
     return layer.norm is None or layer.norm.kind is NormKind.BATCH
 
 
-@dataclass(frozen=True)
-class _Rows:
-    """The deployed rows r_j = [w'_j; b'_j] of one layer, without copying its matrix."""
-
-    matrix: np.ndarray
-    """W' (float32, the shared statistics' own array: never written to)."""
-    bias: np.ndarray
-    norms: np.ndarray
-    """‖r_j‖ in float64 (non-finite when the row holds a NaN or an infinity)."""
-
-    def take(self, units: np.ndarray | list[int]) -> np.ndarray:
-        """r_j of the given units, float64 (the few rows a merge touches)."""
-        index = np.asarray(units, dtype=np.int64)
-        out = np.empty((index.size, self.matrix.shape[1] + 1), dtype=np.float64)
-        out[:, :-1] = self.matrix[index]
-        out[:, -1] = self.bias[index]
-        return out
-
-    def unit(self) -> np.ndarray:
-        """r_j/‖r_j‖ as one new float32 array (the only layer-sized copy the rule makes)."""
-        return scaled(self.matrix, self.norms, self.bias)
-
-
-def _rows(ctx: AuditContext, layer: Layer) -> _Rows | None:
+def _rows(ctx: AuditContext, layer: Layer) -> Rows | None:
     folded = ctx.stats.folded(layer)
     if layer.norm is not None and not folded.folded:
         return None  # a batch norm we could not fold: the deployed rows are unknown
@@ -156,7 +133,7 @@ def _rows(ctx: AuditContext, layer: Layer) -> _Rows | None:
     # The weight part of each norm comes from the shared one-pass statistics (float64 sums).
     weights = ctx.stats.folded_row_norms(layer)
     norms = np.sqrt(weights**2 + bias.astype(np.float64) ** 2)
-    return _Rows(folded.matrix, bias, norms)
+    return Rows(folded.matrix, norms, bias)
 
 
 def _consumers_known(ctx: AuditContext, layer: Layer) -> bool:
@@ -195,14 +172,14 @@ def _columns(blocks: list[np.ndarray], units: np.ndarray) -> np.ndarray:
 
 
 def _twin_pairs(
-    rows: _Rows, layer: Layer, settings: RuleSettings
+    rows: Rows, layer: Layer, settings: RuleSettings
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     """Twin pairs (i, k, cos) by the activation's rules; searches within conv groups."""
     threshold = float(settings.get(layer, "cosine"))
     tolerance = float(settings.get(layer, "norm-tolerance"))
     activation = layer.activation
     negative = activation in (Activation.IDENTITY, Activation.TANH)
-    unit, norms = rows.unit(), rows.norms
+    norms = rows.norms
     finite = np.isfinite(norms)  # a NaN or infinity anywhere in a row makes its norm so
     largest = float(norms[finite].max(initial=0.0))
     valid = finite & (norms > _TINY * largest) if largest > 0 else np.zeros_like(finite)
@@ -210,20 +187,20 @@ def _twin_pairs(
     firsts, seconds, cosines = [], [], []
     method = "exact"
     for group in range(max(1, layer.groups)):
-        members = (
-            np.flatnonzero(valid[group * per_group : (group + 1) * per_group]) + group * per_group
-        )
-        if members.size < 2:
+        lo, hi = group * per_group, (group + 1) * per_group
+        if np.count_nonzero(valid[lo:hi]) < 2:
             continue
+        extra = None if rows.extra is None else rows.extra[lo:hi]
         a, b, cos, method = similar_pairs(
-            unit[members],
+            Rows(rows.matrix[lo:hi], norms[lo:hi], extra),  # a view of the group's rows
             threshold,
             negative,
             int(settings.get(layer, "exact-limit")),
             int(settings.get(layer, "seed")),
+            usable=valid[lo:hi],
         )
-        firsts.append(members[a])
-        seconds.append(members[b])
+        firsts.append(a + lo)
+        seconds.append(b + lo)
         cosines.append(cos)
     if not firsts:
         empty = np.zeros(0, np.int64)
@@ -257,7 +234,7 @@ def _components(first: np.ndarray, second: np.ndarray, units: int) -> list[np.nd
     return [np.array(sorted(g)) for g in groups.values() if len(g) > 1]
 
 
-def _relative_scales(rows: _Rows, members: np.ndarray, homogeneous: bool) -> np.ndarray:
+def _relative_scales(rows: Rows, members: np.ndarray, homogeneous: bool) -> np.ndarray:
     """t_j with r_j ≈ t_j·r_anchor (anchor = first member)."""
     taken = rows.take(members)
     anchor = taken[0]
@@ -268,7 +245,7 @@ def _relative_scales(rows: _Rows, members: np.ndarray, homogeneous: bool) -> np.
 
 
 def _merge(
-    rows: _Rows, members: np.ndarray, contributions: np.ndarray, t: np.ndarray
+    rows: Rows, members: np.ndarray, contributions: np.ndarray, t: np.ndarray
 ) -> _Group:
     strength = np.linalg.norm(contributions, axis=1) if contributions.size else np.abs(t)
     pick = int(np.argmax(strength))
@@ -322,7 +299,7 @@ def _cancelling(contributions: np.ndarray, keep: int) -> tuple[float, tuple[int,
 
 
 def _savings(
-    layer: Layer, rows: _Rows, members: np.ndarray, columns: np.ndarray | None, group: _Group
+    layer: Layer, rows: Rows, members: np.ndarray, columns: np.ndarray | None, group: _Group
 ) -> tuple[int, float]:
     """(parameters, squared norm) saved by the merge; ``columns`` row p is unit members[p]."""
     norm_params = 0

@@ -105,6 +105,10 @@ def test_cdfs_and_ks_statistic_match_scipy() -> None:
         np.testing.assert_allclose(candidate.cdf(x), frozen.cdf(x), atol=1e-7)
         expected = scipy_stats.kstest(x, frozen.cdf).statistic
         assert ks_distance(x, candidate.cdf) == pytest.approx(expected, abs=1e-7)
+        # the bound from every 100th order statistic: below D, and by at most the gap / n
+        probe = np.arange(0, x.size, 100)
+        bound = ks_distance(x, candidate.cdf, probe)
+        assert expected - 100 / x.size - 1e-7 <= bound <= expected + 1e-7
         assert candidate.std == pytest.approx(frozen.std(), rel=1e-9)
 
 

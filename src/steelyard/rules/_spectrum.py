@@ -23,7 +23,7 @@ import math
 import numpy as np
 
 #: Matrices with at most this many entries get a full SVD; larger ones the iteration below.
-SVD_ENTRIES = 2**18
+SVD_ENTRIES = 2**16
 #: Block width and iteration budget of the subspace iteration.
 BLOCK = 16
 ITERATIONS = 40

@@ -115,13 +115,16 @@ def run_rules(
     hooked = [spec for spec in specs if spec.layer_check is not None]
 
     admission = _Admission(jobs)
+    blas = default_jobs()
 
     def one_layer(layer: Layer) -> list[list[Finding]]:
         # A layer whose matrix is too large to cache runs alone, so two of the largest
         # (embedding, head) never hold their working sets at the same time.
-        alone = jobs > 1 and 4 * layer.units * layer.fan_in > STREAM_BYTES
-        # Running alone, the layer gets every core for BLAS back.
-        with admission.slots(jobs if alone else 1), _blas_threads(jobs if alone else None):
+        alone = 4 * layer.units * layer.fan_in > STREAM_BYTES
+        # Running alone, the layer gets every core for BLAS back. The BLAS thread count of a
+        # layer never depends on ``jobs``: float32 products are summed in an order that
+        # depends on it, and the report must not.
+        with admission.slots(jobs if alone else 1), _blas_threads(blas if alone else 1):
             try:
                 out: list[list[Finding]] = []
                 for spec in hooked:
@@ -138,7 +141,7 @@ def run_rules(
 
     pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
     try:
-        with _blas_threads(1 if pool is not None else None):
+        with _blas_threads(1):
             per_layer = _map(pool, one_layer, checkpoint.layers) if hooked else []
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())

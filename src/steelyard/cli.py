@@ -12,7 +12,7 @@ import os
 import sys
 from enum import Enum
 from pathlib import Path
-from typing import NoReturn
+from typing import TYPE_CHECKING, Annotated, NoReturn
 
 import typer
 from typing_extensions import assert_never
@@ -24,6 +24,9 @@ from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers
 from steelyard.report import Report
+
+if TYPE_CHECKING:
+    from steelyard.policy import Policy
 
 app = typer.Typer(
     add_completion=False,
@@ -59,6 +62,29 @@ class FailOn(str, Enum):
     warning = "warning"
     info = "info"
     never = "never"
+
+
+# Options that audit and compare share: declared once so that they mean the same in both.
+_OutputOption = Annotated[
+    Path | None, typer.Option("--output", "-o", help="Write the report here, atomically.")
+]
+_FailOnOption = Annotated[
+    FailOn | None,
+    typer.Option(
+        "--fail-on",
+        help="Lowest severity that fails the gate [default: the policy's, else error].",
+    ),
+]
+_PolicyOption = Annotated[
+    Path | None,
+    typer.Option(
+        "--policy",
+        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
+    ),
+]
+_QuietOption = Annotated[
+    bool, typer.Option("--quiet", "-q", help="No progress or diagnostics on stderr.")
+]
 
 
 def _color(stream: object = None) -> bool:
@@ -110,6 +136,23 @@ def _write(text: str, output: Path | None) -> None:
     except OSError as exc:
         temporary.unlink(missing_ok=True)
         raise SteelyardError(f"{output}: cannot write the report ({exc.strerror})") from None
+
+
+def _write_report(text: str, output: Path | None, quiet: bool) -> None:
+    """Write a report; when it went to a file, say so on stderr unless ``quiet``."""
+    _write(text, output)
+    if not quiet and output is not None:
+        typer.echo(f"steelyard: wrote {output}", err=True)
+
+
+def _policy(policy_file: Path | None, fail_on: FailOn | None) -> Policy:
+    """The policy in force, its gate overridden by ``--fail-on`` when given."""
+    from dataclasses import replace
+
+    from steelyard.policy_file import load_policy
+
+    policy = load_policy(policy_file)
+    return policy if fail_on is None else replace(policy, fail_on=fail_on.value)
 
 
 @app.command()
@@ -164,28 +207,16 @@ def audit(
     format: AuditFormat | None = typer.Option(
         None, "--format", "-f", help="Output format [default: table]."
     ),
-    output: Path | None = typer.Option(
-        None, "--output", "-o", help="Write the report here, atomically."
-    ),
-    fail_on: FailOn | None = typer.Option(
-        None,
-        "--fail-on",
-        help="Lowest severity that fails the gate [default: the policy's, else error].",
-    ),
-    policy_file: Path | None = typer.Option(
-        None,
-        "--policy",
-        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
-    ),
+    output: _OutputOption = None,
+    fail_on: _FailOnOption = None,
+    policy_file: _PolicyOption = None,
     baseline: Path | None = typer.Option(
         None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."
     ),
     write_baseline: Path | None = typer.Option(
         None, "--write-baseline", help="Record the current findings as a baseline file."
     ),
-    quiet: bool = typer.Option(
-        False, "--quiet", "-q", help="No progress or diagnostics on stderr."
-    ),
+    quiet: _QuietOption = False,
     jobs: int | None = typer.Option(
         None,
         "--jobs",
@@ -196,16 +227,11 @@ def audit(
     ),
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
-    from dataclasses import replace
-
     from steelyard.baseline import apply_baseline, baseline_text, read_baseline
-    from steelyard.policy_file import load_policy
     from steelyard.progress import Progress
 
     try:
-        policy = load_policy(policy_file)
-        if fail_on is not None:
-            policy = replace(policy, fail_on=fail_on.value)
+        policy = _policy(policy_file, fail_on)
         accepted = read_baseline(baseline) if baseline is not None else None
         targets = api.expand_paths(paths)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(targets)) as progress:
@@ -221,9 +247,7 @@ def audit(
             report = apply_baseline(report, accepted)
         if write_baseline is not None:
             _write(baseline_text(report.audits, __version__), write_baseline)
-        _write(_render(report, format or AuditFormat.table), output)
-        if not quiet and output is not None:
-            typer.echo(f"steelyard: wrote {output}", err=True)
+        _write_report(_render(report, format or AuditFormat.table), output, quiet)
     except SteelyardError as error:
         _fail(error)
     raise typer.Exit(0 if report.passed else 1)
@@ -267,39 +291,20 @@ def compare(
     format: CompareFormat | None = typer.Option(
         None, "--format", "-f", help="Output format [default: table]."
     ),
-    output: Path | None = typer.Option(
-        None, "--output", "-o", help="Write the report here, atomically."
-    ),
-    fail_on: FailOn | None = typer.Option(
-        None,
-        "--fail-on",
-        help="Lowest severity that fails the gate [default: the policy's, else error].",
-    ),
-    policy_file: Path | None = typer.Option(
-        None,
-        "--policy",
-        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
-    ),
-    quiet: bool = typer.Option(
-        False, "--quiet", "-q", help="No progress or diagnostics on stderr."
-    ),
+    output: _OutputOption = None,
+    fail_on: _FailOnOption = None,
+    policy_file: _PolicyOption = None,
+    quiet: _QuietOption = False,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
-    from dataclasses import replace
-
-    from steelyard.policy_file import load_policy
     from steelyard.progress import Progress
 
     try:
-        policy = load_policy(policy_file)
-        if fail_on is not None:
-            policy = replace(policy, fail_on=fail_on.value)
+        policy = _policy(policy_file, fail_on)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
             progress.advance(f"{old} → {new}")
             report = api.compare(old, new, policy=policy)
-        _write(_render_compare(report, format or CompareFormat.table), output)
-        if not quiet and output is not None:
-            typer.echo(f"steelyard: wrote {output}", err=True)
+        _write_report(_render_compare(report, format or CompareFormat.table), output, quiet)
     except SteelyardError as error:
         _fail(error)
     raise typer.Exit(0 if report.passed else 1)

@@ -7,11 +7,12 @@ Every failure is a :class:`~steelyard.errors.LoadError` naming the file.
 
 from __future__ import annotations
 
+import json
 import os
 import zipfile
 import zlib
 from pathlib import Path
-from typing import Protocol
+from typing import Any, Protocol
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
@@ -103,6 +104,30 @@ def open_zip(path: Path) -> zipfile.ZipFile:
         return zipfile.ZipFile(path)
     except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError) as exc:
         raise LoadError(path, f"is not a readable zip archive ({exc})") from None
+
+
+def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key, value in pairs:
+        if key in out:
+            raise ValueError(f"duplicate key {key!r}")
+        out[key] = value
+    return out
+
+
+def parse_json(raw: bytes | str, source: Path, what: str) -> Any:
+    """Parse a JSON blob from the file, refusing oversized blobs and duplicate keys.
+
+    Every loader's JSON (safetensors headers and indexes, Keras configs) comes through here,
+    so hostile metadata is refused the same way, with the same message, in every format.
+    """
+    if len(raw) > MAX_METADATA_BYTES:
+        raise LoadError(source, f"{what} is larger than the 100 MB cap")
+    try:
+        text = raw.decode("utf-8") if isinstance(raw, bytes) else raw
+        return json.loads(text, object_pairs_hook=_no_duplicates)
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:
+        raise LoadError(source, f"{what} is not valid JSON ({exc})") from None
 
 
 def file_size(path: Path) -> int:

@@ -18,7 +18,13 @@ from steelyard.graph import Checkpoint, Format
 from steelyard.loaders import keras_common as kc
 from steelyard.loaders import keras_hdf5 as kh
 from steelyard.loaders import keras_optimizer as ko
-from steelyard.loaders.base import file_size, open_zip, read_zip_member, safe_zip_names
+from steelyard.loaders.base import (
+    file_size,
+    open_zip,
+    parse_json,
+    read_zip_member,
+    safe_zip_names,
+)
 from steelyard.loaders.keras_h5 import read_weights_h5
 from steelyard.loaders.keras_hdf5 import H5Store, Location, isolated
 
@@ -84,12 +90,10 @@ def load_archive(path: Path) -> Checkpoint:
             raise LoadError(path, f"is a zip archive without {WEIGHTS}")
         if CONFIG not in members:
             raise LoadError(path, f"is a zip archive without {CONFIG}")
-        config = kc.parse_json(read_zip_member(archive, members[CONFIG], path), path, CONFIG)
+        config = parse_json(read_zip_member(archive, members[CONFIG], path), path, CONFIG)
         notes: list[str] = []
         if METADATA in members:
-            metadata = kc.parse_json(
-                read_zip_member(archive, members[METADATA], path), path, METADATA
-            )
+            metadata = parse_json(read_zip_member(archive, members[METADATA], path), path, METADATA)
             version = metadata.get("keras_version") if isinstance(metadata, dict) else None
             if isinstance(version, str):
                 notes.append(f"saved by Keras {version[:40]}")

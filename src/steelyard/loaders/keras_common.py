@@ -13,7 +13,6 @@ channel ``c·dm+m``, LSTM gates ``i, f, c, o``, GRU gates ``z, r, h``.
 
 from __future__ import annotations
 
-import json
 import math
 import re
 from collections.abc import Mapping
@@ -30,7 +29,6 @@ from steelyard.graph import (
     Regularizer,
     Tensor,
 )
-from steelyard.loaders.base import MAX_METADATA_BYTES
 
 #: Nesting deeper than this is refused (bounded recursion on hostile configs).
 MAX_DEPTH = 32
@@ -176,27 +174,7 @@ def natural_key(text: str) -> list[Any]:
 
 
 # --------------------------------------------------------------------------------------------
-# JSON
-
-
-def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in pairs:
-        if key in out:
-            raise ValueError(f"duplicate key {key!r}")
-        out[key] = value
-    return out
-
-
-def parse_json(raw: bytes | str, source: Path, what: str) -> Any:
-    """Parse a JSON blob from the file, refusing oversized blobs and duplicate keys."""
-    if len(raw) > MAX_METADATA_BYTES:
-        raise LoadError(source, f"{what} is larger than the 100 MB cap")
-    try:
-        text = raw.decode("utf-8") if isinstance(raw, bytes) else raw
-        return json.loads(text, object_pairs_hook=_no_duplicates)
-    except (UnicodeDecodeError, ValueError, RecursionError) as exc:
-        raise LoadError(source, f"{what} is not valid JSON ({exc})") from None
+# JSON values (parsing itself is :func:`steelyard.loaders.base.parse_json`)
 
 
 def as_dict(value: Any) -> dict[str, Any]:
@@ -642,15 +620,23 @@ def _axes(value: Any, ndim: int) -> set[int] | None:
     return out
 
 
-def constraint_of(value: Any, ndim: int, unit_axes: set[int]) -> Constraint | None:
-    """A serialized Keras constraint on a kernel of ``ndim`` axes whose units lie on
-    ``unit_axes`` (stored layout)."""
+def _serialized(value: Any) -> tuple[str, dict[str, Any]] | None:
+    """A serialized Keras object (a dict, or a bare class name) as (lowercase kind without
+    underscores, config); None when it is neither. Constraints and regularizers share it."""
     if isinstance(value, str):
         value = {"class_name": value, "config": {}}
     if not isinstance(value, dict):
         return None
-    kind = class_name(value).replace("_", "").lower()
-    conf = as_dict(value.get("config"))
+    return class_name(value).replace("_", "").lower(), as_dict(value.get("config"))
+
+
+def constraint_of(value: Any, ndim: int, unit_axes: set[int]) -> Constraint | None:
+    """A serialized Keras constraint on a kernel of ``ndim`` axes whose units lie on
+    ``unit_axes`` (stored layout)."""
+    serialized = _serialized(value)
+    if serialized is None:
+        return None
+    kind, conf = serialized
     others = set(range(ndim)) - unit_axes
     if kind in ("maxnorm",):
         axes = _axes(conf.get("axis", 0), ndim)
@@ -679,12 +665,10 @@ def constraint_of(value: Any, ndim: int, unit_axes: set[int]) -> Constraint | No
 
 def regularizer_of(value: Any) -> Regularizer | None:
     """A serialized ``L1``/``L2``/``L1L2`` regularizer (l1·Σ|w| + l2·Σw²)."""
-    if isinstance(value, str):
-        value = {"class_name": value, "config": {}}
-    if not isinstance(value, dict):
+    serialized = _serialized(value)
+    if serialized is None:
         return None
-    kind = class_name(value).replace("_", "").lower()
-    conf = as_dict(value.get("config"))
+    kind, conf = serialized
     l1 = number(conf.get("l1", 0.0))
     l2 = number(conf.get("l2", 0.0))
     # Keras' defaults when built from a bare name: l1=0.01 for L1, l2=0.01 for L2.

@@ -20,7 +20,7 @@ from steelyard.graph import Checkpoint, Format, OptimizerState, Tensor, TensorRo
 from steelyard.loaders import keras_common as kc
 from steelyard.loaders import keras_hdf5 as kh
 from steelyard.loaders import keras_optimizer as ko
-from steelyard.loaders.base import file_size
+from steelyard.loaders.base import file_size, parse_json
 from steelyard.loaders.keras_hdf5 import (
     H5_ERRORS,
     H5Store,
@@ -221,7 +221,7 @@ def _weights_optimizer(
     indexed: dict[str, Tensor] = {p: store.tensor(f, p, p, TensorRole.OPTIMIZER) for p in listed}
     variables = _indexed(indexed, source)
     if variables is None or len(variables) != len(listed):
-        return None, f"optimizer state in {source} not mapped: unexpected variable names"
+        return None, ko.unmapped(source, "unexpected variable names").note
     if not variables:
         return None, None
     group_name = store.attr_text(store.group(f, source), "name")
@@ -242,9 +242,7 @@ def _unordered_optimizer(
     base = re.sub(r"_\d+$", "", group_name or "")
     kind = {"adam": "adam", "adam_w": "adamw", "sgd": "sgd", "rm_sprop": "rmsprop"}.get(base)
     if kind is None:
-        return ko.OptimizerResult(
-            note=f"optimizer state in {source} not mapped: no config names the optimizer"
-        )
+        return ko.unmapped(source, "no config names the optimizer")
     trainable_by_atom = {
         atom.key_path: [
             atom.weights[r] for r in atom.order if r not in kc.non_trainable_roles(atom.cls)
@@ -257,20 +255,14 @@ def _unordered_optimizer(
     per_var = {"adam": [2], "adamw": [2], "sgd": [1, 0], "rmsprop": [1]}[kind]
     fits = [k for k in per_var if len(variables) - k * total in (1, 2)]
     if len(fits) != 1:
-        return ko.OptimizerResult(
-            note=f"optimizer state in {source} not mapped: {len(variables)} variables do not fit "
-            f"{total} model variables"
-        )
+        return ko.unmapped(source, f"{len(variables)} variables do not fit {total} model variables")
     k = fits[0]
     prefix = len(variables) - k * total
     slots = variables[prefix:]
     shapes = [slots[i * k].shape for i in range(total)] if k else []
     order = _interleave(atoms, trainable_by_atom, shapes) if k else []
     if order is None:
-        return ko.OptimizerResult(
-            note=f"optimizer state in {source} not mapped: without a config the model order of "
-            "its layers is ambiguous"
-        )
+        return ko.unmapped(source, "without a config the model order of its layers is ambiguous")
     layout = ko.OptimizerConfig(
         {"adam": "Adam", "adamw": "AdamW", "sgd": "SGD", "rmsprop": "RMSprop"}[kind],
         {"momentum": 0.9 if k else 0.0} if kind == "sgd" else {},
@@ -350,7 +342,7 @@ def _interleave(
 
 def _json_attr(store: H5Store, f: Any, key: str) -> Any:
     text = store.attr_text(f, key)
-    return None if text is None else kc.parse_json(text, store.source, key)
+    return None if text is None else parse_json(text, store.source, key)
 
 
 def read_legacy(

@@ -104,24 +104,18 @@ def _keras3_layout(opt: OptimizerConfig) -> tuple[str, ...] | str:
     return f"the slot layout of {opt.class_name} is not documented"
 
 
+_ADAM_SLOTS: dict[str, str | None] = {
+    "velocity_hat": None,
+    "momentum": _FIRST,
+    "velocity": _SECOND,
+    "vhat": None,
+    "m": _FIRST,
+    "v": _SECOND,
+}
 #: Named slots (legacy HDF5 files name them) → moment, per optimizer kind.
 _NAMED_SLOTS: dict[str, dict[str, str | None]] = {
-    "adam": {
-        "velocity_hat": None,
-        "momentum": _FIRST,
-        "velocity": _SECOND,
-        "vhat": None,
-        "m": _FIRST,
-        "v": _SECOND,
-    },
-    "adamw": {
-        "velocity_hat": None,
-        "momentum": _FIRST,
-        "velocity": _SECOND,
-        "vhat": None,
-        "m": _FIRST,
-        "v": _SECOND,
-    },
+    "adam": _ADAM_SLOTS,
+    "adamw": _ADAM_SLOTS,  # AdamW names its slots as Adam does
     "sgd": {"momentum": _FIRST, "m": _FIRST},
     "rmsprop": {
         "average_gradient": _FIRST,
@@ -147,6 +141,14 @@ class OptimizerResult:
 
     state: OptimizerState | None = None
     note: str | None = None
+
+
+def unmapped(source: str, why: str) -> OptimizerResult:
+    """No state, and a note saying why the optimizer state in ``source`` was not mapped.
+
+    Every mapper refuses the same way, so the notes read alike whatever the layout.
+    """
+    return OptimizerResult(note=f"optimizer state in {source} not mapped: {why}")
 
 
 def _state(
@@ -216,9 +218,7 @@ def map_keras3_ordered(
         base = re.sub(r"_\d+$", "", group_name or "")
         kind = _KNOWN_KINDS.get(base)
         if kind is None:
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: no config names the optimizer"
-            )
+            return unmapped(source, "no config names the optimizer")
         opt = OptimizerConfig(kind, {})
         layouts: list[tuple[str, ...]] = (
             [(_FIRST, _SECOND)]
@@ -231,7 +231,7 @@ def map_keras3_ordered(
     else:
         layout = _keras3_layout(opt)
         if isinstance(layout, str):
-            return OptimizerResult(note=f"optimizer state in {source} not mapped: {layout}")
+            return unmapped(source, layout)
         layouts = [layout]
         known_config = True
     n = len(trainable)
@@ -244,9 +244,10 @@ def map_keras3_ordered(
         return OptimizerResult(counters)
     fits = [lay for lay in layouts if len(variables) - len(lay) * n in (1, 2)]
     if len(fits) != 1:
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: {len(variables)} variables do not "
-            f"match {n} trainable model variables with a known {opt.kind} layout"
+        return unmapped(
+            source,
+            f"{len(variables)} variables do not match {n} trainable model variables "
+            f"with a known {opt.kind} layout",
         )
     layout = fits[0]
     prefix = len(variables) - len(layout) * n
@@ -256,17 +257,14 @@ def map_keras3_ordered(
         or head[0].dtype[:1] not in ("i", "u")
         or any(v.shape != () for v in head[1:])
     ):
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: it does not start with the "
-            "iteration counter and learning rate"
-        )
+        return unmapped(source, "it does not start with the iteration counter and learning rate")
     slots: dict[str, dict[str, Tensor]] = {}
     for i, model in enumerate(trainable):
         for j, which in enumerate(layout):
             slot = variables[prefix + i * len(layout) + j]
             problem = _check(slot, model, f"optimizer variable {slot.name}")
             if problem:
-                return OptimizerResult(note=f"optimizer state in {source} not mapped: {problem}")
+                return unmapped(source, problem)
             slots.setdefault(model.name, {})[which] = slot
     kind = opt.kind
     return OptimizerResult(
@@ -285,13 +283,11 @@ def map_keras3_named(
     ``<opt>/<var path with _>_<slot>``. The names are ambiguous, so each slot kind is mapped by
     order onto the trainable variables; the suffix only says which slot it is."""
     if opt is None:
-        return OptimizerResult(note=f"optimizer state in {source} not mapped: no training config")
+        return unmapped(source, "no training config")
     kind = opt.kind
     table = _NAMED_SLOTS.get(kind)
     if table is None:
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: {opt.class_name} slots are not documented"
-        )
+        return unmapped(source, f"{opt.class_name} slots are not documented")
     step: int | None = None
     groups: dict[str, list[Tensor]] = {}
     for name, tensor in zip(names, variables, strict=True):
@@ -305,21 +301,19 @@ def map_keras3_named(
             (s for s in sorted(table, key=len, reverse=True) if leaf.endswith(f"_{s}")), None
         )
         if suffix is None:
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: {name!r} is no known {kind} slot"
-            )
+            return unmapped(source, f"{name!r} is no known {kind} slot")
         groups.setdefault(suffix, []).append(tensor)
     slots: dict[str, dict[str, Tensor]] = {}
     for suffix, tensors in groups.items():
         if len(tensors) != len(trainable):
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: {len(tensors)} {suffix} slots for "
-                f"{len(trainable)} trainable model variables"
+            return unmapped(
+                source,
+                f"{len(tensors)} {suffix} slots for {len(trainable)} trainable model variables",
             )
         for slot, model in zip(tensors, trainable, strict=True):
             problem = _check(slot, model, f"optimizer variable {slot.name}")
             if problem:
-                return OptimizerResult(note=f"optimizer state in {source} not mapped: {problem}")
+                return unmapped(source, problem)
             which = table[suffix]
             if which is not None:
                 slots.setdefault(model.name, {})[which] = slot
@@ -342,16 +336,12 @@ def map_tf_keras_named(
     if opt is None:
         base = scope.lower()
         if base not in _NAMED_SLOTS:
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: no training config"
-            )
+            return unmapped(source, "no training config")
         opt = OptimizerConfig(base, {})
     kind = opt.kind
     table = _NAMED_SLOTS.get(kind)
     if table is None:
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: {opt.class_name} slots are not documented"
-        )
+        return unmapped(source, f"{opt.class_name} slots are not documented")
     step: int | None = None
     slots: dict[str, dict[str, Tensor]] = {}
     for name, tensor in zip(names, variables, strict=True):
@@ -363,31 +353,23 @@ def map_tf_keras_named(
         if len(parts) < 3:
             if parts[-1] in ("learning_rate", "lr", "beta_1", "beta_2", "decay", "momentum", "rho"):
                 continue
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: {name!r} names no variable"
-            )
+            return unmapped(source, f"{name!r} names no variable")
         if parts[1] in table and "/".join(parts[2:]) in by_variable:
             slot_name, variable = parts[1], "/".join(parts[2:])
         elif parts[-1] in table and "/".join(parts[1:-1]) in by_variable:
             slot_name, variable = parts[-1], "/".join(parts[1:-1])
         else:
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: {name!r} matches no model variable"
-            )
+            return unmapped(source, f"{name!r} matches no model variable")
         model = by_variable[variable]
         if model is None:
-            return OptimizerResult(
-                note=f"optimizer state in {source} not mapped: two model tensors are named {variable!r}"
-            )
+            return unmapped(source, f"two model tensors are named {variable!r}")
         problem = _check(tensor, model, f"optimizer variable {name!r}")
         if problem:
-            return OptimizerResult(note=f"optimizer state in {source} not mapped: {problem}")
+            return unmapped(source, problem)
         which = table[slot_name]
         if which is not None:
             if which in slots.get(model.name, {}):
-                return OptimizerResult(
-                    note=f"optimizer state in {source} not mapped: two {slot_name} slots for {variable!r}"
-                )
+                return unmapped(source, f"two {slot_name} slots for {variable!r}")
             slots.setdefault(model.name, {})[which] = tensor
     return OptimizerResult(_state(opt, kind, slots, step, source, keras3=False))
 
@@ -403,24 +385,19 @@ def map_keras20(
     moments, each over the trainable weights **sorted by variable name** (FORMATS.md)."""
     if opt is None or opt.kind not in ("adam", "sgd"):
         what = opt.class_name if opt is not None else "an unnamed optimizer"
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: Keras 2.0 layout of {what} is not documented"
-        )
+        return unmapped(source, f"Keras 2.0 layout of {what} is not documented")
     layout = (_FIRST, _SECOND) if opt.kind == "adam" else (_FIRST,)
     ordered = [tensor for _, tensor in sorted(trainable, key=lambda item: item[0])]
     n = len(ordered)
     if len(variables) != 1 + len(layout) * n:
-        return OptimizerResult(
-            note=f"optimizer state in {source} not mapped: {len(variables)} variables for {n} "
-            f"trainable model variables"
-        )
+        return unmapped(source, f"{len(variables)} variables for {n} trainable model variables")
     slots: dict[str, dict[str, Tensor]] = {}
     for j, which in enumerate(layout):
         for i, model in enumerate(ordered):
             slot = variables[1 + j * n + i]
             problem = _check(slot, model, f"optimizer variable {names[1 + j * n + i]!r}")
             if problem:
-                return OptimizerResult(note=f"optimizer state in {source} not mapped: {problem}")
+                return unmapped(source, problem)
             slots.setdefault(model.name, {})[which] = slot
     return OptimizerResult(
         _state(opt, opt.kind, slots, read_step(variables[0]), source, keras3=False)

@@ -628,6 +628,30 @@ def _strip(name: str, prefixes: tuple[str, ...]) -> str:
     return name
 
 
+def _checkpoint_from_names(
+    path: Path,
+    tensors: dict[str, Tensor],
+    notes: list[str],
+    optimizer: OptimizerState | None = None,
+) -> Checkpoint:
+    """The checkpoint of ``tensors``, its layers inferred from their names.
+
+    Neither a pickled state dict nor a TorchScript archive gives a layer graph we may use
+    (we never run their code), so both infer layers the same way.
+    """
+    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
+    return Checkpoint(
+        path=str(path),
+        format=Format.PYTORCH,
+        tensors=tensors,
+        layers=layers,
+        file_size=file_size(path),
+        files=(str(path),),
+        optimizer=optimizer,
+        notes=(*notes, *layer_notes),
+    )
+
+
 def _checkpoint(
     path: Path, root: object, storages: _Storages, order: str, notes: list[str]
 ) -> Checkpoint:
@@ -665,17 +689,7 @@ def _checkpoint(
         ]
         if others:
             notes.append(f"other checkpoint entries (not weights): {', '.join(others[:8])}")
-    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
-    return Checkpoint(
-        path=str(path),
-        format=Format.PYTORCH,
-        tensors=tensors,
-        layers=layers,
-        file_size=file_size(path),
-        files=(str(path),),
-        optimizer=optimizer,
-        notes=(*notes, *layer_notes),
-    )
+    return _checkpoint_from_names(path, tensors, notes, optimizer)
 
 
 # --------------------------------------------------------------------------- optimizer state
@@ -978,16 +992,7 @@ def _script_checkpoint(
         )
     if not tensors:
         raise LoadError(path, "is a TorchScript archive with no tensors steelyard can find")
-    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
-    return Checkpoint(
-        path=str(path),
-        format=Format.PYTORCH,
-        tensors=tensors,
-        layers=layers,
-        file_size=file_size(path),
-        files=(str(path),),
-        notes=(*notes, *layer_notes),
-    )
+    return _checkpoint_from_names(path, tensors, notes)
 
 
 def _walk_script(

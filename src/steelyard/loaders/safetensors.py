@@ -7,7 +7,6 @@ header is checked against the file before any byte is viewed.
 
 from __future__ import annotations
 
-import json
 import math
 import struct
 from collections.abc import Callable
@@ -19,7 +18,7 @@ import numpy as np
 from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
-from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside
+from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
 from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
 
 #: safetensors dtype tag → our short name.
@@ -46,15 +45,6 @@ _DTYPES: dict[str, str] = {
 _INDEX_SUFFIX = ".safetensors.index.json"
 
 
-def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for key, value in pairs:
-        if key in out:
-            raise ValueError(f"duplicate key {key!r}")
-        out[key] = value
-    return out
-
-
 class _Shard:
     """One safetensors file: validated header plus a lazily opened memory map."""
 
@@ -70,10 +60,7 @@ class _Shard:
             if 8 + length > self.size:
                 raise LoadError(path, f"header claims {length} bytes but the file has {self.size}")
             raw = handle.read(length)
-        try:
-            header = json.loads(raw.decode("utf-8"), object_pairs_hook=_no_duplicates)
-        except (UnicodeDecodeError, ValueError, RecursionError) as exc:
-            raise LoadError(path, f"header is not valid JSON ({exc})") from None
+        header = parse_json(raw, path, "header")
         if not isinstance(header, dict):
             raise LoadError(path, "header is not a JSON object")
         self.data_start = 8 + length
@@ -239,10 +226,7 @@ class SafetensorsLoader:
     def _shards_from_index(self, path: Path) -> list[_Shard]:
         if file_size(path) > MAX_METADATA_BYTES:
             raise LoadError(path, "index file is larger than the 100 MB cap")
-        try:
-            index = json.loads(path.read_bytes().decode("utf-8"), object_pairs_hook=_no_duplicates)
-        except (UnicodeDecodeError, ValueError, RecursionError) as exc:
-            raise LoadError(path, f"index is not valid JSON ({exc})") from None
+        index = parse_json(path.read_bytes(), path, "index")
         weight_map = index.get("weight_map") if isinstance(index, dict) else None
         if not isinstance(weight_map, dict) or not all(
             isinstance(k, str) and isinstance(v, str) for k, v in weight_map.items()

@@ -11,12 +11,10 @@ from __future__ import annotations
 
 import json
 import xml.etree.ElementTree as ET
-from collections import defaultdict
 from typing import Any
 
 from steelyard.compare.report import CompareReport, LayerDiff, Status
 from steelyard.compare.rules import compare_registry
-from steelyard.findings import Finding
 from steelyard.ranking import rank
 from steelyard.render.compare_table import number, overview
 from steelyard.render.markdown import TOP, _cell, _rows
@@ -106,38 +104,23 @@ def render_compare_sarif(report: CompareReport) -> str:
 # ---- JUnit --------------------------------------------------------------------------------
 def render_compare_junit(report: CompareReport) -> str:
     """JUnit XML: the audit's suite for NEW plus one test case per comparison rule and layer."""
-    from steelyard.render.junit import render_junit
+    from steelyard.render.junit import add_rule_cases, render_junit
 
     root = ET.fromstring(render_junit(as_audit_report(report)).split("\n", 1)[1])
     suite = root.find("testsuite")
     assert suite is not None
     comparison = report.comparison
     path = str(comparison.new.get("path", ""))
-    by_case: dict[tuple[str, str], list[Finding]] = defaultdict(list)
-    for finding in comparison.findings:
-        by_case[(finding.rule, finding.layer or "(checkpoint)")].append(finding)
     names = list(dict.fromkeys(d.name for d in comparison.layers))
-    gate = report.gate
-    tests = failures = 0
-    for rule in compare_registry():
-        extra = ["(checkpoint)"] if (rule, "(checkpoint)") in by_case else []
-        for layer in [*names, *extra]:
-            tests += 1
-            case = ET.SubElement(
-                suite, "testcase", classname=f"compare.{rule}", name=layer, file=path
-            )
-            found = by_case.get((rule, layer), [])
-            failing = [f for f in found if gate is not None and f.severity.at_least(gate)]
-            for finding in failing:
-                failures += 1
-                node = ET.SubElement(
-                    case, "failure", message=finding.message, type=finding.severity.value
-                )
-                node.text = f"{finding.message}\nhint: {finding.hint}\nunits: {list(finding.units)}\nid: {finding.id}"
-            below = [f for f in found if f not in failing]
-            if below:
-                out = ET.SubElement(case, "system-out")
-                out.text = "\n".join(f"[{f.severity.value}] {f.message}" for f in below)
+    tests, failures = add_rule_cases(
+        suite,
+        compare_registry(),
+        names,
+        comparison.findings,
+        report.gate,
+        path,
+        classname_prefix="compare.",
+    )
     for node in (suite, root):
         node.set("tests", str(int(node.get("tests", "0")) + tests))
         node.set("failures", str(int(node.get("failures", "0")) + failures))

@@ -14,7 +14,7 @@ from rich.text import Text
 from steelyard.compare.report import CompareReport, LayerDiff, Status
 from steelyard.findings import Finding, Severity, compact_units
 from steelyard.ranking import rank
-from steelyard.render.text import to_text
+from steelyard.render.text import titled_table, to_text
 from steelyard.report import CAUTION
 
 _STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
@@ -145,27 +145,11 @@ def _layers_table(layers: tuple[LayerDiff, ...]) -> Table:
         if d.relative_change is not None and math.isfinite(d.relative_change)
     ]
     full = max([1.0, *finite])
-    table = Table(
-        title="layer changes, largest first",
-        show_edge=False,
-        header_style="bold",
-        pad_edge=False,
-        title_justify="left",
+    table = titled_table(
+        "layer changes, largest first",
+        ("layer", "status", "rel. change", "", "cosine", "fan-in norm median", "died", "revived"),
+        right=("rel. change", "cosine", "died", "revived"),
     )
-    for column in (
-        "layer",
-        "status",
-        "rel. change",
-        "",
-        "cosine",
-        "fan-in norm median",
-        "died",
-        "revived",
-    ):
-        table.add_column(
-            column,
-            justify="right" if column in ("rel. change", "cosine", "died", "revived") else "left",
-        )
     for diff in shown:
         old_norm = diff.fan_in_norm_old[1] if diff.fan_in_norm_old else None
         new_norm = diff.fan_in_norm_new[1] if diff.fan_in_norm_new else None

@@ -4,28 +4,41 @@ from __future__ import annotations
 
 import xml.etree.ElementTree as ET
 from collections import defaultdict
+from collections.abc import Iterable, Sequence
 
-from steelyard.findings import Finding
+from steelyard.findings import Finding, Severity
 from steelyard.report import CheckpointAudit, Report
 from steelyard.rules import registry
 
+#: The test case of findings that belong to no layer.
+_CHECKPOINT = "(checkpoint)"
 
-def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
-    path = str(audit.checkpoint["path"])
-    suite = ET.Element("testsuite", name=f"steelyard: {path}", timestamp=report.created)
-    layer_names = [str(h.layer["name"]) for h in audit.layers]
+
+def add_rule_cases(
+    suite: ET.Element,
+    rules: Iterable[str],
+    layers: Sequence[str],
+    findings: Iterable[Finding],
+    gate: Severity | None,
+    path: str,
+    classname_prefix: str = "",
+) -> tuple[int, int]:
+    """Append one test case per rule and layer to ``suite``; return (tests, failures).
+
+    Audit and compare reports share it so that a finding fails a CI suite, or is only
+    printed, by the same gate and in the same words whichever command found it.
+    """
     by_case: dict[tuple[str, str], list[Finding]] = defaultdict(list)
-    for finding in audit.findings:
-        by_case[(finding.rule, finding.layer or "(checkpoint)")].append(finding)
-    gate = report.gate
+    for finding in findings:
+        by_case[(finding.rule, finding.layer or _CHECKPOINT)].append(finding)
     tests = failures = 0
-    for rule in registry():
-        places = [*layer_names] + (
-            ["(checkpoint)"] if any(k == (rule, "(checkpoint)") for k in by_case) else []
-        )
-        for layer in places:
+    for rule in rules:
+        extra = [_CHECKPOINT] if (rule, _CHECKPOINT) in by_case else []
+        for layer in [*layers, *extra]:
             tests += 1
-            case = ET.SubElement(suite, "testcase", classname=f"{rule}", name=layer, file=path)
+            case = ET.SubElement(
+                suite, "testcase", classname=f"{classname_prefix}{rule}", name=layer, file=path
+            )
             found = by_case.get((rule, layer), [])
             failing = [f for f in found if gate is not None and f.severity.at_least(gate)]
             for finding in failing:
@@ -38,6 +51,16 @@ def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
             if below:
                 out = ET.SubElement(case, "system-out")
                 out.text = "\n".join(f"[{f.severity.value}] {f.message}" for f in below)
+    return tests, failures
+
+
+def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
+    path = str(audit.checkpoint["path"])
+    suite = ET.Element("testsuite", name=f"steelyard: {path}", timestamp=report.created)
+    layer_names = [str(h.layer["name"]) for h in audit.layers]
+    tests, failures = add_rule_cases(
+        suite, registry(), layer_names, audit.findings, report.gate, path
+    )
     suite.set("tests", str(tests))
     suite.set("failures", str(failures))
     suite.set("errors", "0")

@@ -9,7 +9,7 @@ from rich.table import Table
 from rich.text import Text
 
 from steelyard.findings import Finding, Severity, compact_units
-from steelyard.render.text import human_bytes, human_count, to_text
+from steelyard.render.text import human_bytes, human_count, titled_table, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.rules import registry
 
@@ -130,28 +130,22 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
             Text(f"{audit.ignored} findings silenced by the policy's ignore entries", style="dim")
         )
     if audit.layers:
-        health = Table(
-            title="layer health",
-            show_edge=False,
-            header_style="bold",
-            pad_edge=False,
-            title_justify="left",
+        health = titled_table(
+            "layer health",
+            (
+                "layer",
+                "kind",
+                "units",
+                "fan-in norm min",
+                "median",
+                "max",
+                "distribution",
+                "dead",
+                "twins",
+                "unsupported",
+            ),
+            right=("units", "fan-in norm min", "median", "max", "dead", "twins", "unsupported"),
         )
-        for column in (
-            "layer",
-            "kind",
-            "units",
-            "fan-in norm min",
-            "median",
-            "max",
-            "distribution",
-            "dead",
-            "twins",
-            "unsupported",
-        ):
-            health.add_column(
-                column, justify="left" if column in ("layer", "kind", "distribution") else "right"
-            )
         for row in audit.layers:
             low, mid, high = row.fan_in_norm
             share = "—" if row.unsupported_share is None else f"{100 * row.unsupported_share:.2g}%"

@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import io
-from collections.abc import Iterable
+from collections.abc import Container, Iterable
 
 from rich.console import Console, RenderableType
+from rich.table import Table
 
 
 def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width: int = 120) -> str:
@@ -24,6 +25,24 @@ def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width
     for renderable in renderables:
         console.print(renderable)
     return buffer.getvalue()
+
+
+def titled_table(title: str, columns: Iterable[str], right: Container[str]) -> Table:
+    """An empty titled table with the ``right`` columns (numbers) right-aligned.
+
+    The audit's layer health and the comparison's layer changes share it so that the two
+    reports' tables look alike.
+    """
+    table = Table(
+        title=title,
+        show_edge=False,
+        header_style="bold",
+        pad_edge=False,
+        title_justify="left",
+    )
+    for column in columns:
+        table.add_column(column, justify="right" if column in right else "left")
+    return table
 
 
 def human_count(value: int) -> str:

@@ -41,16 +41,19 @@ class Shape:
     intermediate: int
     layers: int
     tied: bool = False
+    kv: int | None = None
+    """Width of the key and value projections (grouped-query attention); None: ``hidden``."""
 
     def tensors(self) -> Iterator[tuple[str, tuple[int, ...]]]:
         """Tensor names and shapes in file order."""
         h, f = self.hidden, self.intermediate
+        kv = self.kv or h
         yield "model.embed_tokens.weight", (self.vocab, h)
         for i in range(self.layers):
             p = f"model.layers.{i}"
             yield f"{p}.input_layernorm.weight", (h,)
-            for name in ("q_proj", "k_proj", "v_proj", "o_proj"):
-                yield f"{p}.self_attn.{name}.weight", (h, h)
+            for name, rows in (("q_proj", h), ("k_proj", kv), ("v_proj", kv), ("o_proj", h)):
+                yield f"{p}.self_attn.{name}.weight", (rows, h)
             yield f"{p}.post_attention_layernorm.weight", (h,)
             yield f"{p}.mlp.gate_proj.weight", (f, h)
             yield f"{p}.mlp.up_proj.weight", (f, h)
@@ -73,16 +76,24 @@ class Shape:
 WEIGHTS = ("trained", "gaussian")
 
 
+#: Tensors above this many elements are drawn in row blocks, so that writing a 256k-row
+#: vocabulary never holds it in float32 (smaller tensors are drawn exactly as before).
+_DRAW_ELEMENTS = 2**26
+
+
 def _values(
-    rng: np.random.Generator, shape: tuple[int, ...], weights: str = "trained"
+    rng: np.random.Generator, shape: tuple[int, ...], weights: str = "trained", dtype: Any = None
 ) -> np.ndarray:
     """Seeded weights. ``gaussian`` is an initializer's i.i.d. draw N(0, 1/fan_in), so every
     layer looks freshly initialised; ``trained`` gives each unit its own scale (log-normal,
     σ = 0.3: trained rows differ in norm) and adds a rank-4 component whose singular values
     sit at 3× the Marchenko–Pastur edge (trained layers grow a few strong directions)."""
+    target = np.dtype(dtype or np.float32)
     if len(shape) == 1:
-        return (1.0 + 0.05 * rng.standard_normal(shape, dtype=np.float32)).astype(np.float32)
+        return (1.0 + 0.05 * rng.standard_normal(shape, dtype=np.float32)).astype(target)
     rows, cols = shape
+    if rows * cols > _DRAW_ELEMENTS:
+        return _values_blocked(rng, shape, weights, target)
     sigma = 1.0 / math.sqrt(cols)  # the usual fan-in scaling of an initialisation
     out = rng.standard_normal(shape, dtype=np.float32)
     out *= np.float32(sigma)
@@ -94,6 +105,29 @@ def _values(
     right = rng.standard_normal((rank, cols), dtype=np.float32) / np.float32(math.sqrt(cols))
     strength = np.float32(3.0 * sigma * (math.sqrt(rows) + math.sqrt(cols)))
     out += (left * strength) @ right
+    return out.astype(target)
+
+
+def _values_blocked(
+    rng: np.random.Generator, shape: tuple[int, ...], weights: str, target: np.dtype[Any]
+) -> np.ndarray:
+    """``_values`` for a large matrix, drawn and converted one row block at a time."""
+    rows, cols = shape
+    sigma = np.float32(1.0 / math.sqrt(cols))
+    rank = 4
+    right = rng.standard_normal((rank, cols), dtype=np.float32) / np.float32(math.sqrt(cols))
+    strength = np.float32(3.0 * sigma * (math.sqrt(rows) + math.sqrt(cols)))
+    out = np.empty(shape, dtype=target)
+    step = max(1, _DRAW_ELEMENTS // cols)
+    for start in range(0, rows, step):
+        n = min(step, rows - start)
+        block = rng.standard_normal((n, cols), dtype=np.float32)
+        block *= sigma
+        if weights != "gaussian":
+            block *= rng.lognormal(0.0, 0.3, size=(n, 1)).astype(np.float32)
+            left = rng.standard_normal((n, rank), dtype=np.float32) / np.float32(math.sqrt(rows))
+            block += (left * strength) @ right
+        out[start : start + n] = block.astype(target)
     return out
 
 
@@ -125,7 +159,7 @@ def write_checkpoint(
         shards[-1] = {}
 
     for name, tensor_shape in shape.tensors():
-        array = _values(rng, tensor_shape, weights).astype(target)
+        array = _values(rng, tensor_shape, weights, target)
         if size and size + array.nbytes > shard_bytes:
             flush()
             names.append([])

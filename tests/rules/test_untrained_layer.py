@@ -30,6 +30,7 @@ from steelyard.rules.untrained_layer import (
     TRUNCATED_KURTOSIS,
     TRUNCATED_STD,
     Candidate,
+    candidates,
     erf,
     ks_distance,
     ks_limit,
@@ -140,6 +141,31 @@ def test_fresh_draws_are_flagged_with_the_right_initializer(tmp_path: Path, name
     assert found.evidence["initializer"] == name
     assert found.evidence["ks"] <= found.evidence["ks_limit"]
     assert found.severity is Severity.WARNING
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pruned_candidates_give_the_same_best_and_runner_up_as_all_of_them(
+    tmp_path: Path, seed: int
+) -> None:
+    # The rule computes full KS distances only for candidates whose probe bound could place
+    # them first or second; the ranking must equal the one over every candidate, computed
+    # here with scipy.stats.kstest (reference: scipy). 96 x 128 weights: the sample is all.
+    scipy_stats = pytest.importorskip("scipy.stats")
+    rng = np.random.default_rng(100 + seed)
+    weight = rng.uniform(-1, 1, size=(96, 128)) / math.sqrt(128)
+    path = _save(tmp_path, {"fc1.weight": weight, "fc1.bias": np.zeros(96)})
+    layer = load(path).layers[0]
+    values = np.sort(weight.astype(np.float32).astype(np.float64).reshape(-1))
+    full = sorted(
+        (scipy_stats.kstest(values, c.cdf).statistic, c.name) for c in candidates(layer)
+    )
+    findings = _run(path)
+    assert len(findings) == 1
+    evidence = findings[0].evidence
+    assert evidence["initializer"] == full[0][1]
+    assert evidence["ks"] == pytest.approx(full[0][0], abs=1e-6)
+    assert evidence["runner_up"]["initializer"] == full[1][1]
+    assert evidence["runner_up"]["ks"] == pytest.approx(full[1][0], abs=1e-6)
 
 
 def test_fresh_conv_and_embedding_are_flagged(tmp_path: Path) -> None:

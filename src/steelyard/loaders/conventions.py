@@ -19,11 +19,14 @@ import numpy as np
 from steelyard.errors import LoadError
 from steelyard.graph import (
     Activation,
+    Checkpoint,
+    Format,
     Layer,
     LayerKind,
     Link,
     Norm,
     NormKind,
+    OptimizerState,
     RowSlice,
     Tensor,
     TensorRole,
@@ -186,6 +189,30 @@ def _unit_count(module: _Module) -> int:
         if key in leaves and leaves[key].shape:
             return leaves[key].shape[0]
     return -1
+
+
+def inferred_checkpoint(
+    path: Path,
+    format: Format,
+    tensors: dict[str, Tensor],
+    files: tuple[Path, ...],
+    size: int,
+    notes: tuple[str, ...] | list[str] = (),
+    optimizer: OptimizerState | None = None,
+) -> Checkpoint:
+    """The checkpoint of a graph-less file (safetensors, npz, PyTorch): layers inferred from
+    the tensor names and a ``config.json`` beside ``path``, their notes after ``notes``."""
+    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
+    return Checkpoint(
+        path=str(path),
+        format=format,
+        tensors=tensors,
+        layers=layers,
+        file_size=size,
+        files=tuple(str(f) for f in files),
+        optimizer=optimizer,
+        notes=(*notes, *layer_notes),
+    )
 
 
 def build_layers(

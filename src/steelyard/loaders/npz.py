@@ -22,7 +22,7 @@ from steelyard.dtypes import FLOAT_DTYPES, name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import file_size, open_zip, read_zip_member, safe_zip_names
-from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
+from steelyard.loaders.conventions import inferred_checkpoint, role_for
 
 _MAGIC = b"\x93NUMPY"
 _MAX_HEADER = 65_536
@@ -116,16 +116,7 @@ class NpzLoader:
                     role=role_for(name, short in FLOAT_DTYPES),
                     reader=self._reader(path, size, info, dtype, shape, fortran, header_len),
                 )
-        layers, notes = build_layers(tensors, read_hf_config(path.parent), source=path)
-        return Checkpoint(
-            path=str(path),
-            format=self.format,
-            tensors=tensors,
-            layers=layers,
-            file_size=size,
-            files=(str(path),),
-            notes=tuple(notes),
-        )
+        return inferred_checkpoint(path, self.format, tensors, (path,), size)
 
     @staticmethod
     def _reader(

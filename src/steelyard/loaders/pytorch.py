@@ -39,7 +39,7 @@ from steelyard.loaders.base import (
     read_zip_member,
     safe_zip_names,
 )
-from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
+from steelyard.loaders.conventions import inferred_checkpoint, role_for
 from steelyard.loaders.pickle_safe import (
     MAX_PICKLE_BYTES,
     ScriptObject,
@@ -628,30 +628,6 @@ def _strip(name: str, prefixes: tuple[str, ...]) -> str:
     return name
 
 
-def _checkpoint_from_names(
-    path: Path,
-    tensors: dict[str, Tensor],
-    notes: list[str],
-    optimizer: OptimizerState | None = None,
-) -> Checkpoint:
-    """The checkpoint of ``tensors``, its layers inferred from their names.
-
-    Neither a pickled state dict nor a TorchScript archive gives a layer graph we may use
-    (we never run their code), so both infer layers the same way.
-    """
-    layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
-    return Checkpoint(
-        path=str(path),
-        format=Format.PYTORCH,
-        tensors=tensors,
-        layers=layers,
-        file_size=file_size(path),
-        files=(str(path),),
-        optimizer=optimizer,
-        notes=(*notes, *layer_notes),
-    )
-
-
 def _checkpoint(
     path: Path, root: object, storages: _Storages, order: str, notes: list[str]
 ) -> Checkpoint:
@@ -689,7 +665,9 @@ def _checkpoint(
         ]
         if others:
             notes.append(f"other checkpoint entries (not weights): {', '.join(others[:8])}")
-    return _checkpoint_from_names(path, tensors, notes, optimizer)
+    return inferred_checkpoint(
+        path, Format.PYTORCH, tensors, (path,), file_size(path), notes, optimizer
+    )
 
 
 # --------------------------------------------------------------------------- optimizer state
@@ -992,7 +970,7 @@ def _script_checkpoint(
         )
     if not tensors:
         raise LoadError(path, "is a TorchScript archive with no tensors steelyard can find")
-    return _checkpoint_from_names(path, tensors, notes)
+    return inferred_checkpoint(path, Format.PYTORCH, tensors, (path,), file_size(path), notes)
 
 
 def _walk_script(

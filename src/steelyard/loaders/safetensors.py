@@ -19,7 +19,7 @@ from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
-from steelyard.loaders.conventions import build_layers, read_hf_config, role_for
+from steelyard.loaders.conventions import inferred_checkpoint, role_for
 
 #: safetensors dtype tag → our short name.
 _DTYPES: dict[str, str] = {
@@ -211,16 +211,12 @@ class SafetensorsLoader:
                     reader=shard.reader(name),
                     read_span=shard.span_reader(name),
                 )
-        config = read_hf_config(path.parent)
-        layers, notes = build_layers(tensors, config, source=path)
-        return Checkpoint(
-            path=str(path),
-            format=self.format,
-            tensors=tensors,
-            layers=layers,
-            file_size=sum(s.size for s in shards),
-            files=tuple(str(s.path) for s in shards),
-            notes=tuple(notes),
+        return inferred_checkpoint(
+            path,
+            self.format,
+            tensors,
+            tuple(s.path for s in shards),
+            sum(s.size for s in shards),
         )
 
     def _shards_from_index(self, path: Path) -> list[_Shard]:

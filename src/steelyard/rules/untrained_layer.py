@@ -308,7 +308,7 @@ def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[
     )
     found = candidates(layer, _gates(ctx, layer))
     # A lower bound on every candidate's D from 257 order statistics rules most layers out
-    # at about 1 % of the cost; only when some candidate could match are all computed in full.
+    # at about 1 % of the cost.
     probe = np.unique(np.linspace(0, sample.size - 1, _PROBES).astype(np.int64))
     bounds = [ks_distance(sample, c.cdf, probe) for c in found]
     if min(bounds) > limit:
@@ -319,10 +319,8 @@ def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[
     slack = (int(np.diff(probe).max()) if probe.size > 1 else 0) / sample.size
     uppers = sorted(bound + slack for bound in bounds)
     cutoff = uppers[min(1, len(uppers) - 1)]
-    scored = sorted(
-        ((ks_distance(sample, c.cdf), c) for c, bound in zip(found, bounds, strict=True) if bound <= cutoff),
-        key=lambda item: item[0],
-    )
+    close = [c for c, bound in zip(found, bounds, strict=True) if bound <= cutoff]
+    scored = sorted(((ks_distance(sample, c.cdf), c) for c in close), key=lambda item: item[0])
     distance, best = scored[0]
     if distance > limit:
         return

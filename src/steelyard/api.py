@@ -12,18 +12,20 @@ import os
 import struct
 import zipfile
 from collections.abc import Callable, Sequence
+from dataclasses import replace
 from pathlib import Path
 
-from steelyard import __version__
+from steelyard import __version__, discovery
 from steelyard.audit import audit_checkpoint, default_jobs
 from steelyard.compare.report import CompareReport
+from steelyard.discovery import Plan
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
+from steelyard.loaders import SUPPORTED
 from steelyard.loaders import load as _load
-from steelyard.loaders import resolve
-from steelyard.policy import Policy
-from steelyard.report import CheckpointAudit, Report
+from steelyard.policy import Policy, unmatched_globs
+from steelyard.report import CheckpointAudit, InputError, Report
 
 
 def load(path: str | Path) -> Checkpoint:
@@ -45,76 +47,42 @@ def now() -> str:
 
 
 def gradient_source(
-    checkpoint: Checkpoint, grads: str | Path | None, grads_kind: GradsKind = GradsKind.RMS
+    checkpoint: Checkpoint,
+    grads: str | Path | Checkpoint | None,
+    grads_kind: GradsKind = GradsKind.RMS,
 ) -> GradientSource | None:
-    """The gradient support to use: the sidecar when given, else the checkpoint's optimizer."""
-    if grads is not None:
-        return sidecar_source(str(grads), grads_kind, _load(grads))
-    return optimizer_source(checkpoint)
+    """The gradient support to use: the sidecar when given (checked against the checkpoint:
+    one that matches none of its layers is an input error), else the checkpoint's optimizer."""
+    if grads is None:
+        return optimizer_source(checkpoint)
+    sidecar = grads if isinstance(grads, Checkpoint) else _load(grads)
+    return sidecar_source(sidecar.path, grads_kind, sidecar, checkpoint)
+
+
+_READ_ERRORS = (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error)
 
 
 def audit_one(
     path: str | Path,
     policy: Policy,
-    grads: str | Path | None = None,
+    grads: str | Path | Checkpoint | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
 ) -> CheckpointAudit:
     """Load and audit one checkpoint (``jobs`` threads, default: the machine's cores)."""
     checkpoint = _load(path)
     source = gradient_source(checkpoint, grads, grads_kind)
-    try:
-        return audit_checkpoint(checkpoint, policy, source, jobs=_jobs(jobs))
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
-        # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
-        raise LoadError(
-            checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})"
-        ) from exc
+    return _audited(checkpoint, policy, source, _jobs(jobs))
 
 
-#: File endings a folder is searched for when it is not itself one checkpoint.
-CHECKPOINT_SUFFIXES = (
-    ".safetensors",
-    ".onnx",
-    ".keras",
-    ".h5",
-    ".hdf5",
-    ".npz",
-    ".pt",
-    ".pth",
-    ".bin",
-    ".ckpt",
-)
+def plan(paths: Sequence[str | Path], grads: str | Path | None = None) -> Plan:
+    """What a run over ``paths`` audits (folders searched recursively) and what it skips."""
+    return discovery.plan(paths, exclude=[grads] if grads is not None else [])
 
 
 def expand_paths(paths: Sequence[str | Path]) -> list[Path]:
-    """Files to audit: a folder that is one checkpoint (a shard set) stays one; any other
-    folder stands for the checkpoints inside it (recursively, sorted)."""
-    out: list[Path] = []
-    for raw in paths:
-        path = Path(raw)
-        if not path.is_dir():
-            out.append(path)
-            continue
-        try:
-            out.append(resolve(path))
-            continue
-        except LoadError:
-            pass
-        indexes = sorted(path.rglob("*.safetensors.index.json"))
-        sharded = {p.parent for p in indexes}
-        found = [*indexes]
-        for candidate in sorted(path.rglob("*")):
-            if candidate.is_symlink() or not candidate.is_file():
-                continue
-            if candidate.suffix in CHECKPOINT_SUFFIXES and not (
-                candidate.suffix == ".safetensors" and candidate.parent in sharded
-            ):
-                found.append(candidate)
-        if not found:
-            raise LoadError(path, "is a folder holding no checkpoint files")
-        out.extend(sorted(found))
-    return out
+    """The checkpoints ``paths`` stand for (see :mod:`steelyard.discovery`)."""
+    return discovery.plan(paths).targets
 
 
 def _jobs(jobs: int | None) -> int:
@@ -125,33 +93,119 @@ def _jobs(jobs: int | None) -> int:
     return jobs
 
 
+def _containers_first(targets: Sequence[Path]) -> list[Path]:
+    """ONNX models first: the files they read as external data are parts of them, not
+    checkpoints of their own, and that must be known before those files come up."""
+    return sorted(targets, key=lambda p: 0 if p.suffix == ".onnx" else 1)
+
+
 def audit_many(
-    paths: Sequence[str | Path],
+    paths: Sequence[str | Path] | Plan,
     policy: Policy | None = None,
     grads: str | Path | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     created: str | None = None,
     on_checkpoint: Callable[[str], None] | None = None,
     jobs: int | None = None,
+    unreadable_fails_gate: bool = False,
 ) -> Report:
-    """Audit several checkpoints under one gate.
+    """Audit several checkpoints (files, shard indexes, folders) under one gate.
 
-    ``jobs`` is the number of worker threads per checkpoint (default: the machine's cores);
-    the report is the same for every value.
+    Every checkpoint gets a result of its own: an audit, or an :class:`InputError` when it
+    cannot be read; one broken file never ends the run. ``jobs`` is the number of worker
+    threads per checkpoint (default: the machine's cores); the report is the same for every
+    value. A ``grads`` sidecar gives support to the checkpoints whose layers it matches; one
+    that matches no checkpoint of the run is an input error.
     """
     chosen = policy or Policy()
+    run = paths if isinstance(paths, Plan) else plan(paths, grads)
+    workers = _jobs(jobs)
+    sidecar = _load(grads) if grads is not None else None
     audits: list[CheckpointAudit] = []
-    for path in paths:
+    errors = list(run.errors)
+    consumed: set[str] = set()
+    sidecar_used = False
+    for path in _containers_first(run.targets):
+        if _same(path) in consumed:
+            continue  # external data of an ONNX model audited above
         if on_checkpoint is not None:
             on_checkpoint(str(path))
-        audits.append(audit_one(path, chosen, grads, grads_kind, jobs))
+        try:
+            audit, used = _audit_target(path, chosen, sidecar, grads_kind, workers, run)
+        except LoadError as error:
+            errors.append(InputError(str(error.path), error.reason))
+            continue
+        sidecar_used |= used
+        audits.append(audit)
+        consumed |= {_same(f) for f in audit.checkpoint.get("files", ())}
+    for part in run.maybe_parts:
+        if _same(part) not in consumed:
+            errors.append(
+                InputError(str(part), f"is not a checkpoint steelyard can read; supported: {SUPPORTED}")
+            )
+    if sidecar is not None and audits and not sidecar_used:
+        raise LoadError(sidecar.path, "gradient sidecar matches no layer of any checkpoint of this run")
     return Report(
         tool_version=__version__,
         created=created or now(),
         fail_on=chosen.fail_on,
         policy_source=chosen.source,
-        audits=tuple(audits),
+        audits=tuple(sorted(audits, key=lambda a: str(a.checkpoint["path"]))),
+        errors=tuple(sorted(errors, key=lambda e: e.path)),
+        skipped=tuple(run.skipped),
+        notes=(*_run_notes(run), *unmatched_globs(chosen, audits)),
+        unreadable_fails_gate=unreadable_fails_gate,
     )
+
+
+def _same(path: str | Path) -> str:
+    return os.path.normcase(os.path.abspath(path))
+
+
+def _audit_target(
+    path: Path,
+    policy: Policy,
+    sidecar: Checkpoint | None,
+    grads_kind: GradsKind,
+    jobs: int,
+    run: Plan,
+) -> tuple[CheckpointAudit, bool]:
+    """One checkpoint's audit, and whether the sidecar gave it support."""
+    checkpoint = _load(path)
+    if sidecar is None:
+        return _audited(checkpoint, policy, optimizer_source(checkpoint), jobs), False
+    try:
+        source = sidecar_source(sidecar.path, grads_kind, sidecar, checkpoint)
+    except LoadError:
+        if len(run.targets) == 1:
+            raise
+        # Several checkpoints: the sidecar was made for another one of them.
+        audit = _audited(checkpoint, policy, optimizer_source(checkpoint), jobs)
+        note = f"gradient sidecar {sidecar.path} matches no layer of this checkpoint; not used"
+        return replace(audit, notes=(*audit.notes, note)), False
+    return _audited(checkpoint, policy, source, jobs), True
+
+
+def _audited(
+    checkpoint: Checkpoint, policy: Policy, source: GradientSource | None, jobs: int
+) -> CheckpointAudit:
+    try:
+        return audit_checkpoint(checkpoint, policy, source, jobs=jobs)
+    except _READ_ERRORS as exc:
+        # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
+        raise LoadError(
+            checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})"
+        ) from exc
+
+
+def _run_notes(run: Plan) -> list[str]:
+    if not run.ignored_files:
+        return []
+    noun = "file" if run.ignored_files == 1 else "files"
+    return [
+        f"{run.ignored_files:,} other {noun} in the folders searched (configs, tokenizers, "
+        "documents) are not weight files and were not audited"
+    ]
 
 
 def audit(
@@ -161,8 +215,16 @@ def audit(
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
 ) -> Report:
-    """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document."""
-    return audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs)
+    """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document.
+
+    A file that cannot be read raises :class:`~steelyard.errors.LoadError`; a folder is
+    audited as :func:`audit_many` does, each checkpoint with its own result.
+    """
+    report = audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs)
+    if report.errors and not report.audits and not Path(path).is_dir():
+        error = report.errors[0]
+        raise LoadError(error.path, error.reason)
+    return report
 
 
 def compare(

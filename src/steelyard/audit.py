@@ -15,14 +15,16 @@ from typing import TypeVar
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from steelyard.coverage import coverage_of
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import checkpoint_block, layer_block
 from steelyard.policy import Policy
-from steelyard.ranking import rank
-from steelyard.report import CheckpointAudit, LayerHealth
+from steelyard.ranking import rank, rank_key
+from steelyard.report import CheckpointAudit, LayerHealth, Suppressed
 from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
+from steelyard.rules.base import RuleNotes
 from steelyard.stats import STREAM_BYTES, LayerStats
 
 _HASH_CHUNK = 8 * 2**20
@@ -96,8 +98,10 @@ def run_rules(
     gradients: GradientSource | None,
     rules: dict[str, RuleSpec] | None = None,
     jobs: int = 1,
-) -> tuple[list[Finding], int, LayerStats]:
-    """Every enabled rule's findings (policy severities applied, ignores removed).
+    notes: RuleNotes | None = None,
+) -> tuple[list[Finding], list[Suppressed], LayerStats]:
+    """Every enabled rule's findings (policy severities applied), the findings the policy's
+    ignore entries silenced, and the statistics. What rules could not do goes to ``notes``.
 
     Rules with a per-layer hook run layer by layer: each task runs every such rule on one
     layer while that layer's data is in memory, then releases it, so each tensor is read
@@ -109,7 +113,13 @@ def run_rules(
     ``jobs``.
     """
     stats = LayerStats(checkpoint)
-    context = AuditContext(checkpoint=checkpoint, stats=stats, policy=policy, gradients=gradients)
+    context = AuditContext(
+        checkpoint=checkpoint,
+        stats=stats,
+        policy=policy,
+        gradients=gradients,
+        notes=notes if notes is not None else RuleNotes(),
+    )
     specs = list((rules or registry()).values())
     settings = {spec.name: RuleSettings(spec.name, spec.thresholds, policy) for spec in specs}
     hooked = [spec for spec in specs if spec.layer_check is not None]
@@ -153,7 +163,7 @@ def run_rules(
             pool.shutdown(wait=True, cancel_futures=True)
 
     findings: list[Finding] = []
-    ignored = 0
+    suppressed: list[Suppressed] = []
     for index, spec in enumerate(specs):
         produced: list[Finding] = []
         if spec.layer_check is not None:
@@ -166,14 +176,16 @@ def run_rules(
             layer = checkpoint.layer(finding.layer) if finding.layer else None
             if not rule_settings.enabled(layer):
                 continue
-            if policy.ignored(spec.name, finding.layer) is not None:
-                ignored += 1
-                continue
             chosen = rule_settings.for_layer(layer).get("severity")
             if chosen:
                 finding = replace(finding, severity=Severity(chosen))
-            findings.append(replace(finding, checkpoint=checkpoint.path))
-    return findings, ignored, stats
+            finding = replace(finding, checkpoint=checkpoint.path)
+            entry = policy.ignored(spec.name, finding.layer)
+            if entry is not None:
+                suppressed.append(Suppressed(finding, entry.reason, entry.layers))
+                continue
+            findings.append(finding)
+    return findings, suppressed, stats
 
 
 def _health(layer: Layer, stats: LayerStats, findings: list[Finding], graded: bool) -> LayerHealth:
@@ -216,19 +228,23 @@ def audit_checkpoint(
 ) -> CheckpointAudit:
     """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it)."""
     files = checkpoint.files or (checkpoint.path,)
+    notes = RuleNotes()
     if jobs > 1:
         # Hashing is a sequential pass over every byte; with a spare thread it overlaps the
         # rules instead of adding to them (hashlib releases the GIL on large updates).
         with ThreadPoolExecutor(max_workers=1) as hasher:
             digest = hasher.submit(sha256_of, files)
-            findings, ignored, stats = run_rules(checkpoint, policy, gradients, rules, jobs)
+            findings, suppressed, stats = run_rules(
+                checkpoint, policy, gradients, rules, jobs, notes
+            )
             sha256 = digest.result()
     else:
-        findings, ignored, stats = run_rules(checkpoint, policy, gradients, rules)
+        findings, suppressed, stats = run_rules(checkpoint, policy, gradients, rules, 1, notes)
         sha256 = sha256_of(files)
     ranked = rank(findings)
     block = dict(checkpoint_block(checkpoint))
     block["sha256"] = sha256
+    block["files"] = list(files)
     health = tuple(
         _health(layer, stats, findings, gradients is not None) for layer in checkpoint.layers
     )
@@ -237,6 +253,12 @@ def audit_checkpoint(
         layers=health,
         findings=ranked,
         gradient_source=gradients.description if gradients else None,
-        notes=checkpoint.notes,
-        ignored=ignored,
+        notes=(
+            *checkpoint.notes,
+            *(gradients.notes if gradients else ()),
+            *notes.lines([layer.name for layer in checkpoint.layers]),
+        ),
+        ignored=len(suppressed),
+        coverage=coverage_of(checkpoint),
+        suppressed=tuple(sorted(suppressed, key=lambda s: rank_key(s.finding))),
     )

@@ -19,7 +19,7 @@ from typing_extensions import assert_never
 
 from steelyard import __version__, api
 from steelyard.compare.report import CompareReport
-from steelyard.errors import SteelyardError
+from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers
@@ -53,6 +53,13 @@ class AuditFormat(str, Enum):
     markdown = "markdown"
     sarif = "sarif"
     junit = "junit"
+
+
+class Unreadable(str, Enum):
+    """What an unreadable checkpoint does to the run's exit code."""
+
+    input_error = "input-error"
+    gate_failure = "gate-failure"
 
 
 class FailOn(str, Enum):
@@ -217,6 +224,12 @@ def audit(
         None, "--write-baseline", help="Record the current findings as a baseline file."
     ),
     quiet: _QuietOption = False,
+    unreadable: Unreadable = typer.Option(
+        Unreadable.input_error,
+        "--unreadable",
+        help="What an unreadable checkpoint in the run means: input-error exits 2; "
+        "gate-failure fails the gate (exit 1). Either way it is never passed.",
+    ),
     jobs: int | None = typer.Option(
         None,
         "--jobs",
@@ -233,16 +246,21 @@ def audit(
     try:
         policy = _policy(policy_file, fail_on)
         accepted = read_baseline(baseline) if baseline is not None else None
-        targets = api.expand_paths(paths)
-        with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(targets)) as progress:
+        run = api.plan(paths, grads)
+        with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(run.targets)) as progress:
             report = api.audit_many(
-                targets,
+                run,
                 policy=policy,
                 grads=grads,
                 grads_kind=grads_kind,
                 on_checkpoint=progress.advance,
                 jobs=jobs,
+                unreadable_fails_gate=unreadable is Unreadable.gate_failure,
             )
+        if len(paths) == 1 and not paths[0].is_dir() and report.errors and not report.audits:
+            # One named file that cannot be read: the one-line contract, no report.
+            error = report.errors[0]
+            raise LoadError(error.path, error.reason)
         if accepted is not None:
             report = apply_baseline(report, accepted)
         if write_baseline is not None:
@@ -250,7 +268,10 @@ def audit(
         _write_report(_render(report, format or AuditFormat.table), output, quiet)
     except SteelyardError as error:
         _fail(error)
-    raise typer.Exit(0 if report.passed else 1)
+    for problem in report.errors:
+        typer.echo(f"steelyard: error: {problem.line}", err=True)
+    raise typer.Exit(report.exit_code)
+
 
 
 class CompareFormat(str, Enum):

@@ -12,7 +12,7 @@ from enum import Enum
 
 import numpy as np
 
-from steelyard.errors import SteelyardError
+from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Layer
 
 
@@ -40,31 +40,59 @@ class GradientSource:
     kind: GradsKind = GradsKind.RMS
     model: Checkpoint | None = None
     """The audited checkpoint, for optimizer-state support."""
+    notes: tuple[str, ...] = ()
+    """What the report should say about the source (a sidecar's partial match)."""
 
     def support(self, layer: Layer) -> np.ndarray | None:
-        """``|∂E/∂w|``-like magnitudes shaped ``[units, fan_in]``, or None when unknown."""
+        """``|∂E/∂w|``-like magnitudes shaped ``[units, fan_in]``, or None when unknown.
+
+        A sidecar answers for the layers it covers; the checkpoint's own optimizer state, when
+        there is one, still answers for the others."""
         if self.checkpoint is not None:
-            twin = next(
-                (
-                    x
-                    for x in self.checkpoint.layers
-                    if x.weight == layer.weight and x.gate == layer.gate
-                ),
-                None,
-            )
-            if twin is not None and (twin.units, twin.fan_in) == (layer.units, layer.fan_in):
-                raw = twin.matrix()
-            elif layer.orient is not None and layer.weight in self.checkpoint.tensors:
-                raw = np.asarray(layer.orient(self.checkpoint.tensors[layer.weight].read_float32()))
-                if raw.size != layer.units * layer.fan_in:
-                    return None
-                raw = raw.reshape(layer.units, layer.fan_in)
-            else:
-                return None
-            return _to_magnitude(np.abs(raw.astype(np.float64)), self.kind)
+            raw = _sidecar_raw(self.checkpoint, layer)
+            if raw is not None:
+                return _to_magnitude(np.abs(raw.astype(np.float64)), self.kind)
         if self.model is not None and self.model.optimizer is not None:
             return _from_optimizer(self.model, layer)
         return None
+
+    def from_sidecar(self, layer: Layer) -> bool:
+        """Whether ``layer``'s support comes from the sidecar (not from optimizer moments)."""
+        return self.checkpoint is not None and _sidecar_match(self.checkpoint, layer) is not None
+
+
+def _sidecar_match(sidecar: Checkpoint, layer: Layer) -> str | None:
+    """How the sidecar covers ``layer``: ``layer`` (a layer of the same weight and shape),
+    ``tensor`` (a tensor of the weight's name and size), or None."""
+    twin = next(
+        (x for x in sidecar.layers if x.weight == layer.weight and x.gate == layer.gate), None
+    )
+    if twin is not None and (twin.units, twin.fan_in) == (layer.units, layer.fan_in):
+        return "layer"
+    stored = sidecar.tensors.get(layer.weight)
+    if layer.orient is not None and stored is not None:
+        # Only the element count of the oriented view can be checked without reading it.
+        try:
+            probe = layer.orient(np.empty(stored.shape, dtype=np.uint8))
+        except (ValueError, IndexError):
+            return None
+        if probe.size == layer.units * layer.fan_in:
+            return "tensor"
+    return None
+
+
+def _sidecar_raw(sidecar: Checkpoint, layer: Layer) -> np.ndarray | None:
+    how = _sidecar_match(sidecar, layer)
+    if how == "layer":
+        twin = next(
+            x for x in sidecar.layers if x.weight == layer.weight and x.gate == layer.gate
+        )
+        return twin.matrix()
+    if how == "tensor":
+        assert layer.orient is not None
+        raw = np.asarray(layer.orient(sidecar.tensors[layer.weight].read_float32()))
+        return raw.reshape(layer.units, layer.fan_in)
+    return None
 
 
 def _to_magnitude(raw: np.ndarray, kind: GradsKind) -> np.ndarray:
@@ -101,10 +129,59 @@ def optimizer_source(model: Checkpoint) -> GradientSource | None:
     )
 
 
-def sidecar_source(path: str, kind: GradsKind, loaded: Checkpoint) -> GradientSource:
-    """Support from a sidecar file of gradient statistics."""
+def sidecar_source(
+    path: str, kind: GradsKind, loaded: Checkpoint, model: Checkpoint | None = None
+) -> GradientSource:
+    """Support from a sidecar file of gradient statistics, checked against ``model``.
+
+    A sidecar that covers no layer of the model is an input error: it was made for another
+    model, and using it would silently drop the support the model's own optimizer state gives.
+    A partial match is reported with counts in the source's notes; layers it does not cover
+    keep the model's optimizer support when there is one.
+    """
     if not loaded.tensors:
-        raise SteelyardError(f"{path}: gradient file holds no tensors")
+        raise LoadError(path, "gradient file holds no tensors")
+    if model is None:
+        return GradientSource(
+            description=f"{kind.value} gradients from {path}", checkpoint=loaded, kind=kind
+        )
+    layers = model.layers
+    matched = [layer for layer in layers if _sidecar_match(loaded, layer) is not None]
+    if layers and not matched:
+        wrong = [
+            f"{layer.weight} {list(loaded.tensors[layer.weight].shape)}"
+            for layer in layers
+            if layer.weight in loaded.tensors
+        ]
+        detail = (
+            f"shapes differ ({', '.join(wrong[:3])})"
+            if wrong
+            else f"none of its {len(loaded.tensors):,} tensor names is a layer weight of the "
+            f"model (e.g. {next(iter(loaded.tensors))!r}, model has {layers[0].weight!r})"
+        )
+        raise LoadError(path, f"gradient sidecar matches no layer of {model.path}: {detail}")
+    fallback = optimizer_source(model)
+    notes: list[str] = []
+    if len(matched) < len(layers):
+        covered = {id(layer) for layer in matched}
+        missing = [layer.name for layer in layers if id(layer) not in covered]
+        shown = ", ".join(missing[:8]) + (f" and {len(missing) - 8:,} more" if len(missing) > 8 else "")
+        rest = (
+            f"; they keep the checkpoint's {fallback.description}"
+            if fallback is not None
+            else "; they have no gradient support"
+        )
+        notes.append(
+            f"gradient sidecar {path} covers {len(matched):,} of {len(layers):,} layers; "
+            f"not covered: {shown}{rest}"
+        )
+    elif fallback is not None:
+        notes.append(f"gradient sidecar {path} replaces the checkpoint's {fallback.description}")
     return GradientSource(
-        description=f"{kind.value} gradients from {path}", checkpoint=loaded, kind=kind
+        description=f"{kind.value} gradients from {path}"
+        + (f" ({len(matched):,} of {len(layers):,} layers)" if len(matched) < len(layers) else ""),
+        checkpoint=loaded,
+        kind=kind,
+        model=model if fallback is not None else None,
+        notes=tuple(notes),
     )

@@ -241,6 +241,24 @@ class Layer:
     (Keras): input j·spatial… belongs to channel j otherwise, to channel j mod C here."""
     is_output: bool = False
     """Feeds no other layer while at least one layer feeds it (a model head)."""
+    aux: tuple[str, ...] = ()
+    """Other stored tensors this layer's weights are made from (quantization scales and zero
+    points, a weight-norm gain, a second recurrent matrix): they count as covered."""
+
+    @property
+    def tensor_names(self) -> tuple[str, ...]:
+        """Every stored tensor the layer reads: weight, bias, norm parameters, ``aux``."""
+        names = [self.weight]
+        if self.bias is not None:
+            names.append(self.bias)
+        if self.norm is not None:
+            names += [
+                n
+                for n in (self.norm.scale, self.norm.shift, self.norm.mean, self.norm.var)
+                if n is not None
+            ]
+        names += self.aux
+        return tuple(names)
 
     @property
     def fan_in(self) -> int:

@@ -7,9 +7,9 @@ Reading and validating a policy file lives in :mod:`steelyard.policy_file`.
 from __future__ import annotations
 
 import fnmatch
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Protocol
 
 from steelyard.findings import Severity
 
@@ -72,3 +72,42 @@ class Policy:
     def gate_severity(self) -> Severity | None:
         """Lowest severity that fails the gate; None for ``never``."""
         return None if self.fail_on == "never" else Severity(self.fail_on)
+
+
+def unmatched_globs(policy: Policy, audits: Sequence[CheckpointAuditLike]) -> list[str]:
+    """One line per ``override`` or ``ignore`` glob that matched no layer of any audited
+    checkpoint: a typo there silently keeps a threshold or a silence from applying."""
+    names = [str(h.layer["name"]) for audit in audits for h in audit.layers]
+    used_ignores = {
+        (s.finding.rule, s.layers) for audit in audits for s in audit.suppressed
+    }
+    lines: list[str] = []
+    if not audits:
+        return lines
+    for override in policy.overrides:
+        if not any(fnmatch.fnmatchcase(n, override.layers) for n in names):
+            lines.append(
+                f"policy override for layers {override.layers!r} matched no layer of any "
+                "checkpoint audited; its settings were not applied"
+            )
+    for entry in policy.ignore:
+        hit = (entry.rule, entry.layers) in used_ignores or any(
+            fnmatch.fnmatchcase(n, entry.layers) for n in names
+        )
+        if not hit:
+            lines.append(
+                f"policy ignore of {entry.rule} on layers {entry.layers!r} matched no layer of "
+                "any checkpoint audited; it silenced nothing"
+            )
+    return lines
+
+
+class CheckpointAuditLike(Protocol):
+    """What :func:`unmatched_globs` reads of an audit (kept structural: the report module
+    builds on this one)."""
+
+    @property
+    def layers(self) -> Sequence[Any]: ...
+
+    @property
+    def suppressed(self) -> Sequence[Any]: ...

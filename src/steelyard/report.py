@@ -7,6 +7,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
+from steelyard.coverage import Coverage
 from steelyard.findings import Finding, Severity
 
 AUDIT_SCHEMA = "steelyard.audit/1"
@@ -34,6 +35,38 @@ class LayerHealth:
     """Share of the layer's weights flagged unsupported; None when no gradient support."""
 
 
+@dataclass(frozen=True, slots=True)
+class Suppressed:
+    """A finding the policy's ``ignore`` entry silenced, with the reason a reviewer gave."""
+
+    finding: Finding
+    reason: str
+    layers: str
+    """The ``ignore`` entry's layer glob that matched."""
+
+
+@dataclass(frozen=True, slots=True)
+class InputError:
+    """A checkpoint of the run that could not be read: it has a result of its own, and the
+    run never passes (exit 2, or 1 when unreadable inputs fail the gate)."""
+
+    path: str
+    reason: str
+
+    @property
+    def line(self) -> str:
+        """The one line naming the file and the problem."""
+        return f"{self.path}: {self.reason}"
+
+
+@dataclass(frozen=True, slots=True)
+class Skipped:
+    """A file found in a folder and deliberately not audited, with why."""
+
+    path: str
+    reason: str
+
+
 @dataclass(frozen=True)
 class CheckpointAudit:
     """The audit of one checkpoint."""
@@ -49,6 +82,10 @@ class CheckpointAudit:
     """Findings silenced by the policy's ``ignore`` entries."""
     baselined: tuple[Finding, ...] = ()
     """Findings matched by a baseline (not gated on)."""
+    coverage: Coverage | None = None
+    """Parameters the layer rules saw (None only for audits built by hand in tests)."""
+    suppressed: tuple[Suppressed, ...] = ()
+    """The findings counted in ``ignored``, each with its ignore entry."""
 
     def counts(self) -> dict[str, int]:
         """Findings per severity (baselined ones excluded)."""
@@ -77,6 +114,15 @@ class Report:
     baseline: Mapping[str, Any] | None = None
     """``{"path", "matched", "fixed": [ids]}`` when a baseline was used."""
     policy: Mapping[str, Any] = field(default_factory=dict)
+    errors: tuple[InputError, ...] = ()
+    """Checkpoints that could not be read, each a result of its own."""
+    skipped: tuple[Skipped, ...] = ()
+    """Files found in folders and not audited, with why."""
+    notes: tuple[str, ...] = ()
+    """What the run wants the user to know beyond one checkpoint (policy globs that
+    matched nothing, files skipped)."""
+    unreadable_fails_gate: bool = False
+    """An unreadable input fails the gate (exit 1) instead of being an input error (exit 2)."""
 
     @property
     def gate(self) -> Severity | None:
@@ -85,8 +131,19 @@ class Report:
 
     @property
     def passed(self) -> bool:
-        """True when no finding (outside the baseline) reaches the gate."""
+        """True when every input was read and audited and no finding (outside the baseline)
+        reaches the gate. A run that audited nothing never passes."""
+        if self.errors or not self.audits:
+            return False
         return not any(audit.failing(self.gate) for audit in self.audits)
+
+    @property
+    def exit_code(self) -> int:
+        """0 passed, 1 the gate failed, 2 an input could not be read (unless unreadable
+        inputs fail the gate, then 1)."""
+        if self.errors and not self.unreadable_fails_gate:
+            return 2
+        return 0 if self.passed else 1
 
     def to_json(self) -> str:
         """The ``steelyard.audit/1`` document."""

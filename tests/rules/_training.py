@@ -22,6 +22,7 @@ from steelyard.gradients import GradsKind, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import load
 from steelyard.policy import Policy
+from steelyard.rules.base import RuleNotes
 from steelyard.rules.unsupported_weight import RULE
 
 
@@ -203,18 +204,22 @@ def audit(
     policy: Policy | None = None,
     tweak: Callable[[Checkpoint], Checkpoint] | None = None,
     kind: GradsKind = GradsKind.ABS,
+    notes: RuleNotes | None = None,
 ) -> list[Finding]:
-    """Run only ``unsupported-weight`` on a saved model with its gradient sidecar (if any)."""
+    """Run only ``unsupported-weight`` on a saved model with its gradient sidecar (if any);
+    what the rule could not do goes to ``notes``."""
     checkpoint = load(model)
     if tweak is not None:
         checkpoint = tweak(checkpoint)
     source = None if sidecar is None else sidecar_source(str(sidecar), kind, load(sidecar))
-    findings, _, _ = run_rules(checkpoint, policy or Policy(), source, rules={RULE.name: RULE})
+    findings, _, _ = run_rules(
+        checkpoint, policy or Policy(), source, rules={RULE.name: RULE}, notes=notes
+    )
     return findings
 
 
 def by_test(findings: list[Finding], test: str) -> dict[str | None, Finding]:
-    """Findings whose evidence ``test`` is ``test`` (unsupported, equilibrium, not-run), by layer."""
+    """Findings whose evidence ``test`` is ``test`` (unsupported, equilibrium), by layer."""
     return {f.layer: f for f in findings if f.evidence.get("test") == test}
 
 

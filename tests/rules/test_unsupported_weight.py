@@ -10,12 +10,14 @@ import pytest
 from safetensors.numpy import save_file
 
 from steelyard.audit import audit_checkpoint, run_rules
-from steelyard.findings import Finding, Severity
+from steelyard.errors import LoadError
+from steelyard.findings import Severity
 from steelyard.gradients import GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint, OptimizerSlots, OptimizerState, Tensor, TensorRole
 from steelyard.loaders import load
 from steelyard.policy import Policy
 from steelyard.rules import registry
+from steelyard.rules.base import RuleNotes
 from steelyard.rules.unsupported_weight import RULE
 from tests.rules._training import audit, by_test
 
@@ -113,25 +115,40 @@ def test_thresholds_come_from_the_policy(tmp_path: Path) -> None:
     assert by_test(audit(model, sidecar, relaxed), "unsupported") == {}
 
 
-def _only_not_run(findings: list[Finding]) -> None:
-    assert len(findings) == 1
-    (finding,) = findings
-    assert finding.rule == RULE.name and finding.severity is Severity.INFO
-    assert finding.layer is None and finding.tensor is None and finding.units == ()
-    assert finding.evidence["test"] == "not-run"
-    assert "--grads" in finding.hint
-
-
-def test_one_info_line_without_a_source(tmp_path: Path) -> None:
+def test_without_a_source_the_rule_adds_a_note_and_no_finding(tmp_path: Path) -> None:
     model, _ = _planted(tmp_path)
-    _only_not_run(audit(model, None, Policy(weight_decay=0.01)))
+    notes = RuleNotes()
+    assert audit(model, None, Policy(weight_decay=0.01), notes=notes) == []
+    (line,) = notes.lines([])
+    assert line.startswith(f"{RULE.name}: did not run: no gradient source") and "--grads" in line
 
 
-def test_one_info_line_when_the_source_matches_no_layer(tmp_path: Path) -> None:
+def test_a_sidecar_that_matches_no_layer_is_an_input_error(tmp_path: Path) -> None:
     model, _ = _planted(tmp_path)
     other = tmp_path / "other.safetensors"
     save_file({"head.weight": np.ones((3, 5), np.float32)}, str(other))
-    _only_not_run(audit(model, other))
+    with pytest.raises(LoadError, match="matches no layer"):
+        sidecar_source(str(other), GradsKind.ABS, load(other), load(model))
+
+
+def test_a_sidecar_with_the_right_names_but_wrong_shapes_is_an_input_error(tmp_path: Path) -> None:
+    model, _ = _planted(tmp_path)
+    other = tmp_path / "other.safetensors"
+    names = list(load(model).tensors)
+    save_file({n: np.ones((2, 2), np.float32) for n in names}, str(other))
+    with pytest.raises(LoadError, match="shapes differ"):
+        sidecar_source(str(other), GradsKind.ABS, load(other), load(model))
+
+
+def test_a_partial_sidecar_is_reported_with_counts(tmp_path: Path) -> None:
+    model, sidecar = _planted(tmp_path)
+    partial = tmp_path / "partial.safetensors"
+    first = load(model).layers[0]
+    save_file({first.weight: load(sidecar).tensors[first.weight].read_float32()}, str(partial))
+    source = sidecar_source(str(partial), GradsKind.ABS, load(partial), load(model))
+    layers = len(load(model).layers)
+    assert layers > 1
+    assert any(f"covers 1 of {layers} layers" in note for note in source.notes)
 
 
 def test_health_table_reads_the_flagged_count(tmp_path: Path) -> None:
@@ -223,11 +240,8 @@ def test_optimizer_moments_support_but_do_not_test_equilibrium(tmp_path: Path) -
     findings, _, _ = run_rules(checkpoint, Policy(), source, rules={RULE.name: RULE})
     flagged = by_test(findings, "unsupported")
     assert set(flagged) == {"fc1"} and flagged["fc1"].evidence["flagged"] == len(PLANTED)
-    equilibrium = by_test(findings, "equilibrium")
-    assert set(equilibrium) == {"fc1", "fc2"}
-    for finding in equilibrium.values():
-        assert finding.severity is Severity.INFO and finding.evidence["status"] == "not-checked"
-        assert "ratio" not in finding.evidence
+    # optimizer moments cannot stand for |dE/dw|: the equilibrium is a note, not a finding
+    assert by_test(findings, "equilibrium") == {}
 
 
 @pytest.mark.parametrize("slack", [1.0, 10.0])
@@ -257,10 +271,11 @@ def test_decoupled_adamw_balances_a_per_weight_coefficient(tmp_path: Path, slack
 
 def test_fisher_support_does_not_test_equilibrium(tmp_path: Path) -> None:
     model, sidecar = _planted(tmp_path)
-    findings = audit(model, sidecar, Policy(weight_decay=0.01), kind=GradsKind.FISHER)
-    assert {f.evidence["status"] for f in by_test(findings, "equilibrium").values()} == {
-        "not-checked"
-    }
+    notes = RuleNotes()
+    findings = audit(model, sidecar, Policy(weight_decay=0.01), kind=GradsKind.FISHER, notes=notes)
+    assert by_test(findings, "equilibrium") == {}
+    (line,) = notes.lines(["fc1", "fc2"])
+    assert "equilibrium ratio not checked: Fisher" in line and "fc1, fc2" in line
 
 
 def test_no_equilibrium_line_without_a_known_coefficient(tmp_path: Path) -> None:

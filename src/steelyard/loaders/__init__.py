@@ -46,20 +46,35 @@ def loaders() -> list[Loader]:
     return found
 
 
+def sniff_format(path: Path) -> str | None:
+    """The format of the file by its content (first bytes), or None when no loader knows it."""
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(_HEAD_BYTES)
+    except OSError:
+        return None
+    if not head:
+        return None
+    for loader in loaders():
+        try:
+            if loader.sniff(path, head):
+                return str(getattr(loader, "format", type(loader).__name__))
+        except Exception:
+            continue
+    return None
+
+
 def resolve(path: Path) -> Path:
     """The file to read for ``path``: a folder means the one checkpoint it holds."""
     if not path.exists():
         raise LoadError(path, "does not exist")
     if path.is_dir():
-        indexes = sorted(path.glob("*.safetensors.index.json"))
-        if len(indexes) == 1:
-            return indexes[0]
-        singles = sorted(p for p in path.glob("*.safetensors") if p.is_file())
-        if len(singles) == 1 and not indexes:
-            return singles[0]
-        raise LoadError(
-            path, "is a folder; name the checkpoint file (or its *.safetensors.index.json)"
-        )
+        # Discovery decides what a folder is (imported here: it builds on the loaders).
+        from steelyard.discovery import single
+
+        path = single(path)
+        if path.is_dir():  # pragma: no cover - single() returns files and indexes only
+            raise LoadError(path, "is a folder; name the checkpoint file")
     if not path.is_file():
         raise LoadError(path, "is not a regular file")
     return path

@@ -14,6 +14,7 @@ _MODULES = (
     "unsupported_weight",
     "untrained_layer",
     "constraint_breach",
+    "uncovered_weights",
 )
 
 

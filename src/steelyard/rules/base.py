@@ -7,8 +7,9 @@ yields findings. The module docstring is the rule's documentation page.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable, Iterator, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from steelyard.findings import Finding, Severity
@@ -20,14 +21,54 @@ from steelyard.stats import LayerStats
 DOCS_URL = "https://steelyard.readthedocs.io/en/latest/rules/"
 
 
+class RuleNotes:
+    """What rules could not do (a missing input, a test skipped), kept apart from findings.
+
+    A rule that cannot run is not a problem of the model, so it must never fail a gate or show
+    as a result in SARIF or JUnit; it is a note of the report. Rules call :meth:`add` from any
+    worker thread; :meth:`lines` merges equal notes and lists their layers in layer order, so
+    the text does not depend on ``--jobs``.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._layers: dict[tuple[str, str], set[str]] = {}
+
+    def add(self, rule: str, text: str, layer: str | None = None) -> None:
+        """Record that ``rule`` could not do something (on ``layer``, or at all)."""
+        with self._lock:
+            bucket = self._layers.setdefault((rule, text), set())
+            if layer is not None:
+                bucket.add(layer)
+
+    def lines(self, layer_order: list[str]) -> tuple[str, ...]:
+        """One line per distinct note: ``rule: text`` with the layers it applies to."""
+        position = {name: index for index, name in enumerate(layer_order)}
+        out: list[str] = []
+        with self._lock:
+            items = sorted(self._layers.items())
+        for (rule, text), layers in items:
+            line = f"{rule}: {text}"
+            if layers:
+                ordered = sorted(layers, key=lambda n: (position.get(n, len(position)), n))
+                shown = ", ".join(ordered[:8])
+                more = f" and {len(ordered) - 8:,} more" if len(ordered) > 8 else ""
+                noun = "layer" if len(ordered) == 1 else "layers"
+                line += f" ({len(ordered):,} {noun}: {shown}{more})"
+            out.append(line)
+        return tuple(out)
+
+
 @dataclass(frozen=True)
 class AuditContext:
-    """Everything a rule may read: the graph, shared statistics, policy, gradient support."""
+    """Everything a rule may read: the graph, shared statistics, policy, gradient support;
+    and where it says what it could not do."""
 
     checkpoint: Checkpoint
     stats: LayerStats
     policy: Policy
     gradients: GradientSource | None
+    notes: RuleNotes = field(default_factory=RuleNotes)
 
 
 @dataclass(frozen=True)

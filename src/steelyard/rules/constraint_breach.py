@@ -8,12 +8,12 @@
 * ``NonNeg``: every w >= 0;
 * ``MinMaxNorm(min_value, max_value, rate=1)``: min_value <= ‖w_j‖ <= max_value. With
   rate < 1 the projection only moves part of the way each step, so no bound holds exactly and
-  the rule does not judge it (it says so in an info finding).
+  the rule does not judge it (it says so in a note of the report).
 
 Each comparison allows a relative tolerance ``tolerance`` (1e-4): Keras projects with
 w·clip(n)/(ε + n), ε = 1e-7, and float32 storage rounds norms at about 1e-7 relative.
-Constraints declared over axes that do not correspond to whole units are reported as not
-judged.
+Constraints declared over axes that do not correspond to whole units are listed in a note
+of the report as not judged.
 
 **Why it matters.** The declared constraint is part of how the model was meant to be
 regularised (max-norm with dropout keeps units from growing without bound). Weights that break
@@ -46,20 +46,9 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
     tol = float(settings.get(layer, "tolerance"))
     base = dict(rule=RULE.name, layer=layer.name, tensor=layer.weight, part=layer.gate or "")
     if not constraint.per_unit or (constraint.kind == "min-max-norm" and constraint.rate != 1.0):
-        yield Finding(
-            **base,
-            severity=Severity.INFO,
-            units=(),
-            score=0.0,
-            message=f"declared {constraint.kind} constraint is not judged "
-            + (
-                "(its axes do not map onto units)"
-                if not constraint.per_unit
-                else f"(rate {constraint.rate} < 1)"
-            ),
-            hint="nothing to do; steelyard cannot verify this constraint exactly",
-            evidence={"constraint": constraint.kind},
-        )
+        why = "its axes do not map onto units" if not constraint.per_unit else "rate < 1"
+        # Not a problem of the model: a note of the report, never a finding.
+        ctx.notes.add(RULE.name, f"declared {constraint.kind} constraint not judged ({why})", layer.name)
         return
     norms = ctx.stats.row_norms(layer)
     if constraint.kind == "non-neg":

@@ -56,12 +56,14 @@ taken from the data loss alone. Kind ``fisher`` is not used: per-example gradien
 cancel, so they overstate ``|∂E/∂w|``. Optimizer second moments are not used either: with
 coupled decay they are the RMS of the *total* gradient ``∂E/∂w + λ·w``, whose mean is what
 vanishes at the balance, so they measure minibatch noise there; with AdamW they are the scale
-the balance is defined by. Layers whose support is of such a kind get an info line saying the
-equilibrium was not checked. (Unsupported weights are still judged on such support.)
+the balance is defined by. Layers whose support is of such a kind are listed in a note of the
+report saying the equilibrium was not checked. (Unsupported weights are still judged on such
+support.)
 
 **Without gradients.** With no gradient source, or one that matches no layer's weights, the
-rule yields a single info line (no layer, no tensor) saying it did not run and how to give it
-support: ``--grads FILE`` or a checkpoint saved with its optimizer state.
+rule adds one note to the report saying it did not run and how to give it support:
+``--grads FILE`` or a checkpoint saved with its optimizer state. What a rule could not do is
+never a finding: it cannot fail a gate, and SARIF and JUnit do not show it as a result.
 
 **Evidence.** Unsupported weights, one finding per layer: ``flagged`` (the count, which the
 audit's health table reads), ``top`` (up to 10 flagged weights by ascending saliency, each
@@ -72,7 +74,7 @@ audit's health table reads), ``top`` (up to 10 flagged weights by ascending sali
 
 **Severity and score.** Unsupported weights: warning, score ``scoring.score(k/units,
 max|w|/(rms-multiple·RMS))`` for k units holding flagged weights. Equilibrium outside the
-band: warning, score ``scoring.score(counted/size, max(r, 1/r)/band)``. Info lines score 0.
+band: warning, score ``scoring.score(counted/size, max(r, 1/r)/band)``.
 
 **What to do.** Look at the inputs the flagged weights read: if they are (almost) never active
 in the data, the weight is free to be anything; prune it (its saliency says the loss will
@@ -229,9 +231,9 @@ def _penalty(ctx: AuditContext, layer: Layer) -> _Penalty | str | None:
     )
 
 
-def _support_reason(source: GradientSource) -> str | None:
-    """Why this support cannot stand for |∂E/∂w|, or None when it can."""
-    if source.checkpoint is None:
+def _support_reason(source: GradientSource, layer: Layer) -> str | None:
+    """Why this layer's support cannot stand for |∂E/∂w|, or None when it can."""
+    if not source.from_sidecar(layer):
         return (
             "support comes from optimizer second moments, which hold the RMS of the total "
             "gradient (or set the AdamW scale), not the data gradient |∂E/∂w|"
@@ -253,21 +255,11 @@ def _equilibrium(
     penalty = _penalty(ctx, layer)
     if penalty is None:
         return
-    reason = penalty if isinstance(penalty, str) else _support_reason(source)
+    reason = penalty if isinstance(penalty, str) else _support_reason(source, layer)
     base = {"test": "equilibrium"}
     if reason is not None:
-        yield Finding(
-            rule=RULE.name,
-            severity=Severity.INFO,
-            layer=layer.name,
-            tensor=layer.weight,
-            units=(),
-            score=0.0,
-            message=f"equilibrium ratio not checked: {reason}",
-            hint="give a --grads sidecar of kind abs holding |∂E/∂w| of the data loss alone",
-            evidence={**base, "status": "not-checked"},
-            part=layer.gate or "",
-        )
+        # Not a problem of the model: a note of the report, never a finding.
+        ctx.notes.add(RULE.name, f"equilibrium ratio not checked: {reason}", layer.name)
         return
     assert isinstance(penalty, _Penalty)
     weights = np.asarray(ctx.stats.matrix(layer), np.float64)
@@ -328,22 +320,14 @@ def _equilibrium(
     )
 
 
-def _not_run(source: GradientSource | None) -> Finding:
+def _not_run(source: GradientSource | None) -> str:
     if source is None:
         why = "no gradient source was given"
     else:
         why = f"the gradient source ({source.description}) matched no layer's weights"
-    return Finding(
-        rule=RULE.name,
-        severity=Severity.INFO,
-        layer=None,
-        tensor=None,
-        units=(),
-        score=0.0,
-        message=f"unsupported-weight did not run: {why}",
-        hint="pass --grads FILE (per-weight gradient statistics under the model's tensor names) "
-        "or audit a checkpoint saved with its optimizer state",
-        evidence={"test": "not-run"},
+    return (
+        f"did not run: {why}; pass --grads FILE (per-weight gradient statistics under the "
+        "model's tensor names) or audit a checkpoint saved with its optimizer state"
     )
 
 
@@ -368,13 +352,14 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
 
 
 def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-    """The one info line when no layer had gradient support."""
+    """The one note when no layer had gradient support (a note, not a finding)."""
     source = ctx.gradients
     if source is not None and any(
         _support(ctx, settings, layer) is not None for layer in ctx.checkpoint.layers
     ):
         return
-    yield _not_run(source)
+    ctx.notes.add(RULE.name, _not_run(source))
+    yield from ()
 
 
 RULE = RuleSpec(

@@ -63,32 +63,51 @@ def test_markdown_has_verdict_table_and_collapsible_rest(unhealthy_file: Path) -
 
 
 def test_baseline_round_trip_gates_only_new_findings(tmp_path: Path, rng: np.random.Generator) -> None:
+    # The nightly workflow: the checkpoint is rewritten at the same path on every run.
     tensors = mlp_tensors(rng, (6, 16, 4))
     tensors["fc1.weight"][3] = 0.0
-    first = write_safetensors(tmp_path / "v1.safetensors", tensors)
+    model = write_safetensors(tmp_path / "model.safetensors", tensors)
     baseline = tmp_path / "baseline.json"
-    result = runner.invoke(app, ["audit", str(first), "--fail-on", "warning", "--write-baseline", str(baseline)])
+    result = runner.invoke(app, ["audit", str(model), "--fail-on", "warning", "--write-baseline", str(baseline)])
     assert result.exit_code == 1
     # Same defect with other values: still matched. The baseline gates it away.
     tensors["fc1.weight"] *= 1.5
     tensors["fc1.weight"][3] = 0.0
-    second = write_safetensors(tmp_path / "v2.safetensors", tensors)
-    result = runner.invoke(app, ["audit", str(second), "--fail-on", "warning", "--baseline", str(baseline), "-f", "json"])
+    write_safetensors(model, tensors)
+    result = runner.invoke(app, ["audit", str(model), "--fail-on", "warning", "--baseline", str(baseline), "-f", "json"])
     document = json.loads(result.stdout)
     assert result.exit_code == 0, document["findings"]
     assert document["baseline"]["matched"] >= 1 and document["baseline"]["fixed"] == []
     # A new dead unit is new; the old one is still matched.
     tensors["fc1.weight"][7] = 0.0
-    third = write_safetensors(tmp_path / "v3.safetensors", tensors)
-    result = runner.invoke(app, ["audit", str(third), "--fail-on", "warning", "--baseline", str(baseline), "-f", "json"])
+    write_safetensors(model, tensors)
+    result = runner.invoke(app, ["audit", str(model), "--fail-on", "warning", "--baseline", str(baseline), "-f", "json"])
     assert result.exit_code == 1
     # An earlier JSON report also works as a baseline, and fixed entries are listed.
     report = tmp_path / "report.json"
-    runner.invoke(app, ["audit", str(first), "-f", "json", "-o", str(report)])
-    healthy = write_safetensors(tmp_path / "v4.safetensors", mlp_tensors(np.random.default_rng(5), (6, 16, 4)))
-    result = runner.invoke(app, ["audit", str(healthy), "--baseline", str(report), "-f", "json"])
+    runner.invoke(app, ["audit", str(model), "-f", "json", "-o", str(report)])
+    write_safetensors(model, mlp_tensors(np.random.default_rng(5), (6, 16, 4)))
+    result = runner.invoke(app, ["audit", str(model), "--baseline", str(report), "-f", "json"])
     fixed = json.loads(result.stdout)["baseline"]["fixed"]
     assert any(entry["rule"] == "dead-unit" for entry in fixed)
+
+
+def test_a_baseline_never_silences_another_checkpoint(tmp_path: Path, rng: np.random.Generator) -> None:
+    # Two models with the same tensor names and the same defect: accepting it for one must
+    # not accept it for the other (the finding ids are equal; the checkpoints are not).
+    tensors = mlp_tensors(rng, (6, 16, 4))
+    tensors["fc1.weight"][3] = 0.0
+    accepted = write_safetensors(tmp_path / "accepted.safetensors", tensors)
+    other = write_safetensors(tmp_path / "other.safetensors", tensors)
+    baseline = tmp_path / "baseline.json"
+    runner.invoke(app, ["audit", str(accepted), "--write-baseline", str(baseline)])
+    result = runner.invoke(app, ["audit", str(accepted), str(other), "--fail-on", "warning", "--baseline", str(baseline), "-f", "json"])
+    document = json.loads(result.stdout)
+    assert result.exit_code == 1
+    by_path = {Path(a["checkpoint"]["path"]).name: a for a in document["audits"]}
+    assert by_path["accepted.safetensors"]["gate"]["passed"]
+    assert not by_path["other.safetensors"]["gate"]["passed"]
+    assert any(f["rule"] == "dead-unit" for f in by_path["other.safetensors"]["findings"])
 
 
 def test_baseline_survives_reexport_to_npz(tmp_path: Path, rng: np.random.Generator) -> None:

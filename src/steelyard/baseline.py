@@ -1,15 +1,22 @@
 """Baselines: accept today's findings, gate only on new ones.
 
 A baseline is a ``steelyard.baseline/1`` file written by ``--write-baseline``, or any earlier
-``steelyard.audit/1`` / ``steelyard.audit-set/1`` JSON report. Findings match by their stable
-``id`` (rule, tensor, part, units), which leaves out every measured value, so a finding that
-persists with different numbers still matches, and so does the same weights re-exported to a
-format that keeps the tensor names.
+``steelyard.audit/1`` / ``steelyard.audit-set/1`` JSON report. A finding matches an entry when
+both are about the same checkpoint and have the same stable ``id`` (rule, tensor, part, units),
+which leaves out every measured value, so a finding that persists with different numbers
+still matches.
+
+A checkpoint is identified by its path as the run names it, relative to the working folder,
+with the format's file ending removed (:func:`checkpoint_key`): ``models/cls.safetensors``,
+``models/cls.onnx`` and ``models/cls.weights.h5`` are one checkpoint, so re-exports of the same
+weights beside each other still match where the tensor names survive; ``models/other.onnx``
+is another, and nothing accepted for one ever silences the other.
 """
 
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -28,39 +35,96 @@ class BaselineError(SteelyardError):
     """A baseline file is missing or malformed."""
 
 
+#: File endings removed from a checkpoint's path to identify it (longest first).
+_ENDINGS = (
+    ".safetensors.index.json",
+    ".weights.h5",
+    ".safetensors",
+    ".onnx",
+    ".keras",
+    ".hdf5",
+    ".h5",
+    ".npz",
+    ".pth",
+    ".pt",
+    ".bin",
+    ".ckpt",
+    ".jit",
+)
+
+
+def checkpoint_key(path: str) -> str:
+    """How a baseline identifies a checkpoint: its path relative to the working folder
+    (absolute when outside it), with ``/`` separators and the format's ending removed."""
+    try:
+        relative = os.path.relpath(path)
+    except ValueError:  # pragma: no cover - another drive on Windows
+        relative = path
+    if relative.startswith(".."):
+        relative = os.path.abspath(path)
+    text = relative.replace(os.sep, "/")
+    for ending in _ENDINGS:
+        if text.endswith(ending) and len(text) > len(ending):
+            return text[: -len(ending)]
+    return text
+
+
 @dataclass(frozen=True)
 class Baseline:
-    """Accepted finding ids, with what each was when accepted."""
+    """Accepted findings per checkpoint, with what each was when accepted."""
 
     path: str
-    entries: dict[str, dict[str, Any]]
-    """id → ``{"rule", "layer", "tensor", "units"}``."""
+    entries: dict[tuple[str, str], dict[str, Any]]
+    """(checkpoint key, finding id) → ``{"checkpoint", "rule", "layer", "tensor", "units"}``."""
 
 
-def _entries_of(document: Any, path: str) -> dict[str, dict[str, Any]]:
-    if not isinstance(document, dict):
-        raise BaselineError(f"{path}: baseline is not a JSON object")
+def _findings_with_checkpoint(document: dict[str, Any], path: str) -> list[tuple[Any, Any]]:
+    """(finding, checkpoint path) pairs of a baseline or report document."""
     schema = document.get("schema")
-    if schema == BASELINE_SCHEMA or schema == "steelyard.audit/1":
+    if schema == BASELINE_SCHEMA:
         findings = document.get("findings")
+        if not isinstance(findings, list):
+            raise BaselineError(f"{path}: baseline has no 'findings' list")
+        return [(f, f.get("checkpoint") if isinstance(f, dict) else None) for f in findings]
+    if schema == "steelyard.audit/1":
+        audits: Any = [document]
     elif schema == "steelyard.audit-set/1":
         audits = document.get("audits")
         if not isinstance(audits, list):
             raise BaselineError(f"{path}: baseline has no 'audits' list")
-        findings = [f for a in audits if isinstance(a, dict) for f in (a.get("findings") or [])]
     else:
         raise BaselineError(f"{path}: not a steelyard baseline or JSON report (schema {schema!r})")
-    if not isinstance(findings, list):
-        raise BaselineError(f"{path}: baseline has no 'findings' list")
-    entries: dict[str, dict[str, Any]] = {}
-    for index, item in enumerate(findings):
+    pairs: list[tuple[Any, Any]] = []
+    for audit in audits:
+        block = audit.get("checkpoint") if isinstance(audit, dict) else None
+        where = block.get("path") if isinstance(block, dict) else None
+        findings = audit.get("findings") if isinstance(audit, dict) else None
+        if not isinstance(findings, list):
+            raise BaselineError(f"{path}: baseline has no 'findings' list")
+        pairs += [(f, where) for f in findings]
+    return pairs
+
+
+def _entries_of(document: Any, path: str) -> dict[tuple[str, str], dict[str, Any]]:
+    if not isinstance(document, dict):
+        raise BaselineError(f"{path}: baseline is not a JSON object")
+    entries: dict[tuple[str, str], dict[str, Any]] = {}
+    for index, (item, where) in enumerate(_findings_with_checkpoint(document, path)):
         if (
             not isinstance(item, dict)
             or not isinstance(item.get("id"), str)
             or not isinstance(item.get("rule"), str)
         ):
             raise BaselineError(f"{path}: finding {index} has no string 'id' and 'rule'")
-        entries[item["id"]] = {k: item.get(k) for k in ("rule", "layer", "tensor", "units")}
+        if not isinstance(where, str) or not where:
+            # Fail closed: an entry that names no checkpoint could silence any of them.
+            raise BaselineError(
+                f"{path}: finding {index} names no checkpoint; write the baseline again "
+                "with --write-baseline"
+            )
+        entries[(checkpoint_key(where), item["id"])] = {"checkpoint": where} | {
+            k: item.get(k) for k in ("rule", "layer", "tensor", "units")
+        }
     return entries
 
 
@@ -78,22 +142,39 @@ def read_baseline(path: Path) -> Baseline:
 
 
 def apply_baseline(report: Report, baseline: Baseline) -> Report:
-    """Split each audit's findings into new and baselined; list baseline entries now fixed."""
-    seen: set[str] = set()
+    """Split each audit's findings into new and baselined (an entry only ever matches
+    findings of its own checkpoint); list the entries of audited checkpoints now fixed, and
+    the checkpoints the baseline names that this run did not audit."""
+    seen: set[tuple[str, str]] = set()
+    audited: set[str] = set()
     audits: list[CheckpointAudit] = []
     for audit in report.audits:
+        key = checkpoint_key(str(audit.checkpoint.get("path", "")))
+        audited.add(key)
         new: list[Finding] = []
         old: list[Finding] = []
         for finding in audit.findings:
-            (old if finding.id in baseline.entries else new).append(finding)
-            seen.add(finding.id)
+            (old if (key, finding.id) in baseline.entries else new).append(finding)
+            seen.add((key, finding.id))
         audits.append(replace(audit, findings=tuple(new), baselined=tuple(old)))
-    fixed = [{"id": key, **value} for key, value in baseline.entries.items() if key not in seen]
+    fixed = [
+        {"id": ident, **value}
+        for (key, ident), value in baseline.entries.items()
+        if key in audited and (key, ident) not in seen
+    ]
+    elsewhere = sorted(
+        {str(v["checkpoint"]) for (key, _), v in baseline.entries.items() if key not in audited}
+    )
     matched = sum(len(a.baselined) for a in audits)
     return replace(
         report,
         audits=tuple(audits),
-        baseline={"path": baseline.path, "matched": matched, "fixed": fixed},
+        baseline={
+            "path": baseline.path,
+            "matched": matched,
+            "fixed": fixed,
+            "not_audited": elsewhere,
+        },
     )
 
 

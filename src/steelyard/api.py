@@ -153,7 +153,8 @@ def audit_many(
         audits=tuple(sorted(audits, key=lambda a: str(a.checkpoint["path"]))),
         errors=tuple(sorted(errors, key=lambda e: e.path)),
         skipped=tuple(run.skipped),
-        notes=(*_run_notes(run), *unmatched_globs(chosen, audits)),
+        notes=tuple(_run_notes(run)),
+        policy_notes=tuple(unmatched_globs(chosen, audits)),
         unreadable_fails_gate=unreadable_fails_gate,
     )
 

@@ -51,3 +51,27 @@ def coverage_of(checkpoint: Checkpoint) -> Coverage:
     return Coverage(
         parameters=sum(t.size for t in counted), covered=covered, uncovered=tuple(missing)
     )
+
+
+def describe(coverage: Coverage) -> str:
+    """One line for every report: what the layer rules saw."""
+    if coverage.parameters == 0:
+        return "no parameters: nothing was checked"
+    missing = len(coverage.uncovered)
+    rest = (
+        "every counted tensor is in a layer"
+        if not missing
+        else f"{missing:,} {'tensor' if missing == 1 else 'tensors'} in no layer"
+    )
+    return (
+        f"layer rules saw {_percent(coverage.share)} of {coverage.parameters:,} parameters; {rest}"
+    )
+
+
+def _percent(share: float) -> str:
+    # Never round a partial share up to a full 100 %, nor a non-zero one down to 0 %.
+    if 0.0 < share < 0.001:
+        return "<0.1%"
+    if 0.999 < share < 1.0:
+        return ">99.9%"
+    return f"{share:.1%}"

@@ -119,8 +119,9 @@ class Report:
     skipped: tuple[Skipped, ...] = ()
     """Files found in folders and not audited, with why."""
     notes: tuple[str, ...] = ()
-    """What the run wants the user to know beyond one checkpoint (policy globs that
-    matched nothing, files skipped)."""
+    """What the run wants the user to know beyond one checkpoint (other files found)."""
+    policy_notes: tuple[str, ...] = ()
+    """Policy entries that applied to nothing in this run (a glob that matched no layer)."""
     unreadable_fails_gate: bool = False
     """An unreadable input fails the gate (exit 1) instead of being an input error (exit 2)."""
 

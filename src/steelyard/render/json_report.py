@@ -6,6 +6,7 @@ import json
 import math
 from typing import Any
 
+from steelyard.coverage import Coverage
 from steelyard.findings import Finding
 from steelyard.report import AUDIT_SCHEMA, CheckpointAudit, Report
 
@@ -39,6 +40,21 @@ def finding_block(finding: Finding) -> dict[str, Any]:
     }
 
 
+def coverage_block(coverage: Coverage | None) -> dict[str, Any] | None:
+    """What the layer rules saw, with every counted tensor in no layer."""
+    if coverage is None:
+        return None
+    return {
+        "parameters": coverage.parameters,
+        "covered": coverage.covered,
+        "share": coverage.share,
+        "uncovered": [
+            {"tensor": u.name, "shape": list(u.shape), "parameters": u.parameters}
+            for u in coverage.uncovered
+        ],
+    }
+
+
 def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
     """The document of one checkpoint."""
     layers = []
@@ -53,6 +69,7 @@ def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
         "findings": [finding_block(f) for f in audit.findings],
         "summary": audit.counts(),
         "gate": {"fail_on": report.fail_on, "passed": not audit.failing(report.gate)},
+        "coverage": coverage_block(audit.coverage),
         "gradient_source": audit.gradient_source,
         "notes": list(audit.notes),
         "created": report.created,
@@ -65,13 +82,28 @@ def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
         }
     if audit.ignored:
         document["summary"]["ignored"] = audit.ignored
+        document["suppressed"] = [
+            {**finding_block(s.finding), "reason": s.reason, "ignore_layers": s.layers}
+            for s in audit.suppressed
+        ]
     return document
+
+
+def _run_block(report: Report) -> dict[str, Any]:
+    """What the run as a whole found beyond each checkpoint."""
+    return {
+        "errors": [{"path": e.path, "reason": e.reason} for e in report.errors],
+        "skipped": [{"path": s.path, "reason": s.reason} for s in report.skipped],
+        "notes": list(report.notes),
+        "policy_notes": list(report.policy_notes),
+    }
 
 
 def render_json(report: Report) -> str:
     """The JSON text, findings in rank order."""
-    if len(report.audits) == 1:
+    if len(report.audits) == 1 and not report.errors and not report.skipped:
         document = audit_block(report, report.audits[0])
+        document["notes"] += [*report.notes, *report.policy_notes]
     else:
         totals = {"error": 0, "warning": 0, "info": 0}
         for audit in report.audits:
@@ -81,7 +113,12 @@ def render_json(report: Report) -> str:
             "schema": SET_SCHEMA,
             "tool": {"name": "steelyard", "version": report.tool_version},
             "audits": [audit_block(report, a) for a in report.audits],
-            "summary": totals,
-            "gate": {"fail_on": report.fail_on, "passed": report.passed},
+            **_run_block(report),
+            "summary": {**totals, "checkpoints": len(report.audits), "unreadable": len(report.errors)},
+            "gate": {
+                "fail_on": report.fail_on,
+                "passed": report.passed,
+                "unreadable": "gate-failure" if report.unreadable_fails_gate else "input-error",
+            },
         }
     return json.dumps(_clean(document), indent=2, ensure_ascii=False) + "\n"

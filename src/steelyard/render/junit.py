@@ -6,6 +6,7 @@ import xml.etree.ElementTree as ET
 from collections import defaultdict
 from collections.abc import Iterable, Sequence
 
+from steelyard.coverage import describe
 from steelyard.findings import Finding, Severity
 from steelyard.report import CheckpointAudit, Report
 from steelyard.rules import registry
@@ -65,6 +66,38 @@ def _suite(report: Report, audit: CheckpointAudit) -> ET.Element:
     suite.set("failures", str(failures))
     suite.set("errors", "0")
     suite.set("skipped", "0")
+    lines = []
+    if audit.coverage is not None:
+        lines.append(f"coverage: {describe(audit.coverage)}")
+    lines += [f"note: {note}" for note in audit.notes]
+    lines += [
+        f"ignored by policy ({s.reason}): {s.finding.rule} {s.finding.layer or ''} {s.finding.message}"
+        for s in audit.suppressed
+    ]
+    if lines:
+        ET.SubElement(suite, "system-out").text = "\n".join(lines)
+    return suite
+
+
+def _inputs_suite(report: Report) -> ET.Element | None:
+    """Unreadable checkpoints as error cases, skipped files as skipped cases."""
+    if not report.errors and not report.skipped:
+        return None
+    suite = ET.Element("testsuite", name="steelyard: inputs", timestamp=report.created)
+    for error in report.errors:
+        case = ET.SubElement(suite, "testcase", classname="input", name=error.path, file=error.path)
+        ET.SubElement(case, "error", message=error.reason, type="unreadable").text = error.line
+    for skipped in report.skipped:
+        case = ET.SubElement(
+            suite, "testcase", classname="input", name=skipped.path, file=skipped.path
+        )
+        ET.SubElement(case, "skipped", message=skipped.reason)
+    suite.set("tests", str(len(report.errors) + len(report.skipped)))
+    suite.set("failures", "0")
+    suite.set("errors", str(len(report.errors)))
+    suite.set("skipped", str(len(report.skipped)))
+    if report.notes or report.policy_notes:
+        ET.SubElement(suite, "system-out").text = "\n".join([*report.notes, *report.policy_notes])
     return suite
 
 
@@ -72,8 +105,11 @@ def render_junit(report: Report) -> str:
     """The JUnit XML document as text."""
     root = ET.Element("testsuites", name="steelyard")
     suites = [_suite(report, audit) for audit in report.audits]
+    inputs = _inputs_suite(report)
+    if inputs is not None:
+        suites.append(inputs)
     root.extend(suites)
-    root.set("tests", str(sum(int(s.get("tests", "0")) for s in suites)))
-    root.set("failures", str(sum(int(s.get("failures", "0")) for s in suites)))
+    for key in ("tests", "failures", "errors", "skipped"):
+        root.set(key, str(sum(int(s.get(key, "0")) for s in suites)))
     ET.indent(root)
     return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from steelyard.coverage import describe
 from steelyard.findings import Finding, compact_units
 from steelyard.report import CAUTION, CheckpointAudit, Report
 
@@ -36,6 +37,7 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[str]:
         f"{block['format']}, {int(block['parameters']):,} parameters, {len(audit.layers)} layers; "
         f"gradient support: {audit.gradient_source or 'none'}.",
         "",
+        *([f"Coverage: {describe(audit.coverage)}.", ""] if audit.coverage is not None else []),
         f"**{counts['error']}** errors, **{counts['warning']}** warnings, **{counts['info']}** info "
         f"(gate: `--fail-on {report.fail_on}`).",
         "",
@@ -52,6 +54,36 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[str]:
     else:
         lines.append("No findings.")
     lines.append("")
+    if audit.suppressed:
+        lines += [f"<details><summary>{len(audit.suppressed)} findings ignored by the policy</summary>", ""]
+        lines += [
+            f"- `{s.finding.rule}` on `{_cell(s.finding.layer or '—')}`: {_cell(s.finding.message)} "
+            f"(ignored for layers `{_cell(s.layers)}`: {_cell(s.reason)})"
+            for s in audit.suppressed
+        ]
+        lines += ["", "</details>", ""]
+    uncovered = audit.coverage.uncovered if audit.coverage is not None else ()
+    if uncovered:
+        lines += [f"<details><summary>{len(uncovered)} tensors in no layer</summary>", ""]
+        lines += [f"- `{_cell(u.name)}` {list(u.shape)}, {u.parameters:,} parameters" for u in uncovered]
+        lines += ["", "</details>", ""]
+    if audit.notes:
+        lines += [f"- note: {_cell(note)}" for note in audit.notes] + [""]
+    return lines
+
+
+def _inputs(report: Report) -> list[str]:
+    lines: list[str] = []
+    if report.errors:
+        lines += [f"### ❌ {len(report.errors)} checkpoints could not be read", ""]
+        lines += [f"- `{_cell(e.path)}`: {_cell(e.reason)}" for e in report.errors] + [""]
+    if report.skipped:
+        lines += [f"<details><summary>{len(report.skipped)} files skipped</summary>", ""]
+        lines += [f"- `{_cell(s.path)}`: {_cell(s.reason)}" for s in report.skipped]
+        lines += ["", "</details>", ""]
+    lines += [f"- {_cell(n)}" for n in (*report.notes, *report.policy_notes)]
+    if report.notes or report.policy_notes:
+        lines.append("")
     return lines
 
 
@@ -63,6 +95,7 @@ def render_markdown(report: Report) -> str:
     lines = [f"## steelyard weight audit: {overall}", ""]
     for audit in report.audits:
         lines += _audit(report, audit)
+    lines += _inputs(report)
     if report.baseline is not None:
         fixed = report.baseline.get("fixed", [])
         lines += [

@@ -12,7 +12,7 @@ from typing import Any
 
 from steelyard.findings import Finding, Severity
 from steelyard.render.json_report import _clean
-from steelyard.report import Report
+from steelyard.report import Report, Suppressed
 from steelyard.rules import registry
 
 SARIF_SCHEMA_URI = (
@@ -57,7 +57,11 @@ def _rules_table() -> tuple[list[dict[str, Any]], dict[str, int]]:
 
 
 def _result(
-    finding: Finding, artifact: int, rule_index: dict[str, int], baselined: bool
+    finding: Finding,
+    artifact: int,
+    rule_index: dict[str, int],
+    baselined: bool,
+    suppressed: Suppressed | None = None,
 ) -> dict[str, Any]:
     logical = []
     if finding.layer:
@@ -94,7 +98,25 @@ def _result(
         result["ruleIndex"] = rule_index[finding.rule]
     if baselined:
         result["baselineState"] = "unchanged"
+    if suppressed is not None:
+        # SARIF 2.1.0 §3.34: a result silenced outside the artifact, with the reviewer's reason.
+        result["suppressions"] = [
+            {
+                "kind": "external",
+                "status": "accepted",
+                "justification": suppressed.reason,
+                "properties": {"ignore_layers": suppressed.layers},
+            }
+        ]
     return result
+
+
+def _notification(text: str, level: str, uri: str | None = None) -> dict[str, Any]:
+    """A SARIF notification (§3.58): what the tool could not do or wants said."""
+    note: dict[str, Any] = {"level": level, "message": {"text": text}}
+    if uri is not None:
+        note["locations"] = [{"physicalLocation": {"artifactLocation": {"uri": _uri(uri)}}}]
+    return note
 
 
 def render_sarif(report: Report) -> str:
@@ -102,17 +124,32 @@ def render_sarif(report: Report) -> str:
     rules, rule_index = _rules_table()
     artifacts: list[dict[str, Any]] = []
     results: list[dict[str, Any]] = []
+    execution: list[dict[str, Any]] = []
     for position, audit in enumerate(report.audits):
         block = audit.checkpoint
+        properties: dict[str, Any] = {"format": block["format"], "parameters": block["parameters"]}
+        if audit.coverage is not None:
+            properties["coverage"] = {
+                "covered": audit.coverage.covered,
+                "share": audit.coverage.share,
+                "uncovered_tensors": [u.name for u in audit.coverage.uncovered],
+            }
         artifacts.append(
             {
                 "location": {"uri": _uri(str(block["path"]))},
                 "hashes": {"sha-256": str(block.get("sha256", ""))},
-                "properties": {"format": block["format"], "parameters": block["parameters"]},
+                "properties": properties,
             }
         )
         results += [_result(f, position, rule_index, False) for f in audit.findings]
         results += [_result(f, position, rule_index, True) for f in audit.baselined]
+        results += [_result(s.finding, position, rule_index, False, s) for s in audit.suppressed]
+        execution += [_notification(n, "note", str(block["path"])) for n in audit.notes]
+    # bandit-style: what could not be read is a tool notification, not a result.
+    execution += [_notification(e.reason, "error", e.path) for e in report.errors]
+    execution += [_notification(f"skipped: {s.reason}", "note", s.path) for s in report.skipped]
+    execution += [_notification(n, "note") for n in report.notes]
+    configuration = [_notification(n, "warning") for n in report.policy_notes]
     log = {
         "$schema": SARIF_SCHEMA_URI,
         "version": "2.1.0",
@@ -127,7 +164,14 @@ def render_sarif(report: Report) -> str:
                         "rules": rules,
                     }
                 },
-                "invocations": [{"executionSuccessful": True, "startTimeUtc": report.created}],
+                "invocations": [
+                    {
+                        "executionSuccessful": not report.errors,
+                        "startTimeUtc": report.created,
+                        "toolExecutionNotifications": execution,
+                        "toolConfigurationNotifications": configuration,
+                    }
+                ],
                 "artifacts": artifacts,
                 "results": results,
                 "properties": {"gate": {"fail_on": report.fail_on, "passed": report.passed}},

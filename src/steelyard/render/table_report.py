@@ -8,6 +8,7 @@ from rich.console import Group, RenderableType
 from rich.table import Table
 from rich.text import Text
 
+from steelyard.coverage import describe
 from steelyard.findings import Finding, Severity, compact_units
 from steelyard.render.text import human_bytes, human_count, titled_table, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
@@ -17,6 +18,8 @@ _STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO:
 _BARS = "▁▂▃▄▅▆▇█"
 #: Findings shown in full in the terminal; the rest are counted (JSON has them all).
 MAX_SHOWN = 40
+#: Tensors in no layer named in the terminal (JSON lists them all).
+_UNCOVERED_SHOWN = 8
 
 
 def spark(histogram: tuple[int, ...]) -> str:
@@ -86,6 +89,11 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
         report.policy_source,
         ("   sha256 ", "bold"),
         str(block.get("sha256", ""))[:16] + "…",
+        *(
+            ("\n", ("coverage ", "bold"), describe(audit.coverage))
+            if audit.coverage is not None
+            else ()
+        ),
     )
     parts: list[RenderableType] = [header, _verdict(report, audit), Text("")]
     specs = registry()
@@ -125,10 +133,18 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
                 style="dim",
             )
         )
-    if audit.ignored:
+    if audit.suppressed:
         parts.append(
-            Text(f"{audit.ignored} findings silenced by the policy's ignore entries", style="dim")
+            Text(f"{len(audit.suppressed)} findings silenced by the policy's ignore entries:", style="dim")
         )
+        parts += [
+            Text(
+                f"  {s.finding.rule} on {s.finding.layer or 'the checkpoint'}: "
+                f"{s.finding.message} (ignored for layers {s.layers!r}: {s.reason})",
+                style="dim",
+            )
+            for s in audit.suppressed[:MAX_SHOWN]
+        ]
     if audit.layers:
         health = titled_table(
             "layer health",
@@ -162,7 +178,54 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
                 share,
             )
         parts += [Text(""), health]
+    uncovered = audit.coverage.uncovered if audit.coverage is not None else ()
+    if uncovered:
+        shown = ", ".join(f"{u.name} {list(u.shape)}" for u in uncovered[:_UNCOVERED_SHOWN])
+        more = (
+            f" and {len(uncovered) - _UNCOVERED_SHOWN:,} more (--format json lists them all)"
+            if len(uncovered) > _UNCOVERED_SHOWN
+            else ""
+        )
+        parts.append(Text(f"in no layer: {shown}{more}", style="dim"))
     parts += [Text(f"note: {note}", style="dim") for note in audit.notes]
+    return parts
+
+
+def _summary(report: Report) -> list[RenderableType]:
+    """The run's last word: one row per checkpoint, every failure named."""
+    table = titled_table(
+        "summary", ("checkpoint", "verdict", "errors", "warnings", "coverage"),
+        right=("errors", "warnings", "coverage"),
+    )
+    rows: list[tuple[str, Text, str, str, str]] = []
+    for audit in report.audits:
+        counts = audit.counts()
+        failing = audit.failing(report.gate)
+        verdict = (
+            Text("report", style="bold")
+            if report.gate is None
+            else Text("FAIL", style="bold red")
+            if failing
+            else Text("PASS", style="bold green")
+        )
+        share = "—" if audit.coverage is None else f"{100 * audit.coverage.share:.1f}%"
+        rows.append(
+            (str(audit.checkpoint["path"]), verdict, f"{counts['error']:,}", f"{counts['warning']:,}", share)
+        )
+    rows += [(e.path, Text("UNREADABLE", style="bold red"), "—", "—", "—") for e in report.errors]
+    for row in sorted(rows, key=lambda r: r[0]):
+        table.add_row(*row)
+    return [Text(""), table]
+
+
+def _inputs(report: Report) -> list[RenderableType]:
+    parts: list[RenderableType] = []
+    for error in report.errors:
+        parts.append(Text.assemble(("unreadable ", "bold red"), error.line))
+    for skipped in report.skipped:
+        parts.append(Text(f"skipped {skipped.path}: {skipped.reason}", style="dim"))
+    parts += [Text(f"note: {note}", style="dim") for note in report.notes]
+    parts += [Text(f"policy: {note}", style="yellow") for note in report.policy_notes]
     return parts
 
 
@@ -173,15 +236,22 @@ def render_table(report: Report, *, color: bool = False, width: int = 120) -> st
         if index:
             parts.append(Text("─" * min(width, 100), style="dim"))
         parts.extend(_audit(report, audit))
-    if len(report.audits) > 1:
+    inputs = _inputs(report)
+    if inputs:
+        parts += [Text(""), *inputs]
+    if len(report.audits) + len(report.errors) > 1:
         verdict = "PASS" if report.passed else "FAIL"
+        unreadable = f", {len(report.errors)} unreadable" if report.errors else ""
+        parts += _summary(report)
         parts.append(
             Text.assemble(
                 ("overall ", "bold"),
                 (verdict, "bold green" if report.passed else "bold red"),
-                f" over {len(report.audits)} checkpoints",
+                f" over {len(report.audits)} checkpoints audited{unreadable}",
             )
         )
+    elif report.errors or not report.audits:
+        parts.append(Text.assemble(("overall ", "bold"), ("FAIL", "bold red"), ": nothing audited"))
     parts += [Text(""), Text(CAUTION, style="italic")]
     return to_text([Group(*parts)], color=color, width=width)
 

@@ -9,7 +9,7 @@ from steelyard.rules import _MODULES, registry
 
 EXPECTED = {
     "nonfinite", "dead-unit", "fan-in-norm", "twin-units",
-    "unsupported-weight", "untrained-layer", "constraint-breach",
+    "unsupported-weight", "untrained-layer", "constraint-breach", "uncovered-weights",
 }
 DOCS = Path(__file__).resolve().parents[2] / "docs"
 

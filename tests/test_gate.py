@@ -242,3 +242,22 @@ def test_links_in_a_folder_are_listed_not_followed(tmp_path: Path, rng: np.rando
     plan = api.plan([folder])
     assert plan.targets == [folder / "inside.safetensors"]
     assert [(Path(s.path).name, s.reason) for s in plan.skipped] == [("link.safetensors", "symbolic link, not followed")]
+
+
+def test_a_folder_with_nothing_to_audit_is_an_input_error(tmp_path: Path) -> None:
+    (tmp_path / "config.json").write_text("{}")
+    (tmp_path / "model.grads.safetensors").write_bytes(b"")
+    result = runner.invoke(app, ["audit", str(tmp_path), "-f", "json"])
+    assert result.exit_code == 2
+    document = json.loads(result.stdout)
+    assert document["audits"] == [] and document["gate"]["passed"] is False
+    assert "holding no checkpoint" in document["errors"][0]["reason"]
+
+
+def test_layers_states_coverage(tmp_path: Path, rng: np.random.Generator) -> None:
+    tensors = mlp_tensors(rng, (6, 16, 4)) | {"params/Dense_0/kernel": np.ones((3, 3), np.float32)}
+    path = write_safetensors(tmp_path / "m.safetensors", tensors)
+    document = json.loads(runner.invoke(app, ["layers", str(path), "-f", "json"]).stdout)
+    assert [u["tensor"] for u in document["coverage"]["uncovered"]] == ["params/Dense_0/kernel"]
+    table = runner.invoke(app, ["layers", str(path)]).stdout
+    assert "coverage" in table and "params/Dense_0/kernel" in table

@@ -9,6 +9,7 @@ it did not look at.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 from steelyard.graph import Checkpoint
 
@@ -51,6 +52,19 @@ def coverage_of(checkpoint: Checkpoint) -> Coverage:
     return Coverage(
         parameters=sum(t.size for t in counted), covered=covered, uncovered=tuple(missing)
     )
+
+
+def coverage_document(coverage: Coverage) -> dict[str, Any]:
+    """The ``coverage`` object of the JSON documents, every uncovered tensor listed."""
+    return {
+        "parameters": coverage.parameters,
+        "covered": coverage.covered,
+        "share": coverage.share,
+        "uncovered": [
+            {"tensor": u.name, "shape": list(u.shape), "parameters": u.parameters}
+            for u in coverage.uncovered
+        ],
+    }
 
 
 def describe(coverage: Coverage) -> str:

@@ -84,7 +84,14 @@ def plan(paths: Sequence[str | Path], exclude: Sequence[str | Path] = ()) -> Pla
     for raw in paths:
         path = Path(raw)
         if path.is_dir() and not path.is_symlink():
+            before = (len(result.targets), len(result.errors), len(result.maybe_parts))
             _walk(path, result, excluded)
+            if (len(result.targets), len(result.errors), len(result.maybe_parts)) == before:
+                # Fail closed: a folder that was named but holds nothing to audit is an
+                # input error, not an empty pass.
+                result.errors.append(
+                    InputError(str(path), "is a folder holding no checkpoint steelyard can read")
+                )
         else:
             # Named on the command line: audited as given (a missing or broken file becomes
             # an error entry of its own).

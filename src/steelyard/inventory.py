@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from steelyard.coverage import coverage_document, coverage_of
 from steelyard.graph import Checkpoint, Layer
 
 LAYERS_SCHEMA = "steelyard.layers/1"
@@ -44,4 +45,5 @@ def layers_document(checkpoint: Checkpoint) -> dict[str, Any]:
         "schema": LAYERS_SCHEMA,
         "checkpoint": checkpoint_block(checkpoint),
         "layers": [layer_block(layer) for layer in checkpoint.layers],
+        "coverage": coverage_document(coverage_of(checkpoint)),
     }

@@ -6,7 +6,7 @@ import json
 import math
 from typing import Any
 
-from steelyard.coverage import Coverage
+from steelyard.coverage import coverage_document
 from steelyard.findings import Finding
 from steelyard.report import AUDIT_SCHEMA, CheckpointAudit, Report
 
@@ -40,21 +40,6 @@ def finding_block(finding: Finding) -> dict[str, Any]:
     }
 
 
-def coverage_block(coverage: Coverage | None) -> dict[str, Any] | None:
-    """What the layer rules saw, with every counted tensor in no layer."""
-    if coverage is None:
-        return None
-    return {
-        "parameters": coverage.parameters,
-        "covered": coverage.covered,
-        "share": coverage.share,
-        "uncovered": [
-            {"tensor": u.name, "shape": list(u.shape), "parameters": u.parameters}
-            for u in coverage.uncovered
-        ],
-    }
-
-
 def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
     """The document of one checkpoint."""
     layers = []
@@ -69,7 +54,7 @@ def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
         "findings": [finding_block(f) for f in audit.findings],
         "summary": audit.counts(),
         "gate": {"fail_on": report.fail_on, "passed": not audit.failing(report.gate)},
-        "coverage": coverage_block(audit.coverage),
+        "coverage": None if audit.coverage is None else coverage_document(audit.coverage),
         "gradient_source": audit.gradient_source,
         "notes": list(audit.notes),
         "created": report.created,

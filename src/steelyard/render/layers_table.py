@@ -5,6 +5,7 @@ from __future__ import annotations
 from rich.table import Table
 from rich.text import Text
 
+from steelyard.coverage import coverage_of, describe
 from steelyard.graph import Checkpoint, Layer
 from steelyard.render.text import human_bytes, human_count, to_text
 
@@ -61,5 +62,11 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
     parts: list[object] = [header, table]
     if not checkpoint.layers:
         parts = [header, Text("no layers with stored weights were recognised")]
+    coverage = coverage_of(checkpoint)
+    parts.append(Text.assemble(("coverage ", "bold"), describe(coverage)))
+    if coverage.uncovered:
+        shown = ", ".join(u.name for u in coverage.uncovered[:8])
+        more = f" and {len(coverage.uncovered) - 8:,} more" if len(coverage.uncovered) > 8 else ""
+        parts.append(Text(f"in no layer: {shown}{more}", style="dim"))
     parts += [Text(f"note: {note}", style="dim") for note in checkpoint.notes]
     return to_text(parts, color=color, width=width)  # type: ignore[arg-type]

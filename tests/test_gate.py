@@ -261,3 +261,20 @@ def test_layers_states_coverage(tmp_path: Path, rng: np.random.Generator) -> Non
     assert [u["tensor"] for u in document["coverage"]["uncovered"]] == ["params/Dense_0/kernel"]
     table = runner.invoke(app, ["layers", str(path)]).stdout
     assert "coverage" in table and "params/Dense_0/kernel" in table
+
+
+def test_a_checkpoint_named_twice_is_audited_once(tmp_path: Path, rng: np.random.Generator) -> None:
+    path = write_safetensors(tmp_path / "m.safetensors", mlp_tensors(rng))
+    report = api.audit_many([path, tmp_path, tmp_path / "." / "m.safetensors"])
+    assert len(report.audits) == 1
+    assert [s.reason for s in report.skipped] == ["named more than once; audited once"] * 2
+
+
+def test_the_grads_sidecar_of_the_run_is_never_audited(tmp_path: Path, rng: np.random.Generator) -> None:
+    tensors = mlp_tensors(rng)
+    write_safetensors(tmp_path / "m.safetensors", tensors)
+    sidecar = write_safetensors(tmp_path / "support.safetensors", {k: np.abs(v) for k, v in tensors.items()})
+    report = api.audit_many([tmp_path], grads=sidecar)
+    assert [Path(str(a.checkpoint["path"])).name for a in report.audits] == ["m.safetensors"]
+    assert [s.reason for s in report.skipped] == ["the --grads sidecar of this run"]
+    assert report.audits[0].gradient_source is not None

@@ -96,6 +96,16 @@ def plan(paths: Sequence[str | Path], exclude: Sequence[str | Path] = ()) -> Pla
             # Named on the command line: audited as given (a missing or broken file becomes
             # an error entry of its own).
             result.targets.append(path)
+    # A file named twice (directly and through its folder) is one checkpoint, audited once.
+    seen: set[str] = set()
+    unique: list[Path] = []
+    for target in result.targets:
+        if _key(target) in seen:
+            result.skipped.append(Skipped(str(target), "named more than once; audited once"))
+            continue
+        seen.add(_key(target))
+        unique.append(target)
+    result.targets = unique
     return result
 
 

@@ -27,6 +27,7 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
+from steelyard.coverage import coverage_of
 from steelyard.errors import LoadError
 from steelyard.graph import (
     Activation,
@@ -629,6 +630,262 @@ def test_blocked_int4_dequantization() -> None:
         is checkpoint.tensors["blk_z"].role
         is TensorRole.BOOKKEEPING
     )
+
+
+# --- loop-carried weights -----------------------------------------------------------------------
+
+
+def _unit_rows(layer: Layer, inputs: np.ndarray, outputs: np.ndarray) -> None:
+    """Canonical row u · input = output unit u (plus the bias), as the runtime computed it."""
+    bias = layer.bias_vector()
+    expected = inputs @ layer.matrix().T + (0.0 if bias is None else bias)
+    np.testing.assert_allclose(outputs, expected, rtol=1e-5, atol=1e-5, err_msg=layer.name)
+
+
+_ONE = np.array(1, np.int64)
+
+
+def _step(scan: np.ndarray, *shape: int) -> np.ndarray:
+    """The one iteration of a scan output: stacked [1, ...] by the ONNX spec, while the
+    reference runtime concatenates along axis 0; for one trip both hold the same values."""
+    assert scan.size == math.prod(shape)
+    return scan.reshape(shape)
+
+
+def test_loop_carried_weights_become_layers_in_canonical_orientation() -> None:
+    # Each fixture hands main-graph initializers to a Loop body as state the body passes back
+    # unchanged. The reference runtime (onnx.reference.ReferenceEvaluator) runs one iteration
+    # on basis vectors e_i: the output for e_i is column i of the canonical matrix.
+    eye = np.eye(4, dtype=np.float32)
+
+    direct = load(ONNX_DIR / "loop_direct.onnx")
+    (layer,) = direct.layers
+    assert (layer.name, layer.weight, layer.bias) == ("rec_mm", "rec_W", "rec_b")
+    out = run(onnx.load(str(ONNX_DIR / "loop_direct.onnx")), {"trips": _ONE, "h0": eye})
+    _unit_rows(layer, eye, _step(out["hs"], 4, 4))
+
+    path = ONNX_DIR / "loop_transpose.onnx"
+    transposed = {layer.name: layer for layer in load(path).layers}
+    assert {n: (la.weight, la.units, la.in_per_group) for n, la in transposed.items()} == {
+        "proj": ("proj_P", 3, 4),  # stored [out, in], transposed in the body
+        "left": ("left_V", 2, 3),  # a constant left operand: rows are units as stored
+    }
+    out = run(onnx.load(str(path)), {"trips": _ONE, "x": eye})
+    _unit_rows(transposed["proj"], eye, _step(out["ys"], 4, 3))
+    np.testing.assert_array_equal(
+        transposed["proj"].weight_view(), reference_tensors(path)["proj_P"]
+    )
+    # z = V·yᵀ: unit u of `left` is row u of z.
+    _unit_rows(transposed["left"], _step(out["ys"], 4, 3), _step(out["zs"], 2, 4).T)
+    assert transposed["left"].inputs_from == ("proj",)
+
+    path = ONNX_DIR / "loop_gemm.onnx"
+    gemms = {layer.name: layer for layer in load(path).layers}
+    assert gemms["gemm_t"].bias == "gemm_c1"  # Gemm's C, carried like the weight
+    out = run(onnx.load(str(path)), {"trips": _ONE, "x": eye})
+    _unit_rows(gemms["gemm_t"], eye, _step(out["g1s"], 4, 3))
+    _unit_rows(gemms["gemm_n"], eye, _step(out["g2s"], 4, 2))  # alpha = 0.5 is part of the view
+
+
+def test_weights_carried_through_nested_loops_scan_and_if() -> None:
+    eye = np.eye(4, dtype=np.float32)
+    path = ONNX_DIR / "loop_nested.onnx"
+    (layer,) = load(path).layers
+    assert (layer.name, layer.weight) == ("inner_mm", "nest_W")
+    out = run(onnx.load(str(path)), {"trips": _ONE, "inner_trips": _ONE, "x": eye})
+    _unit_rows(layer, eye, _step(out["yos"], 4, 3))
+
+    # ONNX Scan: state variables come first and the body returns their next values first.
+    path = ONNX_DIR / "scan_state.onnx"
+    scanned = {layer.name: layer for layer in load(path).layers}
+    assert {n: la.weight for n, la in scanned.items()} == {
+        "scan_mm": "scan_S",
+        "scan_mm_t": "scan_Q",
+    }
+    out = run(onnx.load(str(path)), {"xs": eye[None]})
+    _unit_rows(scanned["scan_mm"], eye, _step(out["s1s"], 4, 3))
+    _unit_rows(scanned["scan_mm_t"], eye, _step(out["s2s"], 4, 2))
+
+    # If branches see the body's carried weights through the enclosing scope.
+    path = ONNX_DIR / "loop_if.onnx"
+    branches = {layer.name: layer for layer in load(path).layers}
+    assert {n: la.weight for n, la in branches.items()} == {
+        "then_mm": "branch_A",
+        "else_mm": "branch_C",
+    }
+    for flag, name in ((True, "then_mm"), (False, "else_mm")):
+        out = run(onnx.load(str(path)), {"trips": _ONE, "flag": np.array(flag), "x": eye})
+        _unit_rows(branches[name], eye, _step(out["picks"], 4, 3))
+
+
+def test_changing_loop_state_is_not_taken_for_a_weight() -> None:
+    path = ONNX_DIR / "loop_state.onnx"
+    checkpoint = load(path)
+    layers = {layer.name: layer for layer in checkpoint.layers}
+    # h starts at a constant but changes every step: MatMul(h, Wh) is a layer reading h, and
+    # neither the initial state nor the accumulator becomes a weight.
+    assert {n: la.weight for n, la in layers.items()} == {"state_rec": "Wh", "state_in": "Wx"}
+    assert all(la.bias is None for la in layers.values())
+    x = np.array([[0.5, -1.0, 0.25, 2.0]], np.float32)
+    out = run(onnx.load(str(path)), {"trips": np.array(2, np.int64), "x": x})
+    # Two steps of h ← tanh(h·Wh + x·Wx) from h = 0, through the layers' canonical views.
+    wh, wx = layers["state_rec"].matrix(), layers["state_in"].matrix()
+    h1 = np.tanh(x @ wx.T)
+    h2 = np.tanh(h1 @ wh.T + x @ wx.T)
+    np.testing.assert_allclose(out["h_last"], h2, rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["acc_last"], h1 + h2, rtol=1e-5, atol=1e-6)
+    assert int(out["count_last"]) == 4  # the carried integer step stays bookkeeping
+    roles = {k: t.role for k, t in checkpoint.tensors.items()}
+    assert roles["state_step"] is roles["state_count0"] is TensorRole.BOOKKEEPING
+
+
+@pytest.mark.parametrize(
+    "name",
+    ["loop_direct", "loop_transpose", "loop_gemm", "loop_nested", "scan_state", "loop_if"],
+)
+def test_loop_carried_weights_are_covered(name: str) -> None:
+    checkpoint = load(ONNX_DIR / f"{name}.onnx")
+    coverage = coverage_of(checkpoint)
+    assert coverage.parameters == sum(
+        a.size for a in reference_tensors(ONNX_DIR / f"{name}.onnx").values() if a.dtype.kind == "f"
+    )
+    assert coverage.uncovered == ()
+
+
+def test_loop_state_fed_from_its_own_output_terminates(tmp_path: Path) -> None:
+    # A hostile Loop whose carried input is its own output (a cycle) and a pass-through chain
+    # longer than any walk: the loader must finish and take neither for a constant.
+    chain = [
+        helper.make_node("Identity", [f"w{i}"], [f"w{i + 1}"], name=f"id{i}") for i in range(400)
+    ]
+    body = helper.make_graph(
+        [
+            helper.make_node("Identity", ["c"], ["c_out"]),
+            helper.make_node("Identity", ["W_in"], ["w0"]),
+            *chain,
+            helper.make_node("MatMul", ["x", "W_in"], ["y"], name="mm"),
+        ],
+        "body",
+        [
+            helper.make_tensor_value_info("i", TensorProto.INT64, []),
+            helper.make_tensor_value_info("c", TensorProto.BOOL, []),
+            _vi("W_in", [2, 2]),
+            _vi("V_in", [2, 2]),
+        ],
+        [
+            helper.make_tensor_value_info("c_out", TensorProto.BOOL, []),
+            _vi("w400", [2, 2]),
+            _vi("V_in", [2, 2]),
+            _vi("y", [1, 2]),
+        ],
+    )
+    graph = helper.make_graph(
+        [helper.make_node("Loop", ["n", "", "W", "V_last"], ["W_last", "V_last", "ys"], body=body)],
+        "g",
+        [_vi("x", [1, 2]), helper.make_tensor_value_info("n", TensorProto.INT64, [])],
+        [_vi("ys")],
+        initializer=[numpy_helper.from_array(np.ones((2, 2), np.float32), "W")],
+    )
+    checkpoint = load(_save(tmp_path, graph))
+    assert checkpoint.layers == ()  # W changes (the chain is too long to prove otherwise)
+
+
+# --- quantized scalars ------------------------------------------------------------------------
+
+#: (value positions, scale / zero-point positions) per op, from the operator specs:
+#: ONNX docs/Operators.md (DequantizeLinear x, x_scale, x_zero_point; QuantizeLinear x, y_scale,
+#: y_zero_point; QLinearMatMul a, a_scale, a_zero_point, b, b_scale, b_zero_point, y_scale,
+#: y_zero_point; QLinearConv x, x_scale, x_zero_point, w, w_scale, w_zero_point, y_scale,
+#: y_zero_point, B; MatMulInteger A, B, a_zero_point, b_zero_point; ConvInteger x, w,
+#: x_zero_point, w_zero_point) and onnxruntime
+#: docs/ContribOperators.md (com.microsoft QLinearMul / QLinearAdd A, A_scale, A_zero_point, B,
+#: B_scale, B_zero_point, C_scale, C_zero_point; QGemm A, a_scale, a_zero_point, B, b_scale,
+#: b_zero_point, C, y_scale, y_zero_point). Every input of any other op is a value.
+_QUANT_SPEC = {
+    "DequantizeLinear": ((0,), (1, 2)),
+    "QuantizeLinear": ((0,), (1, 2)),
+    "QLinearMatMul": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    "QLinearConv": ((0, 3, 8), (1, 2, 4, 5, 6, 7)),
+    "MatMulInteger": ((0, 1), (2, 3)),
+    "ConvInteger": ((0, 1), (2, 3)),
+    "QLinearMul": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    "QLinearAdd": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    "QGemm": ((0, 3, 6), (1, 2, 4, 5, 7, 8)),
+}
+
+
+def _weights_by_spec(model: onnx.ModelProto) -> set[str]:
+    """Initializers some op computes with (a value input), per the specs above."""
+    stored = {init.name for init in model.graph.initializer}
+    # MatMulInteger has no scale input: exporters multiply its int32 result by
+    # input scale × weight scale, the input scale being DynamicQuantizeLinear's second output
+    # (common practice of onnxruntime's dynamic quantization, no source).
+    input_scales = {n.output[1] for n in model.graph.node if n.op_type == "DynamicQuantizeLinear"}
+    weights: set[str] = set()
+    for node in model.graph.node:
+        values, _scales = _QUANT_SPEC.get(node.op_type, (range(len(node.input)), ()))
+        if node.op_type == "Mul" and input_scales & set(node.input):
+            values = ()
+        weights |= {node.input[p] for p in values if p < len(node.input)} & stored
+    return weights
+
+
+@pytest.mark.parametrize("name", ["quant_scalars.onnx", "quant_contrib.onnx", "quant.onnx"])
+def test_counted_tensors_follow_the_operator_specs(name: str) -> None:
+    path = ONNX_DIR / name
+    checkpoint = load(path)
+    model = onnx.load(str(path))
+    expected = _weights_by_spec(model)
+    counted = {t.name for t in checkpoint.counted}
+    assert counted == expected
+    reference = reference_tensors(path)
+    assert checkpoint.parameters == sum(reference[k].size for k in expected)
+    for key in set(reference) - expected:
+        assert checkpoint.tensors[key].role is TensorRole.BOOKKEEPING, key
+
+
+def test_scalar_weights_of_quantized_models_are_counted() -> None:
+    scalars = load(ONNX_DIR / "quant_scalars.onnx")
+    roles = {k: t.role for k, t in scalars.tensors.items()}
+    assert scalars.tensors["gain_q"].shape == ()  # a 0-d quantized weight feeding a Mul
+    assert roles["gain_q"] is TensorRole.QUANTIZED
+    # alpha multiplies the activations and is also a DequantizeLinear scale: it is a weight.
+    assert roles["alpha"] is TensorRole.PARAMETER
+    assert roles["beta"] is TensorRole.PARAMETER  # a float weight quantized at run time
+    for key in ("gain_s", "gain_z", "lw_s", "lw_z", "qm_bs", "qm_bz", "mi_bz", "mi_bs"):
+        assert roles[key] is TensorRole.BOOKKEEPING, key
+    contrib = load(ONNX_DIR / "quant_contrib.onnx")
+    roles = {k: t.role for k, t in contrib.tensors.items()}
+    assert contrib.tensors["m_b"].shape == ()
+    assert {k for k, r in roles.items() if r is TensorRole.QUANTIZED} == {
+        "m_b",
+        "a_b",
+        "g_b",
+        "g_c",
+    }
+    assert contrib.parameters == 1 + 4 + 12 + 3
+
+
+def test_per_tensor_dequantize_of_a_vector_ignores_the_default_axis(tmp_path: Path) -> None:
+    # ONNX DequantizeLinear: a per-tensor (scalar) scale ignores `axis`, whose default (1) lies
+    # outside a 1-D input.
+    q = numpy_helper.from_array(np.array([-3, 7, 100], np.int8), "c_q")
+    s = numpy_helper.from_array(np.array(0.25, np.float32), "c_s")
+    w = numpy_helper.from_array(np.arange(6, dtype=np.float32).reshape(3, 2), "W")
+    graph = helper.make_graph(
+        [
+            helper.make_node("DequantizeLinear", ["c_q", "c_s"], ["c"], name="dq_c"),
+            helper.make_node("Gemm", ["x", "W", "c"], ["y"], name="fc", transB=1),
+        ],
+        "g",
+        [_vi("x", [1, 2])],
+        [_vi("y", [1, 3])],
+        initializer=[q, s, w],
+    )
+    path = _save(tmp_path, graph, opset=21)
+    (layer,) = load(path).layers
+    out = run(with_outputs(path, ["c"]), {"x": np.zeros((1, 2), np.float32)})
+    np.testing.assert_array_equal(layer.bias_vector(), out["c"])  # reference: onnx.reference
 
 
 # --- names and scopes -------------------------------------------------------------------------

@@ -8,6 +8,15 @@ them through look-through views
 (:mod:`steelyard.loaders.onnx_quant`). Links, biases, norms and activations come from the
 node graph (:mod:`steelyard.loaders.onnx_graph`), so they are exact, never guessed.
 
+A Loop or Scan state that the body hands back unchanged holds its initial value in every
+iteration; when that value is a constant (exporters carry weights into loop bodies so), ops in
+the body read it as that constant, and the layer it feeds names the outer initializer.
+
+What counts as a parameter follows how ops read each stored tensor: a value some op computes
+with (a float initializer, a quantized weight or bias) counts; a tensor read only as a scale,
+a zero point or a shape does not. A tensor read both ways (exporters merge equal constants)
+counts.
+
 Canonical views, rows are always output units:
 
 * Gemm: ``alpha·B`` as ``[out, in]`` (``B`` when ``transB=1``, ``Bᵀ`` otherwise); bias ``beta·C``
@@ -55,10 +64,10 @@ from steelyard.loaders.onnx_consts import FileBytes, Node, text
 from steelyard.loaders.onnx_fold import Folder, View
 from steelyard.loaders.onnx_graph import Graphs, Tracer, per_unit
 from steelyard.loaders.onnx_quant import (
-    ROLE_INPUTS,
     QuantWeight,
     conv_integer,
     dequantize,
+    input_roles,
     integer_scale,
     matmul_integer,
     qlinear_conv,
@@ -143,7 +152,8 @@ class _Builder:
         self.graphs = graphs
         self.folder = folder
         self.notes: list[str] = []
-        self.bookkeeping: set[str] = set()
+        self.scale_uses: set[tuple[int, int]] = set()
+        """(node index, input position) where a ConvInteger/MatMulInteger weight scale is read."""
         counts = Counter(n.name for n in graphs.nodes if n.name)
         self._unique = {name for name, count in counts.items() if count == 1}
 
@@ -393,9 +403,10 @@ class _Builder:
             return self._quantized(node, qlinear_conv(self.folder, node), LayerKind.CONV, groups)
         if node.op == "QLinearMatMul":
             return self._quantized(node, qlinear_matmul(self.folder, node), LayerKind.DENSE, 1)
-        scale, after = integer_scale(self.graphs.consumers, self.graphs.producer, self.folder, node)
-        if scale is not None:
-            self.bookkeeping.update(self.folder.fold(scale).sources)  # type: ignore[union-attr]
+        rescale = integer_scale(self.graphs.consumers, self.graphs.producer, self.folder, node)
+        scale, after = rescale.key, rescale.out
+        if rescale.use is not None:
+            self.scale_uses.add(rescale.use)
         if node.op == "ConvInteger":
             found = conv_integer(self.folder, node, scale)
             return self._quantized(node, found, LayerKind.CONV, groups, after)
@@ -523,20 +534,76 @@ def _heads(layers: tuple[Layer, ...], drafts: list[_Draft], reach: set[str]) -> 
     return tuple(out)
 
 
-def _roles(
-    graphs: Graphs, folder: Folder, drafts: list[_Draft], bookkeeping: set[str]
-) -> dict[str, TensorRole]:
+#: Ops whose constant output is a view of their constant input (see :mod:`onnx_fold`): their
+#: inputs are not where a weight is used, the op that reads their output is.
+_LOOK_THROUGH = {
+    "Identity",
+    "Cast",
+    "Transpose",
+    "Reshape",
+    "Flatten",
+    "Squeeze",
+    "Unsqueeze",
+    "Slice",
+    "Concat",
+    "DequantizeLinear",
+}
+#: Float inputs that are shapes, not weights (ONNX Resize ``roi, scales``; Upsample ``scales``).
+_SHAPE_INPUTS = {"Resize": (1, 2, 3), "Upsample": (1,)}
+_CONTROL_FLOW = ("If", "Loop", "Scan")
+
+
+def _uses(
+    graphs: Graphs, folder: Folder, scale_uses: set[tuple[int, int]]
+) -> tuple[set[str], set[str], set[str]]:
+    """Stored tensors by how ops read them: (quantized values, scales/zero points/shapes, values).
+
+    Each op input that folds to constants counts for the stored tensors behind it. Look-through
+    ops building a constant are skipped (the op reading the result is the use), as are
+    control-flow nodes (their bodies' ops are the uses).
+    """
     quantized: set[str] = set()
-    book = set(bookkeeping)
+    book: set[str] = set()
+    value: set[str] = set()
     for node in graphs.nodes:
-        spec = ROLE_INPUTS.get(node.op) if node.standard or node.domain == "com.microsoft" else None
-        if spec is None:
+        if not node.standard and node.domain != "com.microsoft":
             continue
-        for positions, target in ((spec[0], quantized), (spec[1], book)):
-            for position in positions:
-                view = folder.fold(node.input(position))
-                if view is not None:
-                    target.update(view.sources)
+        if node.standard and node.op in _CONTROL_FLOW:
+            continue
+        spec = input_roles(node)
+        building = (
+            node.op in _LOOK_THROUGH and len(node.outputs) == 1 and folder.is_const(node.outputs[0])
+        )
+        if building and spec is None:
+            continue
+        for position, key in enumerate(node.inputs):
+            view = folder.fold(key) if key else None
+            if view is None:
+                continue
+            scale = (
+                (node.index, position) in scale_uses
+                or position in _SHAPE_INPUTS.get(node.op, ())
+                or (spec is not None and position in spec[1])
+            )
+            if scale:
+                book.update(view.sources)
+            elif spec is not None and position in spec[0]:
+                quantized.update(view.sources)
+            elif not building:
+                value.update(view.sources)
+            book.update(view.aux)  # scales and zero points a DequantizeLinear was read through
+    return quantized, book, value
+
+
+def _roles(
+    graphs: Graphs, folder: Folder, drafts: list[_Draft], scale_uses: set[tuple[int, int]]
+) -> dict[str, TensorRole]:
+    """Count a stored tensor when the model computes with it; not when it only scales or shapes.
+
+    A tensor read both ways (exporters merge equal constants, so one scalar may be a weight
+    and a scale at once) is a weight: it is part of what the model computes.
+    """
+    quantized, book, value = _uses(graphs, folder, scale_uses)
     used: set[str] = set()
     for draft in drafts:
         used.update(_sources(draft.weight))
@@ -544,13 +611,15 @@ def _roles(
             used.add(draft.bias)
     roles: dict[str, TensorRole] = {}
     for key, stored in graphs.stored.items():
-        is_int = not stored.dtype.is_float
-        if is_int and (key in quantized or key in used):
+        if stored.dtype.is_float:
+            weight = key in used or key in quantized or key in value
+            roles[key] = (
+                TensorRole.BOOKKEEPING if key in book and not weight else TensorRole.PARAMETER
+            )
+        elif key in used or key in quantized:
             roles[key] = TensorRole.QUANTIZED
-        elif key in book and key not in used:
-            roles[key] = TensorRole.BOOKKEEPING
         else:
-            roles[key] = TensorRole.PARAMETER if stored.dtype.is_float else TensorRole.BOOKKEEPING
+            roles[key] = TensorRole.BOOKKEEPING
     return roles
 
 
@@ -587,12 +656,12 @@ class OnnxLoader:
         model = parse_model(path, files.size)
         graphs = Graphs(files)
         graphs.walk(model.graph)
-        folder = Folder(graphs.stored, graphs.producer, path, dequantize)
+        folder = Folder(graphs.stored, graphs.producer, path, dequantize, graphs.invariant)
         builder = _Builder(graphs, folder)
         drafts = builder.drafts()
         _unique_names(drafts)
         layers = _layers(graphs, folder, drafts)
-        roles = _roles(graphs, folder, drafts, builder.bookkeeping)
+        roles = _roles(graphs, folder, drafts, builder.scale_uses)
         tensors = {
             key: Tensor(
                 name=key, shape=s.shape, dtype=s.dtype.name, role=roles[key], reader=s.reader

@@ -56,11 +56,14 @@ class Folder:
         producer: Mapping[str, tuple[Node, int]],
         path: Path,
         dequantize: Dequantize | None = None,
+        invariant: Mapping[str, str] | None = None,
     ) -> None:
         self.stored = stored
         self.producer = producer
         self.path = path
         self._dequantize = dequantize
+        self.invariant: Mapping[str, str] = invariant or {}
+        """Loop/Scan body input → the outer value it holds in every iteration."""
         self._memo: dict[str, View | None] = {}
         self._active: set[str] = set()
 
@@ -106,7 +109,9 @@ class Folder:
             return View(stored.key, stored.shape, stored.dtype, stored.reader, (stored.key,))
         found = self.producer.get(key)
         if found is None:
-            return None
+            outer = self.invariant.get(key)
+            # A loop-invariant state is its initial value: a constant when that is one.
+            return self.fold(outer) if outer else None
         node, _ = found
         if node.op == "DequantizeLinear" and node.domain in ("", "ai.onnx", "com.microsoft"):
             return self._dequantize(self, node) if self._dequantize else None

@@ -51,6 +51,9 @@ class Graphs:
         """The reverse of :attr:`forward`."""
         self.skipped: list[str] = []
         """Stored tensors left out (string tensors)."""
+        self.invariant: dict[str, str] = {}
+        """Body input → the outer value it holds in every iteration: a Loop/Scan state that the
+        body hands back unchanged (a weight carried through the loop)."""
         self._keys: set[str] = set()
 
     def walk(self, graph: Any) -> None:
@@ -170,6 +173,41 @@ class Graphs:
             if source and target:
                 self.forward[source].append(target)
                 self.backward[target].append(source)
+        for outer, inner, back in self._carried(node, sub_in, sub_out):
+            if outer and inner and self._passes_through(back, inner):
+                self.invariant[inner] = outer
+
+    @staticmethod
+    def _carried(node: Node, sub_in: list[str], sub_out: list[str]) -> list[tuple[str, str, str]]:
+        """(outer initial value, body input, body output) of each loop-carried state."""
+        if node.op == "Loop":
+            # ONNX Loop: inputs (M, cond, v_initial...), body (iter, cond, v...) → (cond, v...).
+            return list(zip(node.inputs[2:], sub_in[2:], sub_out[1:], strict=False))
+        if node.op == "Scan" and len(node.inputs) == len(sub_in):
+            # ONNX Scan (opset 9+): the first N - num_scan_inputs inputs are state variables,
+            # and the body's first outputs are their next values. Scan-8 (sequence_lens first,
+            # so the counts differ) is left alone.
+            states = len(node.inputs) - node.get_int("num_scan_inputs", len(node.inputs))
+            return list(zip(node.inputs[:states], sub_in[:states], sub_out[:states], strict=False))
+        return []
+
+    def _passes_through(self, value: str, body_input: str) -> bool:
+        """True when a body output is the body input itself, possibly through Identity nodes.
+
+        Such a state holds its initial value in every iteration, so when that value is a
+        constant the body computes with a constant (exporters carry weights so).
+        """
+        for _ in range(MAX_STEPS):
+            if value == body_input:
+                return True
+            found = self.producer.get(value)
+            if found is None:
+                return False
+            node = found[0]
+            if not (node.standard and node.op == "Identity" and len(node.inputs) == 1):
+                return False
+            value = node.inputs[0]
+        return False
 
 
 # --- tracing ----------------------------------------------------------------------------------

@@ -69,7 +69,8 @@ def dequantize(folder: Folder, node: Node) -> View | None:
         return None
     read_q, read_s = q.read, scale.read
     read_z = zero.read if zero is not None else None
-    length = q.shape[axis] if rank else 0
+    # Per-tensor scales ignore the axis (ONNX DequantizeLinear), which may then lie outside q.
+    length = q.shape[axis] if mode == "block" else 0
 
     def read() -> np.ndarray:
         values = np.asarray(read_q()).astype(np.float32)
@@ -192,12 +193,24 @@ def matmul_integer(folder: Folder, node: Node, scale_key: str | None) -> QuantWe
     )
 
 
+@dataclass(frozen=True)
+class IntegerScale:
+    """The weight scale found after a ConvInteger/MatMulInteger (see :func:`integer_scale`)."""
+
+    key: str | None
+    """The constant weight scale, None when none was found."""
+    out: str | None
+    """The rescaled value (where the layer's float units are), None when not found."""
+    use: tuple[int, int] | None = None
+    """(node index, input position) where the scale is read: a bookkeeping use, not a weight."""
+
+
 def integer_scale(
     consumers: Mapping[str, list[tuple[Node, int]]],
     producer: Mapping[str, tuple[Node, int]],
     folder: Folder,
     node: Node,
-) -> tuple[str | None, str | None]:
+) -> IntegerScale:
     """The constant weight scale applied after ConvInteger/MatMulInteger, and the rescaled value.
 
     Exporters write ``Cast(int32 → float) → Mul(·, s)`` with ``s`` the weight scale itself or
@@ -208,32 +221,71 @@ def integer_scale(
     for _ in range(2):
         users = consumers.get(key, [])
         if len(users) != 1:
-            return None, None
+            return IntegerScale(None, None)
         user, position = users[0]
         if user.op == "Cast":
             key = user.outputs[0] if user.outputs else ""
             continue
         if user.op != "Mul":
-            return None, None
+            return IntegerScale(None, None)
         other = user.input(1 - position)
         out = user.outputs[0] if user.outputs else None
         if folder.is_const(other):
-            return other, out
+            return IntegerScale(other, out, (user.index, 1 - position))
         found = producer.get(other)
         if found is not None and found[0].op == "Mul":
-            consts = [k for k in found[0].inputs if folder.is_const(k)]
+            consts = [p for p, k in enumerate(found[0].inputs) if folder.is_const(k)]
             if len(consts) == 1:
-                return consts[0], out
-        return None, out
-    return None, None
+                return IntegerScale(found[0].inputs[consts[0]], out, (found[0].index, consts[0]))
+        return IntegerScale(None, out)
+    return IntegerScale(None, None)
 
 
-#: op → (input positions holding quantized weights, positions holding scales / zero points).
-ROLE_INPUTS: dict[str, tuple[tuple[int, ...], tuple[int, ...]]] = {
+#: (input positions holding quantized values, positions holding scales / zero points).
+#: A constant in a value position is a weight of the model; one in a scale or zero-point
+#: position is bookkeeping. Sources: the ONNX operator spec (docs/Operators.md:
+#: DequantizeLinear ``x, x_scale, x_zero_point``; QuantizeLinear ``x, y_scale, y_zero_point``
+#: (x is float: a plain value); QLinearConv ``x, x_scale, x_zero_point, w, w_scale,
+#: w_zero_point, y_scale, y_zero_point, B``; QLinearMatMul ``a, a_scale, a_zero_point, b,
+#: b_scale, b_zero_point, y_scale, y_zero_point``; ConvInteger ``x, w, x_zero_point,
+#: w_zero_point``; MatMulInteger ``A, B, a_zero_point, b_zero_point``) and onnxruntime's
+#: contrib operator spec (docs/ContribOperators.md, domain com.microsoft).
+_STANDARD_ROLES: dict[str, tuple[tuple[int, ...], tuple[int, ...]]] = {
     "DequantizeLinear": ((0,), (1, 2)),
     "QuantizeLinear": ((), (1, 2)),
-    "QLinearConv": ((3, 8), (1, 2, 4, 5, 6, 7)),
+    "QLinearConv": ((0, 3, 8), (1, 2, 4, 5, 6, 7)),
     "QLinearMatMul": ((0, 3), (1, 2, 4, 5, 6, 7)),
-    "ConvInteger": ((1,), (2, 3)),
+    "ConvInteger": ((0, 1), (2, 3)),
     "MatMulInteger": ((0, 1), (2, 3)),
 }
+_CONTRIB_ROLES: dict[str, tuple[tuple[int, ...], tuple[int, ...]]] = {
+    **_STANDARD_ROLES,
+    # A, A_scale, A_zero_point, B, B_scale, B_zero_point, C_scale, C_zero_point
+    "QLinearAdd": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    "QLinearMul": ((0, 3), (1, 2, 4, 5, 6, 7)),
+    # A, a_scale, a_zero_point, B, b_scale, b_zero_point, C, y_scale, y_zero_point
+    "QGemm": ((0, 3, 6), (1, 2, 4, 5, 7, 8)),
+    # X, X_scale, X_zero_point, Y_scale, Y_zero_point
+    "QLinearSigmoid": ((0,), (1, 2, 3, 4)),
+    "QLinearLeakyRelu": ((0,), (1, 2, 3, 4)),
+    "QLinearAveragePool": ((0,), (1, 2, 3, 4)),
+    "QLinearGlobalAveragePool": ((0,), (1, 2, 3, 4)),
+    # A, B, b_scale, b_zero_point, bias
+    "DynamicQuantizeMatMul": ((1, 4), (2, 3)),
+    # A, B, a_scale, b_scale, a_zero_point, b_zero_point, bias
+    "MatMulIntegerToFloat": ((0, 1, 6), (2, 3, 4, 5)),
+}
+
+
+def input_roles(node: Node) -> tuple[tuple[int, ...], tuple[int, ...]] | None:
+    """(quantized value positions, scale / zero-point positions) of a quantized op, else None."""
+    if node.standard:
+        return _STANDARD_ROLES.get(node.op)
+    if node.domain != "com.microsoft":
+        return None
+    if node.op == "QLinearConcat":
+        # Y_scale, Y_zero_point, then (tensor, scale, zero point) per input.
+        count = len(node.inputs)
+        values = tuple(p for p in range(2, count) if (p - 2) % 3 == 0)
+        return values, tuple(p for p in range(count) if p not in values)
+    return _CONTRIB_ROLES.get(node.op)

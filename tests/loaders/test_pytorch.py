@@ -27,13 +27,20 @@ from hypothesis import strategies as st
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, TensorRole
-from steelyard.loaders import load
+from steelyard.loaders import load, sniff_format
 from steelyard.loaders.pytorch import PytorchLoader
 from tests.conftest import FIXTURES
 
 TORCH = FIXTURES / "real" / "torch"
 EXPECTED: dict[str, Any] = json.loads((TORCH / "expected.json").read_text())
-REAL = sorted(p.stem for p in TORCH.glob("*.pt"))
+SCRIPTED: dict[str, Any] = EXPECTED["torchscript"]
+#: Every real file by stem, whatever its ending, except archives with no module state at all.
+REAL = {
+    p.stem: p
+    for pattern in ("*.pt", "*.jit", "*.ts")
+    for p in sorted(TORCH.glob(pattern))
+    if SCRIPTED.get(p.stem, {"state_dict": [""]})["state_dict"]
+}
 
 
 def _expected(stem: str) -> dict[str, np.ndarray]:
@@ -44,9 +51,9 @@ def _expected(stem: str) -> dict[str, np.ndarray]:
 # --------------------------------------------------------------------------- real torch files
 
 
-@pytest.mark.parametrize("stem", REAL)
+@pytest.mark.parametrize("stem", sorted(REAL))
 def test_tensors_equal_what_torch_loaded(stem: str) -> None:
-    checkpoint = load(TORCH / f"{stem}.pt")
+    checkpoint = load(REAL[stem])
     expected = _expected(stem)  # reference: torch.load / torch.jit.load at generation time
     names = {k for k in expected if not k.startswith("bits/")}
     assert checkpoint.format is Format.PYTORCH
@@ -132,6 +139,86 @@ def test_torchscript_names_and_notes() -> None:
     expected = _expected("ts_cnn")  # reference: torch.jit.load(...).state_dict()
     assert list(checkpoint.tensors) == list(expected)
     assert any("TorchScript" in note for note in checkpoint.notes)
+
+
+@pytest.mark.parametrize("stem", ["ts_cnn", "ts_traced_consts", "ts_buffers", "ts_recurrent"])
+def test_torchscript_counts_equal_torchs_state_dict(stem: str) -> None:
+    checkpoint = load(REAL[stem])
+    if stem == "ts_cnn":  # written before the counts were recorded: count torch's npz
+        expected = _expected(stem)
+        names = list(expected)
+        floats = sum(a.size for a in expected.values() if a.dtype.kind == "f")
+    else:
+        # reference: torch.jit.load(path).state_dict() at generation time, and
+        # sum(p.numel() for p in state_dict().values() if p.dtype.is_floating_point)
+        names, floats = SCRIPTED[stem]["state_dict"], SCRIPTED[stem]["state_dict_floats"]
+    assert list(checkpoint.tensors) == names
+    assert checkpoint.parameters == floats
+
+
+def test_torchscript_code_constants_and_plain_attributes_are_not_state() -> None:
+    traced = load(REAL["ts_traced_consts"])
+    facts = SCRIPTED["ts_traced_consts"]
+    assert facts["constants"] == 1  # torch's code_with_constants: CONSTANTS.c0
+    assert not any(name.startswith("CONSTANTS") for name in traced.tensors)
+    count = facts["constants"]
+    values = facts["constant_tensor_elements"]
+    assert any(f"{count} tensor ({values} values) in constants.pkl" in n for n in traced.notes)
+    # A tensor set as a plain attribute is stored in the archive but is not module state.
+    buffers = load(REAL["ts_buffers"])
+    assert "plain" not in buffers.tensors
+    assert any("'plain'" in note and "not counted" in note for note in buffers.notes)
+    # The non-persistent buffer is state for TorchScript (it keeps no persistence flag), so
+    # torch's count of the loaded module exceeds the eager module's by exactly its size.
+    scripted = SCRIPTED["ts_buffers"]
+    assert scripted["state_dict_floats"] - scripted["eager_state_dict_floats"] == 6
+    assert buffers.tensors["scratch"].shape == (6,)
+    assert buffers.tensors["steps"].role is TensorRole.BOOKKEEPING  # an int64 buffer
+    # The LSTM's list of flat weights repeats its parameters and adds nothing.
+    recurrent = load(REAL["ts_recurrent"])
+    assert not any("_flat_weights" in name for name in recurrent.tensors)
+
+
+def test_frozen_torchscript_is_an_input_error_naming_its_constants() -> None:
+    facts = SCRIPTED["ts_frozen"]
+    assert facts["state_dict"] == []  # torch.jit.freeze moved every weight into the code
+    count, values = facts["constants"], facts["constant_tensor_elements"]
+    _refused(TORCH / facts["file"], f"{count} constants of its code ({values} values)", "freez")
+
+
+@pytest.mark.parametrize("ending", [".pt", ".jit", ".ts", ".bin", ""])
+@pytest.mark.parametrize("stem", ["ts_cnn", "ts_traced_consts", "ts_buffers"])
+def test_torchscript_recognised_by_content_whatever_the_ending(
+    tmp_path: Path, stem: str, ending: str
+) -> None:
+    copy = tmp_path / f"model{ending}"
+    copy.write_bytes(REAL[stem].read_bytes())
+    assert sniff_format(copy) == str(Format.PYTORCH)
+    original, renamed = load(REAL[stem]), load(copy)
+    assert list(renamed.tensors) == list(original.tensors)
+    assert renamed.parameters == original.parameters
+
+
+def test_torchscript_code_is_never_run(tmp_path: Path) -> None:
+    canary = tmp_path / "canary"
+    module = Raw(
+        _global("__torch__.m", "Net") + b")\x81" + _emit({"w": T("0", 1, (1,), (1,))}) + b"b"
+    )
+    code = (
+        f"import os\nos.system('touch {canary}')\n"
+        'class Net(Module):\n  __parameters__ = ["w", ]\n'
+        "  def forward(self: __torch__.m.Net, x: Tensor) -> Tensor:\n"
+        f"    return torch.add(x, os.system('touch {canary}'))\n"
+    ).encode()
+    path = _archive(
+        tmp_path / "run_me.ts",
+        _pickle(module),
+        {"0": _floats(np.ones(1))},
+        extra={"archive/code/__torch__/m.py": code, "archive/constants.pkl": _pickle(())},
+    )
+    checkpoint = load(path)
+    assert list(checkpoint.tensors) == ["w"] and checkpoint.parameters == 1
+    assert not canary.exists()
 
 
 def test_protocol_4_file_with_parameter_and_plain_values() -> None:
@@ -642,7 +729,15 @@ def test_over_long_text_integer(tmp_path: Path) -> None:
 
 # --------------------------------------------------------------------------- fuzzing
 
-_FUZZ = ["mlp_state_dict", "train_sgd", "legacy_mlp", "ts_cnn", "views_shared"]
+_FUZZ = [
+    "mlp_state_dict",
+    "train_sgd",
+    "legacy_mlp",
+    "ts_cnn",
+    "ts_traced_consts",
+    "ts_buffers",
+    "views_shared",
+]
 
 
 @settings(
@@ -658,7 +753,7 @@ _FUZZ = ["mlp_state_dict", "train_sgd", "legacy_mlp", "ts_cnn", "views_shared"]
 def test_damaged_files_read_or_fail_cleanly(
     tmp_path: Path, stem: str, cut: float | None, flips: list[tuple[float, int]]
 ) -> None:
-    data = bytearray((TORCH / f"{stem}.pt").read_bytes())
+    data = bytearray(REAL[stem].read_bytes())
     for where, mask in flips:
         data[min(int(where * len(data)), len(data) - 1)] ^= mask
     if cut is not None:
@@ -693,7 +788,9 @@ def test_torch_is_never_imported() -> None:
     suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow],
 )
 @given(
-    stem=st.sampled_from(["train_adam", "ts_cnn", "views_shared", "protocol4_extras"]),
+    stem=st.sampled_from(
+        ["train_adam", "ts_cnn", "ts_recurrent", "views_shared", "protocol4_extras"]
+    ),
     edits=st.lists(
         st.tuples(st.floats(0.0, 1.0), st.integers(0, 2), st.binary(min_size=1, max_size=6)),
         min_size=1,
@@ -704,7 +801,7 @@ def test_damaged_pickles_read_or_fail_cleanly(
     tmp_path: Path, stem: str, edits: list[tuple[float, int, bytes]]
 ) -> None:
     # Edit the pickle itself and re-zip it with a valid CRC, so the unpickler sees the damage.
-    with zipfile.ZipFile(TORCH / f"{stem}.pt") as archive:
+    with zipfile.ZipFile(REAL[stem]) as archive:
         members = [(info.filename, archive.read(info)) for info in archive.infolist()]
     name, data = next((n, bytearray(d)) for n, d in members if n.endswith("/data.pkl"))
     for where, action, blob in edits:

@@ -1338,7 +1338,13 @@ def _mutate(data: bytes, kind: str, position: int, value: int, length: int) -> b
 
 _SAMPLES = {
     name: (ONNX_DIR / name).read_bytes()
-    for name in ("mlp_seq.onnx", "quant.onnx", "constants.onnx")
+    for name in (
+        "mlp_seq.onnx",
+        "quant.onnx",
+        "constants.onnx",
+        "loop_nested.onnx",
+        "quant_contrib.onnx",
+    )
 }
 
 

@@ -187,7 +187,7 @@ class Graphs:
             # ONNX Scan (opset 9+): the first N - num_scan_inputs inputs are state variables,
             # and the body's first outputs are their next values. Scan-8 (sequence_lens first,
             # so the counts differ) is left alone.
-            states = len(node.inputs) - node.get_int("num_scan_inputs", len(node.inputs))
+            states = max(0, len(node.inputs) - node.get_int("num_scan_inputs", len(node.inputs)))
             return list(zip(node.inputs[:states], sub_in[:states], sub_out[:states], strict=False))
         return []
 

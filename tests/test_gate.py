@@ -278,3 +278,16 @@ def test_the_grads_sidecar_of_the_run_is_never_audited(tmp_path: Path, rng: np.r
     assert [Path(str(a.checkpoint["path"])).name for a in report.audits] == ["m.safetensors"]
     assert [s.reason for s in report.skipped] == ["the --grads sidecar of this run"]
     assert report.audits[0].gradient_source is not None
+
+
+def test_torchscript_is_found_by_content_whatever_its_ending(tmp_path: Path) -> None:
+    # .ts is also TypeScript: such a file is a checkpoint only when its content says so.
+    for name in ("model.jit", "model.ts", "model.pts"):
+        shutil.copy(REAL / "torch" / "ts_cnn.pt", tmp_path / name)
+    (tmp_path / "viewer.ts").write_text("export const x: number = 1;\n")
+    shutil.copy(DEMO / "pumpwear-healthy.onnx", tmp_path / "m.onnx")  # an ONNX model beside them
+    report = api.audit_many([tmp_path])
+    assert sorted(Path(str(a.checkpoint["path"])).name for a in report.audits) == [
+        "m.onnx", "model.jit", "model.pts", "model.ts",
+    ]
+    assert not report.errors and any("1 other file" in n for n in report.notes)

@@ -46,6 +46,9 @@ UNREAD_SUFFIXES = frozenset(
     {".gguf", ".tflite", ".pb", ".mlmodel", ".msgpack", ".npy", ".pkl", ".pt2", ".joblib"}
 )
 
+#: Endings other files share (``.ts`` is also TypeScript): a checkpoint only by content.
+CONTENT_ONLY_SUFFIXES = frozenset({".ts", ".pts"})
+
 INDEX_SUFFIX = ".safetensors.index.json"
 
 #: Training state that sits beside the weights in trainer output folders (optimizer,
@@ -197,6 +200,11 @@ def _classify(folder: Path, files: list[Path], result: Plan, excluded: set[str])
                 result.maybe_parts.append(path)
             else:
                 result.targets.append(path)
+        elif path.suffix in CONTENT_ONLY_SUFFIXES:
+            if sniff_format(path) is not None:
+                result.targets.append(path)
+            else:
+                result.ignored_files += 1
         elif path.parent in onnx_folders and sniff_format(path) is None:
             # ``model.onnx.data``, ``weights.pb``…: external data, decided after the audit.
             result.maybe_parts.append(path)

@@ -193,7 +193,7 @@ def test_torchscript_recognised_by_content_whatever_the_ending(
 ) -> None:
     copy = tmp_path / f"model{ending}"
     copy.write_bytes(REAL[stem].read_bytes())
-    assert sniff_format(copy) == str(Format.PYTORCH)
+    assert sniff_format(copy) == Format.PYTORCH.value
     original, renamed = load(REAL[stem]), load(copy)
     assert list(renamed.tensors) == list(original.tensors)
     assert renamed.parameters == original.parameters

@@ -58,7 +58,7 @@ def sniff_format(path: Path) -> str | None:
     for loader in loaders():
         try:
             if loader.sniff(path, head):
-                return str(getattr(loader, "format", type(loader).__name__))
+                return loader.format.value
         except Exception:
             continue
     return None

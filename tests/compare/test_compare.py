@@ -458,8 +458,10 @@ def test_new_nonfinite_is_an_error_and_old_ones_are_not_new(
     document = json.loads(result.stdout)
     new = [f for f in document["findings"] if f["rule"] == "new-nonfinite"]
     assert len(new) == 1 and new[0]["layer"] == "fc2" and new[0]["units"] == [1]
-    audit_nan = [f for f in document["findings"] if f["rule"] == "nonfinite"]
-    assert audit_nan and not audit_nan[0]["present_in_old"]
+    # the audit's finding on the same NaN is folded into the comparison's (one problem, one
+    # finding), named in its evidence
+    assert not [f for f in document["findings"] if f["rule"] == "nonfinite"]
+    assert [a["rule"] for a in new[0]["evidence"]["audit_findings"]] == ["nonfinite"]
     # NaN on both sides: nothing new, the audit's finding is marked present in OLD and not gated
     again = write_safetensors(tmp_path / "c.safetensors", {k: v.copy() for k, v in broken.items()})
     result = runner.invoke(app, ["compare", str(b), str(again), "-f", "json"])

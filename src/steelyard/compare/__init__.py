@@ -13,6 +13,7 @@ from __future__ import annotations
 import fnmatch
 import math
 from collections.abc import Sequence
+from dataclasses import replace
 
 import numpy as np
 
@@ -30,8 +31,16 @@ from steelyard.compare.diff import (
     sums,
     top_units,
 )
+from steelyard.compare.knowledge import share_structure
 from steelyard.compare.matching import Pair, match_layers
-from steelyard.compare.report import CompareReport, Comparison, LayerDiff, Status, UnitChange
+from steelyard.compare.report import (
+    CompareCoverage,
+    CompareReport,
+    Comparison,
+    LayerDiff,
+    Status,
+    UnitChange,
+)
 from steelyard.compare.rules import (
     CompareContext,
     CompareRuleSpec,
@@ -47,6 +56,7 @@ from steelyard.ranking import rank
 from steelyard.report import CheckpointAudit
 
 __all__ = [
+    "CompareCoverage",
     "CompareReport",
     "CompareRuleSpec",
     "Comparison",
@@ -322,6 +332,157 @@ def split_audit(
     return fresh, present
 
 
+#: Audit rule → the comparison rule that reports the same problem as new since OLD.
+DUPLICATES = {"dead-unit": "units-died", "nonfinite": "new-nonfinite"}
+
+
+def _old_units(
+    old_audit: CheckpointAudit, rule: str, old_name: str, rows: np.ndarray | None, units: int
+) -> set[int]:
+    """Units (in NEW's numbering) that OLD's audit already reported for ``rule`` on the layer
+    matched to ``old_name``, ignored findings included: they are facts about OLD all the same."""
+    found = {
+        u
+        for f in (*old_audit.findings, *old_audit.baselined, *(s.finding for s in old_audit.suppressed))
+        if f.rule == rule and f.layer == old_name
+        for u in f.units
+    }
+    if rows is None:
+        return {u for u in found if u < units}
+    return {i for i, r in enumerate(rows.tolist()) if r in found}
+
+
+def _covers(
+    kept: Finding, audit: Finding, old_units: set[int], old_reported: bool
+) -> bool:
+    """Whether the comparison finding ``kept`` reports everything new in ``audit``: every unit
+    the audit names is in ``kept`` or was already reported in OLD."""
+    if audit.layer is None:  # a tensor in no layer: the same tensor, non-finite only since OLD
+        return kept.layer is None and kept.tensor == audit.tensor
+    if kept.layer != audit.layer:
+        return False
+    if audit.rule == "dead-unit" and kept.part != audit.part:
+        return False
+    if not audit.units:
+        # units unknown: covered only when OLD had nothing of the kind on this layer, so all of
+        # it is new and ``kept`` reports the layer
+        return not old_reported
+    return set(audit.units) <= set(kept.units) | old_units
+
+
+def fold_duplicates(
+    findings: Sequence[Finding],
+    fresh: Sequence[Finding],
+    old_audit: CheckpointAudit,
+    pairs: Sequence[Pair],
+    alignments: dict[str, Alignment],
+) -> tuple[list[Finding], list[Finding]]:
+    """One problem, one finding: an audit finding of NEW (``dead-unit``, ``nonfinite``) whose
+    news a comparison finding (``units-died``, ``new-nonfinite``) already reports is folded
+    into it: dropped from the audit's new findings and listed in the kept finding's evidence
+    and message. The kept finding takes the worse severity of the two, so the gate fails
+    exactly when it did with both. Audit findings the comparison does not fully cover (a unit
+    the comparison does not name) stay as they are.
+    """
+    mapping = _unit_map(pairs, alignments)
+    units_of = {p.new.name: p.new.units for p in pairs if p.new is not None}
+    kept = list(findings)
+    folded: dict[int, list[Finding]] = {}
+    rest: list[Finding] = []
+    for finding in fresh:
+        target = DUPLICATES.get(finding.rule)
+        if finding.rule == "nonfinite" and finding.evidence.get("source", "model") != "model":
+            target = None  # optimizer state: no comparison rule looks at it
+        old_units: set[int] = set()
+        old_reported = False
+        if target is not None and finding.layer in mapping:
+            old_name, rows = mapping[finding.layer]
+            old_units = _old_units(
+                old_audit, finding.rule, old_name, rows, units_of.get(finding.layer, 0)
+            )
+            old_reported = any(
+                f.rule == finding.rule and f.layer == old_name
+                for f in (*old_audit.findings, *old_audit.baselined)
+            )
+        index = next(
+            (
+                i
+                for i, k in enumerate(kept)
+                if target is not None
+                and k.rule == target
+                and _covers(k, finding, old_units, old_reported)
+            ),
+            None,
+        )
+        if index is None:
+            rest.append(finding)
+        else:
+            folded.setdefault(index, []).append(finding)
+    for index, audits in folded.items():
+        finding = kept[index]
+        worst = min((finding.severity, *(a.severity for a in audits)), key=lambda s: s.rank)
+        kept[index] = replace(
+            finding,
+            severity=worst,
+            message=finding.message
+            + "".join(f"; audit of NEW ({a.rule}): {a.message}" for a in audits),
+            evidence={
+                **finding.evidence,
+                "audit_findings": [
+                    {
+                        "rule": a.rule,
+                        "id": a.id,
+                        "severity": a.severity.value,
+                        "tensor": a.tensor,
+                        "units": list(a.units),
+                    }
+                    for a in audits
+                ],
+            },
+        )
+    return kept, rest
+
+
+def _gradient_notes(old: bool, new: bool) -> list[str]:
+    """Gradient support is data of one checkpoint (its optimizer state), not structure, so it
+    cannot be shared; say so when only one side has it."""
+    if old == new:
+        return []
+    if new:
+        return [
+            "only NEW stores optimizer state (gradient support): unsupported-weight could not "
+            "be judged in OLD, so NEW's unsupported-weight findings count as new"
+        ]
+    return [
+        "only OLD stores optimizer state (gradient support): unsupported-weight could not be "
+        "judged in NEW"
+    ]
+
+
+def coverage_of_comparison(
+    old: Checkpoint, new: Checkpoint, pairs: Sequence[Pair]
+) -> CompareCoverage:
+    """How much of each checkpoint the comparison lined up with the other."""
+
+    def parameters(side: Checkpoint, layers: Sequence[Layer]) -> int:
+        names = {n for layer in layers for n in layer.tensor_names}
+        return sum(t.size for t in side.counted if t.name in names)
+
+    matched = [p for p in pairs if p.old is not None and p.new is not None]
+    compared = [p for p in matched if p.same_shape]
+    return CompareCoverage(
+        layers_old=len(old.layers),
+        layers_new=len(new.layers),
+        matched=len(matched),
+        compared=len(compared),
+        parameters_old=old.parameters,
+        parameters_new=new.parameters,
+        matched_parameters_new=parameters(new, [p.new for p in matched if p.new is not None]),
+        compared_parameters_old=parameters(old, [p.old for p in compared if p.old is not None]),
+        compared_parameters_new=parameters(new, [p.new for p in compared if p.new is not None]),
+    )
+
+
 def _frozen_notes(policy: Policy, old: Checkpoint) -> list[str]:
     names = [layer.name for layer in old.layers]
     return [
@@ -333,33 +494,49 @@ def _frozen_notes(policy: Policy, old: Checkpoint) -> list[str]:
 
 def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Comparison:
     """Compare two loaded checkpoints under one policy."""
-    old_audit = audit_checkpoint(old, policy, optimizer_source(old))
-    new_audit = audit_checkpoint(new, policy, optimizer_source(new))
+    as_stored = match_layers(old.layers, new.layers)
+    # Both sides are judged with the richer side's structure (activation, links, norm, ...),
+    # so a difference in what the files describe is never reported as a change of the model.
+    shared = share_structure(old, new, as_stored)
+    old, new, pairs = shared.old, shared.new, shared.pairs
+    old_grads, new_grads = optimizer_source(old), optimizer_source(new)
+    old_audit = audit_checkpoint(old, policy, old_grads)
+    new_audit = audit_checkpoint(new, policy, new_grads)
     old_side, new_side = Side(old, policy), Side(new, policy)
-    pairs = match_layers(old.layers, new.layers)
     alignments, rejected = _align_all(pairs, old_side, new_side)
     diffs: list[LayerDiff] = []
     total_diff = total_base = 0.0
-    for pair in pairs:
+    for pair, stored in zip(pairs, as_stored, strict=True):
         if pair.new is None:
             assert pair.old is not None
-            diffs.append(_removed(pair.old, old_side))
+            diff = _removed(pair.old, old_side)
         elif not pair.same_shape:
-            diffs.append(_structural(pair, old_side, new_side))
+            diff = _structural(pair, old_side, new_side)
         else:
             name = pair.new.name
             diff, diff_sq, base_sq = _matched(
                 pair, alignments[name], rejected.get(name, ""), old_side, new_side
             )
-            diffs.append(diff)
             total_diff += diff_sq
             total_base += base_sq
+        # The layer blocks say what each file describes; ``structure_from`` says what was judged.
+        diffs.append(
+            replace(
+                diff,
+                old_layer=layer_block(stored.old) if stored.old is not None else None,
+                new_layer=layer_block(stored.new) if stored.new is not None else None,
+                structure_from=shared.taken_from.get(pair.new.name) if pair.new else None,
+            )
+        )
     ranked = tuple(sorted(diffs, key=_rank_key))
     context = CompareContext(old=old, new=new, policy=policy, diffs=ranked)
     findings, ignored = run_compare_rules(context)
     fresh, present = split_audit(old_audit, new_audit, pairs, alignments)
+    findings, fresh = fold_duplicates(findings, fresh, old_audit, pairs, alignments)
     notes = [
         *_frozen_notes(policy, old),
+        *shared.notes,
+        *_gradient_notes(old_grads is not None, new_grads is not None),
         *(f"OLD: {n}" for n in old.notes),
         *(f"NEW: {n}" for n in new.notes),
     ]
@@ -374,4 +551,5 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
         overall_relative_change=None if overall is None or math.isnan(overall) else overall,
         notes=tuple(notes),
         ignored=ignored + new_audit.ignored,
+        coverage=coverage_of_comparison(old, new, pairs),
     )

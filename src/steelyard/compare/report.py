@@ -91,6 +91,44 @@ class LayerDiff:
     """Units holding those elements."""
     note: str = ""
     """Why a measure is missing or what a permutation check found."""
+    structure_from: str | None = None
+    """``OLD``, ``NEW`` or ``both``: whose layer structure (activation, links, normalisation,
+    kind, groups, constraint) both sides were judged with, when one side took it from the
+    other (see :mod:`steelyard.compare.knowledge`); None when each side used its own."""
+
+
+@dataclass(frozen=True, slots=True)
+class CompareCoverage:
+    """What the comparison lined up: matched layers and the parameters they hold."""
+
+    layers_old: int
+    layers_new: int
+    matched: int
+    """Layers present on both sides (same shape or reshaped)."""
+    compared: int
+    """Matched layers of the same shape, compared value by value."""
+    parameters_old: int
+    parameters_new: int
+    """Every counted parameter of the checkpoint (as the audit counts them)."""
+    matched_parameters_new: int
+    """NEW's parameters read by matched layers."""
+    compared_parameters_old: int
+    compared_parameters_new: int
+    """Parameters read by the layers compared value by value."""
+
+    @property
+    def share_new(self) -> float:
+        """Share of NEW's parameters compared value by value with OLD (0 when it has none)."""
+        return (
+            self.compared_parameters_new / self.parameters_new if self.parameters_new else 0.0
+        )
+
+    @property
+    def share_old(self) -> float:
+        """Share of OLD's parameters compared value by value with NEW (0 when it has none)."""
+        return (
+            self.compared_parameters_old / self.parameters_old if self.parameters_old else 0.0
+        )
 
 
 @dataclass(frozen=True)
@@ -113,6 +151,8 @@ class Comparison:
     notes: tuple[str, ...] = ()
     ignored: int = 0
     """Comparison findings silenced by the policy's ``ignore`` entries."""
+    coverage: CompareCoverage | None = None
+    """Matched layers and parameters (None only for comparisons built by hand in tests)."""
 
     @property
     def gated(self) -> tuple[Finding, ...]:

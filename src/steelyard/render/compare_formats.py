@@ -16,7 +16,7 @@ from typing import Any
 from steelyard.compare.report import CompareReport, LayerDiff, Status
 from steelyard.compare.rules import compare_registry
 from steelyard.ranking import rank
-from steelyard.render.compare_table import number, overview
+from steelyard.render.compare_table import coverage_line, number, overview
 from steelyard.render.markdown import TOP, _cell, _rows
 from steelyard.render.sarif import level
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
@@ -167,6 +167,9 @@ def render_compare_markdown(report: CompareReport) -> str:
         overview(report) + ".",
         "",
     ]
+    line = coverage_line(report)
+    if line:
+        lines += [line[0].upper() + line[1:] + ".", ""]
     if comparison.audit_present:
         lines += [
             f"{len(comparison.audit_present)} audit findings of NEW were already present in OLD (not gated).",
@@ -195,6 +198,8 @@ def render_compare_markdown(report: CompareReport) -> str:
             lines += ["", "</details>"]
     else:
         lines.append("No findings.")
+    if comparison.notes:
+        lines += ["", *(f"- note: {_cell(n)}" for n in comparison.notes)]
     lines += [
         "",
         f"_{CAUTION}_",

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from steelyard.compare.report import COMPARE_SCHEMA, CompareReport, LayerDiff
+from steelyard.compare.report import COMPARE_SCHEMA, CompareCoverage, CompareReport, LayerDiff
 from steelyard.findings import Finding
 from steelyard.ranking import rank
 from steelyard.render.json_report import _clean, finding_block
@@ -56,7 +56,28 @@ def layer_entry(diff: LayerDiff) -> dict[str, Any]:
         entry["new_layer"] = dict(diff.new_layer) if diff.new_layer else None
     if diff.note:
         entry["note"] = diff.note
+    if diff.structure_from:
+        entry["structure_from"] = diff.structure_from
     return entry
+
+
+def coverage_entry(coverage: CompareCoverage | None) -> dict[str, Any] | None:
+    """The ``coverage`` object: matched layers and the parameters compared on each side."""
+    if coverage is None:
+        return None
+    return {
+        "layers_old": coverage.layers_old,
+        "layers_new": coverage.layers_new,
+        "matched_layers": coverage.matched,
+        "compared_layers": coverage.compared,
+        "parameters_old": coverage.parameters_old,
+        "parameters_new": coverage.parameters_new,
+        "matched_parameters_new": coverage.matched_parameters_new,
+        "compared_parameters_old": coverage.compared_parameters_old,
+        "compared_parameters_new": coverage.compared_parameters_new,
+        "compared_share_old": coverage.share_old,
+        "compared_share_new": coverage.share_new,
+    }
 
 
 def _finding(finding: Finding, origin: str, present: bool) -> dict[str, Any]:
@@ -86,6 +107,7 @@ def compare_document(report: CompareReport) -> dict[str, Any]:
         "schema": COMPARE_SCHEMA,
         "old": dict(comparison.old),
         "new": dict(comparison.new),
+        "coverage": coverage_entry(comparison.coverage),
         "layers": [layer_entry(d) for d in comparison.layers],
         "findings": findings,
         "summary": summary,

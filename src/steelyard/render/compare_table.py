@@ -108,6 +108,30 @@ def overview(report: CompareReport) -> str:
     return f"layers: {', '.join(parts)}; overall relative change {number(comparison.overall_relative_change)}"
 
 
+def percent(share: float) -> str:
+    """A share as a percentage that never rounds a partial share to 100 % or a non-zero one to
+    0 %."""
+    if 0.0 < share < 0.001:
+        return "<0.1%"
+    if 0.999 < share < 1.0:
+        return ">99.9%"
+    return f"{share:.1%}"
+
+
+def coverage_line(report: CompareReport) -> str | None:
+    """One line: matched layers and the share of each side's parameters compared value by
+    value (None for a comparison built without coverage)."""
+    cover = report.comparison.coverage
+    if cover is None:
+        return None
+    return (
+        f"coverage: {cover.matched} of {cover.layers_new} NEW layers matched to OLD "
+        f"({cover.compared} compared value by value); compared {percent(cover.share_new)} of "
+        f"NEW's {cover.parameters_new:,} parameters and {percent(cover.share_old)} of OLD's "
+        f"{cover.parameters_old:,}"
+    )
+
+
 def _findings_table(findings: list[tuple[Finding, str]]) -> Table:
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
     for column in ("#", "severity", "rule", "layer", "units", "finding"):
@@ -191,8 +215,11 @@ def render_compare_table(report: CompareReport, *, color: bool = False, width: i
         _header(report),
         verdict(report),
         Text(overview(report)),
-        Text(""),
     ]
+    line = coverage_line(report)
+    if line:
+        parts.append(Text(line))
+    parts.append(Text(""))
     fresh = {f.id for f in comparison.audit_new}
     rows = [
         (f, "audit of NEW: new since OLD" if f.id in fresh else "") for f in rank(comparison.gated)

@@ -1221,3 +1221,129 @@ def test_damaged_files_read_or_raise_load_error(
             assert str(path) in str(exc)
         finally:
             keras_hdf5.LOAD_TIMEOUT = saved
+
+
+# --------------------------------------------------------------------------------------------
+# Wrapped layers (TimeDistributed, Bidirectional): real files written by Keras 3.15
+# (fixtures/gen_keras_real.py, ``_wrapper_files``); where Keras put each variable and which
+# class owns it come from Keras itself, the stored values are read back with h5py.
+
+WRAPPED = ("wrapped_dense", "wrapped_rnn")
+WRAPPED_KINDS = ("weights.h5", "legacy-weights.h5", "h5", "keras")
+
+
+def _wrapped_h5py(model: str, kind: str) -> dict[str, np.ndarray]:
+    """Every dataset of the file, as h5py reads it (reference: h5py)."""
+    path = FIX / f"{model}.{kind}"
+    found: dict[str, np.ndarray] = {}
+
+    def visit(name: str, obj: Any) -> None:
+        if isinstance(obj, h5py.Dataset):
+            found[name] = np.asarray(obj[()])
+
+    if kind == "keras":
+        with zipfile.ZipFile(path) as archive:
+            data = archive.read("model.weights.h5")
+        with h5py.File(io.BytesIO(data), "r") as f:
+            f.visititems(visit)
+    else:
+        with h5py.File(path, "r") as f:
+            (f["model_weights"] if kind == "h5" else f).visititems(visit)
+    return {k: v for k, v in found.items() if not k.startswith("optimizer")}
+
+
+def _canonical_of(cls: str, value: np.ndarray) -> list[np.ndarray]:
+    """What a Keras kernel looks like as canonical ``[out, in, k…]`` rows: Dense ``[in,out]``
+    and Conv1D ``[k,in,out]`` per /work/shared/FORMATS.md ("Keras"); recurrent kernels are
+    split per gate (``[in, G·H]`` → G blocks of ``[H, in]``)."""
+    if cls == "Dense":
+        return [value.T]
+    if cls == "Conv1D":
+        return [np.transpose(value, (2, 1, 0))]
+    gates = {"LSTM": 4, "GRU": 3, "SimpleRNN": 1}[cls]
+    hidden = value.shape[1] // gates
+    return [value[:, g * hidden : (g + 1) * hidden].T for g in range(gates)]
+
+
+@pytest.mark.parametrize("model", WRAPPED)
+@pytest.mark.parametrize("kind", WRAPPED_KINDS)
+def test_wrapped_layers_become_layers_and_every_weight_is_covered(model: str, kind: str) -> None:
+    ck = load(FIX / f"{model}.{kind}")
+    e = np.load(FIX / f"{model}.expected.npz")
+    reference = _wrapped_h5py(model, kind)
+    # Every tensor equals what h5py reads, and nothing is missing.
+    assert set(ck.tensors) == set(reference)
+    for name, tensor in ck.tensors.items():
+        np.testing.assert_array_equal(tensor.read(), reference[name])
+    covered = {n for layer in ck.layers for n in layer.tensor_names}
+    assert {n for n, t in ck.tensors.items() if t.role is TensorRole.PARAMETER} <= covered
+    # Every kernel Keras reports is some layer's canonical weight, in the right orientation.
+    views = [layer.weight_view() for layer in ck.layers]
+    kernels = 0
+    for i, is_kernel in enumerate(e["w_kernel"]):
+        if not is_kernel:
+            continue
+        kernels += 1
+        for block in _canonical_of(str(e["w_class"][i]), e[f"w/{i}"]):
+            assert any(v.shape == block.shape and np.array_equal(v, block) for v in views), (
+                str(e["w_path"][i])
+            )
+    assert kernels == (13 if model == "wrapped_dense" else 10)
+
+
+@pytest.mark.parametrize("kind", WRAPPED_KINDS)
+def test_wrapped_dense_kinds_names_and_config_links(kind: str) -> None:
+    ck = load(FIX / f"wrapped_dense.{kind}")
+    dense = [layer for layer in ck.layers if layer.kind is LayerKind.DENSE]
+    assert len(dense) == 8  # six TimeDistributed(Dense), td_proj, head
+    conv = [layer for layer in ck.layers if layer.kind is LayerKind.CONV]
+    assert [(c.units, c.in_per_group, c.kernel) for c in conv] == [(3, 1, (2,))]
+    td1 = next(layer for layer in ck.layers if layer.name.startswith("td1/"))
+    assert (td1.units, td1.in_per_group) == (10, 12)
+    if kind in ("h5", "keras"):
+        td0 = next(layer for layer in ck.layers if layer.name.startswith("td0/"))
+        assert td1.inputs_from == (td0.name,) and td1.linked_by is Link.CONFIG
+        assert td1.activation is Activation.RELU
+        lstm = [layer for layer in ck.layers if layer.kind is LayerKind.RECURRENT]
+        assert {layer.name.split("/")[1] for layer in lstm} == {"forward_lstm", "backward_lstm"}
+
+
+def test_wrapped_weights_h5_without_names_infers_classes_from_shapes(tmp_path: Path) -> None:
+    """Keras before 3.15 writes no ``name`` attribute on ``vars`` groups: Dense and RNN
+    cells are then told apart by their variables' shapes alone."""
+    copy = tmp_path / "old.weights.h5"
+    copy.write_bytes((FIX / "wrapped_rnn.weights.h5").read_bytes())
+    with h5py.File(copy, "r+") as f:
+        groups: list[h5py.Group] = []
+        f.visititems(lambda _n, o: groups.append(o) if isinstance(o, h5py.Group) else None)
+        for group in groups:
+            if "name" in group.attrs:
+                del group.attrs["name"]
+    ck = load(copy)
+    gates = sorted(
+        {layer.gate for layer in ck.layers if layer.kind is LayerKind.RECURRENT and layer.gate}
+    )
+    assert gates == ["h", "r", "z"]  # GRU z, r, h and SimpleRNN h (Keras gate names)
+    assert sum(layer.kind is LayerKind.DENSE for layer in ck.layers) == 1
+    covered = {n for layer in ck.layers for n in layer.tensor_names}
+    # A lone 2-D variable (Dense without bias) could as well be an embedding table: left
+    # out rather than guessed, and the coverage count shows it.
+    assert set(ck.tensors) - covered == {"layers/time_distributed/layer/vars/0"}
+
+
+def test_keras2_time_distributed_weights_named_after_the_wrapper(tmp_path: Path) -> None:
+    """tf.keras 2 names a TimeDistributed Dense's weights ``time_distributed/kernel:0``
+    (layout per /work/shared/FORMATS.md "Keras"): the shapes make it a Dense."""
+    path = tmp_path / "k2.h5"
+    kernel, bias = _values((5, 3), 1), _values((3,), 2)
+    with h5py.File(path, "w") as f:
+        f.attrs["layer_names"] = [b"time_distributed"]
+        f.attrs["keras_version"] = b"2.15.0"
+        group = f.create_group("time_distributed")
+        group.attrs["weight_names"] = [b"time_distributed/kernel:0", b"time_distributed/bias:0"]
+        group["time_distributed/kernel:0"] = kernel
+        group["time_distributed/bias:0"] = bias
+    ck = load(path)
+    (layer,) = ck.layers
+    assert layer.kind is LayerKind.DENSE and (layer.units, layer.in_per_group) == (3, 5)
+    np.testing.assert_array_equal(layer.weight_view(), kernel.T)

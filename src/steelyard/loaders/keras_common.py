@@ -41,6 +41,12 @@ def _words(text: str) -> list[str]:
 
 
 CONTAINERS = frozenset({"Sequential", "Functional", "Model"})
+#: Layers that hold other layers' weights under an attribute (``layer``, ``forward_layer``,
+#: ``backward_layer``): ``.weights.h5`` stores them at ``<key>/<attribute>/vars``.
+WRAPPERS = frozenset({"TimeDistributed", "Bidirectional"})
+WRAPPED_ATTRIBUTES = ("layer", "forward_layer", "backward_layer")
+#: Bidirectional ``merge_mode`` → the merge it performs (None: outputs kept apart).
+BIDIRECTIONAL_MERGE = {"concat": "Concatenate", "sum": "Add", "ave": "Average", "mul": "Multiply"}
 
 DENSE = frozenset({"Dense"})
 CONV: dict[str, int] = {
@@ -163,9 +169,46 @@ FAMILY: dict[str, str] = {
 
 
 def class_from_name(name: str) -> str | None:
-    """The class a default Keras name implies: ``dense_3`` → ``Dense``; None when unknown."""
+    """The class a default Keras name implies: ``dense_3`` → ``Dense``; None when unknown.
+
+    The names Keras gives wrapped layers count too: ``forward_lstm`` / ``backward_gru_2``
+    (Bidirectional's halves) and ``lstm_cell`` (an RNN's cell) name their RNN class.
+    """
     family = re.sub(r"_\d+$", "", name)
+    family = re.sub(r"^(forward|backward)_", "", family)
+    family = re.sub(r"_\d+$", "", family)
+    if family.endswith("_cell") and family[: -len("_cell")] in ("lstm", "gru", "simple_rnn"):
+        family = family[: -len("_cell")]
     return FAMILY.get(family)
+
+
+def class_from_shapes(weights: Mapping[str, Tensor]) -> str | None:
+    """The unit class that named weights' shapes leave no doubt about, for files without a
+    config whose layer names say nothing (a Keras 2 ``TimeDistributed`` stores its Dense
+    as ``time_distributed/kernel:0``).
+
+    Only unambiguous cases: a 2-D ``kernel`` with a matching ``bias`` is a Dense (a 2-D
+    kernel alone could be an embedding-like table, but Keras names those ``embeddings``);
+    ``kernel`` + ``recurrent_kernel`` ``[H, G·H]`` is an LSTM (G=4), GRU (3) or SimpleRNN (1).
+    Convolution kernels are never guessed: ``[k, a, b]`` fits a Conv, a ConvTranspose and a
+    DepthwiseConv alike.
+    """
+    roles = set(weights)
+    kernel = weights.get("kernel")
+    bias = weights.get("bias")
+    if kernel is None:
+        return None
+    if roles == {"kernel", "bias"} and len(kernel.shape) == 2 and bias is not None:
+        return "Dense" if bias.shape == (kernel.shape[1],) else None
+    recurrent = weights.get("recurrent_kernel")
+    if recurrent is not None and roles <= {"kernel", "recurrent_kernel", "bias"}:
+        if len(recurrent.shape) != 2 or len(kernel.shape) != 2 or not recurrent.shape[0]:
+            return None
+        hidden, width = recurrent.shape
+        gates = width // hidden if width % hidden == 0 else 0
+        cls = {4: "LSTM", 3: "GRU", 1: "SimpleRNN"}.get(gates)
+        return cls if kernel.shape[1] == width else None
+    return None
 
 
 def natural_key(text: str) -> list[Any]:
@@ -260,6 +303,8 @@ class _Entry:
 class _Pending:
     atom: int
     refs: list[tuple[_Scope, str, int]]
+    direct: list[int] = field(default_factory=list)
+    """Atoms feeding it that are no config layer of their own (a Bidirectional's halves)."""
 
 
 class _ConfigWalker:
@@ -271,6 +316,8 @@ class _ConfigWalker:
         self.paths: list[tuple[str, ...]] = []
         self.pending: list[_Pending] = []
         self.notes: list[str] = []
+        self.display: dict[int, str] = {}
+        """Atom index → display name, for wrapped layers (``wrapper/inner``)."""
 
     def fail(self, reason: str) -> LoadError:
         return LoadError(self.source, f"model config: {reason}")
@@ -325,7 +372,15 @@ class _ConfigWalker:
             else:
                 refs = self._inbound(entry, name)
             links = [(scope, ref, index) for ref, index in refs]
-            if lcls in CONTAINERS and (isinstance(lcfg, list) or "layers" in lcfg):
+            wrapped = (
+                self._wrapper(lcls, own, name, key_path, top or name, layer_trainable, links)
+                if lcls in WRAPPERS
+                else None
+            )
+            if wrapped is not None:
+                scope.entries[name] = _Entry(atom=wrapped)
+                self.paths.extend([path] * (len(self.atoms) - len(self.paths)))
+            elif lcls in CONTAINERS and (isinstance(lcfg, list) or "layers" in lcfg):
                 inner = self.container(
                     lcls, lcfg, key_path, top or name, layer_trainable, (*path, name), depth + 1
                 )
@@ -373,6 +428,100 @@ class _ConfigWalker:
 
     def _pend(self, atom: int) -> _Pending:
         return self.pending[atom]
+
+    def _wrapped_atom(
+        self,
+        entry: Any,
+        wrapper: str,
+        name: str | None,
+        key_path: str,
+        top: str,
+        trainable: bool,
+        links: list[tuple[_Scope, str, int]],
+    ) -> int | None:
+        """One layer held by a wrapper, as an atom fed by the wrapper's inputs; None when it
+        is not a plain layer (a model or another wrapper: not opened)."""
+        entry = as_dict(entry)
+        cls = class_name(entry)
+        config = as_dict(entry.get("config"))
+        name = name or config.get("name")
+        if not cls or cls in CONTAINERS or cls in WRAPPERS or not isinstance(name, str):
+            return None
+        index = len(self.atoms)
+        self.atoms.append(
+            Atom(
+                name=name,
+                raw_name=name,
+                cls=cls,
+                config=config,
+                trainable=trainable and config.get("trainable", True) is not False,
+                key_path=key_path,
+                top=top,
+            )
+        )
+        self.display[index] = f"{wrapper}/{name}"
+        self.pending.append(_Pending(index, list(links)))
+        return index
+
+    def _wrapper(
+        self,
+        cls: str,
+        config: Mapping[str, Any],
+        name: str,
+        key_path: str,
+        top: str,
+        trainable: bool,
+        links: list[tuple[_Scope, str, int]],
+    ) -> int | None:
+        """Atoms for a ``TimeDistributed`` or ``Bidirectional`` layer; the index of the atom
+        whose output is the wrapper's, or None to keep the wrapper opaque.
+
+        TimeDistributed applies its layer at every step with the same weights, so its units
+        are the wrapped layer's. Bidirectional runs a forward and a backward copy (Keras
+        names them ``forward_<name>`` / ``backward_<name>``, as it does at build time) and
+        merges their outputs by ``merge_mode``; a merge atom stands for that.
+        """
+        start = len(self.atoms)
+        if cls == "TimeDistributed":
+            index = self._wrapped_atom(
+                config.get("layer"), name, None, f"{key_path}/layer", top, trainable, links
+            )
+            if index is None:
+                self.notes.append(f"the layer wrapped by {name!r} was not opened")
+            return index
+        forward = as_dict(config.get("layer"))
+        backward = as_dict(config.get("backward_layer")) or forward
+        base = as_dict(forward.get("config")).get("name")
+        back_name = as_dict(backward.get("config")).get("name") if backward is not forward else None
+        if not isinstance(base, str):
+            self.notes.append(f"the layers wrapped by {name!r} were not opened")
+            return None
+        stem = base.removeprefix("forward_")
+        indices = [
+            self._wrapped_atom(
+                forward, name, f"forward_{stem}", f"{key_path}/forward_layer", top, trainable, links
+            ),
+            self._wrapped_atom(
+                backward,
+                name,
+                back_name if isinstance(back_name, str) else f"backward_{stem}",
+                f"{key_path}/backward_layer",
+                top,
+                trainable,
+                links,
+            ),
+        ]
+        if None in indices:
+            del self.atoms[start:], self.pending[start:]
+            for index in range(start, start + 2):
+                self.display.pop(index, None)
+            self.notes.append(f"the layers wrapped by {name!r} were not opened")
+            return None
+        merge = BIDIRECTIONAL_MERGE.get(str(config.get("merge_mode", "concat")), "Bidirectional")
+        index = len(self.atoms)
+        self.atoms.append(Atom(name, name, merge, {}, trainable, "", top))
+        self.pending.append(_Pending(index, [], [i for i in indices if i is not None]))
+        return index
 
     def _refs(self, value: Any, what: str) -> list[tuple[str, int]]:
         """``["x", 0, 0]`` or ``[["x", 0, 0], …]`` → ``[("x", 0)]``."""
@@ -459,9 +608,9 @@ class _ConfigWalker:
         for atom in self.atoms:
             counts[atom.raw_name] = counts.get(atom.raw_name, 0) + 1
         taken: set[str] = set()
-        for atom, path in zip(self.atoms, self.paths, strict=True):
-            name = atom.raw_name
-            if counts[name] > 1 and path:
+        for index, (atom, path) in enumerate(zip(self.atoms, self.paths, strict=True)):
+            name = self.display.get(index, atom.raw_name)
+            if counts[atom.raw_name] > 1 and path and index not in self.display:
                 name = "/".join((*path, name))
             base, serial = name, 1
             while name in taken:
@@ -475,6 +624,7 @@ class _ConfigWalker:
                 target = self.atoms[self.resolve(scope, ref, index)].name
                 if target not in preds:
                     preds.append(target)
+            preds.extend(self.atoms[i].name for i in pending.direct)
             self.atoms[pending.atom].preds = preds
         return ModelGraph(self.atoms, model_class, model_name, self.notes)
 

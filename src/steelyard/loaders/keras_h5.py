@@ -158,46 +158,71 @@ def _atoms_from_keys(store: H5Store, f: Any, tensors: dict[str, Tensor]) -> list
         return atoms
     index = _Indexed(tensors)
 
-    def walk(path: str, depth: int) -> None:
+    def vars_name(prefix: str) -> str | None:
+        return store.attr_text(store.group(f, prefix), "name") if store.exists(f, prefix) else None
+
+    def layer(key_path: str, key: str, top: str, wrapper: str | None, depth: int) -> None:
+        if depth > kc.MAX_DEPTH:
+            raise store.fail("layer groups nest too deeply")
+        child = store.resolve(f, key_path)
+        if not isinstance(child, h5py.Group):
+            return
+        if "layers" in child:
+            walk(f"{key_path}/layers", top, depth + 1)
+            return
+        own_name = vars_name(f"{key_path}/vars")
+        held = [
+            a
+            for a in kc.WRAPPED_ATTRIBUTES
+            if a in child and isinstance(child.get(a, getlink=True), h5py.HardLink)
+        ]
+        if held and not index.get(f"{key_path}/vars"):
+            # A wrapper (TimeDistributed, Bidirectional): its layers' variables sit below
+            # ``<key>/layer`` or ``<key>/forward_layer`` and ``<key>/backward_layer``.
+            for attribute in held:
+                layer(f"{key_path}/{attribute}", attribute, top, own_name or key, depth + 1)
+            return
+        cell_name = vars_name(f"{key_path}/cell/vars")
+        cls = kc.class_from_name(key) or kc.class_from_name(own_name or "") or ""
+        if not cls and cell_name is not None:
+            cls = kc.class_from_name(cell_name) or ""
+        if not cls and "cell" in child:
+            cls = _rnn_from_shapes(index.get(f"{key_path}/cell/vars") or [])
+        atom = kc.Atom(
+            name=key_path,
+            raw_name=key,
+            cls=cls,
+            config={},
+            trainable=True,
+            key_path=key_path,
+            top=top,
+        )
+        prefix = _vars_path(atom)
+        variables = index.get(prefix) or []
+        if not cls:
+            cls = atom.cls = _dense_from_shapes(variables)
+        if own_name and (cls not in kc.RNN_GATES or wrapper is not None):
+            atom.name = own_name
+        if wrapper is not None:
+            atom.name = f"{wrapper}/{own_name or key}"
+        roles = kc.roles_by_count(cls, None, len(variables)) if cls else None
+        if roles is None:
+            roles = [str(i) for i in range(len(variables))]
+            if cls in kc.unit_classes():
+                atom.cls = ""  # cannot tell its variables apart: not a layer
+        atom.weights = dict(zip(roles, variables, strict=True))
+        atom.order = roles
+        atoms.append(atom)
+
+    def walk(path: str, top: str | None, depth: int) -> None:
         if depth > kc.MAX_DEPTH:
             raise store.fail("layer groups nest too deeply")
         group = store.group(f, path)
         for key in sorted(group.keys(), key=kc.natural_key):
-            key_path = f"{path}/{key}"
-            if not isinstance(group.get(key, getlink=True), h5py.HardLink):
-                continue
-            child = store.resolve(f, key_path)
-            if not isinstance(child, h5py.Group):
-                continue
-            if "layers" in child:
-                walk(f"{key_path}/layers", depth + 1)
-                continue
-            cls = kc.class_from_name(key) or ""
-            atom = kc.Atom(
-                name=key_path,
-                raw_name=key,
-                cls=cls,
-                config={},
-                trainable=True,
-                key_path=key_path,
-                top=key,
-            )
-            prefix = _vars_path(atom)
-            variables = index.get(prefix) or []
-            if store.exists(f, prefix):
-                named = store.attr_text(store.group(f, prefix), "name")
-                if named and cls not in kc.RNN_GATES:
-                    atom.name = named
-            roles = kc.roles_by_count(cls, None, len(variables)) if cls else None
-            if roles is None:
-                roles = [str(i) for i in range(len(variables))]
-                if cls in kc.unit_classes():
-                    atom.cls = ""  # cannot tell its variables apart: not a layer
-            atom.weights = dict(zip(roles, variables, strict=True))
-            atom.order = roles
-            atoms.append(atom)
+            if isinstance(group.get(key, getlink=True), h5py.HardLink):
+                layer(f"{path}/{key}", key, top or key, None, depth)
 
-    walk("layers", 0)
+    walk("layers", None, 0)
     names: dict[str, int] = {}
     for atom in atoms:
         names[atom.name] = names.get(atom.name, 0) + 1
@@ -205,6 +230,22 @@ def _atoms_from_keys(store: H5Store, f: Any, tensors: dict[str, Tensor]) -> list
         if names[atom.name] > 1:
             atom.name = atom.key_path
     return atoms
+
+
+def _rnn_from_shapes(variables: list[Tensor]) -> str:
+    """The RNN class of a cell's positional variables (kernel, recurrent kernel, bias), by
+    their shapes alone (Keras before 3.15 writes no names)."""
+    if len(variables) not in (2, 3):
+        return ""
+    roles = dict(zip(("kernel", "recurrent_kernel", "bias"), variables, strict=False))
+    return kc.class_from_shapes(roles) or ""
+
+
+def _dense_from_shapes(variables: list[Tensor]) -> str:
+    """``Dense`` for two positional variables shaped ``[in, out]`` and ``[out]``, else ""."""
+    if len(variables) != 2:
+        return ""
+    return kc.class_from_shapes(dict(zip(("kernel", "bias"), variables, strict=True))) or ""
 
 
 def _weights_optimizer(
@@ -387,11 +428,11 @@ def read_legacy(
         atoms = graph.atoms
         _attach_legacy(atoms, groups, notes, have_config=True)
     else:
-        atoms = [
-            kc.Atom(layer, layer, kc.class_from_name(layer) or "", {}, True, "", layer)
-            for layer, _ in groups
-        ]
+        atoms = [atom for layer, items in groups for atom in _legacy_atoms(layer, items)]
         _attach_legacy(atoms, groups, notes, have_config=False)
+        for atom in atoms:
+            if not atom.cls and atom.weights:
+                atom.cls = kc.class_from_shapes(atom.weights) or ""
         if any(atom.cls in kc.unit_classes() for atom in atoms):
             notes.append(
                 "no model config: layer kinds were inferred from default layer names; "
@@ -408,6 +449,27 @@ def read_legacy(
         if note:
             notes.append(note)
     return tensors, layers, optimizer, notes
+
+
+def _legacy_atoms(layer: str, items: list[tuple[str, Tensor]]) -> list[kc.Atom]:
+    """Atoms of one layer group of a legacy file without a config.
+
+    A group whose name is no unit class but whose weight names run through inner layers
+    (``time_distributed/dense/kernel``, ``bidirectional/forward_lstm/lstm_cell/kernel``) is
+    a wrapper: one atom per inner layer, its class from the inner layer's default name.
+    """
+    own = kc.class_from_name(layer) or ""
+    owners: list[str] = []
+    for weight, _ in items:
+        parts = [p for p in weight.split("/")[:-1] if p != layer and not p.endswith("_cell")]
+        if parts and parts[-1] not in owners:
+            owners.append(parts[-1])
+    if own or not owners:
+        return [kc.Atom(layer, layer, own, {}, True, "", layer)]
+    return [
+        kc.Atom(f"{layer}/{owner}", owner, kc.class_from_name(owner) or "", {}, True, "", layer)
+        for owner in owners
+    ]
 
 
 def _attach_legacy(
@@ -436,9 +498,14 @@ def _attach_legacy(
             by_raw.setdefault(atom.raw_name, []).append(atom)
         split: dict[str, list[tuple[str, Tensor]]] = {}
         owners: dict[str, kc.Atom] = {}
+        # A Keras 2 TimeDistributed names its layer's weights after itself
+        # (``time_distributed/kernel:0``): with one inner layer, they are that layer's.
+        holders = [a.raw_name for a in members if a.raw_name != layer]
         for weight, tensor in items:
             parts = weight.split("/")[:-1]
             owner = next((p for p in reversed(parts) if p in by_raw), None)
+            if (owner is None or owner == layer) and len(holders) == 1:
+                owner = holders[0]
             if owner is None or len(by_raw[owner]) != 1:
                 orphans.append(f"{layer}/{weight}")
                 continue

@@ -343,7 +343,11 @@ def _old_units(
     matched to ``old_name``, ignored findings included: they are facts about OLD all the same."""
     found = {
         u
-        for f in (*old_audit.findings, *old_audit.baselined, *(s.finding for s in old_audit.suppressed))
+        for f in (
+            *old_audit.findings,
+            *old_audit.baselined,
+            *(s.finding for s in old_audit.suppressed),
+        )
         if f.rule == rule and f.layer == old_name
         for u in f.units
     }
@@ -352,9 +356,7 @@ def _old_units(
     return {i for i, r in enumerate(rows.tolist()) if r in found}
 
 
-def _covers(
-    kept: Finding, audit: Finding, old_units: set[int], old_reported: bool
-) -> bool:
+def _covers(kept: Finding, audit: Finding, old_units: set[int], old_reported: bool) -> bool:
     """Whether the comparison finding ``kept`` reports everything new in ``audit``: every unit
     the audit names is in ``kept`` or was already reported in OLD."""
     if audit.layer is None:  # a tensor in no layer: the same tensor, non-finite only since OLD

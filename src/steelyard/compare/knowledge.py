@@ -106,9 +106,7 @@ def _borrow(
         else:
             missed.append("links (an input layer has no partner)")
         if src.norm is not None and dst.norm is None:
-            names = [
-                n for n in (src.norm.scale, src.norm.shift, src.norm.mean, src.norm.var) if n
-            ]
+            names = [n for n in (src.norm.scale, src.norm.shift, src.norm.mean, src.norm.var) if n]
             usable = all(
                 n in dst_side.tensors
                 and n in src_side.tensors
@@ -138,9 +136,7 @@ def _source(side: Checkpoint, layers: Sequence[Layer]) -> str:
     return f"{side.format.value} {_SOURCE.get(best, 'file')}"
 
 
-def _note(
-    dst: str, src: str, side: Checkpoint, layers: list[Layer], what: Counter[str]
-) -> str:
+def _note(dst: str, src: str, side: Checkpoint, layers: list[Layer], what: Counter[str]) -> str:
     count = len(layers)
     parts = ", ".join(name for name, _ in what.most_common())
     return (

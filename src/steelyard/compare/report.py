@@ -119,16 +119,12 @@ class CompareCoverage:
     @property
     def share_new(self) -> float:
         """Share of NEW's parameters compared value by value with OLD (0 when it has none)."""
-        return (
-            self.compared_parameters_new / self.parameters_new if self.parameters_new else 0.0
-        )
+        return self.compared_parameters_new / self.parameters_new if self.parameters_new else 0.0
 
     @property
     def share_old(self) -> float:
         """Share of OLD's parameters compared value by value with NEW (0 when it has none)."""
-        return (
-            self.compared_parameters_old / self.parameters_old if self.parameters_old else 0.0
-        )
+        return self.compared_parameters_old / self.parameters_old if self.parameters_old else 0.0
 
 
 @dataclass(frozen=True)

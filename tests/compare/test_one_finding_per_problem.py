@@ -189,3 +189,25 @@ def test_the_comparison_reports_what_it_covered(tmp_path: Path, rng: np.random.G
     table = runner.invoke(app, ["compare", str(old), str(new)]).stdout
     assert "coverage: 2 of 3 NEW layers matched to OLD" in table
     assert f"{compared / total:.1%} of NEW's {total:,} parameters" in table
+
+
+def test_units_still_dead_while_others_revived_are_not_new(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    # OLD: units 3 and 4 dead; NEW: unit 4 revived, 3 still dead. The audit of NEW names [3]
+    # (another id than OLD's [3, 4]), yet nothing in it is new.
+    old_tensors = mlp_tensors(rng, (6, 16, 4))
+    new_tensors = {k: v.copy() for k, v in old_tensors.items()}
+    old_tensors["fc1.weight"][[3, 4]] = 0.0
+    old_tensors["fc1.bias"][[3, 4]] = 0.0
+    new_tensors["fc1.weight"][3] = 0.0
+    new_tensors["fc1.bias"][3] = 0.0
+    old = write_safetensors(tmp_path / "old.safetensors", old_tensors)
+    new = write_safetensors(tmp_path / "new.safetensors", new_tensors)
+    code, document = _run(old, new, "--fail-on", "warning")
+    assert _gated(document) == []
+    dead = [f for f in document["findings"] if f["rule"] == "dead-unit"]
+    assert [(f["units"], f["present_in_old"]) for f in dead] == [([3], True)]
+    fc1 = next(e for e in document["layers"] if e["name"] == "fc1")
+    assert fc1["units_revived"] == [4] and fc1["units_died"] == []
+    assert code == 0

@@ -47,7 +47,7 @@ from steelyard.compare.rules import (
     compare_registry,
     run_compare_rules,
 )
-from steelyard.findings import Finding
+from steelyard.findings import Finding, Severity
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import layer_block
@@ -313,10 +313,19 @@ def split_audit(
 
     A finding is present in OLD when OLD has one with the same id (rule, tensor, part, units),
     or, for files whose tensor names differ, the same rule, part and units on the matched layer
-    (units mapped through a verified permutation).
+    (units mapped through a verified permutation). A finding on a layer's weight whose units
+    are a subset of those OLD's finding of the same rule named on the matched layer's weight,
+    at the same severity or worse, is present too: nothing in it is new (units that revived
+    are no news).
     """
     old_ids = {f.id for f in old_audit.findings}
     old_keys = {(f.rule, f.layer, f.part, f.units) for f in old_audit.findings if f.layer}
+    old_weights = {p.old.name: p.old.weight for p in pairs if p.old is not None}
+    new_weights = {p.new.name: p.new.weight for p in pairs if p.new is not None}
+    wider: dict[tuple[str, str, str], list[tuple[set[int], Severity]]] = {}
+    for f in old_audit.findings:
+        if f.layer and f.units and f.tensor == old_weights.get(f.layer):
+            wider.setdefault((f.rule, f.layer, f.part), []).append((set(f.units), f.severity))
     mapping = _unit_map(pairs, alignments)
     fresh: list[Finding] = []
     present: list[Finding] = []
@@ -328,6 +337,13 @@ def split_audit(
             if rows is not None and all(u < rows.size for u in units):
                 units = tuple(sorted(int(rows[u]) for u in units))
             known = (finding.rule, old_name, finding.part, units) in old_keys
+            if not known and units and finding.tensor == new_weights.get(finding.layer):
+                known = any(
+                    set(units) <= before and before_severity.at_least(finding.severity)
+                    for before, before_severity in wider.get(
+                        (finding.rule, old_name, finding.part), []
+                    )
+                )
         (present if known else fresh).append(finding)
     return fresh, present
 

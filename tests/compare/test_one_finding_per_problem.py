@@ -187,8 +187,10 @@ def test_the_comparison_reports_what_it_covered(tmp_path: Path, rng: np.random.G
     assert coverage["compared_share_new"] == pytest.approx(compared / total)
     assert coverage["compared_share_old"] == 1.0
     table = runner.invoke(app, ["compare", str(old), str(new)]).stdout
-    assert "coverage: 2 of 3 NEW layers matched to OLD" in table
-    assert f"{compared / total:.1%} of NEW's {total:,} parameters" in table
+    assert (
+        f"coverage: 2/3 NEW layers matched, 2 compared by value: {compared / total:.1%} of "
+        f"NEW's {total:,} parameters, 100.0% of OLD's {compared:,}"
+    ) in table
 
 
 def test_units_still_dead_while_others_revived_are_not_new(

@@ -125,10 +125,9 @@ def coverage_line(report: CompareReport) -> str | None:
     if cover is None:
         return None
     return (
-        f"coverage: {cover.matched} of {cover.layers_new} NEW layers matched to OLD "
-        f"({cover.compared} compared value by value); compared {percent(cover.share_new)} of "
-        f"NEW's {cover.parameters_new:,} parameters and {percent(cover.share_old)} of OLD's "
-        f"{cover.parameters_old:,}"
+        f"coverage: {cover.matched}/{cover.layers_new} NEW layers matched, {cover.compared} "
+        f"compared by value: {percent(cover.share_new)} of NEW's {cover.parameters_new:,} "
+        f"parameters, {percent(cover.share_old)} of OLD's {cover.parameters_old:,}"
     )
 
 

@@ -10,7 +10,12 @@ every input that reaches that unit. Non-finite optimizer state means training di
 the weights still look finite.
 
 **Evidence.** Counts of NaN, +Inf and −Inf, the first positions (stored index), and, when the
-tensor belongs to a layer, the units (rows of the canonical view) that hold them.
+tensor belongs to a layer, the units that hold them: the rows of the layer's canonical
+``[out, in/groups, *kernel]`` view with a non-finite value, whatever the stored layout (ONNX
+Conv ``[out, in/g, kh, kw]``, ConvTranspose ``[in, out/g, kh, kw]``, Keras kernels
+``[kh, kw, in, out]``, a Gemm with ``transB = 0``). They come from the loader's map of stored
+positions to the view when it has one, else from the view itself. A non-finite quantization
+scale or weight-norm gain names the units whose weights it makes non-finite.
 
 **Severity and score.** Always an error. Score = ``scoring.score(share, 1e6)``, where share is
 the fraction of the tensor's elements that are non-finite, so a fully NaN tensor ranks first.
@@ -45,13 +50,27 @@ def _owners(ctx: AuditContext) -> dict[str, list[tuple[Layer, str]]]:
             for name in (layer.norm.scale, layer.norm.shift, layer.norm.mean, layer.norm.var):
                 if name:
                     owners.setdefault(name, []).append((layer, "per-unit"))
+        for name in layer.aux:
+            owners.setdefault(name, []).append((layer, "made-from"))
     return owners
+
+
+def _view_rows(layer: Layer) -> np.ndarray:
+    """Units whose canonical weights hold a non-finite value, read from the layer's own
+    canonical view: the loader that built the view knows the stored layout (ONNX Conv
+    [out, in/g, *k], ConvTranspose [in, out/g, *k], Keras kernels [*k, in, out], ...), so
+    this needs no ``orient``. NaN and ±Inf survive the view's reshapes, transposes and
+    widening to float32, and any scale or gain the view multiplies in."""
+    view = np.asarray(layer.weight_view())
+    return np.asarray(~np.isfinite(view.reshape(layer.units, -1)).all(axis=1))
 
 
 def _units(layer: Layer, relation: str, bad: np.ndarray) -> tuple[int, ...] | None:
     try:
         if relation == "weight" and layer.orient is not None:
             rows = np.asarray(layer.orient(bad)).reshape(layer.units, -1).any(axis=1)
+        elif relation in ("weight", "made-from"):
+            rows = _view_rows(layer)
         elif (relation == "bias" and layer.gate is None and bad.size == layer.units) or (
             relation == "per-unit" and bad.size == layer.units
         ):

@@ -43,11 +43,114 @@ def test_bf16_saved_as_void(tmp_path: Path, rng: np.random.Generator) -> None:
     np.testing.assert_array_equal(got.read_float32(), values.astype(np.float32))  # reference: ml_dtypes
 
 
-def test_object_arrays_are_refused(tmp_path: Path) -> None:
+def test_object_arrays_are_skipped_with_a_note_and_never_unpickled(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     path = tmp_path / "pickled.npz"
     np.savez(path, ok=np.zeros(2), bad=np.array([{"x": 1}], dtype=object))
-    with pytest.raises(LoadError, match="pickle"):
-        load(path)
+    import pickle
+
+    def refuse(*_args: object, **_kwargs: object) -> None:
+        raise AssertionError("pickle was used")
+
+    monkeypatch.setattr(pickle, "loads", refuse)
+    monkeypatch.setattr(pickle, "load", refuse)
+    monkeypatch.setattr(pickle, "Unpickler", refuse)
+    checkpoint = load(path)
+    assert set(checkpoint.tensors) == {"ok"}
+    (note,) = [n for n in checkpoint.notes if "bad" in n]
+    assert "pickle" in note and "never loaded" in note
+
+
+def test_non_tensor_arrays_are_skipped_and_named(tmp_path: Path, rng: np.random.Generator) -> None:
+    """Arrays numpy itself writes for vocabularies, records and dates are no tensors: the
+    file still loads, each one is named in the notes, booleans stay bookkeeping tensors."""
+    path = tmp_path / "mixed.npz"
+    weights = rng.normal(size=(4, 3)).astype(np.float32)
+    np.savez(  # reference writer: numpy.savez
+        path,
+        **{
+            "fc.weight": weights,
+            "vocab": np.array(["<pad>", "hello", "world"]),  # dtype('<U5')
+            "raw": np.array([b"ab", b"c"]),  # dtype('S2')
+            "records": np.zeros(3, dtype=[("id", "<i4"), ("score", "<f4")]),
+            "stamp": np.array(["2024-01-01"], dtype="datetime64[D]"),
+            "use_bias": np.array(True),
+            "mask": np.array([True, False, True]),
+        },
+    )
+    with np.load(path, allow_pickle=False) as reference:  # reference: numpy.load
+        assert reference["vocab"].dtype.kind == "U" and reference["records"].dtype.names
+    checkpoint = load(path)
+    assert set(checkpoint.tensors) == {"fc.weight", "use_bias", "mask"}
+    assert [t.name for t in checkpoint.counted] == ["fc.weight"]
+    np.testing.assert_array_equal(checkpoint.tensors["fc.weight"].read(), weights)
+    (note,) = [n for n in checkpoint.notes if n.startswith("skipped")]
+    for name, why in (("vocab", "text"), ("raw", "bytes"), ("records", "structured"), ("stamp", "dates")):
+        assert f"{name} (" in note and why in note.split(f"{name} (", 1)[1].split(")")[0]
+    assert [layer.name for layer in checkpoint.layers] == ["fc"]
+
+
+def test_plain_numpy_suffix_names_become_layers(tmp_path: Path, rng: np.random.Generator) -> None:
+    """``fc_w``/``fc_b``, ``conv1_weight``/``conv1_bias`` and ``norm_w`` as hand-written
+    NumPy code saves them (common practice, no source) become layers like ``fc.weight``."""
+    path = tmp_path / "plain.npz"
+    arrays = {
+        "conv1_weight": rng.normal(size=(4, 2, 3)).astype(np.float32),
+        "conv1_bias": rng.normal(size=4).astype(np.float32),
+        "fc1_w": rng.normal(size=(6, 8)).astype(np.float32),
+        "fc1_b": rng.normal(size=6).astype(np.float32),
+        "fc2_W": rng.normal(size=(3, 6)).astype(np.float32),
+        "fc2_b": rng.normal(size=3).astype(np.float32),
+        "emb_w": rng.normal(size=(10, 5)).astype(np.float32),
+    }
+    np.savez(path, **arrays)
+    checkpoint = load(path)
+    layers = {layer.name: layer for layer in checkpoint.layers}
+    assert set(layers) == {"conv1", "fc1", "fc2", "emb"}
+    assert layers["fc1"].bias == "fc1_b" and layers["fc2"].inputs_from == ("fc1",)
+    assert layers["conv1"].kernel == (3,) and layers["emb"].kind.value == "embedding"
+    np.testing.assert_array_equal(layers["fc2"].weight_view(), arrays["fc2_W"])
+    covered = {n for layer in checkpoint.layers for n in layer.tensor_names}
+    assert covered == set(arrays)
+
+
+@pytest.mark.parametrize("transposed", [False, True])
+@pytest.mark.parametrize(("cell", "gates"), [("lstm", "ifgo"), ("gru", "rzn"), ("rnn", "h")])
+def test_plain_numpy_recurrent_weights_split_per_gate(
+    tmp_path: Path, rng: np.random.Generator, cell: str, gates: str, transposed: bool
+) -> None:
+    """``*_w_ih``/``*_w_hh``/``*_b_ih``/``*_b_hh``: gates stacked as PyTorch stacks them
+    (LSTM i,f,g,o; GRU r,z,n: https://pytorch.org/docs/stable/generated/torch.nn.LSTM.html,
+    torch.nn.GRU), either ``[G·H, in]`` or transposed ``[in, G·H]``; plus ``fc_w``/``fc_b``."""
+    hidden, fan = 5, 7
+    count = len(gates)
+    w_ih = rng.normal(size=(count * hidden, fan)).astype(np.float32)
+    w_hh = rng.normal(size=(count * hidden, hidden)).astype(np.float32)
+    b_ih = rng.normal(size=count * hidden).astype(np.float32)
+    arrays = {
+        f"enc_{cell}_w_ih": w_ih.T.copy() if transposed else w_ih,
+        f"enc_{cell}_w_hh": w_hh.T.copy() if transposed else w_hh,
+        f"enc_{cell}_b_ih": b_ih,
+        f"enc_{cell}_b_hh": rng.normal(size=count * hidden).astype(np.float32),
+        "fc_w": rng.normal(size=(2, hidden)).astype(np.float32),
+        "fc_b": rng.normal(size=2).astype(np.float32),
+    }
+    path = tmp_path / "rnn.npz"
+    np.savez(path, **arrays)
+    checkpoint = load(path)
+    recurrent = [layer for layer in checkpoint.layers if layer.gate is not None]
+    assert len(recurrent) == 2 * count
+    for index, gate in enumerate(gates):
+        rows = slice(index * hidden, (index + 1) * hidden)
+        (ih,) = [x for x in recurrent if x.weight == f"enc_{cell}_w_ih" and x.gate == gate]
+        (hh,) = [x for x in recurrent if x.weight == f"enc_{cell}_w_hh" and x.gate == gate]
+        np.testing.assert_array_equal(ih.weight_view(), w_ih[rows])
+        np.testing.assert_array_equal(hh.weight_view(), w_hh[rows])
+        assert (ih.units, ih.in_per_group) == (hidden, fan)
+        np.testing.assert_array_equal(ih.bias_view(), b_ih[rows])  # type: ignore[misc]
+    covered = {n for layer in checkpoint.layers for n in layer.tensor_names}
+    assert covered == set(arrays)
 
 
 def test_traversal_member_is_refused(tmp_path: Path) -> None:

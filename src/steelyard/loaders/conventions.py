@@ -3,11 +3,33 @@
 Used for files that store tensors without a graph: safetensors, npz and PyTorch state dicts.
 Everything here is a heuristic, so it errs towards saying less: a link is only made when the
 shapes agree *and* the names make it likely; attention projections are left unlinked.
+
+Names recognised besides ``<module>.weight`` / ``<module>.bias``:
+
+* weight normalisation, ``<m>.weight_g`` + ``<m>.weight_v`` (``torch.nn.utils.weight_norm``)
+  and ``<m>.parametrizations.weight.original0`` (g) + ``original1`` (v)
+  (``torch.nn.utils.parametrizations.weight_norm``): the layer's weight is the effective
+  ``g·v/‖v‖`` that the module computes, the norm taken over every dimension but ``dim``
+  (read from g's shape: g keeps v's size there and 1 elsewhere; a one-element g means the
+  norm of the whole tensor). ``Layer.weight`` names v, ``Layer.aux`` names g.
+* plain suffixes, as hand-written NumPy code saves them: ``fc_w``/``fc_b``,
+  ``conv1_weight``/``conv1_bias``, ``lstm_w_ih``/``lstm_w_hh``/``lstm_b_ih``/``lstm_b_hh``
+  (optionally ``_l<k>`` and ``_reverse``) mean ``fc.weight`` and so on. Recurrent matrices
+  may be stacked PyTorch-style ``[G·H, in]`` or transposed ``[in, G·H]``; the recurrent
+  matrix's shape (``[G·H, H]`` or ``[H, G·H]``) tells which, and G (4: LSTM i,f,g,o; 3: GRU
+  r,z,n; 1: plain RNN) follows from it.
+
+A convolution whose weight is ``[C·m, 1, k…]`` reads one input channel per filter: unless it
+is the first layer (a one-channel input), it is depthwise, and its groups are the channel
+count of the layer feeding it (the numbered sibling before it, else the convolution before it
+in stored order) when that count divides its filters. A grouped ``[out, in/g, k…]`` weight gets
+``g = producer channels / (in/g)`` only from a producer its name makes known.
 """
 
 from __future__ import annotations
 
 import json
+import math
 import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
@@ -43,6 +65,26 @@ _NORM = re.compile(r"(norm|^ln|[._]ln|ln_?\d*$|bn\d*$|^bn|[._]bn|layernorm|gn\d*
 _TRANSPOSED = re.compile(r"(convtranspose|conv_transpose|deconv|upconv|transposed)", re.IGNORECASE)
 #: ``weight_ih_l0`` (nn.LSTM/GRU/RNN) and ``weight_ih`` (nn.LSTMCell/GRUCell/RNNCell).
 _RECURRENT = re.compile(r"^(weight|bias)_(ih|hh)(?:_l(\d+))?(_reverse)?$")
+#: Plain NumPy suffixes: ``fc_w``, ``conv1_bias``, ``lstm_w_ih_l0_reverse``.
+_SUFFIX = re.compile(
+    r"^(?P<stem>.*[A-Za-z0-9])_(?P<kind>w|W|b|weight|bias)"
+    r"(?:_(?P<part>ih|hh))?(?P<level>_l\d+)?(?P<rev>_reverse)?$"
+)
+#: Leaves that already follow PyTorch naming (never re-read as a suffix convention).
+_TORCH_LEAVES = frozenset(
+    {
+        "weight",
+        "bias",
+        "running_mean",
+        "running_var",
+        "num_batches_tracked",
+        "weight_g",
+        "weight_v",
+        "gamma",
+        "beta",
+        "LayerNorm",
+    }
+)
 #: Producer → consumer leaf names that mark the two halves of a feed-forward block.
 _PAIRS: tuple[tuple[str, str], ...] = (
     ("fc1", "fc2"),
@@ -155,6 +197,109 @@ def _rows(rows: slice) -> RowSlice:
     return RowSlice(rows.start or 0, rows.stop)
 
 
+def _modules(tensors: Mapping[str, Tensor]) -> dict[str, _Module]:
+    """Tensors grouped by module, with weight-norm parametrizations and plain NumPy suffixes
+    mapped onto PyTorch leaf names (the tensors keep their stored names)."""
+    modules: dict[str, _Module] = {}
+
+    def put(module: str, leaf: str, tensor: Tensor) -> bool:
+        leaves = modules.setdefault(module, _Module(module, {})).leaves
+        if leaf in leaves:
+            return False
+        leaves[leaf] = tensor
+        return True
+
+    for name, tensor in tensors.items():
+        module, leaf = _split(name)
+        if module.endswith("parametrizations.weight") and leaf in ("original0", "original1"):
+            # parametrizations.weight_norm: original0 is g, original1 is v (torch docs).
+            owner = module[: -len("parametrizations.weight")].rstrip(".")
+            if put(owner, "weight_g" if leaf == "original0" else "weight_v", tensor):
+                continue
+        match = (
+            _SUFFIX.match(leaf)
+            if leaf not in _TORCH_LEAVES and not _RECURRENT.match(leaf)
+            else None
+        )
+        if match is not None:
+            stem, kind, part, level, rev = match.groups()
+            mapped = "weight" if kind in ("w", "W", "weight") else "bias"
+            if part:
+                mapped += f"_{part}{level or ''}{rev or ''}"
+            elif level or rev:
+                mapped = ""
+            owner = f"{module}.{stem}" if module else stem
+            if mapped and put(owner, mapped, tensor):
+                continue
+        put(module, leaf, tensor)
+    return {name: entry for name, entry in modules.items() if entry.leaves}
+
+
+@dataclass(frozen=True, slots=True)
+class _Same:
+    """Stored orientation is canonical, but the canonical weight is not the stored tensor
+    (weight norm): a plain callable, not a RowSlice, so the audit reads ``weight_view``."""
+
+    def __call__(self, array: np.ndarray) -> np.ndarray:
+        return array
+
+
+@dataclass(frozen=True, slots=True)
+class _ColumnsT:
+    """Columns ``[start, stop)`` of a transposed recurrent matrix ``[in, G·H]``, as ``[H, in]``."""
+
+    start: int
+    stop: int
+
+    def __call__(self, array: np.ndarray) -> np.ndarray:
+        return np.asarray(array[:, self.start : self.stop].T)
+
+
+def _norm_dim(g: tuple[int, ...], v: tuple[int, ...]) -> int | bool | None:
+    """The ``dim`` of a weight-norm pair from the shapes of g and v: an axis, None (norm of
+    the whole tensor), or False when the shapes are no weight-norm pair."""
+    if math.prod(g) == 1:
+        return None
+    if len(g) == 1 and g[0] == v[0]:
+        return 0  # g saved squeezed; the default dim=0
+    if len(g) != len(v):
+        return False
+    axes = [d for d in range(len(v)) if g[d] != 1]
+    if len(axes) == 1 and g[axes[0]] == v[axes[0]]:
+        return axes[0]
+    return False
+
+
+@dataclass(frozen=True)
+class _WeightNormView:
+    """The effective weight ``g·v/‖v‖`` of a weight-normalised module, in canonical form.
+
+    torch.nn.utils.weight_norm: ``w = g · v / ‖v‖`` with the norm over every dimension but
+    ``dim`` (https://pytorch.org/docs/stable/generated/torch.nn.utils.weight_norm.html); the
+    parametrization API computes the same (torch.nn.utils.parametrizations.weight_norm)."""
+
+    g: Tensor
+    v: Tensor
+    dim: int | None
+    transform: Callable[[np.ndarray], np.ndarray] | None = None
+
+    def __call__(self) -> np.ndarray:
+        v = self.v.read_float32().astype(np.float64)
+        g = self.g.read_float32().astype(np.float64)
+        if self.dim is None:
+            norm: np.ndarray | float = float(np.sqrt(np.sum(v * v)))
+            scale = g.reshape(())
+        else:
+            axes = tuple(d for d in range(v.ndim) if d != self.dim)
+            norm = np.sqrt(np.sum(v * v, axis=axes, keepdims=True))
+            shape = [1] * v.ndim
+            shape[self.dim] = v.shape[self.dim]
+            scale = g.reshape(shape)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            weight = (v * (scale / norm)).astype(np.float32)
+        return np.ascontiguousarray(self.transform(weight) if self.transform else weight)
+
+
 def _norm_of(module: _Module) -> Norm | None:
     """A module that is a normalisation (1-D weight and/or running statistics)."""
     leaves = module.leaves
@@ -225,10 +370,7 @@ def build_layers(
     Returns the layers (``linked_by`` ``inferred`` where a link was made, else ``none``) and
     notes for the report.
     """
-    modules: dict[str, _Module] = {}
-    for name, tensor in tensors.items():
-        module, leaf = _split(name)
-        modules.setdefault(module, _Module(module, {})).leaves[leaf] = tensor
+    modules = _modules(tensors)
     # First appearance is module registration order for state dicts, the best order we have.
     order = list(modules)
     model_type = str((config or {}).get("model_type", "")).lower()
@@ -249,6 +391,7 @@ def build_layers(
             layers.append(layer)
 
     layers = _attach_norms(layers, modules, norms)
+    layers = _infer_groups(layers, notes)
     layers, linked = _link(layers, hidden_act)
     layout = read_layout(source)
     if layout is not None:
@@ -264,6 +407,13 @@ def build_layers(
 
 def _weight_layer(module: _Module, model_type: str) -> Layer | None:
     weight = module.leaves.get("weight")
+    gain: Tensor | None = None
+    dim: int | bool | None = False
+    if weight is None and "weight_g" in module.leaves and "weight_v" in module.leaves:
+        gain, weight = module.leaves["weight_g"], module.leaves["weight_v"]
+        dim = _norm_dim(gain.shape, weight.shape)
+        if dim is False or gain.role is not TensorRole.PARAMETER:
+            return None
     if weight is None or weight.role is not TensorRole.PARAMETER or len(weight.shape) < 2:
         return None
     bias = module.leaves.get("bias")
@@ -297,6 +447,11 @@ def _weight_layer(module: _Module, model_type: str) -> Layer | None:
         return None
     if bias is not None and bias.shape[0] != out:
         bias = None
+    view: Callable[[], np.ndarray] = _float_reader(weight, transform)
+    orient: Callable[[np.ndarray], np.ndarray] = transform or _identity
+    if gain is not None and dim is not False:
+        view = _WeightNormView(gain, weight, dim, transform)
+        orient = transform or _Same()
     return Layer(
         name=module.name or weight.name,
         kind=kind,
@@ -307,9 +462,10 @@ def _weight_layer(module: _Module, model_type: str) -> Layer | None:
         kernel=kernel,
         groups=1,
         activation=Activation.UNKNOWN,
-        weight_view=_float_reader(weight, transform),
+        weight_view=view,
         bias_view=_float_reader(bias) if bias is not None else None,
-        orient=transform or _identity,
+        orient=orient,
+        aux=(gain.name,) if gain is not None else (),
     )
 
 
@@ -324,14 +480,26 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
         level = f"_l{depth}" if depth is not None else ""
         suffix = f"_{which}{level}{reverse or ''}"
         hh = module.leaves.get(f"weight_hh{level}{reverse or ''}")
-        hidden = hh.shape[1] if hh is not None and len(hh.shape) == 2 else None
-        rows = weight.shape[0]
-        if not hidden or rows % hidden or rows // hidden not in _GATES:
+        # The pair decides the layout for both matrices (a square ``hh`` alone cannot).
+        ih = module.leaves.get(
+            f"weight_ih{level}{reverse or ''}", weight if which == "ih" else None
+        )
+        if ih is None or hh is None:
             continue
-        gates = _GATES[rows // hidden]
+        layout = _recurrent_layout(ih.shape, hh.shape)
+        if layout is None:
+            continue
+        hidden, count, transposed = layout
+        gates = _GATES[count]
+        fan = weight.shape[0] if transposed else weight.shape[1]
         bias = module.leaves.get(f"bias{suffix}")
+        if bias is not None and bias.shape != (count * hidden,):
+            bias = None
         for index, gate in enumerate(gates):
             sl = slice(index * hidden, (index + 1) * hidden)
+            pick: Callable[[np.ndarray], np.ndarray] = (
+                _ColumnsT(sl.start, sl.stop) if transposed else _rows(sl)
+            )
             out.append(
                 Layer(
                     name=f"{module.name + '.' if module.name else ''}{which}{level}{reverse or ''}.{gate}",
@@ -339,17 +507,97 @@ def _recurrent_layers(module: _Module) -> list[Layer]:
                     weight=weight.name,
                     bias=bias.name if bias is not None else None,
                     units=hidden,
-                    in_per_group=weight.shape[1],
+                    in_per_group=fan,
                     kernel=(),
                     groups=1,
                     activation=_GATE_ACT[gate],
-                    weight_view=_float_reader(weight, _rows(sl)),
-                    orient=_rows(sl),
+                    weight_view=_float_reader(weight, pick),
+                    orient=pick,
                     bias_view=_float_reader(bias, _rows(sl)) if bias is not None else None,
                     gate=gate,
                 )
             )
     return out
+
+
+def _recurrent_layout(ih: tuple[int, ...], hh: tuple[int, ...]) -> tuple[int, int, bool] | None:
+    """(hidden size, gate count, transposed) of a recurrent pair, or None.
+
+    PyTorch stacks gates along rows: ``ih [G·H, in]``, ``hh [G·H, H]``; hand-written NumPy
+    code often keeps ``x @ W`` order, ``[in, G·H]`` and ``[H, G·H]``. The recurrent matrix
+    decides, since it is ``[G·H, H]`` or ``[H, G·H]``; a square one (G = 1) is read the
+    PyTorch way unless only the transposed reading fits the input matrix.
+    """
+    if len(ih) != 2 or len(hh) != 2 or not hh[0] or not hh[1]:
+        return None
+    torch_fit = hh[0] % hh[1] == 0 and hh[0] // hh[1] in _GATES and ih[0] == hh[0]
+    numpy_fit = hh[1] % hh[0] == 0 and hh[1] // hh[0] in _GATES and ih[1] == hh[1]
+    if torch_fit:
+        return hh[1], hh[0] // hh[1], False
+    if numpy_fit:
+        return hh[0], hh[1] // hh[0], True
+    return None
+
+
+def _infer_groups(layers: list[Layer], notes: list[str]) -> list[Layer]:
+    """Groups of convolutions whose weight reads fewer input channels than their producer
+    has (see the module docstring for the rule)."""
+    by_name = {layer.name: layer for layer in layers}
+    # Natural name order, not stored order: safetensors sorts its keys, so "seq.10" would
+    # otherwise come before "seq.2".
+    ordered = sorted(layers, key=lambda layer: _natural(layer.name))
+    before: dict[str, Layer | None] = {}
+    last: Layer | None = None
+    for layer in ordered:
+        before[layer.name] = last
+        if layer.kind in (LayerKind.CONV, LayerKind.CONV_TRANSPOSE):
+            last = layer
+    out: list[Layer] = []
+    changed: list[str] = []
+    unknown: list[str] = []
+    for layer in layers:
+        previous = before.get(layer.name)
+        if layer.kind is LayerKind.CONV and layer.groups == 1:
+            parent, leaf = _split(layer.name)
+            named = _previous_sibling(layer, parent, leaf, by_name)
+            producer = by_name.get(named) if named is not None else None
+            if producer is not None and producer.kind not in (
+                LayerKind.CONV,
+                LayerKind.CONV_TRANSPOSE,
+            ):
+                producer = None
+            if producer is None and layer.in_per_group == 1:
+                producer = previous  # depthwise: the convolution before it in stored order
+            groups = 1
+            if producer is not None and producer.units % layer.in_per_group == 0:
+                groups = producer.units // layer.in_per_group
+            if groups > 1 and layer.units % groups == 0:
+                layer = replace(layer, groups=groups)
+                changed.append(
+                    f"{layer.name} ({groups}, from {producer.name if producer else '?'})"
+                )
+            elif layer.in_per_group == 1 and producer is None:
+                unknown.append(layer.name)
+        out.append(layer)
+    if unknown:
+        notes.append(
+            "one input channel per filter and no known producer (depthwise, or a one-channel "
+            "input?), groups taken as 1: "
+            + ", ".join(unknown[:5])
+            + ("…" if len(unknown) > 5 else "")
+        )
+    if changed:
+        notes.append(
+            "groups inferred from the producer's channel count: "
+            + ", ".join(changed[:5])
+            + ("…" if len(changed) > 5 else "")
+        )
+    return out
+
+
+def _natural(text: str) -> list[tuple[int, int | str]]:
+    """Sort key that puts ``seq.10`` after ``seq.2``."""
+    return [(0, int(p)) if p.isdigit() else (1, p) for p in re.split(r"(\d+)", text)]
 
 
 def _sibling_norm(name: str, parent: str, leaf: str, norms: Mapping[str, Norm]) -> str | None:
@@ -416,7 +664,7 @@ def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Laye
         found = [
             name
             for name in found
-            if by_name[name].units * (layer.groups or 1) == layer.in_per_group * layer.groups
+            if by_name[name].units == layer.in_per_group * layer.groups
             and by_name[name].kind is not LayerKind.EMBEDDING
         ]
         if found:
@@ -463,10 +711,30 @@ def _previous_sibling(
 LAYOUT_NAMES = ("{stem}.layout.toml", "steelyard.layout.toml")
 _ACTIVATIONS = {a.value: a for a in Activation}
 _KINDS = {k.value: k for k in LayerKind}
+#: Keys of a ``[[layer]]`` entry that adjusts an inferred layer.
+_ADJUST_KEYS = frozenset({"name", "orientation", "activation", "inputs-from", "kind"})
+#: Keys of a ``[[layer]]`` entry that declares a layer (it has ``weight``).
+_DECLARE_KEYS = _ADJUST_KEYS | {"weight", "bias", "axes", "groups"}
+#: Kinds a layout file may declare (recurrent layers need per-gate splitting: declare each
+#: gate's matrix as a dense layer instead).
+_DECLARABLE = {
+    LayerKind.DENSE: (2,),
+    LayerKind.EMBEDDING: (2,),
+    LayerKind.CONV: (3, 4, 5),
+    LayerKind.CONV_TRANSPOSE: (3, 4, 5),
+}
+
+
+def _layout_error(path: Path, entry: Mapping[str, Any] | None, reason: str) -> LoadError:
+    where = f"layer {entry['name']!r}: " if entry is not None and "name" in entry else ""
+    return LoadError(path, f"{where}{reason}")
 
 
 def read_layout(source: Path) -> dict[str, Any] | None:
-    """The user's layout file for ``source``, validated, or None."""
+    """The user's layout file for ``source``, validated (keys, types, values), or None.
+
+    Checks that need the checkpoint (tensor names, shapes, layer names) happen in
+    :func:`apply_layout`."""
     from steelyard._toml import tomllib
 
     for pattern in LAYOUT_NAMES:
@@ -475,6 +743,8 @@ def read_layout(source: Path) -> dict[str, Any] | None:
             break
     else:
         return None
+    if candidate.stat().st_size > MAX_METADATA_BYTES:
+        raise LoadError(candidate, "is larger than the 100 MB cap")
     try:
         data = tomllib.loads(candidate.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError) as exc:
@@ -489,70 +759,234 @@ def read_layout(source: Path) -> dict[str, Any] | None:
     entries = data.get("layer", [])
     if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
         raise LoadError(candidate, "layout [[layer]] entries must be tables")
-    allowed = {"name", "orientation", "activation", "inputs-from", "kind"}
+    names: set[str] = set()
     for entry in entries:
-        unknown = set(entry) - allowed
-        if unknown or not isinstance(entry.get("name"), str):
-            raise LoadError(
-                candidate, f"layout [[layer]] needs a 'name' and only {sorted(allowed)}"
-            )
-        if entry.get("orientation", "out-in") not in ("out-in", "in-out"):
-            raise LoadError(
-                candidate, f"layer {entry['name']!r}: orientation must be out-in or in-out"
-            )
-        if entry.get("activation", "unknown") not in _ACTIVATIONS:
-            raise LoadError(
-                candidate, f"layer {entry['name']!r}: unknown activation {entry['activation']!r}"
-            )
-        if entry.get("kind", "dense") not in _KINDS:
-            raise LoadError(candidate, f"layer {entry['name']!r}: unknown kind {entry['kind']!r}")
-        sources = entry.get("inputs-from", [])
-        if not isinstance(sources, list) or not all(isinstance(x, str) for x in sources):
-            raise LoadError(
-                candidate, f"layer {entry['name']!r}: inputs-from must be a list of names"
-            )
+        _check_entry(candidate, entry)
+        if entry["name"] in names:
+            raise _layout_error(candidate, entry, "is listed twice")
+        names.add(entry["name"])
     data["__path__"] = str(candidate)
     return data
+
+
+def _check_entry(path: Path, entry: dict[str, Any]) -> None:
+    """Keys and value types of one ``[[layer]]`` entry."""
+    if not isinstance(entry.get("name"), str) or not entry["name"]:
+        raise LoadError(path, "every layout [[layer]] needs a 'name'")
+    declares = "weight" in entry
+    allowed = _DECLARE_KEYS if declares else _ADJUST_KEYS
+    unknown = sorted(set(entry) - allowed)
+    if unknown:
+        extra = (
+            "" if declares else " ('bias', 'axes' and 'groups' need a 'weight': a declared layer)"
+        )
+        raise _layout_error(
+            path, entry, f"unknown key(s) {unknown}; allowed: {sorted(allowed)}{extra}"
+        )
+    if entry.get("orientation", "out-in") not in ("out-in", "in-out"):
+        raise _layout_error(path, entry, 'orientation must be "out-in" or "in-out"')
+    if entry.get("activation", "unknown") not in _ACTIVATIONS:
+        raise _layout_error(path, entry, f"unknown activation {entry['activation']!r}")
+    if entry.get("kind", "dense") not in _KINDS:
+        raise _layout_error(path, entry, f"unknown kind {entry['kind']!r}")
+    sources = entry.get("inputs-from", [])
+    if not isinstance(sources, list) or not all(isinstance(x, str) for x in sources):
+        raise _layout_error(path, entry, "inputs-from must be a list of layer names")
+    if not declares:
+        return
+    for key in ("weight", "bias"):
+        if key in entry and (not isinstance(entry[key], str) or not entry[key]):
+            raise _layout_error(path, entry, f"{key} must be a tensor name")
+    if "kind" in entry and _KINDS[entry["kind"]] not in _DECLARABLE:
+        raise _layout_error(
+            path,
+            entry,
+            f"kind {entry['kind']!r} cannot be declared (declare each gate's matrix as dense)",
+        )
+    axes = entry.get("axes")
+    if axes is not None and (
+        not isinstance(axes, list)
+        or not all(isinstance(a, int) and not isinstance(a, bool) for a in axes)
+    ):
+        raise _layout_error(path, entry, "axes must be a list of stored axis numbers")
+    if axes is not None and "orientation" in entry:
+        raise _layout_error(path, entry, "give either axes or orientation, not both")
+    groups = entry.get("groups", 1)
+    if isinstance(groups, bool) or not isinstance(groups, int) or groups < 1:
+        raise _layout_error(path, entry, "groups must be a positive integer")
+
+
+@dataclass(frozen=True, slots=True)
+class _Axes:
+    """Canonical view of a declared weight: ``np.transpose(stored, axes)``."""
+
+    axes: tuple[int, ...]
+
+    def __call__(self, array: np.ndarray) -> np.ndarray:
+        return np.transpose(array, self.axes)
+
+
+def _declared_axes(entry: Mapping[str, Any], ndim: int, default: str) -> tuple[int, ...]:
+    """Stored axis for each canonical axis ``[out, in/groups, *kernel]``."""
+    if "axes" in entry:
+        return tuple(entry["axes"])
+    if entry.get("orientation", default) == "out-in":
+        return tuple(range(ndim))
+    # "in-out": [in, out] for 2-D weights, [*kernel, in/groups, out] for convolutions
+    # (the TensorFlow/Keras/Flax order).
+    return (ndim - 1, ndim - 2, *range(ndim - 2))
+
+
+def _declare(
+    entry: Mapping[str, Any], tensors: Mapping[str, Tensor], default: str, path: Path
+) -> Layer:
+    """The layer a layout entry with a ``weight`` declares, checked against the tensors."""
+    weight = tensors.get(entry["weight"])
+    if weight is None:
+        raise _layout_error(
+            path, entry, f"weight tensor {entry['weight']!r} is not in the checkpoint"
+        )
+    if weight.role is not TensorRole.PARAMETER:
+        raise _layout_error(
+            path, entry, f"weight tensor {weight.name!r} is {weight.dtype}, not a floating weight"
+        )
+    ndim = len(weight.shape)
+    kind = (
+        _KINDS[entry["kind"]]
+        if "kind" in entry
+        else (LayerKind.DENSE if ndim == 2 else LayerKind.CONV)
+    )
+    if ndim not in _DECLARABLE.get(kind, ()):
+        raise _layout_error(
+            path,
+            entry,
+            f"weight {weight.name!r} has shape {list(weight.shape)}, which a {kind.value} layer "
+            f"cannot have ({' or '.join(f'{n}-D' for n in _DECLARABLE[kind])})",
+        )
+    axes = _declared_axes(entry, ndim, default)
+    if sorted(axes) != list(range(ndim)):
+        raise _layout_error(
+            path, entry, f"axes {list(axes)} are no ordering of the weight's {ndim} axes"
+        )
+    canonical = tuple(weight.shape[a] for a in axes)
+    units, fan, kernel = canonical[0], canonical[1], canonical[2:]
+    groups = int(entry.get("groups", 1))
+    if units % groups:
+        raise _layout_error(path, entry, f"groups={groups} does not divide its {units} units")
+    bias_name = entry.get("bias")
+    bias = tensors.get(bias_name) if bias_name is not None else None
+    if bias_name is not None:
+        if bias is None:
+            raise _layout_error(path, entry, f"bias tensor {bias_name!r} is not in the checkpoint")
+        if bias.shape != (units,):
+            raise _layout_error(
+                path,
+                entry,
+                f"bias {bias_name!r} has shape {list(bias.shape)}, but weight "
+                f"{weight.name!r} {list(weight.shape)} read as canonical "
+                f"{list(canonical)} has {units} units",
+            )
+    transform = _identity if axes == tuple(range(ndim)) else _Axes(axes)
+    return Layer(
+        name=entry["name"],
+        kind=kind,
+        weight=weight.name,
+        bias=bias.name if bias is not None else None,
+        units=units,
+        in_per_group=fan,
+        kernel=kernel,
+        groups=groups,
+        activation=_ACTIVATIONS[entry.get("activation", "unknown")],
+        weight_view=_float_reader(weight, None if transform is _identity else transform),
+        bias_view=_float_reader(bias) if bias is not None else None,
+        orient=transform,
+    )
 
 
 def apply_layout(
     layers: list[Layer], tensors: Mapping[str, Tensor], layout: Mapping[str, Any], source: Path
 ) -> list[Layer]:
-    """Apply the user's orientation, activation, kind and link overrides."""
-    by_name = {entry["name"]: entry for entry in layout.get("layer", [])}
-    known = {layer.name for layer in layers}
-    for name in by_name:
-        if name not in known:
-            raise LoadError(
-                str(layout["__path__"]), f"layout names layer {name!r}, which the checkpoint lacks"
-            )
+    """Apply the user's layout: declared layers (entries with ``weight``) replace any inferred
+    layer reading the same weight tensor and are added; other entries adjust inferred layers'
+    orientation, activation, kind and links."""
+    path = Path(str(layout["__path__"]))
     default = layout.get("orientation", "out-in")
-    out: list[Layer] = []
-    for layer in layers:
-        entry = by_name.get(layer.name, {})
-        orientation = entry.get("orientation", default)
-        update: dict[str, Any] = {}
-        weight = tensors[layer.weight]
-        if orientation == "in-out" and len(weight.shape) == 2 and layer.gate is None:
-            update.update(
-                units=weight.shape[1],
-                in_per_group=weight.shape[0],
-                weight_view=_float_reader(weight, np.transpose),
-                orient=np.transpose,
+    entries = list(layout.get("layer", []))
+    declared = [_declare(e, tensors, default, path) for e in entries if "weight" in e]
+    claimed = {layer.weight: layer.name for layer in declared}
+    if len(claimed) != len(declared):
+        raise LoadError(path, "two declared layers read the same weight tensor")
+    kept = [layer for layer in layers if layer.weight not in claimed]
+    kept_names = {layer.name for layer in kept}
+    for layer in declared:
+        if layer.name in kept_names:
+            raise _layout_error(
+                path,
+                {"name": layer.name},
+                "is already a layer of the checkpoint reading another tensor; pick another name",
             )
-            bias = tensors.get(layer.bias) if layer.bias else None
-            if bias is not None and bias.shape != (weight.shape[1],):
-                update.update(bias=None, bias_view=None)
-        if "activation" in entry:
-            update["activation"] = _ACTIVATIONS[entry["activation"]]
-        if "kind" in entry:
-            update["kind"] = _KINDS[entry["kind"]]
+    adjust = {e["name"]: e for e in entries if "weight" not in e}
+    for name in adjust:
+        if name not in kept_names:
+            raise LoadError(path, f"layout names layer {name!r}, which the checkpoint lacks")
+    # Declared layers take the place of the inferred layer they replace, else go last.
+    replaced = {layer.weight: layer for layer in declared}
+    merged: list[Layer] = []
+    for layer in layers:
+        if layer.weight in replaced:
+            if replaced[layer.weight] not in merged:
+                merged.append(replaced[layer.weight])
+        else:
+            merged.append(layer)
+    merged += [layer for layer in declared if layer not in merged]
+    by_name = {layer.name: layer for layer in merged}
+    out: list[Layer] = []
+    for layer in merged:
+        entry: Mapping[str, Any] = adjust.get(layer.name) or next(
+            (e for e in entries if "weight" in e and e["name"] == layer.name), {}
+        )
+        update = _adjusted(layer, tensors, entry, default) if "weight" not in entry else {}
         if "inputs-from" in entry:
-            missing = [n for n in entry["inputs-from"] if n not in known]
+            missing = [n for n in entry["inputs-from"] if n not in by_name]
             if missing:
-                raise LoadError(
-                    str(layout["__path__"]), f"layer {layer.name!r} is fed by unknown {missing}"
-                )
-            update.update(inputs_from=tuple(entry["inputs-from"]), linked_by=Link.INFERRED)
+                raise _layout_error(path, entry, f"inputs-from names unknown layer(s) {missing}")
+            if "weight" in entry:
+                expected = layer.in_per_group * layer.groups
+                for source_name in entry["inputs-from"]:
+                    producer = by_name[source_name]
+                    if len(entry["inputs-from"]) == 1 and producer.units != expected:
+                        raise _layout_error(
+                            path,
+                            entry,
+                            f"reads {expected} inputs but {source_name!r} has {producer.units} units",
+                        )
+            update.update(
+                inputs_from=tuple(entry["inputs-from"]),
+                linked_by=Link.CONFIG if "weight" in entry else Link.INFERRED,
+            )
         out.append(replace(layer, **update) if update else layer)
     return out
+
+
+def _adjusted(
+    layer: Layer, tensors: Mapping[str, Tensor], entry: Mapping[str, Any], default: str
+) -> dict[str, Any]:
+    """Changes an adjusting entry (or the file-wide orientation) makes to an inferred layer."""
+    update: dict[str, Any] = {}
+    orientation = entry.get("orientation", default)
+    weight = tensors[layer.weight]
+    if orientation == "in-out" and len(weight.shape) == 2 and layer.gate is None:
+        update.update(
+            units=weight.shape[1],
+            in_per_group=weight.shape[0],
+            weight_view=_float_reader(weight, np.transpose),
+            orient=np.transpose,
+        )
+        bias = tensors.get(layer.bias) if layer.bias else None
+        if bias is not None and bias.shape != (weight.shape[1],):
+            update.update(bias=None, bias_view=None)
+    if "activation" in entry:
+        update["activation"] = _ACTIVATIONS[entry["activation"]]
+    if "kind" in entry:
+        update["kind"] = _KINDS[entry["kind"]]
+    return update

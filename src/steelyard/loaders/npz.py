@@ -1,7 +1,12 @@
 """NumPy ``.npz`` archives: a zip of ``.npy`` members, parsed without ``allow_pickle``.
 
 We parse each member's ``.npy`` header ourselves (it is a literal dict) so that an object
-array is refused at open time, a stored member is memory-mapped, and nothing is unpickled.
+array is recognised at open time, a stored member is memory-mapped, and nothing is unpickled.
+
+Members that are no tensor (strings such as a ``<U..`` vocabulary, structured or void
+records, datetimes, complex numbers, and object arrays, which would need pickle) are skipped
+and named in the checkpoint's notes; their bytes are never read. Booleans are kept as
+bookkeeping tensors (flags and masks, not parameters).
 """
 
 from __future__ import annotations
@@ -29,10 +34,17 @@ _MAX_HEADER = 65_536
 _LOCAL_HEADER = struct.Struct("<4sHHHHHIIIHH")
 
 
+class _NotATensor(Exception):
+    """A well-formed member that holds no tensor; the message says what it holds."""
+
+
 def _parse_header(
     raw: bytes, path: Path, member: str
 ) -> tuple[np.dtype[np.generic], tuple[int, ...], bool, int]:
-    """dtype, shape, fortran_order and header length of one ``.npy`` member."""
+    """dtype, shape, fortran_order and header length of one ``.npy`` member.
+
+    Raises :class:`_NotATensor` for a well-formed member that is no tensor (skipped) and
+    :class:`LoadError` for a malformed one (the file is refused)."""
     if raw[:6] != _MAGIC or len(raw) < 10:
         raise LoadError(path, f"member {member!r} is not a .npy array")
     major = raw[6]
@@ -54,23 +66,30 @@ def _parse_header(
     if not isinstance(header, dict) or set(header) != {"descr", "fortran_order", "shape"}:
         raise LoadError(path, f"member {member!r} has a malformed .npy header")
     descr, fortran, shape = header["descr"], header["fortran_order"], header["shape"]
-    if not isinstance(descr, str):
-        raise LoadError(path, f"member {member!r} holds a structured array, which is not a tensor")
     if not isinstance(shape, tuple) or not all(isinstance(d, int) and d >= 0 for d in shape):
         raise LoadError(path, f"member {member!r} has an invalid shape {shape!r}")
+    if not isinstance(fortran, bool):
+        raise LoadError(path, f"member {member!r} has a malformed .npy header")
+    if isinstance(descr, list):
+        # numpy writes a structured dtype as a list of fields; it may hold objects, so it is
+        # never turned into a dtype here.
+        raise _NotATensor("structured records")
+    if not isinstance(descr, str):
+        raise LoadError(path, f"member {member!r} has a malformed .npy header")
+    if descr.lstrip("<>|=").startswith("O"):
+        raise _NotATensor("Python objects, which would need pickle: never loaded")
     try:
         dtype = np.dtype(descr)
     except TypeError:
         raise LoadError(path, f"member {member!r} has an unknown dtype {descr!r}") from None
     if dtype.hasobject:
-        raise LoadError(
-            path, f"member {member!r} holds Python objects, which would need pickle (refused)"
-        )
+        raise _NotATensor("Python objects, which would need pickle: never loaded")
     if dtype.kind == "V" and dtype.itemsize == 2:
         # ml_dtypes bfloat16 arrays are saved as anonymous 2-byte voids.
         dtype = np.dtype(ml_dtypes.bfloat16)
     elif dtype.kind not in "biuf":
-        raise LoadError(path, f"member {member!r} has dtype {descr!r}, which is not numeric")
+        kinds = {"U": "text", "S": "bytes", "V": "raw records", "M": "dates", "m": "durations"}
+        raise _NotATensor(f"{kinds.get(dtype.kind, 'values')} of dtype {descr!r}")
     return dtype, tuple(shape), bool(fortran), start + length
 
 
@@ -92,6 +111,7 @@ class NpzLoader:
     def load(self, path: Path) -> Checkpoint:
         size = file_size(path)
         tensors: dict[str, Tensor] = {}
+        skipped: list[str] = []
         with open_zip(path) as archive:
             members = safe_zip_names(archive, path)
             for member, info in members.items():
@@ -100,7 +120,11 @@ class NpzLoader:
                 name = member[: -len(".npy")]
                 with archive.open(info) as stream:
                     head = stream.read(_MAX_HEADER + 12)
-                dtype, shape, fortran, header_len = _parse_header(head, path, member)
+                try:
+                    dtype, shape, fortran, header_len = _parse_header(head, path, member)
+                except _NotATensor as why:
+                    skipped.append(f"{name} ({why})")
+                    continue
                 expected = math.prod(shape) * dtype.itemsize
                 if info.file_size != header_len + expected:
                     raise LoadError(
@@ -116,7 +140,8 @@ class NpzLoader:
                     role=role_for(name, short in FLOAT_DTYPES),
                     reader=self._reader(path, size, info, dtype, shape, fortran, header_len),
                 )
-        return inferred_checkpoint(path, self.format, tensors, (path,), size)
+        notes = [f"skipped arrays that are no tensors: {', '.join(skipped)}"] if skipped else []
+        return inferred_checkpoint(path, self.format, tensors, (path,), size, notes)
 
     @staticmethod
     def _reader(

@@ -112,17 +112,30 @@ def _conv(rng: np.random.Generator) -> dict[str, np.ndarray]:
     }
 
 
-def _conv_onnx(path: Path, tensors: dict[str, np.ndarray]) -> Path:
+#: ONNX initializer names for the normalisation when an exporter renamed it.
+_RENAMED = {
+    "affine.weight": "bn_gamma",
+    "affine.bias": "bn_beta",
+    "affine.running_mean": "bn_mean",
+    "affine.running_var": "bn_var",
+}
+
+
+def _conv_onnx(path: Path, tensors: dict[str, np.ndarray], rename: bool = False) -> Path:
     from onnx import helper, numpy_helper
 
-    inits = [numpy_helper.from_array(v, k) for k, v in tensors.items()]
+    names = {k: (_RENAMED.get(k, k) if rename else k) for k in tensors}
+    inits = [numpy_helper.from_array(v, names[k]) for k, v in tensors.items()]
     nodes = [
         helper.make_node(
             "Conv", ["x", "dw.weight", "dw.bias"], ["c"], group=4, kernel_shape=[3, 3], pads=[1] * 4
         ),
         helper.make_node(
             "BatchNormalization",
-            ["c", "affine.weight", "affine.bias", "affine.running_mean", "affine.running_var"],
+            [
+                "c",
+                *(names[f"affine.{p}"] for p in ("weight", "bias", "running_mean", "running_var")),
+            ],
             ["n"],
         ),
         helper.make_node("Relu", ["n"], ["r"]),
@@ -221,14 +234,16 @@ def test_a_planted_change_is_still_found_across_formats(
     assert result.exit_code == 1 and document["gate"]["passed"] is False
 
 
+@pytest.mark.parametrize("rename", [False, True], ids=["same-names", "renamed-norm"])
 @pytest.mark.parametrize("forward", [True, False], ids=["names-to-graph", "graph-to-names"])
 def test_groups_and_a_normalisation_known_only_to_the_graph_are_shared(
-    tmp_path: Path, rng: np.random.Generator, forward: bool
+    tmp_path: Path, rng: np.random.Generator, forward: bool, rename: bool
 ) -> None:
+    # renamed: the ONNX file holds the normalisation under other names, found by its values
     tensors = _conv(rng)
     files = [
         write_safetensors(tmp_path / "c.safetensors", tensors),
-        _conv_onnx(tmp_path / "c.onnx", tensors),
+        _conv_onnx(tmp_path / "c.onnx", tensors, rename),
     ]
     old, new = files if forward else files[::-1]
     document = api.compare(old, new, Policy(fail_on="info")).to_dict()
@@ -246,3 +261,19 @@ def test_groups_and_a_normalisation_known_only_to_the_graph_are_shared(
     # the comparison covers the normalisation's tensors on both sides now
     assert document["coverage"]["compared_share_new"] == 1.0
     assert document["coverage"]["compared_share_old"] == 1.0
+
+
+def test_a_normalisation_that_cannot_be_told_apart_is_named_in_a_note(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    # the renamed shift and running mean are both all zero: which is which cannot be told by
+    # values, so the normalisation is not shared and the report says so
+    tensors = _conv(rng)
+    tensors["affine.bias"] = np.zeros(4, np.float32)
+    tensors["affine.running_mean"] = np.zeros(4, np.float32)
+    old = write_safetensors(tmp_path / "c.safetensors", tensors)
+    new = _conv_onnx(tmp_path / "c.onnx", tensors, rename=True)
+    document = api.compare(old, new).to_dict()
+    assert any(
+        "could not take its normalisation" in n and "'dw'" in n for n in document["notes"]
+    ), document["notes"]

@@ -17,8 +17,9 @@ view holds the rebuilt layers over the same lazily read tensors. What is taken, 
 * **links** (``inputs_from`` translated through the matching, with ``linked_by``,
   ``from_input``, ``channels_last_inputs`` and ``is_output``): when one side's links come from a
   better source (graph or config over names over none) and every input layer has a partner;
-* **normalisation**: when the richer-linked side has one, the other has none and holds the
-  same tensors under the same names and shapes, not read by another of its layers;
+* **normalisation**: when the richer-linked side has one and the other has none but holds its
+  tensors, read by no other of its layers: under the same names and shapes, or renamed and
+  found by their values (exactly equal, and only one candidate);
 * **kind and groups**: when one side is described by a graph or config and the other is not,
   and both expose the same canonical shape (units, inputs per group, kernel); the kind only
   between dense and embedding, whose canonical views are the stored matrix on both sides;
@@ -35,8 +36,10 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
+import numpy as np
+
 from steelyard.compare.matching import Pair, signature
-from steelyard.graph import Activation, Checkpoint, Layer, LayerKind, Link
+from steelyard.graph import Activation, Checkpoint, Layer, LayerKind, Link, Norm, TensorRole
 
 #: How much a layer's ``linked_by`` says: a graph or config states the structure, names only
 #: suggest it, none knows nothing.
@@ -45,6 +48,7 @@ _RANK = {Link.GRAPH: 2, Link.CONFIG: 2, Link.INFERRED: 1, Link.NONE: 0}
 #: label can change without the view changing.
 _RELABEL = frozenset({LayerKind.DENSE, LayerKind.EMBEDDING})
 _SOURCE = {Link.GRAPH: "graph", Link.CONFIG: "config", Link.INFERRED: "names"}
+_NORM_PARTS = ("scale", "shift", "mean", "var")
 
 
 @dataclass(frozen=True)
@@ -106,19 +110,12 @@ def _borrow(
         else:
             missed.append("links (an input layer has no partner)")
         if src.norm is not None and dst.norm is None:
-            names = [n for n in (src.norm.scale, src.norm.shift, src.norm.mean, src.norm.var) if n]
-            usable = all(
-                n in dst_side.tensors
-                and n in src_side.tensors
-                and dst_side.tensors[n].shape == src_side.tensors[n].shape
-                and claimed.get(n, dst.name) == dst.name
-                for n in names
-            )
-            if usable:
-                update["norm"] = src.norm
+            carried = _carried_norm(src.norm, dst, dst_side, src_side, claimed)
+            if carried is not None:
+                update["norm"] = carried
                 took.append("normalisation")
             else:
-                missed.append("normalisation (its tensors have other names or shapes)")
+                missed.append("normalisation (its tensors are not found in this file)")
     config = dst.linked_by is Link.CONFIG  # a config that declares none means none
     if src.constraint is not None and dst.constraint is None and not config:
         update["constraint"] = src.constraint
@@ -127,6 +124,56 @@ def _borrow(
         update["regularizer"] = src.regularizer
         took.append("regularizer")
     return update, took, missed
+
+
+def _carried_norm(
+    norm: Norm, dst: Layer, dst_side: Checkpoint, src_side: Checkpoint, claimed: Mapping[str, str]
+) -> Norm | None:
+    """``norm`` (a layer of ``src_side``) with the names of ``dst_side``'s tensors that hold it,
+    or None when they cannot be told for certain.
+
+    Each part is the tensor of the same name and shape, else the one tensor of ``dst_side``
+    that no other layer reads and that holds exactly the same values (a file that renamed the
+    tensors); two candidates with equal values (a zero shift and a zero running mean) make it
+    unknown. Only per-unit vectors are read, so this stays cheap.
+    """
+    free = {
+        name: tensor
+        for name, tensor in dst_side.tensors.items()
+        if claimed.get(name, dst.name) == dst.name and tensor.role is TensorRole.PARAMETER
+    }
+    mapped: dict[str, str] = {}
+    for part in _NORM_PARTS:
+        name = getattr(norm, part)
+        if name is None:
+            continue
+        source = src_side.tensors.get(name)
+        if source is None:
+            return None
+        same = free.get(name)
+        if same is not None and same.shape == source.shape:
+            mapped[part] = name
+            continue
+        values = source.read_float32()
+        hits = [
+            other
+            for other, tensor in free.items()
+            if tensor.shape == source.shape
+            and other not in mapped.values()
+            and np.array_equal(tensor.read_float32(), values)
+        ]
+        if len(hits) != 1:
+            return None
+        mapped[part] = hits[0]
+    if len(set(mapped.values())) != len(mapped):
+        return None
+    return replace(
+        norm,
+        scale=mapped.get("scale"),
+        shift=mapped.get("shift"),
+        mean=mapped.get("mean"),
+        var=mapped.get("var"),
+    )
 
 
 def _source(side: Checkpoint, layers: Sequence[Layer]) -> str:

@@ -20,6 +20,18 @@ b' = (b−μ)·γ/sqrt(var+ε) + β), because that is what the deployed unit com
 
 Embeddings are skipped (a zero row is usually a padding index, by design).
 
+**One dead channel, one finding.** A channel-wise convolution (depthwise: one input channel
+per group, as in MobileNet-style blocks) computes its output channel o from input channel
+u = o // multiplier alone, so a dead channel shows in both layers: a zero depthwise filter
+makes the producer's unit u *unused*, and a dead producer unit leaves the depthwise channel
+nothing to compute from. Each such channel is reported once, where the problem originates:
+at the producer, unless the producer's only reason is *unused* (then the depthwise filters
+are the dead ones and the producer's unit is collateral). The other layer's units are named
+in the evidence of that finding, ``also_dead_downstream`` or ``also_dead_upstream``
+(``{layer: [units]}``), and left out of that layer's own finding. This needs every layer's
+result, so the rule decides once all layers are done; the outcome never depends on
+``--jobs``.
+
 **Why it matters.** A dead unit costs parameters and compute and contributes nothing; many of
 them mean a layer lost capacity during training (a learning rate too high for ReLU units, a
 too-strong L1 penalty, a normalisation scale decayed to zero).
@@ -34,7 +46,9 @@ retrain with a lower learning rate, leaky activations, or a weaker penalty.
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -124,8 +138,32 @@ def _bounds(ctx: AuditContext) -> IntervalBounds | None:
     return IntervalBounds(ctx.stats, declared) if declared else None
 
 
+@dataclass(frozen=True)
+class _Dead:
+    """One layer's dead units by test, kept until :func:`finish` has seen every layer."""
+
+    layer: Layer
+    tests: dict[str, set[int]]
+    how: str
+    per_unit: int
+    """Parameters one dead unit costs (its row, bias, norm parameters, consumer columns)."""
+
+
+class _Store:
+    """Per-audit store of :class:`_Dead`, filled by the per-layer hook from any thread."""
+
+    def __init__(self) -> None:
+        self.lock = threading.Lock()
+        self.by_layer: dict[str, _Dead] = {}
+
+
+def _store(ctx: AuditContext) -> _Store:
+    return ctx.stats.shared(f"{RULE.name}:dead", _Store)
+
+
 def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
-    """Yield the finding for one layer's dead units, if it has any."""
+    """Find one layer's dead units and keep them for :func:`finish`, which reports each dead
+    channel once across a channel-wise (depthwise) convolution and the layer feeding it."""
     if layer.kind is LayerKind.EMBEDDING or not settings.enabled(layer):
         return
     bounds = ctx.stats.shared(f"dead-unit:bounds:{ctx.policy.input_range!r}", lambda: _bounds(ctx))
@@ -137,6 +175,110 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
         tests["silenced"] = _silenced(ctx, settings, layer)
     else:
         how = ""
+    if not any(tests.values()):
+        return
+    store = _store(ctx)
+    record = _Dead(layer, tests, how, _saving(ctx, layer, 1))
+    with store.lock:
+        store.by_layer[layer.name] = record
+    yield from ()
+
+
+def _channel_pairs(records: dict[str, _Dead], order: dict[str, int]) -> list[tuple[_Dead, _Dead]]:
+    """(producer, consumer) pairs in which each consumer unit reads exactly one producer unit:
+    a grouped convolution with one input channel per group (depthwise), fed by one layer
+    whose units are its input channels. In layer order, so the result never depends on
+    ``--jobs``."""
+    pairs: list[tuple[_Dead, _Dead]] = []
+    for consumer in records.values():
+        layer = consumer.layer
+        if (
+            layer.kind is not LayerKind.CONV
+            or layer.in_per_group != 1
+            or layer.groups < 2
+            or layer.units % layer.groups
+            or len(layer.inputs_from) != 1
+        ):
+            continue
+        producer = records.get(layer.inputs_from[0])
+        if producer is not None and producer.layer.units == layer.groups:
+            pairs.append((producer, consumer))
+    pairs.sort(key=lambda pair: (order[pair[1].layer.name], order[pair[0].layer.name]))
+    return pairs
+
+
+def _origins(
+    records: dict[str, _Dead], order: dict[str, int]
+) -> dict[tuple[str, int], tuple[str, int]]:
+    """(layer, unit) → the (layer, unit) where that channel's death originates, for every dead
+    unit that is only the echo of another across a channel-wise pair.
+
+    Consumer channel o reads producer unit u = o // multiplier alone. When both are dead, the
+    producer is the origin (the consumer's channel died of its input), unless the producer's
+    only finding on u is *unused*: that one is caused by the consumer, whose filters for u are
+    the dead ones, so the consumer is the origin.
+    """
+    echo: dict[tuple[str, int], tuple[str, int]] = {}
+    for producer, consumer in _channel_pairs(records, order):
+        dead_p = set().union(*producer.tests.values())
+        dead_c = set().union(*consumer.tests.values())
+        multiplier = consumer.layer.units // consumer.layer.groups
+        for channel in sorted(dead_c):
+            unit = channel // multiplier
+            if unit not in dead_p:
+                continue
+            p_key, c_key = (producer.layer.name, unit), (consumer.layer.name, channel)
+            reasons = {name for name, units in producer.tests.items() if unit in units}
+            if reasons == {"unused"}:
+                echo.setdefault(p_key, c_key)
+            else:
+                echo.setdefault(c_key, p_key)
+    return echo
+
+
+def _root(echo: dict[tuple[str, int], tuple[str, int]], key: tuple[str, int]) -> tuple[str, int]:
+    seen = {key}
+    while key in echo and echo[key] not in seen:
+        key = echo[key]
+        seen.add(key)
+    return key
+
+
+def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+    """One finding per layer with dead units of its own; a channel dead in both a layer and
+    the channel-wise convolution it feeds is reported once, where it originates."""
+    store = _store(ctx)
+    order = {layer.name: index for index, layer in enumerate(ctx.checkpoint.layers)}
+    with store.lock:
+        records = {
+            name: store.by_layer[name]
+            for name in sorted(store.by_layer, key=lambda n: order.get(n, len(order)))
+        }
+    echo = _origins(records, order)
+    # root layer → relation → echo layer → its units
+    related: dict[str, dict[str, dict[str, list[int]]]] = {}
+    for key in sorted(echo, key=lambda k: (order[k[0]], k[1])):
+        root = _root(echo, key)
+        if root == key:
+            continue
+        relation = "also_dead_downstream" if order[key[0]] > order[root[0]] else "also_dead_upstream"
+        units = related.setdefault(root[0], {}).setdefault(relation, {}).setdefault(key[0], [])
+        units.append(key[1])
+    for name, record in records.items():
+        tests = {
+            test: {u for u in units if _root(echo, (name, u)) == (name, u)}
+            for test, units in record.tests.items()
+        }
+        yield from _finding(settings, record, tests, related.get(name, {}))
+
+
+def _finding(
+    settings: RuleSettings,
+    record: _Dead,
+    tests: dict[str, set[int]],
+    related: dict[str, dict[str, list[int]]],
+) -> Iterator[Finding]:
+    layer = record.layer
     dead = sorted(set().union(*tests.values()))
     if not dead:
         return
@@ -145,11 +287,20 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
         Severity.ERROR if share >= float(settings.get(layer, "error-share")) else Severity.WARNING
     )
     named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
-    saving = _saving(ctx, layer, len(dead))
+    saving = record.per_unit * len(dead)
     evidence: dict[str, object] = {name: sorted(units) for name, units in tests.items() if units}
     evidence.update(dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving)
-    if how:
-        evidence["never_active_by"] = how
+    if record.how and tests.get("never-active"):
+        evidence["never_active_by"] = record.how
+    echoes = ""
+    for relation in ("also_dead_downstream", "also_dead_upstream"):
+        if relation in related:
+            evidence[relation] = {k: sorted(v) for k, v in related[relation].items()}
+            echoes += "".join(
+                f"; the same channels are dead in {'downstream' if 'down' in relation else 'upstream'}"
+                f" {other} ({len(units)})"
+                for other, units in related[relation].items()
+            )
     yield Finding(
         rule=RULE.name,
         severity=severity,
@@ -157,7 +308,7 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
         tensor=layer.weight,
         units=tuple(dead),
         score=score(share, 1 + len(dead)),
-        message=f"{len(dead)} of {layer.units} units are dead ({named})",
+        message=f"{len(dead)} of {layer.units} units are dead ({named}){echoes}",
         hint=f"pruning them saves exactly {saving} parameters; if many died, retrain with a lower "
         "learning rate, leaky activations or a weaker penalty",
         evidence=evidence,
@@ -176,7 +327,8 @@ RULE = RuleSpec(
         "error-share": 0.5,
     },
     summary="a unit whose output cannot change or is never read costs parameters and contributes nothing",
-    check=layered(check_layer),
+    check=layered(check_layer, finish),
     doc=__doc__ or "",
     layer_check=check_layer,
+    finish=finish,
 )

@@ -1,0 +1,98 @@
+"""False-positive and detection rates of ``untrained-layer`` on small layers.
+
+Reads the calibration set written by ``fixtures/gen_untrained_calibration.py`` (small CNNs and
+MLPs trained with SGD or Adam on invented synthetic tasks; the same models never trained, drawn
+by torch's and Keras's own initializers; trained models with one layer re-created), audits
+every checkpoint with only ``untrained-layer`` and prints, per size bucket of the layers:
+
+* the false-positive rate: trained layers reported as untrained;
+* the detection rate: never-trained layers reported, and those the rule could not judge
+  (skipped as too small for the test to tell; see the rule's documentation).
+
+    KERAS_BACKEND=torch /opt/fixgen/bin/python fixtures/gen_untrained_calibration.py /tmp/calib
+    python bench/untrained_rates.py /tmp/calib [--max-fp 0.0] [--min-tp 0.9]
+
+Exits non-zero when the false-positive rate over all layers exceeds ``--max-fp`` or the
+detection rate on layers of at least ``--tp-from`` weights falls below ``--min-tp``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from steelyard.audit import run_rules
+from steelyard.loaders import load
+from steelyard.policy import Policy
+from steelyard.rules.untrained_layer import RULE
+
+BUCKETS = ((0, 256), (256, 512), (512, 1024), (1024, 2048), (2048, 5001))
+
+
+def main() -> int:
+    """Measure and print the rates; non-zero exit when a target is missed."""
+    parser = argparse.ArgumentParser()
+    parser.add_argument("folder", type=Path)
+    parser.add_argument(
+        "--set", action="append", default=[], metavar="KEY=VALUE", help="a rule threshold"
+    )
+    parser.add_argument("--max-fp", type=float, default=0.0)
+    parser.add_argument("--min-tp", type=float, default=0.9)
+    parser.add_argument("--tp-from", type=int, default=1024)
+    parser.add_argument("--show", action="store_true", help="list every false positive")
+    args = parser.parse_args()
+    labels = json.loads((args.folder / "labels.json").read_text())
+    overrides = {key: float(value) for key, value in (item.split("=", 1) for item in args.set)}
+    policy = Policy(rules={RULE.name: overrides}) if overrides else Policy()
+    # (kind, bucket) -> [layers, flagged]
+    counts: dict[tuple[str, int], list[int]] = {}
+    misses: list[str] = []
+    for name in sorted(labels):
+        findings, _, _ = run_rules(load(args.folder / name), policy, None, rules={RULE.name: RULE})
+        flagged = {f.layer: f for f in findings}
+        for layer, info in labels[name].items():
+            kind = f"{name.split('-')[0]}:{info['label']}"
+            bucket = next(i for i, (lo, hi) in enumerate(BUCKETS) if lo <= info["weights"] < hi)
+            cell = counts.setdefault((kind, bucket), [0, 0])
+            cell[0] += 1
+            if layer in flagged:
+                cell[1] += 1
+                if info["label"] == "trained" and args.show:
+                    e = flagged[layer].evidence
+                    misses.append(
+                        f"  FP {name} {layer} ({info['weights']} weights, moved "
+                        f"{info['moved']:.2f}): {e['initializer']} ks {e['ks']} "
+                        f"p {e.get('p_value', '-')}"
+                    )
+    kinds = sorted({k for k, _ in counts})
+    header = "kind".ljust(20) + "".join(f"{lo}-{hi - 1}".rjust(14) for lo, hi in BUCKETS) + "all".rjust(18)
+    print(header)
+    totals: dict[str, list[int]] = {}
+    for kind in kinds:
+        row = kind.ljust(20)
+        total = [0, 0]
+        for b in range(len(BUCKETS)):
+            n, hit = counts.get((kind, b), [0, 0])
+            total[0] += n
+            total[1] += hit
+            row += (f"{hit}/{n}" if n else "-").rjust(14)
+        row += f"{total[1]}/{total[0]} ({total[1] / max(1, total[0]):.1%})".rjust(18)
+        totals[kind] = total
+        print(row)
+    print("\n".join(misses))
+    trained = [sum(v[i] for k, v in totals.items() if k.endswith(":trained")) for i in (0, 1)]
+    fp = trained[1] / max(1, trained[0])
+    big = [
+        sum(v[i] for (k, b), v in counts.items() if k.endswith(":untrained") and BUCKETS[b][0] >= args.tp_from)
+        for i in (0, 1)
+    ]
+    tp = big[1] / max(1, big[0])
+    print(f"false-positive rate {fp:.2%} ({trained[1]}/{trained[0]} trained layers)")
+    print(f"detection rate from {args.tp_from} weights {tp:.2%} ({big[1]}/{big[0]} untrained layers)")
+    return 0 if fp <= args.max_fp and tp >= args.min_tp else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,113 @@
+"""Counting NaN and ±Inf: once per tensor, shared by the statistics and the ``nonfinite`` rule.
+
+A weight tensor read by a layer's pass is counted on the way (see :mod:`.passes`); every other
+tensor is counted by :meth:`NonfiniteCounts.count`, streamed in chunks when its loader allows.
+bf16/fp16/fp8 values are judged after widening to float32 (widening keeps NaN and ±Inf),
+wider floats as stored, integers after conversion.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.graph import Tensor
+from steelyard.stats.memo import Memo
+from steelyard.stats.numerics import FLOAT_NAMES, ITEMSIZE
+from steelyard.stats.reading import read_stored
+from steelyard.streaming import chunks, convert_into
+
+#: NaN, +Inf and −Inf counts of one tensor.
+Counts = tuple[int, int, int]
+
+
+def count_into(values: np.ndarray, counts: list[int]) -> None:
+    """Add the NaN, +Inf and −Inf counts of ``values`` (one cheap pass when all finite)."""
+    if values.size == 0 or bool(np.isfinite(values).all()):
+        return
+    counts[0] += int(np.isnan(values).sum())
+    counts[1] += int(np.isposinf(values).sum())
+    counts[2] += int(np.isneginf(values).sum())
+
+
+def _judged(array: np.ndarray) -> np.ndarray:
+    """The values as the counts judge them: integers and narrow floats as float32."""
+    if array.dtype.kind not in ("f", "V") or array.dtype.itemsize < 4:
+        return np.asarray(array, dtype=np.float32)
+    return array
+
+
+@dataclass(frozen=True, slots=True)
+class NonfiniteScan:
+    """Where a tensor's non-finite values are (stored shape) and how many of each kind."""
+
+    bad: np.ndarray
+    """True where the stored element is NaN or ±Inf (shaped as stored)."""
+    nan: int
+    posinf: int
+    neginf: int
+
+
+def scan(tensor: Tensor) -> NonfiniteScan | None:
+    """The positions and counts of a tensor's non-finite values, None when it has none; read
+    whole through the audit's read path (callers first check :meth:`NonfiniteCounts.count`,
+    so only tensors that hold such values are read again)."""
+    values = _judged(read_stored(tensor))
+    bad = ~np.isfinite(values)
+    if not bad.any():
+        return None
+    counts = [0, 0, 0]
+    count_into(values, counts)
+    return NonfiniteScan(bad, counts[0], counts[1], counts[2])
+
+
+class NonfiniteCounts:
+    """NaN/±Inf counts per tensor, computed once per audit (thread-safe)."""
+
+    def __init__(self, memo: Memo) -> None:
+        self._memo = memo
+        self._found: dict[int, tuple[Tensor, Counts]] = {}
+        self._guard = threading.Lock()
+
+    def record(self, tensor: Tensor, counts: Counts) -> None:
+        """Keep counts a layer's pass made on the way (the tensor is never read for them)."""
+        with self._guard:
+            # The tensor is kept with its counts so its id cannot be reused meanwhile.
+            self._found[id(tensor)] = (tensor, counts)
+
+    def known(self, tensor: Tensor) -> Counts | None:
+        """The counts when they are already known."""
+        with self._guard:
+            found = self._found.get(id(tensor))
+        return None if found is None else found[1]
+
+    def count(self, tensor: Tensor) -> Counts:
+        """NaN, +Inf and −Inf counts of ``tensor``, read for them only the first time."""
+        found = self.known(tensor)
+        if found is not None:
+            return found
+        with self._memo.lock_for(("counts", id(tensor))):
+            found = self.known(tensor)
+            if found is None:
+                found = _count(tensor)
+                self.record(tensor, found)
+            return found
+
+
+def _count(tensor: Tensor) -> Counts:
+    counts = [0, 0, 0]
+    if tensor.read_span is not None and tensor.size:
+        wide = ITEMSIZE.get(tensor.dtype, 4) >= 4 and tensor.dtype in FLOAT_NAMES
+        for start, stop in chunks(tensor.size):
+            stored = tensor.read_span(start, stop)
+            if wide:
+                count_into(stored, counts)
+            else:
+                block = np.empty(stored.size, dtype=np.float32)
+                convert_into(stored, block)
+                count_into(block, counts)
+    elif tensor.size:
+        count_into(_judged(read_stored(tensor)), counts)
+    return counts[0], counts[1], counts[2]

@@ -1,0 +1,213 @@
+"""Reading a layer's weights: one streamed pass for its statistics, cached matrices, samples.
+
+The first request for anything about a layer reads its weights in one pass: row blocks of
+about :data:`~steelyard.streaming.CHUNK_BYTES` are converted to float32 and, on the way, give
+the row sums of squares, the per-column sums a producer's column norms are made of, and the
+NaN/±Inf counts of the weight tensor (see :mod:`steelyard.stats` for the float32/float64
+accumulation). Matrices up to ``stream_bytes`` are assembled and cached; larger ones are
+only streamed, and read whole again only when a rule asks for the full matrix.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.graph import Checkpoint, Layer, RowSlice, Tensor
+from steelyard.stats.memo import MatrixCache, Memo
+from steelyard.stats.nonfinite import NonfiniteCounts, count_into
+from steelyard.stats.numerics import FLOAT_NAMES, ITEMSIZE, sums_of_squares
+from steelyard.stats.reading import locked
+from steelyard.streaming import convert_into, row_blocks
+
+#: One block of a pass: rows [a, b) of the canonical matrix as float32.
+Block = tuple[int, int, np.ndarray]
+
+
+@dataclass(frozen=True, slots=True)
+class Summary:
+    """What one pass over a layer's weights leaves behind."""
+
+    row_squares: np.ndarray
+    """Σ_k W[j, k]² per unit, float64."""
+    column_squares: np.ndarray | None
+    """Σ_j W[j, k]² per group and fan-in position ``[groups, fan_in]``, float64; only for
+    layers some producer reads column norms from."""
+
+
+class WeightPasses:
+    """Reads each layer's canonical weights for the statistics (thread-safe)."""
+
+    def __init__(
+        self,
+        checkpoint: Checkpoint,
+        memo: Memo,
+        cache: MatrixCache,
+        counts: NonfiniteCounts,
+        columns_for: frozenset[str],
+        stream_bytes: int,
+    ) -> None:
+        self.checkpoint = checkpoint
+        self.cache = cache
+        self.stream_bytes = stream_bytes
+        self._memo = memo
+        self._counts = counts
+        self._columns_for = columns_for
+
+    def streamable(self, layer: Layer) -> tuple[Tensor, int] | None:
+        """(weight tensor, first stored row) when the canonical matrix is a run of its rows."""
+        tensor = self.checkpoint.tensors.get(layer.weight)
+        orient = layer.orient
+        if tensor is None or tensor.read_span is None or not isinstance(orient, RowSlice):
+            return None
+        if not tensor.shape or tensor.dtype not in FLOAT_NAMES:
+            return None
+        stop = tensor.shape[0] if orient.stop is None else min(orient.stop, tensor.shape[0])
+        row = math.prod(tensor.shape[1:])
+        if stop - orient.start != layer.units or row != layer.fan_in:
+            return None
+        return tensor, orient.start
+
+    def summary(self, layer: Layer) -> Summary:
+        """The layer's pass summary, running the pass the first time."""
+        key = (layer.name, "summary")
+        found = self._memo.get(key)
+        if found is None:
+            with self._memo.lock_for((layer.name, "load")):
+                found = self._memo.get(key)
+                if found is None:
+                    keep = 4 * layer.units * layer.fan_in <= self.stream_bytes
+                    matrix = self._pass(layer, keep)
+                    if matrix is not None:
+                        self.cache.put(("matrix", layer.name), matrix)
+                    found = self._memo.get(key)
+        assert isinstance(found, Summary)
+        return found
+
+    def matrix(self, layer: Layer) -> np.ndarray:
+        """Canonical ``W[units, fan_in]`` as float32 (read once while it fits the cache)."""
+        key = ("matrix", layer.name)
+        cached = self.cache.get(key)
+        if cached is not None:
+            return cached
+        with self._memo.lock_for((layer.name, "load")):
+            cached = self.cache.get(key)
+            if cached is not None:
+                return cached
+            if self._memo.get((layer.name, "summary")) is None:
+                array = self._pass(layer, keep=True)
+                assert array is not None
+            else:
+                array = self._read_matrix(layer)
+            self.cache.put(key, array)
+            return array
+
+    def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:
+        """See :meth:`steelyard.stats.LayerStats.sample`."""
+        units, fan_in = layer.units, layer.fan_in
+        total = units * fan_in
+        if total <= size:
+            return np.sort(self.matrix(layer).reshape(-1).astype(np.float64))
+        positions = np.sort(np.random.default_rng(seed).choice(total, size=size, replace=False))
+        source = self.streamable(layer)
+        cached = self.cache.get(("matrix", layer.name))
+        if cached is not None or source is None or 4 * total <= self.stream_bytes:
+            flat = self.matrix(layer).reshape(-1)
+            return np.sort(flat[positions].astype(np.float64))
+        picked = np.empty(size, dtype=np.float64)
+        scratch = np.empty(0, dtype=np.float32)
+        for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
+            lo, hi = np.searchsorted(positions, (a * fan_in, b * fan_in))
+            picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
+        return np.sort(picked)
+
+    def _pass(self, layer: Layer, keep: bool) -> np.ndarray | None:
+        """Read the layer's weights once and store their summary (and the weight tensor's
+        counts); returns the matrix when it was assembled (always when ``keep``)."""
+        units, fan_in = layer.units, layer.fan_in
+        rows = np.zeros(units, dtype=np.float64)
+        groups = max(1, layer.groups)
+        columns = (
+            np.zeros((groups, fan_in), dtype=np.float64)
+            if layer.name in self._columns_for
+            else None
+        )
+        per_group = max(1, units // groups)
+        source = self.streamable(layer)
+        tensor: Tensor | None = None
+        counts = [0, 0, 0]
+        full: np.ndarray | None
+        blocks: Iterator[Block]
+        if source is None:
+            whole = self._read_whole(layer)
+            full = whole
+            blocks = iter([(a, b, whole[a:b]) for a, b in row_blocks(units, fan_in)])
+        else:
+            stored, first = source
+            covers = first == 0 and units == stored.shape[0]
+            tensor = stored if covers else None  # counts only for whole tensors
+            full = np.empty((units, fan_in), dtype=np.float32) if keep else None
+            scratch = None if keep else np.empty(0, dtype=np.float32)
+            stored_wide = ITEMSIZE[stored.dtype] > 4
+            blocks = self._stream_rows(
+                source, units, fan_in, full, scratch, counts if covers and stored_wide else None
+            )
+        # float32 blocks of float32-or-narrower tensors are counted from their row sums.
+        by_rows = tensor is not None and ITEMSIZE[tensor.dtype] <= 4
+        for a, b, block in blocks:
+            squares = sums_of_squares(block, axis=1)
+            rows[a:b] = squares
+            if by_rows:
+                bad = ~np.isfinite(squares)
+                if bad.any():
+                    count_into(block[bad], counts)
+            if columns is not None:
+                for group in range(a // per_group, min(groups, (b - 1) // per_group + 1)):
+                    lo, hi = max(a, group * per_group), min(b, (group + 1) * per_group)
+                    columns[group] += sums_of_squares(block[lo - a : hi - a], axis=0)
+        self._memo.put((layer.name, "summary"), Summary(rows, columns))
+        if tensor is not None:
+            self._counts.record(tensor, (counts[0], counts[1], counts[2]))
+        return full
+
+    def _read_whole(self, layer: Layer) -> np.ndarray:
+        """The canonical matrix through the loader's view, under the read lock: a view may
+        read tensors other than the weight (a weight-norm gain, quantization scales)."""
+        return locked(None, lambda: np.ascontiguousarray(layer.matrix(), dtype=np.float32))
+
+    def _stream_rows(
+        self,
+        source: tuple[Tensor, int],
+        units: int,
+        fan_in: int,
+        full: np.ndarray | None,
+        scratch: np.ndarray | None,
+        counts: list[int] | None,
+    ) -> Iterator[Block]:
+        tensor, first = source
+        assert tensor.read_span is not None
+        for a, b in row_blocks(units, fan_in):
+            stored = tensor.read_span((first + a) * fan_in, (first + b) * fan_in)
+            if full is not None:
+                block = full[a:b]
+            else:
+                assert scratch is not None
+                if scratch.size < (b - a) * fan_in:
+                    scratch = np.empty((b - a) * fan_in, dtype=np.float32)
+                block = scratch[: (b - a) * fan_in].reshape(b - a, fan_in)
+            convert_into(stored, block)
+            if counts is not None:  # float64 storage: counted as stored
+                count_into(stored, counts)
+            yield a, b, block
+
+    def _read_matrix(self, layer: Layer) -> np.ndarray:
+        source = self.streamable(layer)
+        if source is None:
+            return self._read_whole(layer)
+        full = np.empty((layer.units, layer.fan_in), dtype=np.float32)
+        for _block in self._stream_rows(source, layer.units, layer.fan_in, full, None, None):
+            pass
+        return full

@@ -1137,7 +1137,7 @@ def test_oversized_compressed_member_is_refused(
 ) -> None:
     path = tmp_path / "big.keras"
     _rezip(FIX / "mlp.keras", path, compression=zipfile.ZIP_DEFLATED)
-    monkeypatch.setattr(keras_archive, "MAX_IN_MEMORY", 1024)
+    monkeypatch.setattr(keras_archive, "MAX_INFLATED", 1024)
     _expect_load_error(path, "model.weights.h5")
 
 

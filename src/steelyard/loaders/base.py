@@ -14,8 +14,10 @@ import zlib
 from pathlib import Path
 from typing import Any, Protocol
 
+from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
+from steelyard.loaders.spill import spilled
 
 #: Largest JSON/pickle/config blob any loader will parse (bounded memory on hostile input).
 MAX_METADATA_BYTES = 100_000_000
@@ -38,28 +40,13 @@ class Loader(Protocol):
 def inside(folder: Path, relative: str, source: Path) -> Path:
     """Resolve ``relative`` strictly inside ``folder``, or refuse.
 
-    Absolute paths, ``..`` components and links that escape are all refused, because a
-    checkpoint must never make steelyard read a file outside the model's folder.
+    Absolute paths, ``..`` components, links, FIFOs, devices and paths that escape are all
+    refused, because a checkpoint must never make steelyard read a file outside the model's
+    folder (one rule for every reader: :func:`steelyard.safepath.confined`).
     """
-    if not relative or "\x00" in relative:
-        raise LoadError(source, f"refers to an invalid file name {relative!r}")
-    candidate = Path(relative)
-    if candidate.is_absolute() or relative.startswith(("/", "\\")) or ":" in candidate.parts[0]:
-        raise LoadError(source, f"refers to an absolute path {relative!r}, which is refused")
-    if any(part == ".." for part in Path(relative.replace("\\", "/")).parts):
-        raise LoadError(source, f"refers to {relative!r}, which leaves the model's folder")
-    base = folder.resolve()
-    target = base / candidate
-    if target.is_symlink():
-        raise LoadError(source, f"refers to {relative!r}, which is a symbolic link (refused)")
-    resolved = target.resolve()
-    if resolved != base and base not in resolved.parents:
-        raise LoadError(
-            source, f"refers to {relative!r}, which resolves outside the model's folder"
-        )
-    if not resolved.is_file():
-        raise LoadError(source, f"refers to {relative!r}, which does not exist")
-    return resolved
+    from steelyard.safepath import confined
+
+    return confined(folder, relative, source)
 
 
 def safe_zip_names(archive: zipfile.ZipFile, path: Path) -> dict[str, zipfile.ZipInfo]:
@@ -82,6 +69,10 @@ def safe_zip_names(archive: zipfile.ZipFile, path: Path) -> dict[str, zipfile.Zi
     return members
 
 
+#: What reading a damaged zip member raises; always converted to LoadError.
+_ZIP_ERRORS = (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError, zlib.error)
+
+
 def read_zip_member(
     archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, limit: int = MAX_METADATA_BYTES
 ) -> bytes:
@@ -91,11 +82,57 @@ def read_zip_member(
     try:
         with archive.open(info) as stream:
             data = stream.read(limit + 1)
-    except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError, zlib.error) as exc:
+    except _ZIP_ERRORS as exc:
         raise LoadError(path, f"archive member {info.filename!r} is unreadable ({exc})") from None
     if len(data) > limit:
         raise LoadError(path, f"archive member {info.filename!r} is larger than it claims")
     return data
+
+
+def member_expansion(path: Path, info: zipfile.ZipInfo) -> int:
+    """Bytes a member would add by being inflated (0 when stored), refused now when above the
+    per-object expansion budget. Callers charge the result to their checkpoint's Ledger, so
+    the refusal comes before any byte is inflated."""
+    if info.compress_type == zipfile.ZIP_STORED:
+        return 0
+    what = f"archive member {info.filename!r}"
+    budget.check_expansion(path, info.file_size, info.compress_size, what)
+    return max(0, info.file_size - info.compress_size)
+
+
+def inflate_member(path: Path, info: zipfile.ZipInfo, target: Path) -> None:
+    """Stream one member into the file ``target`` in 1 MiB pieces (memory stays bounded),
+    refusing a member that inflates to more or fewer bytes than it claims or fails its CRC."""
+    if info.flag_bits & 0x1:
+        raise LoadError(path, f"archive member {info.filename!r} is encrypted")
+    written = 0
+    try:
+        with (
+            zipfile.ZipFile(path) as archive,
+            archive.open(info) as stream,
+            open(target, "wb") as out,
+        ):
+            while piece := stream.read(1 << 20):
+                written += len(piece)
+                if written > info.file_size:
+                    raise LoadError(
+                        path, f"archive member {info.filename!r} is larger than it claims"
+                    )
+                out.write(piece)
+    except LoadError:
+        raise
+    except _ZIP_ERRORS as exc:
+        raise LoadError(path, f"archive member {info.filename!r} is unreadable ({exc})") from None
+    if written != info.file_size:
+        raise LoadError(path, f"archive member {info.filename!r} is shorter than it claims")
+
+
+def spill_member(path: Path, info: zipfile.ZipInfo) -> Path:
+    """A file holding the inflated bytes of ``info``: inflated the first time it is asked for
+    in this run, the same file afterwards (see :mod:`steelyard.loaders.spill`)."""
+    stat = os.stat(path)
+    key = ("zip", str(path.resolve()), stat.st_size, stat.st_mtime_ns, info.header_offset)
+    return spilled(key, lambda target: inflate_member(path, info, target))
 
 
 def open_zip(path: Path) -> zipfile.ZipFile:

@@ -3,8 +3,12 @@
 
 The weights member is read in place: Keras stores it uncompressed, so h5py gets a bounded
 window onto the archive's bytes and tensors are byte ranges of the archive (nothing is
-unpacked to disk). A compressed member is inflated into memory, up to a cap, on each use. ``config.json`` supplies the layer classes, links, activations,
-constraints, regularizers and the optimizer's hyperparameters.
+unpacked to disk). A compressed member is checked against the expansion budget from its
+claimed size before a byte is inflated, then inflated once per run, streamed into the spill
+folder (:mod:`steelyard.loaders.spill`): h5py opens that file by name in its sandbox and
+tensors are byte ranges of it, so no read inflates the member again. ``config.json`` supplies
+the layer classes, links, activations, constraints, regularizers and the optimizer's
+hyperparameters.
 """
 
 from __future__ import annotations
@@ -13,6 +17,7 @@ import struct
 import zipfile
 from pathlib import Path
 
+from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders import keras_common as kc
@@ -20,10 +25,12 @@ from steelyard.loaders import keras_hdf5 as kh
 from steelyard.loaders import keras_optimizer as ko
 from steelyard.loaders.base import (
     file_size,
+    member_expansion,
     open_zip,
     parse_json,
     read_zip_member,
     safe_zip_names,
+    spill_member,
 )
 from steelyard.loaders.keras_h5 import read_weights_h5
 from steelyard.loaders.keras_hdf5 import H5Store, Location, isolated
@@ -32,8 +39,9 @@ CONFIG = "config.json"
 METADATA = "metadata.json"
 WEIGHTS = "model.weights.h5"
 NPZ_WEIGHTS = "model.weights.npz"
-#: A compressed weights member is decompressed into memory only up to this size.
-MAX_IN_MEMORY = 1 << 30
+#: Largest compressed weights member inflated at all (to disk; the expansion budget usually
+#: refuses a bomb long before).
+MAX_INFLATED = 1 << 36
 _LOCAL_HEADER = struct.Struct("<4s5H3L2H")
 
 
@@ -72,12 +80,32 @@ class KerasArchiveLoader:
 
     def load(self, path: Path) -> Checkpoint:
         """Read the archive's structure (in a time-limited child process); tensors stay in
-        the archive until read."""
-        return isolated(path, load_archive, (path,), kh.LOAD_TIMEOUT)
+        the archive (or its one inflated copy) until read."""
+        spill, spent = _inflate_weights(path)
+        return isolated(path, load_archive, (path, spill, spent), kh.load_timeout())
 
 
-def load_archive(path: Path) -> Checkpoint:
-    """The checkpoint of one ``.keras`` archive (runs inside :func:`isolated`)."""
+def _inflate_weights(path: Path) -> tuple[Path | None, int]:
+    """A compressed ``model.weights.h5``: checked against the budget from its claimed size,
+    then inflated once (spill file). Returns the file and the expansion charged."""
+    with open_zip(path) as archive:
+        info = safe_zip_names(archive, path).get(WEIGHTS)
+    if info is None or info.compress_type == zipfile.ZIP_STORED:
+        return None, 0
+    if info.flag_bits & 0x1:
+        raise LoadError(path, f"archive member {WEIGHTS!r} is encrypted")
+    if info.file_size > MAX_INFLATED:
+        raise LoadError(
+            path, f"archive member {WEIGHTS!r} inflates to {info.file_size} bytes, over the cap"
+        )
+    ledger = budget.Ledger(path)
+    ledger.charge(member_expansion(path, info), f"archive member {WEIGHTS!r}")
+    return spill_member(path, info), ledger.spent
+
+
+def load_archive(path: Path, spill: Path | None = None, spent: int = 0) -> Checkpoint:
+    """The checkpoint of one ``.keras`` archive (runs inside :func:`isolated`); ``spill`` is
+    the inflated weights member when it is compressed, ``spent`` the expansion it cost."""
     size = file_size(path)
     with open_zip(path) as archive:
         members = safe_zip_names(archive, path)
@@ -105,12 +133,9 @@ def load_archive(path: Path) -> Checkpoint:
                 raise LoadError(path, f"archive member {WEIGHTS!r} has inconsistent sizes")
             location = Location(path, info.file_size, start=_data_start(path, info, size))
         else:
-            if info.file_size > MAX_IN_MEMORY:
-                raise LoadError(
-                    path,
-                    f"archive member {WEIGHTS!r} inflates to {info.file_size} bytes, over the cap",
-                )
-            location = Location(path, info.file_size, member=WEIGHTS, member_limit=MAX_IN_MEMORY)
+            if spill is None or spill.stat().st_size != info.file_size:
+                raise LoadError(path, f"archive member {WEIGHTS!r} was not inflated")
+            location = Location(path, info.file_size, spill=spill)
     if not isinstance(config, dict):
         raise LoadError(path, f"{CONFIG} is not a JSON object")
     graph = kc.parse_model(config, path)
@@ -122,7 +147,7 @@ def load_archive(path: Path) -> Checkpoint:
     opt = ko.optimizer_config(
         compile_config.get("optimizer") if isinstance(compile_config, dict) else None
     )
-    store = H5Store(path, location)
+    store = H5Store(path, location, spent)
     with store.open() as f:
         tensors, layers, optimizer, more = read_weights_h5(store, f, graph, opt)
     notes.extend(more)

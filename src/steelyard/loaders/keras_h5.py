@@ -633,4 +633,4 @@ class KerasH5Loader:
 
     def load(self, path: Path) -> Checkpoint:
         """Read the file's structure (in a time-limited child process); tensors stay on disk."""
-        return isolated(path, load_h5_file, (path,), kh.LOAD_TIMEOUT)
+        return isolated(path, load_h5_file, (path,), kh.load_timeout())

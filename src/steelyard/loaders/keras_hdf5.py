@@ -4,8 +4,18 @@ h5py follows external links, external storage and virtual datasets silently, so 
 is walked one link at a time and every dataset is checked (dtype, storage, size caps) before
 it is touched. The HDF5 C library can also loop forever on damaged structures (a zero-sized
 global-heap object is enough), which no Python timeout interrupts: so every HDF5 call runs in
-a child process with a time limit (:func:`isolated`). Tensors Keras stores contiguously are
-then read without HDF5 at all, as bounded byte ranges at the offsets the library reported.
+a child process with a time limit (:func:`isolated`, :func:`load_timeout`). Tensors Keras
+stores contiguously are then read without HDF5 at all, as bounded byte ranges at the offsets
+the library reported.
+
+Budgets (:mod:`steelyard.budget`): a dataset's claimed bytes (shape × itemsize) are compared
+with the bytes the file stores for it (``get_storage_size``) before anything is read, so a
+fill value or compressed chunks cannot expand beyond the per-object budget, and the
+expansion of every dataset is charged to the checkpoint's :class:`~steelyard.budget.Ledger`.
+A chunked dataset is decompressed once per run, in row bands aligned to its chunks, into the
+spill folder (:mod:`steelyard.loaders.spill`), and memory-mapped from there. Every walk of
+groups keeps a visited set of object addresses: a second hard link to an object (a cycle or
+an alias, which Keras never writes) is refused, so no walk can explode.
 """
 
 from __future__ import annotations
@@ -13,6 +23,7 @@ from __future__ import annotations
 import contextlib
 import io
 import math
+import mmap
 import multiprocessing
 import os
 from collections.abc import Callable, Iterator
@@ -25,11 +36,13 @@ import h5py
 import ml_dtypes
 import numpy as np
 
+from steelyard import budget
 from steelyard.dtypes import name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
-from steelyard.loaders.base import MAX_METADATA_BYTES, open_zip, read_zip_member, safe_zip_names
+from steelyard.loaders.base import MAX_METADATA_BYTES
 from steelyard.loaders.keras_common import MAX_DEPTH, natural_key
+from steelyard.loaders.spill import spilled
 
 MAGIC = b"\x89HDF\r\n\x1a\n"
 #: Largest tensor we agree to decode (bounded memory on hostile shapes).
@@ -38,15 +51,32 @@ MAX_TENSOR_BYTES = 1 << 34
 MAX_EXPANSION = 1000
 #: …and any dataset up to this size is allowed regardless.
 SMALL_DATASET = 1 << 20
+#: Objects one walk of the groups may list…
 MAX_NODES = 200_000
+#: …and all walks of one file together (each object is listed by at most a few walks).
+MAX_VISITS = 4 * MAX_NODES
 MAX_ATTR_ELEMENTS = 1_000_000
 MAX_SOFT_HOPS = 8
-#: Seconds the HDF5 library may spend reading a file's structure (it is a few ms normally).
-LOAD_TIMEOUT = 120.0
-#: Seconds for an HDF5 read of one chunked dataset, plus one second per 20 MB.
-READ_TIMEOUT = 60.0
+#: Share of the structure time budget (``budget.load_seconds``, 60 s by default) the HDF5
+#: sandbox may take to read a file's structure: 10 s by default, which is 1000 times what a
+#: real file needs (a few ms) and keeps a stuck library refused within the 20 s promise
+#: (interpreter start, imports and the fork take 1-3 s more).
+LOAD_SHARE = 1 / 6
+#: Tests set a fixed number of seconds here; None means derived from the budget.
+LOAD_TIMEOUT: float | None = None
+#: A read of one chunked dataset may take the structure timeout plus one second per 20 MB.
+READ_RATE = 20e6
+#: Bytes the sandbox decompresses per step when reading a chunked dataset.
+BLOCK_BYTES = 16 << 20
 #: Address space a reader process may add to what it inherited.
 CHILD_MEMORY = 4 << 30
+
+
+def load_timeout() -> float:
+    """Seconds the HDF5 sandbox may spend on a file's structure (see :data:`LOAD_SHARE`)."""
+    if LOAD_TIMEOUT is not None:
+        return LOAD_TIMEOUT
+    return max(1.0, budget.current().load_seconds * LOAD_SHARE)
 
 #: What h5py raises on damaged or unexpected files; always converted to LoadError.
 H5_ERRORS: tuple[type[BaseException], ...] = (
@@ -198,35 +228,28 @@ class _Window(io.RawIOBase):
 @dataclass(frozen=True)
 class Location:
     """Where an HDF5 file's bytes are: a file, a stored window of an archive (``start``,
-    ``length``), or a compressed archive ``member`` that is inflated again on each use."""
+    ``length``), or a compressed archive member already inflated to the file ``spill``.
+    Errors always name ``path`` (the file the user gave)."""
 
     path: Path
     length: int
     start: int = 0
-    member: str | None = None
-    member_limit: int = 0
+    spill: Path | None = None
 
-    def _member(self) -> bytes:
-        assert self.member is not None
-        with open_zip(self.path) as archive:
-            members = safe_zip_names(archive, self.path)
-            info = members.get(self.member)
-            if info is None:
-                raise LoadError(self.path, f"archive member {self.member!r} has disappeared")
-            return read_zip_member(archive, info, self.path, limit=self.member_limit)
+    @property
+    def data_path(self) -> Path:
+        """The file that holds the HDF5 bytes."""
+        return self.spill if self.spill is not None else self.path
 
     @contextlib.contextmanager
     def open_h5(self) -> Iterator[Any]:
         """The file opened with h5py (only ever called inside :func:`isolated`)."""
-        if self.member is not None:
-            with h5py.File(io.BytesIO(self._member()), "r") as f:
-                yield f
-        elif self.start == 0:
-            with h5py.File(self.path, "r", locking=False) as f:
+        if self.start == 0:
+            with h5py.File(self.data_path, "r", locking=False) as f:
                 yield f
         else:
             with (
-                open(self.path, "rb") as raw,
+                open(self.data_path, "rb") as raw,
                 h5py.File(_Window(raw, self.start, self.length), "r") as f,
             ):
                 yield f
@@ -237,18 +260,24 @@ class Location:
             raise LoadError(
                 self.path, f"{what}: bytes {offset}..{offset + count} lie outside the file"
             )
-        if self.member is not None:
-            data = self._member()[offset : offset + count]
-        else:
-            try:
-                with open(self.path, "rb") as handle:
-                    handle.seek(self.start + offset)
-                    data = handle.read(count)
-            except OSError as exc:
-                raise LoadError(self.path, f"{what} cannot be read ({exc.strerror})") from None
+        try:
+            with open(self.data_path, "rb") as handle:
+                handle.seek(self.start + offset)
+                data = handle.read(count)
+        except OSError as exc:
+            raise LoadError(self.path, f"{what} cannot be read ({exc.strerror})") from None
         if len(data) != count:
             raise LoadError(self.path, f"{what}: the file ends before its data (truncated?)")
         return data
+
+
+@contextlib.contextmanager
+def _bounded(path: Path, what: str) -> Iterator[None]:
+    """Running out of memory or stack while reading becomes one LoadError line."""
+    try:
+        yield
+    except (MemoryError, RecursionError) as exc:
+        raise LoadError(path, f"{what} is too large to read ({type(exc).__name__})") from None
 
 
 def _dtype(tag: str) -> np.dtype[Any]:
@@ -266,11 +295,12 @@ class RawReader:
     name: str
 
     def __call__(self) -> np.ndarray:
-        dtype = _dtype(self.dtype)
-        count = math.prod(self.shape) * dtype.itemsize
-        data = self.location.read(self.offset, count, f"dataset {self.name!r}")
-        array = np.frombuffer(data, dtype=dtype).reshape(self.shape)
-        return array.astype(dtype.newbyteorder("="), copy=False)
+        with _bounded(self.location.path, f"dataset {self.name!r}"):
+            dtype = _dtype(self.dtype)
+            count = math.prod(self.shape) * dtype.itemsize
+            data = self.location.read(self.offset, count, f"dataset {self.name!r}")
+            array = np.frombuffer(data, dtype=dtype).reshape(self.shape)
+            return array.astype(dtype.newbyteorder("="), copy=False)
 
 
 @dataclass(frozen=True)
@@ -290,27 +320,50 @@ class InlineReader:
         )
 
 
-def _read_dataset(location: Location, path: str, shape: tuple[int, ...], source: Path) -> Any:
+def _band_rows(obj: Any, shape: tuple[int, ...], itemsize: int) -> int:
+    """Rows per read: about :data:`BLOCK_BYTES`, a whole number of chunk rows, so that each
+    chunk is decompressed once (a band that cut through chunks would decompress them again
+    for every band)."""
+    row_bytes = max(1, math.prod(shape[1:]) * itemsize)
+    chunks = obj.chunks
+    chunk_rows = max(1, int(chunks[0])) if chunks else 1
+    bands = max(1, BLOCK_BYTES // (row_bytes * chunk_rows))
+    return bands * chunk_rows
+
+
+def _read_dataset_into(
+    location: Location, path: str, shape: tuple[int, ...], source: Path, target: Path
+) -> int:
+    """Decode the dataset at ``path`` into the file ``target`` in native byte order, one row
+    band at a time (runs inside :func:`isolated`); returns the bytes written."""
     store = H5Store(source, location)
-    with store.open() as f:
+    written = 0
+    with store.open() as f, open(target, "wb") as out:
         obj = store.resolve(f, path)
         now, _, dtype = store.check_dataset(obj, path)
         if now != shape:
             raise store.fail(f"dataset {path!r} changed shape since it was listed")
-        try:
-            raw = np.asarray(obj[()])
-        except H5_ERRORS as exc:
-            raise store.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
-    if raw.dtype.kind == "V":
-        raw = raw.view(ml_dtypes.bfloat16)
-    if raw.shape != shape:
-        raise store.fail(f"dataset {path!r} read as shape {raw.shape}, not {shape}")
-    return raw.astype(dtype, copy=False)
+        step = _band_rows(obj, shape, dtype.itemsize) if shape else 1
+        for start in range(0, shape[0] if shape else 1, step):
+            want = (min(step, shape[0] - start), *shape[1:]) if shape else ()
+            try:
+                raw = np.asarray(obj[start : start + step] if shape else obj[()])
+            except H5_ERRORS as exc:
+                raise store.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
+            if raw.dtype.kind == "V":
+                raw = raw.view(ml_dtypes.bfloat16)
+            if raw.shape != want:
+                raise store.fail(f"dataset {path!r} read as shape {raw.shape}, not {want}")
+            block = np.ascontiguousarray(raw.astype(dtype, copy=False))
+            out.write(block.tobytes())  # one band: bounded
+            written += block.nbytes
+    return written
 
 
 @dataclass(frozen=True)
 class IsolatedReader:
-    """A chunked (possibly compressed) dataset: read by h5py in a child process."""
+    """A chunked (possibly compressed) dataset: decoded once per run by h5py in a child
+    process, in row bands, into the spill folder; every read maps that file."""
 
     location: Location
     path: str
@@ -319,16 +372,24 @@ class IsolatedReader:
     source: Path
 
     def __call__(self) -> np.ndarray:
-        size = math.prod(self.shape) * _dtype(self.dtype).itemsize
-        timeout = READ_TIMEOUT + size / 20e6
-        array: np.ndarray = isolated(
-            self.source,
-            _read_dataset,
-            (self.location, self.path, self.shape, self.source),
-            timeout,
-            memory=CHILD_MEMORY + 2 * size,
-        )
-        return array
+        with _bounded(self.source, f"dataset {self.path!r}"):
+            dtype = _dtype(self.dtype).newbyteorder("=")
+            size = math.prod(self.shape) * dtype.itemsize
+            timeout = load_timeout() + size / READ_RATE
+
+            def fill(target: Path) -> None:
+                args = (self.location, self.path, self.shape, self.source, target)
+                written = isolated(self.source, _read_dataset_into, args, timeout)
+                if written != size or target.stat().st_size != size:
+                    raise LoadError(self.source, f"dataset {self.path!r} did not read whole")
+
+            key = ("h5", str(self.location.data_path), self.location.start, self.path)
+            target = spilled(key, fill)
+            with open(target, "rb") as handle:
+                mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+            return np.frombuffer(mapped, dtype=dtype, count=math.prod(self.shape)).reshape(
+                self.shape
+            )
 
 
 # --------------------------------------------------------------------------------------------
@@ -342,10 +403,27 @@ class H5Store:
     dataset's storage may exceed the HDF5 file's size.
     """
 
-    def __init__(self, source: Path, location: Location) -> None:
+    def __init__(self, source: Path, location: Location, spent: int = 0) -> None:
         self.source = source
         self.location = location
         self.limit = location.length
+        #: Expansion of this checkpoint; ``spent`` is what the caller already inflated for it
+        #: (a ``.keras`` archive's compressed weights member).
+        self.ledger = budget.Ledger(source)
+        self.ledger.spent = spent
+        self.visits = 0
+        #: Object addresses of the datasets already made into tensors.
+        self._tensors: dict[int, str] = {}
+
+    def address(self, obj: Any) -> int:
+        """The object's address in the file: its identity, whatever link reached it."""
+        return int(h5py.h5o.get_info(obj.id).addr)
+
+    def count(self, names: int, where: str) -> None:
+        """Count objects listed by any walk; refuse past :data:`MAX_VISITS` for the file."""
+        self.visits += names
+        if self.visits > MAX_VISITS:
+            raise self.fail(f"lists more than {MAX_VISITS} HDF5 objects (at {where!r})")
 
     def fail(self, reason: str) -> LoadError:
         """A LoadError naming the file."""
@@ -513,6 +591,7 @@ class H5Store:
             dtype = np.dtype(ml_dtypes.bfloat16)
         else:
             raise self.fail(f"dataset {path!r} has unsupported dtype {stored}")
+        budget.check_elements(self.source, shape, f"dataset {path!r}")
         declared = math.prod(shape) * dtype.itemsize
         storage = int(obj.id.get_storage_size())
         filtered = obj.id.get_create_plist().get_nfilters() > 0
@@ -527,12 +606,24 @@ class H5Store:
             raise self.fail(
                 f"dataset {path!r} declares {declared} bytes but stores {storage} (refused)"
             )
+        # Absolute, beyond the ratio above: a fill value or well-compressed chunks may not add
+        # more than the expansion budget to what the file stores.
+        budget.check_expansion(self.source, declared, storage, f"dataset {path!r}")
         return shape, name_of(dtype), dtype.newbyteorder("=")
 
     def tensor(self, f: Any, path: str, name: str, role: TensorRole | None = None) -> Tensor:
         """A lazily read tensor for the dataset at ``path``, checked now."""
         obj = self.resolve(f, path)
         shape, short, dtype = self.check_dataset(obj, path)
+        address = self.address(obj)
+        first = self._tensors.setdefault(address, path)
+        if first != path:
+            raise self.fail(
+                f"HDF5 dataset {path!r} is another hard link to {first!r} (refused: Keras "
+                "never stores a variable twice)"
+            )
+        expansion = math.prod(shape) * dtype.itemsize - int(obj.id.get_storage_size())
+        self.ledger.charge(max(0, expansion), f"dataset {path!r}")
         is_float = dtype.kind == "f" or short == "bf16"
         if role is None:
             role = TensorRole.PARAMETER if is_float else TensorRole.BOOKKEEPING
@@ -571,15 +662,17 @@ class H5Store:
         Soft links are refused here: Keras never writes them, and listing through them could
         alias or loop."""
         out: list[str] = []
-        budget = [MAX_NODES]
+        left = [MAX_NODES]
+        seen: dict[int, str] = {}
 
         def walk(group: Any, prefix: str, depth: int) -> None:
             if depth > MAX_DEPTH:
                 raise self.fail(f"HDF5 groups under {prefix!r} nest too deeply")
             names = list(group.keys())
-            budget[0] -= len(names)
-            if budget[0] < 0:
+            left[0] -= len(names)
+            if left[0] < 0:
                 raise self.fail(f"has more than {MAX_NODES} HDF5 objects")
+            self.count(len(names), prefix)
             for name in sorted(names, key=natural_key):
                 where = f"{prefix}/{name}" if prefix else name
                 self._parts(where)
@@ -587,6 +680,12 @@ class H5Store:
                 if isinstance(link, h5py.SoftLink):
                     raise self.fail(f"HDF5 object {where!r} is a soft link (refused)")
                 child = group[name]
+                first = seen.setdefault(self.address(child), where)
+                if first != where:
+                    raise self.fail(
+                        f"HDF5 object {where!r} is another hard link to {first!r} (refused: "
+                        "links that loop or alias are never written by Keras)"
+                    )
                 if isinstance(child, h5py.Group):
                     walk(child, where, depth + 1)
                 elif isinstance(child, h5py.Dataset):
@@ -597,6 +696,7 @@ class H5Store:
         node = self.resolve(f, top)
         if isinstance(node, h5py.Dataset):
             return [top]
+        seen[self.address(node)] = top
         walk(node, top, 0)
         return out
 

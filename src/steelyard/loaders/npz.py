@@ -2,6 +2,10 @@
 
 We parse each member's ``.npy`` header ourselves (it is a literal dict) so that an object
 array is recognised at open time, a stored member is memory-mapped, and nothing is unpickled.
+A compressed member (``savez_compressed``) is checked against the expansion budget when the
+archive is opened (its claimed size against its compressed size, summed over the archive in
+a :class:`~steelyard.budget.Ledger`), inflated at most once per run into the spill folder
+(:mod:`steelyard.loaders.spill`) and memory-mapped from there.
 
 Members that are no tensor (strings such as a ``<U..`` vocabulary, structured or void
 records, datetimes, complex numbers, and object arrays, which would need pickle) are skipped
@@ -16,6 +20,7 @@ import math
 import mmap
 import struct
 import zipfile
+import zlib
 from collections.abc import Callable
 from pathlib import Path
 from typing import Literal
@@ -23,10 +28,17 @@ from typing import Literal
 import ml_dtypes
 import numpy as np
 
+from steelyard import budget
 from steelyard.dtypes import FLOAT_DTYPES, name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
-from steelyard.loaders.base import file_size, open_zip, read_zip_member, safe_zip_names
+from steelyard.loaders.base import (
+    file_size,
+    member_expansion,
+    open_zip,
+    safe_zip_names,
+    spill_member,
+)
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
 
 _MAGIC = b"\x93NUMPY"
@@ -112,19 +124,29 @@ class NpzLoader:
         size = file_size(path)
         tensors: dict[str, Tensor] = {}
         skipped: list[str] = []
+        ledger = budget.Ledger(path)
         with open_zip(path) as archive:
             members = safe_zip_names(archive, path)
             for member, info in members.items():
                 if not member.endswith(".npy"):
                     raise LoadError(path, f"member {member!r} is not a .npy array")
+                # Before a byte is inflated: the member alone, then the archive's running sum.
+                ledger.charge(member_expansion(path, info), f"archive member {member!r}")
+            for member, info in members.items():
                 name = member[: -len(".npy")]
-                with archive.open(info) as stream:
-                    head = stream.read(_MAX_HEADER + 12)
+                try:
+                    with archive.open(info) as stream:
+                        head = stream.read(_MAX_HEADER + 12)
+                except (zipfile.BadZipFile, OSError, EOFError, ValueError, NotImplementedError):
+                    raise LoadError(path, f"member {member!r} is unreadable") from None
+                except zlib.error:
+                    raise LoadError(path, f"member {member!r} is not a valid deflate stream") from None
                 try:
                     dtype, shape, fortran, header_len = _parse_header(head, path, member)
                 except _NotATensor as why:
                     skipped.append(f"{name} ({why})")
                     continue
+                budget.check_elements(path, shape, f"array {name!r}")
                 expected = math.prod(shape) * dtype.itemsize
                 if info.file_size != header_len + expected:
                     raise LoadError(
@@ -157,6 +179,14 @@ class NpzLoader:
         order: Literal["C", "F"] = "F" if fortran else "C"
 
         def read() -> np.ndarray:
+            try:
+                return decode()
+            except (MemoryError, RecursionError) as exc:
+                raise LoadError(
+                    path, f"member {info.filename!r} is too large to read ({type(exc).__name__})"
+                ) from None
+
+        def decode() -> np.ndarray:
             if info.compress_type == zipfile.ZIP_STORED:
                 with open(path, "rb") as handle:
                     handle.seek(info.header_offset)
@@ -172,9 +202,13 @@ class NpzLoader:
                     mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
                 flat = np.frombuffer(mapped, dtype=dtype, count=count, offset=start + header_len)
             else:
-                with zipfile.ZipFile(path) as archive:
-                    data = read_zip_member(archive, info, path, limit=info.file_size)
-                flat = np.frombuffer(data, dtype=dtype, count=count, offset=header_len)
+                # Inflated once per run (spill folder); later reads map the same file.
+                spill = spill_member(path, info)
+                if count == 0:
+                    return np.zeros(shape, dtype=dtype, order=order)
+                with open(spill, "rb") as handle:
+                    mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+                flat = np.frombuffer(mapped, dtype=dtype, count=count, offset=header_len)
             array = flat.reshape(shape, order=order)
             if array.dtype.byteorder == ">":
                 array = array.astype(array.dtype.newbyteorder("="))

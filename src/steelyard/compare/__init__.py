@@ -28,6 +28,7 @@ from steelyard.compare.diff import (
     fan_in_summary,
     new_nonfinite,
     relative,
+    statistics,
     sums,
     top_units,
 )
@@ -54,6 +55,7 @@ from steelyard.inventory import layer_block
 from steelyard.policy import Policy
 from steelyard.ranking import rank
 from steelyard.report import CheckpointAudit
+from steelyard.stats import reusing
 
 __all__ = [
     "CompareCoverage",
@@ -518,9 +520,13 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
     shared = share_structure(old, new, as_stored)
     old, new, pairs = shared.old, shared.new, shared.pairs
     old_grads, new_grads = optimizer_source(old), optimizer_source(new)
-    old_audit = audit_checkpoint(old, policy, old_grads)
-    new_audit = audit_checkpoint(new, policy, new_grads)
-    old_side, new_side = Side(old, policy), Side(new, policy)
+    old_side = Side(old, policy, statistics(old))
+    new_side = Side(new, policy, statistics(new))
+    # Each audit reads through its side's statistics, which keep what they read: the
+    # measures below reuse it instead of reading every layer a second time.
+    with reusing(old_side.stats, new_side.stats):
+        old_audit = audit_checkpoint(old, policy, old_grads)
+        new_audit = audit_checkpoint(new, policy, new_grads)
     alignments, rejected = _align_all(pairs, old_side, new_side)
     diffs: list[LayerDiff] = []
     total_diff = total_base = 0.0

@@ -15,7 +15,6 @@ orientation never matters. Three outcomes decide a same-shape layer's status:
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import math
 from collections import defaultdict, deque
@@ -31,9 +30,8 @@ from steelyard.dtypes import FLOAT_DTYPES, INT_DTYPES
 from steelyard.graph import Checkpoint, Layer, LayerKind
 from steelyard.policy import Policy
 from steelyard.rules import dead_unit
-from steelyard.rules._bounds import IntervalBounds, finite_range
-from steelyard.rules.base import AuditContext, RuleSettings
-from steelyard.stats import LayerStats
+from steelyard.rules.base import AuditContext
+from steelyard.stats import LayerStats, read_stored
 
 #: Units listed in a layer's "most changed units".
 TOP_UNITS = 5
@@ -46,21 +44,17 @@ _NORM_FIELDS = ("scale", "shift", "mean", "var")
 
 # ---- one checkpoint's side ----------------------------------------------------------------
 class Side:
-    """One checkpoint with its statistics and the audit's dead-unit tests, cached per layer."""
+    """One checkpoint with its statistics and the audit's dead-unit tests, cached per layer.
 
-    def __init__(
-        self, checkpoint: Checkpoint, policy: Policy, cache_bytes: int = 256 * 2**20
-    ) -> None:
+    The statistics are the ones the checkpoint's audit read (see :func:`statistics`), so
+    the comparison reads no weight the audit already read."""
+
+    def __init__(self, checkpoint: Checkpoint, policy: Policy, stats: LayerStats) -> None:
         self.checkpoint = checkpoint
-        self.stats = LayerStats(checkpoint, cache_bytes=cache_bytes)
+        self.stats = stats
         self.context = AuditContext(
             checkpoint=checkpoint, stats=self.stats, policy=policy, gradients=None
         )
-        # The comparison calls a unit dead exactly when the audit would: same tests, same
-        # thresholds (the policy's dead-unit settings).
-        self.dead_settings = RuleSettings(dead_unit.RULE.name, dead_unit.RULE.thresholds, policy)
-        declared = finite_range(policy.input_range) if policy.input_range else None
-        self._bounds = IntervalBounds(self.stats, declared) if declared else None
         self._dead: dict[str, frozenset[int]] = {}
 
     def matrix(self, layer: Layer) -> np.ndarray:
@@ -87,44 +81,30 @@ class Side:
         return out
 
     def dead(self, layer: Layer) -> frozenset[int]:
-        """Units the audit's ``dead-unit`` tests call dead (embeddings: none)."""
+        """Units the audit's ``dead-unit`` tests call dead, with the policy's thresholds and
+        input range (embeddings: none): the rule's own measurement, so the comparison calls
+        a unit dead exactly when the audit would."""
         if layer.name not in self._dead:
-            self._dead[layer.name] = frozenset(self._dead_units(layer))
+            self._dead[layer.name] = dead_unit.dead_units(self.context, layer).units
         return self._dead[layer.name]
-
-    def _dead_units(self, layer: Layer) -> set[int]:
-        if layer.kind is LayerKind.EMBEDDING:
-            return set()
-        ctx, settings = self.context, self.dead_settings
-        found = set(dead_unit._constant(ctx, settings, layer))
-        if layer.kind is not LayerKind.RECURRENT:
-            found |= dead_unit._unused(ctx, settings, layer)
-            found |= dead_unit._never_active(ctx, settings, layer, self._bounds)[0]
-            found |= dead_unit._silenced(ctx, settings, layer)
-        return found
 
     def quant_step(self, layer: Layer) -> np.ndarray | None:
         """Per-row quantization step of an integer-stored weight, recovered from the stored
-        integers and the dequantized view; None when the weight is not integer or the step
-        is not one per row (blocked scales)."""
+        integers (in the order the loader maps them to the canonical view) and the
+        dequantized view; None when the weight is not integer, the loader's order is not
+        known, or the step is not one per row (blocked scales)."""
         tensor = self.checkpoint.tensors.get(layer.weight)
         if tensor is None or tensor.dtype not in INT_DTYPES or tensor.dtype == "bool":
             return None
-        values = self.matrix(layer)
-        stored = np.asarray(tensor.read())
-        candidates: list[np.ndarray] = []
-        if layer.orient is not None:
-            with contextlib.suppress(ValueError, IndexError):
-                candidates.append(np.asarray(layer.orient(stored)))
-        candidates.append(stored)
-        if stored.ndim == 2:
-            candidates.append(stored.T)
-        for candidate in candidates:
-            if candidate.size == values.size:
-                step = row_steps(candidate.reshape(values.shape), values)
-                if step is not None:
-                    return step
-        return None
+        stored = self.stats.stored_weight(layer)
+        return None if stored is None else row_steps(stored, self.matrix(layer))
+
+
+def statistics(checkpoint: Checkpoint, cache_bytes: int = 256 * 2**20) -> LayerStats:
+    """Statistics for one side of a comparison: shared with the side's audit (run it inside
+    :func:`steelyard.stats.reusing`) and keeping matrices after the audit's rules are done,
+    within ``cache_bytes``, for the comparison's measures."""
+    return LayerStats(checkpoint, cache_bytes=cache_bytes, retain=True)
 
 
 def row_steps(quantized: np.ndarray, values: np.ndarray) -> np.ndarray | None:
@@ -518,7 +498,7 @@ def _vector_step(
     for ONNX QLinearConv's bias), the median step where the stored integer is 0."""
     if dtype not in INT_DTYPES or key != "bias" or layer.bias is None:
         return None
-    stored = np.asarray(side.checkpoint.tensors[layer.bias].read(), dtype=np.float64).reshape(-1)
+    stored = read_stored(side.checkpoint.tensors[layer.bias]).astype(np.float64).reshape(-1)
     if rows is not None and stored.size == rows.size:
         stored = stored[rows]
     if stored.size != values.size:

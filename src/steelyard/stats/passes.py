@@ -144,6 +144,7 @@ class WeightPasses:
         if source is None:
             whole = self._read_whole(layer)
             full = whole
+            tensor = self._rearranged(layer)
             blocks = iter([(a, b, whole[a:b]) for a, b in row_blocks(units, fan_in)])
         else:
             stored, first = source
@@ -172,6 +173,17 @@ class WeightPasses:
         if tensor is not None:
             self._counts.record(tensor, (counts[0], counts[1], counts[2]))
         return full
+
+    def _rearranged(self, layer: Layer) -> Tensor | None:
+        """The weight tensor when the loader's view only rearranges it: an ``orient``, no
+        other tensor the weights are made from, every element used, float32 or narrower (so
+        the widened view holds exactly its NaN and ±Inf)."""
+        tensor = self.checkpoint.tensors.get(layer.weight)
+        if tensor is None or layer.orient is None or layer.aux:
+            return None
+        if ITEMSIZE.get(tensor.dtype, 8) > 4 or tensor.size != layer.units * layer.fan_in:
+            return None
+        return tensor
 
     def _read_whole(self, layer: Layer) -> np.ndarray:
         """The canonical matrix through the loader's view, under the read lock: a view may

@@ -10,7 +10,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from steelyard.rules import registry
+from steelyard.rules import Command, registry
 from steelyard.rules.scoring import __doc__ as SCORING_DOC
 
 HEADER = """# Rules
@@ -47,16 +47,14 @@ def _section(spec: Any, heading: str, body: str) -> list[str]:
 def render() -> str:
     """The whole Markdown page."""
     parts = [HEADER, (SCORING_DOC or "").strip(), "\n"]
-    for spec in registry().values():
+    for spec in registry(Command.AUDIT).values():
         body = spec.doc.strip().replace("\n**", "\n\n**").replace("\n\n\n", "\n\n")
         parts += _section(spec, "##", body)
-    from steelyard.compare.rules import compare_registry
-
     parts.append(
         "\n## Comparison rules (`steelyard compare`)\n\n"
         "These run on two checkpoints; see `compare.md`. The same policy file configures them.\n"
     )
-    for compare_spec in compare_registry().values():
+    for compare_spec in registry(Command.COMPARE).values():
         parts += _section(compare_spec, "###", inspect.cleandoc(compare_spec.doc))
     return "\n".join(parts).replace("\n\n\n", "\n\n")
 

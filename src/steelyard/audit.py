@@ -9,14 +9,14 @@ import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager, contextmanager, nullcontext
-from dataclasses import replace
-from typing import TypeVar
+from dataclasses import fields
+from typing import Any, TypeVar
 
 import numpy as np
 from threadpoolctl import threadpool_limits
 
 from steelyard.coverage import coverage_of
-from steelyard.findings import Finding, Severity
+from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import checkpoint_block, layer_block
@@ -25,6 +25,7 @@ from steelyard.ranking import rank, rank_key
 from steelyard.report import CheckpointAudit, LayerHealth, Suppressed
 from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
 from steelyard.rules.base import RuleNotes
+from steelyard.rules.engine import apply_policy
 from steelyard.stats import STREAM_BYTES, LayerStats
 
 _HASH_CHUNK = 8 * 2**20
@@ -100,17 +101,18 @@ def run_rules(
     jobs: int = 1,
     notes: RuleNotes | None = None,
 ) -> tuple[list[Finding], list[Suppressed], LayerStats]:
-    """Every enabled rule's findings (policy severities applied), the findings the policy's
-    ignore entries silenced, and the statistics. What rules could not do goes to ``notes``.
+    """Every rule's findings that the policy keeps (policy severities applied), the findings
+    the policy's ignore entries silenced, and the statistics. What rules could not do goes to
+    ``notes``.
 
-    Rules with a per-layer hook run layer by layer: each task runs every such rule on one
-    layer while that layer's data is in memory, then releases it, so each tensor is read
-    once. Rules without one run whole afterwards, one at a time. ``jobs`` > 1 runs layer
-    tasks on that many threads, each with a one-thread BLAS (a layer too large for the
-    matrix cache runs alone, with a BLAS thread per job); numpy, BLAS, file reads and
-    hashing release the GIL in the heavy loops, so threads rather than processes. The
-    findings are collected in the same order as with one, so the report does not depend on
-    ``jobs``.
+    Per-layer rules run layer by layer: each task runs every such rule enabled on one layer
+    while that layer's data is in memory, then releases it, so each tensor is read once.
+    Whole-checkpoint rules (and the per-layer rules' ``finish``) run afterwards, one at a
+    time. ``jobs`` > 1 runs layer tasks on that many threads, each with a one-thread BLAS (a
+    layer too large for the matrix cache runs alone, with a BLAS thread per job); numpy,
+    BLAS, file reads and hashing release the GIL in the heavy loops, so threads rather than
+    processes. The findings are collected in the same order as with one, so the report does
+    not depend on ``jobs``.
     """
     stats = LayerStats(checkpoint)
     context = AuditContext(
@@ -121,8 +123,8 @@ def run_rules(
         notes=notes if notes is not None else RuleNotes(),
     )
     specs = list((rules or registry()).values())
-    settings = {spec.name: RuleSettings(spec.name, spec.thresholds, policy) for spec in specs}
-    hooked = [spec for spec in specs if spec.layer_check is not None]
+    settings: dict[str, RuleSettings[Any]] = {spec.name: RuleSettings(spec, policy) for spec in specs}
+    hooked = [spec for spec in specs if spec.per_layer is not None]
 
     admission = _Admission(jobs)
     blas = default_jobs()
@@ -138,16 +140,24 @@ def run_rules(
             try:
                 out: list[list[Finding]] = []
                 for spec in hooked:
-                    assert spec.layer_check is not None
-                    out.append(list(spec.layer_check(context, settings[spec.name], layer)))
+                    assert spec.per_layer is not None
+                    rule_settings = settings[spec.name]
+                    # A rule never runs where the policy switched it off.
+                    enabled = rule_settings.enabled(layer)
+                    out.append(
+                        list(spec.per_layer(context, rule_settings, layer)) if enabled else []
+                    )
                 return out
             finally:
                 stats.release(layer)
 
     def whole(spec: RuleSpec) -> list[Finding]:
-        if spec.layer_check is None:
-            return list(spec.check(context, settings[spec.name]))
-        return list(spec.finish(context, settings[spec.name])) if spec.finish else []
+        rule_settings = settings[spec.name]
+        if spec.whole is not None:
+            on = rule_settings.enabled_anywhere()
+            return list(spec.whole(context, rule_settings)) if on else []
+        # ``finish`` always runs: it may report what the rule could not do (a note).
+        return list(spec.finish(context, rule_settings)) if spec.finish else []
 
     pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
     try:
@@ -155,7 +165,7 @@ def run_rules(
             per_layer = _map(pool, one_layer, checkpoint.layers) if hooked else []
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())
-        # Rules without a hook scan every layer themselves: one after another, because two
+        # Whole-checkpoint rules scan every layer themselves: one after another, because two
         # at once hold two working sets while BLAS already keeps every core busy.
         rest = [whole(spec) for spec in specs]
     finally:
@@ -166,29 +176,35 @@ def run_rules(
     suppressed: list[Suppressed] = []
     for index, spec in enumerate(specs):
         produced: list[Finding] = []
-        if spec.layer_check is not None:
+        if spec.per_layer is not None:
             column = hooked.index(spec)
             for results in per_layer:
                 produced += results[column]
         produced += rest[index]
-        rule_settings = settings[spec.name]
-        for finding in produced:
-            layer = checkpoint.layer(finding.layer) if finding.layer else None
-            if not rule_settings.enabled(layer):
-                continue
-            chosen = rule_settings.for_layer(layer).get("severity")
-            if chosen:
-                finding = replace(finding, severity=Severity(chosen))
-            finding = replace(finding, checkpoint=checkpoint.path)
-            entry = policy.ignored(spec.name, finding.layer)
-            if entry is not None:
-                suppressed.append(Suppressed(finding, entry.reason, entry.layers))
-                continue
-            findings.append(finding)
+        kept, silenced = apply_policy(
+            settings[spec.name],
+            produced,
+            policy=policy,
+            checkpoint=checkpoint.path,
+            locate=checkpoint.layer,
+        )
+        findings += kept
+        suppressed += silenced
     return findings, suppressed, stats
 
 
-def _health(layer: Layer, stats: LayerStats, findings: list[Finding], graded: bool) -> LayerHealth:
+#: Layer-health fields every row has; the others are filled by rules (``RuleSpec.health``).
+_MEASURED = ("layer", "fan_in_norm", "norm_histogram")
+_RULE_FILLED = tuple(f for f in fields(LayerHealth) if f.name not in _MEASURED)
+
+
+def _health(
+    layer: Layer,
+    stats: LayerStats,
+    findings: list[Finding],
+    specs: list[RuleSpec],
+    graded: bool,
+) -> LayerHealth:
     norms = stats.row_norms(layer)
     finite = norms[np.isfinite(norms)]
     if finite.size:
@@ -200,22 +216,21 @@ def _health(layer: Layer, stats: LayerStats, findings: list[Finding], graded: bo
         floor = max(low, high * 1e-6)
         edges = np.geomspace(floor, high * (1 + 1e-9), 9)
         histogram = tuple(int(c) for c in np.histogram(np.clip(finite, floor, None), bins=edges)[0])
+    # A column no rule of this run fills is empty: None where the report allows it, else 0.
+    columns: dict[str, Any] = {
+        f.name: None if "None" in str(f.type) else 0 for f in _RULE_FILLED
+    }
     mine = [f for f in findings if f.layer == layer.name]
-    dead = {u for f in mine if f.rule == "dead-unit" for u in f.units}
-    twins = {u for f in mine if f.rule == "twin-units" for u in f.units}
-    share = None
-    if graded:
-        flagged = [f for f in mine if f.rule == "unsupported-weight" and "flagged" in f.evidence]
-        share = sum(int(f.evidence["flagged"]) for f in flagged) / max(
-            1, layer.units * layer.fan_in
-        )
+    for spec in specs:
+        for column in spec.health:
+            if column.needs_gradients and not graded:
+                continue
+            columns[column.field] = column.measure(layer, [f for f in mine if f.rule == spec.name])
     return LayerHealth(
         layer=layer_block(layer),
         fan_in_norm=(low, mid, high),
         norm_histogram=histogram,
-        dead=len(dead),
-        twins=len(twins),
-        unsupported_share=share,
+        **columns,
     )
 
 
@@ -242,11 +257,13 @@ def audit_checkpoint(
         findings, suppressed, stats = run_rules(checkpoint, policy, gradients, rules, 1, notes)
         sha256 = sha256_of(files)
     ranked = rank(findings)
+    specs = list((rules or registry()).values())
     block = dict(checkpoint_block(checkpoint))
     block["sha256"] = sha256
     block["files"] = list(files)
     health = tuple(
-        _health(layer, stats, findings, gradients is not None) for layer in checkpoint.layers
+        _health(layer, stats, findings, specs, gradients is not None)
+        for layer in checkpoint.layers
     )
     return CheckpointAudit(
         checkpoint=block,

@@ -1,16 +1,25 @@
-"""What a rule is, and the context it runs in.
+"""What a rule is, what it reads, and how its settings resolve.
 
 A rule is one module holding a :data:`RULE` (:class:`RuleSpec`): its name (its ID in reports
-and policies), default severity and thresholds, a one-line why, and ``check(ctx)`` which
-yields findings. The module docstring is the rule's documentation page.
+and policies), the command it serves (``audit`` or ``compare``), default severity, a typed
+settings record (its thresholds, see :func:`threshold`), a one-line why, and ONE check: either
+``per_layer`` (findings on one layer; optionally a ``finish`` once every layer is done) or
+``whole`` (findings on the whole checkpoint, or on the whole comparison). The module docstring
+is the rule's documentation page.
+
+The engine (:mod:`steelyard.rules.engine`), not the rule, applies ``enabled``, the policy's
+severity, ``[[override]]`` and ``[[ignore]]``: a rule only measures and reports.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import threading
-from collections.abc import Callable, Iterator, Mapping
+import typing
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from enum import Enum
+from typing import Any, Generic, TypeVar
 
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import GradientSource
@@ -18,9 +27,165 @@ from steelyard.graph import Checkpoint, Layer
 from steelyard.policy import Policy
 from steelyard.stats import LayerStats
 
-DOCS_URL = "https://steelyard.readthedocs.io/en/latest/rules/"
+DOCS_URL = "https://steelyard.readthedocs.io/en/latest/"
 
 
+class Command(str, Enum):
+    """The command a rule serves; also the part of the docs that holds its page."""
+
+    AUDIT = "audit"
+    COMPARE = "compare"
+
+    @property
+    def docs_page(self) -> str:
+        """The published page listing this command's rules."""
+        return "rules/" if self is Command.AUDIT else "compare/"
+
+
+class Scope(str, Enum):
+    """What one call of a rule's check sees."""
+
+    LAYER = "layer"
+    """One layer at a time, while its data is in memory (layers run on ``--jobs`` threads)."""
+    WHOLE = "whole"
+    """The whole checkpoint (or, for ``compare``, the whole comparison) at once."""
+
+
+# ---- typed settings ------------------------------------------------------------------------
+def threshold(default: Any, *, low: float | None = 0.0, high: float | None = None) -> Any:
+    """A field of a rule's settings record: its default and, for numbers, the closed range a
+    policy value must lie in (``low`` 0 and no ``high`` unless said: thresholds are
+    magnitudes). The policy key is the field name with ``-`` for ``_``."""
+    return field(default=default, metadata={"low": low, "high": high})
+
+
+def fraction(default: float) -> Any:
+    """A threshold that is a share, a quantile or a cosine: it lies in [0, 1]."""
+    return threshold(default, low=0.0, high=1.0)
+
+
+@dataclass(frozen=True)
+class NoSettings:
+    """The settings record of a rule without thresholds."""
+
+
+@dataclass(frozen=True)
+class SettingSchema:
+    """One policy key of one rule: what the policy file validation checks it against."""
+
+    key: str
+    """The policy key (``error-share``)."""
+    kind: type
+    """``bool``, ``int``, ``float`` or ``str``."""
+    optional: bool
+    """The default is unset (None) and the key may stay unset."""
+    low: float | None
+    high: float | None
+    """Closed range for numbers (None: unbounded on that side)."""
+    default: Any
+
+
+def policy_key(field_name: str) -> str:
+    """The policy key of a settings field (``error_share`` → ``error-share``)."""
+    return field_name.replace("_", "-")
+
+
+def schema_of(record: type[Any]) -> tuple[SettingSchema, ...]:
+    """The policy keys of a settings record, in declaration order."""
+    hints = typing.get_type_hints(record)
+    out: list[SettingSchema] = []
+    for item in dataclasses.fields(record):
+        hint = hints[item.name]
+        args = typing.get_args(hint)
+        optional = type(None) in args
+        kind = next((a for a in args if a is not type(None)), hint) if args else hint
+        numeric = kind in (int, float)
+        out.append(
+            SettingSchema(
+                key=policy_key(item.name),
+                kind=kind,
+                optional=optional,
+                low=item.metadata.get("low") if numeric else None,
+                high=item.metadata.get("high") if numeric else None,
+                default=item.default,
+            )
+        )
+    return tuple(out)
+
+
+def _coerce(schema: SettingSchema, value: Any) -> Any:
+    """A policy value in the record's type (the policy file already checked the range)."""
+    if value is None:
+        return None
+    if schema.kind is bool:
+        return bool(value)
+    if schema.kind is int:
+        return int(value)
+    if schema.kind is float:
+        return float(value)
+    return value
+
+
+S = TypeVar("S")
+
+
+class RuleSettings(Generic[S]):
+    """A rule's effective settings, resolved per layer from its defaults, the policy's
+    ``[rules.<rule>]`` table and the ``[[override]]`` entries matching the layer.
+
+    Rules read :meth:`for_layer` (a typed record); the engine also reads :meth:`enabled` and
+    :meth:`severity`. Safe to share between worker threads (each layer's record is computed
+    from immutable inputs; a race only computes it twice)."""
+
+    def __init__(self, spec: RuleSpec, policy: Policy) -> None:
+        self.rule = spec.name
+        self._record: type[S] = spec.settings
+        self._schema = {s.key: s for s in spec.schema}
+        self._defaults: dict[str, Any] = {"enabled": True, **spec.thresholds}
+        self._policy = policy
+        self._resolved: dict[str | None, tuple[dict[str, Any], S]] = {}
+
+    def _resolve(self, layer: Layer | None) -> tuple[dict[str, Any], S]:
+        name = layer.name if layer is not None else None
+        known = self._resolved.get(name)
+        if known is None:
+            merged = self._policy.settings(self.rule, self._defaults, name)
+            values = {
+                key.replace("-", "_"): _coerce(schema, merged[key])
+                for key, schema in self._schema.items()
+            }
+            known = (merged, self._record(**values))
+            self._resolved[name] = known
+        return known
+
+    def for_layer(self, layer: Layer | None) -> S:
+        """The thresholds in force on ``layer`` (None: the rule-wide ones)."""
+        return self._resolve(layer)[1]
+
+    @property
+    def rule_wide(self) -> S:
+        """The thresholds in force outside any ``[[override]]``."""
+        return self.for_layer(None)
+
+    def enabled(self, layer: Layer | None) -> bool:
+        """Whether the rule's findings on ``layer`` are kept (the engine's business)."""
+        return bool(self._resolve(layer)[0]["enabled"])
+
+    def enabled_anywhere(self) -> bool:
+        """False only when the rule is off everywhere: off rule-wide and switched on by no
+        ``[[override]]``, so none of its findings could be kept."""
+        return self.enabled(None) or any(
+            bool(o.rules[self.rule].get("enabled")) for o in self._policy.overrides
+            if self.rule in o.rules
+        )
+
+    def severity(self, layer: Layer | None) -> Severity | None:
+        """The policy's severity for this rule on ``layer``; None: the rule's own choice."""
+        chosen = self._resolve(layer)[0].get("severity")
+        return Severity(chosen) if chosen else None
+
+
+# ---- what a rule reads and writes ----------------------------------------------------------
 class RuleNotes:
     """What rules could not do (a missing input, a test skipped), kept apart from findings.
 
@@ -61,8 +226,8 @@ class RuleNotes:
 
 @dataclass(frozen=True)
 class AuditContext:
-    """Everything a rule may read: the graph, shared statistics, policy, gradient support;
-    and where it says what it could not do."""
+    """Everything an audit rule may read: the graph, shared statistics, policy, gradient
+    support; and where it says what it could not do."""
 
     checkpoint: Checkpoint
     stats: LayerStats
@@ -71,77 +236,131 @@ class AuditContext:
     notes: RuleNotes = field(default_factory=RuleNotes)
 
 
+def layer_finding(
+    rule: str,
+    layer: Layer,
+    *,
+    severity: Severity,
+    score: float,
+    message: str,
+    hint: str,
+    units: Sequence[int] = (),
+    evidence: Mapping[str, Any] | None = None,
+) -> Finding:
+    """A finding on ``layer``'s weight: located at the layer, its stored weight tensor and
+    its recurrent gate (the part ``units`` index), as every layer rule reports."""
+    return Finding(
+        rule=rule,
+        severity=severity,
+        layer=layer.name,
+        tensor=layer.weight,
+        units=tuple(units),
+        score=score,
+        message=message,
+        hint=hint,
+        evidence=dict(evidence or {}),
+        part=layer.gate or "",
+    )
+
+
+@dataclass(frozen=True)
+class HealthColumn:
+    """A column of the layer-health table that a rule fills from its own findings."""
+
+    field: str
+    """The :class:`~steelyard.report.LayerHealth` field filled."""
+    measure: Callable[[Layer, Sequence[Finding]], Any]
+    """The value from the layer and the rule's kept findings on it (possibly none)."""
+    needs_gradients: bool = False
+    """The column is empty (None) when the audit had no gradient source."""
+
+
+def distinct_units(layer: Layer, findings: Sequence[Finding]) -> int:
+    """How many distinct units the findings name (a health column's measure)."""
+    return len({unit for finding in findings for unit in finding.units})
+
+
+# ---- the rule ------------------------------------------------------------------------------
+LayerCheck = Callable[[Any, RuleSettings[Any], Layer], Iterator[Finding]]
+"""A rule's findings on one layer (its first argument is the command's context)."""
+WholeCheck = Callable[[Any, RuleSettings[Any]], Iterator[Finding]]
+"""A rule's findings on the whole checkpoint (or comparison)."""
+
+
 @dataclass(frozen=True)
 class RuleSpec:
-    """A rule's metadata and its check."""
+    """A rule: metadata, settings record and its one check (``per_layer`` or ``whole``).
+
+    The context its check reads depends on the command: :class:`AuditContext` for audit
+    rules, :class:`steelyard.compare.checks.CompareContext` for comparison rules.
+    """
 
     name: str
     severity: Severity
     """Default severity (a rule may raise or lower it per finding, as documented)."""
-    thresholds: Mapping[str, Any]
-    """Default thresholds; each can be set by a policy (key names are the policy keys)."""
     summary: str
     """One line: why this matters."""
-    check: Callable[[AuditContext, RuleSettings], Iterator[Finding]]
     doc: str
     """The rule's documentation page (its module docstring)."""
-    layer_check: LayerCheck | None = None
-    """Optional per-layer part of ``check``. When set, ``check(ctx, settings)`` must yield
-    exactly ``layer_check(ctx, settings, layer)`` for each layer in order, then ``finish``
-    (build it with :func:`layered`). The audit then runs every rule's hook on a layer while
-    that layer's data is in memory, and layers in parallel (``--jobs``)."""
-    finish: Callable[[AuditContext, RuleSettings], Iterator[Finding]] | None = None
-    """Optional whole-checkpoint findings yielded after the per-layer ones."""
+    settings: type[Any] = NoSettings
+    """The frozen dataclass of its thresholds (fields made with :func:`threshold`)."""
+    per_layer: LayerCheck | None = None
+    """Findings on one layer; the engine calls it for every layer the rule is enabled on,
+    while that layer's data is in memory, layers in parallel (``--jobs``)."""
+    finish: WholeCheck | None = None
+    """With ``per_layer``: findings yielded once every layer is done (cross-layer decisions)."""
+    whole: WholeCheck | None = None
+    """Findings on the whole checkpoint at once (instead of ``per_layer``)."""
+    commands: tuple[Command, ...] = (Command.AUDIT,)
+    """The command(s) whose runs include this rule."""
     tensor_scan: bool = False
     """The rule asks ``ctx.stats.nonfinite`` of every tensor in ``ctx.stats.scan_targets()``;
     the audit counts them in parallel before the rule runs."""
+    health: tuple[HealthColumn, ...] = ()
+    """Layer-health columns this rule's findings fill."""
+
+    def __post_init__(self) -> None:
+        if (self.per_layer is None) == (self.whole is None):
+            raise TypeError(f"rule {self.name!r}: give exactly one of per_layer= or whole=")
+        if self.finish is not None and self.per_layer is None:
+            raise TypeError(f"rule {self.name!r}: finish= goes with per_layer=")
+        if not dataclasses.is_dataclass(self.settings):
+            raise TypeError(f"rule {self.name!r}: settings must be a frozen dataclass")
+
+    @property
+    def scope(self) -> Scope:
+        """Per layer or whole checkpoint, as declared."""
+        return Scope.LAYER if self.per_layer is not None else Scope.WHOLE
+
+    @property
+    def schema(self) -> tuple[SettingSchema, ...]:
+        """The rule's policy keys (besides ``enabled`` and ``severity``)."""
+        return schema_of(self.settings)
+
+    @property
+    def thresholds(self) -> dict[str, Any]:
+        """Policy key → default, in declaration order."""
+        return {s.key: s.default for s in self.schema}
 
     @property
     def help_uri(self) -> str:
         """Where the rule's page is published."""
-        return f"{DOCS_URL}#{self.name}"
+        return f"{DOCS_URL}{self.commands[0].docs_page}#{self.name}"
 
+    def serves(self, command: Command) -> bool:
+        """Whether ``command`` runs this rule."""
+        return command in self.commands
 
-LayerCheck = Callable[[AuditContext, "RuleSettings", Layer], Iterator[Finding]]
-"""A rule's findings on one layer."""
-
-
-def layered(
-    layer_check: LayerCheck,
-    finish: Callable[[AuditContext, RuleSettings], Iterator[Finding]] | None = None,
-) -> Callable[[AuditContext, RuleSettings], Iterator[Finding]]:
-    """The whole-checkpoint ``check`` made of a per-layer hook and an optional finish."""
-
-    def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
-        for layer in ctx.checkpoint.layers:
-            yield from layer_check(ctx, settings, layer)
-        if finish is not None:
-            yield from finish(ctx, settings)
-
-    return check
-
-
-class RuleSettings:
-    """Effective settings of one rule, resolved per layer from defaults, policy, overrides."""
-
-    def __init__(self, spec_name: str, thresholds: Mapping[str, Any], policy: Policy) -> None:
-        self._rule = spec_name
-        self._defaults = {"enabled": True, **thresholds}
-        self._policy = policy
-
-    def for_layer(self, layer: Layer | None) -> dict[str, Any]:
-        """Settings in force on ``layer`` (None: the rule-wide settings)."""
-        return self._policy.settings(self._rule, self._defaults, layer.name if layer else None)
-
-    def enabled(self, layer: Layer | None) -> bool:
-        """Whether the rule runs on ``layer``."""
-        return bool(self.for_layer(layer)["enabled"])
-
-    def get(self, layer: Layer | None, key: str) -> Any:
-        """One setting on ``layer``."""
-        return self.for_layer(layer)[key]
-
-    def severity(self, layer: Layer | None, default: Severity) -> Severity:
-        """The policy's severity for this rule on ``layer``, else ``default``."""
-        chosen = self.for_layer(layer).get("severity")
-        return Severity(chosen) if chosen else default
+    def check(self, ctx: Any, settings: RuleSettings[Any]) -> Iterator[Finding]:
+        """Every finding in one go, without the engine's filtering: ``per_layer`` on each of
+        the checkpoint's layers in order, then ``finish``; or ``whole``. (The audit runs the
+        parts itself, layer by layer; this is for callers that want one rule's raw output.)"""
+        if self.whole is not None:
+            yield from self.whole(ctx, settings)
+            return
+        assert self.per_layer is not None
+        checkpoint: Checkpoint = ctx.checkpoint
+        for layer in checkpoint.layers:
+            yield from self.per_layer(ctx, settings, layer)
+        if self.finish is not None:
+            yield from self.finish(ctx, settings)

@@ -29,22 +29,31 @@ or check the code that loaded or modified the checkpoint.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+@dataclass(frozen=True)
+class ConstraintBreachSettings:
+    """Thresholds of ``constraint-breach``."""
+
+    tolerance: float = threshold(1e-4)
+
+
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[ConstraintBreachSettings], layer: Layer
+) -> Iterator[Finding]:
     """Yield an error when the layer's declared constraint does not hold."""
     constraint = layer.constraint
-    if constraint is None or not settings.enabled(layer):
+    if constraint is None:
         return
-    tol = float(settings.get(layer, "tolerance"))
-    base = dict(rule=RULE.name, layer=layer.name, tensor=layer.weight, part=layer.gate or "")
+    tol = settings.for_layer(layer).tolerance
     if not constraint.per_unit or (constraint.kind == "min-max-norm" and constraint.rate != 1.0):
         why = "its axes do not map onto units" if not constraint.per_unit else "rate < 1"
         # Not a problem of the model: a note of the report, never a finding.
@@ -90,10 +99,11 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
         )
     if not bad.size:
         return
-    yield Finding(
-        **base,
+    yield layer_finding(
+        RULE.name,
+        layer,
         severity=Severity.ERROR,
-        units=tuple(int(u) for u in bad),
+        units=[int(u) for u in bad],
         score=score(bad.size / layer.units, excess),
         message=f"{bad.size} of {layer.units} units break the declared {constraint.kind} constraint "
         f"({measured}; limit {limit_text}, tolerance {tol:g})",
@@ -112,9 +122,8 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
 RULE = RuleSpec(
     name="constraint-breach",
     severity=Severity.ERROR,
-    thresholds={"tolerance": 1e-4},
+    settings=ConstraintBreachSettings,
     summary="weights that break a constraint the file declares were edited, or come from another run",
-    check=layered(check_layer),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
 )

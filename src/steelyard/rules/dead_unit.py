@@ -47,31 +47,48 @@ retrain with a lower learning rate, leaky activations, or a weaker penalty.
 from __future__ import annotations
 
 import threading
-from collections.abc import Iterator
-from dataclasses import dataclass
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
 from steelyard.rules._bounds import IntervalBounds, finite_range
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.rules.base import (
+    AuditContext,
+    HealthColumn,
+    RuleSettings,
+    RuleSpec,
+    distinct_units,
+    fraction,
+    layer_finding,
+    threshold,
+)
 from steelyard.rules.scoring import score
 
 
-def _constant(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[int]:
+@dataclass(frozen=True)
+class DeadUnitSettings:
+    """Thresholds of ``dead-unit`` (policy keys ``floor``, ``constant``, ...)."""
+
+    floor: float = threshold(1e-8)
+    constant: float = threshold(1e-3)
+    unused: float = threshold(1e-3)
+    silenced: float = threshold(1e-3)
+    error_share: float = fraction(0.5)
+
+
+def _constant(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[int]:
     rows = ctx.stats.folded_row_norms(layer)
     finite = rows[np.isfinite(rows)]
     if finite.size == 0:
         return set()
-    limit = max(
-        float(settings.get(layer, "floor")),
-        float(settings.get(layer, "constant")) * float(np.median(finite)),
-    )
+    limit = max(limits.floor, limits.constant * float(np.median(finite)))
     return {int(u) for u in np.flatnonzero(rows <= limit)}
 
 
-def _unused(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[int]:
+def _unused(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[int]:
     consumers = ctx.stats.consumers(layer)
     if not consumers:
         return set()
@@ -84,12 +101,12 @@ def _unused(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[int]
         median = float(np.median(finite)) if finite.size else 0.0
         if median <= 0:
             return set()
-        unused &= norms <= float(settings.get(layer, "unused")) * median
+        unused &= norms <= limits.unused * median
     return {int(u) for u in np.flatnonzero(unused)}
 
 
 def _never_active(
-    ctx: AuditContext, settings: RuleSettings, layer: Layer, bounds: IntervalBounds | None
+    ctx: AuditContext, layer: Layer, bounds: IntervalBounds | None
 ) -> tuple[set[int], str]:
     if not layer.activation.relu_family:
         return set(), ""
@@ -106,7 +123,7 @@ def _never_active(
     return set(), ""
 
 
-def _silenced(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[int]:
+def _silenced(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[int]:
     gamma = ctx.stats.norm_scale(layer)
     if gamma is None:
         return set()
@@ -114,9 +131,49 @@ def _silenced(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> set[in
     median = float(np.median(magnitude))
     if median <= 0:
         return set()
-    return {
-        int(u) for u in np.flatnonzero(magnitude <= float(settings.get(layer, "silenced")) * median)
-    }
+    return {int(u) for u in np.flatnonzero(magnitude <= limits.silenced * median)}
+
+
+@dataclass(frozen=True)
+class DeadUnits:
+    """One layer's dead units by test (``constant``, ``unused``, ``never-active``,
+    ``silenced``; only the tests that apply to the layer's kind are present)."""
+
+    tests: Mapping[str, frozenset[int]] = field(default_factory=dict)
+    how: str = ""
+    """How *never active* was established (``interval bounds``, ...), else empty."""
+
+    @property
+    def units(self) -> frozenset[int]:
+        """Every dead unit, whichever test found it."""
+        return frozenset().union(*self.tests.values())
+
+
+def dead_units(
+    ctx: AuditContext, layer: Layer, settings: RuleSettings[DeadUnitSettings] | None = None
+) -> DeadUnits:
+    """The units of ``layer`` that ``dead-unit``'s four tests call dead, with the policy's
+    ``dead-unit`` thresholds (``settings``; default: resolved from ``ctx.policy``) and its
+    ``input-range``. This is the rule's public measurement: ``steelyard compare`` calls it on
+    both checkpoints so that a unit is dead there exactly when the audit says so.
+
+    Embeddings have none (a zero row is usually a padding index); recurrent layers get the
+    *constant* test only. The per-layer interval bounds are built once per ``ctx.stats``.
+    """
+    if layer.kind is LayerKind.EMBEDDING:
+        return DeadUnits()
+    limits = (settings or RuleSettings(RULE, ctx.policy)).for_layer(layer)
+    tests: dict[str, frozenset[int]] = {"constant": frozenset(_constant(ctx, limits, layer))}
+    how = ""
+    if layer.kind is not LayerKind.RECURRENT:
+        bounds = ctx.stats.shared(
+            f"dead-unit:bounds:{ctx.policy.input_range!r}", lambda: _bounds(ctx)
+        )
+        tests["unused"] = frozenset(_unused(ctx, limits, layer))
+        active, how = _never_active(ctx, layer, bounds)
+        tests["never-active"] = frozenset(active)
+        tests["silenced"] = frozenset(_silenced(ctx, limits, layer))
+    return DeadUnits(tests, how)
 
 
 def _saving(ctx: AuditContext, layer: Layer, dead: int) -> int:
@@ -143,7 +200,7 @@ class _Dead:
     """One layer's dead units by test, kept until :func:`finish` has seen every layer."""
 
     layer: Layer
-    tests: dict[str, set[int]]
+    tests: dict[str, frozenset[int]]
     how: str
     per_unit: int
     """Parameters one dead unit costs (its row, bias, norm parameters, consumer columns)."""
@@ -161,22 +218,15 @@ def _store(ctx: AuditContext) -> _Store:
     return ctx.stats.shared(f"{RULE.name}:dead", _Store)
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[DeadUnitSettings], layer: Layer
+) -> Iterator[Finding]:
     """Find one layer's dead units and keep them for :func:`finish`, which reports each dead
     channel once across a channel-wise (depthwise) convolution and the layer feeding it."""
-    if layer.kind is LayerKind.EMBEDDING or not settings.enabled(layer):
+    found = dead_units(ctx, layer, settings)
+    if not found.units:
         return
-    bounds = ctx.stats.shared(f"dead-unit:bounds:{ctx.policy.input_range!r}", lambda: _bounds(ctx))
-    tests: dict[str, set[int]] = {"constant": _constant(ctx, settings, layer)}
-    if layer.kind is not LayerKind.RECURRENT:
-        tests["unused"] = _unused(ctx, settings, layer)
-        active, how = _never_active(ctx, settings, layer, bounds)
-        tests["never-active"] = active
-        tests["silenced"] = _silenced(ctx, settings, layer)
-    else:
-        how = ""
-    if not any(tests.values()):
-        return
+    tests, how = dict(found.tests), found.how
     store = _store(ctx)
     record = _Dead(layer, tests, how, _saving(ctx, layer, 1))
     with store.lock:
@@ -244,7 +294,7 @@ def _root(echo: dict[tuple[str, int], tuple[str, int]], key: tuple[str, int]) ->
     return key
 
 
-def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+def finish(ctx: AuditContext, settings: RuleSettings[DeadUnitSettings]) -> Iterator[Finding]:
     """One finding per layer with dead units of its own; a channel dead in both a layer and
     the channel-wise convolution it feeds is reported once, where it originates."""
     store = _store(ctx)
@@ -273,7 +323,7 @@ def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 
 
 def _finding(
-    settings: RuleSettings,
+    settings: RuleSettings[DeadUnitSettings],
     record: _Dead,
     tests: dict[str, set[int]],
     related: dict[str, dict[str, list[int]]],
@@ -284,7 +334,7 @@ def _finding(
         return
     share = len(dead) / layer.units
     severity = (
-        Severity.ERROR if share >= float(settings.get(layer, "error-share")) else Severity.WARNING
+        Severity.ERROR if share >= settings.for_layer(layer).error_share else Severity.WARNING
     )
     named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
     saving = record.per_unit * len(dead)
@@ -301,34 +351,26 @@ def _finding(
                 f" {other} ({len(units)})"
                 for other, units in related[relation].items()
             )
-    yield Finding(
-        rule=RULE.name,
+    yield layer_finding(
+        RULE.name,
+        layer,
         severity=severity,
-        layer=layer.name,
-        tensor=layer.weight,
-        units=tuple(dead),
+        units=dead,
         score=score(share, 1 + len(dead)),
         message=f"{len(dead)} of {layer.units} units are dead ({named}){echoes}",
         hint=f"pruning them saves exactly {saving} parameters; if many died, retrain with a lower "
         "learning rate, leaky activations or a weaker penalty",
         evidence=evidence,
-        part=layer.gate or "",
     )
 
 
 RULE = RuleSpec(
     name="dead-unit",
     severity=Severity.WARNING,
-    thresholds={
-        "floor": 1e-8,
-        "constant": 1e-3,
-        "unused": 1e-3,
-        "silenced": 1e-3,
-        "error-share": 0.5,
-    },
+    settings=DeadUnitSettings,
     summary="a unit whose output cannot change or is never read costs parameters and contributes nothing",
-    check=layered(check_layer, finish),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
     finish=finish,
+    health=(HealthColumn("dead", distinct_units),),
 )

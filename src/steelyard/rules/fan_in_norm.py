@@ -38,15 +38,27 @@ learning rate for it, or, for rescalable units, rebalance with the factor given.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
 _TOP = 10
+
+
+
+@dataclass(frozen=True)
+class FanInNormSettings:
+    """Thresholds of ``fan-in-norm``."""
+
+    ratio: float = threshold(8.0)
+    max_norm: float | None = threshold(None)
+    rescalable_product: float = threshold(2.0)
+    include_embeddings: bool = threshold(False)
 
 
 def _consumer_norms(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
@@ -63,19 +75,19 @@ def _consumer_norms(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
     return np.sqrt(total)
 
 
-def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+def _relative(ctx: AuditContext, limits: FanInNormSettings, layer: Layer) -> Iterator[Finding]:
     norms = ctx.stats.row_norms(layer)
     finite = norms[np.isfinite(norms)]
     if finite.size < 2:
         return
     median = float(np.median(finite))
-    ratio_limit = float(settings.get(layer, "ratio"))
-    absolute = settings.get(layer, "max-norm")
+    ratio_limit = limits.ratio
+    absolute = limits.max_norm
     tests: list[tuple[str, float]] = []
     if median > 0:
         tests.append(("relative", ratio_limit * median))
-    if absolute is not None and float(absolute) > 0:
-        tests.append(("max-norm", float(absolute)))
+    if absolute is not None and absolute > 0:
+        tests.append(("max-norm", absolute))
     out_norms = None
     if layer.norm is None and layer.activation.positive_homogeneous:
         out_norms = _consumer_norms(ctx, layer)
@@ -99,7 +111,7 @@ def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterat
                 (norms[hit] / median) * (out_norms[hit] / out_median) if out_median > 0 else None
             )
             if product is not None and bool(
-                np.all(product <= float(settings.get(layer, "rescalable-product")))
+                np.all(product <= limits.rescalable_product)
             ):
                 severity, status = Severity.INFO, "rescalable"
                 factors = np.sqrt(out_norms[hit] / np.maximum(norms[hit], 1e-30))
@@ -128,40 +140,33 @@ def _relative(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterat
             hint = "rebalance: scale each unit's row by its balancing factor a and its consumer columns by 1/a"
         else:
             hint = "retrain with weight decay or a max-norm constraint on this layer, or lower its learning rate"
-        yield Finding(
-            rule=RULE.name,
+        yield layer_finding(
+            RULE.name,
+            layer,
             severity=severity,
-            layer=layer.name,
-            tensor=layer.weight,
-            units=tuple(int(u) for u in hit),
+            units=[int(u) for u in hit],
             score=score(hit.size / layer.units, float(norms[hit].max()) / limit),
             message=message,
             hint=hint,
             evidence=evidence,
-            part=layer.gate or "",
         )
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[FanInNormSettings], layer: Layer
+) -> Iterator[Finding]:
     """Yield one layer's outlier fan-in norms."""
-    if not settings.enabled(layer):
+    limits = settings.for_layer(layer)
+    if layer.kind is LayerKind.EMBEDDING and not limits.include_embeddings:
         return
-    if layer.kind is LayerKind.EMBEDDING and not settings.get(layer, "include-embeddings"):
-        return
-    yield from _relative(ctx, settings, layer)
+    yield from _relative(ctx, limits, layer)
 
 
 RULE = RuleSpec(
     name="fan-in-norm",
     severity=Severity.WARNING,
-    thresholds={
-        "ratio": 8.0,
-        "max-norm": None,
-        "rescalable-product": 2.0,
-        "include-embeddings": False,
-    },
+    settings=FanInNormSettings,
     summary="a unit whose incoming weights grew far past its neighbours' dominates its layer and amplifies noise",
-    check=layered(check_layer),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
 )

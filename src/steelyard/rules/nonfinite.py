@@ -33,7 +33,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, Tensor, TensorRole
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.base import AuditContext, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score
 
 _MAX_POSITIONS = 5
@@ -96,7 +96,7 @@ def _scan(tensor: Tensor) -> tuple[np.ndarray, int, int, int] | None:
     return bad, nan, pos, neg
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+def check(ctx: AuditContext, settings: RuleSettings[NoSettings]) -> Iterator[Finding]:
     """Yield one error per tensor holding NaN or ±Inf."""
     owners = _owners(ctx)
     candidates: list[tuple[str, Tensor, str]] = [
@@ -162,9 +162,8 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 RULE = RuleSpec(
     name="nonfinite",
     severity=Severity.ERROR,
-    thresholds={},
     summary="NaN or ±Inf in a weight, bias, norm statistic or optimizer state breaks every output that depends on it",
-    check=check,
     doc=__doc__ or "",
+    whole=check,
     tensor_scan=True,
 )

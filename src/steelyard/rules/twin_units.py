@@ -87,7 +87,16 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Activation, Layer, LayerKind, NormKind
 from steelyard.rules._similarity import Rows, similar_pairs
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.rules.base import (
+    AuditContext,
+    HealthColumn,
+    RuleSettings,
+    RuleSpec,
+    distinct_units,
+    fraction,
+    layer_finding,
+    threshold,
+)
 from steelyard.rules.scoring import score
 
 #: Rows below this fraction of the layer's largest row norm have no reliable direction.
@@ -115,10 +124,23 @@ class _Group:
     """cos(r_keep, r_k) for every dropped unit k."""
 
 
-def _eligible(layer: Layer, settings: RuleSettings) -> bool:
+@dataclass(frozen=True)
+class TwinUnitsSettings:
+    """Thresholds of ``twin-units``."""
+
+    cosine: float = fraction(0.995)
+    norm_tolerance: float = threshold(0.05)
+    lopsided_ratio: float = threshold(4.0)
+    exact_limit: int = threshold(512)
+    seed: int = threshold(0)
+    include_embeddings: bool = threshold(False)
+    report_unlinked: bool = threshold(False)
+
+
+def _eligible(layer: Layer, limits: TwinUnitsSettings) -> bool:
     if layer.units < 2 or layer.kind is LayerKind.RECURRENT:
         return False
-    if layer.kind is LayerKind.EMBEDDING and not settings.get(layer, "include-embeddings"):
+    if layer.kind is LayerKind.EMBEDDING and not limits.include_embeddings:
         return False
     if layer.activation is Activation.SOFTMAX:
         return False
@@ -172,11 +194,10 @@ def _columns(blocks: list[np.ndarray], units: np.ndarray) -> np.ndarray:
 
 
 def _twin_pairs(
-    rows: Rows, layer: Layer, settings: RuleSettings
+    rows: Rows, layer: Layer, limits: TwinUnitsSettings
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     """Twin pairs (i, k, cos) by the activation's rules; searches within conv groups."""
-    threshold = float(settings.get(layer, "cosine"))
-    tolerance = float(settings.get(layer, "norm-tolerance"))
+    cosine, tolerance = limits.cosine, limits.norm_tolerance
     activation = layer.activation
     negative = activation in (Activation.IDENTITY, Activation.TANH)
     norms = rows.norms
@@ -193,10 +214,10 @@ def _twin_pairs(
         extra = None if rows.extra is None else rows.extra[lo:hi]
         a, b, cos, method = similar_pairs(
             Rows(rows.matrix[lo:hi], norms[lo:hi], extra),  # a view of the group's rows
-            threshold,
+            cosine,
             negative,
-            int(settings.get(layer, "exact-limit")),
-            int(settings.get(layer, "seed")),
+            limits.exact_limit,
+            limits.seed,
             usable=valid[lo:hi],
         )
         firsts.append(a + lo)
@@ -323,18 +344,18 @@ def _limited(mapping: dict[int, float], size: int) -> dict[str, float]:
     return {str(k): v for k, v in list(mapping.items())[:size]}
 
 
-def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+def _layer(ctx: AuditContext, limits: TwinUnitsSettings, layer: Layer) -> Iterator[Finding]:
     linked = _consumers_known(ctx, layer)
-    if not linked and not settings.get(layer, "report-unlinked"):
+    if not linked and not limits.report_unlinked:
         return  # nothing could be reported, so the search is not run at all
     rows = _rows(ctx, layer)
     if rows is None:
         return
-    first, second, _, method = _twin_pairs(rows, layer, settings)
+    first, second, _, method = _twin_pairs(rows, layer, limits)
     if first.size == 0:
         return
     blocks = _consumer_blocks(ctx, layer) if linked else None
-    ratio_limit = float(settings.get(layer, "lopsided-ratio"))
+    ratio_limit = limits.lopsided_ratio
     homogeneous = layer.activation.positive_homogeneous
     for members in _components(first, second, layer.units):
         t = _relative_scales(rows, members, homogeneous)
@@ -429,41 +450,34 @@ def _finding(
             f"add s·u_k to unit {group.keep}'s consumer columns (exact for exact twins); "
             "retrain with weight decay if the layer is still training"
         )
-    return Finding(
-        rule=RULE.name,
+    return layer_finding(
+        RULE.name,
+        layer,
         severity=severity,
-        layer=layer.name,
-        tensor=layer.weight,
         units=group.units,
         score=value,
         message=message,
         hint=hint,
         evidence=evidence,
-        part=layer.gate or "",
     )
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
-    """Findings on one layer (the per-layer part of :func:`check`)."""
-    if settings.enabled(layer) and _eligible(layer, settings):
-        yield from _layer(ctx, settings, layer)
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[TwinUnitsSettings], layer: Layer
+) -> Iterator[Finding]:
+    """Findings on one layer."""
+    limits = settings.for_layer(layer)
+    if _eligible(layer, limits):
+        yield from _layer(ctx, limits, layer)
 
 
 RULE = RuleSpec(
     name="twin-units",
     severity=Severity.WARNING,
-    thresholds={
-        "cosine": 0.995,
-        "norm-tolerance": 0.05,
-        "lopsided-ratio": 4.0,
-        "exact-limit": 512,
-        "seed": 0,
-        "include-embeddings": False,
-        "report-unlinked": False,
-    },
+    settings=TwinUnitsSettings,
     summary="two units computing the same function with lopsided or cancelling consumer weights "
     "are one unit paid for twice, a sign the layer was trained without weight decay",
-    check=layered(check_layer),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
+    health=(HealthColumn("twins", distinct_units),),
 )

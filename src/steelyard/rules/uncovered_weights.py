@@ -27,20 +27,28 @@ the policy with a comment saying why.
 from __future__ import annotations
 
 from collections.abc import Iterator
+from dataclasses import dataclass
 
 from steelyard.coverage import coverage_of
 from steelyard.findings import Finding, Severity
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction
 from steelyard.rules.scoring import score
 
 _LISTED = 10
 
 
-def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+@dataclass(frozen=True)
+class UncoveredWeightsSettings:
+    """Thresholds of ``uncovered-weights``."""
+
+    min_share: float = fraction(0.9)
+
+
+def check(
+    ctx: AuditContext, settings: RuleSettings[UncoveredWeightsSettings]
+) -> Iterator[Finding]:
     """Yield one finding when the covered share of parameters is below ``min-share``."""
-    if not settings.enabled(None):
-        return
-    limit = float(settings.get(None, "min-share"))
+    limit = settings.rule_wide.min_share
     coverage = coverage_of(ctx.checkpoint)
     share = coverage.share
     if coverage.covered > 0 and share >= limit:
@@ -84,9 +92,9 @@ def check(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 RULE = RuleSpec(
     name="uncovered-weights",
     severity=Severity.WARNING,
-    thresholds={"min-share": 0.9},
+    settings=UncoveredWeightsSettings,
     summary="weights in no recognised layer were never seen by the layer rules, so a gate "
     "that passes says nothing about them",
-    check=check,
     doc=__doc__ or "",
+    whole=check,
 )

@@ -84,20 +84,40 @@ equilibrium warning, train longer, or declare the λ that was actually used.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source
-from steelyard.graph import Layer, NormKind
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.graph import Layer
+from steelyard.rules.base import (
+    AuditContext,
+    HealthColumn,
+    RuleSettings,
+    RuleSpec,
+    fraction,
+    layer_finding,
+    threshold,
+)
 from steelyard.rules.scoring import score
+from steelyard.stats.folding import fold_scale
 
 _TOP = 10
 _ADAM_EPS = 1e-8
 """ε of Adam/AdamW when the checkpoint does not say (the usual default)."""
+
+
+@dataclass(frozen=True)
+class UnsupportedWeightSettings:
+    """Thresholds of ``unsupported-weight``."""
+
+    weight_quantile: float = fraction(0.99)
+    rms_multiple: float = threshold(3.0)
+    support_quantile: float = fraction(0.05)
+    equilibrium_band: float = threshold(3.0)
+    negligible: float = threshold(0.1)
 
 
 @dataclass(frozen=True)
@@ -110,28 +130,15 @@ class _Penalty:
     source: str
 
 
-def _fold_scale(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
-    """a_j = γ_j/sqrt(var_j+ε) of the batch norm folded into ``layer`` (as in stats)."""
-    norm = layer.norm
-    if norm is None or norm.kind is not NormKind.BATCH or norm.var is None:
-        return None
-    var = ctx.stats.tensor(norm.var)
-    if var is None or var.shape != (layer.units,):
-        return None
-    gamma = ctx.stats.tensor(norm.scale) if norm.scale else None
-    if gamma is None or gamma.shape != (layer.units,):
-        gamma = np.ones(layer.units, np.float32)
-    return np.asarray(gamma, np.float64) / np.sqrt(np.maximum(var.astype(np.float64), 0) + norm.eps)
-
-
 def _unsupported(
-    ctx: AuditContext, settings: RuleSettings, layer: Layer, support: np.ndarray
+    ctx: AuditContext, limits: UnsupportedWeightSettings, layer: Layer, support: np.ndarray
 ) -> Iterator[Finding]:
     folded = ctx.stats.folded(layer)
     weights = np.asarray(folded.matrix, np.float64)
     grads = np.asarray(support, np.float64)
     if folded.folded:
-        scale = _fold_scale(ctx, layer)
+        # In float64, like the rest of this test's arithmetic.
+        scale = fold_scale(layer, ctx.stats.tensor, np.float64)
         if scale is not None:
             with np.errstate(divide="ignore", invalid="ignore"):
                 grads = grads / np.abs(scale)[:, None]
@@ -142,14 +149,11 @@ def _unsupported(
     rms = float(np.sqrt(np.mean(magnitude[finite] ** 2)))
     if not rms > 0:
         return
-    multiple = float(settings.get(layer, "rms-multiple"))
+    multiple = limits.rms_multiple
     weight_limit = max(
-        float(np.quantile(magnitude[finite], float(settings.get(layer, "weight-quantile")))),
-        multiple * rms,
+        float(np.quantile(magnitude[finite], limits.weight_quantile)), multiple * rms
     )
-    support_limit = float(
-        np.quantile(grads[finite], float(settings.get(layer, "support-quantile")))
-    )
+    support_limit = float(np.quantile(grads[finite], limits.support_quantile))
     hit = finite & (magnitude >= weight_limit) & (grads <= support_limit)
     rows, cols = np.nonzero(hit)
     if rows.size == 0:
@@ -162,11 +166,10 @@ def _unsupported(
     largest = float(np.abs(w_hit).max())
     total = float(saliency.sum())
     where = "folded " if folded.folded else ""
-    yield Finding(
-        rule=RULE.name,
+    yield layer_finding(
+        RULE.name,
+        layer,
         severity=Severity.WARNING,
-        layer=layer.name,
-        tensor=layer.weight,
         units=units,
         score=score(len(units) / layer.units, largest / (multiple * rms)),
         message=(
@@ -196,7 +199,6 @@ def _unsupported(
             "rms": rms,
             "folded": folded.folded,
         },
-        part=layer.gate or "",
     )
 
 
@@ -247,7 +249,7 @@ def _support_reason(source: GradientSource, layer: Layer) -> str | None:
 
 def _equilibrium(
     ctx: AuditContext,
-    settings: RuleSettings,
+    limits: UnsupportedWeightSettings,
     layer: Layer,
     support: np.ndarray,
     source: GradientSource,
@@ -271,7 +273,7 @@ def _equilibrium(
         return
     rms = float(np.sqrt(np.mean(magnitude[finite] ** 2)))
     counted = (
-        finite & (magnitude > 0) & (magnitude >= float(settings.get(layer, "negligible")) * rms)
+        finite & (magnitude > 0) & (magnitude >= limits.negligible * rms)
     )
     if not counted.any():
         return
@@ -280,7 +282,7 @@ def _equilibrium(
         ratios = np.where(grads[counted] > 0, pull / grads[counted], np.inf)
     ratio = float(np.median(ratios))
     q25, q75 = (float(q) for q in np.quantile(ratios, [0.25, 0.75]))
-    band = float(settings.get(layer, "equilibrium-band"))
+    band = limits.equilibrium_band
     inside = 1.0 / band <= ratio <= band
     lam_eff = float(np.median(lam[counted]))
     shown = f"{ratio:.3g}" if np.isfinite(ratio) else "infinite"
@@ -296,12 +298,10 @@ def _equilibrium(
     else:
         hint = "the data gradient outweighs the penalty: train longer, or declare the larger λ that was used"
     excess = max(ratio, 1.0 / ratio) / band if ratio > 0 else float("inf")
-    yield Finding(
-        rule=RULE.name,
+    yield layer_finding(
+        RULE.name,
+        layer,
         severity=Severity.INFO if inside else Severity.WARNING,
-        layer=layer.name,
-        tensor=layer.weight,
-        units=(),
         score=0.0 if inside else score(int(counted.sum()) / weights.size, excess),
         message=message,
         hint=hint,
@@ -316,7 +316,6 @@ def _equilibrium(
             "weights": int(counted.sum()),
             "band": band,
         },
-        part=layer.gate or "",
     )
 
 
@@ -331,10 +330,10 @@ def _not_run(source: GradientSource | None) -> str:
     )
 
 
-def _support(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> np.ndarray | None:
-    """The layer's gradient support when the rule runs on it, else None."""
+def _support(ctx: AuditContext, layer: Layer) -> np.ndarray | None:
+    """The layer's gradient support when there is one of the weight's shape, else None."""
     source = ctx.gradients
-    if source is None or not settings.enabled(layer):
+    if source is None:
         return None
     support = source.support(layer)
     if support is None or support.shape != (layer.units, layer.fan_in):
@@ -342,40 +341,55 @@ def _support(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> np.ndar
     return support
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
+class _Supported:
+    """Whether any layer the rule ran on had gradient support (set from worker threads; a
+    flag only ever set to True needs no lock)."""
+
+    def __init__(self) -> None:
+        self.any = False
+
+
+def _supported(ctx: AuditContext) -> _Supported:
+    return ctx.stats.shared(f"{RULE.name}:supported", _Supported)
+
+
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[UnsupportedWeightSettings], layer: Layer
+) -> Iterator[Finding]:
     """Yield one layer's unsupported large weights and equilibrium ratio."""
-    support = _support(ctx, settings, layer)
+    support = _support(ctx, layer)
     if support is None or ctx.gradients is None:
         return
-    yield from _unsupported(ctx, settings, layer, support)
-    yield from _equilibrium(ctx, settings, layer, support, ctx.gradients)
+    _supported(ctx).any = True
+    limits = settings.for_layer(layer)
+    yield from _unsupported(ctx, limits, layer, support)
+    yield from _equilibrium(ctx, limits, layer, support, ctx.gradients)
 
 
-def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+def finish(
+    ctx: AuditContext, settings: RuleSettings[UnsupportedWeightSettings]
+) -> Iterator[Finding]:
     """The one note when no layer had gradient support (a note, not a finding)."""
-    source = ctx.gradients
-    if source is not None and any(
-        _support(ctx, settings, layer) is not None for layer in ctx.checkpoint.layers
-    ):
+    if ctx.gradients is not None and _supported(ctx).any:
         return
-    ctx.notes.add(RULE.name, _not_run(source))
+    ctx.notes.add(RULE.name, _not_run(ctx.gradients))
     yield from ()
+
+
+def flagged_share(layer: Layer, findings: Sequence[Finding]) -> float:
+    """Share of the layer's weights the rule flagged unsupported (a health column)."""
+    flagged = sum(int(f.evidence["flagged"]) for f in findings if "flagged" in f.evidence)
+    return flagged / max(1, layer.units * layer.fan_in)
 
 
 RULE = RuleSpec(
     name="unsupported-weight",
     severity=Severity.WARNING,
-    thresholds={
-        "weight-quantile": 0.99,
-        "rms-multiple": 3.0,
-        "support-quantile": 0.05,
-        "equilibrium-band": 3.0,
-        "negligible": 0.1,
-    },
+    settings=UnsupportedWeightSettings,
     summary="a large weight the loss barely pulls on was not put there by the data, yet still "
     "multiplies its input at inference",
-    check=layered(check_layer, finish),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
     finish=finish,
+    health=(HealthColumn("unsupported_share", flagged_share, needs_gradients=True),),
 )

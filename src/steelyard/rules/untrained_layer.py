@@ -163,7 +163,7 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
 from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layered
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
 _SQRT2 = math.sqrt(2.0)
@@ -397,6 +397,25 @@ class _Tested:
     """The finding to report if the layer's equivalence survives Holm's procedure."""
 
 
+@dataclass(frozen=True)
+class UntrainedLayerSettings:
+    """Thresholds of ``untrained-layer``."""
+
+    ks: float | None = threshold(None)
+    ks_floor: float = threshold(0.02)
+    ks_margin: float = threshold(0.1)
+    alpha: float = threshold(0.001)
+    scale_z: float = threshold(3.29)
+    scale_floor: float = threshold(0.05)
+    row_spread: float = threshold(10.0)
+    edge_fluctuations: float = threshold(4.0)
+    sample: int = threshold(20000)
+    min_weights: int = threshold(256)
+    min_dim: int = threshold(8)
+    seed: int = threshold(0)
+    include_embeddings: bool = threshold(True)
+
+
 class _Records:
     """Per-audit store of :class:`_Tested`, filled by the per-layer hook from any thread."""
 
@@ -409,28 +428,21 @@ def _records(ctx: AuditContext) -> _Records:
     return ctx.stats.shared(f"{RULE.name}:records", _Records)
 
 
-def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> _Tested | None:
+def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _Tested | None:
     m, n = layer.units, layer.fan_in
-    if m * n < int(settings.get(layer, "min-weights")) or min(m, n) < int(
-        settings.get(layer, "min-dim")
-    ):
+    if m * n < limits.min_weights or min(m, n) < limits.min_dim:
         return None
     norms = ctx.stats.row_norms(layer)
     if not np.all(np.isfinite(norms)):
         return None  # nonfinite's business (a NaN or infinity makes its row norm so)
-    seed = zlib.crc32(layer.name.encode("utf-8")) ^ int(settings.get(layer, "seed"))
-    sample = ctx.stats.sample(layer, int(settings.get(layer, "sample")), seed)
+    seed = zlib.crc32(layer.name.encode("utf-8")) ^ limits.seed
+    sample = ctx.stats.sample(layer, limits.sample, seed)
     if sample[0] == sample[-1]:
         return None
     found = candidates(layer, _gates(ctx, layer))
     nothing = _Tested(len(found), 1.0, None)
-    chosen = settings.get(layer, "ks")
-    limit = (
-        float(chosen)
-        if chosen is not None
-        else ks_limit(sample.size, float(settings.get(layer, "ks-floor")))
-    )
-    margin = float(settings.get(layer, "ks-margin"))
+    limit = limits.ks if limits.ks is not None else ks_limit(sample.size, limits.ks_floor)
+    margin = limits.ks_margin
     # A lower bound on every candidate's D from 257 order statistics rules most layers out
     # at about 1 % of the cost.
     probe = np.unique(np.linspace(0, sample.size - 1, _PROBES).astype(np.int64))
@@ -451,19 +463,17 @@ def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> _Tested |
     # The KS distance barely sees a wrong scale in small samples; the mean square does.
     z = scale_z(sample, best)
     relative = abs(z) * math.sqrt((best.kurtosis - 1.0) / sample.size)
-    if abs(z) > float(settings.get(layer, "scale-z")) and relative > float(
-        settings.get(layer, "scale-floor")
-    ):
+    if abs(z) > limits.scale_z and relative > limits.scale_floor:
         return nothing
     spread: float | None = None
-    spread_max = spread_limit(m, float(settings.get(layer, "row-spread")))
+    spread_max = spread_limit(m, limits.row_spread)
     if m >= SPREAD_ROWS:
         spread = row_spread(norms**2, n, best.kurtosis)
         if spread > spread_max:
             return nothing  # the units' norms differ as only training makes them
     edge = mp_edge(best.std, m, n)
     fluctuation = edge_fluctuation(best.std, m, n)
-    allowed = float(settings.get(layer, "edge-fluctuations"))
+    allowed = limits.edge_fluctuations
     # Only a layer that matched an initializer is read whole, for its spectrum.
     top, method = top_singular_value(
         ctx.stats.matrix(layer), seed, tolerance=0.05 * fluctuation, stop_above=edge + allowed * fluctuation
@@ -496,12 +506,10 @@ def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> _Tested |
         evidence["row_spread_limit"] = round(spread_max, 4)
     if runner_up is not None:
         evidence["runner_up"] = {"initializer": runner_up[1].name, "ks": round(runner_up[0], 6)}
-    finding = Finding(
-        rule=RULE.name,
+    finding = layer_finding(
+        RULE.name,
+        layer,
         severity=severity,
-        layer=layer.name,
-        tensor=layer.weight,
-        units=(),
         score=score(1.0, limit / max(distance, 1e-9)),
         message=(
             f"the weights look freshly initialised: their distribution matches {best.name} "
@@ -517,19 +525,18 @@ def _layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> _Tested |
         hint="check that the checkpoint was really loaded into this layer (matching keys, strict "
         "loading), that the layer is not frozen and that the optimizer received its parameters",
         evidence=evidence,
-        part=layer.gate or "",
     )
     return _Tested(len(found), p_value, finding)
 
 
-def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iterator[Finding]:
-    """Test one layer and keep the result for :func:`finish` (the per-layer part of
-    :func:`check`); it yields nothing itself, because whether a match is significant depends
-    on how many layers were tested."""
-    if settings.enabled(layer) and (
-        layer.kind is not LayerKind.EMBEDDING or settings.get(layer, "include-embeddings")
-    ):
-        tested = _layer(ctx, settings, layer)
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[UntrainedLayerSettings], layer: Layer
+) -> Iterator[Finding]:
+    """Test one layer and keep the result for :func:`finish`; it yields nothing itself,
+    because whether a match is significant depends on how many layers were tested."""
+    limits = settings.for_layer(layer)
+    if layer.kind is not LayerKind.EMBEDDING or limits.include_embeddings:
+        tested = _layer(ctx, limits, layer)
         if tested is not None:
             records = _records(ctx)
             with records.lock:
@@ -537,7 +544,9 @@ def check_layer(ctx: AuditContext, settings: RuleSettings, layer: Layer) -> Iter
     yield from ()
 
 
-def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
+def finish(
+    ctx: AuditContext, settings: RuleSettings[UntrainedLayerSettings]
+) -> Iterator[Finding]:
     """Holm's procedure over every tested layer; findings for the layers it confirms."""
     records = _records(ctx)
     with records.lock:
@@ -546,7 +555,7 @@ def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
             for layer in ctx.checkpoint.layers
             if layer.name in records.by_layer
         ]
-    alpha = float(settings.get(None, "alpha"))
+    alpha = settings.rule_wide.alpha
     confirmed = holm([t.p_value for _, t in tested], alpha)
     for (layer, result), significant in zip(tested, confirmed, strict=True):
         if result.finding is None:
@@ -568,25 +577,10 @@ def finish(ctx: AuditContext, settings: RuleSettings) -> Iterator[Finding]:
 RULE = RuleSpec(
     name="untrained-layer",
     severity=Severity.WARNING,
-    thresholds={
-        "ks": None,
-        "ks-floor": 0.02,
-        "ks-margin": 0.1,
-        "alpha": 0.001,
-        "scale-z": 3.29,
-        "scale-floor": 0.05,
-        "row-spread": 10.0,
-        "edge-fluctuations": 4.0,
-        "sample": 20000,
-        "min-weights": 256,
-        "min-dim": 8,
-        "seed": 0,
-        "include-embeddings": True,
-    },
+    settings=UntrainedLayerSettings,
     summary="a layer whose weights are still an initializer's random draw computes nothing learned, "
     "usually because the checkpoint was never loaded into it",
-    check=layered(check_layer, finish),
     doc=__doc__ or "",
-    layer_check=check_layer,
+    per_layer=check_layer,
     finish=finish,
 )

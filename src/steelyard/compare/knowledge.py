@@ -40,6 +40,7 @@ import numpy as np
 
 from steelyard.compare.matching import Pair, signature
 from steelyard.graph import Activation, Checkpoint, Layer, LayerKind, Link, Norm, TensorRole
+from steelyard.stats import read_float32
 
 #: How much a layer's ``linked_by`` says: a graph or config states the structure, names only
 #: suggest it, none knows nothing.
@@ -154,13 +155,13 @@ def _carried_norm(
         if same is not None and same.shape == source.shape:
             mapped[part] = name
             continue
-        values = source.read_float32()
+        values = read_float32(source)
         hits = [
             other
             for other, tensor in free.items()
             if tensor.shape == source.shape
             and other not in mapped.values()
-            and np.array_equal(tensor.read_float32(), values)
+            and np.array_equal(read_float32(tensor), values)
         ]
         if len(hits) != 1:
             return None

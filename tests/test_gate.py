@@ -241,7 +241,9 @@ def test_links_in_a_folder_are_listed_not_followed(tmp_path: Path, rng: np.rando
     (folder / "link.safetensors").symlink_to(outside)
     plan = api.plan([folder])
     assert plan.targets == [folder / "inside.safetensors"]
-    assert [(Path(s.path).name, s.reason) for s in plan.skipped] == [("link.safetensors", "symbolic link, not followed")]
+    assert [(Path(s.path).name, s.reason) for s in plan.skipped] == [
+        ("link.safetensors", "symbolic link to a file outside the folder, not followed")
+    ]
 
 
 def test_a_folder_with_nothing_to_audit_is_an_input_error(tmp_path: Path) -> None:

@@ -12,11 +12,14 @@ import os
 import struct
 import zipfile
 from collections.abc import Callable, Sequence
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import replace
 from pathlib import Path
 
 from steelyard import __version__, discovery
+from steelyard import budget as _budget
 from steelyard.audit import audit_checkpoint, default_jobs
+from steelyard.budget import Budget
 from steelyard.compare.report import CompareReport
 from steelyard.discovery import Plan
 from steelyard.errors import LoadError, SteelyardError
@@ -28,9 +31,19 @@ from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
 
 
-def load(path: str | Path) -> Checkpoint:
-    """Read a checkpoint's structure; tensors stay on disk until something reads them."""
-    return _load(path)
+def _limits(budget: Budget | None, policy: Policy | None = None) -> AbstractContextManager[object]:
+    """Run under ``budget``, else the policy's ``[budget]``, else the budget in force."""
+    chosen = budget if budget is not None else (policy.budget if policy is not None else None)
+    return _budget.using(chosen) if chosen is not None else nullcontext()
+
+
+def load(path: str | Path, budget: Budget | None = None) -> Checkpoint:
+    """Read a checkpoint's structure; tensors stay on disk until something reads them.
+
+    ``budget`` limits what reading may cost (default: the budget in force, see
+    :mod:`steelyard.budget`)."""
+    with _limits(budget):
+        return _load(path)
 
 
 def now() -> str:
@@ -68,11 +81,13 @@ def audit_one(
     grads: str | Path | Checkpoint | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
+    budget: Budget | None = None,
 ) -> CheckpointAudit:
     """Load and audit one checkpoint (``jobs`` threads, default: the machine's cores)."""
-    checkpoint = _load(path)
-    source = gradient_source(checkpoint, grads, grads_kind)
-    return _audited(checkpoint, policy, source, _jobs(jobs))
+    with _limits(budget, policy):
+        checkpoint = _load(path)
+        source = gradient_source(checkpoint, grads, grads_kind)
+        return _audited(checkpoint, policy, source, _jobs(jobs))
 
 
 def plan(paths: Sequence[str | Path], grads: str | Path | None = None) -> Plan:
@@ -108,6 +123,7 @@ def audit_many(
     on_checkpoint: Callable[[str], None] | None = None,
     jobs: int | None = None,
     unreadable_fails_gate: bool = False,
+    budget: Budget | None = None,
 ) -> Report:
     """Audit several checkpoints (files, shard indexes, folders) under one gate.
 
@@ -115,9 +131,26 @@ def audit_many(
     cannot be read; one broken file never ends the run. ``jobs`` is the number of worker
     threads per checkpoint (default: the machine's cores); the report is the same for every
     value. A ``grads`` sidecar gives support to the checkpoints whose layers it matches; one
-    that matches no checkpoint of the run is an input error.
+    that matches no checkpoint of the run is an input error. Reading runs under ``budget``
+    (else the policy's ``[budget]`` table, else the budget in force).
     """
     chosen = policy or Policy()
+    with _limits(budget, chosen):
+        return _audit_many(
+            paths, chosen, grads, grads_kind, created, on_checkpoint, jobs, unreadable_fails_gate
+        )
+
+
+def _audit_many(
+    paths: Sequence[str | Path] | Plan,
+    chosen: Policy,
+    grads: str | Path | None,
+    grads_kind: GradsKind,
+    created: str | None,
+    on_checkpoint: Callable[[str], None] | None,
+    jobs: int | None,
+    unreadable_fails_gate: bool,
+) -> Report:
     run = paths if isinstance(paths, Plan) else plan(paths, grads)
     workers = _jobs(jobs)
     sidecar = _load(grads) if grads is not None else None
@@ -197,6 +230,15 @@ def _audited(
         raise LoadError(
             checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})"
         ) from exc
+    except (MemoryError, RecursionError) as exc:
+        # A checkpoint too large or too deeply nested for a reader without an explicit check:
+        # this checkpoint's own input error (the run goes on), never a crash.
+        raise LoadError(checkpoint.path, _exhausted(exc)) from exc
+
+
+def _exhausted(exc: BaseException) -> str:
+    problem = "too large" if isinstance(exc, MemoryError) else "too deeply nested"
+    return f"is {problem} to read within this process's limits ({type(exc).__name__})"
 
 
 def _run_notes(run: Plan) -> list[str]:
@@ -215,13 +257,17 @@ def audit(
     policy: Policy | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
+    budget: Budget | None = None,
 ) -> Report:
     """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document.
 
     A file that cannot be read raises :class:`~steelyard.errors.LoadError`; a folder is
-    audited as :func:`audit_many` does, each checkpoint with its own result.
+    audited as :func:`audit_many` does, each checkpoint with its own result. ``budget``
+    limits what reading may cost (see :mod:`steelyard.budget`).
     """
-    report = audit_many([path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs)
+    report = audit_many(
+        [path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs, budget=budget
+    )
     if report.errors and not report.audits and not Path(path).is_dir():
         error = report.errors[0]
         raise LoadError(error.path, error.reason)
@@ -233,21 +279,25 @@ def compare(
     new: str | Path,
     policy: Policy | None = None,
     created: str | None = None,
+    budget: Budget | None = None,
 ) -> CompareReport:
     """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
-    ``steelyard.compare/1`` document."""
+    ``steelyard.compare/1`` document. ``budget`` limits what reading may cost."""
     from steelyard.compare import compare_checkpoints
 
     chosen = policy or Policy()
-    before = _load(old)
-    after = _load(new)
-    try:
-        comparison = compare_checkpoints(before, after, chosen)
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error) as exc:
-        # Tensors are read lazily, so a file can turn out broken only when it is compared.
-        raise LoadError(
-            f"{before.path} or {after.path}", f"could not be read ({type(exc).__name__}: {exc})"
-        ) from exc
+    with _limits(budget, chosen):
+        before = _load(old)
+        after = _load(new)
+        try:
+            comparison = compare_checkpoints(before, after, chosen)
+        except _READ_ERRORS as exc:
+            # Tensors are read lazily, so a file can turn out broken only when it is compared.
+            raise LoadError(
+                f"{before.path} or {after.path}", f"could not be read ({type(exc).__name__}: {exc})"
+            ) from exc
+        except (MemoryError, RecursionError) as exc:
+            raise LoadError(f"{before.path} or {after.path}", _exhausted(exc)) from exc
     return CompareReport(
         tool_version=__version__,
         created=created or now(),

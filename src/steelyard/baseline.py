@@ -93,7 +93,8 @@ def _findings_with_checkpoint(document: dict[str, Any], path: str) -> list[tuple
         if not isinstance(audits, list):
             raise BaselineError(f"{path}: baseline has no 'audits' list")
     else:
-        raise BaselineError(f"{path}: not a steelyard baseline or JSON report (schema {schema!r})")
+        named = schema[:80] if isinstance(schema, str) else type(schema).__name__
+        raise BaselineError(f"{path}: not a steelyard baseline or JSON report (schema {named!r})")
     pairs: list[tuple[Any, Any]] = []
     for audit in audits:
         block = audit.get("checkpoint") if isinstance(audit, dict) else None
@@ -122,22 +123,56 @@ def _entries_of(document: Any, path: str) -> dict[tuple[str, str], dict[str, Any
                 f"{path}: finding {index} names no checkpoint; write the baseline again "
                 "with --write-baseline"
             )
-        entries[(checkpoint_key(where), item["id"])] = {"checkpoint": where} | {
-            k: item.get(k) for k in ("rule", "layer", "tensor", "units")
-        }
+        entries[(checkpoint_key(where), item["id"])] = {"checkpoint": where} | _fields(
+            item, index, path
+        )
     return entries
 
 
+#: Most units one baseline entry may list (a layer's units are bounded by the unit budget;
+#: a baseline is a list of findings, not a dump of them).
+_MAX_UNITS = 2**20
+
+
+def _fields(item: dict[str, Any], index: int, path: str) -> dict[str, Any]:
+    """The kept fields of a finding, with their types checked: they are shown again in
+    reports (the ``fixed`` list), so a wrong type or a deeply nested value must be refused
+    here, with one line, rather than break a renderer later."""
+    kept: dict[str, Any] = {"rule": item["rule"]}
+    for key in ("layer", "tensor"):
+        value = item.get(key)
+        if value is not None and not isinstance(value, str):
+            raise BaselineError(
+                f"{path}: finding {index} has a {key!r} that is not a string or null"
+            )
+        kept[key] = value
+    units = item.get("units", [])
+    if units is None:
+        units = []
+    if (
+        not isinstance(units, list)
+        or len(units) > _MAX_UNITS
+        or not all(isinstance(u, int) and not isinstance(u, bool) and u >= 0 for u in units)
+    ):
+        raise BaselineError(
+            f"{path}: finding {index} has 'units' that are not a list of unit numbers"
+        )
+    kept["units"] = units
+    return kept
+
+
 def read_baseline(path: Path) -> Baseline:
-    """Read and validate a baseline file."""
+    """Read and validate a baseline file (a side file: only a regular file of at most 64 MB
+    is read, opened so that a FIFO cannot block and a device is refused)."""
+    from steelyard.safepath import read_side_file
+
+    raw = read_side_file(path, "baseline", _MAX_BYTES, error=BaselineError)
     try:
-        if path.stat().st_size > _MAX_BYTES:
-            raise BaselineError(f"{path}: baseline is larger than 64 MB")
-        document = json.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise BaselineError(f"{path}: baseline file does not exist") from None
-    except (OSError, UnicodeDecodeError, ValueError, RecursionError) as exc:
+        document = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as exc:
         raise BaselineError(f"{path}: baseline is not valid JSON ({exc})") from None
+    except (RecursionError, MemoryError):
+        raise BaselineError(f"{path}: baseline is nested too deeply to be a baseline") from None
     return Baseline(path=str(path), entries=_entries_of(document, str(path)))
 
 

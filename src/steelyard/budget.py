@@ -17,6 +17,7 @@ large one.
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 from collections.abc import Iterator
@@ -92,8 +93,8 @@ def _number(key: str, raw: object, kind: type[int] | type[float]) -> int | float
         value = float(lowered) * factor
     except ValueError:
         raise PolicyError(f"budget {key} = {raw!r} is not a number") from None
-    if value != value:  # NaN
-        raise PolicyError(f"budget {key} is not a number")
+    if not math.isfinite(value):  # NaN, inf, 1e400
+        raise PolicyError(f"budget {key} = {raw!r} is not a finite number")
     return int(value) if kind is int else value
 
 

@@ -1,7 +1,10 @@
 """The command line: parses, calls :mod:`steelyard.api`, writes, and picks the exit code.
 
-Exit codes: 0 the gate passed, 1 findings at or above ``--fail-on``, 2 bad input or usage.
-Reports go to stdout or ``--output``; progress and diagnostics go to stderr.
+Exit codes: 0 the gate passed, 1 findings at or above ``--fail-on`` (only that), 2 bad input
+or usage (every input error, including running out of memory or nesting depth while reading),
+3 an internal error of steelyard (one line; ``--debug`` shows the traceback).
+Reports go to stdout or ``--output``; progress and diagnostics go to stderr. Every name from a
+file that reaches stderr passes through :func:`steelyard.text_safety.shown`.
 """
 
 from __future__ import annotations
@@ -10,20 +13,25 @@ import difflib
 import json
 import os
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, NoReturn
 
+import click
 import typer
 from typing_extensions import assert_never
 
 from steelyard import __version__, api
+from steelyard.budget import Budget
 from steelyard.compare.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers
 from steelyard.report import Report
+from steelyard.text_safety import shown
 
 if TYPE_CHECKING:
     from steelyard.policy import Policy
@@ -35,7 +43,10 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
-_STATE = {"debug": False}
+_STATE: dict[str, object] = {"debug": False, "reading": None}
+
+#: Exit code of an internal error (a bug in steelyard, never a verdict on the input).
+EXIT_INTERNAL = 3
 
 
 class LayersFormat(str, Enum):
@@ -92,6 +103,15 @@ _PolicyOption = Annotated[
 _QuietOption = Annotated[
     bool, typer.Option("--quiet", "-q", help="No progress or diagnostics on stderr.")
 ]
+_BudgetOption = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--budget",
+        help="Raise or lower a resource budget, KEY=VALUE (repeatable): expansion-bytes, "
+        "checkpoint-expansion-bytes, tensor-elements, layer-units, load-seconds; sizes accept "
+        "512M, 2G. Overrides the policy's [budget] table.",
+    ),
+]
 
 
 def _color(stream: object = None) -> bool:
@@ -106,11 +126,74 @@ def _width() -> int:
         return 120
 
 
+def _say(line: str) -> None:
+    """One diagnostic line on stderr, with names from files escaped (a newline in a file name
+    never splits it, an escape sequence never reaches the terminal)."""
+    typer.echo(shown(line), err=True)
+
+
 def _fail(error: SteelyardError) -> NoReturn:
     if _STATE["debug"]:
         raise error
-    typer.echo(f"steelyard: error: {error}", err=True)
+    _say(f"steelyard: error: {error}")
     raise typer.Exit(2)
+
+
+def _reading(what: object) -> None:
+    """Remember what is being read, for the one line a MemoryError or RecursionError gets."""
+    _STATE["reading"] = str(what)
+
+
+@contextmanager
+def _guarded() -> Iterator[None]:
+    """Every failure of a command becomes one stderr line and its exit code.
+
+    SteelyardError (bad input or usage) exits 2. MemoryError and RecursionError come from
+    inputs too large or too deeply nested for a reader that had no explicit check: exit 2,
+    naming what was being read. Any other exception is a bug in steelyard: exit 3 with an
+    invitation to rerun with --debug, so CI never mistakes a crash for a failed gate (exit 1).
+    """
+    _STATE["reading"] = None
+    try:
+        yield
+    except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException):
+        raise
+    except SteelyardError as error:
+        _fail(error)
+    except (MemoryError, RecursionError) as exc:
+        if _STATE["debug"]:
+            raise
+        what = _STATE["reading"]
+        problem = "too large" if isinstance(exc, MemoryError) else "too deeply nested"
+        where = f"{what}: " if what else ""
+        _say(
+            f"steelyard: error: {where}input is {problem} to read within this process's limits "
+            f"({type(exc).__name__})"
+        )
+        raise typer.Exit(2) from None
+    except Exception as exc:
+        if _STATE["debug"]:
+            raise
+        what = _STATE["reading"]
+        where = f" while reading {what}" if what else ""
+        _say(
+            f"steelyard: internal error{where}: {type(exc).__name__}: {exc}; this is a bug in "
+            "steelyard, not a verdict on the input: rerun with --debug for the traceback and "
+            "report it"
+        )
+        raise typer.Exit(EXIT_INTERNAL) from None
+
+
+def _budget(policy: Policy | None, pairs: list[str] | None) -> Budget:
+    """The budget in force: defaults, then the policy's [budget] table, then --budget."""
+    chosen = policy.budget if policy is not None and policy.budget is not None else Budget()
+    overrides: dict[str, object] = {}
+    for pair in pairs or ():
+        key, sep, value = pair.partition("=")
+        if not sep or not key.strip() or not value.strip():
+            raise SteelyardError(f"--budget {pair!r}: expected KEY=VALUE, e.g. expansion-bytes=1G")
+        overrides[key.strip()] = value.strip()
+    return chosen.with_overrides(overrides) if overrides else chosen
 
 
 def _version(value: bool) -> None:
@@ -134,11 +217,20 @@ def _root(
 def _write(text: str, output: Path | None) -> None:
     """Write to stdout, or atomically to ``output`` (a reader never sees half a report)."""
     if output is None:
-        sys.stdout.write(text)
+        # surrogateescape: a file name that is not valid UTF-8 is written back as its own
+        # bytes (exact, as JSON promises) instead of crashing the write.
+        data = text.encode("utf-8", errors="surrogateescape")
+        buffer = getattr(sys.stdout, "buffer", None)
+        if buffer is None:  # a replaced stdout (tests) takes text
+            sys.stdout.write(data.decode("utf-8", errors="replace"))
+            return
+        sys.stdout.flush()
+        buffer.write(data)
+        buffer.flush()
         return
     temporary = output.with_name(f".{output.name}.tmp{os.getpid()}")
     try:
-        temporary.write_text(text, encoding="utf-8")
+        temporary.write_text(text, encoding="utf-8", errors="surrogateescape")
         os.replace(temporary, output)
     except OSError as exc:
         temporary.unlink(missing_ok=True)
@@ -149,7 +241,7 @@ def _write_report(text: str, output: Path | None, quiet: bool) -> None:
     """Write a report; when it went to a file, say so on stderr unless ``quiet``."""
     _write(text, output)
     if not quiet and output is not None:
-        typer.echo(f"steelyard: wrote {output}", err=True)
+        _say(f"steelyard: wrote {output}")
 
 
 def _policy(policy_file: Path | None, fail_on: FailOn | None) -> Policy:
@@ -158,7 +250,9 @@ def _policy(policy_file: Path | None, fail_on: FailOn | None) -> Policy:
 
     from steelyard.policy_file import load_policy
 
+    _reading(policy_file or "the policy file")
     policy = load_policy(policy_file)
+    _STATE["reading"] = None
     return policy if fail_on is None else replace(policy, fail_on=fail_on.value)
 
 
@@ -168,19 +262,21 @@ def layers(
     format: LayersFormat = typer.Option(
         LayersFormat.table, "--format", "-f", help="Output format."
     ),
+    policy_file: _PolicyOption = None,
+    budget: _BudgetOption = None,
 ) -> None:
     """Show the layer graph steelyard reads from a checkpoint."""
-    try:
-        checkpoint = api.load(path)
+    with _guarded():
+        limits = _budget(_policy(policy_file, None), budget)
+        _reading(path)
+        checkpoint = api.load(path, budget=limits)
         if format is LayersFormat.json:
             text = json.dumps(layers_document(checkpoint), indent=2) + "\n"
         elif format is LayersFormat.table:
             text = render_layers(checkpoint, color=_color(), width=_width())
         else:
             assert_never(format)
-    except SteelyardError as error:
-        _fail(error)
-    sys.stdout.write(text)
+        _write(text, None)
 
 
 def _render(report: Report, chosen: AuditFormat) -> str:
@@ -238,25 +334,36 @@ def audit(
         help="Worker threads per checkpoint [default: the machine's cores]; the report is "
         "the same for every value.",
     ),
+    budget: _BudgetOption = None,
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
     from steelyard.baseline import apply_baseline, baseline_text, read_baseline
     from steelyard.progress import Progress
 
-    try:
+    with _guarded():
         policy = _policy(policy_file, fail_on)
+        limits = _budget(policy, budget)
+        _reading(baseline)
         accepted = read_baseline(baseline) if baseline is not None else None
+        _reading(paths[0] if len(paths) == 1 else "the checkpoints named")
         run = api.plan(paths, grads)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(run.targets)) as progress:
+
+            def advance(path: str) -> None:
+                _reading(path)
+                progress.advance(shown(path))
+
             report = api.audit_many(
                 run,
                 policy=policy,
                 grads=grads,
                 grads_kind=grads_kind,
-                on_checkpoint=progress.advance,
+                on_checkpoint=advance,
                 jobs=jobs,
                 unreadable_fails_gate=unreadable is Unreadable.gate_failure,
+                budget=limits,
             )
+        _STATE["reading"] = None
         if len(paths) == 1 and not paths[0].is_dir() and report.errors and not report.audits:
             # One named file that cannot be read: the one-line contract, no report.
             error = report.errors[0]
@@ -266,10 +373,8 @@ def audit(
         if write_baseline is not None:
             _write(baseline_text(report.audits, __version__), write_baseline)
         _write_report(_render(report, format or AuditFormat.table), output, quiet)
-    except SteelyardError as error:
-        _fail(error)
     for problem in report.errors:
-        typer.echo(f"steelyard: error: {problem.line}", err=True)
+        _say(f"steelyard: error: {problem.line}")
     raise typer.Exit(report.exit_code)
 
 
@@ -316,18 +421,20 @@ def compare(
     fail_on: _FailOnOption = None,
     policy_file: _PolicyOption = None,
     quiet: _QuietOption = False,
+    budget: _BudgetOption = None,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
     from steelyard.progress import Progress
 
-    try:
+    with _guarded():
         policy = _policy(policy_file, fail_on)
+        limits = _budget(policy, budget)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
-            progress.advance(f"{old} → {new}")
-            report = api.compare(old, new, policy=policy)
+            progress.advance(shown(f"{old} → {new}"))
+            _reading(f"{old} or {new}")
+            report = api.compare(old, new, policy=policy, budget=limits)
+        _STATE["reading"] = None
         _write_report(_render_compare(report, format or CompareFormat.table), output, quiet)
-    except SteelyardError as error:
-        _fail(error)
     raise typer.Exit(0 if report.passed else 1)
 
 
@@ -347,7 +454,7 @@ def rules(
     if name not in specs:
         close = difflib.get_close_matches(name, list(specs), n=1)
         hint = f"; did you mean {close[0]!r}?" if close else ""
-        typer.echo(f"steelyard: error: no rule named {name!r}{hint}", err=True)
+        _say(f"steelyard: error: no rule named {name!r}{hint}")
         raise typer.Exit(2)
     sys.stdout.write(render_rule(specs[name]))
 
@@ -366,7 +473,7 @@ def policy(
     """Write a starter policy, or show the one in force."""
     from steelyard.policy_file import POLICY_FILE, load_policy, policy_text, starter_text
 
-    try:
+    with _guarded():
         if init == show:
             raise SteelyardError("say --init or --show")
         if init:
@@ -374,11 +481,10 @@ def policy(
             if target.exists() and not force:
                 raise SteelyardError(f"{target}: already exists (use --force to overwrite)")
             _write(starter_text(), target)
-            typer.echo(f"steelyard: wrote {target}", err=True)
+            _say(f"steelyard: wrote {target}")
             return
-        sys.stdout.write(policy_text(load_policy(policy_file)))
-    except SteelyardError as error:
-        _fail(error)
+        _reading(policy_file or "the policy file")
+        _write(policy_text(load_policy(policy_file)), None)
 
 
 def main() -> None:

@@ -5,9 +5,11 @@ whose only weight files form one model. Otherwise every checkpoint inside it, re
 audited, and every weight file that is not is listed with the reason, so that nothing is
 skipped without a line saying so. The rules are documented in ``docs/ci.md``.
 
-Discovery never follows a symbolic link and never reads outside the folders it is given;
-it reads only the first bytes of candidate files (to tell a checkpoint by its content) and
-the shard indexes.
+Discovery never follows a symbolic link and never reads outside the folders it is given:
+every file found in a folder passes :func:`steelyard.safepath.entry_problem` (a regular file,
+no link, no FIFO, socket or device) before anything opens it, and each one refused is listed
+as skipped with the reason. It reads only the first bytes of candidate files (to tell a
+checkpoint by its content) and the shard indexes.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from steelyard.errors import LoadError
 from steelyard.loaders import sniff_format
 from steelyard.loaders.base import parse_json
 from steelyard.report import InputError, Skipped
+from steelyard.safepath import entry_problem, read_side_file
 
 #: File endings of the checkpoint formats steelyard reads (content decides the loader).
 WEIGHT_SUFFIXES = frozenset(
@@ -88,7 +91,7 @@ def plan(paths: Sequence[str | Path], exclude: Sequence[str | Path] = ()) -> Pla
         path = Path(raw)
         if path.is_dir() and not path.is_symlink():
             before = (len(result.targets), len(result.errors), len(result.maybe_parts))
-            _walk(path, result, excluded)
+            _walk(path, result, excluded, path)
             if (len(result.targets), len(result.errors), len(result.maybe_parts)) == before:
                 # Fail closed: a folder that was named but holds nothing to audit is an
                 # input error, not an empty pass.
@@ -118,7 +121,7 @@ def single(path: Path) -> Path:
     if not path.is_dir():
         return path
     found = Plan()
-    _walk(path, found, set())
+    _walk(path, found, set(), path)
     if len(found.targets) == 1:
         return found.targets[0]
     if not found.targets:
@@ -135,7 +138,7 @@ def _key(path: Path) -> str:
     return os.path.normcase(os.path.abspath(path))
 
 
-def _walk(folder: Path, result: Plan, excluded: set[str]) -> None:
+def _walk(folder: Path, result: Plan, excluded: set[str], root_folder: Path) -> None:
     files: list[Path] = []
     entries = 0
     for root, dirs, names in os.walk(folder, followlinks=False):
@@ -156,23 +159,27 @@ def _walk(folder: Path, result: Plan, excluded: set[str]) -> None:
             if entries > MAX_ENTRIES:
                 raise LoadError(folder, f"holds more than {MAX_ENTRIES:,} files; name the checkpoints")
             files.append(base / name)
-    _classify(folder, files, result, excluded)
+    _classify(root_folder, files, result, excluded)
 
 
-def _classify(folder: Path, files: list[Path], result: Plan, excluded: set[str]) -> None:
+def _classify(folder: Path, found: list[Path], result: Plan, excluded: set[str]) -> None:
+    files: list[Path] = []
+    for path in found:
+        problem = entry_problem(path, folder)
+        if problem is None:
+            files.append(path)
+        elif path.is_symlink() and not _weightish(path):
+            result.ignored_files += 1  # a linked config or tokenizer: not opened, counted
+        else:
+            # A linked weight file (wherever it leads), a FIFO, socket or device: never
+            # opened, and listed with the reason.
+            result.skipped.append(Skipped(str(path), problem))
     in_sets: set[Path] = set()
-    for index in (f for f in files if f.name.endswith(INDEX_SUFFIX) and not f.is_symlink()):
+    for index in (f for f in files if f.name.endswith(INDEX_SUFFIX)):
         in_sets |= _shards_of(index)
     onnx_folders = {f.parent for f in files if f.suffix == ".onnx"}
     for path in files:
         name = path.name
-        weightish = path.suffix in WEIGHT_SUFFIXES or name.endswith(INDEX_SUFFIX)
-        if path.is_symlink():
-            if weightish or path.suffix in UNREAD_SUFFIXES:
-                result.skipped.append(Skipped(str(path), "symbolic link, not followed"))
-            continue
-        if not path.is_file():
-            continue
         if _key(path) in excluded:
             result.skipped.append(Skipped(str(path), "the --grads sidecar of this run"))
         elif name.endswith(INDEX_SUFFIX):
@@ -212,13 +219,21 @@ def _classify(folder: Path, files: list[Path], result: Plan, excluded: set[str])
             result.ignored_files += 1
 
 
+def _weightish(path: Path) -> bool:
+    name = path.name
+    return (
+        path.suffix in WEIGHT_SUFFIXES
+        or path.suffix in UNREAD_SUFFIXES
+        or path.suffix in CONTENT_ONLY_SUFFIXES
+        or name.endswith(INDEX_SUFFIX)
+    )
+
+
 def _shards_of(index: Path) -> set[Path]:
     """The shard files an index names (empty when it cannot be read: the audit will say)."""
     try:
-        if index.stat().st_size > _MAX_INDEX_BYTES:
-            return set()
-        document = parse_json(index.read_bytes(), index, "index")
-    except (OSError, LoadError):
+        document = parse_json(read_side_file(index, "index", _MAX_INDEX_BYTES), index, "index")
+    except LoadError:
         return set()
     weight_map = document.get("weight_map") if isinstance(document, dict) else None
     if not isinstance(weight_map, dict):

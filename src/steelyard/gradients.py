@@ -3,11 +3,19 @@
 Support is a per-weight gradient magnitude in the layer's canonical orientation. Sources, in
 order of preference: a sidecar file given with ``--grads`` (same tensor names, any supported
 format), or second moments of an adaptive optimizer stored in the checkpoint.
+
+A sidecar tensor is used for a layer only when its shape is the model's weight shape exactly
+(the model's own orientation then applies), or when the sidecar's own loader built a layer of
+the same units and fan-in from a 2-D tensor that is the weight's transpose (a Keras kernel
+``[in, out]`` against a PyTorch weight ``[out, in]``: each loader knows its orientation).
+The same element count in another shape is never reshaped onto the weights: that tensor
+counts as unmatched.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from enum import Enum
 
 import numpy as np
@@ -42,6 +50,8 @@ class GradientSource:
     """The audited checkpoint, for optimizer-state support."""
     notes: tuple[str, ...] = ()
     """What the report should say about the source (a sidecar's partial match)."""
+    shapes: Mapping[str, tuple[int, ...]] = field(default_factory=dict)
+    """Stored shapes of the audited model's tensors, which a sidecar tensor must match."""
 
     def support(self, layer: Layer) -> np.ndarray | None:
         """``|∂E/∂w|``-like magnitudes shaped ``[units, fan_in]``, or None when unknown.
@@ -49,7 +59,7 @@ class GradientSource:
         A sidecar answers for the layers it covers; the checkpoint's own optimizer state, when
         there is one, still answers for the others."""
         if self.checkpoint is not None:
-            raw = _sidecar_raw(self.checkpoint, layer)
+            raw = _sidecar_raw(self.checkpoint, layer, self.shapes)
             if raw is not None:
                 return _to_magnitude(np.abs(raw.astype(np.float64)), self.kind)
         if self.model is not None and self.model.optimizer is not None:
@@ -58,31 +68,44 @@ class GradientSource:
 
     def from_sidecar(self, layer: Layer) -> bool:
         """Whether ``layer``'s support comes from the sidecar (not from optimizer moments)."""
-        return self.checkpoint is not None and _sidecar_match(self.checkpoint, layer) is not None
+        return (
+            self.checkpoint is not None
+            and _sidecar_match(self.checkpoint, layer, self.shapes) is not None
+        )
 
 
-def _sidecar_match(sidecar: Checkpoint, layer: Layer) -> str | None:
-    """How the sidecar covers ``layer``: ``layer`` (a layer of the same weight and shape),
-    ``tensor`` (a tensor of the weight's name and size), or None."""
+def _sidecar_match(
+    sidecar: Checkpoint, layer: Layer, shapes: Mapping[str, tuple[int, ...]]
+) -> str | None:
+    """How the sidecar covers ``layer``: ``tensor`` (a tensor of the weight's name and exact
+    stored shape, put in the layer's view by the model's own orientation), ``layer`` (the
+    sidecar's loader built a layer of the same weight, units and fan-in from a tensor of the
+    same shape or its 2-D transpose), or None (unmatched, whatever the element count)."""
+    stored = sidecar.tensors.get(layer.weight)
+    if stored is None:
+        return None
+    expected = shapes.get(layer.weight)
+    exact = expected is not None and tuple(stored.shape) == tuple(expected)
+    if exact and layer.orient is not None:
+        return "tensor"
     twin = next(
         (x for x in sidecar.layers if x.weight == layer.weight and x.gate == layer.gate), None
     )
-    if twin is not None and (twin.units, twin.fan_in) == (layer.units, layer.fan_in):
+    if twin is None or (twin.units, twin.fan_in) != (layer.units, layer.fan_in):
+        return None
+    if expected is None or exact:
         return "layer"
-    stored = sidecar.tensors.get(layer.weight)
-    if layer.orient is not None and stored is not None:
-        # Only the element count of the oriented view can be checked without reading it.
-        try:
-            probe = layer.orient(np.empty(stored.shape, dtype=np.uint8))
-        except (ValueError, IndexError):
-            return None
-        if probe.size == layer.units * layer.fan_in:
-            return "tensor"
+    if len(expected) == 2 and tuple(stored.shape) == tuple(reversed(expected)):
+        # A Keras kernel [in, out] against a PyTorch weight [out, in] (or the reverse): the
+        # sidecar's loader oriented its own layer, so the canonical views agree.
+        return "layer"
     return None
 
 
-def _sidecar_raw(sidecar: Checkpoint, layer: Layer) -> np.ndarray | None:
-    how = _sidecar_match(sidecar, layer)
+def _sidecar_raw(
+    sidecar: Checkpoint, layer: Layer, shapes: Mapping[str, tuple[int, ...]]
+) -> np.ndarray | None:
+    how = _sidecar_match(sidecar, layer, shapes)
     if how == "layer":
         twin = next(
             x for x in sidecar.layers if x.weight == layer.weight and x.gate == layer.gate
@@ -91,6 +114,8 @@ def _sidecar_raw(sidecar: Checkpoint, layer: Layer) -> np.ndarray | None:
     if how == "tensor":
         assert layer.orient is not None
         raw = np.asarray(layer.orient(sidecar.tensors[layer.weight].read_float32()))
+        if raw.size != layer.units * layer.fan_in:
+            return None
         return raw.reshape(layer.units, layer.fan_in)
     return None
 
@@ -107,6 +132,9 @@ def _from_optimizer(model: Checkpoint, layer: Layer) -> np.ndarray | None:
     slots = state.slots.get(layer.weight)
     if slots is None or slots.second_moment is None or layer.orient is None:
         return None
+    weight = model.tensors.get(layer.weight)
+    if weight is not None and tuple(slots.second_moment.shape) != tuple(weight.shape):
+        return None  # never reshape a moment of another shape onto the weights
     second = np.asarray(layer.orient(slots.second_moment.read_float32()), dtype=np.float64)
     if second.size != layer.units * layer.fan_in:
         return None
@@ -146,10 +174,12 @@ def sidecar_source(
             description=f"{kind.value} gradients from {path}", checkpoint=loaded, kind=kind
         )
     layers = model.layers
-    matched = [layer for layer in layers if _sidecar_match(loaded, layer) is not None]
+    shapes = {name: tuple(t.shape) for name, t in model.tensors.items()}
+    matched = [layer for layer in layers if _sidecar_match(loaded, layer, shapes) is not None]
     if layers and not matched:
         wrong = [
-            f"{layer.weight} {list(loaded.tensors[layer.weight].shape)}"
+            f"{layer.weight} {list(loaded.tensors[layer.weight].shape)}, model "
+            f"{list(shapes.get(layer.weight, ()))}"
             for layer in layers
             if layer.weight in loaded.tensors
         ]
@@ -184,4 +214,5 @@ def sidecar_source(
         kind=kind,
         model=model if fallback is not None else None,
         notes=tuple(notes),
+        shapes=shapes,
     )

@@ -11,6 +11,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
+from steelyard.budget import Budget
 from steelyard.findings import Severity
 
 
@@ -51,6 +52,9 @@ class Policy:
     """Globs of layers that must not change between two checkpoints (``compare``)."""
     source: str = "built-in defaults"
     """Where the policy came from, for the report header."""
+    budget: Budget | None = None
+    """Resource budgets from the ``[budget]`` table (None: the defaults of
+    :class:`~steelyard.budget.Budget`)."""
 
     def settings(self, rule: str, defaults: Mapping[str, Any], layer: str | None) -> dict[str, Any]:
         """Effective settings of ``rule`` on ``layer``: defaults, then policy, then overrides."""

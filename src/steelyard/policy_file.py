@@ -2,25 +2,41 @@
 
 Every mistake is a :class:`~steelyard.errors.PolicyError` naming the key and the file, with a
 "did you mean" suggestion for near misses, because a policy typo that silently does nothing
-is worse than no policy.
+is worse than no policy. A policy file is a side file: read only when it is a regular file
+under :data:`MAX_POLICY_BYTES` (:func:`steelyard.safepath.read_side_file`), and every way
+TOML can be hostile (deep nesting, huge integers, wrong types) is one line, exit 2.
 """
 
 from __future__ import annotations
 
 import difflib
 import math
+import os
+import re
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 from steelyard._toml import tomllib
-from steelyard.errors import PolicyError
+from steelyard.budget import Budget
+from steelyard.errors import PolicyError, SteelyardError
 from steelyard.findings import Severity
 from steelyard.policy import Ignore, LayerOverride, Policy
 from steelyard.rules import registry
 
 POLICY_FILE = "steelyard.toml"
-_TOP_KEYS = ("fail-on", "input-range", "weight-decay", "frozen", "rules", "override", "ignore")
+_TOP_KEYS = (
+    "fail-on", "input-range", "weight-decay", "frozen", "rules", "override", "ignore", "budget"
+)
+#: Largest policy or pyproject.toml read (policies are a few KB).
+MAX_POLICY_BYTES = 4 * 2**20
+#: A ``pyproject.toml`` that mentions steelyard's table (``[tool.steelyard]``,
+#: ``[tool.steelyard.rules.x]``, ``[[tool.steelyard.override]]`` or a dotted
+#: ``tool.steelyard.… =`` key): one we must read, so that a broken one is an error.
+_MENTIONS_STEELYARD = re.compile(
+    rb"^[ \t]*(\[\[?[ \t]*tool[ \t]*\.[ \t]*[\"']?steelyard\b|tool[ \t]*\.[ \t]*[\"']?steelyard\b)",
+    re.MULTILINE,
+)
 _FAIL_ON = ("error", "warning", "info", "never")
 _SEVERITIES = tuple(s.value for s in Severity)
 #: Thresholds that are fractions or cosines (must lie in [0, 1]).
@@ -43,30 +59,73 @@ def _fail(source: str, key: str, problem: str) -> PolicyError:
     return PolicyError(f"{source}: policy key {key!r} {problem}")
 
 
+def _read(path: Path, what: str) -> bytes:
+    from steelyard.safepath import read_side_file
+
+    return read_side_file(path, what, MAX_POLICY_BYTES, error=PolicyError)
+
+
+def _parse_toml(raw: bytes, file: Path) -> dict[str, Any]:
+    """Parse TOML text; every failure (syntax, encoding, nesting too deep for the parser, an
+    integer too long to convert, memory) is one :class:`PolicyError` naming the file."""
+    try:
+        return tomllib.loads(raw.decode("utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise PolicyError(f"{file}: is not valid TOML ({exc})") from None
+    except UnicodeDecodeError as exc:
+        raise PolicyError(f"{file}: is not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    except (RecursionError, MemoryError):
+        raise PolicyError(f"{file}: is nested too deeply (or too large) to be a policy") from None
+    except ValueError as exc:  # e.g. an integer past Python's digit limit
+        raise PolicyError(f"{file}: is not valid TOML ({exc})") from None
+
+
+def _pyproject_table(data: dict[str, Any], file: Path) -> Any:
+    """``[tool.steelyard]`` of a parsed pyproject.toml (None when absent); a ``tool`` key
+    that is not a table is an error only when we must read the file."""
+    tool = data.get("tool")
+    if tool is None:
+        return None
+    if not isinstance(tool, dict):
+        raise PolicyError(f"{file}: 'tool' must be a table, not {type(tool).__name__}")
+    return tool.get("steelyard")
+
+
 def discover(start: Path | None = None) -> tuple[Path, str] | None:
     """The nearest ``steelyard.toml``, else ``pyproject.toml`` with ``[tool.steelyard]``,
-    walking up from ``start``; returns the file and ``file`` or ``pyproject``."""
+    walking up from ``start``; returns the file and ``file`` or ``pyproject``.
+
+    A ``pyproject.toml`` that cannot be read or parsed (a FIFO, too large, broken TOML, a
+    ``tool`` key that is not a table) is passed over when its text does not mention
+    ``tool.steelyard``: someone else's broken project file must not break every run below
+    it. One that mentions it is ours to read, and its error stops the run."""
     folder = (start or Path.cwd()).resolve()
     for candidate in (folder, *folder.parents):
         own = candidate / POLICY_FILE
-        if own.is_file():
+        if os.path.lexists(own) and not (own.is_dir() and not own.is_symlink()):
             return own, "file"
         project = candidate / "pyproject.toml"
-        if project.is_file():
-            try:
-                data = tomllib.loads(project.read_text(encoding="utf-8"))
-            except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError):
-                continue
-            if isinstance(data.get("tool"), dict) and "steelyard" in data["tool"]:
-                return project, "pyproject"
+        if not os.path.lexists(project):
+            continue
+        try:
+            raw = _read(project, "pyproject.toml")
+        except SteelyardError:
+            continue
+        mentions = _MENTIONS_STEELYARD.search(raw) is not None
+        try:
+            table = _pyproject_table(_parse_toml(raw, project), project)
+        except PolicyError:
+            if mentions:
+                return project, "pyproject"  # load_policy reports the error
+            continue
+        if table is not None:
+            return project, "pyproject"
     return None
 
 
 def load_policy(path: Path | None = None, start: Path | None = None) -> Policy:
     """The policy from ``path``, or discovered from ``start``; built-in defaults when none."""
     if path is not None:
-        if not path.is_file():
-            raise PolicyError(f"{path}: policy file does not exist")
         found: tuple[Path, str] | None = (
             path,
             "pyproject" if path.name == "pyproject.toml" else "file",
@@ -76,12 +135,11 @@ def load_policy(path: Path | None = None, start: Path | None = None) -> Policy:
     if found is None:
         return Policy()
     file, kind = found
-    try:
-        data = tomllib.loads(file.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise PolicyError(f"{file}: is not valid TOML ({exc})") from None
+    data: Any = _parse_toml(_read(file, "policy file"), file)
     if kind == "pyproject":
-        data = data.get("tool", {}).get("steelyard", {})
+        data = _pyproject_table(data, file)
+        if data is None:
+            raise PolicyError(f"{file}: has no [tool.steelyard] table")
         source = f"{file} [tool.steelyard]"
     else:
         source = str(file)
@@ -95,9 +153,13 @@ def _number(source: str, key: str, value: Any, *, allow_none: bool = False) -> f
         return None
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise _fail(source, key, f"must be a number, not {type(value).__name__}")
-    if not math.isfinite(value):
+    try:
+        number = float(value)
+    except OverflowError:  # a 400-digit integer is valid TOML
+        raise _fail(source, key, "is too large to be a number steelyard can use") from None
+    if not math.isfinite(number):
         raise _fail(source, key, "must be finite")
-    return float(value)
+    return number
 
 
 def _known_rules() -> dict[str, Any]:
@@ -212,7 +274,7 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
                     f"is unknown{_suggest(key, ('rule', 'layers', 'reason'))}",
                 )
         rule = entry.get("rule")
-        if rule not in specs:
+        if not isinstance(rule, str) or rule not in specs:
             raise _fail(
                 source, f"{where}.rule", f"names no rule{_suggest(str(rule), tuple(specs))}"
             )
@@ -223,6 +285,15 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
         if not isinstance(layers, str):
             raise _fail(source, f"{where}.layers", "must be a glob string")
         ignores.append(Ignore(rule=str(rule), layers=layers, reason=reason))
+    budget = None
+    if "budget" in data:
+        table = data["budget"]
+        if not isinstance(table, dict):
+            raise _fail(source, "budget", "must be a table of budget keys")
+        try:
+            budget = Budget().with_overrides(table)
+        except PolicyError as exc:
+            raise PolicyError(f"{source}: {exc}") from None
     return Policy(
         fail_on=str(fail_on),
         rules=rules,
@@ -232,6 +303,7 @@ def parse_policy(data: Mapping[str, Any], source: str) -> Policy:
         weight_decay=weight_decay,
         frozen=tuple(frozen),
         source=source,
+        budget=budget,
     )
 
 

@@ -12,6 +12,7 @@ from pathlib import Path
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint
 from steelyard.loaders.base import Loader
+from steelyard.safepath import kind_of, open_regular
 
 #: (module, class) of each loader, in sniffing order. Imported on first use so that a
 #: broken optional reader never stops the others.
@@ -22,11 +23,12 @@ _REGISTRY: tuple[tuple[str, str], ...] = (
     ("steelyard.loaders.pytorch", "PytorchLoader"),
     ("steelyard.loaders.keras_h5", "KerasH5Loader"),
     ("steelyard.loaders.onnx", "OnnxLoader"),
+    ("steelyard.loaders.gguf", "GgufLoader"),
 )
 
 SUPPORTED = (
     "safetensors (single or sharded), ONNX, Keras (.keras, legacy .h5, .weights.h5), "
-    "NumPy .npz, PyTorch zip checkpoints"
+    "NumPy .npz, PyTorch zip checkpoints, GGUF"
 )
 
 _HEAD_BYTES = 4096
@@ -49,9 +51,9 @@ def loaders() -> list[Loader]:
 def sniff_format(path: Path) -> str | None:
     """The format of the file by its content (first bytes), or None when no loader knows it."""
     try:
-        with open(path, "rb") as handle:
+        with open_regular(path) as handle:
             head = handle.read(_HEAD_BYTES)
-    except OSError:
+    except (OSError, LoadError):
         return None
     if not head:
         return None
@@ -76,7 +78,7 @@ def resolve(path: Path) -> Path:
         if path.is_dir():  # pragma: no cover - single() returns files and indexes only
             raise LoadError(path, "is a folder; name the checkpoint file")
     if not path.is_file():
-        raise LoadError(path, "is not a regular file")
+        raise LoadError(path, f"is {kind_of(path.stat().st_mode)}, not a regular file")
     return path
 
 
@@ -84,7 +86,8 @@ def load(path: str | Path) -> Checkpoint:
     """Read a checkpoint's structure; tensors stay on disk until a rule asks for them."""
     target = resolve(Path(path))
     try:
-        with open(target, "rb") as handle:
+        # Never blocks on a FIFO swapped in after resolve(); refuses anything not regular.
+        with open_regular(target) as handle:
             head = handle.read(_HEAD_BYTES)
     except OSError as exc:
         raise LoadError(target, f"cannot be opened ({exc.strerror})") from None

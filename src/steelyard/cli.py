@@ -184,6 +184,13 @@ def _guarded() -> Iterator[None]:
         raise typer.Exit(EXIT_INTERNAL) from None
 
 
+def _bar_text(text: str) -> str:
+    """A name for the progress bar: escaped, and not read as rich markup ("[/x]")."""
+    from rich.markup import escape
+
+    return escape(shown(text))
+
+
 def _budget(policy: Policy | None, pairs: list[str] | None) -> Budget:
     """The budget in force: defaults, then the policy's [budget] table, then --budget."""
     chosen = policy.budget if policy is not None and policy.budget is not None else Budget()
@@ -351,7 +358,7 @@ def audit(
 
             def advance(path: str) -> None:
                 _reading(path)
-                progress.advance(shown(path))
+                progress.advance(_bar_text(path))
 
             report = api.audit_many(
                 run,
@@ -430,7 +437,7 @@ def compare(
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
-            progress.advance(shown(f"{old} → {new}"))
+            progress.advance(_bar_text(f"{old} → {new}"))
             _reading(f"{old} or {new}")
             report = api.compare(old, new, policy=policy, budget=limits)
         _STATE["reading"] = None

@@ -16,6 +16,8 @@ from dataclasses import fields, is_dataclass, replace
 from enum import Enum
 from typing import Any, TypeVar
 
+from steelyard.findings import Finding
+
 #: Format characters that reorder or hide text (Unicode bidi controls and invisible marks),
 #: which ``str.isprintable`` does not all refuse. Unicode Standard Annex #9 (bidi controls),
 #: and Trojan Source (Boucher & Anderson 2021) for why they matter.
@@ -65,6 +67,10 @@ def shown_deep(value: T) -> T:
 
 
 _MAX_DEPTH = 64
+#: Fields of a finding its fingerprint (``Finding.id``) is computed from: kept exact, so an
+#: id printed by a text renderer is the id in JSON and baselines. Renderers do not print them
+#: raw (the tensor name reaches people through the escaped message).
+_FINGERPRINTED = frozenset({"rule", "tensor", "part", "units"})
 
 
 def _deep(value: Any, depth: int) -> Any:
@@ -74,8 +80,9 @@ def _deep(value: Any, depth: int) -> Any:
         return value
     if is_dataclass(value) and not isinstance(value, type):
         changes = {}
+        exact = _FINGERPRINTED if isinstance(value, Finding) else frozenset()
         for item in fields(value):
-            if not item.init:
+            if not item.init or item.name in exact:
                 continue
             old = getattr(value, item.name)
             new = _deep(old, depth + 1)

@@ -20,6 +20,7 @@ from steelyard.render.compare_table import coverage_line, number, overview
 from steelyard.render.markdown import TOP, _cell, _rows
 from steelyard.render.sarif import level
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
+from steelyard.text_safety import shown_deep
 
 
 def as_audit_report(report: CompareReport) -> Report:
@@ -106,6 +107,7 @@ def render_compare_junit(report: CompareReport) -> str:
     """JUnit XML: the audit's suite for NEW plus one test case per comparison rule and layer."""
     from steelyard.render.junit import add_rule_cases, render_junit
 
+    report = shown_deep(report)  # names from files: escaped (XML forbids most controls)
     root = ET.fromstring(render_junit(as_audit_report(report)).split("\n", 1)[1])
     suite = root.find("testsuite")
     assert suite is not None
@@ -149,6 +151,7 @@ def _layer_rows(layers: tuple[LayerDiff, ...] | list[LayerDiff]) -> list[str]:
 
 def render_compare_markdown(report: CompareReport) -> str:
     """A pull-request comment body."""
+    report = shown_deep(report)  # names from files: escaped, one line each
     comparison = report.comparison
     if report.gate is None:
         verdict = "⚪ report only"

@@ -16,6 +16,7 @@ from steelyard.findings import Finding, Severity, compact_units
 from steelyard.ranking import rank
 from steelyard.render.text import titled_table, to_text
 from steelyard.report import CAUTION
+from steelyard.text_safety import shown_deep
 
 _STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
 _STATUS_STYLE = {
@@ -209,6 +210,7 @@ def _detail(layers: tuple[LayerDiff, ...]) -> list[RenderableType]:
 
 def render_compare_table(report: CompareReport, *, color: bool = False, width: int = 120) -> str:
     """The whole terminal report."""
+    report = shown_deep(report)  # names from files: escaped, one line each
     comparison = report.comparison
     parts: list[RenderableType] = [
         _header(report),

@@ -10,6 +10,7 @@ from steelyard.coverage import describe
 from steelyard.findings import Finding, Severity
 from steelyard.report import CheckpointAudit, Report
 from steelyard.rules import registry
+from steelyard.text_safety import shown_deep
 
 #: The test case of findings that belong to no layer.
 _CHECKPOINT = "(checkpoint)"
@@ -103,6 +104,9 @@ def _inputs_suite(report: Report) -> ET.Element | None:
 
 def render_junit(report: Report) -> str:
     """The JUnit XML document as text."""
+    # Names from files, escaped: no control character (most are illegal in XML 1.0) and no
+    # bidi override reaches the document.
+    report = shown_deep(report)
     root = ET.Element("testsuites", name="steelyard")
     suites = [_suite(report, audit) for audit in report.audits]
     inputs = _inputs_suite(report)

@@ -8,6 +8,7 @@ from rich.text import Text
 from steelyard.coverage import coverage_of, describe
 from steelyard.graph import Checkpoint, Layer
 from steelyard.render.text import human_bytes, human_count, to_text
+from steelyard.text_safety import shown
 
 
 def _shape(layer: Layer) -> str:
@@ -27,7 +28,7 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
     dtypes = ", ".join(f"{k} ×{v}" for k, v in sorted(checkpoint.dtypes.items()))
     header = Text.assemble(
         ("checkpoint ", "bold"),
-        checkpoint.path,
+        shown(checkpoint.path),
         "\n",
         ("format ", "bold"),
         checkpoint.format.value,
@@ -41,7 +42,7 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
         human_bytes(checkpoint.file_size),
     )
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
-    longest = max((len(layer.name) for layer in checkpoint.layers), default=5)
+    longest = max((len(shown(layer.name)) for layer in checkpoint.layers), default=5)
     table.add_column("layer", min_width=min(longest, 60), overflow="fold")
     for column in ("kind", "out × in × kernel", "activation", "fed by", "parameters"):
         table.add_column(
@@ -50,9 +51,9 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
             overflow="fold",
         )
     for layer in checkpoint.layers:
-        fed = ", ".join(layer.inputs_from) if layer.inputs_from else "—"
+        fed = ", ".join(shown(x) for x in layer.inputs_from) if layer.inputs_from else "—"
         table.add_row(
-            layer.name,
+            shown(layer.name),
             layer.kind.value,
             _shape(layer),
             layer.activation.value,
@@ -65,8 +66,8 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
     coverage = coverage_of(checkpoint)
     parts.append(Text.assemble(("coverage ", "bold"), describe(coverage)))
     if coverage.uncovered:
-        shown = ", ".join(u.name for u in coverage.uncovered[:8])
+        names = ", ".join(shown(u.name) for u in coverage.uncovered[:8])
         more = f" and {len(coverage.uncovered) - 8:,} more" if len(coverage.uncovered) > 8 else ""
-        parts.append(Text(f"in no layer: {shown}{more}", style="dim"))
-    parts += [Text(f"note: {note}", style="dim") for note in checkpoint.notes]
+        parts.append(Text(f"in no layer: {names}{more}", style="dim"))
+    parts += [Text(f"note: {shown(note)}", style="dim") for note in checkpoint.notes]
     return to_text(parts, color=color, width=width)  # type: ignore[arg-type]

@@ -5,6 +5,7 @@ from __future__ import annotations
 from steelyard.coverage import describe
 from steelyard.findings import Finding, compact_units
 from steelyard.report import CAUTION, CheckpointAudit, Report
+from steelyard.text_safety import shown_deep
 
 #: Findings shown in the main table; the rest go in a collapsible block.
 TOP = 10
@@ -89,6 +90,7 @@ def _inputs(report: Report) -> list[str]:
 
 def render_markdown(report: Report) -> str:
     """The comment body."""
+    report = shown_deep(report)  # names from files: escaped, one line each
     overall = "✅ passed" if report.passed else "❌ failed"
     if report.gate is None:
         overall = "⚪ report only"

@@ -14,6 +14,7 @@ from steelyard.findings import Finding, Severity
 from steelyard.render.json_report import _clean
 from steelyard.report import Report, Suppressed
 from steelyard.rules import registry
+from steelyard.text_safety import shown
 
 SARIF_SCHEMA_URI = (
     "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json"
@@ -77,7 +78,7 @@ def _result(
     result: dict[str, Any] = {
         "ruleId": finding.rule,
         "level": level(finding.severity),
-        "message": {"text": f"{finding.message}. {finding.hint}."},
+        "message": {"text": shown(f"{finding.message}. {finding.hint}.")},
         "locations": [
             {
                 "physicalLocation": {
@@ -113,7 +114,7 @@ def _result(
 
 def _notification(text: str, level: str, uri: str | None = None) -> dict[str, Any]:
     """A SARIF notification (§3.58): what the tool could not do or wants said."""
-    note: dict[str, Any] = {"level": level, "message": {"text": text}}
+    note: dict[str, Any] = {"level": level, "message": {"text": shown(text)}}
     if uri is not None:
         note["locations"] = [{"physicalLocation": {"artifactLocation": {"uri": _uri(uri)}}}]
     return note

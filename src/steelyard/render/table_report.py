@@ -13,6 +13,7 @@ from steelyard.findings import Finding, Severity, compact_units
 from steelyard.render.text import human_bytes, human_count, titled_table, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.rules import registry
+from steelyard.text_safety import shown_deep
 
 _STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
 _BARS = "▁▂▃▄▅▆▇█"
@@ -231,6 +232,7 @@ def _inputs(report: Report) -> list[RenderableType]:
 
 def render_table(report: Report, *, color: bool = False, width: int = 120) -> str:
     """The whole terminal report."""
+    report = shown_deep(report)  # names from files: escaped, one line each
     parts: list[RenderableType] = []
     for index, audit in enumerate(report.audits):
         if index:

@@ -19,6 +19,9 @@ def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width
         force_terminal=color,
         no_color=not color,
         highlight=False,
+        # Names from files are data, never markup: "[/bold]" in a layer name is printed as
+        # it is instead of restyling (or breaking) the report.
+        markup=False,
         emoji=False,
         soft_wrap=False,
     )

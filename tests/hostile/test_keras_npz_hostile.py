@@ -193,7 +193,7 @@ def test_hdf5_fill_value_bomb_is_refused_before_reading(
     # 1 GiB claimed from ~1 MB of stored chunks: within the old 1000:1 ratio limit.
     row_bytes = shape[1] * np.dtype(dtype).itemsize
     path = tmp_path / "bomb.weights.h5"
-    fill_bomb_h5(path, shape, dtype, filters, written_rows=(1100 * 1024) // row_bytes + 1)
+    fill_bomb_h5(path, shape, dtype, filters, written_rows=(1600 * 1024) // row_bytes + 1)
     assert path.stat().st_size < 2 * _MIB
     assert_refused(run(["audit", str(path)], tmp_path), "expand")
 
@@ -384,11 +384,7 @@ def test_layer_with_many_inbound_tensors_is_read_linearly(tmp_path: Path, count:
     weights = _weights_with(tmp_path / "w.h5", {})
     keras_archive(path, weights, config)
     weights.unlink()
-    outcome = run(["audit", str(path)], tmp_path, timeout=60)
-    assert_bounded(outcome)
-    assert outcome.code in (0, 1, 2), outcome.stderr[-2000:]
-    if outcome.code == 2:
-        assert_refused(outcome)
+    _check_clean(run(["audit", str(path)], tmp_path, timeout=60))
 
 
 @pytest.mark.parametrize(("levels", "width"), [(15, 8), (30, 3)])

@@ -940,13 +940,144 @@ def _rezip(source: Path, target: Path, extra: list[tuple[str, bytes]] | None = N
             out.writestr(name, data)
 
 
-def test_deflated_archive_member_is_read_in_memory(tmp_path: Path) -> None:
+def test_deflated_archive_member_is_read(tmp_path: Path) -> None:
     path = tmp_path / "deflated.keras"
     _rezip(FIX / "mlp.keras", path, compression=zipfile.ZIP_DEFLATED)
     ck = load(path)
     e = expected("mlp")
     for index, name in enumerate(names_for("mlp", "keras")):
         np.testing.assert_array_equal(ck.tensors[name].read(), e[f"w/{index}"])
+
+
+def test_deflated_weights_member_is_inflated_once_per_run(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard.loaders import base
+
+    path = tmp_path / "deflated.keras"
+    _rezip(FIX / "mlp.keras", path, compression=zipfile.ZIP_DEFLATED)
+    calls: list[str] = []
+    original = base.inflate_member
+
+    def counting(source: Path, info: zipfile.ZipInfo, target: Path) -> None:
+        calls.append(info.filename)
+        original(source, info, target)
+
+    monkeypatch.setattr(base, "inflate_member", counting)
+    e = expected("mlp")  # reference: what Keras reported at save time
+    for _ in range(2):  # two loads and every tensor read twice: one inflation
+        ck = load(path)
+        for index, name in enumerate(names_for("mlp", "keras")):
+            for _ in range(2):
+                np.testing.assert_array_equal(ck.tensors[name].read(), e[f"w/{index}"])
+    assert calls == ["model.weights.h5"]
+
+
+def test_deflated_weights_member_beyond_expansion_budget_is_refused_before_inflating(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard import budget
+    from steelyard.loaders import base
+
+    path = tmp_path / "padded.keras"
+    weights = tmp_path / "w.h5"
+    with h5py.File(weights, "w") as f:
+        f.create_dataset("layers/dense/vars/0", data=np.zeros((1024, 1024), np.float32))
+    with zipfile.ZipFile(FIX / "mlp.keras") as archive:
+        config = archive.read("config.json")
+    with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED) as out:
+        out.writestr("config.json", config)
+        out.writestr("model.weights.h5", weights.read_bytes())  # 4 MiB of zeros, deflated
+    monkeypatch.setattr(base, "inflate_member", None)  # any inflation would crash the test
+    with budget.using(budget.Budget(expansion_bytes=2**20)):
+        _expect_load_error(path, "model.weights.h5", "expansion budget")
+
+
+def _chunked_with_fill(path: Path, shape: tuple[int, int], written: int) -> None:
+    with h5py.File(path, "w") as f:
+        group = f.create_group("layers/dense/vars")
+        kernel = group.create_dataset(
+            "0", shape=shape, dtype="<f4", chunks=(64, shape[1]), compression="gzip", fillvalue=0.25
+        )
+        kernel[:written] = np.random.default_rng(0).normal(size=(written, shape[1]))
+        group.create_dataset("1", data=np.zeros(shape[1], np.float32))
+
+
+def test_fill_value_expansion_beyond_budget_is_refused_at_load(tmp_path: Path) -> None:
+    from steelyard import budget
+
+    path = tmp_path / "fill.weights.h5"
+    _chunked_with_fill(path, (4096, 256), written=64)  # 4 MiB claimed, ~60 KB stored
+    # load() alone refuses: nothing is read.
+    with budget.using(budget.Budget(expansion_bytes=2**20)), pytest.raises(LoadError) as info:
+        load(path)
+    assert "layers/dense/vars/0" in str(info.value) and "expansion budget" in str(info.value)
+
+
+def test_chunked_dataset_is_decoded_once_in_row_bands(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = tmp_path / "bands.weights.h5"
+    _chunked_with_fill(path, (1000, 256), written=300)
+    monkeypatch.setattr(keras_hdf5, "BLOCK_BYTES", 100_000)  # several bands of 64-row chunks
+    log = tmp_path / "decoded.log"
+    original = keras_hdf5._read_dataset_into
+
+    def counting(*args: Any) -> int:
+        with open(log, "a") as handle:  # runs in the forked sandbox: count through a file
+            handle.write("decoded\n")
+        return original(*args)
+
+    monkeypatch.setattr(keras_hdf5, "_read_dataset_into", counting)
+    with h5py.File(path, "r") as f:  # reference: h5py, fill value included
+        reference = f["layers/dense/vars/0"][()]
+    tensor = load(path).tensors["layers/dense/vars/0"]
+    for _ in range(3):
+        np.testing.assert_array_equal(tensor.read(), reference)
+    assert log.read_text().splitlines() == ["decoded"]
+
+
+def test_band_rows_cover_whole_chunks(tmp_path: Path) -> None:
+    path = tmp_path / "c.h5"
+    with h5py.File(path, "w") as f:
+        f.create_dataset("d", shape=(1000, 300), dtype="<f4", chunks=(48, 100))
+        f.create_dataset("e", shape=(1000, 300), dtype="<f4", chunks=(1000, 300))
+        with pytest.MonkeyPatch.context() as patch:
+            patch.setattr(keras_hdf5, "BLOCK_BYTES", 200_000)
+            rows = keras_hdf5._band_rows(f["d"], (1000, 300), 4)
+            assert rows % 48 == 0 and rows * 300 * 4 <= 200_000
+            # A chunk larger than a band: one whole chunk per band, never a part of one.
+            assert keras_hdf5._band_rows(f["e"], (1000, 300), 4) == 1000
+
+
+def test_structure_timeout_follows_the_budget() -> None:
+    from steelyard import budget
+
+    # Default: 60 s of structure budget, 7.5 s for the sandbox (the 20 s promise).
+    assert keras_hdf5.load_timeout() == pytest.approx(7.5)
+    assert keras_hdf5.load_timeout() < 20
+    with budget.using(budget.Budget(load_seconds=600.0)):
+        assert keras_hdf5.load_timeout() == pytest.approx(75.0)
+    with budget.using(budget.Budget(load_seconds=1.0)):
+        assert keras_hdf5.load_timeout() == 1.0
+
+
+def test_hard_link_alias_of_a_dataset_is_refused(tmp_path: Path) -> None:
+    path = tmp_path / "alias.weights.h5"
+    with h5py.File(path, "w") as f:
+        data = f.create_dataset("layers/dense/vars/0", data=np.ones((3, 2), np.float32))
+        f["layers/dense/vars/1"] = data  # a second hard link to the same dataset
+    _expect_load_error(path, "another hard link")
+
+
+def test_natural_order_of_huge_and_non_ascii_numbers() -> None:
+    from steelyard.loaders.keras_common import natural_key
+
+    names = ["vars/10", "vars/9", "vars/" + "9" * 5000, "vars/0010", "vars/\u00b2"]
+    ordered = sorted(names, key=natural_key)
+    # int() order for ASCII digit runs (and no conversion of the 5000 digits, which Python
+    # refuses past 4300); a superscript two is not a number.
+    assert ordered[:4] == ["vars/9", "vars/10", "vars/0010", "vars/" + "9" * 5000]
 
 
 def test_sniff_does_not_claim_npz_or_pytorch_zips(tmp_path: Path) -> None:

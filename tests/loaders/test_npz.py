@@ -192,3 +192,73 @@ def test_mutated_archives_read_or_fail_cleanly(tmp_path: Path, data: st.DataObje
             tensor.read_float32()
     except LoadError:
         pass
+
+
+# --------------------------------------------------------------------------------------------
+# Budgets on compressed members
+
+
+def test_compressed_member_is_inflated_once_per_run(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard.loaders import base
+
+    values = rng.normal(size=(64, 32)).astype(np.float32)
+    path = tmp_path / "c.npz"
+    np.savez_compressed(path, w=values)
+    calls: list[str] = []
+    original = base.inflate_member
+
+    def counting(source: Path, info: zipfile.ZipInfo, target: Path) -> None:
+        calls.append(info.filename)
+        original(source, info, target)
+
+    monkeypatch.setattr(base, "inflate_member", counting)
+    tensor = load(path).tensors["w"]
+    for _ in range(3):
+        np.testing.assert_array_equal(tensor.read(), values)  # reference: the saved array
+    again = load(path).tensors["w"]  # a second load in the same run reuses the inflated copy
+    np.testing.assert_array_equal(again.read(), values)
+    assert calls == ["w.npy"]
+
+
+def test_compressed_member_beyond_expansion_budget_is_refused_before_inflating(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard import budget
+    from steelyard.loaders import base
+
+    path = tmp_path / "z.npz"
+    np.savez_compressed(path, w=np.zeros((1024, 1024), dtype=np.float32))  # 4 MiB of zeros
+    monkeypatch.setattr(base, "inflate_member", None)  # any inflation would crash the test
+    with budget.using(budget.Budget(expansion_bytes=2**20)), pytest.raises(LoadError) as info:
+        load(path)
+    assert "'w.npy'" in str(info.value) and "expansion budget" in str(info.value)
+
+
+def test_members_beyond_checkpoint_budget_together_are_refused(tmp_path: Path) -> None:
+    from steelyard import budget
+
+    path = tmp_path / "many.npz"
+    np.savez_compressed(path, **{f"w{i}": np.zeros((512, 1024), np.float32) for i in range(4)})
+    # Each member adds ~2 MiB; four of them exceed a 6 MiB checkpoint budget.
+    limits = budget.Budget(expansion_bytes=4 * 2**20, checkpoint_expansion_bytes=6 * 2**20)
+    with budget.using(limits), pytest.raises(LoadError) as info:
+        load(path)
+    assert "this checkpoint" in str(info.value)
+
+
+def test_memory_error_while_reading_is_one_load_error(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = tmp_path / "m.npz"
+    np.savez(path, w=np.ones((4, 4), np.float32))
+    tensor = load(path).tensors["w"]
+
+    def exhausted(*args: object, **kwargs: object) -> np.ndarray:
+        raise MemoryError
+
+    monkeypatch.setattr(np, "frombuffer", exhausted)
+    with pytest.raises(LoadError) as info:
+        tensor.read()
+    assert "too large to read" in str(info.value) and "\n" not in str(info.value)

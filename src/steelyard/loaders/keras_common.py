@@ -213,7 +213,16 @@ def class_from_shapes(weights: Mapping[str, Tensor]) -> str | None:
 
 def natural_key(text: str) -> list[Any]:
     """Sort key that orders ``vars/10`` after ``vars/9``."""
-    return [(0, int(part)) if part.isdigit() else (1, part) for part in re.split(r"(\d+)", text)]
+    # Numbers compare by length once leading zeros are gone, then digit by digit: the order of
+    # int() without converting (which is quadratic in the digits and refused past 4300).
+    out: list[Any] = []
+    for part in re.split(r"([0-9]+)", text):
+        if part.isascii() and part.isdigit():
+            digits = part.lstrip("0") or "0"
+            out.append((0, len(digits), digits))
+        else:
+            out.append((1, part))
+    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -560,11 +569,7 @@ class _ConfigWalker:
                         raise self.fail(f"layer {name!r}: malformed inbound node {item!r}")
             else:
                 raise self.fail(f"layer {name!r}: malformed inbound node")
-        unique: list[tuple[str, int]] = []
-        for ref in refs:
-            if ref not in unique:
-                unique.append(ref)
-        return unique
+        return list(dict.fromkeys(refs))  # first occurrences, in order; linear
 
     def _history(self, value: Any, refs: list[tuple[str, int]], name: str, depth: int) -> None:
         if depth > MAX_DEPTH:
@@ -608,24 +613,24 @@ class _ConfigWalker:
         for atom in self.atoms:
             counts[atom.raw_name] = counts.get(atom.raw_name, 0) + 1
         taken: set[str] = set()
+        # The last serial tried per base name, so that many equal names stay linear.
+        serials: dict[str, int] = {}
         for index, (atom, path) in enumerate(zip(self.atoms, self.paths, strict=True)):
             name = self.display.get(index, atom.raw_name)
             if counts[atom.raw_name] > 1 and path and index not in self.display:
                 name = "/".join((*path, name))
-            base, serial = name, 1
+            base, serial = name, serials.get(name, 1)
             while name in taken:
                 serial += 1
                 name = f"{base}#{serial}"
+            serials[base] = serial
             taken.add(name)
             atom.name = name
         for pending in self.pending:
-            preds: list[str] = []
+            preds: dict[str, None] = {}  # ordered set
             for scope, ref, index in pending.refs:
-                target = self.atoms[self.resolve(scope, ref, index)].name
-                if target not in preds:
-                    preds.append(target)
-            preds.extend(self.atoms[i].name for i in pending.direct)
-            self.atoms[pending.atom].preds = preds
+                preds[self.atoms[self.resolve(scope, ref, index)].name] = None
+            self.atoms[pending.atom].preds = [*preds, *(self.atoms[i].name for i in pending.direct)]
         return ModelGraph(self.atoms, model_class, model_name, self.notes)
 
 

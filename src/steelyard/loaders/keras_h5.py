@@ -100,9 +100,9 @@ class _Indexed:
     def get(self, prefix: str) -> list[Tensor] | None:
         """Tensors ``<prefix>/<i>`` in numeric order; None when a name is not an index."""
         entries = self.folders.get(prefix, [])
-        if not all(leaf.isdigit() for leaf, _ in entries):
+        if not all(leaf.isascii() and leaf.isdigit() for leaf, _ in entries):
             return None
-        return [tensor for _, tensor in sorted(entries, key=lambda item: int(item[0]))]
+        return [tensor for _, tensor in sorted(entries, key=lambda item: kc.natural_key(item[0]))]
 
 
 def _indexed(tensors: dict[str, Tensor], prefix: str) -> list[Tensor] | None:
@@ -459,11 +459,12 @@ def _legacy_atoms(layer: str, items: list[tuple[str, Tensor]]) -> list[kc.Atom]:
     a wrapper: one atom per inner layer, its class from the inner layer's default name.
     """
     own = kc.class_from_name(layer) or ""
-    owners: list[str] = []
+    found: dict[str, None] = {}  # ordered set: linear in the layer's weights
     for weight, _ in items:
         parts = [p for p in weight.split("/")[:-1] if p != layer and not p.endswith("_cell")]
-        if parts and parts[-1] not in owners:
-            owners.append(parts[-1])
+        if parts:
+            found[parts[-1]] = None
+    owners = list(found)
     if own or not owners:
         return [kc.Atom(layer, layer, own, {}, True, "", layer)]
     return [

@@ -58,10 +58,10 @@ MAX_VISITS = 4 * MAX_NODES
 MAX_ATTR_ELEMENTS = 1_000_000
 MAX_SOFT_HOPS = 8
 #: Share of the structure time budget (``budget.load_seconds``, 60 s by default) the HDF5
-#: sandbox may take to read a file's structure: 10 s by default, which is 1000 times what a
+#: sandbox may take to read a file's structure: 7.5 s by default, which is 1000 times what a
 #: real file needs (a few ms) and keeps a stuck library refused within the 20 s promise
 #: (interpreter start, imports and the fork take 1-3 s more).
-LOAD_SHARE = 1 / 6
+LOAD_SHARE = 1 / 8
 #: Tests set a fixed number of seconds here; None means derived from the budget.
 LOAD_TIMEOUT: float | None = None
 #: A read of one chunked dataset may take the structure timeout plus one second per 20 MB.
@@ -121,7 +121,24 @@ def _limit_memory(extra: int) -> None:
         pass
 
 
-def _child(conn: Connection, fn: Callable[..., Any], args: tuple[Any, ...], memory: int) -> None:
+def _die_with_parent(parent: int) -> None:
+    """Best effort (Linux): the sandbox is killed when the process that started it dies, so
+    a killed steelyard never leaves a decoder holding memory behind."""
+    try:
+        import ctypes
+        import signal
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, int(signal.SIGKILL))  # PR_SET_PDEATHSIG
+    except (OSError, AttributeError, TypeError):
+        return
+    if os.getppid() != parent:  # the parent died before the request took effect
+        os._exit(1)
+
+
+def _child(
+    conn: Connection, fn: Callable[..., Any], args: tuple[Any, ...], memory: int, parent: int
+) -> None:
+    _die_with_parent(parent)
     _limit_memory(memory)
     message: tuple[str, Any]
     try:
@@ -148,7 +165,9 @@ def isolated(
     seconds, a crash of the C library a LoadError instead of a dead interpreter."""
     ctx = _context()
     receiver, sender = ctx.Pipe(duplex=False)
-    process = ctx.Process(target=_child, args=(sender, fn, args, memory), daemon=True)
+    process = ctx.Process(
+        target=_child, args=(sender, fn, args, memory, os.getpid()), daemon=True
+    )
     try:
         process.start()
     except (OSError, AssertionError, ValueError, RuntimeError):
@@ -161,8 +180,8 @@ def isolated(
         if not receiver.poll(timeout):
             raise LoadError(
                 source,
-                f"was not read within {timeout:g} s: the HDF5 library is stuck on a damaged "
-                "structure (refused)",
+                f"was not read within {timeout:g} s: the HDF5 reader is stuck on a damaged or "
+                "hostile structure (refused)",
             )
         try:
             status, payload = receiver.recv()

@@ -416,11 +416,13 @@ class _Linker:
     def __init__(self, atoms: list[Atom], built: Mapping[str, _Built]) -> None:
         self.atoms = {atom.name: atom for atom in atoms}
         self.built = built
-        self.consumers: dict[str, list[str]] = {atom.name: [] for atom in atoms}
+        # Ordered sets (dict keys): a layer read by many others stays linear to index.
+        consumers: dict[str, dict[str, None]] = {atom.name: {} for atom in atoms}
         for atom in atoms:
             for pred in atom.preds:
-                if pred in self.consumers and atom.name not in self.consumers[pred]:
-                    self.consumers[pred].append(atom.name)
+                if pred in consumers:
+                    consumers[pred][atom.name] = None
+        self.consumers: dict[str, list[str]] = {k: list(v) for k, v in consumers.items()}
         self.memo: dict[str, tuple[list[str], bool] | None] = {}
 
     def sources(self, name: str) -> list[str] | None:
@@ -438,28 +440,35 @@ class _Linker:
         found = self._preds(name, set())
         return found is not None and found[1] and not found[0]
 
-    def channels_last_flatten(self, name: str, depth: int = 0) -> bool:
+    def channels_last_flatten(self, name: str) -> bool:
         """Whether a Flatten between a convolution and atom ``name`` ran channels-last, so
-        flattened input j belongs to channel j mod C (Keras' default data format)."""
-        if depth > MAX_DEPTH:
-            return False
-        for pred in self.atoms[name].preds:
-            atom = self.atoms[pred]
-            if atom.cls == "Flatten":
-                if atom.config.get("data_format") == "channels_first":
-                    continue
-                producers = [self.atoms[a] for a in self._unit_atoms(pred, set())]
-                if any(
-                    p.cls not in DENSE
-                    and p.cls not in EMBEDDING
-                    and p.config.get("data_format") != "channels_first"
-                    for p in producers
-                ):
-                    return True
-            elif _kind(atom.cls) in ("pass", "merge") and self.channels_last_flatten(
-                pred, depth + 1
-            ):
-                return True
+        flattened input j belongs to channel j mod C (Keras' default data format).
+
+        Searched through pass-through and merge layers up to :data:`MAX_DEPTH` hops, visiting
+        each layer once (merges of branches would otherwise be walked once per path)."""
+        seen = {name}
+        frontier = [name]
+        for _ in range(MAX_DEPTH + 1):
+            following: list[str] = []
+            for current in frontier:
+                for pred in self.atoms[current].preds:
+                    if pred in seen:
+                        continue
+                    seen.add(pred)
+                    atom = self.atoms[pred]
+                    if atom.cls == "Flatten":
+                        if atom.config.get("data_format") != "channels_first" and any(
+                            p.cls not in DENSE
+                            and p.cls not in EMBEDDING
+                            and p.config.get("data_format") != "channels_first"
+                            for p in (self.atoms[a] for a in self._unit_atoms(pred, set()))
+                        ):
+                            return True
+                    elif _kind(atom.cls) in ("pass", "merge"):
+                        following.append(pred)
+            if not following:
+                return False
+            frontier = following
         return False
 
     def _unit_atoms(self, name: str, seen: set[str]) -> list[str]:
@@ -479,17 +488,19 @@ class _Linker:
     def _preds(self, name: str, active: set[str]) -> tuple[list[str], bool] | None:
         if name in active:
             return None
-        out: list[str] = []
+        out: dict[str, None] = {}  # ordered set: linear however many producers merge here
         raw = False
-        for pred in self.atoms[name].preds:
-            got = self._output(pred, active | {name})
-            if got is None:
-                return None
-            for layer in got[0]:
-                if layer not in out:
-                    out.append(layer)
-            raw = raw or got[1]
-        return out, raw
+        active.add(name)
+        try:
+            for pred in self.atoms[name].preds:
+                got = self._output(pred, active)
+                if got is None:
+                    return None
+                out.update(dict.fromkeys(got[0]))
+                raw = raw or got[1]
+        finally:
+            active.discard(name)
+        return list(out), raw
 
     def _output(self, name: str, active: set[str]) -> tuple[list[str], bool] | None:
         """What atom ``name`` outputs: (layers whose units, whether raw input is mixed in)."""

@@ -90,18 +90,18 @@ def rule_shares(path: str) -> dict[str, float]:
     ctx = AuditContext(checkpoint=checkpoint, stats=stats, policy=Policy(), gradients=None)
     specs = list(registry().values())
     spent = {spec.name: 0.0 for spec in specs}
-    settings = {s.name: RuleSettings(s.name, s.thresholds, ctx.policy) for s in specs}
+    settings = {s.name: RuleSettings(s, ctx.policy) for s in specs}
     for layer in checkpoint.layers:
         for spec in specs:
-            if spec.layer_check is not None:
+            if spec.per_layer is not None:
                 start = time.perf_counter()
-                list(spec.layer_check(ctx, settings[spec.name], layer))
+                list(spec.per_layer(ctx, settings[spec.name], layer))
                 spent[spec.name] += time.perf_counter() - start
         stats.release(layer)
     for spec in specs:
         start = time.perf_counter()
-        if spec.layer_check is None:
-            list(spec.check(ctx, settings[spec.name]))
+        if spec.whole is not None:
+            list(spec.whole(ctx, settings[spec.name]))
         elif spec.finish is not None:
             list(spec.finish(ctx, settings[spec.name]))
         spent[spec.name] += time.perf_counter() - start

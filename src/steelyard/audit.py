@@ -100,6 +100,7 @@ def run_rules(
     rules: dict[str, RuleSpec] | None = None,
     jobs: int = 1,
     notes: RuleNotes | None = None,
+    stats: LayerStats | None = None,
 ) -> tuple[list[Finding], list[Suppressed], LayerStats]:
     """Every rule's findings that the policy keeps (policy severities applied), the findings
     the policy's ignore entries silenced, and the statistics. What rules could not do goes to
@@ -114,7 +115,8 @@ def run_rules(
     processes. The findings are collected in the same order as with one, so the report does
     not depend on ``jobs``.
     """
-    stats = LayerStats(checkpoint)
+    # A comparison passes the statistics it measures change from, so each layer is read once.
+    stats = stats if stats is not None else LayerStats(checkpoint)
     context = AuditContext(
         checkpoint=checkpoint,
         stats=stats,
@@ -240,8 +242,10 @@ def audit_checkpoint(
     gradients: GradientSource | None,
     rules: dict[str, RuleSpec] | None = None,
     jobs: int = 1,
+    stats: LayerStats | None = None,
 ) -> CheckpointAudit:
-    """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it)."""
+    """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it),
+    reading through ``stats`` when given (their checkpoint must be ``checkpoint``)."""
     files = checkpoint.files or (checkpoint.path,)
     notes = RuleNotes()
     if jobs > 1:
@@ -250,11 +254,13 @@ def audit_checkpoint(
         with ThreadPoolExecutor(max_workers=1) as hasher:
             digest = hasher.submit(sha256_of, files)
             findings, suppressed, stats = run_rules(
-                checkpoint, policy, gradients, rules, jobs, notes
+                checkpoint, policy, gradients, rules, jobs, notes, stats
             )
             sha256 = digest.result()
     else:
-        findings, suppressed, stats = run_rules(checkpoint, policy, gradients, rules, 1, notes)
+        findings, suppressed, stats = run_rules(
+            checkpoint, policy, gradients, rules, 1, notes, stats
+        )
         sha256 = sha256_of(files)
     ranked = rank(findings)
     specs = list((rules or registry()).values())

@@ -9,7 +9,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from steelyard.stats import LayerStats, reusing
+from steelyard.stats import LayerStats
 from tests.stats._graph import Reads, checkpoint, dense, stored
 
 
@@ -52,20 +52,6 @@ def test_release_drops_the_matrix_unless_the_statistics_retain_it(
     kept.release(layer)
     kept.matrix(layer)
     assert reads.passes(weight) == 1
-
-
-def test_reusing_hands_the_same_statistics_to_code_that_builds_its_own(
-    rng: np.random.Generator,
-) -> None:
-    reads, first = _two_layers(rng)
-    layer = first.checkpoint.layers[0]
-    first.row_norms(layer)
-    with reusing(first):
-        again = LayerStats(first.checkpoint)
-        assert again is first
-        again.matrix(layer)  # cached by the pass that gave the row norms
-    assert reads.passes(first.checkpoint.tensors[layer.weight]) == 1
-    assert LayerStats(first.checkpoint) is not first  # only while the block runs
 
 
 def test_counts_of_a_streamed_weight_come_from_its_pass(rng: np.random.Generator) -> None:

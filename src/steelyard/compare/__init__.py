@@ -18,6 +18,7 @@ from dataclasses import replace
 import numpy as np
 
 from steelyard.audit import audit_checkpoint
+from steelyard.compare.checks import CompareContext, run
 from steelyard.compare.diff import (
     Alignment,
     Side,
@@ -42,12 +43,7 @@ from steelyard.compare.report import (
     Status,
     UnitChange,
 )
-from steelyard.compare.rules import (
-    CompareContext,
-    CompareRuleSpec,
-    compare_registry,
-    run_compare_rules,
-)
+from steelyard.compare.rules import CompareRuleSpec, compare_registry
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint, Layer
@@ -55,7 +51,6 @@ from steelyard.inventory import layer_block
 from steelyard.policy import Policy
 from steelyard.ranking import rank
 from steelyard.report import CheckpointAudit
-from steelyard.stats import reusing
 
 __all__ = [
     "CompareCoverage",
@@ -524,9 +519,8 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
     new_side = Side(new, policy, statistics(new))
     # Each audit reads through its side's statistics, which keep what they read: the
     # measures below reuse it instead of reading every layer a second time.
-    with reusing(old_side.stats, new_side.stats):
-        old_audit = audit_checkpoint(old, policy, old_grads)
-        new_audit = audit_checkpoint(new, policy, new_grads)
+    old_audit = audit_checkpoint(old, policy, old_grads, stats=old_side.stats)
+    new_audit = audit_checkpoint(new, policy, new_grads, stats=new_side.stats)
     alignments, rejected = _align_all(pairs, old_side, new_side)
     diffs: list[LayerDiff] = []
     total_diff = total_base = 0.0
@@ -554,7 +548,7 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
         )
     ranked = tuple(sorted(diffs, key=_rank_key))
     context = CompareContext(old=old, new=new, policy=policy, diffs=ranked)
-    findings, ignored = run_compare_rules(context)
+    findings, silenced = run(context)
     fresh, present = split_audit(old_audit, new_audit, pairs, alignments)
     findings, fresh = fold_duplicates(findings, fresh, old_audit, pairs, alignments)
     notes = [
@@ -574,6 +568,6 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
         audit_present=rank(present),
         overall_relative_change=None if overall is None or math.isnan(overall) else overall,
         notes=tuple(notes),
-        ignored=ignored + new_audit.ignored,
+        ignored=len(silenced) + new_audit.ignored,
         coverage=coverage_of_comparison(old, new, pairs),
     )

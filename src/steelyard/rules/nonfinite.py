@@ -82,20 +82,6 @@ def _units(layer: Layer, relation: str, bad: np.ndarray) -> tuple[int, ...] | No
     return tuple(int(u) for u in np.flatnonzero(rows))
 
 
-def _scan(tensor: Tensor) -> tuple[np.ndarray, int, int, int] | None:
-    array = tensor.read()
-    if array.dtype.kind != "f" and array.dtype.kind != "V":
-        array = tensor.read_float32()
-    values = np.asarray(array, dtype=np.float32) if array.dtype.itemsize < 4 else np.asarray(array)
-    bad = ~np.isfinite(values)
-    if not bad.any():
-        return None
-    nan = int(np.isnan(values).sum())
-    pos = int(np.isposinf(values).sum())
-    neg = int(np.isneginf(values).sum())
-    return bad, nan, pos, neg
-
-
 def check(ctx: AuditContext, settings: RuleSettings[NoSettings]) -> Iterator[Finding]:
     """Yield one error per tensor holding NaN or ±Inf."""
     owners = _owners(ctx)
@@ -116,12 +102,10 @@ def check(ctx: AuditContext, settings: RuleSettings[NoSettings]) -> Iterator[Fin
     for name, tensor, source in candidates:
         # The counts come from the audit's one pass over every tensor; only a tensor that
         # holds non-finite values is read again, for positions and units.
-        if not any(ctx.stats.nonfinite(tensor)):
-            continue
-        found = _scan(tensor)
+        found = ctx.stats.nonfinite_scan(tensor)
         if found is None:
             continue
-        bad, nan, pos, neg = found
+        bad, nan, pos, neg = found.bad, found.nan, found.posinf, found.neginf
         total = nan + pos + neg
         positions = [list(map(int, p)) for p in np.argwhere(bad)[:_MAX_POSITIONS]]
         layers = owners.get(name, []) if source == "model" else []

@@ -42,9 +42,7 @@ read under one lock (:data:`.reading.READ_LOCK`), which gradient support takes t
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
-from contextvars import ContextVar
+from collections.abc import Callable
 from typing import TypeVar
 
 import numpy as np
@@ -69,18 +67,8 @@ STREAM_BYTES = 128 * 2**20
 #: once read; larger ones are read on each request.
 SMALL_TENSOR_BYTES = 2**20
 
-#: Statistics that ``LayerStats(checkpoint)`` returns instead of new ones (see :func:`reusing`).
-_REUSED: ContextVar[tuple[LayerStats, ...]] = ContextVar("steelyard_reused_stats", default=())
-
-
 class LayerStats:
     """Cached per-layer statistics over one checkpoint (safe to share between threads)."""
-
-    def __new__(cls, checkpoint: Checkpoint, *args: object, **kwargs: object) -> LayerStats:
-        for stats in _REUSED.get():
-            if stats.checkpoint is checkpoint:
-                return stats
-        return super().__new__(cls)
 
     def __init__(
         self,
@@ -89,8 +77,6 @@ class LayerStats:
         stream_bytes: int = STREAM_BYTES,
         retain: bool = False,
     ) -> None:
-        if getattr(self, "checkpoint", None) is checkpoint:
-            return  # handed out again by ``reusing``: keep what it has read
         self.checkpoint = checkpoint
         self.retain = retain
         self._memo = Memo()
@@ -285,20 +271,6 @@ class LayerStats:
         return self._topology.column_norms(producer, consumer, squares)
 
 
-@contextmanager
-def reusing(*stats: LayerStats) -> Iterator[None]:
-    """While active (in this thread or task), ``LayerStats(checkpoint)`` for the checkpoint
-    of one of ``stats`` returns that object, with everything it has read, instead of new
-    statistics. The comparison audits each checkpoint inside this with statistics made with
-    ``retain=True``, then measures change from the same ones, so each layer is read once.
-    """
-    token = _REUSED.set((*_REUSED.get(), *stats))
-    try:
-        yield
-    finally:
-        _REUSED.reset(token)
-
-
 def _frozen(array: np.ndarray) -> np.ndarray:
     """``array`` made read-only: a kept result is shared by every rule that asks for it."""
     array.setflags(write=False)
@@ -317,6 +289,5 @@ __all__ = [
     "locked",
     "read_float32",
     "read_stored",
-    "reusing",
     "sums_of_squares",
 ]

@@ -126,3 +126,121 @@ def test_several_paths_and_folders(tmp_path: Path, healthy_file: Path, unhealthy
     ]
     assert [a["gate"]["passed"] for a in document["audits"]] == [True, False]
     assert result.exit_code == 1 and document["gate"]["passed"] is False
+
+
+# --- budgets, sidecar shapes -----------------------------------------------------------------
+
+
+def _record_budget(monkeypatch: pytest.MonkeyPatch) -> list[object]:
+    """Make api's loader record the budget in force when it is called."""
+    from steelyard import api, budget
+
+    seen: list[object] = []
+    real = api._load
+
+    def recording(path: object) -> object:
+        seen.append(budget.current())
+        return real(path)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(api, "_load", recording)
+    return seen
+
+
+def test_budget_option_and_policy_table_set_the_budget_readers_see(
+    healthy_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard.budget import Budget
+
+    seen = _record_budget(monkeypatch)
+    policy = tmp_path / "p.toml"
+    policy.write_text('[budget]\nexpansion-bytes = "1G"\nload-seconds = 30\n')
+    result = runner.invoke(
+        app, ["audit", str(healthy_file), "--policy", str(policy), "--budget", "layer-units=4096"]
+    )
+    assert result.exit_code == 0, result.stderr
+    assert seen and all(b == Budget(expansion_bytes=2**30, load_seconds=30.0, layer_units=4096) for b in seen)
+    seen.clear()
+    # --budget wins over the policy's table; sizes accept suffixes.
+    runner.invoke(app, ["compare", str(healthy_file), str(healthy_file), "--policy", str(policy),
+                        "--budget", "expansion-bytes=512M"])
+    assert seen and all(b.expansion_bytes == 512 * 2**20 and b.load_seconds == 30.0 for b in seen)  # type: ignore[attr-defined]
+    seen.clear()
+    runner.invoke(app, ["layers", str(healthy_file), "--budget", "tensor-elements=1000"])
+    assert seen and all(b.tensor_elements == 1000 for b in seen)  # type: ignore[attr-defined]
+
+
+@pytest.mark.parametrize(
+    "pair", ["memory=1G", "expansion-bytes", "expansion-bytes=inf", "load-seconds=0", "layer-units=lots"]
+)
+def test_a_bad_budget_option_is_one_line_exit_2(healthy_file: Path, pair: str) -> None:
+    result = runner.invoke(app, ["audit", str(healthy_file), "--budget", pair])
+    assert result.exit_code == 2, (result.stderr, result.exception)
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("steelyard: error:") and "budget" in lines[0]
+
+
+def test_the_api_runs_under_the_budget_it_is_given(healthy_file: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from steelyard import api
+    from steelyard.budget import Budget, current
+
+    seen = _record_budget(monkeypatch)
+    chosen = Budget(layer_units=77)
+    api.audit(healthy_file, budget=chosen)
+    api.compare(healthy_file, healthy_file, budget=chosen)
+    assert len(seen) >= 3 and all(b is chosen for b in seen)
+    assert current() == Budget()  # restored afterwards
+
+
+def _sidecar_run(tmp_path: Path, grads: dict[str, object]) -> object:
+    import numpy as np
+
+    from tests.conftest import write_safetensors
+
+    rng = np.random.default_rng(8)
+    model = write_safetensors(tmp_path / "m.safetensors", {
+        "fc1.weight": rng.normal(size=(8, 4)).astype(np.float32),
+        "fc2.weight": rng.normal(size=(3, 8)).astype(np.float32),
+    })
+    sidecar = write_safetensors(tmp_path / "m.grads.safetensors", grads)  # type: ignore[arg-type]
+    return runner.invoke(app, ["audit", str(model), "--grads", str(sidecar), "-f", "json", "--fail-on", "never"])
+
+
+@pytest.mark.parametrize("shape", [(4, 8), (2, 16), (32,), (8, 2, 2)])
+def test_a_sidecar_tensor_of_another_shape_is_not_reshaped_onto_the_weights(
+    tmp_path: Path, shape: tuple[int, ...]
+) -> None:
+    # Same element count as fc1.weight [8, 4], another shape: before, it was reshaped onto
+    # the weights and silently used; now fc1 is not covered and the note says so.
+    import numpy as np
+
+    result = _sidecar_run(tmp_path, {
+        "fc1.weight": np.ones(shape, np.float32),
+        "fc2.weight": np.ones((3, 8), np.float32),
+    })
+    assert result.exit_code == 0, result.stderr  # type: ignore[attr-defined]
+    notes = json.loads(result.stdout)["notes"]  # type: ignore[attr-defined]
+    assert any("covers 1 of 2 layers" in n and "fc1" in n for n in notes), notes
+
+
+def test_a_sidecar_matching_only_by_element_count_matches_no_layer(tmp_path: Path) -> None:
+    import numpy as np
+
+    result = _sidecar_run(tmp_path, {
+        "fc1.weight": np.ones((2, 16), np.float32),
+        "fc2.weight": np.ones((24,), np.float32),
+    })
+    assert result.exit_code == 2  # type: ignore[attr-defined]
+    assert "matches no layer" in result.stderr and "shapes differ" in result.stderr  # type: ignore[attr-defined]
+
+
+def test_a_sidecar_of_exactly_the_weight_shapes_covers_every_layer(tmp_path: Path) -> None:
+    import numpy as np
+
+    result = _sidecar_run(tmp_path, {
+        "fc1.weight": np.ones((8, 4), np.float32),
+        "fc2.weight": np.ones((3, 8), np.float32),
+    })
+    assert result.exit_code == 0, result.stderr  # type: ignore[attr-defined]
+    document = json.loads(result.stdout)  # type: ignore[attr-defined]
+    assert document["gradient_source"].startswith("rms gradients from")
+    assert not any("covers" in n for n in document["notes"])

@@ -1053,11 +1053,11 @@ def test_band_rows_cover_whole_chunks(tmp_path: Path) -> None:
 def test_structure_timeout_follows_the_budget() -> None:
     from steelyard import budget
 
-    # Default: 60 s of structure budget, 7.5 s for the sandbox (the 20 s promise).
-    assert keras_hdf5.load_timeout() == pytest.approx(7.5)
+    # Default: 60 s of structure budget, 5 s for the sandbox (the 20 s promise).
+    assert keras_hdf5.load_timeout() == pytest.approx(5.0)
     assert keras_hdf5.load_timeout() < 20
     with budget.using(budget.Budget(load_seconds=600.0)):
-        assert keras_hdf5.load_timeout() == pytest.approx(75.0)
+        assert keras_hdf5.load_timeout() == pytest.approx(50.0)
     with budget.using(budget.Budget(load_seconds=1.0)):
         assert keras_hdf5.load_timeout() == 1.0
 

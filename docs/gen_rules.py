@@ -67,7 +67,13 @@ steelyard reads, in order: the file given with `--policy FILE`; else the nearest
 walking up from the working directory. The report header says which one was used;
 `steelyard policy --show` prints the effective policy and `steelyard policy --init` writes the
 starter file below. An unknown key, a wrong type or an out-of-range value exits 2 with a line
-naming the key and the file (and a "did you mean" suggestion for near misses).
+naming the key and the file (and a "did you mean" suggestion for near misses); so does a
+policy file that is not a regular file of at most 4 MB, nests too deeply, or holds an integer
+too large to use.
+
+A `pyproject.toml` found in a parent folder that cannot be read or parsed is passed over when
+its text does not mention `tool.steelyard` (someone else's broken project file must not break
+every run below it); one that mentions it is read, and its error exits 2.
 
 ## Keys
 
@@ -77,6 +83,7 @@ naming the key and the file (and a "did you mean" suggestion for near misses).
 | `input-range` | `[low, high]` | range of every model input; enables interval bound propagation in `dead-unit` |
 | `weight-decay` | number >= 0 | L2 coefficient in the PyTorch convention (wd·w added to the gradient), for `unsupported-weight`'s equilibrium ratio |
 | `frozen` | list of globs | layers that must not change between two checkpoints (`steelyard compare`) |
+| `[budget]` | table | resource budgets for reading checkpoints: `expansion-bytes`, `checkpoint-expansion-bytes`, `tensor-elements`, `layer-units`, `load-seconds` (sizes accept `512M`, `2G`); each within a fixed range (see `safety.md`); the CLI's `--budget KEY=VALUE` wins |
 | `[rules.<rule>]` | table | per rule: `enabled` (bool), `severity` (`"error"`, `"warning"`, `"info"`: replaces the rule's own choice), and each of the rule's thresholds (see `rules.md`) |
 | `[[override]]` | array of tables | `layers = "<glob over layer names>"` plus `<rule> = { key = value, ... }` tables; applied in order after `[rules.*]`, so later overrides win |
 | `[[ignore]]` | array of tables | `rule`, `layers` (glob, default `*`) and a required `reason`: findings silenced, counted in the report |

@@ -331,6 +331,14 @@ def starter_text() -> str:
         "# Layers that must not change between two checkpoints (steelyard compare).",
         '# frozen = ["encoder.*"]',
         "",
+        "# Resource budgets for reading checkpoints (docs/safety.md); --budget KEY=VALUE wins.",
+        "# [budget]",
+        '# expansion-bytes = "512M"',
+        '# checkpoint-expansion-bytes = "2G"',
+        "# tensor-elements = 17179869184",
+        "# layer-units = 33554432",
+        "# load-seconds = 60",
+        "",
     ]
     for spec in _known_rules().values():
         lines.append(f"# {spec.name}: {spec.summary}")
@@ -372,6 +380,10 @@ def policy_text(policy: Policy) -> str:
         lines.append(f"weight-decay = {policy.weight_decay!r}")
     if policy.frozen:
         lines.append("frozen = [" + ", ".join(f'"{g}"' for g in policy.frozen) + "]")
+    if policy.budget is not None:
+        lines += ["", "[budget]"]
+        for name, value in vars(policy.budget).items():
+            lines.append(f"{name.replace('_', '-')} = {value!r}")
     for spec in _known_rules().values():
         merged = policy.settings(spec.name, {"enabled": True, **spec.thresholds}, None)
         lines.append("")

@@ -31,7 +31,9 @@ from __future__ import annotations
 import json
 import math
 import re
-from collections.abc import Callable, Mapping
+from bisect import bisect_left
+from collections import defaultdict
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -543,6 +545,7 @@ def _infer_groups(layers: list[Layer], notes: list[str]) -> list[Layer]:
     """Groups of convolutions whose weight reads fewer input channels than their producer
     has (see the module docstring for the rule)."""
     by_name = {layer.name: layer for layer in layers}
+    siblings = _Siblings(by_name)
     # Natural name order, not stored order: safetensors sorts its keys, so "seq.10" would
     # otherwise come before "seq.2".
     ordered = sorted(layers, key=lambda layer: _natural(layer.name))
@@ -559,7 +562,7 @@ def _infer_groups(layers: list[Layer], notes: list[str]) -> list[Layer]:
         previous = before.get(layer.name)
         if layer.kind is LayerKind.CONV and layer.groups == 1:
             parent, leaf = _split(layer.name)
-            named = _previous_sibling(layer, parent, leaf, by_name)
+            named = siblings.previous(parent, leaf)
             producer = by_name.get(named) if named is not None else None
             if producer is not None and producer.kind not in (
                 LayerKind.CONV,
@@ -595,22 +598,38 @@ def _infer_groups(layers: list[Layer], notes: list[str]) -> list[Layer]:
     return out
 
 
-def _natural(text: str) -> list[tuple[int, int | str]]:
-    """Sort key that puts ``seq.10`` after ``seq.2``."""
-    return [(0, int(p)) if p.isdigit() else (1, p) for p in re.split(r"(\d+)", text)]
+def _natural(text: str) -> list[tuple[int, int, str]]:
+    """Sort key that puts ``seq.10`` after ``seq.2``.
+
+    Numbers compare by length, then digits (leading zeros dropped), never through ``int``:
+    a name may carry more digits than ``int`` converts, and converting would be quadratic.
+    """
+    key: list[tuple[int, int, str]] = []
+    for part in _DIGIT_RUNS.split(text):
+        if part.isascii() and part.isdigit():
+            digits = part.lstrip("0")
+            key.append((0, len(digits), digits))
+        else:
+            key.append((1, 0, part))
+    return key
+
+
+_DIGIT_RUNS = re.compile(r"([0-9]+)", re.ASCII)
 
 
 def _sibling_norm(name: str, parent: str, leaf: str, norms: Mapping[str, Norm]) -> str | None:
     """The norm module that normalises this layer's units, by PyTorch naming habits."""
     prefix = f"{parent}." if parent else ""
     candidates: list[str] = []
-    digits = re.search(r"(\d+)$", leaf)
-    if leaf.isdigit():
-        candidates.append(f"{prefix}{int(leaf) + 1}")
-    if digits and not leaf.isdigit():
-        number = digits.group(1)
+    # The trailing digits, by stripping: a regex search for them backtracks quadratically
+    # over a long run of digits that is not at the end.
+    digits = leaf[len(leaf.rstrip("0123456789")) :]
+    numbered = _numbered(leaf)
+    if numbered is not None and not numbered[0]:
+        candidates.append(f"{prefix}{numbered[2] + 1}")
+    if digits and digits != leaf:
         for stem in ("bn", "norm", "gn", "ln", "batchnorm", "bn_"):
-            candidates.append(f"{prefix}{stem}{number}")
+            candidates.append(f"{prefix}{stem}{digits}")
     if leaf in ("conv", "dense"):
         candidates += [f"{prefix}bn", f"{prefix}norm", f"{prefix}LayerNorm", f"{prefix}layer_norm"]
     if leaf == "dense":
@@ -641,6 +660,7 @@ def _attach_norms(
 def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Layer], bool]:
     """Producer → consumer links where shapes agree and names make it likely."""
     by_name = {layer.name: layer for layer in layers}
+    siblings = _Siblings(by_name)
     sources: dict[str, list[str]] = {}
     activations: dict[str, Activation] = {}
     for layer in layers:
@@ -658,7 +678,7 @@ def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Laye
             if f"{block}.intermediate.dense" in by_name:
                 found.append(f"{block}.intermediate.dense")
         # Numbered siblings: convN → convN+1, fcN → fcN+1, seq.N → next numbered layer.
-        previous = _previous_sibling(layer, parent, leaf, by_name)
+        previous = siblings.previous(parent, leaf)
         if previous is not None and not found:
             found.append(previous)
         found = [
@@ -687,24 +707,54 @@ def _link(layers: list[Layer], hidden_act: Activation | None) -> tuple[list[Laye
     return linked, bool(sources)
 
 
-def _previous_sibling(
-    layer: Layer, parent: str, leaf: str, by_name: Mapping[str, Layer]
-) -> str | None:
-    prefix = f"{parent}." if parent else ""
-    if leaf.isdigit():
-        for index in range(int(leaf) - 1, -1, -1):
-            name = f"{prefix}{index}"
-            if name in by_name:
-                return name
+#: Leaves numbered the way the numbered-sibling search understands: ``seq.<N>`` (no stem)
+#: and ``convN``/``fc_N``/``layerN``… Only ASCII digits: ``str.isdigit`` accepts superscripts
+#: that ``int`` refuses.
+_NUMBERED = re.compile(r"(?:(conv|fc|linear|dense|layer|lin|hidden)(_?))?([0-9]+)", re.ASCII)
+#: Longest number read from a name (a layer index has a handful of digits; a name carrying a
+#: longer number is simply not a numbered sibling, so no search and no int conversion limit).
+_MAX_DIGITS = 18
+
+
+def _numbered(leaf: str) -> tuple[str, str, int] | None:
+    """(stem, separator, number) of a numbered leaf (``("", "", 3)`` for ``"3"``), else None."""
+    match = _NUMBERED.fullmatch(leaf)
+    if match is None or len(match.group(3)) > _MAX_DIGITS:
         return None
-    match = re.fullmatch(r"(conv|fc|linear|dense|layer|lin|hidden)(_?)(\d+)", leaf)
-    if match:
-        stem, sep, number = match.groups()
-        for index in range(int(number) - 1, -1, -1):
-            name = f"{prefix}{stem}{sep}{index}"
-            if name in by_name:
-                return name
-    return None
+    return match.group(1) or "", match.group(2) or "", int(match.group(3))
+
+
+class _Siblings:
+    """Numbered layers indexed by (parent, stem, separator), numbers sorted.
+
+    The previous numbered sibling of ``seq.7`` is the highest-numbered ``seq.<k>`` with
+    ``k < 7``; looking it up by bisection keeps the search linear in the number of layers
+    whatever number a (hostile) name carries.
+    """
+
+    def __init__(self, names: Iterable[str]) -> None:
+        groups: dict[tuple[str, str, str], set[int]] = defaultdict(set)
+        for name in names:
+            parent, leaf = _split(name)
+            found = _numbered(leaf)
+            # The search names candidates by the canonical number (``seq.6``, never
+            # ``seq.06``), so only canonically spelled layers can be found.
+            if found is not None and leaf == f"{found[0]}{found[1]}{found[2]}":
+                groups[(parent, found[0], found[1])].add(found[2])
+        self._numbers = {key: sorted(numbers) for key, numbers in groups.items()}
+
+    def previous(self, parent: str, leaf: str) -> str | None:
+        """The nearest lower-numbered sibling of ``<parent>.<leaf>``, None when none."""
+        found = _numbered(leaf)
+        if found is None:
+            return None
+        stem, sep, number = found
+        numbers = self._numbers.get((parent, stem, sep), [])
+        position = bisect_left(numbers, number)
+        if position == 0:
+            return None
+        prefix = f"{parent}." if parent else ""
+        return f"{prefix}{stem}{sep}{numbers[position - 1]}"
 
 
 #: Layout files beside a checkpoint: ``<file stem>.layout.toml`` or ``steelyard.layout.toml``.

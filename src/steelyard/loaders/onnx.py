@@ -436,13 +436,23 @@ def _sources(weight: View | QuantWeight) -> tuple[str, ...]:
 
 
 def _unique_names(drafts: list[_Draft]) -> None:
+    """Suffix repeated layer names ``#2``, ``#3``… in draft order, in linear time.
+
+    Each base name resumes its numbering where it stopped (counting from 2 for every repeat
+    is quadratic: fifty thousand unnamed nodes sharing one weight); a suffix already taken by
+    another name is skipped once.
+    """
     seen: set[str] = set()
+    following: dict[str, int] = {}
     renamed: dict[tuple[int, str], str] = {}
     for draft in drafts:
-        name, number = draft.name, 2
-        while name in seen:
+        name = draft.name
+        if name in seen:
+            number = following.get(draft.name, 2)
+            while f"{draft.name}#{number}" in seen:
+                number += 1
             name = f"{draft.name}#{number}"
-            number += 1
+            following[draft.name] = number + 1
         seen.add(name)
         renamed[(draft.node.index, draft.name)] = name
         draft.name = name
@@ -463,8 +473,13 @@ def _layers(graphs: Graphs, folder: Folder, drafts: list[_Draft]) -> tuple[Layer
             unit_outputs[draft.out] = ()
         elif draft.kind is not LayerKind.RECURRENT and draft.out:
             unit_outputs[draft.out] = (draft.name,)
-    for node in {d.node.index: d.node for d in drafts if d.kind is LayerKind.RECURRENT}.values():
-        gates = [d for d in drafts if d.node is node and d.own_inputs is None]
+    by_node: dict[int, list[_Draft]] = {}
+    for draft in drafts:
+        if draft.kind is LayerKind.RECURRENT:
+            by_node.setdefault(draft.node.index, []).append(draft)
+    for node_drafts in by_node.values():
+        node = node_drafts[0].node
+        gates = [d for d in node_drafts if d.own_inputs is None]
         hidden = tuple(d.name for d in gates if d.gate == _HIDDEN_GATE[node.op])
         cell = tuple(d.name for d in gates if d.gate == "c")
         for position, key in enumerate(node.outputs[:3]):
@@ -565,6 +580,16 @@ def _uses(
     quantized: set[str] = set()
     book: set[str] = set()
     value: set[str] = set()
+    # Views derived from one another share their ``sources`` tuple; adding a tuple to a set
+    # once is enough (a Concat of many tensors read by many nodes would be quadratic).
+    added: set[tuple[int, int]] = set()
+
+    def add(target: set[str], names: tuple[str, ...]) -> None:
+        mark = (id(target), id(names))
+        if mark not in added:
+            added.add(mark)
+            target.update(names)
+
     for node in graphs.nodes:
         if not node.standard and node.domain != "com.microsoft":
             continue
@@ -586,12 +611,12 @@ def _uses(
                 or (spec is not None and position in spec[1])
             )
             if scale:
-                book.update(view.sources)
+                add(book, view.sources)
             elif spec is not None and position in spec[0]:
-                quantized.update(view.sources)
+                add(quantized, view.sources)
             elif not building:
-                value.update(view.sources)
-            book.update(view.aux)  # scales and zero points a DequantizeLinear was read through
+                add(value, view.sources)
+            add(book, view.aux)  # scales and zero points a DequantizeLinear was read through
     return quantized, book, value
 
 
@@ -605,8 +630,12 @@ def _roles(
     """
     quantized, book, value = _uses(graphs, folder, scale_uses)
     used: set[str] = set()
+    seen: dict[int, tuple[str, ...]] = {}  # holds each tuple, so that its id stays its own
     for draft in drafts:
-        used.update(_sources(draft.weight))
+        sources = _sources(draft.weight)
+        if id(sources) not in seen:  # shared tuples: see _uses
+            seen[id(sources)] = sources
+            used.update(sources)
         if draft.bias:
             used.add(draft.bias)
     roles: dict[str, TensorRole] = {}
@@ -656,7 +685,9 @@ class OnnxLoader:
         model = parse_model(path, files.size)
         graphs = Graphs(files)
         graphs.walk(model.graph)
-        folder = Folder(graphs.stored, graphs.producer, path, dequantize, graphs.invariant)
+        folder = Folder(
+            graphs.stored, graphs.producer, path, dequantize, graphs.invariant, files.ledger
+        )
         builder = _Builder(graphs, folder)
         drafts = builder.drafts()
         _unique_names(drafts)

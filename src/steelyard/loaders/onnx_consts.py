@@ -19,14 +19,13 @@ from typing import Any
 import ml_dtypes
 import numpy as np
 
+from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.loaders.base import file_size, inside
 from steelyard.loaders.onnx_wire import MARK, MARK_LEN
 
 #: Highest tensor rank accepted (ONNX itself has no limit; real models stay under 10).
 MAX_RANK = 32
-#: Largest dense tensor a sparse tensor may expand to.
-MAX_DENSE_BYTES = 2**31
 
 
 def text(value: Any) -> str:
@@ -149,6 +148,9 @@ class FileBytes:
         self.files: dict[Path, int] = {}
         """External data files in first-use order → size."""
         self._maps: dict[Path, mmap.mmap] = {}
+        self.ledger = budget.Ledger(path)
+        """Bytes this model makes steelyard compute beyond what it stores (densified sparse
+        tensors, folded constants)."""
 
     def view(self, target: Path, offset: int, count: int, dtype: np.dtype[Any]) -> np.ndarray:
         """``count`` elements of ``dtype`` at ``offset`` of ``target`` (bounds already checked)."""
@@ -379,9 +381,13 @@ def sparse(proto: Any, key: str, files: FileBytes) -> Stored | None:
             f"{where}: indices shape {list(indices.shape)} fits neither [{nnz}] nor "
             f"[{nnz}, {rank}]",
         )
-    count = math.prod(shape)
-    if count * values.dtype.np.itemsize > MAX_DENSE_BYTES:
-        raise LoadError(path, f"{where} would expand to more than {MAX_DENSE_BYTES} bytes")
+    # The dense array is expansion: checked and charged now, from the claimed shape, before
+    # anything is allocated (reading it later allocates exactly this).
+    count = budget.check_elements(path, shape, where)
+    itemsize = values.dtype.np.itemsize
+    stored = nnz * itemsize + math.prod(indices.shape) * indices.dtype.np.itemsize
+    budget.check_expansion(path, count * itemsize, stored, f"{where} densified")
+    files.ledger.charge(max(0, count * itemsize - stored), f"{where} densified")
     dtype = values.dtype
 
     def read() -> np.ndarray:

@@ -5,6 +5,16 @@ through Identity, Cast, Transpose, Reshape, (Un)Squeeze, Flatten, Slice and Conc
 DequantizeLinear, first. :class:`Folder` follows such chains back to stored tensors and
 returns a :class:`View` whose reader applies the same ops lazily, so a layer sees exactly the
 array the runtime would compute, while reports still name the stored tensor.
+
+Folding is budgeted before anything is computed (see :mod:`steelyard.budget`). Each view
+knows its element count, the distinct stored elements it is made of, and the elements one read
+of it materialises (a constant read twice by a Concat is computed twice). A view is refused
+when its size exceeds what it stores by more than the per-object expansion budget (a chain of
+``Concat(c, c)`` doubles a small initializer into gigabytes), or when one read would compute
+far more than its size (shared constants recomputed along a diamond chain); what each fold
+adds beyond its inputs is charged to the checkpoint's :class:`~steelyard.budget.Ledger`. A
+chain longer than :data:`MAX_CHAIN` ops is not followed (the value is treated as computed at
+run time), which keeps every view's op list and reader nesting short.
 """
 
 from __future__ import annotations
@@ -16,10 +26,18 @@ from pathlib import Path
 
 import numpy as np
 
+from steelyard import budget
+from steelyard.errors import LoadError
 from steelyard.loaders.onnx_consts import DType, Node, Stored, dtype_of
 
 #: Longest chain of look-through ops followed back from one input.
 MAX_CHAIN = 64
+#: One read of a folded constant may compute this many times its size (a Cast of a
+#: dequantized weight computes it twice) before the per-object expansion budget applies.
+WORK_COPIES = 4
+#: Stored-tensor references all Concat folds of one model may gather (each Concat lists the
+#: distinct tensors of its parts; nested Concats of many parts would otherwise be quadratic).
+MAX_SOURCE_REFS = 4_000_000
 #: Most elements a shape/axes/starts constant may have before we stop reading it at load time.
 SMALL = 64
 
@@ -42,6 +60,27 @@ class View:
     """Ops looked through, nearest the stored tensor first."""
     quantized: bool = False
     """True when a DequantizeLinear was looked through."""
+    stored_elements: int = -1
+    """Distinct stored elements the view is made of (-1: the view's own size)."""
+    work: int = 0
+    """Elements one read materialises beyond the stored bytes, counting repeated reads."""
+    depth: int = 0
+    """Ops on the longest path back to a stored tensor."""
+
+    @property
+    def elements(self) -> int:
+        """Elements of the view."""
+        return math.prod(self.shape)
+
+    @property
+    def stored(self) -> int:
+        """Distinct stored elements behind the view."""
+        return self.elements if self.stored_elements < 0 else self.stored_elements
+
+    @property
+    def expansion(self) -> int:
+        """Bytes of the view beyond the stored elements it is made of (repeats, broadcasts)."""
+        return max(0, self.elements - self.stored) * self.dtype.np.itemsize
 
 
 Dequantize = Callable[["Folder", Node], "View | None"]
@@ -57,6 +96,7 @@ class Folder:
         path: Path,
         dequantize: Dequantize | None = None,
         invariant: Mapping[str, str] | None = None,
+        ledger: budget.Ledger | None = None,
     ) -> None:
         self.stored = stored
         self.producer = producer
@@ -66,6 +106,9 @@ class Folder:
         """Loop/Scan body input → the outer value it holds in every iteration."""
         self._memo: dict[str, View | None] = {}
         self._active: set[str] = set()
+        self.ledger = ledger if ledger is not None else budget.Ledger(path)
+        self.source_refs = 0
+        """Stored-tensor references gathered by Concat folds so far (see MAX_SOURCE_REFS)."""
 
     def fold(self, key: str) -> View | None:
         """The constant behind value ``key``, or None when it is computed at run time."""
@@ -78,10 +121,40 @@ class Folder:
         self._active.add(key)
         try:
             view = self._fold(key)
+            if view is not None and view.depth > MAX_CHAIN:
+                view = None  # too long a chain to follow: treated as computed at run time
+            if view is not None and view.via:
+                self._admit(key, view)
         finally:
             self._active.discard(key)
         self._memo[key] = view
         return view
+
+    def _admit(self, key: str, view: View) -> None:
+        """Refuse a folded view that claims too much, before any of it is computed, and
+        charge what it adds beyond its inputs to the checkpoint's ledger."""
+        what = f"constant {key!r} folded through {view.via[-1]}"
+        itemsize = view.dtype.np.itemsize
+        budget.check_expansion(self.path, view.elements * itemsize, view.stored * itemsize, what)
+        budget.check_expansion(
+            self.path,
+            view.work * itemsize,
+            WORK_COPIES * max(view.elements, view.stored) * itemsize,
+            f"reading {what}",
+        )
+        own = view.expansion - sum(
+            v.expansion for v in {id(v): v for v in self._inputs(key)}.values()
+        )
+        if own > 0:
+            self.ledger.charge(own, what)
+
+    def _inputs(self, key: str) -> list[View]:
+        """The already folded views the producer of ``key`` read (memoised, so free)."""
+        found = self.producer.get(key)
+        if found is None:
+            return []
+        views = (self._memo.get(k) for k in found[0].inputs if k)
+        return [v for v in views if v is not None]
 
     def is_const(self, key: str) -> bool:
         """True when ``key`` is a constant."""
@@ -140,6 +213,9 @@ def _derive(
     def read() -> np.ndarray:
         return transform(reader())
 
+    elements = math.prod(shape)
+    # Identity-like reorderings are numpy views; anything else may copy: count it.
+    copies = op in ("Cast", "Transpose")
     return View(
         base.source,
         shape,
@@ -149,6 +225,9 @@ def _derive(
         base.aux,
         (*base.via, op),
         base.quantized,
+        base.stored,
+        base.work + (elements if copies else 0),
+        base.depth + 1,
     )
 
 
@@ -308,8 +387,16 @@ def _concat(folder: Folder, node: Node) -> View | None:
     def read() -> np.ndarray:
         return np.concatenate([r() for r in readers], axis=axis)
 
+    folder.source_refs += sum(len(v.sources) + len(v.aux) for v in views)
+    if folder.source_refs > MAX_SOURCE_REFS:
+        raise LoadError(
+            folder.path,
+            f"Concat constants refer to stored tensors more than {MAX_SOURCE_REFS:,} times "
+            "in all; too many to fold",
+        )
     sources = tuple(dict.fromkeys(s for v in views for s in v.sources))
     aux = tuple(dict.fromkeys(s for v in views for s in v.aux))
+    stored = sum(math.prod(folder.stored[s].shape) if s in folder.stored else 0 for s in sources)
     return View(
         views[0].source,
         tuple(shape),
@@ -319,6 +406,9 @@ def _concat(folder: Folder, node: Node) -> View | None:
         aux,
         (*views[0].via, "Concat"),
         any(v.quantized for v in views),
+        stored,
+        sum(v.work for v in views) + math.prod(shape),
+        max(v.depth for v in views) + 1,
     )
 
 

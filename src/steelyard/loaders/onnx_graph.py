@@ -29,6 +29,9 @@ MAX_NESTING = 32
 MAX_STEPS = 256
 #: Values one backward walk may visit before the answer is "unknown".
 MAX_VISITS = 100_000
+#: Most layers one value may be traced back to (a Concat of that many layer outputs is
+#: "unknown"); keeps the memoised answers linear in the model's size.
+MAX_SOURCES = 1024
 
 _CONTROL_FLOW = ("If", "Loop", "Scan")
 
@@ -55,6 +58,8 @@ class Graphs:
         """Body input → the outer value it holds in every iteration: a Loop/Scan state that the
         body hands back unchanged (a weight carried through the loop)."""
         self._keys: set[str] = set()
+        self._next: dict[str, int] = {}
+        """Base key → the next ``#<n>`` suffix to try, so repeated names stay linear."""
 
     def walk(self, graph: Any) -> None:
         """Walk the main graph and, recursively, its subgraphs."""
@@ -63,10 +68,16 @@ class Graphs:
 
     def _key(self, name: str, scope: str) -> str:
         key = name if name and name not in self._keys else f"{scope}{name or '<unnamed>'}"
-        base, number = key, 2
-        while key in self._keys:
+        if key in self._keys:
+            # Resume where this base's numbering stopped: counting from 2 every time would be
+            # quadratic in the number of repeats (tens of thousands of unnamed tensors). A
+            # suffix taken by another name is skipped once and never looked at again.
+            base = key
+            number = self._next.get(base, 2)
+            while f"{base}#{number}" in self._keys:
+                number += 1
             key = f"{base}#{number}"
-            number += 1
+            self._next[base] = number + 1
         self._keys.add(key)
         return key
 
@@ -532,7 +543,8 @@ class Tracer:
                     break
                 names.extend(found)
             else:
-                memo[current] = tuple(dict.fromkeys(names))
+                unique = tuple(dict.fromkeys(names))
+                memo[current] = unique if len(unique) <= MAX_SOURCES else None
         return memo.get(key)
 
     def _step(self, key: str) -> tuple[bool, Any]:

@@ -87,7 +87,19 @@ def dequantize(folder: Folder, node: Node) -> View | None:
         return np.asarray((values - z) * s, dtype=np.float32)
 
     aux = tuple(dict.fromkeys((*q.aux, *scale.sources, *(zero.sources if zero else ()))))
-    return View(q.source, q.shape, _F32, read, q.sources, aux, (*q.via, "DequantizeLinear"), True)
+    return View(
+        q.source,
+        q.shape,
+        _F32,
+        read,
+        q.sources,
+        aux,
+        (*q.via, "DequantizeLinear"),
+        True,
+        q.stored,
+        q.work + scale.work + (zero.work if zero else 0) + math.prod(q.shape),
+        max(q.depth, scale.depth, zero.depth if zero else 0) + 1,
+    )
 
 
 @dataclass(frozen=True)

@@ -27,9 +27,14 @@ from tests.hostile.harness import assert_bounded, assert_refused, run
 # --- writers ------------------------------------------------------------------------------
 
 
-def _save_onnx(path: Path, nodes: list[onnx.NodeProto], inits: list[onnx.TensorProto],
-               outputs: list[str], sparse: list[onnx.SparseTensorProto] | None = None,
-               inputs: tuple[str, ...] = ("x",)) -> Path:
+def _save_onnx(
+    path: Path,
+    nodes: list[onnx.NodeProto],
+    inits: list[onnx.TensorProto],
+    outputs: list[str],
+    sparse: list[onnx.SparseTensorProto] | None = None,
+    inputs: tuple[str, ...] = ("x",),
+) -> Path:
     graph = helper.make_graph(
         nodes,
         "hostile",
@@ -110,8 +115,7 @@ def _doubling(path: Path, rows: int, levels: int) -> Path:
         np.random.default_rng(1).standard_normal((rows, 64)).astype(np.float32), "c0"
     )
     nodes = [
-        helper.make_node("Concat", [f"c{i}", f"c{i}"], [f"c{i + 1}"], axis=0)
-        for i in range(levels)
+        helper.make_node("Concat", [f"c{i}", f"c{i}"], [f"c{i + 1}"], axis=0) for i in range(levels)
     ]
     nodes.append(helper.make_node("Gemm", ["x", f"c{levels}"], ["y"], name="gemm", transB=1))
     return _save_onnx(path, nodes, [init], ["y"])
@@ -163,9 +167,7 @@ def test_long_chain_of_look_through_ops_reads_in_linear_time(tmp_path: Path) -> 
     count = 60_000
     init = numpy_helper.from_array(np.ones((4, 4), dtype=np.float32), "c0")
     shape = numpy_helper.from_array(np.array([4, 4], dtype=np.int64), "shape")
-    nodes = [
-        helper.make_node("Reshape", [f"c{i}", "shape"], [f"c{i + 1}"]) for i in range(count)
-    ]
+    nodes = [helper.make_node("Reshape", [f"c{i}", "shape"], [f"c{i + 1}"]) for i in range(count)]
     nodes.append(helper.make_node("Gemm", ["x", f"c{count}"], ["y"], name="gemm"))
     model = _save_onnx(tmp_path / "chain.onnx", nodes, [init, shape], ["y"])
     outcome = run(["layers", str(model)], tmp_path)
@@ -199,9 +201,7 @@ def test_many_unnamed_nodes_sharing_a_weight_load_in_linear_time(
     # 50k Gemm nodes reading one weight: every layer is first named after that weight.
     count = 50_000
     weight = numpy_helper.from_array(np.ones((2, 2), dtype=np.float32), "W")
-    nodes = [
-        helper.make_node("Gemm", ["x", "W"], [f"y{i}"], name=node_name) for i in range(count)
-    ]
+    nodes = [helper.make_node("Gemm", ["x", "W"], [f"y{i}"], name=node_name) for i in range(count)]
     model = _save_onnx(tmp_path / "nodes.onnx", nodes, [weight], ["y0"])
     outcome = run(["layers", "--format", "json", str(model)], tmp_path)
     assert_bounded(outcome)

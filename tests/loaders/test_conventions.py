@@ -287,3 +287,54 @@ def test_cli_exits_2_on_a_bad_layout(tmp_path: Path, rng: np.random.Generator) -
     assert "flax.layout.toml" in result.output
     assert "weight tensor 'missing' is not in the checkpoint" in result.output
     assert "Traceback" not in result.output
+
+
+def _previous_by_scan(name: str, names: set[str]) -> str | None:
+    """The numbered-sibling rule written as the plain downward scan (small numbers only)."""
+    import re
+
+    parent, _, leaf = name.rpartition(".")
+    prefix = f"{parent}." if parent else ""
+    match = re.fullmatch(r"(?:(conv|fc|linear|dense|layer|lin|hidden)(_?))?([0-9]+)", leaf)
+    if match is None:
+        return None
+    stem, sep = match.group(1) or "", match.group(2) or ""
+    for index in range(int(match.group(3)) - 1, -1, -1):
+        if f"{prefix}{stem}{sep}{index}" in names:
+            return f"{prefix}{stem}{sep}{index}"
+    return None
+
+
+def test_numbered_sibling_index_agrees_with_a_downward_scan() -> None:
+    from steelyard.loaders.conventions import _Siblings, _split
+
+    rng = np.random.default_rng(7)
+    stems = ["", "conv", "fc_", "layer", "dense"]
+    parents = ["", "a", "a.b", "blocks.3"]
+    names = {
+        f"{p + '.' if p else ''}{s}{n}"
+        for p, s, n in zip(
+            rng.choice(parents, 300), rng.choice(stems, 300), rng.integers(0, 40, 300), strict=True
+        )
+    } | {"a.007", "a.conv03", "x.fc"}
+    siblings = _Siblings(names)
+    for name in sorted(names):
+        parent, leaf = _split(name)
+        assert siblings.previous(parent, leaf) == _previous_by_scan(name, names), name
+
+
+def test_names_with_huge_or_non_ascii_numbers_neither_search_nor_crash(tmp_path: Path) -> None:
+    # A name may carry more digits than int() converts (Python's 4300-digit limit) or digits
+    # that str.isdigit accepts but int refuses (superscripts): neither is a layer index.
+    tensors = {
+        f"seq.{number}.weight": np.ones((4, 4, 3, 3), np.float32)
+        for number in ("0", "9" * 30, "7" * 5000, "\u00b2", "1")
+    }
+    tensors["bn" + "1" * 5000 + "x.weight"] = np.ones((4, 4), np.float32)
+    path = tmp_path / "numbers.safetensors"
+    st_numpy.save_file(tensors, str(path))
+    checkpoint = load(path)
+    links = {layer.name: layer.inputs_from for layer in checkpoint.layers}
+    assert links["seq.1"] == ("seq.0",)  # the ordinary search still works
+    assert links["seq." + "9" * 30] == ()
+    assert links["seq." + "7" * 5000] == ()

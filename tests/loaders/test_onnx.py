@@ -1379,3 +1379,99 @@ def test_mutated_files_load_or_raise_load_error(
         _read_everything(checkpoint)
     except LoadError as exc:
         assert str(path) in str(exc)
+
+
+# --- budgets and linear-time passes -------------------------------------------------------
+
+
+def _sparse_gemm(tmp: Path, dims: list[int]) -> tuple[Path, onnx.SparseTensorProto]:
+    values = numpy_helper.from_array(np.array([1.5, -2.0], dtype=np.float32), "W")
+    indices = numpy_helper.from_array(np.array([0, 5], dtype=np.int64), "W_idx")
+    sparse = helper.make_sparse_tensor(values, indices, dims)
+    graph = helper.make_graph(
+        [helper.make_node("Gemm", ["x", "W"], ["y"], name="g")],
+        "g",
+        [_vi("x")],
+        [_vi("y")],
+        sparse_initializer=[sparse],
+    )
+    return _save(tmp, graph), sparse
+
+
+def test_sparse_tensor_is_densified_only_within_the_expansion_budget(tmp_path: Path) -> None:
+    from steelyard import budget
+
+    path, sparse = _sparse_gemm(tmp_path, [512, 1024])  # 2 MiB dense from 24 stored bytes
+    with budget.using(budget.Budget(expansion_bytes=2**20)), pytest.raises(LoadError, match="expansion budget"):
+        load(path)
+    # Within the budget the dense values are the reference densification (numpy_helper).
+    np.testing.assert_array_equal(load(path).tensors["W"].read(), _dense(sparse))
+
+
+def test_sparse_tensors_are_charged_to_the_checkpoint_budget(tmp_path: Path) -> None:
+    from steelyard import budget
+
+    path, _ = _sparse_gemm(tmp_path, [512, 1024])
+    with budget.using(budget.Budget(checkpoint_expansion_bytes=2**20)), pytest.raises(LoadError, match="inflated for this checkpoint"):
+        load(path)
+
+
+def _concat_chain(tmp: Path, levels: int) -> Path:
+    init = numpy_helper.from_array(np.arange(64 * 64, dtype=np.float32).reshape(64, 64), "c0")
+    nodes = [
+        helper.make_node("Concat", [f"c{i}", f"c{i}"], [f"c{i + 1}"], axis=0)
+        for i in range(levels)
+    ]
+    nodes.append(helper.make_node("Gemm", ["x", f"c{levels}"], ["y"], name="g", transB=1))
+    graph = helper.make_graph(nodes, "g", [_vi("x")], [_vi("y")], initializer=[init])
+    return _save(tmp, graph)
+
+
+def test_folded_constant_matches_the_reference_evaluator_within_budget(tmp_path: Path) -> None:
+    path = _concat_chain(tmp_path, 3)
+    layer = load(path).layers[0]
+    x = np.random.default_rng(0).standard_normal((2, 64)).astype(np.float32)
+    # reference: onnx.reference.ReferenceEvaluator runs the Concat chain and the Gemm
+    expected = run(onnx.load(str(path)), {"x": x})["y"]
+    np.testing.assert_allclose(x @ layer.matrix().T, expected, rtol=1e-5)
+
+
+def test_folded_constant_beyond_the_expansion_budget_is_refused(tmp_path: Path) -> None:
+    from steelyard import budget
+
+    path = _concat_chain(tmp_path, 8)  # 16 KiB stored, 4 MiB folded
+    with budget.using(budget.Budget(expansion_bytes=2**20)), pytest.raises(LoadError, match="folded through Concat"):
+        load(path)
+
+
+def test_repeated_layer_names_get_numbered_suffixes_in_order(tmp_path: Path) -> None:
+    # Four unnamed Gemm nodes read one weight, and a fifth node is literally named "W#3":
+    # the suffixes skip the name already taken.
+    weight = numpy_helper.from_array(np.ones((2, 2), dtype=np.float32), "W")
+    other = numpy_helper.from_array(np.ones((2, 2), dtype=np.float32), "V")
+    nodes = [helper.make_node("Gemm", ["x", "V"], ["v"], name="W#3")]
+    nodes += [helper.make_node("Gemm", ["x", "W"], [f"y{i}"]) for i in range(4)]
+    graph = helper.make_graph(nodes, "g", [_vi("x")], [_vi("y0")], initializer=[weight, other])
+    names = [layer.name for layer in load(_save(tmp_path, graph)).layers]
+    assert names == ["W#3", "W", "W#2", "W#4", "W#5"]
+
+
+def test_unnamed_initializers_get_distinct_keys(tmp_path: Path) -> None:
+    inits = [numpy_helper.from_array(np.array([float(i)], dtype=np.float32), "") for i in range(5)]
+    inits.append(numpy_helper.from_array(np.ones((2, 2), dtype=np.float32), "W"))
+    graph = helper.make_graph(
+        [helper.make_node("Gemm", ["x", "W"], ["y"], name="g")],
+        "g",
+        [_vi("x")],
+        [_vi("y")],
+        initializer=inits,
+    )
+    tensors = load(_save(tmp_path, graph)).tensors
+    unnamed = sorted(k for k in tensors if k.startswith("<unnamed>"))
+    assert unnamed == ["<unnamed>", *(f"<unnamed>#{i}" for i in range(2, 6))]
+    # Values stay with their own key (reference: onnx.numpy_helper.to_array of each).
+    assert [float(tensors[k].read()[0]) for k in ["<unnamed>", "<unnamed>#2", "<unnamed>#5"]] == [
+        0.0,
+        1.0,
+        4.0,
+    ]

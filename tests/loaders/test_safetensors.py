@@ -244,3 +244,28 @@ def test_layout_file_overrides_orientation_activation_and_links(tmp_path: Path, 
     (tmp_path / "tf.layout.toml").write_text('[[layer]]\nname = "nope"\n')
     with pytest.raises(LoadError, match="checkpoint lacks"):
         load(path)
+
+
+@pytest.mark.parametrize(
+    "shape", [(2**40, 0), (0, 2**40), (2**30, 0, 3, 3)], ids=["units", "inputs", "conv"]
+)
+def test_zero_element_weight_claiming_huge_dims_is_refused_by_the_unit_budget(
+    tmp_path: Path, shape: tuple[int, ...]
+) -> None:
+    # The reference writer (safetensors.numpy.save_file) stores a zero-element tensor with
+    # any dims; it holds no bytes, but a layer built on it would claim 2**30+ units or inputs.
+    path = tmp_path / "zero.safetensors"
+    st_numpy.save_file(
+        {"fc.weight": np.zeros(shape, np.float32), "head.weight": np.ones((2, 2), np.float32)},
+        str(path),
+    )
+    with pytest.raises(LoadError, match="unit budget"):
+        load(path)
+
+
+def test_zero_element_weight_within_the_unit_budget_still_loads(tmp_path: Path) -> None:
+    # Reference writer: safetensors.numpy.save_file; a [16, 0] weight is an (empty) layer.
+    path = tmp_path / "zero.safetensors"
+    st_numpy.save_file({"fc.weight": np.zeros((16, 0), np.float32)}, str(path))
+    layer = load(path).layers[0]
+    assert (layer.units, layer.in_per_group) == (16, 0)

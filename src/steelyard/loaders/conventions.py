@@ -980,21 +980,27 @@ def apply_layout(
         if name not in kept_names:
             raise LoadError(path, f"layout names layer {name!r}, which the checkpoint lacks")
     # Declared layers take the place of the inferred layer they replace, else go last.
+    # Sets and maps throughout: list membership and per-layer scans of the entries would be
+    # quadratic in the number of layers.
     replaced = {layer.weight: layer for layer in declared}
     merged: list[Layer] = []
+    placed: set[str] = set()
     for layer in layers:
         if layer.weight in replaced:
-            if replaced[layer.weight] not in merged:
+            if layer.weight not in placed:
+                placed.add(layer.weight)
                 merged.append(replaced[layer.weight])
         else:
             merged.append(layer)
-    merged += [layer for layer in declared if layer not in merged]
+    merged += [layer for layer in declared if layer.weight not in placed]
     by_name = {layer.name: layer for layer in merged}
+    declaring: dict[str, Mapping[str, Any]] = {}
+    for e in entries:
+        if "weight" in e:
+            declaring.setdefault(e["name"], e)
     out: list[Layer] = []
     for layer in merged:
-        entry: Mapping[str, Any] = adjust.get(layer.name) or next(
-            (e for e in entries if "weight" in e and e["name"] == layer.name), {}
-        )
+        entry: Mapping[str, Any] = adjust.get(layer.name) or declaring.get(layer.name, {})
         update = _adjusted(layer, tensors, entry, default) if "weight" not in entry else {}
         if "inputs-from" in entry:
             missing = [n for n in entry["inputs-from"] if n not in by_name]

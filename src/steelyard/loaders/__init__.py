@@ -17,6 +17,7 @@ from steelyard.safepath import kind_of, open_regular
 #: (module, class) of each loader, in sniffing order. Imported on first use so that a
 #: broken optional reader never stops the others.
 _REGISTRY: tuple[tuple[str, str], ...] = (
+    ("steelyard.loaders.adapter", "AdapterLoader"),
     ("steelyard.loaders.safetensors", "SafetensorsLoader"),
     ("steelyard.loaders.npz", "NpzLoader"),
     ("steelyard.loaders.keras_archive", "KerasArchiveLoader"),

@@ -28,6 +28,7 @@ _MODULES = (
     "steelyard.rules.untrained_layer",
     "steelyard.rules.constraint_breach",
     "steelyard.rules.uncovered_weights",
+    "steelyard.rules.adapter_update",
     "steelyard.compare.checks.new_nonfinite",
     "steelyard.compare.checks.frozen_layer_moved",
     "steelyard.compare.checks.units_died",

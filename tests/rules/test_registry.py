@@ -36,6 +36,7 @@ from steelyard.rules.dead_unit import DeadUnitSettings
 AUDIT = {
     "nonfinite", "dead-unit", "fan-in-norm", "twin-units",
     "unsupported-weight", "untrained-layer", "constraint-breach", "uncovered-weights",
+    "adapter-update",
 }
 COMPARE = {"layer-drift", "frozen-layer-moved", "units-died", "new-nonfinite"}
 REPO = Path(__file__).resolve().parents[2]

@@ -33,6 +33,14 @@ R₁R₂ᵀ (Golub & Van Loan, *Matrix Computations*, §5.2 and §8.6); ‖ΔW�
 
 Non-finite factors are reported by ``nonfinite`` (the factors are counted tensors), not here.
 
+**Why it matters.** An adapter is shipped to change a base model in a few layers; each of
+these defects means it does not do what the fine-tune was meant to do: a zero update ships
+the base model unchanged under a new name, an update many times the base weight destroys
+what pre-training learned (LoRA is meant to be a small low-rank correction, Hu et al. 2021,
+§4), and a config that names other modules than the file holds makes peft silently load
+nothing for them (peft 0.21 ``inject_adapter`` and ``set_peft_model_state_dict``). Unused
+rank only costs memory and parameters, so it is informational.
+
 **Severity and score.** Zero update: error, score ``scoring.score(1, 1)`` = 100 (the whole
 layer is implicated). Update dwarfs the base: warning, ``scoring.score(1, ρ / limit)``.
 Configuration mismatch: warning, ``scoring.score(1, 1)``. Unused rank: info,

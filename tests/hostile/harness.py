@@ -1,19 +1,22 @@
 """Run steelyard on a hostile input in a child process and measure what it cost.
 
-Each case runs ``python -m tests.hostile._child`` (the real CLI) with an address-space cap of
-4 GiB, so that an unbudgeted allocation of a few GiB *succeeds* and shows up in the peak
+Each case runs the real CLI in a child forked from one pre-imported process
+(``_zygote.py``: imports cost seconds per case otherwise) with an address-space cap of 4 GiB,
+so that an unbudgeted allocation of a few GiB *succeeds* and shows up in the peak
 resident size (a lower cap would turn the bomb into a MemoryError and hide the missing
-check). The parent reads the child's peak RSS from ``wait4`` and its wall time, and the child
-logs every file it opens (see ``_child.py``).
+check). The zygote reads the child's peak RSS from ``wait4`` and its wall time, and the child
+logs every file it opens (see ``_zygote.py``). The peak includes the zygote's own pages the
+child inherited (about 150 MB), as a freshly started process would have them too.
 """
 
 from __future__ import annotations
 
+import atexit
+import json
 import os
-import resource
 import subprocess
 import sys
-import time
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -42,62 +45,92 @@ class Outcome:
         return [line for line in self.stderr.splitlines() if line.strip()]
 
 
-def _limits() -> None:
-    resource.setrlimit(resource.RLIMIT_AS, (_ADDRESS_CAP, _ADDRESS_CAP))
-    resource.setrlimit(resource.RLIMIT_CORE, (0, 0))
+class _Zygote:
+    """The one pre-imported process that forks the cases (see ``_zygote.py``)."""
+
+    def __init__(self) -> None:
+        env = {
+            **os.environ,
+            "PYTHONPATH": os.pathsep.join([str(REPO), os.environ.get("PYTHONPATH", "")]),
+            "NO_COLOR": "1",
+            "COLUMNS": "120",
+            # One BLAS thread: the zygote must stay single-threaded to fork safely, and
+            # thread arenas would otherwise dominate the address space.
+            "OPENBLAS_NUM_THREADS": "1",
+            "OMP_NUM_THREADS": "1",
+            "MKL_NUM_THREADS": "1",
+        }
+        self.process = subprocess.Popen(
+            [sys.executable, "-m", "tests.hostile._zygote"],
+            cwd=REPO,
+            env=env,
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+        assert self.process.stdout is not None
+        ready = self.process.stdout.readline()
+        assert ready.strip() == "ready", ready
+
+    def alive(self) -> bool:
+        return self.process.poll() is None
+
+    def ask(self, request: dict[str, object]) -> dict[str, object]:
+        assert self.process.stdin is not None and self.process.stdout is not None
+        self.process.stdin.write(json.dumps(request) + "\n")
+        self.process.stdin.flush()
+        reply: dict[str, object] = json.loads(self.process.stdout.readline())
+        return reply
+
+    def close(self) -> None:
+        if self.process.stdin is not None:
+            self.process.stdin.close()
+        self.process.wait(timeout=10)
+
+
+_zygote: _Zygote | None = None
+
+
+def _server() -> _Zygote:
+    global _zygote
+    if _zygote is None or not _zygote.alive():
+        _zygote = _Zygote()
+        atexit.register(_zygote.close)
+    return _zygote
 
 
 def run(args: list[str], cwd: Path, timeout: float = 4 * SECONDS, stdin: bytes = b"") -> Outcome:
-    """Run ``steelyard *args`` in ``cwd``; kill it after ``timeout`` seconds."""
-    log = cwd / ".opened.log" if cwd.is_dir() else Path(os.devnull)
-    env = {
-        **os.environ,
-        "PYTHONPATH": os.pathsep.join([str(REPO), os.environ.get("PYTHONPATH", "")]),
-        "STEELYARD_OPEN_LOG": str(log),
-        "NO_COLOR": "1",
-        "COLUMNS": "120",
-        # One BLAS thread: thread arenas would otherwise dominate the address space.
-        "OPENBLAS_NUM_THREADS": "1",
-        "OMP_NUM_THREADS": "1",
-        "MKL_NUM_THREADS": "1",
-    }
-    started = time.monotonic()
-    child = subprocess.Popen(
-        [sys.executable, "-m", "tests.hostile._child", *args],
-        cwd=cwd,
-        env=env,
-        stdin=subprocess.PIPE,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        preexec_fn=_limits,
-    )
-    try:
-        out, err = child.communicate(stdin, timeout=timeout)
-    except subprocess.TimeoutExpired:
-        child.kill()
-        out, err = child.communicate()
-        raise AssertionError(f"steelyard {args} ran longer than {timeout} s") from None
-    seconds = time.monotonic() - started
-    # The child reports its own peak RSS at exit (RUSAGE_CHILDREN would be the maximum over
-    # every child this test process ever reaped). A child that died before writing it falls
-    # back to that maximum, which can only make the check stricter.
-    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss * 1024
-    opened: tuple[str, ...] = ()
-    if log != Path(os.devnull) and log.exists():
-        lines = [line for line in log.read_text(errors="replace").splitlines() if line]
-        log.unlink()
-        if lines and lines[0].startswith("peak "):
-            peak = int(lines[0].split()[1])
-            lines = lines[1:]
-        opened = tuple(lines)
-    return Outcome(
-        child.returncode,
-        out.decode(errors="replace"),
-        err.decode(errors="replace"),
-        seconds,
-        peak,
-        opened,
-    )
+    """Run ``steelyard *args`` in ``cwd`` in a forked child; kill it after ``timeout`` s."""
+    with tempfile.TemporaryDirectory(prefix="steelyard-case-") as scratch:
+        where = Path(scratch)
+        (where / "stdin").write_bytes(stdin)
+        reply = _server().ask(
+            {
+                "args": [str(a) for a in args],
+                "cwd": str(cwd if cwd.is_dir() else cwd.parent),
+                "stdin": str(where / "stdin"),
+                "stdout": str(where / "stdout"),
+                "stderr": str(where / "stderr"),
+                "log": str(where / "opened"),
+                "timeout": timeout,
+                "address_cap": _ADDRESS_CAP,
+            }
+        )
+        if reply["timed_out"]:
+            raise AssertionError(f"steelyard {args} ran longer than {timeout} s")
+        log = where / "opened"
+        opened = tuple(
+            line for line in (log.read_text(errors="replace") if log.exists() else "").splitlines()
+            if line
+        )
+        return Outcome(
+            int(reply["code"]),  # type: ignore[call-overload]
+            (where / "stdout").read_bytes().decode(errors="replace"),
+            (where / "stderr").read_bytes().decode(errors="replace"),
+            float(reply["seconds"]),  # type: ignore[arg-type]
+            int(reply["peak"]),  # type: ignore[call-overload]
+            opened,
+        )
 
 
 def assert_refused(outcome: Outcome, *fragments: str) -> None:
@@ -120,7 +153,7 @@ def assert_bounded(outcome: Outcome) -> None:
 
 
 def assert_stayed_inside(outcome: Outcome, outside: Path) -> None:
-    """No file under ``outside`` was opened (Python-level opens; see ``_child.py``)."""
+    """No file under ``outside`` was opened (Python-level opens; see ``_zygote.py``)."""
     base = str(outside.resolve())
     leaked = [p for p in outcome.opened if str(Path(p).resolve()).startswith(base)]
     assert not leaked, leaked

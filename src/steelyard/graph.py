@@ -27,6 +27,7 @@ class Format(str, Enum):
     KERAS = "keras"
     NPZ = "npz"
     PYTORCH = "pytorch"
+    GGUF = "gguf"
 
 
 class LayerKind(str, Enum):

@@ -158,7 +158,9 @@ def _dequantized_span(data: DataFile, info: TensorInfo) -> Callable[[int, int], 
         for a in range(first, last, step):
             b = min(last, a + step)
             raw = data.read(info.offset + a * type_size, (b - a) * type_size)
-            values = np.asarray(dequantize(raw.reshape(1, -1), kind), dtype=np.float32)
+            # A NaN or Inf scale is data the audit reports, not a warning to print.
+            with np.errstate(all="ignore"):
+                values = np.asarray(dequantize(raw.reshape(1, -1), kind), dtype=np.float32)
             values = values.reshape(-1)
             lo, hi = max(start, a * block), min(stop, b * block)
             out[lo - start : hi - start] = values[lo - a * block : hi - a * block]

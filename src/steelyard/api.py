@@ -13,7 +13,7 @@ import struct
 import zipfile
 from collections.abc import Callable, Sequence
 from contextlib import AbstractContextManager, nullcontext
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from steelyard import __version__, discovery
@@ -90,9 +90,17 @@ def audit_one(
         return _audited(checkpoint, policy, source, _jobs(jobs))
 
 
-def plan(paths: Sequence[str | Path], grads: str | Path | None = None) -> Plan:
-    """What a run over ``paths`` audits (folders searched recursively) and what it skips."""
-    return discovery.plan(paths, exclude=[grads] if grads is not None else [])
+def plan(
+    paths: Sequence[str | Path], grads: str | Path | None = None, base: str | Path | None = None
+) -> Plan:
+    """What a run over ``paths`` audits (folders searched recursively) and what it skips;
+    the side inputs (a gradient sidecar, an adapter's base model) are never targets."""
+    sides: dict[str | Path, str] = {}
+    if grads is not None:
+        sides[grads] = "the --grads sidecar of this run"
+    if base is not None:
+        sides[base] = "the --base model of this run"
+    return discovery.plan(paths, exclude=sides)
 
 
 def expand_paths(paths: Sequence[str | Path]) -> list[Path]:
@@ -124,6 +132,7 @@ def audit_many(
     jobs: int | None = None,
     unreadable_fails_gate: bool = False,
     budget: Budget | None = None,
+    base: str | Path | None = None,
 ) -> Report:
     """Audit several checkpoints (files, shard indexes, folders) under one gate.
 
@@ -132,28 +141,47 @@ def audit_many(
     threads per checkpoint (default: the machine's cores); the report is the same for every
     value. A ``grads`` sidecar gives support to the checkpoints whose layers it matches; one
     that matches no checkpoint of the run is an input error. Reading runs under ``budget``
-    (else the policy's ``[budget]`` table, else the budget in force).
+    (else the policy's ``[budget]`` table, else the budget in force). With ``base``, every
+    LoRA/DoRA adapter of the run is audited merged onto that base model (the other
+    checkpoints as they are); a base that no adapter of the run uses is an input error.
     """
     chosen = policy or Policy()
     with _limits(budget, chosen):
         return _audit_many(
-            paths, chosen, grads, grads_kind, created, on_checkpoint, jobs, unreadable_fails_gate
+            paths,
+            chosen,
+            _Sides(grads, grads_kind, base),
+            created,
+            on_checkpoint,
+            jobs,
+            unreadable_fails_gate,
         )
+
+
+@dataclass(frozen=True)
+class _Sides:
+    """The side inputs of a run: a gradient sidecar and a base model for adapters."""
+
+    grads: str | Path | None
+    grads_kind: GradsKind
+    base: str | Path | None
 
 
 def _audit_many(
     paths: Sequence[str | Path] | Plan,
     chosen: Policy,
-    grads: str | Path | None,
-    grads_kind: GradsKind,
+    sides: _Sides,
     created: str | None,
     on_checkpoint: Callable[[str], None] | None,
     jobs: int | None,
     unreadable_fails_gate: bool,
 ) -> Report:
-    run = paths if isinstance(paths, Plan) else plan(paths, grads)
+    grads, grads_kind = sides.grads, sides.grads_kind
+    run = paths if isinstance(paths, Plan) else plan(paths, grads, sides.base)
     workers = _jobs(jobs)
     sidecar = _load(grads) if grads is not None else None
+    base = _load(sides.base) if sides.base is not None else None
+    base_used = False
     audits: list[CheckpointAudit] = []
     errors = list(run.errors)
     consumed: set[str] = set()
@@ -164,10 +192,12 @@ def _audit_many(
         if on_checkpoint is not None:
             on_checkpoint(str(path))
         try:
-            audit, used = _audit_target(path, chosen, sidecar, grads_kind, workers, run)
+            checkpoint, merged = _target(path, base)
+            audit, used = _audit_target(checkpoint, chosen, sidecar, grads_kind, workers, run)
         except LoadError as error:
             errors.append(InputError(str(error.path), error.reason))
             continue
+        base_used |= merged
         sidecar_used |= used
         audits.append(audit)
         consumed |= {_same(f) for f in audit.checkpoint.get("files", ())}
@@ -178,6 +208,8 @@ def _audit_many(
             )
     if sidecar is not None and audits and not sidecar_used:
         raise LoadError(sidecar.path, "gradient sidecar matches no layer of any checkpoint of this run")
+    if base is not None and not base_used and (audits or not errors):
+        raise LoadError(base.path, "--base was given but no checkpoint of this run is an adapter")
     return Report(
         tool_version=__version__,
         created=created or now(),
@@ -196,8 +228,23 @@ def _same(path: str | Path) -> str:
     return os.path.normcase(os.path.abspath(path))
 
 
+def _target(path: Path, base: Checkpoint | None) -> tuple[Checkpoint, bool]:
+    """The checkpoint to audit for ``path``, and whether it is an adapter merged onto
+    ``base``."""
+    if base is not None:
+        from steelyard.loaders.adapter import is_adapter_file
+
+        with open(path, "rb") as handle:
+            head = handle.read(4096)
+        if is_adapter_file(path, head):
+            from steelyard.loaders.adapter import load_adapter
+
+            return load_adapter(path, base=base), True
+    return _load(path), False
+
+
 def _audit_target(
-    path: Path,
+    checkpoint: Checkpoint,
     policy: Policy,
     sidecar: Checkpoint | None,
     grads_kind: GradsKind,
@@ -205,7 +252,6 @@ def _audit_target(
     run: Plan,
 ) -> tuple[CheckpointAudit, bool]:
     """One checkpoint's audit, and whether the sidecar gave it support."""
-    checkpoint = _load(path)
     if sidecar is None:
         return _audited(checkpoint, policy, optimizer_source(checkpoint), jobs), False
     try:
@@ -258,15 +304,23 @@ def audit(
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
     budget: Budget | None = None,
+    base: str | Path | None = None,
 ) -> Report:
     """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document.
 
     A file that cannot be read raises :class:`~steelyard.errors.LoadError`; a folder is
     audited as :func:`audit_many` does, each checkpoint with its own result. ``budget``
-    limits what reading may cost (see :mod:`steelyard.budget`).
+    limits what reading may cost (see :mod:`steelyard.budget`); ``base`` is the base model a
+    LoRA/DoRA adapter is merged onto.
     """
     report = audit_many(
-        [path], policy=policy, grads=grads, grads_kind=grads_kind, jobs=jobs, budget=budget
+        [path],
+        policy=policy,
+        grads=grads,
+        grads_kind=grads_kind,
+        jobs=jobs,
+        budget=budget,
+        base=base,
     )
     if report.errors and not report.audits and not Path(path).is_dir():
         error = report.errors[0]

@@ -314,6 +314,12 @@ def audit(
     grads_kind: GradsKind = typer.Option(
         GradsKind.RMS, "--grads-kind", help="What the sidecar holds."
     ),
+    base: Path | None = typer.Option(
+        None,
+        "--base",
+        help="Base model that the LoRA/DoRA adapters of the run are merged onto, so the rules "
+        "see the merged weights and the report how large each update is.",
+    ),
     format: AuditFormat | None = typer.Option(
         None, "--format", "-f", help="Output format [default: table]."
     ),
@@ -353,7 +359,7 @@ def audit(
         _reading(baseline)
         accepted = read_baseline(baseline) if baseline is not None else None
         _reading(paths[0] if len(paths) == 1 else "the checkpoints named")
-        run = api.plan(paths, grads)
+        run = api.plan(paths, grads, base)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(run.targets)) as progress:
 
             def advance(path: str) -> None:
@@ -369,6 +375,7 @@ def audit(
                 jobs=jobs,
                 unreadable_fails_gate=unreadable is Unreadable.gate_failure,
                 budget=limits,
+                base=base,
             )
         _STATE["reading"] = None
         if len(paths) == 1 and not paths[0].is_dir() and report.errors and not report.audits:

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import os
 import re
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -82,11 +82,19 @@ class Plan:
     """Files of other kinds (configs, tokenizers, readmes) in the folders walked."""
 
 
-def plan(paths: Sequence[str | Path], exclude: Sequence[str | Path] = ()) -> Plan:
-    """The checkpoints ``paths`` stand for. ``exclude`` (e.g. the ``--grads`` sidecar) is
-    never audited."""
+def plan(
+    paths: Sequence[str | Path], exclude: Sequence[str | Path] | Mapping[str | Path, str] = ()
+) -> Plan:
+    """The checkpoints ``paths`` stand for. ``exclude`` (the run's side inputs: a ``--grads``
+    sidecar, a ``--base`` model; files or folders) is never audited, and listed as skipped
+    with its reason when a searched folder holds it."""
     result = Plan()
-    excluded = {_key(Path(p)) for p in exclude}
+    reasons = (
+        dict(exclude)
+        if isinstance(exclude, Mapping)
+        else dict.fromkeys(exclude, "the --grads sidecar of this run")
+    )
+    excluded = {_key(Path(p)): reason for p, reason in reasons.items()}
     for raw in paths:
         path = Path(raw)
         if path.is_dir() and not path.is_symlink():
@@ -121,7 +129,7 @@ def single(path: Path) -> Path:
     if not path.is_dir():
         return path
     found = Plan()
-    _walk(path, found, set(), path)
+    _walk(path, found, {}, path)
     if len(found.targets) == 1:
         return found.targets[0]
     if not found.targets:
@@ -138,7 +146,7 @@ def _key(path: Path) -> str:
     return os.path.normcase(os.path.abspath(path))
 
 
-def _walk(folder: Path, result: Plan, excluded: set[str], root_folder: Path) -> None:
+def _walk(folder: Path, result: Plan, excluded: dict[str, str], root_folder: Path) -> None:
     files: list[Path] = []
     entries = 0
     for root, dirs, names in os.walk(folder, followlinks=False):
@@ -151,6 +159,8 @@ def _walk(folder: Path, result: Plan, excluded: set[str], root_folder: Path) -> 
                 result.skipped.append(Skipped(str(sub), "symbolic link to a folder, not followed"))
             elif name.startswith("."):
                 result.skipped.append(Skipped(str(sub), "hidden folder, not searched"))
+            elif _key(sub) in excluded:
+                result.skipped.append(Skipped(str(sub), excluded[_key(sub)]))
             else:
                 kept.append(name)
         dirs[:] = kept
@@ -162,7 +172,9 @@ def _walk(folder: Path, result: Plan, excluded: set[str], root_folder: Path) -> 
     _classify(root_folder, files, result, excluded)
 
 
-def _classify(folder: Path, found: list[Path], result: Plan, excluded: set[str]) -> None:
+def _classify(
+    folder: Path, found: list[Path], result: Plan, excluded: dict[str, str]
+) -> None:
     files: list[Path] = []
     for path in found:
         problem = entry_problem(path, folder)
@@ -181,7 +193,7 @@ def _classify(folder: Path, found: list[Path], result: Plan, excluded: set[str])
     for path in files:
         name = path.name
         if _key(path) in excluded:
-            result.skipped.append(Skipped(str(path), "the --grads sidecar of this run"))
+            result.skipped.append(Skipped(str(path), excluded[_key(path)]))
         elif name.endswith(INDEX_SUFFIX):
             result.targets.append(path)
         elif path in in_sets:

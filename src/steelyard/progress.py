@@ -20,7 +20,7 @@ class Progress:
         if enabled:
             console = Console(file=sys.stderr, no_color="NO_COLOR" in os.environ)
             self._bar = _RichProgress(
-                TextColumn("auditing {task.description}"),
+                TextColumn("auditing {task.description}", markup=False),
                 BarColumn(),
                 MofNCompleteColumn(),
                 TimeElapsedColumn(),

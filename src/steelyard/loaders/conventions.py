@@ -57,6 +57,7 @@ from steelyard.graph import (
     mark_outputs,
 )
 from steelyard.loaders.base import MAX_METADATA_BYTES
+from steelyard.safepath import read_beside
 
 _EMBEDDING = re.compile(
     r"(^|[._])(embed\w*|embeddings?|wte|wpe|tok_embeddings|word_embeddings|"
@@ -146,12 +147,12 @@ def role_for(name: str, is_float: bool) -> TensorRole:
 def read_hf_config(folder: Path) -> dict[str, Any] | None:
     """A Hugging Face style ``config.json`` beside the checkpoint, if present and sane."""
     candidate = folder / "config.json"
-    if not candidate.is_file() or candidate.is_symlink():
+    # One confinement rule for every side file: links, FIFOs and devices count as absent.
+    raw = read_beside(candidate, candidate.name, "model config", MAX_METADATA_BYTES)
+    if raw is None:
         return None
-    if candidate.stat().st_size > MAX_METADATA_BYTES:
-        raise LoadError(candidate, "is larger than the 100 MB cap")
     try:
-        data = json.loads(candidate.read_text(encoding="utf-8"))
+        data = json.loads(raw.decode("utf-8"))
     except (UnicodeDecodeError, ValueError, RecursionError) as exc:
         raise LoadError(candidate, f"is not valid JSON ({exc})") from None
     return data if isinstance(data, dict) else None
@@ -789,15 +790,14 @@ def read_layout(source: Path) -> dict[str, Any] | None:
 
     for pattern in LAYOUT_NAMES:
         candidate = source.parent / pattern.format(stem=source.name.split(".")[0])
-        if candidate.is_file() and not candidate.is_symlink():
+        raw = read_beside(source, candidate.name, "layout file", MAX_METADATA_BYTES)
+        if raw is not None:
             break
     else:
         return None
-    if candidate.stat().st_size > MAX_METADATA_BYTES:
-        raise LoadError(candidate, "is larger than the 100 MB cap")
     try:
-        data = tomllib.loads(candidate.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError) as exc:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError, OSError, RecursionError) as exc:
         raise LoadError(candidate, f"is not a valid layout file ({exc})") from None
     for key in data:
         if key not in ("orientation", "layer"):

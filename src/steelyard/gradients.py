@@ -22,6 +22,7 @@ import numpy as np
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Layer
+from steelyard.stats.reading import locked, read_float32
 
 
 class GradsKind(str, Enum):
@@ -110,10 +111,10 @@ def _sidecar_raw(
         twin = next(
             x for x in sidecar.layers if x.weight == layer.weight and x.gate == layer.gate
         )
-        return twin.matrix()
+        return locked(None, twin.matrix)
     if how == "tensor":
         assert layer.orient is not None
-        raw = np.asarray(layer.orient(sidecar.tensors[layer.weight].read_float32()))
+        raw = np.asarray(layer.orient(read_float32(sidecar.tensors[layer.weight])))
         if raw.size != layer.units * layer.fan_in:
             return None
         return raw.reshape(layer.units, layer.fan_in)
@@ -135,7 +136,7 @@ def _from_optimizer(model: Checkpoint, layer: Layer) -> np.ndarray | None:
     weight = model.tensors.get(layer.weight)
     if weight is not None and tuple(slots.second_moment.shape) != tuple(weight.shape):
         return None  # never reshape a moment of another shape onto the weights
-    second = np.asarray(layer.orient(slots.second_moment.read_float32()), dtype=np.float64)
+    second = np.asarray(layer.orient(read_float32(slots.second_moment)), dtype=np.float64)
     if second.size != layer.units * layer.fan_in:
         return None
     second = np.maximum(second.reshape(layer.units, layer.fan_in), 0.0)

@@ -38,7 +38,7 @@ PLAIN: dict[int, tuple[str, np.dtype[np.generic]]] = {
 }
 _FLOATS = {0, 1, 28, 30}
 #: Elements dequantized per call: bounds the package's temporaries (a few float32 copies).
-_STEP = 2**20
+_STEP = 2**18
 
 
 def type_name(type_id: int) -> str:

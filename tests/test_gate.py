@@ -57,7 +57,9 @@ def _mixed_folder(root: Path, rng: np.random.Generator) -> Path:
     save_file({"fc1.weight": np.ones((2, 2), np.float32)}, str(root / "orphan" / "model-00001-of-00003.safetensors"))
     (root / "broken.safetensors").write_bytes(b"\xff" * 8 + b"{not json")
     (root / "a" / "optimizer.pt").write_bytes(b"training state")
-    (root / "a" / "model.gguf").write_bytes(b"GGUF")
+    (root / "a" / "model.tflite").write_bytes(b"TFL3")
+    # a real GGUF file, written by the gguf package's writer (fixtures/gen_gguf.py)
+    shutil.copy(DEMO.parent / "gguf" / "tiny-llama.gguf", root / "a" / "tiny-llama.gguf")
     (root / "README.md").write_text("invented test folder\n")
     return root
 
@@ -73,13 +75,14 @@ def test_a_mixed_folder_gives_every_checkpoint_its_own_result(tmp_path: Path, rn
         "a/model.safetensors",
         "a/nested/deeper/tiny.npz",
         "a/nested/scripted.jit",
+        "a/tiny-llama.gguf",
         "sharded/model.safetensors.index.json",
     ]
     errors = {Path(e["path"]).relative_to(root).as_posix(): e["reason"] for e in document["errors"]}
     assert set(errors) == {"broken.safetensors", "orphan/model-00001-of-00003.safetensors"}
     assert "index.json is missing" in errors["orphan/model-00001-of-00003.safetensors"]
     skipped = {Path(s["path"]).relative_to(root).as_posix(): s["reason"] for s in document["skipped"]}
-    assert set(skipped) == {"a/model.grads.safetensors", "a/optimizer.pt", "a/model.gguf"}
+    assert set(skipped) == {"a/model.grads.safetensors", "a/optimizer.pt", "a/model.tflite"}
     assert "--grads" in skipped["a/model.grads.safetensors"]
     assert any("other file" in note for note in document["notes"])  # the README, counted
     # an unreadable input ends the run with exit 2 by default, after the full report

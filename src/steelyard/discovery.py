@@ -40,13 +40,14 @@ WEIGHT_SUFFIXES = frozenset(
         ".bin",
         ".ckpt",
         ".jit",
+        ".gguf",
     }
 )
 
 #: Weight-file endings of formats steelyard does not read yet: listed as skipped, never
 #: passed silently.
 UNREAD_SUFFIXES = frozenset(
-    {".gguf", ".tflite", ".pb", ".mlmodel", ".msgpack", ".npy", ".pkl", ".pt2", ".joblib"}
+    {".tflite", ".pb", ".mlmodel", ".msgpack", ".npy", ".pkl", ".pt2", ".joblib"}
 )
 
 #: Endings other files share (``.ts`` is also TypeScript): a checkpoint only by content.

@@ -822,3 +822,70 @@ def test_damaged_pickles_read_or_fail_cleanly(
             assert isinstance(tensor.read(), np.ndarray)
     except LoadError as error:
         assert "\n" not in str(error)
+
+
+# --------------------------------------------------------------------------- budgets
+
+
+def test_unpickling_stops_at_the_load_seconds_budget(tmp_path: Path) -> None:
+    from dataclasses import replace
+
+    from steelyard import budget
+
+    # ~1.5 million one-byte opcodes: about a second of the pure-Python unpickler.
+    data = b"\x80\x02" + b"N" * 1_500_000 + b"."
+    path = _archive(tmp_path / "slow.pt", data)
+    with budget.using(replace(budget.current(), load_seconds=0.05)):
+        _refused(path, "data.pkl", "time budget")
+
+
+def test_a_pickle_is_refused_from_its_claimed_size_before_inflating(tmp_path: Path) -> None:
+    from steelyard.loaders.pickle_safe import MAX_PICKLE_BYTES
+
+    data = b"\x80\x02" + b"N" * (MAX_PICKLE_BYTES + 1) + b"."
+    path = _archive(tmp_path / "big.pt", data, compress=zipfile.ZIP_DEFLATED)
+    _refused(path, "data.pkl", "cap for a pickle")
+
+
+def test_a_deflated_storage_is_inflated_once_for_every_view(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from steelyard.loaders import base
+
+    calls: list[str] = []
+    original = base.inflate_member
+
+    def counted(path: Path, info: zipfile.ZipInfo, target: Path) -> None:
+        calls.append(info.filename)
+        original(path, info, target)
+
+    monkeypatch.setattr(base, "inflate_member", counted)
+    weights = np.arange(12, dtype=np.float32)
+    data = _pickle(
+        {
+            "a": T("0", 12, (3, 4), (4, 1)),
+            "b": T("0", 12, (4, 3), (1, 4)),
+            "c": T("0", 12, (6,), (2,)),
+        }
+    )
+    path = _archive(tmp_path / "d.pt", data, {"0": _floats(weights)}, compress=zipfile.ZIP_DEFLATED)
+    checkpoint = load(path)
+    for _ in range(2):
+        # reference: numpy's own views of the same values
+        np.testing.assert_array_equal(checkpoint.tensors["a"].read(), weights.reshape(3, 4))
+        np.testing.assert_array_equal(checkpoint.tensors["b"].read(), weights.reshape(3, 4).T)
+        np.testing.assert_array_equal(checkpoint.tensors["c"].read(), weights[::2])
+    assert calls == ["archive/data/0"]
+
+
+def test_a_view_beyond_its_storage_by_more_than_the_budget_is_refused(tmp_path: Path) -> None:
+    # 2^27 float32 broadcast from one element: 512 MiB claimed from 4 bytes stored.
+    data = _pickle({"w": T("0", 1, (2**27, 2), (0, 0))})
+    _refused(_archive(tmp_path / "v.pt", data, {"0": _floats(np.ones(1))}), "'w'", "budget")
+
+
+def test_a_repeated_prefix_is_stripped_with_one_note(tmp_path: Path) -> None:
+    data = _pickle({"module." * 3 + "fc.weight": T("0", 4, (2, 2), (2, 1))})
+    checkpoint = load(_archive(tmp_path / "p.pt", data, {"0": _floats(np.ones(4))}))
+    assert list(checkpoint.tensors) == ["fc.weight"]
+    assert "the 'module.' prefix was stripped from every tensor name (3 times)" in checkpoint.notes

@@ -12,6 +12,14 @@ amended, which lets us refuse tuples nested deeper than :data:`MAX_TUPLE_DEPTH` 
 tuple nested a million deep, as a dict key, overflows the C stack and kills the process) and
 over-long text integers (``int()`` on them is super-linear). It is slower, but state-dict pickles
 are small, and the size of every pickle is capped at :data:`MAX_PICKLE_BYTES`.
+
+The memo lets a pickle of a few bytes refer to a large object again and again, so every cost
+that an opcode's *argument* drives is metered, not just the pickle's length (see
+``docs/safety.md``): opcodes that allocate a container or a memo entry count against
+:data:`MAX_PICKLE_OBJECTS`; a tuple's unfolded size (what hashing or comparing it visits) is
+cached per tuple and capped at :data:`MAX_TUPLE_ITEMS`; hashing keys and copying inputs in
+stand-ins (``set(list)``, ``bytearray(bytes)``) count against a work budget proportional to the
+pickle's size; and the checkpoint's load-seconds budget is checked as opcodes run.
 """
 
 from __future__ import annotations
@@ -20,17 +28,32 @@ import io
 import math
 import pickle
 import re
+import threading
 from collections import OrderedDict
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, ClassVar
 
+from steelyard.budget import Ledger
 from steelyard.errors import LoadError
-from steelyard.loaders.base import MAX_METADATA_BYTES
 
-#: Largest pickle steelyard unpickles (bounded memory and time on hostile input).
-MAX_PICKLE_BYTES = MAX_METADATA_BYTES
+#: Largest pickle steelyard unpickles, checked before a compressed pickle is inflated. torch
+#: writes ~120 bytes per tensor of a state dict and ~345 per parameter of a training
+#: checkpoint with Adam state (measured with torch 2.13: 10,000 tensors -> 1.2 MB data.pkl;
+#: 2,000 parameters + Adam -> 0.69 MB), so 8 MiB holds ~70,000 tensors or ~24,000 parameters
+#: with their optimizer state. The pure-Python unpickler runs ~1.5 MB/s on such pickles, so
+#: the cap also bounds the time (~5 s) and the memory a pickle of one-byte opcodes can build.
+MAX_PICKLE_BYTES = 8 * 2**20
+#: Most allocating opcodes (containers, calls, memo entries; see ``_WEIGHTS``) one pickle
+#: may run: one-byte opcodes each building a 64-216 byte object would otherwise turn an 8 MiB
+#: pickle into ~2 GiB. Real pickles use ~17 per tensor (state dict) or ~65 per parameter
+#: (training checkpoint with Adam), so the byte cap binds first for them.
+MAX_PICKLE_OBJECTS = 2_000_000
+#: Largest unfolded size of a tuple (items, counting a memo-shared inner tuple at every place
+#: it occurs): hashing or comparing a tuple visits them all, and CPython caches neither. A tuple
+#: whose inner tuples are not shared never exceeds the pickle's byte count.
+MAX_TUPLE_ITEMS = MAX_PICKLE_BYTES
 #: Tuples nested deeper than this are refused (see the module docstring).
 MAX_TUPLE_DEPTH = 64
 #: Most dimensions a tensor may claim (torch itself caps at 64).
@@ -150,6 +173,13 @@ class ScriptObject(Opaque):
 class StateDict(OrderedDict[Any, Any]):
     """Stand-in for ``collections.OrderedDict``; BUILD may only attach ``_metadata``."""
 
+    def __init__(self, *args: object, **kwargs: object) -> None:
+        # pickle writes an OrderedDict as OrderedDict() plus SETITEMS; items passed to the
+        # call would be a copy of a (possibly memo-shared, reused) list, so none are taken.
+        if args or kwargs:
+            raise Unsupported("builds an OrderedDict from arguments, which torch never writes")
+        super().__init__()
+
     def __setstate__(self, state: object) -> None:
         # torch pickles a state dict's ``_metadata`` (per-module versions) as BUILD state.
         self.metadata = state
@@ -159,6 +189,69 @@ class StateDict(OrderedDict[Any, Any]):
 
 def _opaque_class(qualname: str, base: type[Opaque] = Opaque) -> type[Opaque]:
     return type(qualname.rsplit(".", 1)[-1], (base,), {"qualname": qualname, "__slots__": ()})
+
+
+# --------------------------------------------------------------------------- work meter
+
+
+class _Meter:
+    """What one unpickle may still spend: allocating opcodes, and work driven by arguments
+    (keys hashed, inputs copied), which memo references could otherwise repeat at will."""
+
+    def __init__(self, size: int) -> None:
+        self.objects = MAX_PICKLE_OBJECTS
+        # Every element a legitimate pickle hashes or copies took at least one byte to write,
+        # and each is normally used once; four passes leave room for honest reuse.
+        self.work = 4 * max(size, 1 << 16)
+        self.tuples: dict[int, tuple[tuple[Any, ...], int, int]] = {}
+        """id → (the tuple, kept alive so its id is not reused; depth; unfolded items)."""
+
+    def charge(self, units: int, what: str) -> None:
+        self.work -= units
+        if self.work < 0:
+            raise Unsupported(
+                f"{what} again and again (memo-shared input reused): more work than the "
+                "pickle's size justifies"
+            )
+
+    def measure(self, value: tuple[Any, ...], limit: int = MAX_TUPLE_DEPTH + 1) -> tuple[int, int]:
+        """(depth, unfolded items) of a tuple, cached by id (linear over the whole pickle)."""
+        known = self.tuples.get(id(value))
+        if known is not None:
+            return known[1], known[2]
+        if limit <= 0:
+            return MAX_TUPLE_DEPTH + 1, 0
+        depth, items = 1, len(value)
+        for item in value:
+            if isinstance(item, tuple) and item:
+                inner_depth, inner_items = self.measure(item, limit - 1)
+                depth = max(depth, inner_depth + 1)
+                items += inner_items
+        self.tuples[id(value)] = (value, depth, items)
+        return depth, items
+
+    def key_cost(self, key: object) -> int:
+        """Work hashing ``key`` costs (CPython caches the hash of str and frozenset only)."""
+        if isinstance(key, tuple):
+            return 1 + self.measure(key)[1]
+        if isinstance(key, int):
+            return 1 + key.bit_length() // 64
+        return 1
+
+
+_local = threading.local()
+
+
+def _charge(units: int, what: str) -> None:
+    meter: _Meter | None = getattr(_local, "meter", None)
+    if meter is not None:
+        meter.charge(units, what)
+
+
+def _charge_keys(keys: Any, what: str) -> None:
+    meter: _Meter | None = getattr(_local, "meter", None)
+    if meter is not None:
+        meter.charge(sum(meter.key_cost(k) for k in keys), what)
 
 
 # --------------------------------------------------------------------------- stand-in calls
@@ -279,6 +372,7 @@ def _device(kind: object = "cpu", index: object = None) -> str:
 def _set(items: object = ()) -> set[Any]:
     if not isinstance(items, (list, tuple, set, frozenset)):
         raise Unsupported("a set is built from something that is not a list")
+    _charge_keys(items, "builds a set from the same items")
     return set(items)
 
 
@@ -293,6 +387,8 @@ def _slice(*args: object) -> slice:
 
 
 def _bytearray(data: object = b"", encoding: object = None) -> bytearray:
+    if isinstance(data, (bytes, str)):
+        _charge(len(data), "copies the same bytes into a bytearray")
     if isinstance(data, bytes) and encoding is None:
         return bytearray(data)
     if isinstance(data, str) and encoding in ("latin1", "latin-1"):
@@ -310,11 +406,14 @@ def _codecs_encode(text: object, encoding: object = "utf-8") -> bytes:
     # Protocol 2 stores bytes as _codecs.encode(<latin-1 text>, 'latin1'): pure data.
     if not isinstance(text, str) or encoding not in ("latin1", "latin-1"):
         raise Unsupported("_codecs.encode is called with arguments other than text, 'latin1'")
+    _charge(len(text), "encodes the same text")
     return text.encode("latin-1")
 
 
 def _same_list(kind: type | tuple[type, ...], what: str) -> Callable[[object], list[Any]]:
     def build(data: object) -> list[Any]:
+        if isinstance(data, list):
+            _charge(len(data), f"checks the same list with torch.jit._pickle.{what}")
         if not isinstance(data, list) or not all(isinstance(v, kind) for v in data):
             raise Unsupported(f"torch.jit._pickle.{what} is given something else than its list")
         return data
@@ -505,8 +604,14 @@ class RestrictedUnpickler(pickle._Unpickler):
     dispatch: ClassVar[dict[int, Callable[[Any], None]]] = dict(pickle._Unpickler.dispatch)
     # Attributes the pure-Python unpickler sets while loading (absent from typeshed).
     stack: list[Any]
+    metastack: list[list[Any]]
     readline: Callable[[], bytes]
+    read: Callable[[int], bytes]
+    readinto: Callable[[Any], int]
     append: Callable[[Any], None]
+    proto: int
+    _file_read: Callable[[int], bytes]
+    _file_readline: Callable[[], bytes]
 
     def __init__(
         self,
@@ -514,6 +619,8 @@ class RestrictedUnpickler(pickle._Unpickler):
         path: Path,
         persistent: Callable[[object], object] | None = None,
         script: bool = False,
+        ledger: Ledger | None = None,
+        what: str = "a pickle",
     ) -> None:
         stream = data if isinstance(data, io.BytesIO) else io.BytesIO(data)
         super().__init__(stream, encoding="utf-8")
@@ -521,7 +628,52 @@ class RestrictedUnpickler(pickle._Unpickler):
         self._persistent = persistent
         self._script = script
         self._classes: dict[str, type[Opaque]] = {}
-        self._depths: dict[int, tuple[tuple[Any, ...], int]] = {}
+        self._ledger = ledger if ledger is not None else Ledger(path)
+        self._what = what
+        self._meter = _Meter(len(stream.getbuffer()) - stream.tell())
+
+    def load(self) -> Any:
+        """``pickle._Unpickler.load`` with the allocation meter and the time budget.
+
+        The loop is the standard library's (Python 3.11 ``pickle.py``) plus two checks per
+        opcode; the meter is visible to the stand-ins (thread-local) while it runs.
+        """
+        self._unframer = _UNFRAMER(self._file_read, self._file_readline)
+        self.read = self._unframer.read
+        self.readinto = self._unframer.readinto
+        self.readline = self._unframer.readline
+        self.metastack = []
+        self.stack = []
+        self.append = self.stack.append
+        self.proto = 0
+        read = self.read
+        dispatch = self.dispatch
+        weights = _WEIGHTS
+        meter = self._meter
+        ledger = self._ledger
+        count = 0
+        previous = getattr(_local, "meter", None)
+        _local.meter = meter
+        try:
+            while True:
+                key = read(1)
+                if not key:
+                    raise EOFError
+                op = key[0]
+                meter.objects -= weights[op]
+                if meter.objects < 0:
+                    raise Unsupported(
+                        f"builds more than {MAX_PICKLE_OBJECTS:,} containers, calls or memo "
+                        "entries (a state dict needs a few per tensor)"
+                    )
+                count += 1
+                if not count & 0x3FF:
+                    ledger.check_time(self._what)
+                dispatch[op](self)
+        except _STOP as stop:
+            return getattr(stop, "value")  # noqa: B009 (_Stop carries the result)
+        finally:
+            _local.meter = previous
 
     def find_class(self, module: str, name: str) -> Any:
         if not isinstance(module, str) or not isinstance(name, str):
@@ -548,20 +700,32 @@ class RestrictedUnpickler(pickle._Unpickler):
     # -- amended opcodes ------------------------------------------------------------------
 
     def _tuple_depth(self) -> None:
+        # Every tuple is measured once and cached by id (flat ones too): a tuple referred to
+        # many times from other tuples is never measured again.
         top = self.stack[-1]
-        depth = 1
-        for item in top:
-            if isinstance(item, tuple) and item:
-                known = self._depths.get(id(item))
-                # Flat tuples are not recorded (most are): measure them directly.
-                inner = known[1] if known is not None else _depth(item)
-                if inner >= depth:
-                    depth = inner + 1
+        if not top:
+            return
+        depth, items = self._meter.measure(top)
         if depth > MAX_TUPLE_DEPTH:
             raise Unsupported(f"nests tuples more than {MAX_TUPLE_DEPTH} deep")
-        if depth > 1:
-            # Keep the tuple itself alive so its id cannot be reused by another object.
-            self._depths[id(top)] = (top, depth)
+        if items > MAX_TUPLE_ITEMS:
+            raise Unsupported(
+                f"builds a tuple of {items:,} items counting shared inner tuples at each place "
+                f"they occur (more than {MAX_TUPLE_ITEMS:,}; hashing it would take that long)"
+            )
+
+    def _charge_set_keys(self) -> None:
+        # SETITEMS, ADDITEMS, DICT: the items since the last MARK are the current stack.
+        self._meter.charge(
+            sum(self._meter.key_cost(k) for k in self.stack[::2]), "hashes the same keys"
+        )
+
+    def _charge_added_keys(self) -> None:
+        self._meter.charge(sum(self._meter.key_cost(k) for k in self.stack), "hashes the same keys")
+
+    def _charge_setitem_key(self) -> None:
+        if len(self.stack) >= 2:
+            self._meter.charge(self._meter.key_cost(self.stack[-2]), "hashes the same keys")
 
     def _load_int(self) -> None:
         data = self.readline()
@@ -595,12 +759,49 @@ class RestrictedUnpickler(pickle._Unpickler):
         )
 
 
-def _depth(value: tuple[Any, ...], limit: int = MAX_TUPLE_DEPTH + 1) -> int:
-    """Nesting depth of a tuple not built by a TUPLE opcode (stand-in results: shallow)."""
-    if limit <= 0:
-        return MAX_TUPLE_DEPTH + 1
-    inner = [_depth(v, limit - 1) for v in value if isinstance(v, tuple) and v]
-    return 1 + max(inner, default=0)
+_UNFRAMER: Any = getattr(pickle, "_Unframer")  # noqa: B009 (private, absent from typeshed)
+_STOP: type[BaseException] = getattr(pickle, "_Stop")  # noqa: B009
+
+#: Opcodes that allocate a container, call a stand-in or add a memo entry (weight 1; sets,
+#: 216 bytes empty, weigh 4). The others build at most a number or a string from their own
+#: bytes, or push a reference.
+_WEIGHTS = [0] * 256
+for _op in (
+    pickle.MARK,
+    pickle.EMPTY_DICT,
+    pickle.EMPTY_LIST,
+    pickle.DICT,
+    pickle.LIST,
+    pickle.TUPLE,
+    pickle.TUPLE1,
+    pickle.TUPLE2,
+    pickle.TUPLE3,
+    pickle.REDUCE,
+    pickle.NEWOBJ,
+    pickle.NEWOBJ_EX,
+    pickle.BUILD,
+    pickle.GLOBAL,
+    pickle.STACK_GLOBAL,
+    pickle.PERSID,
+    pickle.BINPERSID,
+    pickle.MEMOIZE,
+    pickle.PUT,
+    pickle.BINPUT,
+    pickle.LONG_BINPUT,
+):
+    _WEIGHTS[_op[0]] = 1
+for _op in (pickle.EMPTY_SET, pickle.FROZENSET):
+    _WEIGHTS[_op[0]] = 4
+
+
+def _before(opcode: bytes, check: Callable[[RestrictedUnpickler], None]) -> None:
+    original: Callable[[Any], None] = RestrictedUnpickler.dispatch[opcode[0]]
+
+    def run(self: RestrictedUnpickler) -> None:
+        check(self)
+        original(self)
+
+    RestrictedUnpickler.dispatch[opcode[0]] = run
 
 
 def _after(opcode: bytes, check: Callable[[RestrictedUnpickler], None]) -> None:
@@ -615,6 +816,11 @@ def _after(opcode: bytes, check: Callable[[RestrictedUnpickler], None]) -> None:
 
 for _op in (pickle.TUPLE, pickle.TUPLE1, pickle.TUPLE2, pickle.TUPLE3):
     _after(_op, RestrictedUnpickler._tuple_depth)
+_before(pickle.SETITEMS, RestrictedUnpickler._charge_set_keys)
+_before(pickle.DICT, RestrictedUnpickler._charge_set_keys)
+_before(pickle.ADDITEMS, RestrictedUnpickler._charge_added_keys)
+_before(pickle.FROZENSET, RestrictedUnpickler._charge_added_keys)
+_before(pickle.SETITEM, RestrictedUnpickler._charge_setitem_key)
 RestrictedUnpickler.dispatch[pickle.INT[0]] = RestrictedUnpickler._load_int
 RestrictedUnpickler.dispatch[pickle.LONG[0]] = RestrictedUnpickler._load_long
 _BUILD: Callable[[Any], None] = pickle._Unpickler.dispatch[pickle.BUILD[0]]
@@ -640,13 +846,16 @@ def restricted_load(
     what: str,
     persistent: Callable[[object], object] | None = None,
     script: bool = False,
+    ledger: Ledger | None = None,
 ) -> Any:
-    """Unpickle ``data`` (named ``what`` in messages) with the allowlist, or raise LoadError."""
+    """Unpickle ``data`` (named ``what`` in messages) with the allowlist, or raise LoadError.
+
+    ``ledger`` is the checkpoint's: its load-seconds budget bounds the unpickling time."""
     size = len(data) if isinstance(data, bytes) else len(data.getbuffer()) - data.tell()
     if size > MAX_PICKLE_BYTES:
         raise LoadError(path, f"{what} is {size} bytes, more than the {MAX_PICKLE_BYTES} cap")
     try:
-        return RestrictedUnpickler(data, path, persistent, script).load()
+        return RestrictedUnpickler(data, path, persistent, script, ledger, what).load()
     except LoadError:
         raise
     except Unsupported as exc:
@@ -690,6 +899,8 @@ def elements(ref: TensorRef) -> int:
 __all__ = [
     "ALLOWED",
     "MAX_PICKLE_BYTES",
+    "MAX_PICKLE_OBJECTS",
+    "MAX_TUPLE_ITEMS",
     "DType",
     "Opaque",
     "RestrictedUnpickler",

@@ -4,6 +4,15 @@ Nothing in the file is executed and torch is not imported: pickles go through
 :mod:`steelyard.loaders.pickle_safe`, which turns tensors into :class:`TensorRef` records;
 this module checks each record against its storage (``data/<key>``) and builds lazy readers
 that view the storage bytes in place (memory-mapped when the zip member is stored).
+
+Budgets (:mod:`steelyard.budget`) are checked from what the file claims, before anything is
+allocated or inflated: a compressed storage's uncompressed size (per object, and summed per
+checkpoint in a :class:`~steelyard.budget.Ledger`) when a tensor first refers to it; a view's
+elements and bytes against its storage's bytes; a zero-element tensor's dimensions. A
+compressed storage is inflated at most once per run, streamed into the run's spill folder and
+memory-mapped from there (:func:`steelyard.loaders.base.spill_member`), so memory stays
+bounded by what a read touches, not by what was inflated. Walks over the unpickled structure
+visit each container once, however often the pickle's memo refers to it.
 """
 
 from __future__ import annotations
@@ -23,6 +32,7 @@ from typing import Any, BinaryIO
 
 import numpy as np
 
+from steelyard import budget
 from steelyard.dtypes import ALL_DTYPES, is_float_name
 from steelyard.errors import LoadError
 from steelyard.graph import (
@@ -35,9 +45,11 @@ from steelyard.graph import (
 )
 from steelyard.loaders.base import (
     file_size,
+    member_expansion,
     open_zip,
     read_zip_member,
     safe_zip_names,
+    spill_member,
 )
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
 from steelyard.loaders.pickle_safe import (
@@ -93,14 +105,25 @@ _BUFFER_LEAVES = {"running_mean", "running_var", "num_batches_tracked"}
 class _Source:
     """Where each storage's bytes are: spans of the file (mapped) or compressed zip members."""
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, ledger: budget.Ledger) -> None:
         self.path = path
+        self.ledger = ledger
         self.size = file_size(path)
         self.spans: dict[str, tuple[int, int]] = {}
         """key → (file offset, byte length) for bytes stored as-is."""
         self.members: dict[str, zipfile.ZipInfo] = {}
         """key → compressed zip member (read whole on demand)."""
         self._map: mmap.mmap | None = None
+        self._charged: set[str] = set()
+
+    def charge(self, key: str) -> None:
+        """Budget a compressed storage's inflated size once, when a tensor first uses it:
+        refused here, before any byte is inflated, above the per-object or checkpoint budget."""
+        info = self.members.get(key)
+        if info is None or key in self._charged:
+            return
+        self.ledger.charge(member_expansion(self.path, info), f"archive member {info.filename!r}")
+        self._charged.add(key)
 
     def nbytes(self, key: str) -> int | None:
         if key in self.spans:
@@ -125,13 +148,22 @@ class _Source:
                 raise LoadError(self.path, f"storage {key!r} now lies past the end of the file")
             return self._map, offset
         info = self.members[key]
-        with open_zip(self.path) as archive:
-            data = _member(archive, info, self.path, info.file_size)
-        if len(data) != info.file_size:
+        if info.file_size == 0:
+            return b"", 0
+        self.charge(key)
+        # Inflated once per run into the spill folder, then mapped: a later read (another view
+        # of the same storage, a second rule) costs a mapping, not another inflation.
+        spilled = spill_member(self.path, info)
+        try:
+            with open(spilled, "rb") as handle:
+                mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
+        except (OSError, ValueError) as exc:
+            raise LoadError(self.path, f"cannot map inflated {info.filename!r} ({exc})") from None
+        if len(mapped) != info.file_size:
             raise LoadError(
                 self.path, f"storage record {info.filename!r} is shorter than it claims"
             )
-        return data, 0
+        return mapped, 0
 
 
 def _member(archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, limit: int) -> bytes:
@@ -192,6 +224,7 @@ class _Storages:
         ref = StorageRef(kind=kind, key=key, location=location, numel=numel)
         if not self.deferred:
             self.check(ref)
+            self.source.charge(key)
         self.refs[key] = ref
         return ref
 
@@ -237,6 +270,19 @@ def _make_tensor(
     path = source.path
     total = _storage_elements(ref, path, name)
     assert ref.dtype is not None
+    what = f"tensor {name!r}"
+    count = budget.check_elements(path, ref.size, what)
+    if count == 0 and ref.size:
+        # Holds nothing, so its dimensions cost nothing to store, but a layer built on it
+        # would have that many units: refuse absurd ones here.
+        budget.check_units(path, max(ref.size), f"{what} (zero elements, shape {list(ref.size)})")
+    itemsize = ALL_DTYPES[ref.dtype].itemsize
+    # A view may claim more bytes than its storage holds (stride 0, overlapping rows): those
+    # bytes exist only once steelyard materialises the view, so they are expansion.
+    claimed, stored = count * itemsize, total * itemsize
+    budget.check_expansion(path, claimed, stored, f"{what} (a view of a {stored:,} byte storage)")
+    if claimed > stored:
+        source.ledger.charge(claimed - stored, what)
     if any(s == 0 for s in ref.size):
         if ref.offset > total:
             raise LoadError(
@@ -330,8 +376,20 @@ def _is_record(name: str) -> bool:
     return name.endswith("/data.pkl") and name.count("/") == 1
 
 
+def _pickle_member(archive: zipfile.ZipFile, info: zipfile.ZipInfo, path: Path, what: str) -> bytes:
+    """A pickle member, refused from its claimed size before it is inflated."""
+    if info.file_size > MAX_PICKLE_BYTES:
+        raise LoadError(
+            path,
+            f"{what} claims {info.file_size:,} bytes, more than the {MAX_PICKLE_BYTES:,} byte "
+            "cap for a pickle (torch writes ~120 bytes per tensor of a state dict)",
+        )
+    return _member(archive, info, path, info.file_size)
+
+
 def _read_zip(path: Path) -> Checkpoint:
     size = file_size(path)
+    ledger = budget.Ledger(path)
     with open_zip(path) as archive:
         members = safe_zip_names(archive, path)
         records = [name for name in members if _is_record(name)]
@@ -348,21 +406,23 @@ def _read_zip(path: Path) -> Checkpoint:
             name.startswith(f"{prefix}code/") for name in members
         )
         sources = {
-            folder: _zip_source(path, members, f"{prefix}{folder}/", size)
+            folder: _zip_source(path, members, f"{prefix}{folder}/", size, ledger)
             for folder in ("data", "constants")
         }
-        pickled = _member(archive, members[records[0]], path, MAX_PICKLE_BYTES)
+        pickled = _pickle_member(archive, members[records[0]], path, "data.pkl")
         storages = _Storages(path, sources["data"])
-        root = restricted_load(pickled, path, "data.pkl", storages.persistent_load, script)
+        root = restricted_load(pickled, path, "data.pkl", storages.persistent_load, script, ledger)
         notes: list[str] = []
         if script or isinstance(root, ScriptObject):
             code = _script_code(archive, members, prefix, path)
             constants: Any = ()
             constant_storages = _Storages(path, sources["constants"])
             if f"{prefix}constants.pkl" in members:
-                blob = _member(archive, members[f"{prefix}constants.pkl"], path, MAX_PICKLE_BYTES)
+                blob = _pickle_member(
+                    archive, members[f"{prefix}constants.pkl"], path, "constants.pkl"
+                )
                 constants = restricted_load(
-                    blob, path, "constants.pkl", constant_storages.persistent_load, True
+                    blob, path, "constants.pkl", constant_storages.persistent_load, True, ledger
                 )
             return _script_checkpoint(
                 path, root, constants, (storages, constant_storages), order, code
@@ -371,9 +431,13 @@ def _read_zip(path: Path) -> Checkpoint:
 
 
 def _zip_source(
-    path: Path, members: Mapping[str, zipfile.ZipInfo], folder: str, size: int
+    path: Path,
+    members: Mapping[str, zipfile.ZipInfo],
+    folder: str,
+    size: int,
+    ledger: budget.Ledger,
 ) -> _Source:
-    source = _Source(path)
+    source = _Source(path, ledger)
     with open(path, "rb") as handle:
         for name, info in members.items():
             if name.startswith(folder) and not name.endswith("/"):
@@ -453,7 +517,7 @@ def _parse_legacy(
     if not isinstance(info, dict) or not isinstance(info.get("little_endian"), bool):
         raise LoadError(path, "has a malformed sys_info record")
     order = "little" if info["little_endian"] else "big"
-    source = _Source(path)
+    source = _Source(path, budget.Ledger(path))
     storages = _Storages(path, source, deferred=True)
     root = _legacy_pickle(path, blob, "main pickle", whole, storages.persistent_load)
     keys = _legacy_pickle(path, blob, "storage key list", whole)
@@ -512,22 +576,65 @@ class _Found:
 
 
 def _brief(value: object) -> str:
-    text = repr(value) if isinstance(value, (int, float, str, bool)) else type(value).__name__
+    if isinstance(value, int) and not isinstance(value, bool) and value.bit_length() > 128:
+        # repr() of an integer of thousands of digits raises (sys.int_max_str_digits).
+        return f"an integer of {value.bit_length():,} bits"
+    if isinstance(value, str):
+        text = repr(value[:40])
+    else:
+        text = repr(value) if isinstance(value, (int, float, bool)) else type(value).__name__
     return text if len(text) <= 40 else text[:37] + "..."
-
-
-def _tensor_items(mapping: Mapping[Any, Any]) -> dict[str, TensorRef]:
-    return {k: v for k, v in mapping.items() if isinstance(k, str) and isinstance(v, TensorRef)}
 
 
 def _is_state_dict(value: object) -> bool:
     if not isinstance(value, Mapping) or not value:
         return False
-    tensors = _tensor_items(value)
-    return bool(tensors) and 2 * len(tensors) >= len(value)
+    tensors = sum(1 for k, v in value.items() if isinstance(k, str) and isinstance(v, TensorRef))
+    return tensors > 0 and 2 * tensors >= len(value)
+
+
+class _Walk:
+    """One walk over the unpickled structure: each container is judged and flattened once,
+    however many memo references lead to it (a pickle can make a dict reachable along 2^n
+    paths with n references)."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.ledger = budget.Ledger(path)
+        self.flattened: set[int] = set()
+        self.repeated = 0
+        """Containers reached again (named once, by the first path that reached them)."""
+        self._judged: dict[int, tuple[object, bool]] = {}
+
+    def is_state_dict(self, value: object) -> bool:
+        known = self._judged.get(id(value))
+        if known is None:
+            known = (value, _is_state_dict(value))  # keeps value alive: its id stays its own
+            self._judged[id(value)] = known
+        return known[1]
+
+    def holds_tensors(self, value: Mapping[Any, Any]) -> bool:
+        known = self._judged.get(~id(value))
+        if known is None:
+            known = (
+                value,
+                any(isinstance(k, str) and isinstance(v, TensorRef) for k, v in value.items()),
+            )
+            self._judged[~id(value)] = known
+        return known[1]
 
 
 def _find_weights(root: object, path: Path) -> _Found:
+    walk = _Walk(path)
+    found = _find_in(root, path, walk)
+    if walk.repeated:
+        found.skipped.append(
+            f"{walk.repeated} references to a dict already read (each dict is read once)"
+        )
+    return found
+
+
+def _find_in(root: object, path: Path, walk: _Walk) -> _Found:
     if isinstance(root, TensorRef):
         return _Found({"tensor": root}, None, None, (), [], ())
     if not isinstance(root, Mapping):
@@ -541,31 +648,32 @@ def _find_weights(root: object, path: Path) -> _Found:
         if key is None:
             break
         value = container[key]
-        if _is_state_dict(value):
-            return _finish(_flatten(value, path), ".".join([*where, key]), container, (key,))
+        if walk.is_state_dict(value):
+            return _finish(_flatten(value, walk), ".".join([*where, key]), container, (key,))
         if not isinstance(value, Mapping):
             break
         where.append(key)
         container = value
-    if _is_state_dict(root):
-        return _finish(_flatten(root, path), None, None)
+    if walk.is_state_dict(root):
+        return _finish(_flatten(root, walk), None, None)
     # No known key: gather every entry that is a state dict, except optimizer entries.
     parts = [
         k
         for k, v in root.items()
-        if isinstance(k, str) and k not in _OPTIMIZER_KEYS and _is_state_dict(v)
+        if isinstance(k, str) and k not in _OPTIMIZER_KEYS and walk.is_state_dict(v)
     ]
     if len(parts) == 1:
-        return _finish(_flatten(root[parts[0]], path), parts[0], root, (parts[0],))
+        return _finish(_flatten(root[parts[0]], walk), parts[0], root, (parts[0],))
     if parts:
         merged: dict[str, Any] = {}
         for part in parts:
-            for name, ref in _flatten(root[part], path)[0].items():
+            # A part that is the very dict of an earlier part (memo-shared) is not read again.
+            for name, ref in _flatten(root[part], walk)[0].items():
                 merged[f"{part}.{name}"] = ref
         return _finish((merged, []), None, root, tuple(parts))
-    if _tensor_items(root):
+    if walk.holds_tensors(root):
         # Tensors beside other values, under no known key: the top level is the state dict.
-        return _finish(_flatten(root, path), None, None)
+        return _finish(_flatten(root, walk), None, None)
     keys = ", ".join(_brief(k) for k in list(root)[:8])
     raise LoadError(
         path,
@@ -580,21 +688,32 @@ def _model_key(container: Mapping[Any, Any]) -> str | None:
     return None
 
 
-def _flatten(mapping: Mapping[Any, Any], path: Path) -> tuple[dict[str, Any], list[str]]:
-    """Tensors of a state dict; nested dicts of tensors get dotted names."""
+def _flatten(mapping: Mapping[Any, Any], walk: _Walk) -> tuple[dict[str, Any], list[str]]:
+    """Tensors of a state dict; nested dicts of tensors get dotted names. Each dict is read
+    once (by the first path reaching it), so the walk is linear in the pickle's size."""
+    path = walk.path
     out: dict[str, Any] = {}
     skipped: list[str] = []
+    if id(mapping) in walk.flattened:
+        walk.repeated += 1
+        return out, skipped
+    walk.flattened.add(id(mapping))
     stack: list[tuple[str, Mapping[Any, Any], int]] = [("", mapping, 0)]
     while stack:
         prefix, current, depth = stack.pop()
         if depth > _MAX_WALK_DEPTH:
             raise LoadError(path, "nests its state dict too deeply")
+        walk.ledger.check_time("the state dict")
         nested: list[tuple[str, Mapping[Any, Any], int]] = []
         for key, value in current.items():
             name = f"{prefix}{key}" if isinstance(key, str) else None
             if name is not None and isinstance(value, TensorRef):
                 out[name] = value
-            elif name is not None and isinstance(value, Mapping) and _tensor_items(value):
+            elif name is not None and isinstance(value, Mapping) and walk.holds_tensors(value):
+                if id(value) in walk.flattened:
+                    walk.repeated += 1
+                    continue
+                walk.flattened.add(id(value))
                 nested.append((f"{name}.", value, depth + 1))
             else:
                 skipped.append(name if name is not None else _brief(key))
@@ -610,22 +729,42 @@ def _finish(
 ) -> _Found:
     tensors, skipped = flat
     stripped: list[str] = []
+    # Prefixes are matched at a moving offset and cut once at the end: a name repeating
+    # "module." a million times costs one pass over its characters, not a copy per prefix.
+    start = 0
     changed = True
     while changed and tensors:
         changed = False
         for prefix in _PREFIXES:
-            if all(name.startswith(prefix) for name in tensors):
-                tensors = {name[len(prefix) :]: ref for name, ref in tensors.items()}
+            if all(name.startswith(prefix, start) for name in tensors):
+                start += len(prefix)
                 stripped.append(prefix)
                 changed = True
+    if start:
+        tensors = {name[start:]: ref for name, ref in tensors.items()}
     return _Found(tensors, where, container, tuple(stripped), skipped, parts)
 
 
 def _strip(name: str, prefixes: tuple[str, ...]) -> str:
+    start = 0
     for prefix in prefixes:
-        if name.startswith(prefix):
-            name = name[len(prefix) :]
-    return name
+        if name.startswith(prefix, start):
+            start += len(prefix)
+    return name[start:]
+
+
+def _stripped_notes(prefixes: tuple[str, ...]) -> list[str]:
+    """One note per run of the same prefix (a hostile name may repeat one endlessly)."""
+    notes: list[str] = []
+    run = 0
+    for index, prefix in enumerate(prefixes):
+        run += 1
+        if index + 1 < len(prefixes) and prefixes[index + 1] == prefix:
+            continue
+        times = "" if run == 1 else f" ({run:,} times)"
+        notes.append(f"the {prefix!r} prefix was stripped from every tensor name{times}")
+        run = 0
+    return notes
 
 
 def _checkpoint(
@@ -641,8 +780,7 @@ def _checkpoint(
     elif len(found.parts) > 1:
         entries = ", ".join(repr(p) for p in found.parts)
         notes.append(f"weights gathered from checkpoint entries {entries}, named <entry>.<name>")
-    for prefix in found.stripped:
-        notes.append(f"the {prefix!r} prefix was stripped from every tensor name")
+    notes.extend(_stripped_notes(found.stripped))
     if found.skipped:
         notes.append(
             f"{len(found.skipped)} non-tensor entries of the state dict were not read "
@@ -665,9 +803,18 @@ def _checkpoint(
         ]
         if others:
             notes.append(f"other checkpoint entries (not weights): {', '.join(others[:8])}")
-    return inferred_checkpoint(
-        path, Format.PYTORCH, tensors, (path,), file_size(path), notes, optimizer
+    return _units_checked(
+        inferred_checkpoint(
+            path, Format.PYTORCH, tensors, (path,), file_size(path), notes, optimizer
+        )
     )
+
+
+def _units_checked(checkpoint: Checkpoint) -> Checkpoint:
+    """Refuse a layer claiming more units than the budget (rules keep numbers per unit)."""
+    for layer in checkpoint.layers:
+        budget.check_units(checkpoint.path, layer.units, f"layer {layer.name!r}")
+    return checkpoint
 
 
 # --------------------------------------------------------------------------- optimizer state
@@ -712,9 +859,33 @@ def _optimizer_state(
         return None
 
 
+def _plain(value: object) -> bool:
+    """A hyper-parameter value cheap to compare: a scalar or a short flat tuple/list of them.
+    Anything else is never compared (two separately built memo-shared lists of depth n take
+    2^n steps to compare)."""
+    scalar = (int, float, str, bool, type(None))
+    if isinstance(value, str):
+        return len(value) <= 256
+    if isinstance(value, int) and not isinstance(value, bool):
+        return value.bit_length() <= 128
+    if isinstance(value, scalar):
+        return True
+    return (
+        isinstance(value, (tuple, list))
+        and len(value) <= 16
+        and all(
+            isinstance(v, (float, bool)) or (type(v) is int and v.bit_length() <= 128)
+            for v in value
+        )
+    )
+
+
 def _group_value(groups: list[Mapping[str, Any]], name: str, notes: list[str]) -> Any:
     values = [g.get(name) for g in groups if name in g]
     if not values:
+        return None
+    if not all(_plain(v) for v in values):
+        notes.append(f"param groups hold a structured {name}; it was not read")
         return None
     first = values[0]
     if any(v != first for v in values[1:]):
@@ -763,9 +934,9 @@ def _map_optimizer(
     model = found.tensors
 
     kind_slots: set[str] = set()
-    for entry in state.values():
-        if isinstance(entry, Mapping):
-            kind_slots.update(k for k in entry if isinstance(k, str))
+    distinct = {id(entry): entry for entry in state.values() if isinstance(entry, Mapping)}
+    for entry in distinct.values():  # entries shared through the memo are read once
+        kind_slots.update(k for k in entry if isinstance(k, str))
     decoupled_flag = _group_value(groups, "decoupled_weight_decay", notes)
     decoupled: bool | None = decoupled_flag if isinstance(decoupled_flag, bool) else None
     if {"exp_avg", "exp_avg_sq"} <= kind_slots:
@@ -1007,7 +1178,9 @@ def _script_checkpoint(
                 "save the module before freezing it",
             )
         raise LoadError(path, "is a TorchScript archive with no tensors steelyard can find")
-    return inferred_checkpoint(path, Format.PYTORCH, tensors, (path,), file_size(path), notes)
+    return _units_checked(
+        inferred_checkpoint(path, Format.PYTORCH, tensors, (path,), file_size(path), notes)
+    )
 
 
 def _count(number: int, noun: str) -> str:
@@ -1079,7 +1252,17 @@ def _walk_script(root: object, declared: Mapping[str, _Declared]) -> _Walked:
                     named[f"{prefix}{key}.{index}"] = item
                     seen.add(item.identity)
                     lists += 1
-        for parameter in sorted(known.parameters if known is not None else ()):
-            if f"{prefix}{parameter}" not in named and obj.state.get(parameter) is not None:
-                missing.append(f"{prefix}{parameter}")
+        if known is not None:
+            # Over the object's own attributes, not every declared parameter: many objects of
+            # a class declaring many parameters would otherwise cost objects x parameters.
+            missing.extend(
+                sorted(
+                    f"{prefix}{key}"
+                    for key, value in obj.state.items()
+                    if isinstance(key, str)
+                    and key in known.parameters
+                    and value is not None
+                    and f"{prefix}{key}" not in named
+                )
+            )
     return _Walked(named, unread, lists, missing, attributes)

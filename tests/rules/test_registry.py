@@ -36,7 +36,7 @@ from steelyard.rules.dead_unit import DeadUnitSettings
 AUDIT = {
     "nonfinite", "dead-unit", "fan-in-norm", "twin-units",
     "unsupported-weight", "untrained-layer", "constraint-breach", "uncovered-weights",
-    "adapter-update",
+    "adapter-update", "untrained-token", "essential-weight", "quantization-error",
 }
 COMPARE = {"layer-drift", "frozen-layer-moved", "units-died", "new-nonfinite"}
 REPO = Path(__file__).resolve().parents[2]

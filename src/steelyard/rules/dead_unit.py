@@ -40,7 +40,9 @@ too-strong L1 penalty, a normalisation scale decayed to zero).
 dead. Score = ``scoring.score(dead/units, 1 + dead)`` (log-scaled count).
 
 **What to do.** Prune the units: the hint gives the exact parameter saving (the unit's row
-and bias, its normalisation parameters, and the consumers' columns for it). If many units died,
+and bias, its normalisation parameters, and the consumers' columns for it). A dead unit whose
+row holds a weight ``essential-weight`` marks is never offered for pruning: the hint names it
+to keep and the saving leaves it out (evidence ``keep_essential``). If many units died,
 retrain with a lower learning rate, leaky activations, or a weaker penalty.
 """
 
@@ -65,6 +67,7 @@ from steelyard.rules.base import (
     layer_finding,
     threshold,
 )
+from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
 
 
@@ -204,6 +207,8 @@ class _Dead:
     how: str
     per_unit: int
     """Parameters one dead unit costs (its row, bias, norm parameters, consumer columns)."""
+    essential: frozenset[int] = frozenset()
+    """Dead units whose row holds a weight ``essential-weight`` marks: never offered for pruning."""
 
 
 class _Store:
@@ -228,7 +233,8 @@ def check_layer(
         return
     tests, how = dict(found.tests), found.how
     store = _store(ctx)
-    record = _Dead(layer, tests, how, _saving(ctx, layer, 1))
+    essential = essential_weights(ctx, layer).rows & found.units
+    record = _Dead(layer, tests, how, _saving(ctx, layer, 1), frozenset(essential))
     with store.lock:
         store.by_layer[layer.name] = record
     yield from ()
@@ -337,9 +343,12 @@ def _finding(
         Severity.ERROR if share >= settings.for_layer(layer).error_share else Severity.WARNING
     )
     named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
-    saving = record.per_unit * len(dead)
+    keep = sorted(record.essential.intersection(dead))
+    saving = record.per_unit * (len(dead) - len(keep))
     evidence: dict[str, object] = {name: sorted(units) for name, units in tests.items() if units}
     evidence.update(dead=len(dead), units_total=layer.units, share=share, parameter_saving=saving)
+    if keep:
+        evidence["keep_essential"] = keep
     if record.how and tests.get("never-active"):
         evidence["never_active_by"] = record.how
     echoes = ""
@@ -358,8 +367,14 @@ def _finding(
         units=dead,
         score=score(share, 1 + len(dead)),
         message=f"{len(dead)} of {layer.units} units are dead ({named}){echoes}",
-        hint=f"pruning them saves exactly {saving} parameters; if many died, retrain with a lower "
-        "learning rate, leaky activations or a weaker penalty",
+        hint=(
+            f"units {', '.join(map(str, keep))} hold weights essential-weight marks: keep them; "
+            f"pruning the other {len(dead) - len(keep)} saves exactly {saving} parameters"
+            if keep
+            else f"pruning them saves exactly {saving} parameters"
+        )
+        + "; if many died, retrain with a lower learning rate, leaky activations or a weaker "
+        "penalty",
         evidence=evidence,
     )
 

@@ -69,7 +69,9 @@ never a finding: it cannot fail a gate, and SARIF and JUnit do not show it as a 
 audit's health table reads), ``top`` (up to 10 flagged weights by ascending saliency, each
 ``unit``, ``input`` (flat fan-in index, input channel × kernel position), ``w``, ``support``,
 ``saliency``; folded values when ``folded``), ``total_saliency``, ``weight_limit``,
-``support_limit``, ``rms``. Equilibrium: ``ratio`` (None when infinite), ``lambda_eff``,
+``support_limit``, ``rms``, ``essential_kept`` (large weights left out because
+``essential-weight`` marks them: weights far beyond their row and column are never offered
+for pruning, however little gradient they get). Equilibrium: ``ratio`` (None when infinite), ``lambda_eff``,
 ``l1``, ``penalty_source``, ``weights`` counted, ``quartiles``, ``band``, ``status``.
 
 **Severity and score.** Unsupported weights: warning, score ``scoring.score(k/units,
@@ -101,6 +103,7 @@ from steelyard.rules.base import (
     layer_finding,
     threshold,
 )
+from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
 from steelyard.stats.folding import fold_scale
 
@@ -155,6 +158,11 @@ def _unsupported(
     )
     support_limit = float(np.quantile(grads[finite], limits.support_quantile))
     hit = finite & (magnitude >= weight_limit) & (grads <= support_limit)
+    # Never advise pruning a weight essential-weight marks (a model can depend on it).
+    essential = essential_weights(ctx, layer)
+    kept = int(hit[essential.units, essential.inputs].sum()) if essential.units.size else 0
+    if kept:
+        hit[essential.units, essential.inputs] = False
     rows, cols = np.nonzero(hit)
     if rows.size == 0:
         return
@@ -198,6 +206,7 @@ def _unsupported(
             "support_limit": support_limit,
             "rms": rms,
             "folded": folded.folded,
+            "essential_kept": kept,
         },
     )
 

@@ -1,0 +1,211 @@
+"""``essential-weight``: single weights far beyond their row and column, which clipping,
+pruning and low-bit quantization must keep.
+
+**What it checks.** In each dense or convolution layer's canonical matrix ``W[units, fan_in]``
+a weight ``w = W[j, k]`` is an *outlier weight* when it is at least ``sigma`` (20) root mean
+squares of the *rest* of its row and of the rest of its column away from zero:
+
+    w² ≥ sigma² · (R_j − w²) / (n − 1)   and   w² ≥ sigma² · (C_k − w²) / (m − 1)
+
+with ``R_j = Σ_k W[j,k]²`` over the row's ``n = fan_in`` weights and ``C_k = Σ_j W[j,k]²``
+over the column's ``m = units`` (a convolution's column is one input channel at one kernel
+position). Leaving the weight out of its own scale matters: with it, no weight can exceed
+``√n`` RMS of its row (128 inputs: 11.3), however large it is. Rearranged,
+``w² · (n − 1 + sigma²) ≥ sigma² · R_j``, the test is one comparison per weight against a
+per-row and a per-column limit, so it costs two vectorised passes over the matrix. The RMS
+(not the standard deviation) is the scale because weights are centred near zero and the RMS is
+the larger of the two, so the test is conservative. Layers with fewer than 8 units or inputs
+are skipped (too few weights for a scale).
+
+**Why it matters.** Yu et al. 2024 ("The Super Weight in Large Language Models", arXiv
+2411.07191; cited from memory) found that a handful of scalar weights, typically in the
+feed-forward down-projection of an early block, are essential: zeroing a single one destroys
+the model's ability to generate text, while they survive only if clipping and quantization
+keep them (e.g. by storing them apart). They sit where the massive activations of the
+residual stream are produced, the outlier features of Dettmers et al. 2022 ("LLM.int8():
+8-bit Matrix Multiplication for Transformers at Scale", NeurIPS), whose removal likewise
+collapses performance. A weight this far outside both its row and its column is exactly what
+magnitude clipping removes first, what an absmax scale is stretched by, and what a pruning
+criterion based on the row's statistics misjudges, so its position must be known.
+
+**How other rules respect it.** The measurement (:func:`essential_weights`) does not depend
+on whether this rule is enabled. ``unsupported-weight`` never lists a weight this test marks
+(its evidence counts them as ``essential_kept``), and ``dead-unit``'s pruning hint leaves out
+units whose row holds one.
+
+**Evidence.** ``count`` (outlier weights in the layer), ``weights`` (up to ``max-listed``
+(20) of them, most extreme first: ``unit``, ``input`` (flat fan-in index), ``value``,
+``row_rms`` and ``column_rms`` (of the rest of the row and column), ``row_sigmas`` and
+``column_sigmas``), ``sigma``.
+
+**Severity and score.** Info: this is information to preserve, not a defect. Score
+``scoring.score(units with one / units, min(row, column sigmas) / sigma)``.
+
+**What to do.** Keep these weights exactly when compressing: exclude them from clipping and
+pruning, store them in higher precision (or their rows), and check a quantized model's
+outputs against the float one.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.findings import Finding, Severity
+from steelyard.graph import Layer, LayerKind
+from steelyard.rules.base import (
+    AuditContext,
+    RuleSettings,
+    RuleSpec,
+    layer_finding,
+    threshold,
+)
+from steelyard.rules.scoring import score
+from steelyard.stats.numerics import sums_of_squares
+
+_MIN_SIDE = 8
+_KINDS = (LayerKind.DENSE, LayerKind.CONV, LayerKind.CONV_TRANSPOSE)
+
+
+@dataclass(frozen=True)
+class EssentialWeightSettings:
+    """Thresholds of ``essential-weight``."""
+
+    sigma: float = threshold(20.0)
+    max_listed: int = threshold(20, low=1)
+
+
+@dataclass(frozen=True)
+class EssentialWeights:
+    """One layer's outlier weights, most extreme first."""
+
+    units: np.ndarray
+    inputs: np.ndarray
+    values: np.ndarray
+    row_rms: np.ndarray
+    column_rms: np.ndarray
+
+    @property
+    def positions(self) -> frozenset[tuple[int, int]]:
+        """Every (unit, input) marked essential."""
+        return frozenset(zip(self.units.tolist(), self.inputs.tolist(), strict=True))
+
+    @property
+    def rows(self) -> frozenset[int]:
+        """The units whose row holds at least one essential weight."""
+        return frozenset(self.units.tolist())
+
+
+_NONE = EssentialWeights(*(np.zeros(0, dtype) for dtype in (np.int64, np.int64, float, float, float)))
+
+
+def measure(matrix: np.ndarray, sigma: float) -> EssentialWeights:
+    """The outlier weights of ``W[units, fan_in]`` (this rule's page defines the test)."""
+    units, fan_in = matrix.shape
+    if units < _MIN_SIDE or fan_in < _MIN_SIDE:
+        return _NONE
+    block = np.asarray(matrix, dtype=np.float32)
+    rows = sums_of_squares(block, axis=1)
+    columns = sums_of_squares(block, axis=0)
+    s2 = sigma * sigma
+    row_limit = (s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    squares = np.square(block)
+    # Rare: most rows have no candidate, so the column test only runs on a few weights.
+    cand_u, cand_k = np.nonzero(squares >= row_limit[:, None])
+    if cand_u.size == 0:
+        return _NONE
+    w2 = squares[cand_u, cand_k].astype(np.float64)
+    keep = (w2 * (fan_in - 1 + s2) >= s2 * rows[cand_u]) & (
+        w2 * (units - 1 + s2) >= s2 * columns[cand_k]
+    )
+    keep &= np.isfinite(w2)
+    u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
+    if u.size == 0:
+        return _NONE
+    row_rms = np.sqrt(np.maximum(rows[u] - w2, 0.0) / (fan_in - 1))
+    col_rms = np.sqrt(np.maximum(columns[k] - w2, 0.0) / (units - 1))
+    with np.errstate(divide="ignore"):
+        extremity = np.sqrt(w2) / np.maximum(row_rms, col_rms)
+    order = np.lexsort((k, u, -extremity))
+    return EssentialWeights(
+        u[order].astype(np.int64),
+        k[order].astype(np.int64),
+        block[u[order], k[order]].astype(np.float64),
+        row_rms[order],
+        col_rms[order],
+    )
+
+
+def essential_weights(
+    ctx: AuditContext,
+    layer: Layer,
+    settings: RuleSettings[EssentialWeightSettings] | None = None,
+) -> EssentialWeights:
+    """The weights of ``layer`` this rule marks essential, with the policy's ``sigma``
+    (whether or not the rule is enabled); measured once per audit and layer. Other rules call
+    it to leave these weights alone (pruning advice, unsupported weights)."""
+    if layer.kind not in _KINDS:
+        return _NONE
+    sigma = (settings or RuleSettings(RULE, ctx.policy)).for_layer(layer).sigma
+    return ctx.stats.shared(
+        f"{RULE.name}:{layer.name}:{sigma!r}", lambda: measure(ctx.stats.matrix(layer), sigma)
+    )
+
+
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[EssentialWeightSettings], layer: Layer
+) -> Iterator[Finding]:
+    """One informational finding per layer holding outlier weights."""
+    found = essential_weights(ctx, layer, settings)
+    if found.units.size == 0:
+        return
+    limits = settings.for_layer(layer)
+    listed = []
+    for i in range(min(limits.max_listed, found.units.size)):
+        listed.append(
+            {
+                "unit": int(found.units[i]),
+                "input": int(found.inputs[i]),
+                "value": float(found.values[i]),
+                "row_rms": float(found.row_rms[i]),
+                "column_rms": float(found.column_rms[i]),
+                "row_sigmas": float(abs(found.values[i]) / found.row_rms[i])
+                if found.row_rms[i] > 0 else None,
+                "column_sigmas": float(abs(found.values[i]) / found.column_rms[i])
+                if found.column_rms[i] > 0 else None,
+            }
+        )
+    first = listed[0]
+    least = min(x for x in (first["row_sigmas"], first["column_sigmas"]) if x is not None) if (
+        first["row_sigmas"] is not None or first["column_sigmas"] is not None
+    ) else float("inf")
+    count = int(found.units.size)
+    where = ", ".join(f"[{w['unit']}, {w['input']}] = {w['value']:.4g}" for w in listed[:3])
+    more = f" and {count - 3} more" if count > 3 else ""
+    yield layer_finding(
+        RULE.name,
+        layer,
+        severity=Severity.INFO,
+        units=sorted(found.rows),
+        score=score(len(found.rows) / layer.units, least / limits.sigma),
+        message=(
+            f"{count} weight{'s' if count != 1 else ''} at least {limits.sigma:g} RMS beyond the "
+            f"rest of their row and column: {where}{more}"
+        ),
+        hint="keep these weights exactly when clipping, pruning or quantizing (store them "
+        "apart or in higher precision); the model may depend on them",
+        evidence={"count": count, "weights": listed, "sigma": limits.sigma},
+    )
+
+
+RULE = RuleSpec(
+    name="essential-weight",
+    severity=Severity.INFO,
+    settings=EssentialWeightSettings,
+    summary="a single weight far beyond its row and column is one clipping, pruning or "
+    "low-bit quantization must keep: models can depend on a handful of them",
+    doc=__doc__ or "",
+    per_layer=check_layer,
+)

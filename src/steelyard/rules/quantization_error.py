@@ -1,0 +1,344 @@
+"""``quantization-error``: layers that will not survive low-bit quantization, and the per-layer
+table of predicted quantization error.
+
+**What it checks.** Each layer's canonical matrix ``W[units, fan_in]`` (the weight the
+layer computes with) is quantized the way the simplest post-training schemes do it,
+*round-to-nearest* (RTN) with *symmetric absmax* scales, and the error is measured:
+
+* **8 bits per output channel.** For each row j, ``s_j = max_k |W_jk| / 127``,
+  ``Q_jk = rint(W_jk / s_j)`` (an integer in [-127, 127]; ``rint`` rounds halves to even),
+  ``Ŵ_jk = s_j·Q_jk``. This is the per-channel symmetric int8 weight scheme of LLM.int8()'s
+  vector-wise quantization (Dettmers et al. 2022, "LLM.int8(): 8-bit Matrix Multiplication for
+  Transformers at Scale", NeurIPS) and of the usual int8 weight formats (cited from memory).
+* **4 bits in groups of ``group-size`` (128) along the input.** Each row is cut into
+  consecutive groups of 128 inputs (the last one shorter when ``fan_in`` is not a multiple;
+  a row shorter than a group is one group); per group ``s = max |W| / 7``,
+  ``Q = rint(W/s)`` in [-7, 7] (15 levels, symmetric), ``Ŵ = s·Q``. Group-wise RTN at 4 bits
+  with 128-wide groups is the baseline of the low-bit LLM literature (e.g. Frantar et al.
+  2023, "GPTQ", ICLR, and Lin et al. 2024, "AWQ", MLSys, report RTN g128 as their baseline;
+  cited from memory). GGUF's ``Q4_0`` differs in two details (blocks of 32, and the grid
+  [-8, 7] scaled by the signed extreme, see the tests) and ``Q8_0`` in one (blocks of 32).
+
+Scales and quotients are computed in float32; a group whose maximum is 0 quantizes to 0 with
+no error. Per layer and scheme the rule reports the **relative error**
+``‖W − Ŵ‖_F / ‖W‖_F`` and the **worst-channel error** ``max_j ‖W_j − Ŵ_j‖ / ‖W_j‖`` (rows with
+``‖W_j‖ = 0`` skipped) with the channel it occurs in. Every quantity comes from the layer's
+matrix while the audit holds it in memory (the same one pass per layer as every other rule),
+row block by row block, in vectorised numpy.
+
+**Why it matters.** Quantizing to 8 or 4 bits is how most language models ship; RTN is what
+every scheme starts from and what cheap toolchains apply as is. A layer whose RTN error is far
+beyond the rest of the model is the one that breaks the quantized model (its outputs drift
+first), so it is the layer to keep at higher precision.
+
+The plain relative error under-states what outlier *input channels* do: a column ``k``
+a hundred times larger than the rest stretches every 4-bit scale of its groups so that the
+other weights round to zero, yet it holds most of ``‖W‖_F`` itself, so ``‖W − Ŵ‖_F/‖W‖_F``
+stays moderate (and *falls* as the outliers grow). Rescaling input channels is free
+(multiply column k by c and the producing channel by 1/c; SmoothQuant, Xiao et al. 2023,
+ICML, builds on this; cited from memory), so a weight-only measure of damage should not
+depend on it. The rule therefore also measures the **balanced error**
+
+    sqrt( Σ_jk (W − Ŵ)_jk² / C_k  /  #{k : C_k > 0} ),   C_k = Σ_j W_jk²,
+
+the relative output error when every input channel contributes the same energy to the
+output (activation RMS of channel k ∝ 1/sqrt(C_k)); for a layer without outlier columns it is
+close to the plain relative error (all C_k alike).
+
+A layer is **quantization-sensitive** when its 4-bit balanced error is at least
+``median-multiple`` (3) × the median 4-bit balanced error over all measured layers of the
+model, and at least ``min-error`` (0.05). For i.i.d. Gaussian weights absmax g128 4-bit RTN
+gives about 0.1 (step ``≈ 2.6σ/7``, error ``step/√12``): the median of a trained model sits
+near there, so a layer far beyond it carries what RTN cannot represent, typically a few input
+channels orders of magnitude above the rest (the "outlier features" of Dettmers et al. 2022)
+that inflate every scale of their groups and round the other weights to zero.
+
+**The table.** Unless ``table`` is false, the rule adds one informational finding on the
+checkpoint (no layer) whose evidence ``table`` lists, per layer in graph order: ``layer``,
+``shape`` ``[units, fan_in]``, ``int8_error``, ``int8_worst_channel_error``,
+``int8_worst_channel``, ``int4_error``, ``int4_worst_channel_error``,
+``int4_worst_channel``, ``int4_balanced_error``; plus ``median_int4_balanced_error``, ``group_size`` and ``scheme`` (this
+page's definition in one line). It is information for whoever quantizes the model, never a
+problem: it is of severity info with score 0.
+
+**Quantized inputs.** A layer whose weights are already stored quantized (a tensor of role
+quantized or of integer dtype, a view made from scales and zero points, or, in GGUF files,
+values that lie exactly on a symmetric block grid: ``Q8_0``-like 8-bit or ``Q4_0``-like
+4-bit blocks of 32) has already paid its quantization error. It can only be measured
+against the float weights it was made from, and no loader has those next to the quantized
+ones, so such a layer gets no prediction: its table row says ``stored`` (what was
+recognised) and ``error_paid`` null, and a note of the report says the error already paid
+could not be measured for want of the float reference.
+
+**Severity and score.** Quantization-sensitive: warning, score
+``scoring.score(units·fan_in / model parameters measured, balanced error / limit)``. The table: info, score 0.
+
+**What to do.** Keep the flagged layers at 8 bits or in float (most quantization toolkits let
+you exclude modules), or use an outlier-aware scheme (mixed-precision decomposition,
+activation-aware scaling, finer groups) on them.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from steelyard.findings import Finding, Severity
+from steelyard.graph import Format, Layer, LayerKind, TensorRole
+from steelyard.rules.base import (
+    AuditContext,
+    RuleSettings,
+    RuleSpec,
+    layer_finding,
+    threshold,
+)
+from steelyard.rules.scoring import score
+from steelyard.stats.numerics import sums_of_squares
+from steelyard.streaming import row_blocks
+
+SCHEME = (
+    "round-to-nearest, symmetric absmax scales: int8 per output channel (levels ±127), "
+    "int4 per group of group-size inputs (levels ±7)"
+)
+#: GGUF block grids recognised on stored values: name → (block, levels of the absmax).
+_GRIDS = (("Q8_0-like (8-bit blocks of 32)", 32, 127.0), ("Q4_0-like (4-bit blocks of 32)", 32, 8.0))
+
+
+@dataclass(frozen=True)
+class QuantizationErrorSettings:
+    """Thresholds of ``quantization-error``."""
+
+    median_multiple: float = threshold(3.0)
+    min_error: float = threshold(0.05)
+    group_size: int = threshold(128, low=1)
+    table: bool = threshold(True)
+
+
+@dataclass(frozen=True)
+class RtnError:
+    """Round-to-nearest error of one matrix under one scheme."""
+
+    relative: float
+    """‖W − Ŵ‖_F / ‖W‖_F (0 for an all-zero matrix)."""
+    worst: float
+    """max_j ‖W_j − Ŵ_j‖ / ‖W_j‖ over rows with a non-zero norm."""
+    worst_channel: int
+    """The row of ``worst`` (-1 when every row is zero)."""
+
+
+def _dequantized(block: np.ndarray, levels: float, group: int | None) -> np.ndarray:
+    """``Ŵ`` of a float32 row block: per row (``group`` None) or per ``group`` inputs."""
+    rows, width = block.shape
+    if group is None or group >= width:
+        shaped = block.reshape(rows, 1, width)
+    else:
+        pad = (-width) % group
+        # Zeros neither change a group's absmax nor add error (0 quantizes to 0).
+        padded = np.pad(block, ((0, 0), (0, pad))) if pad else block
+        shaped = padded.reshape(rows, -1, group)
+    scale = np.abs(shaped).max(axis=2, keepdims=True) / np.float32(levels)
+    safe = np.where(scale > 0, scale, np.float32(1))
+    out = np.rint(shaped / safe) * safe
+    return out.reshape(rows, -1)[:, :width]
+
+
+def column_weights(matrix: np.ndarray) -> np.ndarray:
+    """``1 / C_k`` per input column (``C_k`` its sum of squares; 0 for an all-zero column):
+    the weights of the balanced error."""
+    columns = sums_of_squares(np.asarray(matrix, dtype=np.float32), axis=0)
+    out = np.zeros_like(columns)
+    np.divide(1.0, columns, out=out, where=columns > 0)
+    return out
+
+
+def rtn_errors(matrix: np.ndarray, group_size: int) -> tuple[RtnError, RtnError, float]:
+    """(int8 per channel, int4 per group, int4 balanced error) of round-to-nearest on
+    ``W[units, fan_in]``, as defined on this rule's page; row block by row block."""
+    units, fan_in = matrix.shape
+    norms = np.zeros(units, np.float64)
+    errors = (np.zeros(units, np.float64), np.zeros(units, np.float64))
+    inverse = column_weights(matrix).astype(np.float32)
+    balanced = 0.0
+    for a, b in row_blocks(units, fan_in):
+        block = np.asarray(matrix[a:b], dtype=np.float32)
+        norms[a:b] = np.einsum("ij,ij->i", block, block, dtype=np.float64)
+        for index, (levels, group) in enumerate(((127.0, None), (7.0, group_size))):
+            diff = block - _dequantized(block, levels, group)
+            errors[index][a:b] = np.einsum("ij,ij->i", diff, diff, dtype=np.float64)
+        balanced += float(np.einsum("ij,ij,j->", diff, diff, inverse, dtype=np.float64))
+    columns_live = int(np.count_nonzero(inverse))
+    # Σ_jk W_jk²/C_k = number of non-zero columns, so that is the balanced denominator.
+    balanced_error = float(np.sqrt(balanced / columns_live)) if columns_live else 0.0
+    total = float(norms.sum())
+    out: list[RtnError] = []
+    for squares in errors:
+        relative = float(np.sqrt(squares.sum() / total)) if total > 0 else 0.0
+        live = norms > 0
+        if live.any():
+            ratios = np.zeros(units)
+            ratios[live] = np.sqrt(squares[live] / norms[live])
+            worst_channel = int(np.argmax(ratios))
+            worst = float(ratios[worst_channel])
+        else:
+            worst_channel, worst = -1, 0.0
+        out.append(RtnError(relative, worst, worst_channel))
+    return out[0], out[1], balanced_error
+
+
+def stored_grid(matrix: np.ndarray) -> str | None:
+    """The GGUF-style symmetric block grid every weight lies on (``W/(absmax/L)`` an integer
+    in each block of 32 along the input, to float32 rounding), or None."""
+    units, fan_in = matrix.shape
+    for name, block, levels in _GRIDS:
+        if fan_in % block:
+            continue
+        shaped = np.asarray(matrix, np.float32).reshape(units, -1, block)
+        scale = np.abs(shaped).max(axis=2, keepdims=True) / np.float32(levels)
+        safe = np.where(scale > 0, scale, np.float32(1))
+        steps = shaped / safe
+        if float(np.max(np.abs(steps - np.rint(steps)), initial=0.0)) <= 1e-3:
+            return name
+    return None
+
+
+def quantized_kind(ctx: AuditContext, layer: Layer, matrix: np.ndarray | None) -> str | None:
+    """How ``layer``'s weights are already stored quantized, or None when they are float."""
+    tensor = ctx.checkpoint.tensors.get(layer.weight)
+    if tensor is not None:
+        if tensor.role is TensorRole.QUANTIZED:
+            return f"quantized tensor ({tensor.dtype})"
+        if tensor.dtype.startswith(("i", "u")):
+            return f"integer tensor ({tensor.dtype})"
+    if layer.aux and any(
+        (aux := ctx.checkpoint.tensors.get(name)) is not None and aux.dtype.startswith(("i", "u"))
+        for name in layer.aux
+    ):
+        return "made from integer weights and scales"
+    if ctx.checkpoint.format is Format.GGUF and matrix is not None:
+        return stored_grid(matrix)
+    return None
+
+
+@dataclass
+class _Store:
+    lock: threading.Lock = field(default_factory=threading.Lock)
+    rows: dict[str, dict[str, Any]] = field(default_factory=dict)
+
+
+def _store(ctx: AuditContext) -> _Store:
+    return ctx.stats.shared(f"{RULE.name}:rows", _Store)
+
+
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[QuantizationErrorSettings], layer: Layer
+) -> Iterator[Finding]:
+    """Measure one layer's predicted RTN errors (kept for :func:`finish`)."""
+    if layer.kind is LayerKind.RECURRENT or layer.units < 1 or layer.fan_in < 1:
+        return
+    limits = settings.for_layer(layer)
+    matrix = ctx.stats.matrix(layer)
+    row: dict[str, Any] = {"layer": layer.name, "shape": [layer.units, layer.fan_in]}
+    kind = quantized_kind(ctx, layer, matrix)
+    if kind is not None:
+        row.update(stored=kind, error_paid=None)
+        ctx.notes.add(
+            RULE.name,
+            "error already paid not measured: the weights are stored quantized and the file "
+            "holds no float reference to measure it against",
+            layer.name,
+        )
+    elif not np.isfinite(matrix).all():
+        ctx.notes.add(RULE.name, "not measured: the weights hold NaN or Inf", layer.name)
+        return
+    else:
+        int8, int4, balanced = rtn_errors(matrix, limits.group_size)
+        row.update(
+            int8_error=int8.relative,
+            int8_worst_channel_error=int8.worst,
+            int8_worst_channel=int8.worst_channel,
+            int4_error=int4.relative,
+            int4_worst_channel_error=int4.worst,
+            int4_worst_channel=int4.worst_channel,
+            int4_balanced_error=balanced,
+            group_size=limits.group_size,
+        )
+    store = _store(ctx)
+    with store.lock:
+        store.rows[layer.name] = row
+    yield from ()
+
+
+def finish(
+    ctx: AuditContext, settings: RuleSettings[QuantizationErrorSettings]
+) -> Iterator[Finding]:
+    """Flag layers far beyond the model's median 4-bit error; add the table."""
+    store = _store(ctx)
+    with store.lock:
+        rows = [store.rows[x.name] for x in ctx.checkpoint.layers if x.name in store.rows]
+    measured = [r for r in rows if "int4_error" in r]
+    if not rows:
+        return
+    median = float(np.median([r["int4_balanced_error"] for r in measured])) if measured else None
+    size = sum(r["shape"][0] * r["shape"][1] for r in measured)
+    for row in measured:
+        layer = ctx.checkpoint.layer(row["layer"])
+        assert layer is not None and median is not None
+        limits = settings.for_layer(layer)
+        limit = max(limits.median_multiple * median, limits.min_error)
+        error = row["int4_balanced_error"]
+        if error < limit:
+            continue
+        yield layer_finding(
+            RULE.name,
+            layer,
+            severity=Severity.WARNING,
+            score=score(layer.units * layer.fan_in / max(1, size), error / limit),
+            message=(
+                f"4-bit round-to-nearest (groups of {row['group_size']}) has a balanced error "
+                f"of {error:.1%}, {error / median:.3g}× the model's median {median:.1%} (limit "
+                f"{limit:.1%}); plain relative error {row['int4_error']:.1%}, worst channel "
+                f"{row['int4_worst_channel']} {row['int4_worst_channel_error']:.1%}; at 8 bits "
+                f"per channel {row['int8_error']:.2%}"
+            ),
+            hint="keep this layer at 8 bits or in float when quantizing the model, or use an "
+            "outlier-aware scheme (finer groups, mixed precision, activation-aware scales)",
+            evidence={**row, "median_int4_balanced_error": median, "limit": limit},
+        )
+    if settings.rule_wide.table:
+        yield Finding(
+            rule=RULE.name,
+            severity=Severity.INFO,
+            layer=None,
+            tensor=None,
+            units=(),
+            score=0.0,
+            message=(
+                f"predicted quantization error of {len(measured)} layers"
+                + (f" (median balanced 4-bit error {median:.1%})" if median is not None else "")
+                + (f"; {len(rows) - len(measured)} stored quantized" if len(rows) > len(measured) else "")
+                + ": see the evidence table"
+            ),
+            hint="informational: which layers lose most under 8- and 4-bit round-to-nearest",
+            evidence={
+                "scheme": SCHEME,
+                "group_size": settings.rule_wide.group_size,
+                "median_int4_balanced_error": median,
+                "table": rows,
+            },
+        )
+
+
+RULE = RuleSpec(
+    name="quantization-error",
+    severity=Severity.WARNING,
+    settings=QuantizationErrorSettings,
+    summary="a layer whose low-bit rounding error is far beyond the rest of the model will "
+    "break when the model is quantized",
+    doc=__doc__ or "",
+    per_layer=check_layer,
+    finish=finish,
+)

@@ -1,0 +1,348 @@
+"""``untrained-token``: vocabulary tokens whose embedding or output-head rows were never
+trained.
+
+**Which matrices.** The rows of a language model's token matrices are tokens, not units: the
+input embedding (an embedding layer, except position and token-type embeddings, recognised by
+name) and the output head (a dense layer with as many units as the embedding has tokens, the
+same width, named like a head: ``lm_head``, ``output``, ``embed_out``, or marked as the
+graph's output). When no separate head is stored the embedding is taken as tied to it and
+judged once. Findings name tokens by id and, when a ``tokenizer.json`` lies beside the model
+and the optional ``tokenizers`` package is installed (``pip install 'steelyard[tokens]'``),
+by their string; otherwise ids only, and a note says why.
+
+**What it checks.** For a token matrix ``M[V, d]`` (row ``m_i`` per token) with mean row
+``μ``, the centred rows ``c_i = m_i − μ`` and the top ``principal-directions`` (1) right
+singular vectors ``v_1..v_k`` of the centred matrix, each token is tested, first match wins:
+
+1. **zero row**: ``‖m_i‖ ≤ zero × median_i ‖m_i‖`` (zero 1e-3): never given a value (a new
+   token initialised at zero, or a padding row);
+2. **at the mean**: ``‖c_i‖ ≤ at-mean × median_i ‖c_i‖`` (at-mean 0.05): a row left where
+   resizing the vocabulary with mean initialisation put it;
+3. **identical rows**: rows bit-for-bit equal to another token's row (found by hashing a
+   random projection and confirmed exactly): two tokens that were never trained apart;
+4. **under-trained (low residual)**: ``r_i ≤ residual-fraction × median_i r_i``
+   (residual-fraction 0.5), where ``r_i = ‖c_i − Σ_k (c_i·v_k) v_k‖`` is what is left of the
+   row once the mean and the principal direction(s) shared by all rows are removed.
+
+Test 4 is the indicator of Land & Bartolo 2024 ("Fishing for Magikarp: Automatically
+Detecting Under-trained Tokens in Large Language Models", EMNLP; arXiv 2405.05417; cited from
+memory). A token that never occurs in training gets no gradient in the input embedding, and
+in the output head only the softmax's push-down ``p_i·h``, which is nearly the same direction
+for every such token; so its rows stay at their (small, weight-decayed) initial values plus a
+component shared by all rows. The paper removes the first principal component of the
+unembedding matrix (the constant component) and finds under-trained tokens far from the
+trained ones in what is left; here "far" is measured by what remains of each row's length
+against the median token. Rows identical to each other or at the mean are the simplest cases
+of the same thing (a row that was never updated since it was set). Rows identical to their
+*initial* values need the initial checkpoint: compare the two with ``steelyard compare``.
+
+The principal directions are estimated from up to 4096 rows (seeded sample) by a randomised
+range finder with 4 power iterations (Halko, Martinsson & Tropp 2011, "Finding structure with
+randomness", SIAM Review), so a 256k × 8k matrix costs a few matrix products, not an SVD.
+
+**Why it matters.** A prompt containing an under-trained token (a reserved or added special
+token, a tokenizer artefact) drives the model with an input it never learned: the literature
+reports hallucinated or unrelated output. Tokens added for fine-tuning (chat or tool-call
+markers) that are still at their initial rows were not trained either: the fine-tune missed
+them.
+
+**Evidence.** ``matrix`` (``input embedding``, ``output head`` or ``tied embedding and head``),
+``counts`` per test, ``tokens`` (up to ``max-listed`` (50): ``id``, ``text`` (None without a
+tokenizer), ``test``, ``residual_ratio`` ``r_i / median r``), ``median_residual``,
+``principal_directions``.
+
+**Severity and score.** Warning. Score ``scoring.score(flagged/V, residual-fraction /
+max(min flagged residual ratio, 1e-6))``.
+
+**What to do.** Train the flagged tokens (include them in the fine-tuning data), or keep them
+out of prompts (strip them in the tokenizer, mask their logits); for tokens added on purpose,
+check that the fine-tune actually updated their rows.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from steelyard.errors import SteelyardError
+from steelyard.findings import Finding, Severity
+from steelyard.graph import Layer, LayerKind
+from steelyard.rules.base import (
+    AuditContext,
+    RuleSettings,
+    RuleSpec,
+    fraction,
+    layer_finding,
+    threshold,
+)
+from steelyard.rules.scoring import score
+from steelyard.safepath import read_beside
+from steelyard.streaming import row_blocks
+
+_SAMPLE = 4096
+_POWER = 4
+_SEED = 0
+_NOT_TOKENS = re.compile(r"(pos|position|wpe|token_type|segment|type_emb)", re.IGNORECASE)
+_HEAD_NAMES = re.compile(r"(^|[._])(lm_head|output|embed_out|head)$")
+_TOKENIZER_BYTES = 64 * 2**20
+
+
+@dataclass(frozen=True)
+class UntrainedTokenSettings:
+    """Thresholds of ``untrained-token``."""
+
+    residual_fraction: float = fraction(0.5)
+    principal_directions: int = threshold(1)
+    at_mean: float = fraction(0.05)
+    zero: float = fraction(1e-3)
+    max_listed: int = threshold(50, low=1)
+
+
+@dataclass(frozen=True)
+class TokenMatrices:
+    """Which layers hold token rows: input embeddings, the head, and whether it is tied."""
+
+    embeddings: tuple[Layer, ...]
+    head: Layer | None
+
+    @property
+    def tied(self) -> bool:
+        """An embedding is present and no separate head is stored."""
+        return bool(self.embeddings) and self.head is None
+
+    def role(self, layer: Layer) -> str | None:
+        """``input embedding``, ``output head``, ``tied embedding and head`` or None."""
+        if self.head is not None and layer.name == self.head.name:
+            return "output head"
+        if any(layer.name == e.name for e in self.embeddings):
+            return "tied embedding and head" if self.tied else "input embedding"
+        return None
+
+
+def token_matrices(layers: tuple[Layer, ...]) -> TokenMatrices:
+    """The token matrices of a layer graph (see the page: names, shapes, output marks)."""
+    embeddings = tuple(
+        layer
+        for layer in layers
+        if layer.kind is LayerKind.EMBEDDING and layer.units >= 2 and not _NOT_TOKENS.search(layer.name)
+    )
+    head = None
+    for vocab in embeddings:
+        for layer in layers:
+            if (
+                layer.kind is LayerKind.DENSE
+                and layer.units == vocab.units
+                and layer.fan_in == vocab.fan_in
+                and (_HEAD_NAMES.search(layer.name) or layer.is_output)
+            ):
+                head = layer
+                break
+        if head is not None:
+            break
+    return TokenMatrices(embeddings, head)
+
+
+def _matrices(ctx: AuditContext) -> TokenMatrices:
+    return ctx.stats.shared(f"{RULE.name}:matrices", lambda: token_matrices(ctx.checkpoint.layers))
+
+
+# ---- token strings --------------------------------------------------------------------------
+class _Names:
+    """Token strings from ``tokenizer.json`` beside the checkpoint, or a reason there are none."""
+
+    def __init__(self, ctx: AuditContext) -> None:
+        self.strings: dict[int, str] = {}
+        self.why_not: str | None = None
+        self._tokenizer: object | None = None
+        source = Path(ctx.checkpoint.path)
+        try:
+            raw = read_beside(source if source.is_file() else source / "x", "tokenizer.json", "tokenizer", _TOKENIZER_BYTES)
+        except SteelyardError as error:
+            self.why_not = f"tokenizer.json beside the model was not read ({error})"
+            return
+        if raw is None:
+            self.why_not = "no tokenizer.json beside the model: tokens are named by id only"
+            return
+        try:
+            from tokenizers import Tokenizer
+        except ImportError:
+            self.why_not = (
+                "tokens are named by id only: reading tokenizer.json needs the optional "
+                "'tokenizers' package (pip install 'steelyard[tokens]')"
+            )
+            return
+        try:
+            json.loads(raw)  # a cheap structural check before the library parses it
+            self._tokenizer = Tokenizer.from_str(raw.decode("utf-8"))
+        except Exception as error:  # the library raises its own exception types
+            self.why_not = f"tokenizer.json could not be read: {type(error).__name__}"
+
+    def text(self, token: int) -> str | None:
+        """The token's string, or None when unknown."""
+        if self._tokenizer is None:
+            return None
+        return self._tokenizer.id_to_token(token)  # type: ignore[attr-defined]
+
+
+def _names(ctx: AuditContext) -> _Names:
+    return ctx.stats.shared(f"{RULE.name}:names", lambda: _Names(ctx))
+
+
+# ---- the measurement ------------------------------------------------------------------------
+def principal_directions(centred: np.ndarray, k: int, seed: int = _SEED) -> np.ndarray:
+    """Top ``k`` right singular vectors ``[k, d]`` of ``centred`` (rows sampled down to 4096,
+    randomised range finder with power iterations; Halko et al. 2011)."""
+    rows, d = centred.shape
+    k = min(k, rows, d)
+    if k <= 0:
+        return np.zeros((0, d))
+    rng = np.random.default_rng(seed)
+    sample = centred if rows <= _SAMPLE else centred[np.sort(rng.choice(rows, _SAMPLE, replace=False))]
+    sample = np.asarray(sample, np.float64)
+    if min(sample.shape) <= 64:
+        return np.asarray(np.linalg.svd(sample, full_matrices=False)[2][:k])
+    probes = min(d, k + 8)
+    basis = np.linalg.qr(sample @ rng.standard_normal((d, probes)))[0]
+    for _ in range(_POWER):
+        basis = np.linalg.qr(sample @ (sample.T @ basis))[0]
+    small = basis.T @ sample
+    return np.asarray(np.linalg.svd(small, full_matrices=False)[2][:k])
+
+
+@dataclass(frozen=True)
+class TokenRows:
+    """Per-token measurements of one token matrix."""
+
+    norms: np.ndarray
+    centred_norms: np.ndarray
+    residuals: np.ndarray
+    duplicates: np.ndarray
+    """True for rows bit-for-bit equal to another row."""
+
+
+def measure(matrix: np.ndarray, k: int) -> TokenRows:
+    """Norms, centred norms, residuals after removing ``k`` principal directions, and exact
+    duplicate rows of ``M[V, d]`` (row blocks, float64 sums)."""
+    rows, d = matrix.shape
+    mean = np.zeros(d)
+    for a, b in row_blocks(rows, d):
+        mean += np.asarray(matrix[a:b], np.float64).sum(axis=0)
+    mean /= max(1, rows)
+    sample_rows = np.arange(rows) if rows <= _SAMPLE else np.sort(
+        np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False)
+    )
+    directions = principal_directions(np.asarray(matrix[sample_rows], np.float64) - mean, k)
+    probe = np.random.default_rng(_SEED + 1).standard_normal(d)
+    norms = np.empty(rows)
+    centred_norms = np.empty(rows)
+    residuals = np.empty(rows)
+    keys = np.empty(rows)
+    for a, b in row_blocks(rows, d):
+        block = np.asarray(matrix[a:b], np.float64)
+        norms[a:b] = np.sqrt(np.einsum("ij,ij->i", block, block))
+        centred = block - mean
+        c2 = np.einsum("ij,ij->i", centred, centred)
+        centred_norms[a:b] = np.sqrt(c2)
+        projected = centred @ directions.T if directions.size else np.zeros((b - a, 0))
+        residuals[a:b] = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
+        keys[a:b] = block @ probe
+    duplicates = np.zeros(rows, dtype=bool)
+    order = np.lexsort((norms, keys))
+    same = (np.diff(keys[order]) == 0) & (np.diff(norms[order]) == 0)
+    for i in np.flatnonzero(same):
+        first, second = int(order[i]), int(order[i + 1])
+        if np.array_equal(matrix[first], matrix[second]):
+            duplicates[first] = duplicates[second] = True
+    return TokenRows(norms, centred_norms, residuals, duplicates)
+
+
+def _classify(found: TokenRows, limits: UntrainedTokenSettings) -> dict[int, tuple[str, float]]:
+    """Token → (test, residual ratio) for every flagged token."""
+    out: dict[int, tuple[str, float]] = {}
+    median_norm = float(np.median(found.norms))
+    median_centred = float(np.median(found.centred_norms))
+    median_residual = float(np.median(found.residuals))
+    ratio = found.residuals / median_residual if median_residual > 0 else np.ones_like(found.residuals)
+    tests = (
+        ("zero row", found.norms <= limits.zero * median_norm),
+        ("at the mean", found.centred_norms <= limits.at_mean * median_centred),
+        ("identical rows", found.duplicates),
+        ("low residual", ratio <= limits.residual_fraction),
+    )
+    for name, mask in tests:
+        for token in np.flatnonzero(mask):
+            out.setdefault(int(token), (name, float(ratio[token])))
+    return out
+
+
+def check_layer(
+    ctx: AuditContext, settings: RuleSettings[UntrainedTokenSettings], layer: Layer
+) -> Iterator[Finding]:
+    """One finding per token matrix with tokens that look never trained."""
+    matrices = _matrices(ctx)
+    role = matrices.role(layer)
+    if role is None or layer.units < 4:
+        return
+    limits = settings.for_layer(layer)
+    matrix = ctx.stats.matrix(layer)
+    if not np.isfinite(matrix).all():
+        ctx.notes.add(RULE.name, "not judged: the token matrix holds NaN or Inf", layer.name)
+        return
+    found = measure(matrix, limits.principal_directions)
+    flagged = _classify(found, limits)
+    if not flagged:
+        return
+    names = _names(ctx)
+    if names.why_not is not None:
+        ctx.notes.add(RULE.name, names.why_not)
+    tokens = sorted(flagged)
+    counts: dict[str, int] = {}
+    for test, _ratio in flagged.values():
+        counts[test] = counts.get(test, 0) + 1
+    listed = [
+        {"id": t, "text": names.text(t), "test": flagged[t][0], "residual_ratio": flagged[t][1]}
+        for t in tokens[: limits.max_listed]
+    ]
+    shown = ", ".join(
+        f"{item['id']} {item['text']!r}" if item["text"] is not None else str(item["id"])
+        for item in listed[:12]
+    )
+    more = f" and {len(tokens) - 12} more" if len(tokens) > 12 else ""
+    lowest = min(ratio for _test, ratio in flagged.values())
+    by_test = ", ".join(f"{name} {count}" for name, count in counts.items())
+    yield layer_finding(
+        RULE.name,
+        layer,
+        severity=Severity.WARNING,
+        units=tokens,
+        score=score(len(tokens) / layer.units, limits.residual_fraction / max(lowest, 1e-6)),
+        message=(
+            f"{len(tokens)} of {layer.units} tokens look never trained in the {role} "
+            f"({by_test}): {shown}{more}"
+        ),
+        hint="train these tokens (put them in the fine-tuning data) or keep them out of "
+        "prompts (strip them in the tokenizer, mask their logits)",
+        evidence={
+            "matrix": role,
+            "counts": counts,
+            "tokens": listed,
+            "median_residual": float(np.median(found.residuals)),
+            "principal_directions": limits.principal_directions,
+        },
+    )
+
+
+RULE = RuleSpec(
+    name="untrained-token",
+    severity=Severity.WARNING,
+    settings=UntrainedTokenSettings,
+    summary="a token whose rows were never trained makes the model behave unpredictably "
+    "whenever it appears in a prompt",
+    doc=__doc__ or "",
+    per_layer=check_layer,
+)

@@ -74,7 +74,7 @@ class EssentialWeightSettings:
     """Thresholds of ``essential-weight``."""
 
     sigma: float = threshold(20.0)
-    max_listed: int = threshold(20, low=1)
+    max_listed: int = threshold(20)
 
 
 @dataclass(frozen=True)
@@ -124,9 +124,16 @@ def measure(matrix: np.ndarray, sigma: float) -> EssentialWeights:
     u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
     if u.size == 0:
         return _NONE
-    row_rms = np.sqrt(np.maximum(rows[u] - w2, 0.0) / (fan_in - 1))
-    col_rms = np.sqrt(np.maximum(columns[k] - w2, 0.0) / (units - 1))
-    with np.errstate(divide="ignore"):
+    # The scales of the few found weights exactly, in float64: subtracting w² from a float32
+    # sum it dominates would leave mostly rounding error.
+    row_rms = np.empty(u.size)
+    col_rms = np.empty(u.size)
+    for i, (unit, column) in enumerate(zip(u.tolist(), k.tolist(), strict=True)):
+        row = block[unit].astype(np.float64)
+        col = block[:, column].astype(np.float64)
+        row_rms[i] = np.sqrt((np.dot(row, row) - row[column] ** 2) / (fan_in - 1))
+        col_rms[i] = np.sqrt((np.dot(col, col) - col[unit] ** 2) / (units - 1))
+    with np.errstate(divide="ignore", invalid="ignore"):
         extremity = np.sqrt(w2) / np.maximum(row_rms, col_rms)
     order = np.lexsort((k, u, -extremity))
     return EssentialWeights(
@@ -163,7 +170,7 @@ def check_layer(
         return
     limits = settings.for_layer(layer)
     listed = []
-    for i in range(min(limits.max_listed, found.units.size)):
+    for i in range(min(max(1, limits.max_listed), found.units.size)):
         listed.append(
             {
                 "unit": int(found.units[i]),

@@ -10,14 +10,17 @@ layer computes with) is quantized the way the simplest post-training schemes do 
   ``Ŵ_jk = s_j·Q_jk``. This is the per-channel symmetric int8 weight scheme of LLM.int8()'s
   vector-wise quantization (Dettmers et al. 2022, "LLM.int8(): 8-bit Matrix Multiplication for
   Transformers at Scale", NeurIPS) and of the usual int8 weight formats (cited from memory).
-* **4 bits in groups of ``group-size`` (128) along the input.** Each row is cut into
+* **4 bits in groups of ``group-size`` (128) along the input.** (0 counts as 1.) Each row is cut into
   consecutive groups of 128 inputs (the last one shorter when ``fan_in`` is not a multiple;
   a row shorter than a group is one group); per group ``s = max |W| / 7``,
   ``Q = rint(W/s)`` in [-7, 7] (15 levels, symmetric), ``Ŵ = s·Q``. Group-wise RTN at 4 bits
   with 128-wide groups is the baseline of the low-bit LLM literature (e.g. Frantar et al.
   2023, "GPTQ", ICLR, and Lin et al. 2024, "AWQ", MLSys, report RTN g128 as their baseline;
   cited from memory). GGUF's ``Q4_0`` differs in two details (blocks of 32, and the grid
-  [-8, 7] scaled by the signed extreme, see the tests) and ``Q8_0`` in one (blocks of 32).
+  [-8, 7] scaled by the signed extreme) and ``Q8_0`` in three small ones (blocks of 32, the
+  scale stored as float16, halves rounded away from zero: bf16-stored weights do produce
+  exact ties, 4 of 4096 in the test fixture); the tests check ``Q8_0`` against the ``gguf``
+  package's round trip with those details applied.
 
 Scales and quotients are computed in float32; a group whose maximum is 0 quantizes to 0 with
 no error. Per layer and scheme the rule reports the **relative error**
@@ -43,7 +46,9 @@ depend on it. The rule therefore also measures the **balanced error**
 
 the relative output error when every input channel contributes the same energy to the
 output (activation RMS of channel k ∝ 1/sqrt(C_k)); for a layer without outlier columns it is
-close to the plain relative error (all C_k alike).
+close to the plain relative error (all C_k alike). Columns whose RMS is below 1 % of the
+median column's are left out (sum and count): inputs the layer barely reads would otherwise
+count as wholly lost when they round to zero.
 
 A layer is **quantization-sensitive** when its 4-bit balanced error is at least
 ``median-multiple`` (3) × the median 4-bit balanced error over all measured layers of the
@@ -114,7 +119,7 @@ class QuantizationErrorSettings:
 
     median_multiple: float = threshold(3.0)
     min_error: float = threshold(0.05)
-    group_size: int = threshold(128, low=1)
+    group_size: int = threshold(128)
     table: bool = threshold(True)
 
 
@@ -146,12 +151,20 @@ def _dequantized(block: np.ndarray, levels: float, group: int | None) -> np.ndar
     return out.reshape(rows, -1)[:, :width]
 
 
+QUIET_COLUMN = 1e-2
+"""Columns whose RMS is below this share of the median column RMS are left out of the
+balanced error: they are inputs the layer (almost) does not read (dead-unit's business),
+and under the equal-contribution assumption their rounding to zero would count as total loss."""
+
+
 def column_weights(matrix: np.ndarray) -> np.ndarray:
-    """``1 / C_k`` per input column (``C_k`` its sum of squares; 0 for an all-zero column):
-    the weights of the balanced error."""
+    """``1 / C_k`` per input column (``C_k`` its sum of squares), 0 for quiet columns (see
+    :data:`QUIET_COLUMN`): the weights of the balanced error."""
     columns = sums_of_squares(np.asarray(matrix, dtype=np.float32), axis=0)
     out = np.zeros_like(columns)
-    np.divide(1.0, columns, out=out, where=columns > 0)
+    finite = columns[np.isfinite(columns)]
+    floor = QUIET_COLUMN**2 * float(np.median(finite)) if finite.size else 0.0
+    np.divide(1.0, columns, out=out, where=(columns > floor) & (columns > 0))
     return out
 
 
@@ -161,7 +174,7 @@ def rtn_errors(matrix: np.ndarray, group_size: int) -> tuple[RtnError, RtnError,
     units, fan_in = matrix.shape
     norms = np.zeros(units, np.float64)
     errors = (np.zeros(units, np.float64), np.zeros(units, np.float64))
-    inverse = column_weights(matrix).astype(np.float32)
+    inverse = column_weights(matrix)
     balanced = 0.0
     for a, b in row_blocks(units, fan_in):
         block = np.asarray(matrix[a:b], dtype=np.float32)
@@ -169,9 +182,9 @@ def rtn_errors(matrix: np.ndarray, group_size: int) -> tuple[RtnError, RtnError,
         for index, (levels, group) in enumerate(((127.0, None), (7.0, group_size))):
             diff = block - _dequantized(block, levels, group)
             errors[index][a:b] = np.einsum("ij,ij->i", diff, diff, dtype=np.float64)
-        balanced += float(np.einsum("ij,ij,j->", diff, diff, inverse, dtype=np.float64))
+        balanced += float(np.einsum("ij,j->", np.square(diff, dtype=np.float64), inverse))
     columns_live = int(np.count_nonzero(inverse))
-    # Σ_jk W_jk²/C_k = number of non-zero columns, so that is the balanced denominator.
+    # Σ_jk W_jk²/C_k = number of columns counted, so that is the balanced denominator.
     balanced_error = float(np.sqrt(balanced / columns_live)) if columns_live else 0.0
     total = float(norms.sum())
     out: list[RtnError] = []
@@ -255,7 +268,7 @@ def check_layer(
         ctx.notes.add(RULE.name, "not measured: the weights hold NaN or Inf", layer.name)
         return
     else:
-        int8, int4, balanced = rtn_errors(matrix, limits.group_size)
+        int8, int4, balanced = rtn_errors(matrix, max(1, limits.group_size))
         row.update(
             int8_error=int8.relative,
             int8_worst_channel_error=int8.worst,
@@ -264,7 +277,7 @@ def check_layer(
             int4_worst_channel_error=int4.worst,
             int4_worst_channel=int4.worst_channel,
             int4_balanced_error=balanced,
-            group_size=limits.group_size,
+            group_size=max(1, limits.group_size),
         )
     store = _store(ctx)
     with store.lock:
@@ -282,14 +295,17 @@ def finish(
     measured = [r for r in rows if "int4_error" in r]
     if not rows:
         return
-    median = float(np.median([r["int4_balanced_error"] for r in measured])) if measured else None
+    finite = [r["int4_balanced_error"] for r in measured if np.isfinite(r["int4_balanced_error"])]
+    median = float(np.median(finite)) if finite else None
     size = sum(r["shape"][0] * r["shape"][1] for r in measured)
     for row in measured:
         layer = ctx.checkpoint.layer(row["layer"])
-        assert layer is not None and median is not None
+        assert layer is not None
         limits = settings.for_layer(layer)
-        limit = max(limits.median_multiple * median, limits.min_error)
         error = row["int4_balanced_error"]
+        if median is None or not np.isfinite(error):
+            continue
+        limit = max(limits.median_multiple * median, limits.min_error)
         if error < limit:
             continue
         yield layer_finding(

@@ -14,14 +14,14 @@ by their string; otherwise ids only, and a note says why.
 ``μ``, the centred rows ``c_i = m_i − μ`` and the top ``principal-directions`` (1) right
 singular vectors ``v_1..v_k`` of the centred matrix, each token is tested, first match wins:
 
-1. **zero row**: ``‖m_i‖ ≤ zero × median_i ‖m_i‖`` (zero 1e-3): never given a value (a new
+1. **zero row**: ``‖m_i‖ ≤ zero-norm × median_i ‖m_i‖`` (zero-norm 1e-3): never given a value (a new
    token initialised at zero, or a padding row);
-2. **at the mean**: ``‖c_i‖ ≤ at-mean × median_i ‖c_i‖`` (at-mean 0.05): a row left where
+2. **at the mean**: ``‖c_i‖ ≤ mean-distance × median_i ‖c_i‖`` (mean-distance 0.05): a row left where
    resizing the vocabulary with mean initialisation put it;
 3. **identical rows**: rows bit-for-bit equal to another token's row (found by hashing a
    random projection and confirmed exactly): two tokens that were never trained apart;
-4. **under-trained (low residual)**: ``r_i ≤ residual-fraction × median_i r_i``
-   (residual-fraction 0.5), where ``r_i = ‖c_i − Σ_k (c_i·v_k) v_k‖`` is what is left of the
+4. **under-trained (low residual)**: ``r_i ≤ residual-share × median_i r_i``
+   (residual-share 0.5), where ``r_i = ‖c_i − Σ_k (c_i·v_k) v_k‖`` is what is left of the
    row once the mean and the principal direction(s) shared by all rows are removed.
 
 Test 4 is the indicator of Land & Bartolo 2024 ("Fishing for Magikarp: Automatically
@@ -51,7 +51,7 @@ them.
 tokenizer), ``test``, ``residual_ratio`` ``r_i / median r``), ``median_residual``,
 ``principal_directions``.
 
-**Severity and score.** Warning. Score ``scoring.score(flagged/V, residual-fraction /
+**Severity and score.** Warning. Score ``scoring.score(flagged/V, residual-share /
 max(min flagged residual ratio, 1e-6))``.
 
 **What to do.** Train the flagged tokens (include them in the fine-tuning data), or keep them
@@ -96,11 +96,11 @@ _TOKENIZER_BYTES = 64 * 2**20
 class UntrainedTokenSettings:
     """Thresholds of ``untrained-token``."""
 
-    residual_fraction: float = fraction(0.5)
+    residual_share: float = fraction(0.5)
     principal_directions: int = threshold(1)
-    at_mean: float = fraction(0.05)
-    zero: float = fraction(1e-3)
-    max_listed: int = threshold(50, low=1)
+    mean_distance: float = threshold(0.05)
+    zero_norm: float = threshold(1e-3)
+    max_listed: int = threshold(50)
 
 
 @dataclass(frozen=True)
@@ -269,10 +269,10 @@ def _classify(found: TokenRows, limits: UntrainedTokenSettings) -> dict[int, tup
     median_residual = float(np.median(found.residuals))
     ratio = found.residuals / median_residual if median_residual > 0 else np.ones_like(found.residuals)
     tests = (
-        ("zero row", found.norms <= limits.zero * median_norm),
-        ("at the mean", found.centred_norms <= limits.at_mean * median_centred),
+        ("zero row", found.norms <= limits.zero_norm * median_norm),
+        ("at the mean", found.centred_norms <= limits.mean_distance * median_centred),
         ("identical rows", found.duplicates),
-        ("low residual", ratio <= limits.residual_fraction),
+        ("low residual", ratio <= limits.residual_share),
     )
     for name, mask in tests:
         for token in np.flatnonzero(mask):
@@ -306,7 +306,7 @@ def check_layer(
         counts[test] = counts.get(test, 0) + 1
     listed = [
         {"id": t, "text": names.text(t), "test": flagged[t][0], "residual_ratio": flagged[t][1]}
-        for t in tokens[: limits.max_listed]
+        for t in tokens[: max(1, limits.max_listed)]
     ]
     shown = ", ".join(
         f"{item['id']} {item['text']!r}" if item["text"] is not None else str(item["id"])
@@ -320,7 +320,7 @@ def check_layer(
         layer,
         severity=Severity.WARNING,
         units=tokens,
-        score=score(len(tokens) / layer.units, limits.residual_fraction / max(lowest, 1e-6)),
+        score=score(len(tokens) / layer.units, limits.residual_share / max(lowest, 1e-6)),
         message=(
             f"{len(tokens)} of {layer.units} tokens look never trained in the {role} "
             f"({by_test}): {shown}{more}"

@@ -162,3 +162,20 @@ def test_quantized_gguf_layers_report_that_the_error_paid_cannot_be_measured(tmp
     assert table["blk.0.attn_q"]["error_paid"] is None
     assert "int4_error" in table["blk.0.ffn_up"]  # F16: measured as float
     assert any("error already paid not measured" in line for line in notes.lines([]))
+
+
+def test_a_large_layer_is_measured_on_a_seeded_row_sample() -> None:
+    from steelyard.rules.quantization_error import sampled_rows
+
+    w = np.random.default_rng(6).standard_normal((2048, 256)).astype(np.float32)
+    rows = sampled_rows(2048, 256, 2**15)
+    assert rows is not None and rows.size == 128
+    expected = np.sort(np.random.default_rng(0).choice(2048, size=128, replace=False))
+    assert np.array_equal(rows, expected)
+    sampled = rtn_errors(w, 128, rows)[1]
+    on_rows = rtn_errors(w[rows], 128)[1]
+    assert sampled.relative == on_rows.relative
+    assert sampled.worst_channel == int(rows[on_rows.worst_channel])
+    # Row-wise schemes: the sample's error estimates the whole matrix's.
+    assert sampled.relative == pytest.approx(rtn_errors(w, 128)[1].relative, rel=0.04)
+    assert sampled_rows(64, 128, 2**15) is None and sampled_rows(4096, 128, 0) is None

@@ -64,8 +64,10 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.stats.numerics import sums_of_squares
+from steelyard.streaming import row_blocks
 
 _MIN_SIDE = 8
+_BLOCK_BYTES = 2**18
 _KINDS = (LayerKind.DENSE, LayerKind.CONV, LayerKind.CONV_TRANSPOSE)
 
 
@@ -101,24 +103,42 @@ class EssentialWeights:
 _NONE = EssentialWeights(*(np.zeros(0, dtype) for dtype in (np.int64, np.int64, float, float, float)))
 
 
-def measure(matrix: np.ndarray, sigma: float) -> EssentialWeights:
-    """The outlier weights of ``W[units, fan_in]`` (this rule's page defines the test)."""
+def measure(
+    matrix: np.ndarray, sigma: float, row_squares: np.ndarray | None = None
+) -> EssentialWeights:
+    """The outlier weights of ``W[units, fan_in]`` (this rule's page defines the test);
+    ``row_squares`` (Σ_k W_jk² per row) when already known."""
     units, fan_in = matrix.shape
     if units < _MIN_SIDE or fan_in < _MIN_SIDE:
         return _NONE
     block = np.asarray(matrix, dtype=np.float32)
-    rows = sums_of_squares(block, axis=1)
-    columns = sums_of_squares(block, axis=0)
+    rows = sums_of_squares(block, axis=1) if row_squares is None else row_squares
     s2 = sigma * sigma
-    row_limit = (s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
-    squares = np.square(block)
-    # Rare: most rows have no candidate, so the column test only runs on a few weights.
-    cand_u, cand_k = np.nonzero(squares >= row_limit[:, None])
-    if cand_u.size == 0:
+    # |w| >= sqrt(sigma²·R_j/(n−1+sigma²)) is the row test; in cache-sized row blocks, so
+    # |W| and the comparison never leave the cache (the matrix is read once).
+    row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    found_u: list[np.ndarray] = []
+    found_k: list[np.ndarray] = []
+    scratch = np.empty(0, np.float32)
+    for a, b in row_blocks(units, fan_in, _BLOCK_BYTES):
+        if scratch.size < (b - a) * fan_in:
+            scratch = np.empty((b - a) * fan_in, np.float32)
+        magnitude = np.abs(block[a:b], out=scratch[: (b - a) * fan_in].reshape(b - a, fan_in))
+        hits = magnitude >= row_limit[a:b, None]
+        if hits.any():
+            uu, kk = np.nonzero(hits)
+            found_u.append(uu + a)
+            found_k.append(kk)
+    if not found_u:
         return _NONE
-    w2 = squares[cand_u, cand_k].astype(np.float64)
+    cand_u, cand_k = np.concatenate(found_u), np.concatenate(found_k)
+    # Column sums only for the (rare) candidates' columns.
+    wanted, where = np.unique(cand_k, return_inverse=True)
+    picked = block[:, wanted].astype(np.float64)
+    columns = np.einsum("ij,ij->j", picked, picked)[where]
+    w2 = np.square(block[cand_u, cand_k].astype(np.float64))
     keep = (w2 * (fan_in - 1 + s2) >= s2 * rows[cand_u]) & (
-        w2 * (units - 1 + s2) >= s2 * columns[cand_k]
+        w2 * (units - 1 + s2) >= s2 * columns
     )
     keep &= np.isfinite(w2)
     u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
@@ -157,7 +177,8 @@ def essential_weights(
         return _NONE
     sigma = (settings or RuleSettings(RULE, ctx.policy)).for_layer(layer).sigma
     return ctx.stats.shared(
-        f"{RULE.name}:{layer.name}:{sigma!r}", lambda: measure(ctx.stats.matrix(layer), sigma)
+        f"{RULE.name}:{layer.name}:{sigma!r}",
+        lambda: measure(ctx.stats.matrix(layer), sigma, np.square(ctx.stats.row_norms(layer))),
     )
 
 

@@ -22,6 +22,14 @@ layer computes with) is quantized the way the simplest post-training schemes do 
   exact ties, 4 of 4096 in the test fixture); the tests check ``Q8_0`` against the ``gguf``
   package's round trip with those details applied.
 
+**Cost.** To keep the audit's time within its budget (``bench/transformer_rules.py``), a
+layer with more than ``sample-elements`` (2^15) weights is measured on a seeded sample of
+``sample-elements // fan_in`` of its rows (``numpy.random.default_rng(0)``, without
+replacement); both schemes work row by row, so the sampled sums are unbiased estimates of the
+whole matrix's, and the worst channel is the worst *measured* one (``rows_measured`` in the
+table says how many). ``sample-elements`` 0 measures every row. Single extreme weights, which
+a sample can miss, are ``essential-weight``'s business.
+
 Scales and quotients are computed in float32; a group whose maximum is 0 quantizes to 0 with
 no error. Per layer and scheme the rule reports the **relative error**
 ``‖W − Ŵ‖_F / ‖W‖_F`` and the **worst-channel error** ``max_j ‖W_j − Ŵ_j‖ / ‖W_j‖`` (rows with
@@ -62,7 +70,7 @@ that inflate every scale of their groups and round the other weights to zero.
 checkpoint (no layer) whose evidence ``table`` lists, per layer in graph order: ``layer``,
 ``shape`` ``[units, fan_in]``, ``int8_error``, ``int8_worst_channel_error``,
 ``int8_worst_channel``, ``int4_error``, ``int4_worst_channel_error``,
-``int4_worst_channel``, ``int4_balanced_error``; plus ``median_int4_balanced_error``, ``group_size`` and ``scheme`` (this
+``int4_worst_channel``, ``int4_balanced_error``, ``rows_measured``; plus ``median_int4_balanced_error``, ``group_size`` and ``scheme`` (this
 page's definition in one line). It is information for whoever quantizes the model, never a
 problem: it is of severity info with score 0.
 
@@ -105,6 +113,8 @@ from steelyard.rules.scoring import score
 from steelyard.stats.numerics import sums_of_squares
 from steelyard.streaming import row_blocks
 
+_BLOCK_BYTES = 2**18
+"""Row blocks this small keep a block's several temporaries in the cache."""
 SCHEME = (
     "round-to-nearest, symmetric absmax scales: int8 per output channel (levels ±127), "
     "int4 per group of group-size inputs (levels ±7)"
@@ -121,6 +131,7 @@ class QuantizationErrorSettings:
     min_error: float = threshold(0.05)
     group_size: int = threshold(128)
     table: bool = threshold(True)
+    sample_elements: int = threshold(2**15)
 
 
 @dataclass(frozen=True)
@@ -168,15 +179,30 @@ def column_weights(matrix: np.ndarray) -> np.ndarray:
     return out
 
 
-def rtn_errors(matrix: np.ndarray, group_size: int) -> tuple[RtnError, RtnError, float]:
+def sampled_rows(units: int, fan_in: int, budget: int, seed: int = 0) -> np.ndarray | None:
+    """The rows measured: all (None) when ``units·fan_in <= budget`` or ``budget`` is 0,
+    else ``max(1, budget // fan_in)`` rows drawn without replacement by
+    ``numpy.random.default_rng(seed)``, sorted."""
+    if budget <= 0 or units * fan_in <= budget:
+        return None
+    count = max(1, min(units, budget // max(1, fan_in)))
+    return np.sort(np.random.default_rng(seed).choice(units, size=count, replace=False))
+
+
+def rtn_errors(
+    matrix: np.ndarray, group_size: int, rows: np.ndarray | None = None
+) -> tuple[RtnError, RtnError, float]:
     """(int8 per channel, int4 per group, int4 balanced error) of round-to-nearest on
-    ``W[units, fan_in]``, as defined on this rule's page; row block by row block."""
+    ``W[units, fan_in]``, as defined on this rule's page, over ``rows`` (default: all; the
+    worst channel is then the worst measured one), in cache-sized row blocks."""
+    if rows is not None:
+        matrix = np.asarray(matrix, dtype=np.float32)[rows]
     units, fan_in = matrix.shape
     norms = np.zeros(units, np.float64)
     errors = (np.zeros(units, np.float64), np.zeros(units, np.float64))
     inverse = column_weights(matrix)
     balanced = 0.0
-    for a, b in row_blocks(units, fan_in):
+    for a, b in row_blocks(units, fan_in, _BLOCK_BYTES):
         block = np.asarray(matrix[a:b], dtype=np.float32)
         norms[a:b] = np.einsum("ij,ij->i", block, block, dtype=np.float64)
         for index, (levels, group) in enumerate(((127.0, None), (7.0, group_size))):
@@ -196,6 +222,8 @@ def rtn_errors(matrix: np.ndarray, group_size: int) -> tuple[RtnError, RtnError,
             ratios[live] = np.sqrt(squares[live] / norms[live])
             worst_channel = int(np.argmax(ratios))
             worst = float(ratios[worst_channel])
+            if rows is not None:
+                worst_channel = int(rows[worst_channel])
         else:
             worst_channel, worst = -1, 0.0
         out.append(RtnError(relative, worst, worst_channel))
@@ -264,11 +292,12 @@ def check_layer(
             "holds no float reference to measure it against",
             layer.name,
         )
-    elif not np.isfinite(matrix).all():
+    elif not np.isfinite(ctx.stats.row_norms(layer)).all():
         ctx.notes.add(RULE.name, "not measured: the weights hold NaN or Inf", layer.name)
         return
     else:
-        int8, int4, balanced = rtn_errors(matrix, max(1, limits.group_size))
+        rows = sampled_rows(layer.units, layer.fan_in, limits.sample_elements)
+        int8, int4, balanced = rtn_errors(matrix, max(1, limits.group_size), rows)
         row.update(
             int8_error=int8.relative,
             int8_worst_channel_error=int8.worst,
@@ -278,6 +307,7 @@ def check_layer(
             int4_worst_channel=int4.worst_channel,
             int4_balanced_error=balanced,
             group_size=max(1, limits.group_size),
+            rows_measured=layer.units if rows is None else int(rows.size),
         )
     store = _store(ctx)
     with store.lock:

@@ -36,8 +36,8 @@ against the median token. Rows identical to each other or at the mean are the si
 of the same thing (a row that was never updated since it was set). Rows identical to their
 *initial* values need the initial checkpoint: compare the two with ``steelyard compare``.
 
-The principal directions are estimated from up to 4096 rows (seeded sample) by a randomised
-range finder with 4 power iterations (Halko, Martinsson & Tropp 2011, "Finding structure with
+The principal directions are estimated from up to 2048 rows (seeded sample) by a randomised
+range finder with 2 power iterations (Halko, Martinsson & Tropp 2011, "Finding structure with
 randomness", SIAM Review), so a 256k × 8k matrix costs a few matrix products, not an SVD.
 
 **Why it matters.** A prompt containing an under-trained token (a reserved or added special
@@ -82,10 +82,9 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.safepath import read_beside
-from steelyard.streaming import row_blocks
 
-_SAMPLE = 4096
-_POWER = 4
+_SAMPLE = 2048
+_POWER = 2
 _SEED = 0
 _NOT_TOKENS = re.compile(r"(pos|position|wpe|token_type|segment|type_emb)", re.IGNORECASE)
 _HEAD_NAMES = re.compile(r"(^|[._])(lm_head|output|embed_out|head)$")
@@ -195,23 +194,24 @@ def _names(ctx: AuditContext) -> _Names:
 
 # ---- the measurement ------------------------------------------------------------------------
 def principal_directions(centred: np.ndarray, k: int, seed: int = _SEED) -> np.ndarray:
-    """Top ``k`` right singular vectors ``[k, d]`` of ``centred`` (rows sampled down to 4096,
-    randomised range finder with power iterations; Halko et al. 2011)."""
+    """Top ``k`` right singular vectors ``[k, d]`` of ``centred`` (rows sampled down to 2048,
+    randomised range finder with power iterations in float32; Halko et al. 2011)."""
     rows, d = centred.shape
     k = min(k, rows, d)
     if k <= 0:
         return np.zeros((0, d))
     rng = np.random.default_rng(seed)
     sample = centred if rows <= _SAMPLE else centred[np.sort(rng.choice(rows, _SAMPLE, replace=False))]
-    sample = np.asarray(sample, np.float64)
     if min(sample.shape) <= 64:
-        return np.asarray(np.linalg.svd(sample, full_matrices=False)[2][:k])
+        return np.asarray(np.linalg.svd(np.asarray(sample, np.float64), full_matrices=False)[2][:k])
+    sample = np.asarray(sample, np.float32)
     probes = min(d, k + 8)
-    basis = np.linalg.qr(sample @ rng.standard_normal((d, probes)))[0]
+    basis = np.linalg.qr(sample @ rng.standard_normal((d, probes)).astype(np.float32))[0]
     for _ in range(_POWER):
         basis = np.linalg.qr(sample @ (sample.T @ basis))[0]
     small = basis.T @ sample
-    return np.asarray(np.linalg.svd(small, full_matrices=False)[2][:k])
+    top = np.linalg.svd(small.astype(np.float64), full_matrices=False)[2][:k]
+    return np.asarray(top / np.linalg.norm(top, axis=1, keepdims=True))
 
 
 @dataclass(frozen=True)
@@ -225,40 +225,42 @@ class TokenRows:
     """True for rows bit-for-bit equal to another row."""
 
 
-def measure(matrix: np.ndarray, k: int) -> TokenRows:
+def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -> TokenRows:
     """Norms, centred norms, residuals after removing ``k`` principal directions, and exact
-    duplicate rows of ``M[V, d]`` (row blocks, float64 sums)."""
-    rows, d = matrix.shape
-    mean = np.zeros(d)
-    for a, b in row_blocks(rows, d):
-        mean += np.asarray(matrix[a:b], np.float64).sum(axis=0)
-    mean /= max(1, rows)
+    duplicate rows of ``M[V, d]``; ``row_squares`` (Σ m_ij² per row) when already known.
+
+    One product ``M·[μ, v_1..v_k]`` gives everything: ``‖c_i‖² = ‖m_i‖² − 2 m_i·μ + ‖μ‖²`` and
+    ``c_i·v = m_i·v − μ·v``, combined in float64."""
+    rows = matrix.shape[0]
+    block = np.asarray(matrix, dtype=np.float32)
+    mean = np.add.reduce(block, axis=0, dtype=np.float64) / max(1, rows)
     sample_rows = np.arange(rows) if rows <= _SAMPLE else np.sort(
         np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False)
     )
-    directions = principal_directions(np.asarray(matrix[sample_rows], np.float64) - mean, k)
-    probe = np.random.default_rng(_SEED + 1).standard_normal(d)
-    norms = np.empty(rows)
-    centred_norms = np.empty(rows)
-    residuals = np.empty(rows)
-    keys = np.empty(rows)
-    for a, b in row_blocks(rows, d):
-        block = np.asarray(matrix[a:b], np.float64)
-        norms[a:b] = np.sqrt(np.einsum("ij,ij->i", block, block))
-        centred = block - mean
-        c2 = np.einsum("ij,ij->i", centred, centred)
-        centred_norms[a:b] = np.sqrt(c2)
-        projected = centred @ directions.T if directions.size else np.zeros((b - a, 0))
-        residuals[a:b] = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
-        keys[a:b] = block @ probe
+    directions = principal_directions(block[sample_rows] - mean.astype(np.float32), k)
+    squares = (
+        np.einsum("ij,ij->i", block, block, dtype=np.float64) if row_squares is None
+        else np.asarray(row_squares, np.float64)
+    )
+    probes = np.vstack([mean[None, :], directions]).astype(np.float32)
+    products = (block @ probes.T).astype(np.float64)
+    mean_dot = products[:, 0]
+    mean_sq = float(mean @ mean)
+    c2 = np.maximum(squares - 2.0 * mean_dot + mean_sq, 0.0)
+    projected = products[:, 1:] - (directions @ mean)[None, :]
+    residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
+    norms = np.sqrt(squares)
+    # Identical rows have equal norms up to the summation order: candidates are neighbours in
+    # norm order within 2e-7 (float32 summation order), confirmed bit for bit.
     duplicates = np.zeros(rows, dtype=bool)
-    order = np.lexsort((norms, keys))
-    same = (np.diff(keys[order]) == 0) & (np.diff(norms[order]) == 0)
-    for i in np.flatnonzero(same):
+    order = np.argsort(norms, kind="stable")
+    ordered = norms[order]
+    close = np.flatnonzero(np.diff(ordered) <= 2e-7 * np.maximum(ordered[1:], 1e-30))
+    for i in close:
         first, second = int(order[i]), int(order[i + 1])
-        if np.array_equal(matrix[first], matrix[second]):
+        if np.array_equal(block[first], block[second]):
             duplicates[first] = duplicates[second] = True
-    return TokenRows(norms, centred_norms, residuals, duplicates)
+    return TokenRows(norms, np.sqrt(c2), residuals, duplicates)
 
 
 def _classify(found: TokenRows, limits: UntrainedTokenSettings) -> dict[int, tuple[str, float]]:
@@ -290,10 +292,10 @@ def check_layer(
         return
     limits = settings.for_layer(layer)
     matrix = ctx.stats.matrix(layer)
-    if not np.isfinite(matrix).all():
+    if not np.isfinite(ctx.stats.row_norms(layer)).all():
         ctx.notes.add(RULE.name, "not judged: the token matrix holds NaN or Inf", layer.name)
         return
-    found = measure(matrix, limits.principal_directions)
+    found = measure(matrix, limits.principal_directions, np.square(ctx.stats.row_norms(layer)))
     flagged = _classify(found, limits)
     if not flagged:
         return

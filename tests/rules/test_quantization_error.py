@@ -28,8 +28,11 @@ TOKENS = FIXTURES / "transformers_tokens"
 HOSTILE = "model.layers.1.mlp.down_proj"
 
 
-def _run(path: Path, notes: RuleNotes | None = None) -> list[Finding]:
-    findings, _, _ = run_rules(load(path), Policy(), None, rules={RULE.name: RULE}, notes=notes)
+WITH_TABLE = Policy(rules={RULE.name: {"table": True}})
+
+
+def _run(path: Path, notes: RuleNotes | None = None, policy: Policy = WITH_TABLE) -> list[Finding]:
+    findings, _, _ = run_rules(load(path), policy, None, rules={RULE.name: RULE}, notes=notes)
     return findings
 
 
@@ -103,12 +106,13 @@ def test_inputs_the_layer_does_not_read_do_not_count_as_lost() -> None:
     assert rtn_errors(w, 128)[2] == pytest.approx(full, rel=0.15)
 
 
-def test_the_table_can_be_switched_off() -> None:
-    policy = Policy(rules={RULE.name: {"table": False}})
-    findings, _, _ = run_rules(
-        load(TOKENS / "clean" / "model.safetensors"), policy, None, rules={RULE.name: RULE}
-    )
-    assert findings == []
+def test_by_default_a_clean_model_gets_no_finding_and_a_flagged_one_carries_the_table() -> None:
+    assert _run(TOKENS / "clean" / "model.safetensors", policy=Policy()) == []
+    (flagged,) = _run(TOKENS / "planted" / "model.safetensors", policy=Policy())
+    assert flagged.layer == HOSTILE
+    assert [row["layer"] for row in flagged.evidence["table"]] == [
+        layer.name for layer in load(TOKENS / "planted" / "model.safetensors").layers
+    ]
 
 
 def test_rtn_at_blocks_of_32_matches_gguf_q8_0_round_trip() -> None:

@@ -66,13 +66,15 @@ near there, so a layer far beyond it carries what RTN cannot represent, typicall
 channels orders of magnitude above the rest (the "outlier features" of Dettmers et al. 2022)
 that inflate every scale of their groups and round the other weights to zero.
 
-**The table.** Unless ``table`` is false, the rule adds one informational finding on the
-checkpoint (no layer) whose evidence ``table`` lists, per layer in graph order: ``layer``,
-``shape`` ``[units, fan_in]``, ``int8_error``, ``int8_worst_channel_error``,
-``int8_worst_channel``, ``int4_error``, ``int4_worst_channel_error``,
-``int4_worst_channel``, ``int4_balanced_error``, ``rows_measured``; plus ``median_int4_balanced_error``, ``group_size`` and ``scheme`` (this
-page's definition in one line). It is information for whoever quantizes the model, never a
-problem: it is of severity info with score 0.
+**The table.** The per-layer table lists, in graph order: ``layer``, ``shape``
+``[units, fan_in]``, ``int8_error``, ``int8_worst_channel_error``, ``int8_worst_channel``,
+``int4_error``, ``int4_worst_channel_error``, ``int4_worst_channel``,
+``int4_balanced_error``, ``rows_measured`` (quantized layers: ``stored`` and
+``error_paid``). It is in the evidence (``table``) of the first quantization-sensitive
+finding, and, with ``table = true``, in one informational finding on the checkpoint (no
+layer, score 0) with ``median_int4_balanced_error``, ``group_size`` and ``scheme``. That
+finding is off by default because an info finding on every model would fail every
+``--fail-on info`` gate; the report has no other place for a rule's data yet.
 
 **Quantized inputs.** A layer whose weights are already stored quantized (a tensor of role
 quantized or of integer dtype, a view made from scales and zero points, or, in GGUF files,
@@ -130,7 +132,7 @@ class QuantizationErrorSettings:
     median_multiple: float = threshold(3.0)
     min_error: float = threshold(0.05)
     group_size: int = threshold(128)
-    table: bool = threshold(True)
+    table: bool = threshold(False)
     sample_elements: int = threshold(2**15)
 
 
@@ -328,6 +330,7 @@ def finish(
     finite = [r["int4_balanced_error"] for r in measured if np.isfinite(r["int4_balanced_error"])]
     median = float(np.median(finite)) if finite else None
     size = sum(r["shape"][0] * r["shape"][1] for r in measured)
+    carried = False
     for row in measured:
         layer = ctx.checkpoint.layer(row["layer"])
         assert layer is not None
@@ -352,8 +355,15 @@ def finish(
             ),
             hint="keep this layer at 8 bits or in float when quantizing the model, or use an "
             "outlier-aware scheme (finer groups, mixed precision, activation-aware scales)",
-            evidence={**row, "median_int4_balanced_error": median, "limit": limit},
+            evidence={
+                **row,
+                "median_int4_balanced_error": median,
+                "limit": limit,
+                # The whole model's table rides on the first flagged layer's finding.
+                **({"table": rows} if not carried else {}),
+            },
         )
+        carried = True
     if settings.rule_wide.table:
         yield Finding(
             rule=RULE.name,

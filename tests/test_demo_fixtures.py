@@ -388,12 +388,15 @@ _ABOUT_THE_READER = {"uncovered-weights"}
 # Rules about language-model structure (token rows, super weights, low-bit readiness): the
 # demo MLPs have none; fixtures/transformers_tokens/ plants them (tests/rules/test_*).
 _TRANSFORMER = {"untrained-token", "essential-weight", "quantization-error"}
+# Rules about fine-tuning adapters (an update B·A and its base): the demo holds full models,
+# no adapter; fixtures/adapters/ (written by peft) plants them (tests/rules/test_adapter_update.py).
+_ADAPTER = {"adapter-update"}
 
 
 def test_planted_defects_cover_every_registered_rule() -> None:
     from steelyard.rules import registry
 
-    assert {p["rule"] for p in _planted()} >= set(registry()) - _ABOUT_THE_READER - _TRANSFORMER
+    assert {p["rule"] for p in _planted()} >= set(registry()) - _ABOUT_THE_READER - _TRANSFORMER - _ADAPTER
 
 
 @needs_rules
@@ -414,10 +417,10 @@ def _undeclared(suffix: str) -> set[str]:
     # weights-only .weights.h5 carries no config at all: no constraint and no links, so
     # twin-units cannot see the consumers' lopsided weighting either.
     if suffix in (".keras", ".h5"):
-        return {*_ABOUT_THE_READER, *_TRANSFORMER}
+        return {*_ABOUT_THE_READER, *_TRANSFORMER, *_ADAPTER}
     if suffix == ".weights.h5":
-        return {"constraint-breach", "twin-units", *_ABOUT_THE_READER, *_TRANSFORMER}
-    return {"constraint-breach", *_ABOUT_THE_READER, *_TRANSFORMER}
+        return {"constraint-breach", "twin-units", *_ABOUT_THE_READER, *_TRANSFORMER, *_ADAPTER}
+    return {"constraint-breach", *_ABOUT_THE_READER, *_TRANSFORMER, *_ADAPTER}
 
 
 @needs_rules

@@ -25,7 +25,7 @@ def test_layers_json_contract(healthy_file: Path) -> None:
     assert document["checkpoint"]["format"] == "safetensors"
     assert set(document["layers"][0]) == {
         "name", "kind", "weight", "bias", "units", "fan_in", "groups", "kernel",
-        "activation", "norm", "inputs_from", "linked_by",
+        "activation", "norm", "inputs_from", "linked_by", "unit_groups",
     }
 
 

@@ -12,10 +12,14 @@ from collections import Counter
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from enum import Enum
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from steelyard.dtypes import to_float32
+
+if TYPE_CHECKING:  # the structure is built after loading, by steelyard.transformer
+    from steelyard.transformer.model import Structure
 
 
 class Format(str, Enum):
@@ -276,6 +280,28 @@ class Layer:
 
 
 @dataclass(frozen=True, slots=True)
+class UnitGroup:
+    """A run of a layer's units (rows) or inputs (columns) that belongs to one attention
+    head or one expert: a grouping finer than the layer, coarser than the unit."""
+
+    kind: str
+    """``head`` (a query head's rows, or its output columns), ``kv-head`` (a key/value head's
+    rows, shared by the query heads of its group) or ``expert``."""
+    index: int
+    """The head's or expert's number within its block (0-based)."""
+    part: str
+    """Which projection the run belongs to: ``q``, ``k``, ``v``, ``o``; ``router``, ``gate``,
+    ``up``, ``down`` for experts."""
+    axis: str
+    """``rows`` (units of the canonical view) or ``columns`` (its inputs)."""
+    start: int
+    stop: int
+    """The run ``[start, stop)`` along ``axis``."""
+    block: str
+    """The attention or mixture-of-experts block it belongs to (a module name)."""
+
+
+@dataclass(frozen=True, slots=True)
 class OptimizerSlots:
     """Optimizer state for one model tensor, in the tensor's stored orientation."""
 
@@ -317,6 +343,14 @@ class Checkpoint:
     optimizer: OptimizerState | None = None
     notes: tuple[str, ...] = ()
     """What the loader wants the user to know (e.g. which state-dict key was used)."""
+    metadata: Mapping[str, Any] = field(default_factory=dict)
+    """Architecture metadata stored in the file itself (GGUF scalar key/values such as
+    ``llama.attention.head_count``); empty for formats that store none."""
+    unit_groups: Mapping[str, tuple[UnitGroup, ...]] = field(default_factory=dict)
+    """Layer name → its units grouped into attention heads or experts (set after loading by
+    :func:`steelyard.transformer.annotate`; empty when no such structure was recognised)."""
+    transformer: Structure | None = None
+    """The recognised transformer blocks (heads, experts), or None."""
 
     def __post_init__(self) -> None:
         # Every loader ends here, so claims are checked once for all formats, before any rule

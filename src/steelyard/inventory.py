@@ -39,11 +39,31 @@ def layer_block(layer: Layer) -> dict[str, Any]:
     }
 
 
+def _groups(checkpoint: Checkpoint, layer: Layer) -> list[dict[str, Any]]:
+    """The layer's units or inputs grouped into attention heads or experts (an added field of
+    ``steelyard.layers/1``: empty when no transformer structure was recognised)."""
+    return [
+        {
+            "kind": g.kind,
+            "index": g.index,
+            "part": g.part,
+            "axis": g.axis,
+            "start": g.start,
+            "stop": g.stop,
+            "block": g.block,
+        }
+        for g in checkpoint.unit_groups.get(layer.name, ())
+    ]
+
+
 def layers_document(checkpoint: Checkpoint) -> dict[str, Any]:
     """The whole ``steelyard layers --format json`` document."""
     return {
         "schema": LAYERS_SCHEMA,
         "checkpoint": checkpoint_block(checkpoint),
-        "layers": [layer_block(layer) for layer in checkpoint.layers],
+        "layers": [
+            {**layer_block(layer), "unit_groups": _groups(checkpoint, layer)}
+            for layer in checkpoint.layers
+        ],
         "coverage": coverage_document(coverage_of(checkpoint)),
     }

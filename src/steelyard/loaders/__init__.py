@@ -97,7 +97,11 @@ def load(path: str | Path) -> Checkpoint:
     for loader in loaders():
         if loader.sniff(target, head):
             try:
-                return loader.load(target)
+                checkpoint = loader.load(target)
+                # Heads and experts are named from the loaded graph, before any rule runs.
+                from steelyard.transformer import annotate
+
+                return annotate(checkpoint)
             except LoadError:
                 raise
             except (RecursionError, MemoryError) as exc:

@@ -64,6 +64,7 @@ class GgufLoader:
             file_size=header.file_size,
             files=(str(path),),
             notes=(*notes, *layer_notes),
+            metadata={k: v for k, v in header.metadata.items() if isinstance(v, (int, float, str))},
         )
 
 

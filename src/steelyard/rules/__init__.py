@@ -32,6 +32,8 @@ _MODULES = (
     "steelyard.rules.untrained_token",
     "steelyard.rules.essential_weight",
     "steelyard.rules.quantization_error",
+    "steelyard.rules.head_circuits",
+    "steelyard.rules.moe_experts",
     "steelyard.compare.checks.new_nonfinite",
     "steelyard.compare.checks.frozen_layer_moved",
     "steelyard.compare.checks.units_died",

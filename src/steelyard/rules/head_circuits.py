@@ -1,0 +1,310 @@
+"""``head-circuits``: attention heads that are idle, twins of another head, or dominate their
+layer, judged on their query-key and output-value circuits.
+
+**Which heads.** The heads of every attention block the transformer structure recognised
+(``steelyard layers`` lists them as ``unit_groups``; see docs/transformers.md): query head
+``h`` owns query rows ``W_Q,h [d_h, d]`` and output columns ``W_O,h [d, d_v]``, and reads the
+key and value rows ``W_K,g``, ``W_V,g`` of its key/value head ``g`` (shared under grouped-query
+attention). Blocks without a head count (no ``config.json`` or GGUF metadata) are not judged;
+the report's notes say why.
+
+**What it measures.** Per head: the Frobenius norms of its q, k, v rows and o columns, and of
+its two circuits (Elhage et al. 2021, "A Mathematical Framework for Transformer Circuits",
+Transformer Circuits Thread): the query-key circuit ``QK_h = W_Q,hᵀ·W_K,g`` (which positions
+attend to which) and the output-value circuit ``OV_h = W_O,h·W_V,g`` (what the head writes into
+the residual stream once it has attended). Both are ``d × d`` matrices of rank ``d_h`` and are
+never formed: ``‖QK_h‖_F² = ⟨W_Q W_Qᵀ, W_K W_Kᵀ⟩`` and ``‖OV_h‖_F² = ⟨W_Oᵀ W_O, W_V W_Vᵀ⟩`` from
+the small ``d_h × d_h`` Gram matrices, their singular values from the same Gram matrices, and a
+seeded two-sided ``64 × 64`` sketch ``Ψ·A·Ω`` of each circuit that factorises per projection
+(see ``rules/_circuits.py``), so each projection is read once, while its layer is in memory.
+Attention's output is unchanged by ``W_Q → R·W_Q, W_K → R⁻ᵀ·W_K`` and ``W_V → S·W_V,
+W_O → W_O·S⁻¹`` for any invertible ``R``, ``S`` on the head's own width (without rotary
+embeddings; with them, for ``R`` commuting with the rotations); the circuits, and so every
+measure here, are invariant under these symmetries, which raw rows are not. Rotary embeddings
+make the query-key form position-dependent; ``QK_h`` is its value at relative position 0.
+Biases are left out.
+
+**Findings** (per block; ``median`` over the block's heads):
+
+1. **idle head**: ``‖OV_h‖ ≤ idle-share × median ‖OV‖`` (idle-share 0.05): whatever the head
+   attends to, it writes next to nothing; it can be pruned with no loss (Michel, Levy & Neubig
+   2019, "Are Sixteen Heads Really Better than One?", NeurIPS; Voita et al. 2019, "Analyzing
+   Multi-Head Self-Attention: Specialized Heads Do the Heavy Lifting, the Rest Can Be
+   Pruned", ACL, found most heads of trained translation models prunable).
+2. **twin heads**: two non-idle heads of one block whose circuits agree up to the symmetries:
+   sketch cosine of both ``QK`` and ``OV`` at least ``twin-cosine`` (0.95) and singular values
+   within ``twin-spectrum`` (0.1, relative distance ``‖σ_a − σ_b‖/max‖σ‖``) for both circuits.
+   Such heads compute the same thing twice (a copied head, a head duplicated during
+   initialisation or upcycling): one of them is redundant capacity.
+3. **dominant head**: ``‖OV_h‖ ≥ dominant-ratio × median of the other heads' ‖OV‖``
+   (dominant-ratio 10): one head carries the layer, which makes the layer fragile under
+   pruning and quantization of that head (and can signal an attention sink or an outlier
+   feature).
+
+Findings name the head (``head 3 of model.layers.2.self_attn``; ``part`` ``head 3``) and are
+located at the block's output projection.
+
+**Evidence.** ``block``, ``head`` (or ``heads``), ``kv_head``, ``ov_norm``, ``qk_norm``,
+``median_ov_norm``, the head's ``q_norm``/``k_norm``/``v_norm``/``o_norm``; for twins
+``ov_cosine``, ``qk_cosine`` (sketch estimates) and ``ov_spectrum_gap``, ``qk_spectrum_gap``.
+
+**Severity and score.** Warning. Idle and dominant heads: ``scoring.score(1/H, ratio)`` with
+``ratio`` ``idle-share × median / ‖OV_h‖`` or ``‖OV_h‖ / (dominant-ratio × median)``; twins:
+``scoring.score(n/H, 1/max(gap, 1e-6)·twin-spectrum)`` for ``n`` heads in the cluster.
+
+**What to do.** Prune idle heads (and the matching q/k/v rows and o columns), or check why
+they died (too strong weight decay, a dead key/value head); deduplicate twin heads or retrain
+from a less symmetric initialisation; for a dominant head check what it attends to before
+compressing the layer.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from steelyard.findings import Finding, Severity
+from steelyard.graph import Layer
+from steelyard.rules import _circuits as circ
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
+from steelyard.rules.scoring import score
+from steelyard.transformer.model import AttentionBlock
+
+
+@dataclass(frozen=True)
+class HeadCircuitsSettings:
+    """Thresholds of ``head-circuits``."""
+
+    idle_share: float = fraction(0.05)
+    twin_cosine: float = fraction(0.95)
+    twin_spectrum: float = fraction(0.1)
+    dominant_ratio: float = threshold(10.0)
+
+
+@dataclass
+class _Factors:
+    """Per-projection factors collected from the layers (Gram and sketch per head)."""
+
+    lock: threading.Lock = field(default_factory=threading.Lock)
+    parts: dict[tuple[int, str], tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+
+
+def _roles(ctx: AuditContext) -> dict[str, list[tuple[int, str]]]:
+    """Layer name → (block index, projection) pairs it holds."""
+
+    def build() -> dict[str, list[tuple[int, str]]]:
+        out: dict[str, list[tuple[int, str]]] = {}
+        structure = ctx.checkpoint.transformer
+        for index, block in enumerate(structure.attention if structure else ()):
+            head = block.heads[0]
+            for part, span in (("q", head.q), ("k", head.k), ("v", head.v), ("o", head.o)):
+                out.setdefault(span.layer, []).append((index, part))
+        return out
+
+    return ctx.stats.shared(f"{RULE.name}:roles", build)
+
+
+def _factors(ctx: AuditContext) -> _Factors:
+    return ctx.stats.shared(f"{RULE.name}:factors", _Factors)
+
+
+def _sketch(ctx: AuditContext, dim: int, left: bool) -> np.ndarray:
+    return ctx.stats.shared(f"{RULE.name}:sketch:{dim}:{left}", lambda: circ.sketch_matrix(dim, left))
+
+
+def _spans(block: AttentionBlock, part: str) -> list[tuple[int, int]]:
+    """One span per query head (q, o) or per key/value head (k, v)."""
+    if part in ("q", "o"):
+        return [(getattr(h, part).start, getattr(h, part).stop) for h in block.heads]
+    seen: dict[int, tuple[int, int]] = {}
+    for h in block.heads:
+        span = getattr(h, part)
+        seen.setdefault(h.kv_index, (span.start, span.stop))
+    return [seen[g] for g in sorted(seen)]
+
+
+def check_layer(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings], layer: Layer) -> Iterator[Finding]:
+    """Collect this layer's per-head factors (the findings come in ``finish``)."""
+    roles = _roles(ctx).get(layer.name)
+    structure = ctx.checkpoint.transformer
+    if not roles or structure is None:
+        return
+    matrix = ctx.stats.matrix(layer)
+    if not np.isfinite(ctx.stats.row_norms(layer)).all():
+        ctx.notes.add(RULE.name, "heads not judged: the projection holds NaN or Inf", layer.name)
+        return
+    store = _factors(ctx)
+    for index, part in roles:
+        block = structure.attention[index]
+        grams, sketches = [], []
+        for start, stop in _spans(block, part):
+            if part == "o":
+                gram, sk = circ.column_factors(matrix[:, start:stop], _sketch(ctx, matrix.shape[0], True))
+            else:
+                # q is sketched on the left of QK (Ψ, so its factor is W_Q Ψᵀ), k and v on the right (Ω).
+                sketch = _sketch(ctx, matrix.shape[1], part == "q")
+                gram, sk = circ.row_factors(matrix[start:stop], sketch.T if part == "q" else sketch)
+            grams.append(gram)
+            sketches.append(sk)
+        with store.lock:
+            store.parts[(index, part)] = (np.stack(grams), np.stack(sketches))
+    yield from ()
+
+
+@dataclass(frozen=True)
+class _Head:
+    index: int
+    kv: int
+    ov: float
+    qk: float
+    norms: dict[str, float]
+    ov_sketch: np.ndarray
+    qk_sketch: np.ndarray
+    ov_spectrum: np.ndarray
+    qk_spectrum: np.ndarray
+
+
+def measure_block(block: AttentionBlock, parts: dict[str, tuple[np.ndarray, np.ndarray]]) -> list[_Head]:
+    """Per-head norms, circuit norms, spectra and sketches from the collected factors."""
+    gq, sq = parts["q"]
+    gk, sk = parts["k"]
+    gv, sv = parts["v"]
+    go, so = parts["o"]
+    out = []
+    for h in block.heads:
+        g = h.kv_index
+        out.append(
+            _Head(
+                index=h.index,
+                kv=g,
+                ov=circ.circuit_norm(go[h.index], gv[g]),
+                qk=circ.circuit_norm(gq[h.index], gk[g]),
+                norms={
+                    "q_norm": float(np.sqrt(np.trace(gq[h.index]))),
+                    "k_norm": float(np.sqrt(np.trace(gk[g]))),
+                    "v_norm": float(np.sqrt(np.trace(gv[g]))),
+                    "o_norm": float(np.sqrt(np.trace(go[h.index]))),
+                },
+                ov_sketch=so[h.index] @ sv[g],
+                qk_sketch=sq[h.index].T @ sk[g],
+                ov_spectrum=circ.circuit_spectrum(go[h.index], gv[g]),
+                qk_spectrum=circ.circuit_spectrum(gq[h.index], gk[g]),
+            )
+        )
+    return out
+
+
+def finish(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings]) -> Iterator[Finding]:
+    """Judge every block whose four projections were collected."""
+    structure = ctx.checkpoint.transformer
+    if structure is None:
+        return
+    store = _factors(ctx)
+    for index, block in enumerate(structure.attention):
+        parts = {p: store.parts.get((index, p)) for p in "qkvo"}
+        if any(v is None for v in parts.values()) or len(block.heads) < 2:
+            continue
+        out_layer = ctx.checkpoint.layer(block.output_layer)
+        if out_layer is None:
+            continue
+        limits = settings.for_layer(out_layer)
+        heads = measure_block(block, {k: v for k, v in parts.items() if v is not None})
+        yield from _judge(block, out_layer, heads, limits)
+
+
+def _finding(layer: Layer, part: str, score_: float, message: str, hint: str, evidence: dict[str, object]) -> Finding:
+    return Finding(
+        rule=RULE.name, severity=Severity.WARNING, layer=layer.name, tensor=layer.weight, units=(),
+        score=score_, message=message, hint=hint, evidence=evidence, part=part,
+    )
+
+
+def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: HeadCircuitsSettings) -> Iterator[Finding]:
+    ov = np.array([h.ov for h in heads])
+    median = float(np.median(ov))
+    count = len(heads)
+    idle = {h.index for h in heads if h.ov <= limits.idle_share * median}
+
+    def evidence(h: _Head) -> dict[str, object]:
+        return {"block": block.name, "head": h.index, "kv_head": h.kv, "ov_norm": h.ov, "qk_norm": h.qk,
+                "median_ov_norm": median, **h.norms}
+
+    for h in heads:
+        if h.index in idle:
+            yield _finding(
+                layer, f"head {h.index}",
+                score(1 / count, limits.idle_share * median / max(h.ov, 1e-30)),
+                f"head {h.index} of {block.name} is idle: its output-value circuit norm {h.ov:.3g} "
+                f"is {h.ov / median if median else 0:.2g}× the block's median {median:.3g}",
+                "prune the head (its q/k/v rows and o columns) or find out why it died",
+                evidence(h),
+            )
+        others = np.delete(ov, heads.index(h))
+        rest = float(np.median(others)) if len(others) else 0.0
+        if rest > 0 and h.ov >= limits.dominant_ratio * rest:
+            yield _finding(
+                layer, f"head {h.index}",
+                score(1 / count, h.ov / (limits.dominant_ratio * rest)),
+                f"head {h.index} of {block.name} dominates its block: output-value circuit norm "
+                f"{h.ov:.3g} is {h.ov / rest:.1f}× the other heads' median {rest:.3g}",
+                "check what the head attends to before pruning or quantizing this layer",
+                evidence(h),
+            )
+    yield from _twins(block, layer, [h for h in heads if h.index not in idle], limits, count)
+
+
+def _twins(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: HeadCircuitsSettings, count: int) -> Iterator[Finding]:
+    parent = {h.index: h.index for h in heads}
+
+    def root(i: int) -> int:
+        while parent[i] != i:
+            i = parent[i]
+        return i
+
+    pairs: list[dict[str, Any]] = []
+    for i, a in enumerate(heads):
+        for b in heads[i + 1 :]:
+            ov_cos = circ.sketch_cosine(a.ov_sketch, b.ov_sketch)
+            qk_cos = circ.sketch_cosine(a.qk_sketch, b.qk_sketch)
+            if ov_cos < limits.twin_cosine or qk_cos < limits.twin_cosine:
+                continue
+            ov_gap = circ.spectrum_gap(a.ov_spectrum, b.ov_spectrum)
+            qk_gap = circ.spectrum_gap(a.qk_spectrum, b.qk_spectrum)
+            if max(ov_gap, qk_gap) > limits.twin_spectrum:
+                continue
+            parent[root(b.index)] = root(a.index)
+            pairs.append({"heads": [a.index, b.index], "ov_cosine": round(ov_cos, 4), "qk_cosine": round(qk_cos, 4),
+                          "ov_spectrum_gap": round(ov_gap, 4), "qk_spectrum_gap": round(qk_gap, 4)})
+    clusters: dict[int, list[int]] = {}
+    for h in heads:
+        if any(h.index in p["heads"] for p in pairs):
+            clusters.setdefault(root(h.index), []).append(h.index)
+    for members in clusters.values():
+        members.sort()
+        mine = [p for p in pairs if p["heads"][0] in members]
+        gap = max(max(float(p["ov_spectrum_gap"]), float(p["qk_spectrum_gap"])) for p in mine)
+        named = ", ".join(str(m) for m in members[:-1]) + f" and {members[-1]}"
+        yield _finding(
+            layer, "heads " + ",".join(str(m) for m in members),
+            score(len(members) / count, limits.twin_spectrum / max(gap, 1e-6)),
+            f"heads {named} of {block.name} are twins: their query-key and output-value "
+            f"circuits agree (cosine ≥ {limits.twin_cosine}, up to the attention's symmetries)",
+            "keep one of the twin heads (prune the others) or retrain them apart",
+            {"block": block.name, "heads": members, "pairs": mine},
+        )
+
+
+RULE = RuleSpec(
+    name="head-circuits",
+    severity=Severity.WARNING,
+    settings=HeadCircuitsSettings,
+    summary="idle and duplicated attention heads are wasted capacity, and a head that dwarfs "
+    "its layer makes the layer fragile under pruning and quantization",
+    doc=__doc__ or "",
+    per_layer=check_layer,
+    finish=finish,
+)

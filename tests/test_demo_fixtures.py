@@ -385,9 +385,12 @@ def _judged(findings: list[Any]) -> set[tuple[str, str]]:
 #: Rules about what the reader recognised rather than about the weights: the demo's layers are
 #: all recognised, so they never fire on it (tests/test_gate_coverage.py plants their cases).
 _ABOUT_THE_READER = {"uncovered-weights"}
-# Rules about language-model structure (token rows, super weights, low-bit readiness): the
-# demo MLPs have none; fixtures/transformers_tokens/ plants them (tests/rules/test_*).
-_TRANSFORMER = {"untrained-token", "essential-weight", "quantization-error"}
+# Rules about language-model structure (token rows, super weights, low-bit readiness,
+# attention heads, experts): the demo MLPs have none; fixtures/transformers_tokens/ and
+# fixtures/transformers_heads/ plant them (tests/rules/test_*).
+_TRANSFORMER = {
+    "untrained-token", "essential-weight", "quantization-error", "head-circuits", "moe-experts",
+}
 # Rules about fine-tuning adapters (an update B·A and its base): the demo holds full models,
 # no adapter; fixtures/adapters/ (written by peft) plants them (tests/rules/test_adapter_update.py).
 _ADAPTER = {"adapter-update"}

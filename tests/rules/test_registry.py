@@ -37,6 +37,7 @@ AUDIT = {
     "nonfinite", "dead-unit", "fan-in-norm", "twin-units",
     "unsupported-weight", "untrained-layer", "constraint-breach", "uncovered-weights",
     "adapter-update", "untrained-token", "essential-weight", "quantization-error",
+    "head-circuits", "moe-experts",
 }
 COMPARE = {"layer-drift", "frozen-layer-moved", "units-died", "new-nonfinite"}
 REPO = Path(__file__).resolve().parents[2]

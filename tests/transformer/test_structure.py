@@ -1,0 +1,211 @@
+"""The transformer structure (heads, key/value heads, experts) against the models' own semantics.
+
+Ground truth: ``fixtures/transformers_heads/*/expected_heads.json``, measured by the fixture
+writer on the ``transformers`` model objects themselves (perturbing each run of rows and seeing
+which heads' attention probabilities or which output-projection input blocks move), and
+``expected_experts.json`` from the MoE modules' own parameters. The GGUF copies were written with
+the ``gguf`` package's writer and are read back through steelyard's loader.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from safetensors.numpy import save_file
+
+from steelyard.loaders import load
+from steelyard.transformer.model import AttentionBlock
+
+HEADS = Path(__file__).resolve().parents[2] / "fixtures" / "transformers_heads"
+MODELS = ("moe_decoder", "gpt2", "bert")
+
+
+def _expected(model: str) -> dict[str, Any]:
+    return json.loads((HEADS / model / "expected_heads.json").read_text())  # type: ignore[no-any-return]
+
+
+def _spans(block: AttentionBlock) -> list[dict[str, Any]]:
+    return [
+        {"head": h.index, "q": [h.q.start, h.q.stop], "k": [h.k.start, h.k.stop],
+         "v": [h.v.start, h.v.stop], "o": [h.o.start, h.o.stop]}
+        for h in block.heads
+    ]
+
+
+@pytest.mark.parametrize("model", MODELS)
+@pytest.mark.parametrize("variant", ["clean", "planted"])
+def test_heads_match_the_model_objects(model: str, variant: str) -> None:
+    checkpoint = load(HEADS / model / variant)
+    structure = checkpoint.transformer
+    assert structure is not None and structure.source == "config.json"
+    expected = _expected(model)
+    assert [b.name for b in structure.attention] == list(expected)
+    for block in structure.attention:
+        truth = expected[block.name]
+        assert len(block.heads) == truth["heads"]
+        assert block.kv_heads == truth["kv_heads"]
+        assert block.head_dim == truth["head_dim"]
+        assert _spans(block) == truth["map"]
+
+
+def test_family_and_fused_layout() -> None:
+    # Families from the model type (common practice, no source); GPT-2's c_attn is q|k|v
+    # (transformers GPT2Attention splits it with .split(split_size, dim=2)).
+    assert load(HEADS / "gpt2" / "clean").transformer.family == "decoder"  # type: ignore[union-attr]
+    assert load(HEADS / "bert" / "clean").transformer.family == "encoder"  # type: ignore[union-attr]
+    gpt2 = load(HEADS / "gpt2" / "clean").transformer
+    assert gpt2 is not None and all(b.fused == "q|k|v" for b in gpt2.attention)
+    assert gpt2.tied_embeddings is True  # GPT-2 ties lm_head to wte (config tie_word_embeddings)
+    moe = load(HEADS / "moe_decoder" / "clean").transformer
+    assert moe is not None and moe.tied_embeddings is False
+    assert "model.norm.weight" in moe.norm_gains
+
+
+def test_gguf_heads_and_experts_from_metadata() -> None:
+    # The GGUF copy holds the same weights under llama.cpp names; its query/key rows were
+    # reordered within each head for the rotary layout (convert_hf_to_gguf LlamaModel.permute),
+    # which leaves head membership unchanged.
+    structure = load(HEADS / "moe_decoder" / "planted.gguf").transformer
+    assert structure is not None and structure.source == "GGUF metadata"
+    expected = _expected("moe_decoder")
+    for block, truth in zip(structure.attention, expected.values(), strict=True):
+        assert block.kv_heads == truth["kv_heads"] and block.head_dim == truth["head_dim"]
+        assert _spans(block) == truth["map"]
+    experts = json.loads((HEADS / "moe_decoder" / "expected_experts.json").read_text())
+    assert [len(b.experts) for b in structure.experts] == [e["experts"] for e in experts.values()]
+    assert [b.router for b in structure.experts] == ["blk.0.ffn_gate_inp", "blk.1.ffn_gate_inp"]
+    assert {p.role for p in structure.experts[0].experts[0].parts} == {"gate", "up", "down"}
+
+
+def test_stacked_experts_match_the_moe_modules() -> None:
+    structure = load(HEADS / "moe_decoder" / "clean").transformer
+    assert structure is not None
+    expected = json.loads((HEADS / "moe_decoder" / "expected_experts.json").read_text())
+    assert [b.name for b in structure.experts] == list(expected)
+    for block in structure.experts:
+        truth = expected[block.name]
+        assert len(block.experts) == truth["experts"] and block.router == truth["router"]
+        assert block.top_k == truth["top_k"]
+        for expert in block.experts:
+            assert {p.tensor for p in expert.parts} == set(truth["stacks"])
+            assert all(p.stack_index == expert.index and p.layer is None for p in expert.parts)
+
+
+def legacy_experts(source: Path, target: Path) -> Path:
+    """The MoE decoder in the per-expert layout transformers' save_pretrained writes for
+    Mixtral (``block_sparse_moe.experts.<e>.w1/w3/w2``; w1 is the gate, w3 the up projection,
+    the first and second halves of gate_up_proj)."""
+    import ml_dtypes  # noqa: F401
+    from safetensors.numpy import load_file
+
+    state = load_file(str(source / "model.safetensors"))
+    out: dict[str, np.ndarray] = {}
+    for name, value in state.items():
+        value = np.asarray(value, dtype=np.float32)
+        if ".mlp.experts." in name:
+            block = name.split(".mlp.")[0] + ".block_sparse_moe.experts"
+            inner = value.shape[1] // 2
+            for e in range(value.shape[0]):
+                if name.endswith("gate_up_proj"):
+                    out[f"{block}.{e}.w1.weight"] = np.ascontiguousarray(value[e, :inner])
+                    out[f"{block}.{e}.w3.weight"] = np.ascontiguousarray(value[e, inner:])
+                else:
+                    out[f"{block}.{e}.w2.weight"] = np.ascontiguousarray(value[e])
+        else:
+            out[name.replace(".mlp.gate.", ".block_sparse_moe.gate.")] = value
+    target.mkdir(parents=True, exist_ok=True)
+    save_file(out, str(target / "model.safetensors"))
+    (target / "config.json").write_text((source / "config.json").read_text())
+    return target
+
+
+def test_per_expert_modules_are_recognised(tmp_path: Path) -> None:
+    folder = legacy_experts(HEADS / "moe_decoder" / "planted", tmp_path / "legacy")
+    structure = load(folder).transformer
+    assert structure is not None
+    assert [b.name for b in structure.experts] == ["model.layers.0.block_sparse_moe", "model.layers.1.block_sparse_moe"]
+    block = structure.experts[0]
+    assert block.router == "model.layers.0.block_sparse_moe.gate"
+    assert [sorted(p.role for p in e.parts) for e in block.experts] == [["down", "gate", "up"]] * 4
+
+
+def _config(folder: Path, **values: Any) -> None:
+    (folder / "config.json").write_text(json.dumps(values))
+
+
+def _write(folder: Path, tensors: dict[str, tuple[int, ...]], **config: Any) -> Path:
+    rng = np.random.default_rng(0)
+    folder.mkdir(parents=True, exist_ok=True)
+    save_file({k: rng.standard_normal(s).astype(np.float32) for k, s in tensors.items()}, str(folder / "model.safetensors"))
+    if config:
+        _config(folder, **config)
+    return folder
+
+
+@pytest.mark.parametrize(("heads", "kv", "dim"), [(8, 8, 16), (8, 2, 16), (6, 1, 8), (12, 4, 4)])
+def test_grouped_and_multi_query_heads_in_several_shapes(tmp_path: Path, heads: int, kv: int, dim: int) -> None:
+    # Query head h reads key/value head h // (H/G): transformers' repeat_kv repeats each key/value
+    # head for consecutive query heads (modeling_llama.repeat_kv; cited from memory).
+    width = 48
+    p = "model.layers.0.self_attn."
+    folder = _write(tmp_path / "m", {p + "q_proj.weight": (heads * dim, width), p + "k_proj.weight": (kv * dim, width),
+                                     p + "v_proj.weight": (kv * dim, width), p + "o_proj.weight": (width, heads * dim)},
+                    model_type="llama", num_attention_heads=heads, num_key_value_heads=kv, head_dim=dim, hidden_size=width)
+    block = load(folder).transformer.attention[0]  # type: ignore[union-attr]
+    group = heads // kv
+    for h in block.heads:
+        assert (h.q.start, h.k.start, h.o.start) == (h.index * dim, (h.index // group) * dim, h.index * dim)
+        assert h.o.axis == "columns"
+
+
+@pytest.mark.parametrize(("model_type", "extra", "layout"), [
+    ("gpt_neox", {}, "per-head"),
+    ("falcon", {"new_decoder_architecture": True, "num_kv_heads": 2}, "per-group"),
+    ("falcon", {"multi_query": True}, "q|k|v"),
+])
+def test_fused_query_key_value_layouts(tmp_path: Path, model_type: str, extra: dict[str, Any], layout: str) -> None:
+    # Layouts from the transformers attention classes (cited from memory): GPT-NeoX views the
+    # fused rows as [H, 3·d_h] (q, k, v per head); Falcon's new architecture as
+    # [G, H/G + 2, d_h] (the group's queries, then its key and value); multi-query Falcon as
+    # [q (H·d_h) | k (d_h) | v (d_h)].
+    heads, dim, width = 4, 8, 32
+    kv = {"per-head": heads, "per-group": 2, "q|k|v": 1}[layout]
+    p = "gpt_neox.layers.0.attention." if model_type == "gpt_neox" else "transformer.h.0.self_attention."
+    folder = _write(tmp_path / "m", {p + "query_key_value.weight": ((heads + 2 * kv) * dim, width), p + "dense.weight": (width, width)},
+                    model_type=model_type, num_attention_heads=heads, hidden_size=width, **extra)
+    block = load(folder).transformer.attention[0]  # type: ignore[union-attr]
+    assert block.fused == layout and block.kv_heads == kv
+    rows = [(h.q.start, h.k.start, h.v.start) for h in block.heads]
+    if layout == "per-head":
+        assert rows == [(24 * h, 24 * h + 8, 24 * h + 16) for h in range(4)]
+    elif layout == "per-group":
+        assert rows == [(0, 16, 24), (8, 16, 24), (32, 48, 56), (40, 48, 56)]
+    else:
+        assert rows == [(0, 32, 40), (8, 32, 40), (16, 32, 40), (24, 32, 40)]
+
+
+def test_no_head_count_is_a_note_not_a_guess(tmp_path: Path) -> None:
+    p = "model.layers.0.self_attn."
+    folder = _write(tmp_path / "m", {p + f"{x}_proj.weight": (32, 32) for x in "qkvo"})
+    checkpoint = load(folder)
+    assert checkpoint.transformer is not None and checkpoint.transformer.attention == ()
+    assert any("no head count" in note for note in checkpoint.notes)
+
+
+def test_layers_json_carries_unit_groups() -> None:
+    from steelyard.inventory import LAYERS_SCHEMA, layers_document
+
+    document = layers_document(load(HEADS / "gpt2" / "clean"))
+    assert document["schema"] == LAYERS_SCHEMA == "steelyard.layers/1"
+    layers = {layer["name"]: layer for layer in document["layers"]}
+    fused = layers["transformer.h.0.attn.c_attn"]["unit_groups"]
+    assert [(g["kind"], g["part"], g["index"], g["start"]) for g in fused if g["part"] == "v"] == [
+        ("kv-head", "v", h, 64 + 8 * h) for h in range(4)
+    ]
+    out = layers["transformer.h.0.attn.c_proj"]["unit_groups"]
+    assert {(g["axis"], g["part"]) for g in out} == {("columns", "o")}
+    assert layers["transformer.h.0.mlp.c_fc"]["unit_groups"] == []

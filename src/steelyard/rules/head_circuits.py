@@ -248,7 +248,7 @@ def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
         if rest > 0 and h.ov >= limits.dominant_ratio * rest:
             yield _finding(
                 layer, f"head {h.index}",
-                score(1 / count, h.ov / (limits.dominant_ratio * rest)),
+                score(1 / count, h.ov / max(limits.dominant_ratio * rest, 1e-30)),
                 f"head {h.index} of {block.name} dominates its block: output-value circuit norm "
                 f"{h.ov:.3g} is {h.ov / rest:.1f}× the other heads' median {rest:.3g}",
                 "check what the head attends to before pruning or quantizing this layer",

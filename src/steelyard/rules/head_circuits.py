@@ -44,6 +44,12 @@ Biases are left out.
 Findings name the head (``head 3 of model.layers.2.self_attn``; ``part`` ``head 3``) and are
 located at the block's output projection.
 
+**Why it matters.** Heads are the unit in which attention is pruned, distilled and
+quantized. Michel et al. 2019 and Voita et al. 2019 showed that many heads of trained models
+can be removed with little loss, so finding the ones that already do nothing (idle) or
+repeat another (twins) is the cheap part of compression; a head that dominates its layer is
+the opposite case: removing or coarsely quantizing it would cost the most.
+
 **Evidence.** ``block``, ``head`` (or ``heads``), ``kv_head``, ``ov_norm``, ``qk_norm``,
 ``median_ov_norm``, the head's ``q_norm``/``k_norm``/``v_norm``/``o_norm``; for twins
 ``ov_cosine``, ``qk_cosine`` (sketch estimates) and ``ov_spectrum_gap``, ``qk_spectrum_gap``.
@@ -81,7 +87,7 @@ class HeadCircuitsSettings:
 
     idle_share: float = fraction(0.05)
     twin_cosine: float = fraction(0.95)
-    twin_spectrum: float = fraction(0.1)
+    twin_spectrum: float = threshold(0.1)
     dominant_ratio: float = threshold(10.0)
 
 

@@ -34,6 +34,11 @@ Findings name the expert (``expert 5 of model.layers.1.block_sparse_moe``; ``par
 ``expert 5`` or ``experts 2,5``) and are located at the router (at the first expert's first
 matrix when no router is stored).
 
+**Why it matters.** Experts are most of a mixture-of-experts model's parameters and memory;
+an expert the router never uses or one that duplicates another costs its full size and adds
+no capacity, and a block with such experts behaves like a smaller one than its
+configuration says (the model is under-using what it ships).
+
 **Evidence.** ``block``, ``expert``/``experts``, ``weight_norm``, ``median_weight_norm``,
 ``router_norm``, ``median_router_norm``, ``fan_in`` (per matrix: median and largest row
 norm), ``nearest`` (most similar other expert) and ``cosine``.

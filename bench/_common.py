@@ -43,6 +43,10 @@ class Shape:
     tied: bool = False
     kv: int | None = None
     """Width of the key and value projections (grouped-query attention); None: ``hidden``."""
+    heads: int | None = None
+    """Query heads, written to config.json (None: no head count, so no heads are recognised)."""
+    experts: int = 0
+    """Routed experts per block (``mlp.experts.<e>.*`` and a router ``mlp.gate``), 0: dense."""
 
     def tensors(self) -> Iterator[tuple[str, tuple[int, ...]]]:
         """Tensor names and shapes in file order."""
@@ -55,9 +59,13 @@ class Shape:
             for name, rows in (("q_proj", h), ("k_proj", kv), ("v_proj", kv), ("o_proj", h)):
                 yield f"{p}.self_attn.{name}.weight", (rows, h)
             yield f"{p}.post_attention_layernorm.weight", (h,)
-            yield f"{p}.mlp.gate_proj.weight", (f, h)
-            yield f"{p}.mlp.up_proj.weight", (f, h)
-            yield f"{p}.mlp.down_proj.weight", (h, f)
+            if self.experts:
+                yield f"{p}.mlp.gate.weight", (self.experts, h)
+            for e in range(self.experts) if self.experts else (None,):
+                m = f"{p}.mlp" if e is None else f"{p}.mlp.experts.{e}"
+                yield f"{m}.gate_proj.weight", (f, h)
+                yield f"{m}.up_proj.weight", (f, h)
+                yield f"{m}.down_proj.weight", (h, f)
         yield "model.norm.weight", (h,)
         if not self.tied:
             yield "lm_head.weight", (self.vocab, h)
@@ -164,6 +172,11 @@ def write_checkpoint(
         "num_hidden_layers": shape.layers,
         "vocab_size": shape.vocab,
     }
+    if shape.heads:
+        config["num_attention_heads"] = shape.heads
+        config["num_key_value_heads"] = shape.heads * (shape.kv or shape.hidden) // shape.hidden
+    if shape.experts:
+        config["num_experts"] = shape.experts
     (folder / "config.json").write_text(json.dumps(config))
     if len(files) == 1:
         single = folder / "model.safetensors"

@@ -170,8 +170,18 @@ class _Head:
     norms: dict[str, float]
     ov_sketch: np.ndarray
     qk_sketch: np.ndarray
-    ov_spectrum: np.ndarray
-    qk_spectrum: np.ndarray
+    grams: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+    """``(G_O, G_V, G_Q, G_K)`` of the head: its spectra are computed only for twin candidates."""
+
+    @property
+    def ov_spectrum(self) -> np.ndarray:
+        """Singular values of the output-value circuit."""
+        return circ.circuit_spectrum(self.grams[0], self.grams[1])
+
+    @property
+    def qk_spectrum(self) -> np.ndarray:
+        """Singular values of the query-key circuit."""
+        return circ.circuit_spectrum(self.grams[2], self.grams[3])
 
 
 def measure_block(block: AttentionBlock, parts: dict[str, tuple[np.ndarray, np.ndarray]]) -> list[_Head]:
@@ -197,8 +207,7 @@ def measure_block(block: AttentionBlock, parts: dict[str, tuple[np.ndarray, np.n
                 },
                 ov_sketch=so[h.index] @ sv[g],
                 qk_sketch=sq[h.index].T @ sk[g],
-                ov_spectrum=circ.circuit_spectrum(go[h.index], gv[g]),
-                qk_spectrum=circ.circuit_spectrum(gq[h.index], gk[g]),
+                grams=(go[h.index], gv[g], gq[h.index], gk[g]),
             )
         )
     return out

@@ -53,6 +53,7 @@ them so they can specialise.
 
 from __future__ import annotations
 
+import functools
 import threading
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -93,15 +94,19 @@ class _Store:
     parts: dict[tuple[int, int, str], _Part] = field(default_factory=dict)
 
 
+@functools.lru_cache(maxsize=32)
 def _positions(size: int, count: int) -> np.ndarray:
-    """The same seeded positions for every expert matrix of that size."""
+    """The same seeded positions for every expert matrix of that size (drawn once)."""
     if count <= 0 or size <= count:
         return np.arange(size)
     return np.sort(np.random.default_rng((_SEED, size)).choice(size, count, replace=False))
 
 
-def _measure(matrix: np.ndarray, count: int) -> _Part:
-    rows = np.sqrt(np.einsum("ij,ij->i", matrix, matrix, dtype=np.float64))
+def _measure(matrix: np.ndarray, count: int, rows: np.ndarray | None = None) -> _Part:
+    """``rows``: the matrix's row norms when already known (the statistics' one pass)."""
+    if rows is None:
+        rows = np.sqrt(np.einsum("ij,ij->i", matrix, matrix, dtype=np.float64))
+    rows = np.asarray(rows, dtype=np.float64)
     flat = matrix.reshape(-1)
     return _Part(
         squared=float(np.sum(rows**2)),
@@ -134,10 +139,11 @@ def check_layer(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings], l
     roles = _roles(ctx).get(layer.name)
     if not roles:
         return
-    if not np.isfinite(ctx.stats.row_norms(layer)).all():
+    rows = ctx.stats.row_norms(layer)
+    if not np.isfinite(rows).all():
         ctx.notes.add(RULE.name, "expert not judged: it holds NaN or Inf", layer.name)
         return
-    part = _measure(ctx.stats.matrix(layer), settings.for_layer(layer).sample_elements)
+    part = _measure(ctx.stats.matrix(layer), settings.for_layer(layer).sample_elements, rows)
     store = _store(ctx)
     with store.lock:
         for key in roles:

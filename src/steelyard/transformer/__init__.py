@@ -25,9 +25,16 @@ _NORM_GAIN = re.compile(r"(norm|(^|[._])ln(_?\w+)?|layernorm)[^.]*\.(weight|gamm
 _HEAD = re.compile(r"(^|\.)(lm_head|output|embed_out)\.weight$")
 
 
+#: Formats whose loader already reads a ``config.json`` beside the file (name-inferred graphs):
+#: the structure reads it again for the counts, and never adds a side-file read to the others.
+_CONFIG_FORMATS = (Format.SAFETENSORS, Format.NPZ, Format.PYTORCH)
+
+
 def _hyper(checkpoint: Checkpoint) -> Hyper:
     if checkpoint.format is Format.GGUF:
         return from_gguf(checkpoint.metadata)
+    if checkpoint.format not in _CONFIG_FORMATS:
+        return Hyper(model_type="", source="names", main=Counts())
     from steelyard.loaders.conventions import read_hf_config
 
     config = read_hf_config(Path(checkpoint.path).parent)

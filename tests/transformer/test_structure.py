@@ -209,3 +209,31 @@ def test_layers_json_carries_unit_groups() -> None:
     out = layers["transformer.h.0.attn.c_proj"]["unit_groups"]
     assert {(g["axis"], g["part"]) for g in out} == {("columns", "o")}
     assert layers["transformer.h.0.mlp.c_fc"]["unit_groups"] == []
+
+
+@pytest.mark.parametrize(("names", "config", "blocks"), [
+    # T5: SelfAttention/EncDecAttention q, k, v, o with an inner width num_heads·d_kv unlike d_model.
+    ({"encoder.block.0.layer.0.SelfAttention.": (6, 10, 40), "decoder.block.0.layer.1.EncDecAttention.": (6, 10, 40)},
+     {"model_type": "t5", "num_heads": 6, "d_kv": 10, "d_model": 40}, "encoder-decoder"),
+    # BART: different head counts in the encoder and decoder (encoder_/decoder_attention_heads).
+    ({"model.encoder.layers.0.self_attn.": (4, 8, 32), "model.decoder.layers.0.encoder_attn.": (2, 16, 32)},
+     {"model_type": "bart", "encoder_attention_heads": 4, "decoder_attention_heads": 2, "d_model": 32}, "encoder-decoder"),
+    # ViT: attention.attention.query/key/value with attention.output.dense.
+    ({"vit.encoder.layer.0.attention.attention.": (3, 16, 48)},
+     {"model_type": "vit", "num_attention_heads": 3, "hidden_size": 48}, "vision"),
+])
+def test_other_families(tmp_path: Path, names: dict[str, tuple[int, int, int]], config: dict[str, Any], blocks: str) -> None:
+    # Module names and count keys of the transformers T5, BART and ViT classes (cited from memory).
+    tensors: dict[str, tuple[int, ...]] = {}
+    for prefix, (heads, dim, width) in names.items():
+        leaves = ("q", "k", "v", "o") if "Attention." in prefix else ("q_proj", "k_proj", "v_proj", "out_proj")
+        if prefix.startswith("vit"):
+            leaves = ("query", "key", "value", "../output.dense")
+        for leaf in leaves:
+            inner = heads * dim
+            name = prefix + leaf if not leaf.startswith("..") else prefix.rsplit(".", 2)[0] + ".output.dense"
+            tensors[name + ".weight"] = (width, inner) if leaf in ("o", "out_proj") or leaf.startswith("..") else (inner, width)
+    structure = load(_write(tmp_path / "m", tensors, **config)).transformer
+    assert structure is not None and structure.family == blocks
+    found = {b.name: (len(b.heads), b.head_dim) for b in structure.attention}
+    assert found == {prefix[:-1]: (heads, dim) for prefix, (heads, dim, _) in names.items()}

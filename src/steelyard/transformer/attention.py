@@ -121,7 +121,7 @@ def _dims(
         notes.append(f"{name}: no head count in config.json or metadata: heads not recognised")
         return None
     head_dim = counts.head_dim or (q_rows // heads if q_rows % heads == 0 else None)
-    if head_dim is None or heads * head_dim != q_rows:
+    if not head_dim or heads * head_dim != q_rows:
         notes.append(f"{name}: {q_rows} query rows do not split into {heads} heads")
         return None
     kv = counts.kv_heads or heads
@@ -173,6 +173,9 @@ def _fused(
         notes.append(f"{name}: output projection inputs ({o.fan_in}) do not split into {heads} heads")
         return None
     head_dim = counts.head_dim or o.fan_in // heads
+    if head_dim <= 0:
+        notes.append(f"{name}: output projection inputs ({o.fan_in}) are fewer than {heads} heads")
+        return None
     kv = counts.kv_heads or heads
     rows = qkv.units
     if layout == "per-head":

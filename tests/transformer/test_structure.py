@@ -91,8 +91,17 @@ def test_stacked_experts_match_the_moe_modules() -> None:
         assert len(block.experts) == truth["experts"] and block.router == truth["router"]
         assert block.top_k == truth["top_k"]
         for expert in block.experts:
+            # One layer per expert slice of each stack (loaders/stacked_experts.py).
             assert {p.tensor for p in expert.parts} == set(truth["stacks"])
-            assert all(p.stack_index == expert.index and p.layer is None for p in expert.parts)
+            assert {p.layer for p in expert.parts} == {
+                f"{block.name}.experts.{expert.index}.{t.rsplit('.', 1)[1]}" for t in truth["stacks"]
+            }
+    checkpoint = load(HEADS / "moe_decoder" / "clean")
+    layer = checkpoint.layer("model.layers.1.mlp.experts.2.gate_up_proj")
+    stack = checkpoint.tensors["model.layers.1.mlp.experts.gate_up_proj"]
+    assert layer is not None and (layer.units, layer.fan_in) == tuple(stack.shape[1:])
+    assert np.array_equal(layer.matrix(), stack.read_float32()[2])
+    assert layer.orient is not None and np.array_equal(layer.orient(stack.read_float32()), stack.read_float32()[2])
 
 
 def legacy_experts(source: Path, target: Path) -> Path:
@@ -237,3 +246,29 @@ def test_other_families(tmp_path: Path, names: dict[str, tuple[int, int, int]], 
     assert structure is not None and structure.family == blocks
     found = {b.name: (len(b.heads), b.head_dim) for b in structure.attention}
     assert found == {prefix[:-1]: (heads, dim) for prefix, (heads, dim, _) in names.items()}
+
+
+def test_stacked_experts_stored_in_out(tmp_path: Path) -> None:
+    # GPT-OSS stores gate_up_proj as [experts, in, out] with a bias [experts, out] (its
+    # modeling code multiplies x @ gate_up_proj[e]; cited from memory): the partner shapes
+    # (gate_up [E, d, 2I], down [E, I, d]) tell the orientation.
+    rng = np.random.default_rng(5)
+    experts, width, inner = 3, 16, 8
+    tensors = {
+        "model.layers.0.mlp.experts.gate_up_proj": rng.standard_normal((experts, width, 2 * inner)).astype(np.float32),
+        "model.layers.0.mlp.experts.gate_up_proj_bias": rng.standard_normal((experts, 2 * inner)).astype(np.float32),
+        "model.layers.0.mlp.experts.down_proj": rng.standard_normal((experts, inner, width)).astype(np.float32),
+        "model.layers.0.mlp.router.weight": rng.standard_normal((experts, width)).astype(np.float32),
+    }
+    folder = tmp_path / "m"
+    folder.mkdir()
+    save_file(tensors, str(folder / "model.safetensors"))
+    checkpoint = load(folder)
+    layer = checkpoint.layer("model.layers.0.mlp.experts.1.gate_up_proj")
+    assert layer is not None and (layer.units, layer.fan_in) == (2 * inner, width)
+    assert np.array_equal(layer.matrix(), tensors["model.layers.0.mlp.experts.gate_up_proj"][1].T)
+    assert np.array_equal(layer.bias_vector(), tensors["model.layers.0.mlp.experts.gate_up_proj_bias"][1])  # type: ignore[arg-type]
+    down = checkpoint.layer("model.layers.0.mlp.experts.2.down_proj")
+    assert down is not None and (down.units, down.fan_in) == (width, inner)
+    block = checkpoint.transformer.experts[0]  # type: ignore[union-attr]
+    assert block.router == "model.layers.0.mlp.router" and len(block.experts) == experts

@@ -57,6 +57,7 @@ from steelyard.graph import (
     mark_outputs,
 )
 from steelyard.loaders.base import MAX_METADATA_BYTES
+from steelyard.loaders.stacked_experts import expert_layers
 from steelyard.safepath import read_beside
 
 _EMBEDDING = re.compile(
@@ -389,6 +390,7 @@ def build_layers(
             norms[module_name] = norm
             continue
         layers.extend(_recurrent_layers(entry))
+        layers.extend(expert_layers(entry.name, entry.leaves, tensors))  # stacked [experts, …] tensors
         layer = _weight_layer(entry, model_type)
         if layer is not None:
             layers.append(layer)

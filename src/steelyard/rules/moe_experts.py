@@ -1,8 +1,8 @@
 """``moe-experts``: experts of a mixture-of-experts block that are idle or twins of another.
 
 **Which experts.** The routed experts of every mixture-of-experts block the transformer
-structure recognised (per-expert modules, stacked ``[experts, out, in]`` tensors, GGUF
-``ffn_*_exps``; see docs/transformers.md), with the block's router (one row per expert) when
+structure recognised (per-expert modules, stacked ``[experts, out, in]`` tensors split into one
+layer per expert, GGUF ``ffn_*_exps``; see docs/transformers.md), with the block's router (one row per expert) when
 it is stored. Shared experts are always active and are not judged.
 
 **What it measures.** Per expert ``e`` with weight matrices ``W_e,p`` (gate, up, down): its
@@ -64,7 +64,7 @@ from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
 from steelyard.rules.scoring import score
-from steelyard.transformer.model import ExpertBlock, ExpertPart
+from steelyard.transformer.model import ExpertBlock
 
 _SEED = 1701
 
@@ -123,8 +123,7 @@ def _roles(ctx: AuditContext) -> dict[str, list[tuple[int, int, str]]]:
         for b, block in enumerate(structure.experts if structure else ()):
             for expert in block.experts:
                 for part in expert.parts:
-                    if part.layer is not None:
-                        out.setdefault(part.layer, []).append((b, expert.index, part.role))
+                    out.setdefault(part.layer, []).append((b, expert.index, part.role))
         return out
 
     return ctx.stats.shared(f"{RULE.name}:roles", build)
@@ -151,14 +150,6 @@ def check_layer(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings], l
     yield from ()
 
 
-def _stacked(ctx: AuditContext, part: ExpertPart, count: int) -> _Part | None:
-    stack = ctx.stats.tensor(part.tensor)
-    if stack is None or part.stack_index is None or not np.isfinite(stack).all():
-        return None
-    matrix = stack[part.stack_index]
-    return _measure(np.ascontiguousarray(matrix if part.out_first else matrix.T), count)
-
-
 def finish(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings]) -> Iterator[Finding]:
     """Judge every block whose experts were all measured."""
     structure = ctx.checkpoint.transformer
@@ -169,14 +160,14 @@ def finish(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings]) -> Ite
         if len(block.experts) < 2:
             continue
         where = ctx.checkpoint.layer(block.router or "") or ctx.checkpoint.layer(
-            next((p.layer for p in block.experts[0].parts if p.layer), "")
+            block.experts[0].parts[0].layer if block.experts[0].parts else ""
         )
         limits = settings.for_layer(where)
         measured: list[list[tuple[str, _Part]]] = []
         for expert in block.experts:
             parts = []
             for part in expert.parts:
-                got = store.parts.get((b, expert.index, part.role)) if part.layer else _stacked(ctx, part, limits.sample_elements)
+                got = store.parts.get((b, expert.index, part.role))
                 if got is None:
                     break
                 parts.append((part.role, got))

@@ -48,7 +48,7 @@ def recognise(checkpoint: Checkpoint) -> Structure | None:
     hyper = _hyper(checkpoint)
     notes: list[str] = []
     blocks = attention.find_blocks(checkpoint.layers, hyper, notes)
-    moe = experts.find_blocks(checkpoint.layers, checkpoint.tensors, hyper, notes)
+    moe = experts.find_blocks(checkpoint.layers, hyper, notes)
     if not blocks and not moe and not notes:
         return None
     tied = hyper.tied
@@ -96,10 +96,9 @@ def unit_groups(structure: Structure, checkpoint: Checkpoint) -> dict[str, tuple
         for expert in (*moe.experts, *moe.shared):
             kind = "shared-expert" if expert.shared else "expert"
             for piece in expert.parts:
-                if piece.layer is not None:
-                    groups[piece.layer].append(
-                        UnitGroup(kind, expert.index, piece.role, "rows", 0, units[piece.layer], moe.name)
-                    )
+                groups[piece.layer].append(
+                    UnitGroup(kind, expert.index, piece.role, "rows", 0, units[piece.layer], moe.name)
+                )
         if moe.router is not None:
             for expert in moe.experts:
                 groups[moe.router].append(

@@ -8,8 +8,8 @@ classes and of ``gguf.constants.TENSOR_NAMES``):
   DeepSeek ``gate_proj``/``up_proj``/``down_proj``) and ``<block>.experts.expert_<e>.<leaf>``
   (Switch Transformers ``wi``/``wo``);
 * stacked tensors ``<block>.experts.gate_up_proj`` / ``gate_proj`` / ``up_proj`` /
-  ``down_proj`` of shape ``[experts, a, b]`` that no layer reads (the orientation is taken
-  from the model width: the axis equal to it is the input of gate/up and the output of down);
+  ``down_proj`` of shape ``[experts, a, b]``, which the loader already split into one layer
+  per expert named ``<block>.experts.<e>.<leaf>`` (:mod:`steelyard.loaders.stacked_experts`);
 * GGUF ``blk.N.ffn_{gate,up,down}_exps.<e>`` (the loader's per-expert layers);
 * the router ``<block>.gate`` / ``<block>.router`` / ``<block>.router.classifier`` /
   ``blk.N.ffn_gate_inp``: a dense layer with one unit per expert;
@@ -22,13 +22,12 @@ import re
 from collections import defaultdict
 from collections.abc import Mapping
 
-from steelyard.graph import Layer, LayerKind, Tensor
+from steelyard.graph import Layer, LayerKind
 from steelyard.transformer.hyper import Hyper
 from steelyard.transformer.model import Expert, ExpertBlock, ExpertPart
 
 _MODULE = re.compile(r"^(?P<block>.+)\.experts\.(?:expert_)?(?P<e>\d+)\.(?P<leaf>[\w.]+)$")
 _GGUF = re.compile(r"^(?P<block>blk\.\d+)\.ffn_(?P<leaf>gate|up|down)_exps\.(?P<e>\d+)$")
-_STACK = re.compile(r"^(?P<block>.+)\.experts\.(?P<leaf>gate_up_proj|gate_proj|up_proj|down_proj)(?:\.weight)?$")
 _SHARED = re.compile(r"^(?P<block>.+)\.(?:shared_experts?)\.(?P<leaf>\w+)$")
 _GGUF_SHARED = re.compile(r"^(?P<block>blk\.\d+)\.ffn_(?P<leaf>gate|up|down)_shexp$")
 _ROLES = {
@@ -51,9 +50,7 @@ def _router(by_name: Mapping[str, Layer], block: str, experts: int) -> str | Non
     return None
 
 
-def find_blocks(
-    layers: tuple[Layer, ...], tensors: Mapping[str, Tensor], hyper: Hyper, notes: list[str]
-) -> list[ExpertBlock]:
+def find_blocks(layers: tuple[Layer, ...], hyper: Hyper, notes: list[str]) -> list[ExpertBlock]:
     """Every mixture-of-experts block (experts in index order, router and shared experts)."""
     by_name = {layer.name: layer for layer in layers}
     parts: dict[str, dict[int, list[ExpertPart]]] = defaultdict(lambda: defaultdict(list))
@@ -70,18 +67,6 @@ def find_blocks(
         match = _SHARED.match(layer.name) or _GGUF_SHARED.match(layer.name)
         if match and match["leaf"] in _ROLES:
             shared[match["block"]].append(ExpertPart(_ROLES[match["leaf"]], layer.name, layer.weight))
-    read = {name for layer in layers for name in layer.tensor_names}
-    for name, tensor in tensors.items():
-        match = _STACK.match(name)
-        if match is None or name in read or len(tensor.shape) != 3:
-            continue
-        width = hyper.main.width
-        a, b = tensor.shape[1], tensor.shape[2]
-        role = _ROLES[match["leaf"]]
-        # [E, out, in] unless the model width says otherwise (the transformers v5 layout).
-        out_first = not (width is not None and ((role == "down" and b == width != a) or (role != "down" and a == width != b)))
-        for e in range(tensor.shape[0]):
-            parts[match["block"]][e].append(ExpertPart(role, None, name, stack_index=e, out_first=out_first))
     blocks: list[ExpertBlock] = []
     for block, experts in parts.items():
         count = max(experts) + 1

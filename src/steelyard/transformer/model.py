@@ -58,16 +58,14 @@ class AttentionBlock:
 
 @dataclass(frozen=True, slots=True)
 class ExpertPart:
-    """One weight matrix of one expert: a layer of the graph, or a slice of a stacked
-    ``[experts, a, b]`` tensor that no layer reads (``stack_index`` set)."""
+    """One weight matrix of one expert: a layer of the graph (one expert's slice of a stacked
+    tensor is a layer of its own, see :mod:`steelyard.loaders.stacked_experts`)."""
 
     role: str
     """``gate``, ``up``, ``down`` or ``gate_up`` (a fused gate and up projection)."""
-    layer: str | None
+    layer: str
     tensor: str
-    stack_index: int | None = None
-    out_first: bool = True
-    """For a stack slice: the slice is ``[out, in]`` (False: ``[in, out]``)."""
+    """The stored tensor the layer reads (shared by every expert of a stack)."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -81,3 +81,11 @@ def compact_units(units: tuple[int, ...] | list[int], limit: int = 12) -> str:
     if len(ranges) > limit:
         text += f",… ({len(units)} units)"
     return text
+
+
+def units_cell(finding: Finding, limit: int = 12) -> str:
+    """The units column of a report: the units, or the named part when the finding is about a
+    part rather than rows (``head 3``, ``experts 0,2``)."""
+    if not finding.units and finding.part:
+        return finding.part
+    return compact_units(finding.units, limit)

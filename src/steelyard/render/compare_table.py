@@ -12,7 +12,7 @@ from rich.table import Table
 from rich.text import Text
 
 from steelyard.compare.report import CompareReport, LayerDiff, Status
-from steelyard.findings import Finding, Severity, compact_units
+from steelyard.findings import Finding, Severity, compact_units, units_cell
 from steelyard.ranking import rank
 from steelyard.render.text import titled_table, to_text
 from steelyard.report import CAUTION
@@ -146,7 +146,7 @@ def _findings_table(findings: list[tuple[Finding, str]]) -> Table:
             Text(finding.severity.value, style=_STYLE[finding.severity]),
             finding.rule,
             finding.layer or "—",
-            compact_units(finding.units, limit=6),
+            units_cell(finding, limit=6),
             body,
         )
     return table

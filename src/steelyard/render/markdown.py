@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from steelyard.coverage import describe
-from steelyard.findings import Finding, compact_units
+from steelyard.findings import Finding, units_cell
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.text_safety import shown_deep
 
@@ -20,7 +20,7 @@ def _rows(findings: tuple[Finding, ...] | list[Finding]) -> list[str]:
     for finding in findings:
         lines.append(
             f"| {finding.severity.value} | `{finding.rule}` | `{_cell(finding.layer or '—')}` | "
-            f"{_cell(compact_units(finding.units, limit=6))} | {_cell(finding.message)} |"
+            f"{_cell(units_cell(finding, limit=6))} | {_cell(finding.message)} |"
         )
     return lines
 

@@ -9,7 +9,7 @@ from rich.table import Table
 from rich.text import Text
 
 from steelyard.coverage import describe
-from steelyard.findings import Finding, Severity, compact_units
+from steelyard.findings import Finding, Severity, units_cell
 from steelyard.render.text import human_bytes, human_count, titled_table, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.rules import registry
@@ -115,7 +115,7 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
                 Text(finding.severity.value, style=_STYLE[finding.severity]),
                 finding.rule,
                 ", ".join(layers) or "—",
-                compact_units(finding.units, limit=6),
+                units_cell(finding, limit=6),
                 body,
             )
         parts.append(findings)

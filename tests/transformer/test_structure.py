@@ -272,3 +272,32 @@ def test_stacked_experts_stored_in_out(tmp_path: Path) -> None:
     assert down is not None and (down.units, down.fan_in) == (width, inner)
     block = checkpoint.transformer.experts[0]  # type: ignore[union-attr]
     assert block.router == "model.layers.0.mlp.router" and len(block.experts) == experts
+
+
+@pytest.mark.parametrize("config", [
+    {"model_type": "llama", "num_attention_heads": "eight"},
+    {"model_type": "llama", "num_attention_heads": -4, "num_key_value_heads": 0},
+    {"model_type": "llama", "num_attention_heads": 10**15, "head_dim": 10**15},
+    {"model_type": "llama", "num_attention_heads": 3, "num_key_value_heads": 3},
+    {"model_type": "llama", "num_attention_heads": True, "text_config": [1, 2]},
+    {"model_type": ["llama"], "num_attention_heads": 64, "head_dim": 1},
+    {"model_type": "gpt2", "n_head": 100},
+])
+def test_hostile_counts_are_notes(tmp_path: Path, config: dict[str, Any]) -> None:
+    # Counts that contradict the shapes (or are not counts) recognise nothing, in bounded time,
+    # and say so; the file still loads (the counts are advice, the shapes are the facts).
+    p = "model.layers.0.self_attn."
+    tensors = {p + f"{x}_proj.weight": (32, 32) for x in "qkvo"} | {"transformer.h.0.attn.c_attn.weight": (32, 96),
+                                                                   "transformer.h.0.attn.c_proj.weight": (32, 32)}
+    checkpoint = load(_write(tmp_path / "m", tensors, **config))
+    structure = checkpoint.transformer
+    assert structure is not None and structure.attention == ()
+    assert structure.notes and all(note in checkpoint.notes for note in structure.notes)
+
+
+def test_units_column_names_the_head() -> None:
+    from steelyard.api import audit
+    from steelyard.render.markdown import render_markdown as render
+
+    text = render(audit(HEADS / "gpt2" / "planted"))
+    assert "| head 2 |" in text and "| heads 0,3 |" in text

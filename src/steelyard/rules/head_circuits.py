@@ -97,6 +97,9 @@ class _Factors:
 
     lock: threading.Lock = field(default_factory=threading.Lock)
     parts: dict[tuple[int, str], tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    """Factors of blocks still waiting for a projection (a block's are dropped once judged)."""
+    results: dict[int, list[Finding]] = field(default_factory=dict)
+    """Block index → its findings, judged as soon as its last projection was read."""
 
 
 def _roles(ctx: AuditContext) -> dict[str, list[tuple[int, str]]]:
@@ -134,7 +137,8 @@ def _spans(block: AttentionBlock, part: str) -> list[tuple[int, int]]:
 
 
 def check_layer(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings], layer: Layer) -> Iterator[Finding]:
-    """Collect this layer's per-head factors (the findings come in ``finish``)."""
+    """Collect this layer's per-head factors; judge its block once all four projections are in
+    (the findings are yielded by ``finish``, in block order)."""
     roles = _roles(ctx).get(layer.name)
     structure = ctx.checkpoint.transformer
     if not roles or structure is None:
@@ -158,7 +162,26 @@ def check_layer(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings],
             sketches.append(sk)
         with store.lock:
             store.parts[(index, part)] = (np.stack(grams), np.stack(sketches))
+            ready = all((index, p) in store.parts for p in "qkvo")
+            parts = {p: store.parts.pop((index, p)) for p in "qkvo"} if ready else None
+        if parts is not None:
+            # Judged now, so a block's factors live only until its four projections are read.
+            found = _judge_block(ctx, settings, block, parts)
+            with store.lock:
+                store.results[index] = found
     yield from ()
+
+
+def _judge_block(
+    ctx: AuditContext,
+    settings: RuleSettings[HeadCircuitsSettings],
+    block: AttentionBlock,
+    parts: dict[str, tuple[np.ndarray, np.ndarray]],
+) -> list[Finding]:
+    out_layer = ctx.checkpoint.layer(block.output_layer)
+    if out_layer is None or len(block.heads) < 2:
+        return []
+    return list(_judge(block, out_layer, measure_block(block, parts), settings.for_layer(out_layer)))
 
 
 @dataclass(frozen=True)
@@ -214,21 +237,11 @@ def measure_block(block: AttentionBlock, parts: dict[str, tuple[np.ndarray, np.n
 
 
 def finish(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings]) -> Iterator[Finding]:
-    """Judge every block whose four projections were collected."""
+    """Every judged block's findings, in block order (whatever order threads finished in)."""
     structure = ctx.checkpoint.transformer
-    if structure is None:
-        return
     store = _factors(ctx)
-    for index, block in enumerate(structure.attention):
-        parts = {p: store.parts.get((index, p)) for p in "qkvo"}
-        if any(v is None for v in parts.values()) or len(block.heads) < 2:
-            continue
-        out_layer = ctx.checkpoint.layer(block.output_layer)
-        if out_layer is None:
-            continue
-        limits = settings.for_layer(out_layer)
-        heads = measure_block(block, {k: v for k, v in parts.items() if v is not None})
-        yield from _judge(block, out_layer, heads, limits)
+    for index in range(len(structure.attention) if structure else 0):
+        yield from store.results.get(index, ())
 
 
 def _finding(layer: Layer, part: str, score_: float, message: str, hint: str, evidence: dict[str, object]) -> Finding:

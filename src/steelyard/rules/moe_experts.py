@@ -92,6 +92,11 @@ class _Part:
 class _Store:
     lock: threading.Lock = field(default_factory=threading.Lock)
     parts: dict[tuple[int, int, str], _Part] = field(default_factory=dict)
+    """Measurements of blocks still waiting for an expert matrix (dropped once judged)."""
+    results: dict[int, list[Finding]] = field(default_factory=dict)
+    """Block index → its findings, judged as soon as its last expert matrix was measured."""
+    remaining: dict[int, int] = field(default_factory=dict)
+    """Block index → expert matrices not measured yet."""
 
 
 @functools.lru_cache(maxsize=32)
@@ -112,7 +117,7 @@ def _measure(matrix: np.ndarray, count: int, rows: np.ndarray | None = None) -> 
         squared=float(np.sum(rows**2)),
         fan_in_median=float(np.median(rows)) if rows.size else 0.0,
         fan_in_max=float(rows.max()) if rows.size else 0.0,
-        sample=flat[_positions(flat.size, count)].astype(np.float64),
+        sample=np.ascontiguousarray(flat[_positions(flat.size, count)], dtype=np.float32),
     )
 
 
@@ -144,45 +149,59 @@ def check_layer(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings], l
         return
     part = _measure(ctx.stats.matrix(layer), settings.for_layer(layer).sample_elements, rows)
     store = _store(ctx)
-    with store.lock:
-        for key in roles:
+    structure = ctx.checkpoint.transformer
+    assert structure is not None
+    for key in roles:
+        block = structure.experts[key[0]]
+        with store.lock:
+            if key not in store.parts:
+                left = store.remaining.get(key[0], sum(len(e.parts) for e in block.experts)) - 1
+                store.remaining[key[0]] = left
             store.parts[key] = part
+            taken = None
+            if store.remaining[key[0]] == 0:
+                wanted = [(key[0], e.index, p.role) for e in block.experts for p in e.parts]
+                taken = {k: store.parts.pop(k) for k in wanted}
+        if taken is not None:
+            # Judged now, so a block's samples live only until its last expert is measured.
+            found = _judge_block(ctx, settings, block, taken)
+            with store.lock:
+                store.results[key[0]] = found
     yield from ()
 
 
 def finish(ctx: AuditContext, settings: RuleSettings[MoeExpertsSettings]) -> Iterator[Finding]:
-    """Judge every block whose experts were all measured."""
+    """Every judged block's findings in block order; a note for blocks never completed."""
     structure = ctx.checkpoint.transformer
-    if structure is None:
-        return
     store = _store(ctx)
-    for b, block in enumerate(structure.experts):
-        if len(block.experts) < 2:
-            continue
-        where = ctx.checkpoint.layer(block.router or "") or ctx.checkpoint.layer(
-            block.experts[0].parts[0].layer if block.experts[0].parts else ""
-        )
-        limits = settings.for_layer(where)
-        measured: list[list[tuple[str, _Part]]] = []
-        for expert in block.experts:
-            parts = []
-            for part in expert.parts:
-                got = store.parts.get((b, expert.index, part.role))
-                if got is None:
-                    break
-                parts.append((part.role, got))
-            else:
-                measured.append(sorted(parts, key=lambda item: item[0]))
-                continue
-            break
-        if len(measured) != len(block.experts) or where is None:
+    for b, block in enumerate(structure.experts if structure else ()):
+        if b in store.results:
+            yield from store.results[b]
+        elif len(block.experts) >= 2:
             ctx.notes.add(RULE.name, f"{block.name}: not every expert could be measured; block not judged")
-            continue
-        router = None
-        router_layer = ctx.checkpoint.layer(block.router) if block.router else None
-        if router_layer is not None:
-            router = np.asarray(ctx.stats.row_norms(router_layer), dtype=np.float64)
-        yield from _judge(block, where, measured, router, limits)
+
+
+def _judge_block(
+    ctx: AuditContext,
+    settings: RuleSettings[MoeExpertsSettings],
+    block: ExpertBlock,
+    parts: dict[tuple[int, int, str], _Part],
+) -> list[Finding]:
+    where = ctx.checkpoint.layer(block.router or "") or ctx.checkpoint.layer(
+        block.experts[0].parts[0].layer if block.experts[0].parts else ""
+    )
+    if where is None or len(block.experts) < 2:
+        return []
+    b = next(iter(parts))[0]
+    measured = [
+        sorted(((p.role, parts[(b, e.index, p.role)]) for p in e.parts), key=lambda item: item[0])
+        for e in block.experts
+    ]
+    router = None
+    router_layer = ctx.checkpoint.layer(block.router) if block.router else None
+    if router_layer is not None:
+        router = np.asarray(ctx.stats.row_norms(router_layer), dtype=np.float64)
+    return list(_judge(block, where, measured, router, settings.for_layer(where)))
 
 
 def _finding(layer: Layer, part: str, score_: float, message: str, hint: str, evidence: dict[str, object]) -> Finding:
@@ -199,12 +218,12 @@ def _judge(
     count = len(measured)
     norms = np.array([np.sqrt(sum(p.squared for _, p in parts)) for parts in measured])
     vectors = [np.concatenate([p.sample for _, p in parts]) for parts in measured]
-    lengths = np.array([np.linalg.norm(v) for v in vectors])
+    lengths = np.array([np.linalg.norm(v.astype(np.float64)) for v in vectors])
     same_shape = len({v.size for v in vectors}) == 1
     cosine = np.zeros((count, count))
     if same_shape:
         stacked = np.stack(vectors)
-        gram = stacked @ stacked.T
+        gram = (stacked @ stacked.T).astype(np.float64)  # float32 products: ~1e-6 relative
         scale = np.outer(lengths, lengths)
         cosine = np.divide(gram, scale, out=np.zeros_like(gram), where=scale > 0)
     np.fill_diagonal(cosine, -np.inf)

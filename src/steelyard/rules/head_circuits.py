@@ -285,6 +285,15 @@ def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
     yield from _twins(block, layer, [h for h in heads if h.index not in idle], limits, count)
 
 
+def _cosines(sketches: np.ndarray) -> np.ndarray:
+    """Pairwise cosines of the rows of ``sketches`` (0 where a row is zero)."""
+    rows = sketches.astype(np.float64)
+    gram = rows @ rows.T
+    length = np.sqrt(np.diag(gram))
+    scale = np.outer(length, length)
+    return np.divide(gram, scale, out=np.zeros_like(gram), where=scale > 0)
+
+
 def _twins(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: HeadCircuitsSettings, count: int) -> Iterator[Finding]:
     parent = {h.index: h.index for h in heads}
 
@@ -294,10 +303,14 @@ def _twins(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
         return i
 
     pairs: list[dict[str, Any]] = []
+    if len(heads) < 2:
+        return
+    ov_all = _cosines(np.stack([h.ov_sketch.ravel() for h in heads]))
+    qk_all = _cosines(np.stack([h.qk_sketch.ravel() for h in heads]))
     for i, a in enumerate(heads):
-        for b in heads[i + 1 :]:
-            ov_cos = circ.sketch_cosine(a.ov_sketch, b.ov_sketch)
-            qk_cos = circ.sketch_cosine(a.qk_sketch, b.qk_sketch)
+        for j in range(i + 1, len(heads)):
+            b = heads[j]
+            ov_cos, qk_cos = float(ov_all[i, j]), float(qk_all[i, j])
             if ov_cos < limits.twin_cosine or qk_cos < limits.twin_cosine:
                 continue
             ov_gap = circ.spectrum_gap(a.ov_spectrum, b.ov_spectrum)

@@ -150,18 +150,27 @@ def check_layer(ctx: AuditContext, settings: RuleSettings[HeadCircuitsSettings],
     store = _factors(ctx)
     for index, part in roles:
         block = structure.attention[index]
-        grams, sketches = [], []
-        for start, stop in _spans(block, part):
-            if part == "o":
-                gram, sk = circ.column_factors(matrix[:, start:stop], _sketch(ctx, matrix.shape[0], True))
-            else:
-                # q is sketched on the left of QK (Ψ, so its factor is W_Q Ψᵀ), k and v on the right (Ω).
-                sketch = _sketch(ctx, matrix.shape[1], part == "q")
-                gram, sk = circ.row_factors(matrix[start:stop], sketch.T if part == "q" else sketch)
-            grams.append(gram)
-            sketches.append(sk)
+        spans = _spans(block, part)
+        size = spans[0][1] - spans[0][0]
+        tiled = all(span == (spans[0][0] + i * size, spans[0][0] + (i + 1) * size) for i, span in enumerate(spans))
+        first, last = spans[0][0], spans[-1][1]
+        if part == "o":
+            sketch = _sketch(ctx, matrix.shape[0], True)
+            heads = (
+                matrix[:, first:last].reshape(matrix.shape[0], len(spans), size).transpose(1, 0, 2)
+                if tiled else np.stack([matrix[:, a:b] for a, b in spans])
+            )
+            factors = circ.column_factors(heads, sketch)
+        else:
+            # q is sketched on the left of QK (Ψ, so its factor is W_Q Ψᵀ), k and v on the right (Ω).
+            sketch = _sketch(ctx, matrix.shape[1], part == "q")
+            heads = (
+                matrix[first:last].reshape(len(spans), size, matrix.shape[1])
+                if tiled else np.stack([matrix[a:b] for a, b in spans])
+            )
+            factors = circ.row_factors(heads, sketch.T if part == "q" else sketch)
         with store.lock:
-            store.parts[(index, part)] = (np.stack(grams), np.stack(sketches))
+            store.parts[(index, part)] = factors
             ready = all((index, p) in store.parts for p in "qkvo")
             parts = {p: store.parts.pop((index, p)) for p in "qkvo"} if ready else None
         if parts is not None:

@@ -286,7 +286,8 @@ class UnitGroup:
 
     kind: str
     """``head`` (a query head's rows, or its output columns), ``kv-head`` (a key/value head's
-    rows, shared by the query heads of its group) or ``expert``."""
+    rows, shared by the query heads of its group), ``expert``, ``shared-expert``, or ``mlp``
+    (the gate and up halves of a fused gate/up projection)."""
     index: int
     """The head's or expert's number within its block (0-based)."""
     part: str

@@ -301,3 +301,17 @@ def test_units_column_names_the_head() -> None:
 
     text = render(audit(HEADS / "gpt2" / "planted"))
     assert "| head 2 |" in text and "| heads 0,3 |" in text
+
+
+def test_fused_gate_up_halves(tmp_path: Path) -> None:
+    # Phi-3 stores gate and up as one gate_up_proj [2I, d], gate first (transformers
+    # Phi3MLP: gate, up = gate_up_proj(x).chunk(2); cited from memory); down_proj reads I.
+    p = "model.layers.0.mlp."
+    folder = _write(tmp_path / "m", {p + "gate_up_proj.weight": (48, 16), p + "down_proj.weight": (16, 24),
+                                     "model.layers.1.mlp.gate_up_proj.weight": (48, 16),
+                                     "model.layers.1.mlp.down_proj.weight": (16, 48)}, model_type="phi3")
+    checkpoint = load(folder)
+    assert checkpoint.transformer is not None
+    assert checkpoint.transformer.fused_gate_up == (p + "gate_up_proj",)  # layer 1 reads all 48: not fused
+    halves = checkpoint.unit_groups[p + "gate_up_proj"]
+    assert [(g.part, g.start, g.stop) for g in halves] == [("gate", 0, 24), ("up", 24, 48)]

@@ -19,6 +19,7 @@ from pathlib import Path
 from steelyard.graph import Checkpoint, Format, LayerKind, UnitGroup
 from steelyard.transformer import attention, experts
 from steelyard.transformer.hyper import Counts, Hyper, from_config, from_gguf
+from steelyard.transformer.mlp import fused_gate_up
 from steelyard.transformer.model import Structure
 
 _NORM_GAIN = re.compile(r"(norm|(^|[._])ln(_?\w+)?|layernorm)[^.]*\.(weight|gamma|scale)$", re.IGNORECASE)
@@ -49,7 +50,8 @@ def recognise(checkpoint: Checkpoint) -> Structure | None:
     notes: list[str] = []
     blocks = attention.find_blocks(checkpoint.layers, hyper, notes)
     moe = experts.find_blocks(checkpoint.layers, hyper, notes)
-    if not blocks and not moe and not notes:
+    fused = tuple(fused_gate_up(checkpoint.layers))
+    if not blocks and not moe and not fused and not notes:
         return None
     tied = hyper.tied
     if tied is None:
@@ -71,6 +73,7 @@ def recognise(checkpoint: Checkpoint) -> Structure | None:
         experts=tuple(moe),
         tied_embeddings=tied,
         norm_gains=gains,
+        fused_gate_up=fused,
         notes=tuple(notes),
     )
 
@@ -104,6 +107,8 @@ def unit_groups(structure: Structure, checkpoint: Checkpoint) -> dict[str, tuple
                 groups[moe.router].append(
                     UnitGroup("expert", expert.index, "router", "rows", expert.index, expert.index + 1, moe.name)
                 )
+    for name, halves in fused_gate_up(checkpoint.layers).items():
+        groups[name].extend(halves)
     return {name: tuple(sorted(runs, key=lambda g: (g.part, g.start))) for name, runs in groups.items()}
 
 

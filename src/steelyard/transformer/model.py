@@ -106,4 +106,6 @@ class Structure:
     tied_embeddings: bool | None = None
     norm_gains: tuple[str, ...] = ()
     """Stored tensors that are normalisation gains (γ of layer/RMS norms)."""
+    fused_gate_up: tuple[str, ...] = ()
+    """Layers whose rows are a gated feed-forward block's gate, then its up projection."""
     notes: tuple[str, ...] = ()

@@ -315,3 +315,14 @@ def test_fused_gate_up_halves(tmp_path: Path) -> None:
     assert checkpoint.transformer.fused_gate_up == (p + "gate_up_proj",)  # layer 1 reads all 48: not fused
     halves = checkpoint.unit_groups[p + "gate_up_proj"]
     assert [(g.part, g.start, g.stop) for g in halves] == [("gate", 0, 24), ("up", 24, 48)]
+
+
+def test_stacked_expert_layers_are_capped(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # A header claiming many tiny stacks must not turn into unbounded layers: past the file's
+    # quota the stacks stay whole (common practice for hostile inputs, no source).
+    from steelyard.loaders import stacked_experts
+
+    monkeypatch.setattr(stacked_experts, "MAX_EXPERT_LAYERS", 10)
+    folder = _write(tmp_path / "m", {f"m.layers.{i}.mlp.experts.down_proj": (4, 2, 2) for i in range(5)})
+    layers = [layer for layer in load(folder).layers if ".experts." in layer.name]
+    assert len(layers) == 8  # two stacks of 4 fit in 10, the third would not

@@ -57,7 +57,7 @@ from steelyard.graph import (
     mark_outputs,
 )
 from steelyard.loaders.base import MAX_METADATA_BYTES
-from steelyard.loaders.stacked_experts import expert_layers
+from steelyard.loaders.stacked_experts import Quota, expert_layers
 from steelyard.safepath import read_beside
 
 _EMBEDDING = re.compile(
@@ -383,6 +383,7 @@ def build_layers(
 
     layers: list[Layer] = []
     norms: dict[str, Norm] = {}
+    quota = Quota()
     for module_name in order:
         entry = modules[module_name]
         norm = _norm_of(entry)
@@ -390,7 +391,7 @@ def build_layers(
             norms[module_name] = norm
             continue
         layers.extend(_recurrent_layers(entry))
-        layers.extend(expert_layers(entry.name, entry.leaves, tensors))  # stacked [experts, …] tensors
+        layers.extend(expert_layers(entry.name, entry.leaves, tensors, quota))  # stacked [experts, …]
         layer = _weight_layer(entry, model_type)
         if layer is not None:
             layers.append(layer)

@@ -23,6 +23,17 @@ from steelyard.streaming import float32_from_spans
 _LEAVES = ("gate_up_proj", "gate_proj", "up_proj", "down_proj")
 #: Stacks with more experts than this are left whole (real models have up to ~512).
 MAX_EXPERTS = 4096
+#: Expert layers made from one file's stacks at most (the largest released MoE models have
+#: under 50k expert matrices); a hostile header claiming millions of tiny stacks would
+#: otherwise make millions of layers. Stacks past it stay whole (in no layer, so uncovered).
+MAX_EXPERT_LAYERS = 2**17
+
+
+class Quota:
+    """How many more expert layers one file may get."""
+
+    def __init__(self, limit: int | None = None) -> None:
+        self.remaining = MAX_EXPERT_LAYERS if limit is None else limit
 
 
 class _Slice:
@@ -71,9 +82,12 @@ def _transposed(leaves: Mapping[str, Tensor]) -> bool:
     return in_first and not out_first
 
 
-def expert_layers(module: str, leaves: Mapping[str, Tensor], tensors: Mapping[str, Tensor]) -> list[Layer]:
+def expert_layers(
+    module: str, leaves: Mapping[str, Tensor], tensors: Mapping[str, Tensor], quota: Quota
+) -> list[Layer]:
     """The per-expert layers of one ``<block>.experts`` module's stacked tensors (``tensors``:
-    every stored tensor, where the ``<leaf>_bias`` stacks are looked up by name)."""
+    every stored tensor, where the ``<leaf>_bias`` stacks are looked up by name; ``quota``:
+    the file's remaining allowance of expert layers)."""
     if not module.endswith("experts"):
         return []
     transposed = _transposed(leaves)
@@ -85,9 +99,10 @@ def expert_layers(module: str, leaves: Mapping[str, Tensor], tensors: Mapping[st
             or tensor.role is not TensorRole.PARAMETER
             or len(tensor.shape) != 3
             or not all(tensor.shape)
-            or tensor.shape[0] > MAX_EXPERTS
+            or tensor.shape[0] > min(MAX_EXPERTS, quota.remaining)
         ):
             continue
+        quota.remaining -= tensor.shape[0]
         units, fan_in = (tensor.shape[2], tensor.shape[1]) if transposed else (tensor.shape[1], tensor.shape[2])
         bias = tensors.get(f"{module}.{leaf}_bias")
         if bias is None or bias.shape != (tensor.shape[0], units) or bias.role is not TensorRole.PARAMETER:

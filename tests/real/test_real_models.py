@@ -46,6 +46,21 @@ def test_minilm_safetensors_counts_and_layers(real_model: Fetch) -> None:
     np.testing.assert_array_equal(intermediate.matrix(), reference["encoder.layer.0.intermediate.dense.weight"])
 
 
+def test_minilm_heads_from_its_config(real_model: Fetch) -> None:
+    # config.json beside the model: BERT, 12 heads, hidden 384 (so heads of 32), 6 layers. A
+    # trained sentence encoder shipped as-is: no head is idle, twin or dominant (per-head
+    # output-value norms measured 0.35-1.49x their block's median, circuit cosines <= 0.28).
+    path = real_model(*MINILM)
+    checkpoint = load(path)
+    structure = checkpoint.transformer
+    assert structure is not None and structure.family == "encoder"
+    assert [(b.name, len(b.heads), b.head_dim) for b in structure.attention] == [
+        (f"encoder.layer.{i}.attention.self", 12, 32) for i in range(6)
+    ]
+    findings = audit(path).audits[0].findings
+    assert [f for f in findings if f.rule in ("head-circuits", "moe-experts")] == []
+
+
 def _onnx_reference_count(path: Path) -> int:
     """Floating elements of every initializer and Constant, subgraphs included (onnx reference)."""
     import onnx

@@ -42,7 +42,8 @@ Biases are left out.
    feature).
 
 Findings name the head (``head 3 of model.layers.2.self_attn``; ``part`` ``head 3``) and are
-located at the block's output projection.
+located at the block's output projection, where the thresholds are resolved too (an
+``[[override]]`` matching that layer applies to the whole block).
 
 **Why it matters.** Heads are the unit in which attention is pruned, distilled and
 quantized. Michel et al. 2019 and Voita et al. 2019 showed that many heads of trained models

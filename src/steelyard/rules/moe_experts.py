@@ -32,7 +32,8 @@ error of order ``1/sqrt(m)`` (under 0.01 for the default), far inside the twin t
 
 Findings name the expert (``expert 5 of model.layers.1.block_sparse_moe``; ``part``
 ``expert 5`` or ``experts 2,5``) and are located at the router (at the first expert's first
-matrix when no router is stored).
+matrix when no router is stored), where the thresholds are resolved too; ``sample-elements``
+is resolved per expert matrix.
 
 **Why it matters.** Experts are most of a mixture-of-experts model's parameters and memory;
 an expert the router never uses or one that duplicates another costs its full size and adds

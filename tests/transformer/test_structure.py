@@ -10,6 +10,7 @@ the ``gguf`` package's writer and are read back through steelyard's loader.
 from __future__ import annotations
 
 import json
+from itertools import pairwise
 from pathlib import Path
 from typing import Any
 
@@ -326,3 +327,67 @@ def test_stacked_expert_layers_are_capped(tmp_path: Path, monkeypatch: pytest.Mo
     folder = _write(tmp_path / "m", {f"m.layers.{i}.mlp.experts.down_proj": (4, 2, 2) for i in range(5)})
     layers = [layer for layer in load(folder).layers if ".experts." in layer.name]
     assert len(layers) == 8  # two stacks of 4 fit in 10, the third would not
+
+
+def test_recognised_heads_always_tile_their_projections() -> None:
+    # Property: whatever the counts and shapes, recognition never raises, and a block it
+    # accepts has query rows and output columns tiled exactly by its heads, and key/value
+    # rows tiled by its key/value heads (names and shapes only: no file needed).
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    from steelyard.graph import Activation, Layer, LayerKind
+    from steelyard.transformer import attention
+    from steelyard.transformer.hyper import from_config
+
+    def layer(name: str, units: int, fan_in: int) -> Layer:
+        return Layer(name=name, kind=LayerKind.DENSE, weight=name + ".weight", bias=None, units=units,
+                     in_per_group=fan_in, kernel=(), groups=1, activation=Activation.UNKNOWN,
+                     weight_view=lambda: np.zeros((units, fan_in), np.float32))
+
+    accepted = [0]
+    wobble = st.sampled_from([0, 0, 0, 1, -1, 8])
+
+    @settings(max_examples=300, deadline=None)
+    @given(h=st.integers(1, 12), ratio=st.integers(1, 4), d=st.integers(1, 16), width=st.integers(1, 64),
+           dq=wobble, dk=wobble, dv=wobble, do=wobble, fused=st.booleans(),
+           give=st.sampled_from(["all", "heads", "none", "bad"]),
+           model=st.sampled_from(["llama", "gpt_neox", "falcon", "gpt2", "bloom"]))
+    def check(h: int, ratio: int, d: int, width: int, dq: int, dk: int, dv: int, do: int, fused: bool,
+              give: str, model: str) -> None:
+        heads = h * ratio
+        kv = h
+        config: dict[str, Any] = {"model_type": model}
+        if give in ("all", "heads"):
+            config["num_attention_heads"] = heads
+        if give == "all":
+            config |= {"num_key_value_heads": kv, "head_dim": d}
+        if give == "bad":
+            config |= {"num_attention_heads": -heads, "num_key_value_heads": "x", "head_dim": 0}
+        q, k, v, o_in = (max(1, n) for n in (heads * d + dq, kv * d + dk, kv * d + dv, heads * d + do))
+        if fused:
+            layers = (layer("b.attn.query_key_value", q + k + v, width), layer("b.attn.dense", width, o_in))
+        else:
+            layers = (layer("b.attn.q_proj", q, width), layer("b.attn.k_proj", k, width),
+                      layer("b.attn.v_proj", v, width), layer("b.attn.o_proj", width, o_in))
+        notes: list[str] = []
+        blocks = attention.find_blocks(layers, from_config(config), notes)
+        assert blocks or notes or give == "none"
+        for block in blocks:
+            accepted[0] += 1
+            by_layer = {lay.name: lay for lay in layers}
+            o_cols = sorted((x.o.start, x.o.stop) for x in block.heads)
+            assert o_cols[0][0] == 0 and o_cols[-1][1] == by_layer[block.heads[0].o.layer].fan_in
+            assert all(a[1] == b[0] for a, b in pairwise(o_cols))
+            rows = {(x.q.layer, x.q.start, x.q.stop) for x in block.heads}
+            rows |= {(x.k.layer, x.k.start, x.k.stop) for x in block.heads}
+            rows |= {(x.v.layer, x.v.start, x.v.stop) for x in block.heads}
+            owners = {name for x in block.heads for name in (x.q.layer, x.k.layer, x.v.layer)}
+            for name in owners:  # every row of every projection belongs to exactly one head
+                runs = sorted((a, b) for owner, a, b in rows if owner == name)
+                assert runs[0][0] == 0 and runs[-1][1] == by_layer[name].units
+                assert all(a[1] == b[0] for a, b in pairwise(runs))
+            assert len({x.kv_index for x in block.heads}) == block.kv_heads
+
+    check()
+    assert accepted[0] > 10  # the property was exercised on accepted blocks, not only on refusals

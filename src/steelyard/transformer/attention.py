@@ -182,7 +182,13 @@ def _fused(
         kv = heads
     if (heads + 2 * kv) * head_dim != rows and rows % head_dim == 0:
         kv = (rows // head_dim - heads) // 2 if (rows // head_dim - heads) % 2 == 0 else kv
-    if kv <= 0 or heads % kv or (heads + 2 * kv) * head_dim != rows or o.fan_in != heads * head_dim:
+    if (
+        kv <= 0
+        or heads % kv
+        or (layout == "per-head" and kv != heads)  # q, k, v per head: one key/value head each
+        or (heads + 2 * kv) * head_dim != rows
+        or o.fan_in != heads * head_dim
+    ):
         notes.append(f"{name}: fused q/k/v rows ({rows}) do not match {heads} heads of width {head_dim}")
         return None
     group = heads // kv

@@ -58,7 +58,7 @@ def test_planted_experts_are_found_in_per_expert_modules(tmp_path: Path) -> None
 
 
 def test_planted_experts_are_found_in_gguf() -> None:
-    assert _kinds(_found(MOE / "planted.gguf")) == _planted(lambda b: "blk." + b.split(".")[2])
+    assert _kinds(_found(MOE / "planted.gguf")) == _planted(lambda b: "blk." + b.split(".")[2] + ".ffn")
     assert _found(MOE / "clean.gguf") == []
 
 

@@ -39,10 +39,16 @@ _ROLES = {
 _ROUTERS = (".gate", ".router", ".router.classifier", ".router.layer")
 
 
+def _block(match: re.Match[str]) -> str:
+    """The block's name: the module, or ``blk.N.ffn`` for GGUF (as attention is ``blk.N.attn``)."""
+    block = match["block"]
+    return f"{block}.ffn" if re.fullmatch(r"blk\.\d+", block) else block
+
+
 def _router(by_name: Mapping[str, Layer], block: str, experts: int) -> str | None:
     candidates = [block + suffix for suffix in _ROUTERS]
-    if block.startswith("blk."):
-        candidates.append(f"{block}.ffn_gate_inp")
+    if block.startswith("blk.") and block.endswith(".ffn"):
+        candidates.append(f"{block}_gate_inp")
     for name in candidates:
         layer = by_name.get(name)
         if layer is not None and layer.kind is LayerKind.DENSE and layer.units == experts:
@@ -62,11 +68,11 @@ def find_blocks(layers: tuple[Layer, ...], hyper: Hyper, notes: list[str]) -> li
         if match:
             role = _ROLES.get(match["leaf"])
             if role is not None:
-                parts[match["block"]][int(match["e"])].append(ExpertPart(role, layer.name, layer.weight))
+                parts[_block(match)][int(match["e"])].append(ExpertPart(role, layer.name, layer.weight))
             continue
         match = _SHARED.match(layer.name) or _GGUF_SHARED.match(layer.name)
         if match and match["leaf"] in _ROLES:
-            shared[match["block"]].append(ExpertPart(_ROLES[match["leaf"]], layer.name, layer.weight))
+            shared[_block(match)].append(ExpertPart(_ROLES[match["leaf"]], layer.name, layer.weight))
     blocks: list[ExpertBlock] = []
     for block, experts in parts.items():
         count = max(experts) + 1

@@ -391,3 +391,29 @@ def test_recognised_heads_always_tile_their_projections() -> None:
 
     check()
     assert accepted[0] > 10  # the property was exercised on accepted blocks, not only on refusals
+
+
+def test_shared_experts_and_switch_routers(tmp_path: Path) -> None:
+    # Qwen2-MoE keeps an always-active mlp.shared_expert beside mlp.experts.<e> and the router
+    # mlp.gate; Switch Transformers names experts expert_<e> with wi/wo and the router
+    # router.classifier (module names of the transformers classes; cited from memory).
+    tensors: dict[str, tuple[int, ...]] = {}
+    for e in range(4):
+        for leaf, shape in (("gate_proj", (8, 16)), ("up_proj", (8, 16)), ("down_proj", (16, 8))):
+            tensors[f"model.layers.0.mlp.experts.{e}.{leaf}.weight"] = shape
+    for leaf, shape in (("gate_proj", (8, 16)), ("up_proj", (8, 16)), ("down_proj", (16, 8))):
+        tensors[f"model.layers.0.mlp.shared_expert.{leaf}.weight"] = shape
+    tensors["model.layers.0.mlp.gate.weight"] = (4, 16)
+    tensors["model.layers.0.mlp.shared_expert_gate.weight"] = (1, 16)
+    for e in range(3):
+        tensors[f"decoder.block.1.layer.2.mlp.experts.expert_{e}.wi.weight"] = (8, 16)
+        tensors[f"decoder.block.1.layer.2.mlp.experts.expert_{e}.wo.weight"] = (16, 8)
+    tensors["decoder.block.1.layer.2.mlp.router.classifier.weight"] = (3, 16)
+    checkpoint = load(_write(tmp_path / "m", tensors, model_type="qwen2_moe", num_experts=4))
+    blocks = {b.name: b for b in checkpoint.transformer.experts}  # type: ignore[union-attr]
+    qwen, switch = blocks["model.layers.0.mlp"], blocks["decoder.block.1.layer.2.mlp"]
+    assert qwen.router == "model.layers.0.mlp.gate" and len(qwen.experts) == 4
+    assert len(qwen.shared) == 1 and sorted(p.role for p in qwen.shared[0].parts) == ["down", "gate", "up"]
+    assert {g.kind for g in checkpoint.unit_groups["model.layers.0.mlp.shared_expert.up_proj"]} == {"shared-expert"}
+    assert switch.router == "decoder.block.1.layer.2.mlp.router.classifier" and len(switch.experts) == 3
+    assert [g.index for g in checkpoint.unit_groups[switch.router]] == [0, 1, 2]

@@ -62,7 +62,7 @@ from steelyard.safepath import read_beside
 
 _EMBEDDING = re.compile(
     r"(^|[._])(embed\w*|embeddings?|wte|wpe|tok_embeddings|word_embeddings|"
-    r"position_embeddings|token_type_embeddings|shared|emb)($|[._])",
+    r"position_embeddings|token_type_embeddings|shared(?=$|\.)|emb)($|[._])",
     re.IGNORECASE,
 )
 _NORM = re.compile(r"(norm|^ln|[._]ln|ln_?\d*$|bn\d*$|^bn|[._]bn|layernorm|gn\d*$)", re.IGNORECASE)

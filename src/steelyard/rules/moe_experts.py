@@ -19,7 +19,13 @@ error of order ``1/sqrt(m)`` (under 0.01 for the default), far inside the twin t
 1. **idle expert**: ``n_e ≤ idle-share × median n`` and, when a router is stored,
    ``‖r_e‖ ≤ idle-share × median ‖r‖`` (idle-share 0.05): the router (almost) never picks it
    over the others and it would write next to nothing if it did; its parameters are dead
-   weight. Router collapse, where a few experts receive all tokens and the rest stop
+   weight. (A test of whether a router row can *never* reach the top-k is not made: with no
+   router bias, expert ``e`` wins for some input direction ``x`` iff the differences
+   ``r_e − r_f`` admit an ``x`` with every ``(r_e − r_f)·x > 0``, i.e. iff 0 is not in their
+   convex hull (Gordan's theorem of alternatives, 1873); for at most ``d + 1`` rows in general
+   position that always holds, even for a zero row, and a bounded region of normalised inputs
+   does not change it, since the test is homogeneous in ``x``. So such a test would almost
+   never fire; the norms are what tell.) Router collapse, where a few experts receive all tokens and the rest stop
    learning, is the failure load-balancing losses were introduced against (Shazeer et al.
    2017, "Outrageously Large Neural Networks: The Sparsely-Gated Mixture-of-Experts Layer",
    ICLR; Fedus, Zoph & Shazeer 2022, "Switch Transformers", JMLR).

@@ -63,6 +63,20 @@ def test_a_weight_counted_in_its_own_rms_could_never_pass_so_it_is_left_out() ->
     )
 
 
+def test_zero_rows_hold_no_outlier_weight_and_are_not_candidates() -> None:
+    # A pruned or never-written layer: most rows all zero. A zero weight is never an outlier
+    # (its row limit is 0 and it does not exceed it); the rows with a real spike still count.
+    # Before the fix every zero was a candidate, one Python step each (minutes per layer).
+    matrix = np.zeros((512, 256), np.float32)
+    matrix[7] = np.random.default_rng(2).standard_normal(256)
+    matrix[7, 9] = 500.0
+    matrix[300, 40] = 1.0  # a lone weight in an otherwise empty row
+    found = measure(matrix, 20.0)
+    assert (7, 9) in found.positions
+    assert all(matrix[u, k] != 0 for u, k in found.positions)
+    assert measure(np.zeros((512, 256), np.float32), 20.0).positions == frozenset()
+
+
 def test_an_outlier_column_is_not_an_outlier_weight() -> None:
     # Every weight of column 3 is 50× the rest: far beyond its row, ordinary in its column.
     matrix = np.random.default_rng(1).standard_normal((64, 128)).astype(np.float32)

@@ -124,7 +124,9 @@ def measure(
         if scratch.size < (b - a) * fan_in:
             scratch = np.empty((b - a) * fan_in, np.float32)
         magnitude = np.abs(block[a:b], out=scratch[: (b - a) * fan_in].reshape(b - a, fan_in))
-        hits = magnitude >= row_limit[a:b, None]
+        # Strictly beyond the limit: in a row of zeros the limit is 0 and no weight stands out
+        # (with >= every zero would be a candidate, one Python step each).
+        hits = magnitude > row_limit[a:b, None]
         if hits.any():
             uu, kk = np.nonzero(hits)
             found_u.append(uu + a)
@@ -140,7 +142,7 @@ def measure(
     keep = (w2 * (fan_in - 1 + s2) >= s2 * rows[cand_u]) & (
         w2 * (units - 1 + s2) >= s2 * columns
     )
-    keep &= np.isfinite(w2)
+    keep &= np.isfinite(w2) & (w2 > 0)
     u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
     if u.size == 0:
         return _NONE

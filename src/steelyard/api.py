@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
-import struct
-import zipfile
 from collections.abc import Callable, Sequence
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, replace
@@ -22,7 +20,7 @@ from steelyard.audit import audit_checkpoint, default_jobs
 from steelyard.budget import Budget
 from steelyard.compare.report import CompareReport
 from steelyard.discovery import Plan
-from steelyard.errors import LoadError, SteelyardError
+from steelyard.errors import LoadError, SteelyardError, UnreadableTensor
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import SUPPORTED
@@ -72,7 +70,12 @@ def gradient_source(
     return sidecar_source(sidecar.path, grads_kind, sidecar, checkpoint)
 
 
-_READ_ERRORS = (OSError, ValueError, EOFError, zipfile.BadZipFile, struct.error)
+def _unreadable(where: str | Path, exc: UnreadableTensor) -> LoadError:
+    """The input error for a tensor that turned out broken when a rule or comparison read it
+    (tensors are read lazily); any other exception from the engine is a bug and passes on."""
+    if isinstance(exc.cause, (MemoryError, RecursionError)):
+        return LoadError(where, _exhausted(exc.cause))
+    return LoadError(where, f"could not be read ({exc})")
 
 
 def audit_one(
@@ -271,11 +274,8 @@ def _audited(
 ) -> CheckpointAudit:
     try:
         return audit_checkpoint(checkpoint, policy, source, jobs=jobs)
-    except _READ_ERRORS as exc:
-        # Tensors are read lazily, so a file can turn out broken only when a rule reads it.
-        raise LoadError(
-            checkpoint.path, f"could not be read ({type(exc).__name__}: {exc})"
-        ) from exc
+    except UnreadableTensor as exc:
+        raise _unreadable(checkpoint.path, exc) from exc
     except (MemoryError, RecursionError) as exc:
         # A checkpoint too large or too deeply nested for a reader without an explicit check:
         # this checkpoint's own input error (the run goes on), never a crash.
@@ -345,11 +345,8 @@ def compare(
         after = _load(new)
         try:
             comparison = compare_checkpoints(before, after, chosen)
-        except _READ_ERRORS as exc:
-            # Tensors are read lazily, so a file can turn out broken only when it is compared.
-            raise LoadError(
-                f"{before.path} or {after.path}", f"could not be read ({type(exc).__name__}: {exc})"
-            ) from exc
+        except UnreadableTensor as exc:
+            raise _unreadable(f"{before.path} or {after.path}", exc) from exc
         except (MemoryError, RecursionError) as exc:
             raise LoadError(f"{before.path} or {after.path}", _exhausted(exc)) from exc
     return CompareReport(

@@ -8,6 +8,9 @@ views built over them. A layer's weights are always exposed in one canonical ori
 from __future__ import annotations
 
 import math
+import struct
+import zipfile
+import zlib
 from collections import Counter
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
@@ -17,6 +20,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from steelyard.dtypes import to_float32
+from steelyard.errors import UnreadableTensor
 
 if TYPE_CHECKING:  # the structure is built after loading, by steelyard.transformer
     from steelyard.transformer.model import Structure
@@ -111,6 +115,22 @@ class NormKind(str, Enum):
     RMS = "rms"
 
 
+#: What a lazily called reader raises when the file's bytes are broken or too large (the
+#: loaders' own checks raise LoadError, which passes through untouched). Anything else a read
+#: raises is a bug of steelyard's.
+_BROKEN_INPUT = (
+    OSError,
+    ValueError,
+    EOFError,
+    OverflowError,
+    zipfile.BadZipFile,
+    struct.error,
+    zlib.error,
+    MemoryError,
+    RecursionError,
+)
+
+
 @dataclass(frozen=True, slots=True)
 class Tensor:
     """One stored tensor, read only when asked."""
@@ -138,16 +158,30 @@ class Tensor:
         return math.prod(self.shape)
 
     def read(self) -> np.ndarray:
-        """The array as stored (decoded, not converted)."""
-        return self.reader()
+        """The array as stored (decoded, not converted).
+
+        Raises :class:`~steelyard.errors.UnreadableTensor` when the bytes turn out broken."""
+        try:
+            return self.reader()
+        except _BROKEN_INPUT as exc:
+            raise UnreadableTensor(self.name, exc) from exc
+
+    def read_part(self, start: int, stop: int) -> np.ndarray:
+        """Elements ``[start, stop)`` of the flattened tensor through ``read_span`` (which
+        must be set); broken bytes raise :class:`~steelyard.errors.UnreadableTensor`."""
+        assert self.read_span is not None, "read_part needs a loader that sets read_span"
+        try:
+            return self.read_span(start, stop)
+        except _BROKEN_INPUT as exc:
+            raise UnreadableTensor(self.name, exc) from exc
 
     def read_float32(self) -> np.ndarray:
         """The array converted to float32 for analysis (chunk by chunk when it can be)."""
         if self.read_span is not None and self.dtype != "f32" and self.size:
             from steelyard.streaming import float32_from_spans
 
-            return float32_from_spans(self.read_span, self.shape)
-        return to_float32(np.asarray(self.reader()))
+            return float32_from_spans(self.read_part, self.shape)
+        return to_float32(np.asarray(self.read()))
 
 
 @dataclass(frozen=True, slots=True)

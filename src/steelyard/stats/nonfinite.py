@@ -101,7 +101,7 @@ def _count(tensor: Tensor) -> Counts:
     if tensor.read_span is not None and tensor.size:
         wide = ITEMSIZE.get(tensor.dtype, 4) >= 4 and tensor.dtype in FLOAT_NAMES
         for start, stop in chunks(tensor.size):
-            stored = tensor.read_span(start, stop)
+            stored = tensor.read_part(start, stop)
             if wide:
                 count_into(stored, counts)
             else:

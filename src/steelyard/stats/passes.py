@@ -202,7 +202,7 @@ class WeightPasses:
         tensor, first = source
         assert tensor.read_span is not None
         for a, b in row_blocks(units, fan_in):
-            stored = tensor.read_span((first + a) * fan_in, (first + b) * fan_in)
+            stored = tensor.read_part((first + a) * fan_in, (first + b) * fan_in)
             if full is not None:
                 block = full[a:b]
             else:

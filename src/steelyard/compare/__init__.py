@@ -220,10 +220,12 @@ def _matched(
     bias_change = None
     if "bias" in old_vectors and "bias" in new_vectors:
         old_bias = old_vectors["bias"][0] if rows is None else old_vectors["bias"][0][rows]
-        delta = new_vectors["bias"][0].astype(np.float64) - old_bias.astype(np.float64)
-        bias_change = relative(
-            float(np.dot(delta, delta)), float(np.dot(old_bias.astype(np.float64), old_bias))
-        )
+        # inf - inf is NaN (no change measurable); new-nonfinite reports such biases.
+        with np.errstate(invalid="ignore", over="ignore"):
+            delta = new_vectors["bias"][0].astype(np.float64) - old_bias.astype(np.float64)
+            bias_change = relative(
+                float(np.dot(delta, delta)), float(np.dot(old_bias.astype(np.float64), old_bias))
+            )
     parts: list[tuple[np.ndarray | None, np.ndarray]] = [(a, b)]
     for key, (values, _) in new_vectors.items():
         previous = old_vectors.get(key)

@@ -5,8 +5,7 @@ The library API lives in :mod:`steelyard.api`; the names below are its public fa
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
-
 from steelyard.api import audit, load
+from steelyard.version import __version__
 
 __all__ = ["__version__", "audit", "load"]

@@ -14,8 +14,8 @@ from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, replace
 from pathlib import Path
 
-from steelyard import __version__, discovery
 from steelyard import budget as _budget
+from steelyard import discovery
 from steelyard.audit import audit_checkpoint, default_jobs
 from steelyard.budget import Budget
 from steelyard.compare.report import CompareReport
@@ -27,6 +27,7 @@ from steelyard.loaders import SUPPORTED
 from steelyard.loaders import load as _load
 from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
+from steelyard.version import __version__
 
 
 def _limits(budget: Budget | None, policy: Policy | None = None) -> AbstractContextManager[object]:

@@ -23,7 +23,7 @@ import click
 import typer
 from typing_extensions import assert_never
 
-from steelyard import __version__, api
+from steelyard import api
 from steelyard.budget import Budget
 from steelyard.compare.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
@@ -32,6 +32,7 @@ from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers
 from steelyard.report import Report
 from steelyard.text_safety import shown
+from steelyard.version import __version__
 
 if TYPE_CHECKING:
     from steelyard.policy import Policy

@@ -458,11 +458,10 @@ def rules(
     name: str | None = typer.Argument(None, help="A rule's name, to explain it in full."),
 ) -> None:
     """List every rule, or explain one with its math."""
-    from steelyard.compare.rules import compare_registry
     from steelyard.render.rules_text import AnySpec, render_rule, render_rules
     from steelyard.rules import registry
 
-    specs: dict[str, AnySpec] = {**registry(), **compare_registry()}
+    specs: dict[str, AnySpec] = registry(None)
     if name is None:
         sys.stdout.write(render_rules(specs, color=_color(), width=_width()))
         return

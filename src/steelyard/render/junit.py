@@ -104,6 +104,17 @@ def _inputs_suite(report: Report) -> ET.Element | None:
 
 def render_junit(report: Report) -> str:
     """The JUnit XML document as text."""
+    return dump(junit_tree(report))
+
+
+def dump(root: ET.Element) -> str:
+    """A JUnit tree as the text every renderer of this format writes."""
+    ET.indent(root)
+    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
+
+
+def junit_tree(report: Report) -> ET.Element:
+    """The JUnit ``testsuites`` element of an audit report, for renderers that build on it."""
     # Names from files, escaped: no control character (most are illegal in XML 1.0) and no
     # bidi override reaches the document.
     report = shown_deep(report)
@@ -115,5 +126,4 @@ def render_junit(report: Report) -> str:
     root.extend(suites)
     for key in ("tests", "failures", "errors", "skipped"):
         root.set(key, str(sum(int(s.get(key, "0")) for s in suites)))
-    ET.indent(root)
-    return '<?xml version="1.0" encoding="UTF-8"?>\n' + ET.tostring(root, encoding="unicode") + "\n"
+    return root

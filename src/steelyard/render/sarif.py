@@ -13,7 +13,7 @@ from typing import Any
 from steelyard.findings import Finding, Severity
 from steelyard.render.json_report import _clean
 from steelyard.report import Report, Suppressed
-from steelyard.rules import registry
+from steelyard.rules import Command, sarif_rules
 from steelyard.text_safety import shown
 
 SARIF_SCHEMA_URI = (
@@ -35,26 +35,6 @@ def _uri(path: str) -> str:
     if relative.startswith(".."):
         relative = os.path.abspath(path)
     return relative.replace(os.sep, "/")
-
-
-def _rules_table() -> tuple[list[dict[str, Any]], dict[str, int]]:
-    rules: list[dict[str, Any]] = []
-    index: dict[str, int] = {}
-    for position, spec in enumerate(registry().values()):
-        index[spec.name] = position
-        rules.append(
-            {
-                "id": spec.name,
-                "name": "".join(part.capitalize() for part in spec.name.split("-")),
-                "shortDescription": {"text": spec.summary},
-                "fullDescription": {"text": spec.doc.strip().split("\n\n")[0]},
-                "help": {"text": spec.doc.strip(), "markdown": spec.doc.strip()},
-                "helpUri": spec.help_uri,
-                "defaultConfiguration": {"level": level(spec.severity)},
-                "properties": {"thresholds": dict(spec.thresholds)},
-            }
-        )
-    return rules, index
 
 
 def _result(
@@ -122,7 +102,19 @@ def _notification(text: str, level: str, uri: str | None = None) -> dict[str, An
 
 def render_sarif(report: Report) -> str:
     """The SARIF log as text."""
-    rules, rule_index = _rules_table()
+    return dump(sarif_log(report))
+
+
+def dump(log: dict[str, Any]) -> str:
+    """A SARIF log as the text every renderer of this format writes."""
+    return json.dumps(log, indent=2, ensure_ascii=False) + "\n"
+
+
+def sarif_log(report: Report, command: Command = Command.AUDIT) -> dict[str, Any]:
+    """The SARIF log of an audit report, as a document other renderers build on (compare adds
+    its own results and properties); its rules table is ``command``'s (see
+    :func:`steelyard.rules.sarif_rules`)."""
+    rules, rule_index = sarif_rules(command)
     artifacts: list[dict[str, Any]] = []
     results: list[dict[str, Any]] = []
     execution: list[dict[str, Any]] = []
@@ -179,4 +171,5 @@ def render_sarif(report: Report) -> str:
             }
         ],
     }
-    return json.dumps(_clean(log), indent=2, ensure_ascii=False) + "\n"
+    cleaned: dict[str, Any] = _clean(log)
+    return cleaned

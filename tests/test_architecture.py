@@ -190,3 +190,19 @@ def test_one_version_number() -> None:
         and any(isinstance(t, ast.Name) and t.id == "__version__" for t in node.targets)
     ]
     assert value == project["project"]["version"]
+
+
+def test_start_up_imports_no_heavy_format_library() -> None:
+    # ml_dtypes alone took 1.3 s to import on the 2-core CI machine (python -X importtime),
+    # most of `steelyard --version`; format libraries are imported when a file needs them.
+    import subprocess
+    import sys
+
+    probe = (
+        "import sys, steelyard.cli; "
+        "print(','.join(m for m in ('ml_dtypes', 'onnx', 'h5py', 'gguf', 'tokenizers') if m in sys.modules))"
+    )
+    loaded = subprocess.run(
+        [sys.executable, "-c", probe], capture_output=True, text=True, check=True
+    ).stdout.strip()
+    assert loaded == ""

@@ -5,24 +5,70 @@ Every analysis runs in float32; the stored dtype name is kept for reports.
 
 from __future__ import annotations
 
+from collections.abc import Iterator, Mapping
 from typing import Final
 
-import ml_dtypes
 import numpy as np
 
-#: Canonical short names used in reports, keyed by numpy dtype.
-FLOAT_DTYPES: Final[dict[str, np.dtype[np.generic]]] = {
-    "f64": np.dtype(np.float64),
-    "f32": np.dtype(np.float32),
-    "f16": np.dtype(np.float16),
-    "bf16": np.dtype(ml_dtypes.bfloat16),
-    "f8_e4m3": np.dtype(ml_dtypes.float8_e4m3fn),
-    "f8_e5m2": np.dtype(ml_dtypes.float8_e5m2),
-    "f8_e4m3fnuz": np.dtype(ml_dtypes.float8_e4m3fnuz),
-    "f8_e5m2fnuz": np.dtype(ml_dtypes.float8_e5m2fnuz),
-}
 
-INT_DTYPES: Final[dict[str, np.dtype[np.generic]]] = {
+class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
+    """The float dtypes, built on first use: bf16 and fp8 come from ``ml_dtypes``, whose
+    import costs about a second, so commands that read no such file (``--version``,
+    ``rules``, a float32 model) never pay for it."""
+
+    def __init__(self) -> None:
+        self._table: dict[str, np.dtype[np.generic]] | None = None
+
+    def _built(self) -> dict[str, np.dtype[np.generic]]:
+        if self._table is None:
+            import ml_dtypes
+
+            self._table = {
+                "f64": np.dtype(np.float64),
+                "f32": np.dtype(np.float32),
+                "f16": np.dtype(np.float16),
+                "bf16": np.dtype(ml_dtypes.bfloat16),
+                "f8_e4m3": np.dtype(ml_dtypes.float8_e4m3fn),
+                "f8_e5m2": np.dtype(ml_dtypes.float8_e5m2),
+                "f8_e4m3fnuz": np.dtype(ml_dtypes.float8_e4m3fnuz),
+                "f8_e5m2fnuz": np.dtype(ml_dtypes.float8_e5m2fnuz),
+            }
+        return self._table
+
+    def __getitem__(self, key: str) -> np.dtype[np.generic]:
+        return self._built()[key]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._built())
+
+    def __len__(self) -> int:
+        return len(self._built())
+
+
+class _Joined(Mapping[str, "np.dtype[np.generic]"]):
+    """Two dtype tables read as one, without building the lazy one before it is used."""
+
+    def __init__(self, *parts: Mapping[str, np.dtype[np.generic]]) -> None:
+        self._parts = parts
+
+    def __getitem__(self, key: str) -> np.dtype[np.generic]:
+        for part in self._parts:
+            if key in part:
+                return part[key]
+        raise KeyError(key)
+
+    def __iter__(self) -> Iterator[str]:
+        for part in self._parts:
+            yield from part
+
+    def __len__(self) -> int:
+        return sum(len(part) for part in self._parts)
+
+
+#: Canonical short names used in reports, keyed by numpy dtype.
+FLOAT_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = _ExtendedFloats()
+
+INT_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = {
     "bool": np.dtype(np.bool_),
     "u8": np.dtype(np.uint8),
     "i8": np.dtype(np.int8),
@@ -34,7 +80,7 @@ INT_DTYPES: Final[dict[str, np.dtype[np.generic]]] = {
     "i64": np.dtype(np.int64),
 }
 
-ALL_DTYPES: Final[dict[str, np.dtype[np.generic]]] = {**FLOAT_DTYPES, **INT_DTYPES}
+ALL_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = _Joined(FLOAT_DTYPES, INT_DTYPES)
 
 
 def is_float_name(name: str) -> bool:

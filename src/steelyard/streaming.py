@@ -10,13 +10,11 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 
-import ml_dtypes
 import numpy as np
 
 #: Float32 bytes converted per chunk (and the default row-block size of streamed passes).
 CHUNK_BYTES = 16 * 2**20
 
-_BF16 = np.dtype(ml_dtypes.bfloat16)
 
 #: Reads elements [start, stop) of a flattened tensor, in its stored dtype.
 SpanReader = Callable[[int, int], np.ndarray]
@@ -31,7 +29,7 @@ def convert_into(source: np.ndarray, out: np.ndarray) -> None:
     """
     flat_out = out.reshape(-1)
     flat_in = source.reshape(-1)
-    if flat_in.dtype == _BF16 and flat_in.dtype.byteorder in ("=", "|", "<"):
+    if flat_in.dtype.name == "bfloat16" and flat_in.dtype.byteorder in ("=", "|", "<"):
         np.left_shift(flat_in.view(np.uint16), 16, out=flat_out.view(np.uint32), dtype=np.uint32)
     else:
         flat_out[...] = flat_in

@@ -22,7 +22,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-import ml_dtypes
 import numpy as np
 
 from steelyard.compare.report import UnitChange
@@ -132,6 +131,8 @@ def row_steps(quantized: np.ndarray, values: np.ndarray) -> np.ndarray | None:
 # ---- precision ----------------------------------------------------------------------------
 def _finfo(dtype: str) -> Any:
     """Float type facts for numpy and ml_dtypes types alike."""
+    import ml_dtypes  # lazily: its import costs about a second (docs/performance.md)
+
     return ml_dtypes.finfo(FLOAT_DTYPES[dtype])  # type: ignore[no-untyped-call]
 
 
@@ -172,10 +173,10 @@ def tolerance(old: Stored, new: Stored) -> tuple[np.ndarray, str] | None:
     total = np.zeros_like(magnitude)
     ranks: list[tuple[int, str]] = []
     for side in (old, new):
-        if side.dtype in FLOAT_DTYPES:
+        if side.dtype is not None and side.dtype in FLOAT_DTYPES:
             total = total + _float_contribution(side.dtype, magnitude)
             ranks.append((_mantissa(side.dtype), side.dtype))
-        elif side.dtype in INT_DTYPES and side.step is not None:
+        elif side.dtype is not None and side.dtype in INT_DTYPES and side.step is not None:
             # |q·s − x| <= s/2 per element, plus the float32 arithmetic of (q − z)·s
             total = total + np.asarray(side.step, dtype=np.float64) / 2 + _U32 * magnitude
             ranks.append((-1, side.dtype))

@@ -25,7 +25,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Literal
 
-import ml_dtypes
 import numpy as np
 
 from steelyard import budget
@@ -98,7 +97,7 @@ def _parse_header(
         raise _NotATensor("Python objects, which would need pickle: never loaded")
     if dtype.kind == "V" and dtype.itemsize == 2:
         # ml_dtypes bfloat16 arrays are saved as anonymous 2-byte voids.
-        dtype = np.dtype(ml_dtypes.bfloat16)
+        dtype = FLOAT_DTYPES["bf16"]
     elif dtype.kind not in "biuf":
         kinds = {"U": "text", "S": "bytes", "V": "raw records", "M": "dates", "m": "durations"}
         raise _NotATensor(f"{kinds.get(dtype.kind, 'values')} of dtype {descr!r}")

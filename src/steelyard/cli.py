@@ -44,7 +44,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
-_STATE: dict[str, object] = {"debug": False, "reading": None}
+_STATE: dict[str, object] = {"debug": False, "reading": None, "color": "auto"}
 
 #: Exit code of an internal error (a bug in steelyard, never a verdict on the input).
 EXIT_INTERNAL = 3
@@ -72,6 +72,14 @@ class Unreadable(str, Enum):
 
     input_error = "input-error"
     gate_failure = "gate-failure"
+
+
+class ColorChoice(str, Enum):
+    """When the terminal report is coloured."""
+
+    auto = "auto"
+    always = "always"
+    never = "never"
 
 
 class FailOn(str, Enum):
@@ -116,11 +124,20 @@ _BudgetOption = Annotated[
 
 
 def _color(stream: object = None) -> bool:
+    """``--color``; with ``auto``, colour only on a terminal and only when ``NO_COLOR`` is
+    unset or empty (the NO_COLOR convention, no-color.org: a non-empty value disables it)."""
+    if _STATE["color"] != "auto":
+        return _STATE["color"] == "always"
     target = stream or sys.stdout
-    return bool(getattr(target, "isatty", lambda: False)()) and "NO_COLOR" not in os.environ
+    return bool(getattr(target, "isatty", lambda: False)()) and not os.environ.get("NO_COLOR")
 
 
 def _width() -> int:
+    """The report's width: ``COLUMNS`` when set (also when piped, as CI logs want), else the
+    terminal's, else 120; never under 80, the narrowest layout."""
+    columns = os.environ.get("COLUMNS", "").strip()
+    if columns.isdigit() and int(columns) > 0:
+        return max(80, min(int(columns), 1000))
     try:
         return max(80, os.get_terminal_size(sys.stdout.fileno()).columns)
     except (OSError, ValueError):
@@ -218,8 +235,15 @@ def _root(
     version: bool = typer.Option(
         False, "--version", callback=_version, is_eager=True, help="Print the version and exit."
     ),
+    color: ColorChoice = typer.Option(
+        ColorChoice.auto,
+        "--color",
+        help="Colour the terminal report: auto (on a terminal, unless NO_COLOR is set), "
+        "always or never.",
+    ),
 ) -> None:
     _STATE["debug"] = debug
+    _STATE["color"] = color.value
 
 
 def _write(text: str, output: Path | None) -> None:

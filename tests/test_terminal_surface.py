@@ -85,3 +85,12 @@ def test_no_color_disables_colour_only_when_non_empty() -> None:
     assert ESC in on_terminal(None)
     assert ESC in on_terminal("")
     assert ESC not in on_terminal("1")
+
+
+@pytest.mark.parametrize("command", ["audit", "compare", "layers", "rules", "policy"])
+def test_help_text_is_plain_text(command: str) -> None:
+    # Brackets in help are literal ("[tool.steelyard]", "[budget]"), flags show no "<bool>".
+    text = _run(command, "--help", COLUMNS="100")
+    assert "<bool>" not in text
+    if command == "audit":
+        assert "[tool.steelyard]" in text and "[budget]" in text

@@ -42,6 +42,8 @@ app = typer.Typer(
     no_args_is_help=True,
     help="Audit trained neural-network weight files before they ship.",
     pretty_exceptions_enable=False,
+    # Help text is plain text: "[tool.steelyard]" and "[budget]" are literal, not markup.
+    rich_markup_mode=None,
 )
 
 _STATE: dict[str, object] = {"debug": False, "reading": None, "color": "auto"}
@@ -116,6 +118,7 @@ _BudgetOption = Annotated[
     list[str] | None,
     typer.Option(
         "--budget",
+        metavar="KEY=VALUE",
         help="Raise or lower a resource budget, KEY=VALUE (repeatable): expansion-bytes, "
         "checkpoint-expansion-bytes, tensor-elements, layer-units, load-seconds; sizes accept "
         "512M, 2G. Overrides the policy's [budget] table.",
@@ -369,6 +372,7 @@ def audit(
         "--jobs",
         "-j",
         min=1,
+        metavar="N",
         help="Worker threads per checkpoint [default: the machine's cores]; the report is "
         "the same for every value.",
     ),

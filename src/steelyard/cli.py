@@ -95,7 +95,14 @@ class FailOn(str, Enum):
 
 # Options that audit and compare share: declared once so that they mean the same in both.
 _OutputOption = Annotated[
-    Path | None, typer.Option("--output", "-o", help="Write the report here, atomically.")
+    list[Path] | None,
+    typer.Option(
+        "--output",
+        "-o",
+        help="Write the report here, atomically; repeat for several formats from one run. "
+        "The format follows the extension (.json, .sarif, .md, .xml for JUnit, .txt for the "
+        "table) unless --format names it.",
+    ),
 ]
 _FailOnOption = Annotated[
     FailOn | None,
@@ -272,6 +279,42 @@ def _write(text: str, output: Path | None) -> None:
         raise SteelyardError(f"{output}: cannot write the report ({exc.strerror})") from None
 
 
+#: Report formats by file ending; ".sarif.json" is SARIF (the name code-scanning uploads use).
+_BY_ENDING = {
+    ".sarif.json": "sarif",
+    ".sarif": "sarif",
+    ".json": "json",
+    ".md": "markdown",
+    ".markdown": "markdown",
+    ".xml": "junit",
+    ".txt": "table",
+}
+
+
+def _targets(chosen: str | None, outputs: list[Path] | None) -> list[tuple[str, Path | None]]:
+    """(format, file or stdout) for each report to write: one run, several files. An explicit
+    ``--format`` that contradicts a file's ending is refused rather than guessed."""
+    if not outputs:
+        return [(chosen or "table", None)]
+    targets: list[tuple[str, Path | None]] = []
+    for output in outputs:
+        name = output.name.lower()
+        inferred = next((f for end, f in _BY_ENDING.items() if name.endswith(end)), None)
+        if chosen is not None and inferred is not None and inferred != chosen:
+            raise SteelyardError(
+                f"--output {output}: its ending says {inferred}, but --format says {chosen}; "
+                "rename the file or drop --format"
+            )
+        fmt = chosen or inferred
+        if fmt is None:
+            raise SteelyardError(
+                f"--output {output}: cannot tell the format from its ending; name it "
+                "with --format or use .json, .sarif, .md, .xml or .txt"
+            )
+        targets.append((fmt, output))
+    return targets
+
+
 def _write_report(text: str, output: Path | None, quiet: bool) -> None:
     """Write a report; when it went to a file, say so on stderr unless ``quiet``."""
     _write(text, output)
@@ -383,6 +426,7 @@ def audit(
     from steelyard.progress import Progress
 
     with _guarded():
+        targets = _targets(format.value if format else None, output)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         _reading(baseline)
@@ -415,7 +459,8 @@ def audit(
             report = apply_baseline(report, accepted)
         if write_baseline is not None:
             _write(baseline_text(report.audits, __version__), write_baseline)
-        _write_report(_render(report, format or AuditFormat.table), output, quiet)
+        for chosen, target in targets:
+            _write_report(_render(report, AuditFormat(chosen)), target, quiet)
     for problem in report.errors:
         _say(f"steelyard: error: {problem.line}")
     raise typer.Exit(report.exit_code)
@@ -470,6 +515,7 @@ def compare(
     from steelyard.progress import Progress
 
     with _guarded():
+        targets = _targets(format.value if format else None, output)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
@@ -477,7 +523,8 @@ def compare(
             _reading(f"{old} or {new}")
             report = api.compare(old, new, policy=policy, budget=limits)
         _STATE["reading"] = None
-        _write_report(_render_compare(report, format or CompareFormat.table), output, quiet)
+        for chosen, target in targets:
+            _write_report(_render_compare(report, CompareFormat(chosen)), target, quiet)
     raise typer.Exit(0 if report.passed else 1)
 
 

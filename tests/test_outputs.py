@@ -78,3 +78,43 @@ def test_compare_writes_several_reports_from_one_run(tmp_path: Path) -> None:
     log = json.loads((tmp_path / "c.sarif").read_text(encoding="utf-8"))
     assert log["version"] == "2.1.0"
     assert junitparser.JUnitXml.fromfile(str(tmp_path / "c.xml")) is not None
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return json.dumps(value)  # a JSON string is a valid TOML basic string (TOML 1.0)
+    return repr(value)
+
+
+def test_rules_json_lists_every_rule_with_keys_the_policy_file_accepts(tmp_path: Path) -> None:
+    from steelyard.rules import registry
+
+    result = runner.invoke(app, ["rules", "--format", "json"])
+    assert result.exit_code == 0
+    document = json.loads(result.stdout)
+    assert document["schema"] == "steelyard.rules/1"
+    assert [r["name"] for r in document["rules"]] == list(registry(None))
+    lines = []
+    for rule in document["rules"]:
+        lines.append(f'[rules.{rule["name"]}]')
+        lines += [
+            f"{key} = {_toml_value(spec['default'])}"
+            for key, spec in rule["settings"].items()
+            if spec["default"] is not None
+        ]
+    policy = tmp_path / "steelyard.toml"
+    policy.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    shown = runner.invoke(app, ["policy", "--show", "--policy", str(policy)])
+    assert shown.exit_code == 0, shown.output
+    one = json.loads(runner.invoke(app, ["rules", "dead-unit", "-f", "json"]).stdout)
+    assert [r["name"] for r in one["rules"]] == ["dead-unit"]
+    assert runner.invoke(app, ["rules", "no-such-rule", "-f", "json"]).exit_code == 2
+
+
+def test_layers_writes_to_a_file(tmp_path: Path) -> None:
+    target = tmp_path / "layers.json"
+    result = runner.invoke(app, ["layers", str(HEALTHY), "-f", "json", "-o", str(target)])
+    assert result.exit_code == 0 and result.stdout == ""
+    assert json.loads(target.read_text(encoding="utf-8"))["layers"]

@@ -53,7 +53,7 @@ EXIT_INTERNAL = 3
 
 
 class LayersFormat(str, Enum):
-    """Output formats of ``steelyard layers``."""
+    """Output formats of ``steelyard layers`` and ``steelyard rules``."""
 
     table = "table"
     json = "json"
@@ -340,6 +340,9 @@ def layers(
     format: LayersFormat = typer.Option(
         LayersFormat.table, "--format", "-f", help="Output format."
     ),
+    output: Path | None = typer.Option(
+        None, "--output", "-o", help="Write the layer graph here, atomically."
+    ),
     policy_file: _PolicyOption = None,
     budget: _BudgetOption = None,
 ) -> None:
@@ -351,10 +354,11 @@ def layers(
         if format is LayersFormat.json:
             text = json.dumps(layers_document(checkpoint), indent=2) + "\n"
         elif format is LayersFormat.table:
-            text = render_layers(checkpoint, color=_color(), width=_width())
+            color = _color() and output is None
+            text = render_layers(checkpoint, color=color, width=_width())
         else:
             assert_never(format)
-        _write(text, None)
+        _write(text, output)
 
 
 def _render(report: Report, chosen: AuditFormat) -> str:
@@ -531,12 +535,27 @@ def compare(
 @app.command()
 def rules(
     name: str | None = typer.Argument(None, help="A rule's name, to explain it in full."),
+    format: LayersFormat = typer.Option(
+        LayersFormat.table,
+        "--format",
+        "-f",
+        help="table, or json: every rule (or the named one) with its commands, severity and "
+        "policy keys (steelyard.rules/1).",
+    ),
 ) -> None:
     """List every rule, or explain one with its math."""
     from steelyard.render.rules_text import AnySpec, render_rule, render_rules
     from steelyard.rules import registry
 
     specs: dict[str, AnySpec] = registry(None)
+    if format is LayersFormat.json:
+        from steelyard.render.rules_json import render_rules_json
+
+        if name is not None and name not in specs:
+            _say(f"steelyard: error: no rule named {name!r}")
+            raise typer.Exit(2)
+        sys.stdout.write(render_rules_json([specs[name]] if name else list(specs.values())))
+        return
     if name is None:
         sys.stdout.write(render_rules(specs, color=_color(), width=_width()))
         return

@@ -122,3 +122,45 @@ def test_policy_command(tmp_path: Path) -> None:
     finally:
         os.chdir(cwd)
     assert shown.exit_code == 0 and "[rules.dead-unit]" in shown.stdout and "steelyard.toml" in shown.stdout
+
+
+def test_policy_show_is_toml_that_policy_reads_back_unchanged(tmp_path: Path) -> None:
+    # Every rule and key, unset thresholds, overrides, ignores, budget and text that needs
+    # escaping; parsed by tomllib (the standard library's TOML 1.0 reader) and by --policy.
+    import tomllib
+
+    runner = CliRunner()
+    source = tmp_path / "steelyard.toml"
+    source.write_text(
+        'fail-on = "warning"\n'
+        "input-range = [-1.5, 2.0]\n"
+        "weight-decay = 0.0001\n"
+        'frozen = ["encoder.*", "emb\\"quoted"]\n'
+        "[budget]\n"
+        "load-seconds = 30\n"
+        "[rules.dead-unit]\n"
+        "floor = 1e-06\n"
+        "[rules.fan-in-norm]\n"
+        "ratio = 6.5\n"
+        "[rules.layer-drift]\n"
+        "enabled = false\n"
+        "[[override]]\n"
+        'layers = "fc*"\n'
+        'dead-unit = { severity = "error", enabled = true }\n'
+        "[[ignore]]\n"
+        'rule = "twin-units"\n'
+        'layers = "head"\n'
+        "reason = \"copied on purpose: 'twin' heads\"\n",
+        encoding="utf-8",
+    )
+    first = runner.invoke(app, ["policy", "--show", "--policy", str(source)])
+    assert first.exit_code == 0, first.output
+    tomllib.loads(first.stdout)  # valid TOML
+    shown = tmp_path / "shown.toml"
+    shown.write_text(first.stdout, encoding="utf-8")
+    second = runner.invoke(app, ["policy", "--show", "--policy", str(shown)])
+    assert second.exit_code == 0, second.output
+    # Only the first line (where the policy came from) differs.
+    assert first.stdout.splitlines()[1:] == second.stdout.splitlines()[1:]
+    assert "# max-norm is unset" in first.stdout
+    assert 'ratio = 6.5' in first.stdout and "load-seconds = 30" in first.stdout

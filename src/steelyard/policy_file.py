@@ -10,6 +10,7 @@ TOML can be hostile (deep nesting, huge integers, wrong types) is one line, exit
 from __future__ import annotations
 
 import difflib
+import json
 import math
 import os
 import re
@@ -369,41 +370,49 @@ def starter_text() -> str:
     return "\n".join(lines)
 
 
+def _toml(value: Any) -> str:
+    """A TOML 1.0 value: JSON's string escapes are TOML basic-string escapes, and repr of a
+    float (inf, nan and exponents included) is a TOML float."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return json.dumps(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml(v) for v in value) + "]"
+    return repr(value)
+
+
 def policy_text(policy: Policy) -> str:
-    """The effective policy as TOML-like text for ``steelyard policy --show``."""
-    lines = [f"# effective policy from {policy.source}", f'fail-on = "{policy.fail_on}"']
+    """The effective policy as TOML for ``steelyard policy --show``: ``--policy`` reads it
+    back to the same policy (an unset threshold is a comment, as TOML has no null)."""
+    lines = [f"# effective policy from {policy.source}", f"fail-on = {_toml(str(policy.fail_on))}"]
     if policy.input_range is not None:
-        lines.append(f"input-range = [{policy.input_range[0]!r}, {policy.input_range[1]!r}]")
+        lines.append(f"input-range = {_toml(list(policy.input_range))}")
     if policy.weight_decay is not None:
-        lines.append(f"weight-decay = {policy.weight_decay!r}")
+        lines.append(f"weight-decay = {_toml(policy.weight_decay)}")
     if policy.frozen:
-        lines.append("frozen = [" + ", ".join(f'"{g}"' for g in policy.frozen) + "]")
+        lines.append(f"frozen = {_toml(list(policy.frozen))}")
     if policy.budget is not None:
         lines += ["", "[budget]"]
         for name, value in vars(policy.budget).items():
-            lines.append(f"{name.replace('_', '-')} = {value!r}")
+            lines.append(f"{name.replace('_', '-')} = {_toml(value)}")
     for spec in _known_rules().values():
         merged = policy.settings(spec.name, {"enabled": True, **spec.thresholds}, None)
         lines.append("")
         lines.append(f"[rules.{spec.name}]")
         for key, value in merged.items():
-            rendered = (
-                "<unset>"
-                if value is None
-                else ("true" if value is True else "false" if value is False else repr(value))
-            )
-            lines.append(f"{key} = {rendered}")
+            lines.append(f"# {key} is unset" if value is None else f"{key} = {_toml(value)}")
     for override in policy.overrides:
-        lines += ["", "[[override]]", f'layers = "{override.layers}"']
+        lines += ["", "[[override]]", f"layers = {_toml(override.layers)}"]
         for rule, settings in override.rules.items():
-            inner = ", ".join(f"{k} = {v!r}" for k, v in settings.items())
+            inner = ", ".join(f"{k} = {_toml(v)}" for k, v in settings.items() if v is not None)
             lines.append(f"{rule} = {{ {inner} }}")
     for entry in policy.ignore:
         lines += [
             "",
             "[[ignore]]",
-            f'rule = "{entry.rule}"',
-            f'layers = "{entry.layers}"',
-            f'reason = "{entry.reason}"',
+            f"rule = {_toml(entry.rule)}",
+            f"layers = {_toml(entry.layers)}",
+            f"reason = {_toml(entry.reason)}",
         ]
     return "\n".join(lines) + "\n"

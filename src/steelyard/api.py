@@ -18,7 +18,7 @@ from steelyard import budget as _budget
 from steelyard import discovery
 from steelyard.audit import audit_checkpoint, default_jobs
 from steelyard.budget import Budget
-from steelyard.compare.report import CompareReport
+from steelyard.comparison.report import CompareReport
 from steelyard.discovery import Plan
 from steelyard.errors import LoadError, SteelyardError, UnreadableTensor
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
@@ -338,7 +338,7 @@ def compare(
 ) -> CompareReport:
     """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
     ``steelyard.compare/1`` document. ``budget`` limits what reading may cost."""
-    from steelyard.compare import compare_checkpoints
+    from steelyard.comparison import compare_checkpoints
 
     chosen = policy or Policy()
     with _limits(budget, chosen):

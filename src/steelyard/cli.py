@@ -25,7 +25,7 @@ from typing_extensions import assert_never
 
 from steelyard import api
 from steelyard.budget import Budget
-from steelyard.compare.report import CompareReport
+from steelyard.comparison.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document

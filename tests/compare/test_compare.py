@@ -19,7 +19,7 @@ from typer.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app
-from steelyard.compare.matching import match_layers
+from steelyard.comparison.matching import match_layers
 from steelyard.policy import Policy
 from steelyard.report import CAUTION
 from steelyard.rules import Command, registry

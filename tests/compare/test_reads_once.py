@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from steelyard.compare import compare_checkpoints
+from steelyard.comparison import compare_checkpoints
 from steelyard.graph import Checkpoint, Tensor
 from steelyard.loaders import load
 from steelyard.loaders.conventions import inferred_checkpoint

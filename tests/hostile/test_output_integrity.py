@@ -163,7 +163,7 @@ def test_memory_and_recursion_errors_in_an_audit_are_that_checkpoints_input_erro
 def test_memory_and_recursion_errors_in_compare_are_one_line_exit_2(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, error: BaseException
 ) -> None:
-    import steelyard.compare as compare_module
+    import steelyard.comparison as compare_module
 
     def exhausted(*args: object, **kwargs: object) -> object:
         raise error

@@ -9,7 +9,7 @@ registry only. Markdown has its own short body: verdict, layer changes, findings
 
 from __future__ import annotations
 
-from steelyard.compare.report import CompareReport, LayerDiff, Status
+from steelyard.comparison.report import CompareReport, LayerDiff, Status
 from steelyard.ranking import rank
 from steelyard.render.compare_table import coverage_line, number, overview
 from steelyard.render.json_report import _clean

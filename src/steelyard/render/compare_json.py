@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from steelyard.compare.report import COMPARE_SCHEMA, CompareCoverage, CompareReport, LayerDiff
+from steelyard.comparison.report import COMPARE_SCHEMA, CompareCoverage, CompareReport, LayerDiff
 from steelyard.findings import Finding
 from steelyard.ranking import rank
 from steelyard.render.json_report import _clean, finding_block

@@ -11,7 +11,7 @@ from rich.console import Group, RenderableType
 from rich.table import Table
 from rich.text import Text
 
-from steelyard.compare.report import CompareReport, LayerDiff, Status
+from steelyard.comparison.report import CompareReport, LayerDiff, Status
 from steelyard.findings import Finding, Severity, compact_units, units_cell
 from steelyard.ranking import rank
 from steelyard.render.text import titled_table, to_text

@@ -1,6 +1,6 @@
 """The one rule registry: every rule module of every command, indexed by rule name.
 
-Audit rules live in this package, the comparison rules in :mod:`steelyard.compare.checks`;
+Audit rules live in this package, the comparison rules in :mod:`steelyard.comparison.checks`;
 both are :class:`RuleSpec` records listed in :data:`_MODULES`, in documentation order.
 """
 
@@ -34,10 +34,10 @@ _MODULES = (
     "steelyard.rules.quantization_error",
     "steelyard.rules.head_circuits",
     "steelyard.rules.moe_experts",
-    "steelyard.compare.checks.new_nonfinite",
-    "steelyard.compare.checks.frozen_layer_moved",
-    "steelyard.compare.checks.units_died",
-    "steelyard.compare.checks.layer_drift",
+    "steelyard.comparison.checks.new_nonfinite",
+    "steelyard.comparison.checks.frozen_layer_moved",
+    "steelyard.comparison.checks.units_died",
+    "steelyard.comparison.checks.layer_drift",
 )
 
 

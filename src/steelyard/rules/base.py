@@ -292,7 +292,7 @@ class RuleSpec:
     """A rule: metadata, settings record and its one check (``per_layer`` or ``whole``).
 
     The context its check reads depends on the command: :class:`AuditContext` for audit
-    rules, :class:`steelyard.compare.checks.CompareContext` for comparison rules.
+    rules, :class:`steelyard.comparison.checks.CompareContext` for comparison rules.
     """
 
     name: str

@@ -10,7 +10,7 @@ orientation never matters. Three outcomes decide a same-shape layer's status:
 * **permuted**: NEW's rows (with their bias and normalisation entries) are OLD's rows in
   another order, found by hashing each row and matching hashes, then checked bit for bit.
   Such a permutation only leaves the function unchanged when every consumer's input columns
-  are permuted the same way, which the caller verifies (see :mod:`steelyard.compare`).
+  are permuted the same way, which the caller verifies (see :mod:`steelyard.comparison`).
 """
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from steelyard.compare.report import UnitChange
+from steelyard.comparison.report import UnitChange
 from steelyard.dtypes import FLOAT_DTYPES, INT_DTYPES
 from steelyard.graph import Checkpoint, Layer, LayerKind
 from steelyard.policy import Policy

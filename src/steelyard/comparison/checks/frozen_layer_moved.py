@@ -28,8 +28,8 @@ from __future__ import annotations
 import fnmatch
 from collections.abc import Iterator
 
-from steelyard.compare.checks import CompareContext, number
-from steelyard.compare.report import Status
+from steelyard.comparison.checks import CompareContext, number
+from steelyard.comparison.report import Status
 from steelyard.findings import Finding, Severity
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score

@@ -26,8 +26,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 from dataclasses import dataclass
 
-from steelyard.compare.checks import CompareContext, number
-from steelyard.compare.report import Status
+from steelyard.comparison.checks import CompareContext, number
+from steelyard.comparison.report import Status
 from steelyard.findings import Finding, Severity
 from steelyard.rules.base import Command, RuleSettings, RuleSpec, threshold
 from steelyard.rules.scoring import score

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from steelyard.compare.checks import CompareContext
+from steelyard.comparison.checks import CompareContext
 from steelyard.findings import Finding, Severity
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score

@@ -23,7 +23,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from steelyard.compare.checks import CompareContext
+from steelyard.comparison.checks import CompareContext
 from steelyard.findings import Finding, Severity
 from steelyard.graph import TensorRole
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec

@@ -38,7 +38,7 @@ from typing import Any
 
 import numpy as np
 
-from steelyard.compare.matching import Pair, signature
+from steelyard.comparison.matching import Pair, signature
 from steelyard.graph import Activation, Checkpoint, Layer, LayerKind, Link, Norm, TensorRole
 from steelyard.stats import read_float32
 

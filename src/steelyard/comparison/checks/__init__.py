@@ -3,7 +3,7 @@
 One module per rule, each exporting ``RULE`` (a :class:`~steelyard.rules.RuleSpec` serving
 ``Command.COMPARE``, listed in the one registry :func:`steelyard.rules.registry`). They are
 whole-comparison rules: their check reads the per-layer comparison
-(:class:`~steelyard.compare.report.LayerDiff`) through :class:`CompareContext` and, for
+(:class:`~steelyard.comparison.report.LayerDiff`) through :class:`CompareContext` and, for
 ``new-nonfinite``, the tensors that belong to no layer. Policy tables, ``[[override]]`` globs,
 ``[[ignore]]`` entries and ``severity`` apply exactly as for the audit rules, in the same place
 (:func:`steelyard.rules.engine.apply_policy`).
@@ -15,7 +15,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from steelyard.compare.report import LayerDiff
+from steelyard.comparison.report import LayerDiff
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Checkpoint, Layer
 from steelyard.policy import Policy

@@ -94,7 +94,7 @@ class LayerDiff:
     structure_from: str | None = None
     """``OLD``, ``NEW`` or ``both``: whose layer structure (activation, links, normalisation,
     kind, groups, constraint) both sides were judged with, when one side took it from the
-    other (see :mod:`steelyard.compare.knowledge`); None when each side used its own."""
+    other (see :mod:`steelyard.comparison.knowledge`); None when each side used its own."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -1,10 +1,10 @@
 """``steelyard compare OLD NEW``: what changed between two checkpoints, and is it healthy.
 
 The pipeline: audit both checkpoints (the audit rules, unchanged) → match layers
-(:mod:`~steelyard.compare.matching`) → line each pair up (exact, precision-only, permuted or
-changed; :mod:`~steelyard.compare.diff`) → verify permutations against their consumers →
-measure → comparison rules (:mod:`~steelyard.compare.checks`) → one
-:class:`~steelyard.compare.report.Comparison`. NEW's audit findings are split into those
+(:mod:`~steelyard.comparison.matching`) → line each pair up (exact, precision-only, permuted or
+changed; :mod:`~steelyard.comparison.diff`) → verify permutations against their consumers →
+measure → comparison rules (:mod:`~steelyard.comparison.checks`) → one
+:class:`~steelyard.comparison.report.Comparison`. NEW's audit findings are split into those
 already present in OLD (reported, not gated on, like a baseline) and new ones (gated on).
 """
 
@@ -18,8 +18,8 @@ from dataclasses import replace
 import numpy as np
 
 from steelyard.audit import audit_checkpoint
-from steelyard.compare.checks import CompareContext, run
-from steelyard.compare.diff import (
+from steelyard.comparison.checks import CompareContext, run
+from steelyard.comparison.diff import (
     Alignment,
     Side,
     align,
@@ -33,9 +33,9 @@ from steelyard.compare.diff import (
     sums,
     top_units,
 )
-from steelyard.compare.knowledge import share_structure
-from steelyard.compare.matching import Pair, match_layers
-from steelyard.compare.report import (
+from steelyard.comparison.knowledge import share_structure
+from steelyard.comparison.matching import Pair, match_layers
+from steelyard.comparison.report import (
     CompareCoverage,
     CompareReport,
     Comparison,

@@ -26,7 +26,7 @@ OVERSIZED_MODULES = {
     "steelyard.loaders.keras_h5",
     "steelyard.loaders.keras_hdf5",
     "steelyard.loaders.keras_layers",
-    "steelyard.loaders.onnx",
+    "steelyard.loaders.onnx.loader",
     "steelyard.loaders.pickle_safe",
     "steelyard.loaders.pytorch",
 }
@@ -34,8 +34,8 @@ OVERSIZED_CLASSES = {
     "steelyard.loaders.keras_common._ConfigWalker",
     "steelyard.loaders.keras_hdf5.H5Store",
     "steelyard.loaders.keras_layers._LayerFactory",
-    "steelyard.loaders.onnx._Builder",
-    "steelyard.loaders.onnx_graph.Tracer",
+    "steelyard.loaders.onnx.loader._Builder",
+    "steelyard.loaders.onnx.node_graph.Tracer",
 }
 MAX_MODULE_LINES = 600
 MAX_CLASS_LINES = 250

@@ -40,8 +40,8 @@ from steelyard.graph import (
     TensorRole,
 )
 from steelyard.loaders import load
-from steelyard.loaders.onnx import OnnxLoader
-from steelyard.loaders.onnx_wire import strip_raw_data
+from steelyard.loaders.onnx.loader import OnnxLoader
+from steelyard.loaders.onnx.wire import strip_raw_data
 from tests.conftest import FIXTURES
 
 ONNX_DIR = FIXTURES / "real" / "onnx"

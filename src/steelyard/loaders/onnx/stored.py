@@ -1,7 +1,7 @@
 """ONNX stored tensors and nodes: element types, lazy decoding, Constant values.
 
 A tensor's bytes are never copied at load time: ``raw_data`` payloads were replaced by file
-offsets (:mod:`steelyard.loaders.onnx_wire`) and external data is memory-mapped on first read.
+offsets (:mod:`steelyard.loaders.onnx.wire`) and external data is memory-mapped on first read.
 Every claim of a TensorProto (type, shape, byte ranges) is checked before a byte is viewed.
 """
 
@@ -22,7 +22,7 @@ import numpy as np
 from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.loaders.base import file_size, inside
-from steelyard.loaders.onnx_wire import MARK, MARK_LEN
+from steelyard.loaders.onnx.wire import MARK, MARK_LEN
 
 #: Highest tensor rank accepted (ONNX itself has no limit; real models stay under 10).
 MAX_RANK = 32

@@ -28,7 +28,7 @@ import numpy as np
 
 from steelyard import budget
 from steelyard.errors import LoadError
-from steelyard.loaders.onnx_consts import DType, Node, Stored, dtype_of
+from steelyard.loaders.onnx.stored import DType, Node, Stored, dtype_of
 
 #: Longest chain of look-through ops followed back from one input.
 MAX_CHAIN = 64

@@ -17,8 +17,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from steelyard.loaders.onnx_consts import DTYPES, Node
-from steelyard.loaders.onnx_fold import Folder, View
+from steelyard.loaders.onnx.lookthrough import Folder, View
+from steelyard.loaders.onnx.stored import DTYPES, Node
 
 _F32 = DTYPES[1]
 

@@ -20,9 +20,9 @@ _REGISTRY: tuple[tuple[str, str], ...] = (
     ("steelyard.loaders.adapter", "AdapterLoader"),
     ("steelyard.loaders.safetensors", "SafetensorsLoader"),
     ("steelyard.loaders.npz", "NpzLoader"),
-    ("steelyard.loaders.keras_archive", "KerasArchiveLoader"),
+    ("steelyard.loaders.keras.archive", "KerasArchiveLoader"),
     ("steelyard.loaders.pytorch", "PytorchLoader"),
-    ("steelyard.loaders.keras_h5", "KerasH5Loader"),
+    ("steelyard.loaders.keras.h5_layout", "KerasH5Loader"),
     ("steelyard.loaders.onnx.loader", "OnnxLoader"),
     ("steelyard.loaders.gguf", "GgufLoader"),
 )

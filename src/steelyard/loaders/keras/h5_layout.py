@@ -3,7 +3,7 @@ Keras 3 ``.weights.h5``.
 
 Tensor names are dataset paths: below ``model_weights`` (or the root) for legacy files,
 inside the file for ``.weights.h5``. All HDF5 access goes through the checked
-:class:`~steelyard.loaders.keras_hdf5.H5Store`; tensors are read on demand.
+:class:`~steelyard.loaders.keras.hdf5_access.H5Store`; tensors are read on demand.
 """
 
 from __future__ import annotations
@@ -17,11 +17,11 @@ import h5py
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, OptimizerState, Tensor, TensorRole
-from steelyard.loaders import keras_common as kc
-from steelyard.loaders import keras_hdf5 as kh
-from steelyard.loaders import keras_optimizer as ko
 from steelyard.loaders.base import file_size, parse_json
-from steelyard.loaders.keras_hdf5 import (
+from steelyard.loaders.keras import hdf5_access as kh
+from steelyard.loaders.keras import model_config as kc
+from steelyard.loaders.keras import optimizer as ko
+from steelyard.loaders.keras.hdf5_access import (
     H5_ERRORS,
     H5Store,
     Location,
@@ -29,7 +29,7 @@ from steelyard.loaders.keras_hdf5 import (
     isolated,
     reason,
 )
-from steelyard.loaders.keras_layers import build_layers
+from steelyard.loaders.keras.layers import build_layers
 
 # --------------------------------------------------------------------------------------------
 # Keras 3 .weights.h5 (also the inside of a .keras archive)

@@ -20,9 +20,6 @@ from pathlib import Path
 from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
-from steelyard.loaders import keras_common as kc
-from steelyard.loaders import keras_hdf5 as kh
-from steelyard.loaders import keras_optimizer as ko
 from steelyard.loaders.base import (
     file_size,
     member_expansion,
@@ -32,8 +29,11 @@ from steelyard.loaders.base import (
     safe_zip_names,
     spill_member,
 )
-from steelyard.loaders.keras_h5 import read_weights_h5
-from steelyard.loaders.keras_hdf5 import H5Store, Location, isolated
+from steelyard.loaders.keras import hdf5_access as kh
+from steelyard.loaders.keras import model_config as kc
+from steelyard.loaders.keras import optimizer as ko
+from steelyard.loaders.keras.h5_layout import read_weights_h5
+from steelyard.loaders.keras.hdf5_access import H5Store, Location, isolated
 
 CONFIG = "config.json"
 METADATA = "metadata.json"

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from steelyard.graph import OptimizerSlots, OptimizerState, Tensor
-from steelyard.loaders.keras_common import (
+from steelyard.loaders.keras.model_config import (
     Atom,
     as_dict,
     class_name,

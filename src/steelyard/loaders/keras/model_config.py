@@ -2,8 +2,8 @@
 
 Both Keras readers (legacy HDF5 and ``.keras`` archives) turn the model config into a flat
 list of :class:`Atom` objects (one per non-container layer, nested models opened up), attach
-the stored tensors to them, and hand them to :mod:`steelyard.loaders.keras_layers` (layers)
-and :mod:`steelyard.loaders.keras_optimizer` (optimizer state). The config is the only
+the stored tensors to them, and hand them to :mod:`steelyard.loaders.keras.layers` (layers)
+and :mod:`steelyard.loaders.keras.optimizer` (optimizer state). The config is the only
 source of links, activations, norms, constraints and regularizers; without one we say less.
 
 Layouts and orders follow /work/shared/FORMATS.md ("Keras"): Dense ``[in, out]``, Conv

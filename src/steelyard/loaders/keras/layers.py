@@ -1,6 +1,6 @@
 """Keras layers in canonical orientation, linked, activated and normalised from the config.
 
-One :class:`~steelyard.loaders.keras_common.Atom` becomes one layer (Dense, Conv,
+One :class:`~steelyard.loaders.keras.model_config.Atom` becomes one layer (Dense, Conv,
 ConvTranspose, DepthwiseConv, Embedding), two (SeparableConv: depthwise + pointwise) or one
 per gate and part (LSTM/GRU/SimpleRNN kernel and recurrent kernel). Links follow the
 config's producers, looking through layers that keep a unit's identity.
@@ -27,7 +27,7 @@ from steelyard.graph import (
     Tensor,
     mark_outputs,
 )
-from steelyard.loaders.keras_common import (
+from steelyard.loaders.keras.model_config import (
     ACTIVATION_LAYERS,
     BATCH_NORM,
     CONV,

@@ -41,7 +41,7 @@ from steelyard.dtypes import name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
 from steelyard.loaders.base import MAX_METADATA_BYTES
-from steelyard.loaders.keras_common import MAX_DEPTH, natural_key
+from steelyard.loaders.keras.model_config import MAX_DEPTH, natural_key
 from steelyard.loaders.spill import spilled
 
 MAGIC = b"\x89HDF\r\n\x1a\n"
@@ -78,6 +78,7 @@ def load_timeout() -> float:
     if LOAD_TIMEOUT is not None:
         return LOAD_TIMEOUT
     return max(1.0, budget.current().load_seconds * LOAD_SHARE)
+
 
 #: What h5py raises on damaged or unexpected files; always converted to LoadError.
 H5_ERRORS: tuple[type[BaseException], ...] = (
@@ -166,9 +167,7 @@ def isolated(
     seconds, a crash of the C library a LoadError instead of a dead interpreter."""
     ctx = _context()
     receiver, sender = ctx.Pipe(duplex=False)
-    process = ctx.Process(
-        target=_child, args=(sender, fn, args, memory, os.getpid()), daemon=True
-    )
+    process = ctx.Process(target=_child, args=(sender, fn, args, memory, os.getpid()), daemon=True)
     try:
         process.start()
     except (OSError, AssertionError, ValueError, RuntimeError):

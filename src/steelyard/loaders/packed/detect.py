@@ -1,0 +1,32 @@
+"""Which packed layout a safetensors file holds, from tensor names and the config."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from enum import Enum
+
+
+class Layout(str, Enum):
+    """Packed layouts steelyard recognises (``stored_type`` prefixes in reports)."""
+
+    GPTQ = "gptq"
+    AWQ = "awq"
+    PLAIN = "plain"
+
+
+def detect_layout(names: Iterable[str], quant_config: Mapping[str, object] | None) -> Layout:
+    """The layout named by ``quantization_config``/``quantize_config.json`` (``quant_method``)
+    or, without one, by GPTQ's tensor suffixes (``qweight`` + ``qzeros`` + ``scales``).
+
+    AWQ shares GPTQ's suffixes but packs in another order, so only the config can tell the
+    two apart; without a config the suffixes are read as GPTQ (its packing is the older one).
+    """
+    method = str((quant_config or {}).get("quant_method", "")).lower()
+    if method == "awq":
+        return Layout.AWQ
+    if method == "gptq":
+        return Layout.GPTQ
+    suffixes = {name.rsplit(".", 1)[-1] for name in names}
+    if {"qweight", "qzeros", "scales"} <= suffixes:
+        return Layout.GPTQ
+    return Layout.PLAIN

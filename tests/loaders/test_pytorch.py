@@ -28,7 +28,7 @@ from hypothesis import strategies as st
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, TensorRole
 from steelyard.loaders import load, sniff_format
-from steelyard.loaders.pytorch import PytorchLoader
+from steelyard.loaders.pytorch.loader import PytorchLoader
 from tests.conftest import FIXTURES
 
 TORCH = FIXTURES / "real" / "torch"
@@ -840,7 +840,7 @@ def test_unpickling_stops_at_the_load_seconds_budget(tmp_path: Path) -> None:
 
 
 def test_a_pickle_is_refused_from_its_claimed_size_before_inflating(tmp_path: Path) -> None:
-    from steelyard.loaders.pickle_safe import MAX_PICKLE_BYTES
+    from steelyard.loaders.pytorch.unpickler import MAX_PICKLE_BYTES
 
     data = b"\x80\x02" + b"N" * (MAX_PICKLE_BYTES + 1) + b"."
     path = _archive(tmp_path / "big.pt", data, compress=zipfile.ZIP_DEFLATED)

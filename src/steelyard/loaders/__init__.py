@@ -21,7 +21,7 @@ _REGISTRY: tuple[tuple[str, str], ...] = (
     ("steelyard.loaders.safetensors", "SafetensorsLoader"),
     ("steelyard.loaders.npz", "NpzLoader"),
     ("steelyard.loaders.keras.archive", "KerasArchiveLoader"),
-    ("steelyard.loaders.pytorch", "PytorchLoader"),
+    ("steelyard.loaders.pytorch.loader", "PytorchLoader"),
     ("steelyard.loaders.keras.h5_layout", "KerasH5Loader"),
     ("steelyard.loaders.onnx.loader", "OnnxLoader"),
     ("steelyard.loaders.gguf", "GgufLoader"),

@@ -109,7 +109,7 @@ def _stored_tensors(path: Path) -> tuple[Checkpoint, Mapping[str, Tensor]]:
     with open(path, "rb") as handle:
         head = handle.read(4)
     if head == b"PK\x03\x04":
-        from steelyard.loaders.pytorch import PytorchLoader
+        from steelyard.loaders.pytorch.loader import PytorchLoader
 
         stored = PytorchLoader().load(path)
     else:

@@ -1,7 +1,7 @@
 """PyTorch checkpoints (``torch.save`` zip and legacy files, ``torch.jit.save`` archives).
 
 Nothing in the file is executed and torch is not imported: pickles go through
-:mod:`steelyard.loaders.pickle_safe`, which turns tensors into :class:`TensorRef` records;
+:mod:`steelyard.loaders.pytorch.unpickler`, which turns tensors into :class:`TensorRef` records;
 this module checks each record against its storage (``data/<key>``) and builds lazy readers
 that view the storage bytes in place (memory-mapped when the zip member is stored).
 
@@ -52,7 +52,7 @@ from steelyard.loaders.base import (
     spill_member,
 )
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
-from steelyard.loaders.pickle_safe import (
+from steelyard.loaders.pytorch.unpickler import (
     MAX_PICKLE_BYTES,
     ScriptObject,
     StorageRef,

@@ -1,11 +1,12 @@
-"""Packed and quantized weights stored in safetensors files (GPTQ-style so far).
+"""Packed and quantized weights stored in safetensors files (GPTQ- and AWQ-style so far).
 
 Each layout module turns the stored codes, scales and zero points into the float weight
 that inference computes, in the canonical ``[out, in]`` orientation, one row block at a
 time. Parameters count as logical weight elements (``out * in``), not stored words.
 """
 
+from steelyard.loaders.packed.awq import AwqWeight
 from steelyard.loaders.packed.detect import Layout, detect_layout
 from steelyard.loaders.packed.gptq import GptqWeight
 
-__all__ = ["GptqWeight", "Layout", "detect_layout"]
+__all__ = ["AwqWeight", "GptqWeight", "Layout", "detect_layout"]

@@ -33,7 +33,8 @@ from steelyard.loaders.keras import hdf5_access as kh
 from steelyard.loaders.keras import model_config as kc
 from steelyard.loaders.keras import optimizer as ko
 from steelyard.loaders.keras.h5_layout import read_weights_h5
-from steelyard.loaders.keras.hdf5_access import H5Store, Location, isolated
+from steelyard.loaders.keras.hdf5_access import H5Store, Location
+from steelyard.loaders.sandbox import isolated
 
 CONFIG = "config.json"
 METADATA = "metadata.json"

@@ -26,10 +26,10 @@ from steelyard.loaders.keras.hdf5_access import (
     H5Store,
     Location,
     has_hdf5_magic,
-    isolated,
     reason,
 )
 from steelyard.loaders.keras.layers import build_layers
+from steelyard.loaders.sandbox import isolated
 
 # --------------------------------------------------------------------------------------------
 # Keras 3 .weights.h5 (also the inside of a .keras archive)

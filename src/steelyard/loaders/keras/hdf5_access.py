@@ -31,11 +31,10 @@ from pathlib import Path
 from typing import Any
 
 import h5py
-import ml_dtypes
 import numpy as np
 
 from steelyard import budget
-from steelyard.dtypes import name_of
+from steelyard.dtypes import FLOAT_DTYPES, name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
 from steelyard.loaders.base import MAX_METADATA_BYTES
@@ -188,7 +187,7 @@ def _bounded(path: Path, what: str) -> Iterator[None]:
 
 
 def _dtype(tag: str) -> np.dtype[Any]:
-    return np.dtype(ml_dtypes.bfloat16) if tag == "bf16" else np.dtype(tag)
+    return FLOAT_DTYPES["bf16"] if tag == "bf16" else np.dtype(tag)
 
 
 @dataclass(frozen=True)
@@ -258,7 +257,7 @@ def _read_dataset_into(
             except H5_ERRORS as exc:
                 raise store.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
             if raw.dtype.kind == "V":
-                raw = raw.view(ml_dtypes.bfloat16)
+                raw = raw.view(FLOAT_DTYPES["bf16"])
             if raw.shape != want:
                 raise store.fail(f"dataset {path!r} read as shape {raw.shape}, not {want}")
             block = np.ascontiguousarray(raw.astype(dtype, copy=False))
@@ -495,7 +494,7 @@ class H5Store:
             # Keras 3 stores bfloat16 as 2-byte opaque data tagged with a dtype attribute.
             if self.attr_text(obj, "dtype") != "bfloat16":
                 raise self.fail(f"dataset {path!r} holds opaque data, not numbers")
-            dtype = np.dtype(ml_dtypes.bfloat16)
+            dtype = FLOAT_DTYPES["bf16"]
         else:
             raise self.fail(f"dataset {path!r} has unsupported dtype {stored}")
         budget.check_elements(self.source, shape, f"dataset {path!r}")

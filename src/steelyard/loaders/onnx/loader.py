@@ -44,9 +44,9 @@ from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-from onnx import ModelProto
 
 from steelyard.errors import LoadError
 from steelyard.graph import (
@@ -74,6 +74,9 @@ from steelyard.loaders.onnx.quantized import (
 )
 from steelyard.loaders.onnx.stored import FileBytes, Node, text
 from steelyard.loaders.onnx.wire import looks_like_model, parse_model
+
+if TYPE_CHECKING:
+    from onnx import ModelProto
 
 _GATES = {"LSTM": ("i", "o", "f", "c"), "GRU": ("z", "r", "h"), "RNN": ("h",)}
 #: The gate whose units form the hidden state a recurrent layer outputs.

@@ -18,9 +18,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from steelyard.loaders.onnx.lookthrough import Folder, View
-from steelyard.loaders.onnx.stored import DTYPES, Node
+from steelyard.loaders.onnx.stored import DType, Node, dtype_of
 
-_F32 = DTYPES[1]
+
+def _f32_type() -> DType:
+    found = dtype_of(1)
+    assert found is not None  # code 1 (FLOAT) is always in the table
+    return found
 
 
 def per_axis(shape: tuple[int, ...], size: int) -> bool:
@@ -90,7 +94,7 @@ def dequantize(folder: Folder, node: Node) -> View | None:
     return View(
         q.source,
         q.shape,
-        _F32,
+        _f32_type(),
         read,
         q.sources,
         aux,

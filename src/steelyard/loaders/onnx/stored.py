@@ -7,6 +7,7 @@ Every claim of a TensorProto (type, shape, byte ranges) is checked before a byte
 
 from __future__ import annotations
 
+import functools
 import math
 import mmap
 import struct
@@ -16,7 +17,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import ml_dtypes
 import numpy as np
 
 from steelyard import budget
@@ -51,7 +51,12 @@ class DType:
     is_float: bool
 
 
+@functools.cache
 def _dtype_table() -> dict[int, DType]:
+    # Built on first use: ml_dtypes costs about a second to import, which a run that reads
+    # no ONNX file should not pay.
+    import ml_dtypes
+
     rows: list[tuple[int, str, Any, int, bool]] = [
         (1, "f32", np.float32, 32, True),
         (2, "u8", np.uint8, 8, False),
@@ -89,13 +94,12 @@ def _dtype_table() -> dict[int, DType]:
     }
 
 
-DTYPES: dict[int, DType] = _dtype_table()
 STRING_CODE = 8
 
 
 def dtype_of(code: int) -> DType | None:
     """The element type for an ONNX ``data_type`` code, None when not numeric or unknown."""
-    return DTYPES.get(code)
+    return _dtype_table().get(code)
 
 
 def packed_bytes(dtype: DType, count: int) -> int:
@@ -537,7 +541,7 @@ def constant(node: Node, key: str, files: FileBytes) -> Stored | None:
             f"Constant node {node.label!r} has {len(present)} value attributes, not exactly one",
         )
     which = present[0]
-    f32, i64 = DTYPES[1], DTYPES[7]
+    f32, i64 = _dtype_table()[1], _dtype_table()[7]
     if which == "value":
         attr = node.required(which, (_TENSOR_T,))
         return tensor(attr.t, key, files)

@@ -16,8 +16,6 @@ import struct
 from pathlib import Path
 from typing import Any
 
-from onnx import ModelProto
-
 from steelyard.errors import LoadError
 
 #: A protobuf message cannot exceed 2 GiB; ONNX files past that use external data.
@@ -192,6 +190,10 @@ def parse_model(path: Path, size: int) -> Any:
         raise LoadError(path, f"is not a valid ONNX protobuf ({exc})") from None
     except (OSError, ValueError) as exc:
         raise LoadError(path, f"cannot be read ({exc})") from None
+    # Imported here: the onnx package (with ml_dtypes) takes over a second to import, which the
+    # content sniff and runs that read no ONNX file should not pay.
+    from onnx import ModelProto
+
     model = ModelProto()
     try:
         model.ParseFromString(stripped)

@@ -40,3 +40,31 @@ def test_audit_from_python_equals_the_cli(monkeypatch: pytest.MonkeyPatch, tmp_p
     cli = CliRunner().invoke(app, ["audit", str(NEW), "-f", "json"])
     assert cli.exit_code == 1 and report.passed is False
     assert json.loads(report.to_json()) == json.loads(cli.stdout)
+
+
+def test_the_api_finds_the_project_policy_as_the_cli_does(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    # A project folder whose steelyard.toml turns the gate off: the API and the CLI run
+    # from a subfolder both find it upwards; Policy() asks for the defaults explicitly.
+    from steelyard.policy import Policy
+
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "1700000000")
+    (tmp_path / "steelyard.toml").write_text('fail-on = "never"\n', encoding="utf-8")
+    work = tmp_path / "runs"
+    work.mkdir()
+    monkeypatch.chdir(work)
+    report = steelyard.audit(NEW)
+    assert report.passed is True  # the bad demo passes only because the project's gate is off
+    cli = CliRunner().invoke(app, ["audit", str(NEW), "-f", "json"])
+    assert cli.exit_code == 0
+    assert json.loads(report.to_json()) == json.loads(cli.stdout)
+    assert steelyard.audit(NEW, policy=Policy()).passed is False
+    assert steelyard.compare(OLD, NEW).passed is True
+    assert steelyard.compare(OLD, NEW, policy=Policy()).passed is False
+
+
+def test_audit_takes_several_paths(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    report = steelyard.audit([OLD, NEW])
+    assert len(report.audits) == 2 and report.passed is False

@@ -126,9 +126,22 @@ def _containers_first(targets: Sequence[Path]) -> list[Path]:
     return sorted(targets, key=lambda p: 0 if p.suffix == ".onnx" else 1)
 
 
+def policy_in_force(policy: Policy | str | Path | None = None) -> Policy:
+    """The policy a run uses: ``policy`` itself, the policy file at that path, or (None) the
+    project's ``steelyard.toml`` / ``[tool.steelyard]`` found upwards from the working
+    directory exactly as the CLI finds it, else the built-in defaults. Pass ``Policy()`` to
+    use the defaults whatever files are around. Raises :class:`~steelyard.errors.PolicyError`
+    for a broken policy file."""
+    if isinstance(policy, Policy):
+        return policy
+    from steelyard.policy_file import load_policy
+
+    return load_policy(Path(policy) if policy is not None else None)
+
+
 def audit_many(
     paths: Sequence[str | Path] | Plan,
-    policy: Policy | None = None,
+    policy: Policy | str | Path | None = None,
     grads: str | Path | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     created: str | None = None,
@@ -148,8 +161,10 @@ def audit_many(
     (else the policy's ``[budget]`` table, else the budget in force). With ``base``, every
     LoRA/DoRA adapter of the run is audited merged onto that base model (the other
     checkpoints as they are); a base that no adapter of the run uses is an input error.
+    ``policy`` is resolved by :func:`policy_in_force` (by default, the project's policy file,
+    as the CLI finds it).
     """
-    chosen = policy or Policy()
+    chosen = policy_in_force(policy)
     with _limits(budget, chosen):
         return _audit_many(
             paths,
@@ -299,23 +314,28 @@ def _run_notes(run: Plan) -> list[str]:
 
 
 def audit(
-    path: str | Path,
+    path: str | Path | Sequence[str | Path],
     grads: str | Path | None = None,
-    policy: Policy | None = None,
+    policy: Policy | str | Path | None = None,
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
     budget: Budget | None = None,
     base: str | Path | None = None,
 ) -> Report:
-    """Audit one checkpoint: ``report.passed`` is the gate, ``report.to_json()`` the document.
+    """Audit checkpoints as ``steelyard audit`` does: ``report.passed`` is the gate,
+    ``report.to_json()`` the document.
 
-    A file that cannot be read raises :class:`~steelyard.errors.LoadError`; a folder is
-    audited as :func:`audit_many` does, each checkpoint with its own result. ``budget``
-    limits what reading may cost (see :mod:`steelyard.budget`); ``base`` is the base model a
-    LoRA/DoRA adapter is merged onto.
+    ``path`` is a file, a shard index, a folder (every checkpoint in it), or a list of them.
+    ``policy`` is resolved by :func:`policy_in_force`: by default the project's policy file,
+    found as the CLI finds it. One file that cannot be read raises
+    :class:`~steelyard.errors.LoadError`; in a folder or a list, each checkpoint gets its own
+    result (see :func:`audit_many`). ``budget`` limits what reading may cost (see
+    :mod:`steelyard.budget`); ``base`` is the base model a LoRA/DoRA adapter is merged onto.
     """
+    several = not isinstance(path, (str, Path))
+    paths: list[str | Path] = [path] if isinstance(path, (str, Path)) else list(path)
     report = audit_many(
-        [path],
+        paths,
         policy=policy,
         grads=grads,
         grads_kind=grads_kind,
@@ -323,7 +343,7 @@ def audit(
         budget=budget,
         base=base,
     )
-    if report.errors and not report.audits and not Path(path).is_dir():
+    if not several and report.errors and not report.audits and not Path(paths[0]).is_dir():
         error = report.errors[0]
         raise LoadError(error.path, error.reason)
     return report
@@ -332,15 +352,16 @@ def audit(
 def compare(
     old: str | Path,
     new: str | Path,
-    policy: Policy | None = None,
+    policy: Policy | str | Path | None = None,
     created: str | None = None,
     budget: Budget | None = None,
 ) -> CompareReport:
     """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
-    ``steelyard.compare/1`` document. ``budget`` limits what reading may cost."""
+    ``steelyard.compare/1`` document. ``budget`` limits what reading may cost; ``policy`` is
+    resolved by :func:`policy_in_force` (by default, the project's policy file)."""
     from steelyard.comparison import compare_checkpoints
 
-    chosen = policy or Policy()
+    chosen = policy_in_force(policy)
     with _limits(budget, chosen):
         before = _load(old)
         after = _load(new)

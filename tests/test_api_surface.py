@@ -68,3 +68,24 @@ def test_audit_takes_several_paths(tmp_path: Path, monkeypatch: pytest.MonkeyPat
     monkeypatch.chdir(tmp_path)
     report = steelyard.audit([OLD, NEW])
     assert len(report.audits) == 2 and report.passed is False
+
+
+def test_a_report_renders_in_every_format_and_in_a_notebook(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from html.parser import HTMLParser
+
+    monkeypatch.chdir(tmp_path)
+    report = steelyard.audit(NEW)
+    ranks = [f.severity.rank for f in report.findings]
+    assert ranks and ranks == sorted(ranks)  # worst first, across checkpoints
+    assert json.loads(report.render("json"))["findings"]
+    assert json.loads(report.render("sarif"))["version"] == "2.1.0"  # OASIS SARIF 2.1.0
+    assert report.render("junit").startswith("<?xml")
+    assert "\x1b[" not in report.render("table")
+    with pytest.raises(ValueError):
+        report.render("pdf")
+    assert repr(report).startswith("<steelyard Report failed")
+    html = report._repr_html_()
+    HTMLParser().feed(html)  # the standard library's parser reads it
+    assert "FAIL" in html and report.findings[0].rule in html

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -146,11 +146,51 @@ class Report:
             return 2
         return 0 if self.passed else 1
 
+    @property
+    def findings(self) -> tuple[Finding, ...]:
+        """Every checkpoint's findings (baselined and ignored ones excluded), worst first."""
+        from steelyard.ranking import rank
+
+        return tuple(rank([f for audit in self.audits for f in audit.findings]))
+
     def to_json(self) -> str:
         """The ``steelyard.audit/1`` document."""
         from steelyard.render.json_report import render_json
 
         return render_json(self)
+
+    def render(self, format: str = "table", *, width: int = 120) -> str:
+        """The report as ``steelyard audit --format`` writes it: ``table`` (no colour),
+        ``json``, ``markdown``, ``sarif`` or ``junit``. Raises ``ValueError`` for another
+        name."""
+        from steelyard.render.junit import render_junit
+        from steelyard.render.markdown import render_markdown
+        from steelyard.render.sarif import render_sarif
+        from steelyard.render.table_report import render_table
+
+        renderers: dict[str, Callable[[], str]] = {
+            "table": lambda: render_table(self, color=False, width=width),
+            "json": self.to_json,
+            "markdown": lambda: render_markdown(self),
+            "sarif": lambda: render_sarif(self),
+            "junit": lambda: render_junit(self),
+        }
+        if format not in renderers:
+            raise ValueError(f"unknown format {format!r}: one of {', '.join(renderers)}")
+        return renderers[format]()
+
+    def __repr__(self) -> str:
+        verdict = "passed" if self.passed else "failed"
+        return (
+            f"<steelyard Report {verdict}: {len(self.audits)} checkpoint(s), "
+            f"{len(self.findings)} finding(s), {len(self.errors)} unreadable>"
+        )
+
+    def _repr_html_(self) -> str:
+        """Notebook display: verdict, counts and the worst findings."""
+        from steelyard.render.notebook import render_notebook_html
+
+        return render_notebook_html(self)
 
     def to_dict(self) -> dict[str, Any]:
         """The document as plain data."""

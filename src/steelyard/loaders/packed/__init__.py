@@ -1,4 +1,4 @@
-"""Packed and quantized weights stored in safetensors files (GPTQ- and AWQ-style so far).
+"""Packed and quantized weights stored in safetensors files (GPTQ, AWQ, FP8 with scales, MLX grouped).
 
 Each layout module turns the stored codes, scales and zero points into the float weight
 that inference computes, in the canonical ``[out, in]`` orientation, one row block at a
@@ -7,6 +7,8 @@ time. Parameters count as logical weight elements (``out * in``), not stored wor
 
 from steelyard.loaders.packed.awq import AwqWeight
 from steelyard.loaders.packed.detect import Layout, detect_layout
+from steelyard.loaders.packed.fp8 import Fp8Weight
 from steelyard.loaders.packed.gptq import GptqWeight
+from steelyard.loaders.packed.mlx import MlxWeight
 
-__all__ = ["AwqWeight", "GptqWeight", "Layout", "detect_layout"]
+__all__ = ["AwqWeight", "Fp8Weight", "GptqWeight", "Layout", "MlxWeight", "detect_layout"]

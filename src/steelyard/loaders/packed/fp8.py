@@ -1,0 +1,75 @@
+"""FP8 weights with scales: per tensor, per output channel, or per ``block x block`` tile.
+
+Inference computes ``W = float(w_fp8) * s`` where ``s`` is the tile's scale. Checkpoints name
+it ``weight_scale`` (a multiplier, per tensor ``[]``/``[1]`` or per channel ``[out]``/
+``[out, 1]``) or ``weight_scale_inv`` (per 128x128 block ``[ceil(out/128), ceil(in/128)]``;
+despite the name it is also multiplied: it is the inverse of the quantizer's scale).
+The e4m3/e5m2 bytes are decoded by ``ml_dtypes`` (the reference for those encodings).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from steelyard.errors import LoadError
+
+
+@dataclass(frozen=True)
+class Fp8Weight:
+    """One FP8 weight ``[out, in]`` (float32 rows through ``weight``) and its scales."""
+
+    path: Path
+    name: str
+    weight: np.ndarray
+    scale: np.ndarray
+    block: tuple[int, int] | None
+
+    @classmethod
+    def build(
+        cls, path: Path, name: str, weight: np.ndarray, scale: np.ndarray,
+        block: tuple[int, int] | None = None,
+    ) -> Fp8Weight:
+        """Tell the scale's granularity from its shape; a shape that fits none is refused."""
+        if weight.ndim != 2:
+            raise LoadError(path, f"{name}: an FP8 weight must be 2-D")
+        n_out, n_in = weight.shape
+        scale = np.asarray(scale, dtype=np.float32)
+        if block is not None:
+            bo, bi = block
+            if bo <= 0 or bi <= 0 or scale.shape != (-(-n_out // bo), -(-n_in // bi)):
+                raise LoadError(path, f"{name}: FP8 block scales {list(scale.shape)} do not "
+                                f"tile {[n_out, n_in]} in {bo}x{bi} blocks")
+        elif scale.size == 1:
+            scale = scale.reshape(1, 1)
+        elif scale.size == n_out and scale.ndim in (1, 2):
+            scale = scale.reshape(n_out, 1)
+        else:
+            raise LoadError(path, f"{name}: FP8 scale shape {list(scale.shape)} fits neither "
+                            f"one scale nor one per output channel of {n_out}")
+        return cls(path, name, weight, scale, block)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """Canonical ``[out, in]`` shape."""
+        return (int(self.weight.shape[0]), int(self.weight.shape[1]))
+
+    @property
+    def granularity(self) -> str:
+        """``tensor``, ``channel`` or ``block``: reported as part of the stored type."""
+        if self.block is not None:
+            return "block"
+        return "tensor" if self.scale.shape == (1, 1) else "channel"
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        """Dequantized float32 rows ``[start, stop)``."""
+        values = np.asarray(self.weight[start:stop], dtype=np.float32)
+        if self.block is None:
+            scale = self.scale if self.scale.shape[0] == 1 else self.scale[start:stop]
+            return values * scale
+        bo, bi = self.block
+        row_blocks = np.arange(start, stop) // bo
+        col_blocks = np.arange(self.shape[1]) // bi
+        return values * self.scale[row_blocks][:, col_blocks]

@@ -1,0 +1,71 @@
+"""MLX-style grouped affine quantization: ``weight`` (packed uint32), ``scales``, ``biases``.
+
+From MLX's published ``mx.quantize`` description: each row of ``[out, in]`` is cut into groups
+of ``group_size`` consecutive inputs; a code ``q`` decodes to ``scale * q + bias`` of its group;
+codes are packed ``32 // bits`` per uint32 along the input axis, lowest bits first, so the
+stored weight is ``[out, in * bits / 32]`` and scales/biases are ``[out, in / group_size]``.
+(Worked from the description; MLX does not run on Linux x86.) Bits 2, 4, 8.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from steelyard.budget import check_elements
+from steelyard.errors import LoadError
+from steelyard.loaders.packed.gptq import unpack_words
+
+
+@dataclass(frozen=True)
+class MlxWeight:
+    """One MLX grouped weight, checked, with float rows on demand."""
+
+    path: Path
+    name: str
+    packed: np.ndarray
+    scales: np.ndarray
+    biases: np.ndarray
+    bits: int
+    group_size: int
+
+    @classmethod
+    def build(
+        cls, path: Path, name: str, parts: dict[str, np.ndarray], bits: int, group_size: int
+    ) -> MlxWeight:
+        """Check the parts against each other; lying shapes, bits or groups are LoadErrors."""
+        if bits not in (2, 4, 8):
+            raise LoadError(path, f"{name}: MLX bit width {bits} is not supported (2, 4, 8)")
+        for key in ("weight", "scales", "biases"):
+            if key not in parts or parts[key].ndim != 2:
+                raise LoadError(path, f"{name}: MLX quantization needs a 2-D {key}")
+        packed = parts["weight"]
+        n_out, n_in = packed.shape[0], packed.shape[1] * (32 // bits)
+        check_elements(path, (n_out, n_in), f"{name} (dequantized)")
+        if group_size <= 0 or n_in % group_size:
+            raise LoadError(path, f"{name}: MLX group size {group_size} does not divide {n_in}")
+        want = (n_out, n_in // group_size)
+        if parts["scales"].shape != want or parts["biases"].shape != want:
+            raise LoadError(path, f"{name}: MLX scales/biases are not {list(want)}")
+        return cls(path, name, packed, parts["scales"], parts["biases"], bits, group_size)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """Canonical ``[out, in]`` shape."""
+        return (int(self.packed.shape[0]), int(self.packed.shape[1]) * (32 // self.bits))
+
+    def codes(self) -> np.ndarray:
+        """Integer codes ``[out, in]``."""
+        return unpack_words(self.packed, self.bits, axis=1)
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        """Dequantized float32 rows ``[start, stop)``."""
+        codes = unpack_words(self.packed[start:stop], self.bits, axis=1).astype(np.float32)
+        scales = np.asarray(self.scales[start:stop], dtype=np.float32)
+        biases = np.asarray(self.biases[start:stop], dtype=np.float32)
+        rows, n_in = codes.shape
+        grouped = codes.reshape(rows, n_in // self.group_size, self.group_size)
+        out = grouped * scales[:, :, None] + biases[:, :, None]
+        return np.ascontiguousarray(out.reshape(rows, n_in))

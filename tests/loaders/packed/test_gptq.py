@@ -97,3 +97,5 @@ def test_layout_from_config_or_suffixes():
     assert detect_layout(names, None) is Layout.GPTQ
     assert detect_layout(names, {"quant_method": "awq"}) is Layout.AWQ
     assert detect_layout(["m.weight"], None) is Layout.PLAIN
+    assert detect_layout(["m.weight", "m.weight_scale_inv"], None) is Layout.FP8
+    assert detect_layout(["m.weight", "m.scales", "m.biases"], None) is Layout.MLX

@@ -11,6 +11,8 @@ class Layout(str, Enum):
 
     GPTQ = "gptq"
     AWQ = "awq"
+    FP8 = "fp8"
+    MLX = "mlx"
     PLAIN = "plain"
 
 
@@ -26,7 +28,13 @@ def detect_layout(names: Iterable[str], quant_config: Mapping[str, object] | Non
         return Layout.AWQ
     if method == "gptq":
         return Layout.GPTQ
+    if method == "fp8":
+        return Layout.FP8
     suffixes = {name.rsplit(".", 1)[-1] for name in names}
     if {"qweight", "qzeros", "scales"} <= suffixes:
         return Layout.GPTQ
+    if suffixes & {"weight_scale", "weight_scale_inv"}:
+        return Layout.FP8
+    if {"scales", "biases"} <= suffixes:  # MLX: packed "weight" beside group scales and biases
+        return Layout.MLX
     return Layout.PLAIN

@@ -151,6 +151,9 @@ class Tensor:
     """Optional: elements ``[start, stop)`` of the flattened tensor, dtype as stored. A loader
     that sets it promises both readers are safe to call from several threads at once; the
     audit then streams large tensors block by block instead of reading them whole."""
+    stored_type: str | None = field(default=None, compare=False)
+    """What the file stored when ``dtype`` is a decoded view of it (a GGUF ``Q4_K``, a packed
+    ``gptq-int4``); None when ``dtype`` is the stored type."""
 
     @property
     def size(self) -> int:

@@ -88,6 +88,8 @@ def test_stored_types_and_dtypes() -> None:
     for name, (kind, _, _) in reference.items():
         # block-quantized tensors are exposed as what read_span returns: float32
         assert checkpoint.tensors[name].dtype == plain.get(kind, "f32"), kind.name
+        # ...and keep the ggml type name (gguf.GGMLQuantizationType) as what was stored
+        assert checkpoint.tensors[name].stored_type == (None if kind in plain else kind.name)
     assert checkpoint.format is Format.GGUF
     assert any("Q4_K ×1" in note and "IQ1_M ×1" in note for note in checkpoint.notes)
 

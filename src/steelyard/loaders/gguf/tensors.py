@@ -116,6 +116,7 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
         role=TensorRole.PARAMETER,
         reader=_dequantized_reader(data, info),
         read_span=_dequantized_span(data, info),
+        stored_type=type_name(info.type_id),
     )
 
 

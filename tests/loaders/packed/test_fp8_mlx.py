@@ -101,3 +101,13 @@ def test_mlx_lying_parts_refused(bits, group, scales_shape):
              "biases": np.ones(scales_shape, np.float16)}
     with pytest.raises(LoadError):
         MlxWeight.build(PATH, "l", parts, bits, group)
+
+
+def test_stored_type_names_layout_and_width():
+    import ml_dtypes as md  # reference for the FP8 encodings' names
+
+    w = np.zeros((2, 2), md.float8_e5m2)
+    assert Fp8Weight.build(PATH, "l", w, np.ones(2, np.float32)).stored_type == "fp8-e5m2-channel"
+    parts = {"weight": np.zeros((1, 1), np.uint32), "scales": np.ones((1, 2), np.float16),
+             "biases": np.ones((1, 2), np.float16)}
+    assert MlxWeight.build(PATH, "l", parts, 4, 4).stored_type == "mlx-int4-g4"

@@ -97,5 +97,7 @@ def test_layout_from_config_or_suffixes():
     assert detect_layout(names, None) is Layout.GPTQ
     assert detect_layout(names, {"quant_method": "awq"}) is Layout.AWQ
     assert detect_layout(["m.weight"], None) is Layout.PLAIN
+    parts, _, _ = _make(np.random.default_rng(3), 4, 8, 32, 16, act=False)
+    assert GptqWeight.build(PATH, "l", parts, 4, 16).stored_type == "gptq-int4"
     assert detect_layout(["m.weight", "m.weight_scale_inv"], None) is Layout.FP8
     assert detect_layout(["m.weight", "m.scales", "m.biases"], None) is Layout.MLX

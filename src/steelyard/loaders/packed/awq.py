@@ -70,6 +70,11 @@ class AwqWeight:
         """Canonical ``[out, in]`` shape of the dequantized weight."""
         return (self.qweight.shape[1] * 8, self.qweight.shape[0])
 
+    @property
+    def stored_type(self) -> str:
+        """What was stored, for reports."""
+        return "awq-int4"
+
     def codes(self) -> np.ndarray:
         """The integer codes in canonical ``[out, in]`` orientation."""
         return unpack_awq(self.qweight).T

@@ -63,6 +63,12 @@ class Fp8Weight:
             return "block"
         return "tensor" if self.scale.shape == (1, 1) else "channel"
 
+    @property
+    def stored_type(self) -> str:
+        """What was stored, for reports (``fp8-e4m3-block``)."""
+        kind = "e5m2" if "e5m2" in self.weight.dtype.name else "e4m3"
+        return f"fp8-{kind}-{self.granularity}"
+
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows ``[start, stop)``."""
         values = np.asarray(self.weight[start:stop], dtype=np.float32)

@@ -88,6 +88,11 @@ class GptqWeight:
         """Canonical ``[out, in]`` shape of the dequantized weight."""
         return (self.qweight.shape[1], self.qweight.shape[0] * (32 // self.bits))
 
+    @property
+    def stored_type(self) -> str:
+        """What was stored, for reports (``gptq-int4``)."""
+        return f"gptq-int{self.bits}"
+
     def codes(self) -> np.ndarray:
         """The integer codes in canonical ``[out, in]`` orientation."""
         return unpack_words(self.qweight, self.bits, axis=0).T

@@ -56,6 +56,11 @@ class MlxWeight:
         """Canonical ``[out, in]`` shape."""
         return (int(self.packed.shape[0]), int(self.packed.shape[1]) * (32 // self.bits))
 
+    @property
+    def stored_type(self) -> str:
+        """What was stored, for reports (``mlx-int4-g64``)."""
+        return f"mlx-int{self.bits}-g{self.group_size}"
+
     def codes(self) -> np.ndarray:
         """Integer codes ``[out, in]``."""
         return unpack_words(self.packed, self.bits, axis=1)

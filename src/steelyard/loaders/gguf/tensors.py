@@ -16,20 +16,21 @@ from collections.abc import Callable
 from functools import cache
 from pathlib import Path
 
-import ml_dtypes
 import numpy as np
 
 from steelyard import budget
+from steelyard.dtypes import FLOAT_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
 from steelyard.loaders.conventions import role_for
 from steelyard.loaders.gguf.header import Header, TensorInfo
 
-#: ggml types stored as plain elements: type id → (our dtype name, numpy dtype).
-PLAIN: dict[int, tuple[str, np.dtype[np.generic]]] = {
+#: ggml types stored as plain elements: type id → (our dtype name, numpy dtype); bf16's dtype
+#: comes from ml_dtypes, whose import costs about a second, so it is looked up when used.
+PLAIN: dict[int, tuple[str, np.dtype[np.generic] | None]] = {
     0: ("f32", np.dtype("<f4")),
     1: ("f16", np.dtype("<f2")),
-    30: ("bf16", np.dtype(ml_dtypes.bfloat16)),
+    30: ("bf16", None),
     28: ("f64", np.dtype("<f8")),
     24: ("i8", np.dtype("<i1")),
     25: ("i16", np.dtype("<i2")),
@@ -92,7 +93,8 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
     """The lazily read :class:`Tensor` for one tensor info."""
     shape = info.shape
     if info.type_id in PLAIN:
-        name, dtype = PLAIN[info.type_id]
+        name, stored = PLAIN[info.type_id]
+        dtype = FLOAT_DTYPES[name] if stored is None else stored
         return Tensor(
             name=info.name,
             shape=shape,

@@ -10,6 +10,13 @@ from typing import Final
 
 import numpy as np
 
+_IEEE: Final[dict[str, np.dtype[np.generic]]] = {
+    "f64": np.dtype(np.float64),
+    "f32": np.dtype(np.float32),
+    "f16": np.dtype(np.float16),
+}
+_EXTENDED: Final = frozenset({"bf16", "f8_e4m3", "f8_e5m2", "f8_e4m3fnuz", "f8_e5m2fnuz"})
+
 
 class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
     """The float dtypes, built on first use: bf16 and fp8 come from ``ml_dtypes``, whose
@@ -36,7 +43,12 @@ class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
         return self._table
 
     def __getitem__(self, key: str) -> np.dtype[np.generic]:
-        return self._built()[key]
+        # The IEEE types need no ml_dtypes: a float32 file never imports it.
+        plain = _IEEE.get(key)
+        return plain if plain is not None else self._built()[key]
+
+    def __contains__(self, key: object) -> bool:
+        return key in _IEEE or key in _EXTENDED
 
     def __iter__(self) -> Iterator[str]:
         return iter(self._built())

@@ -7,8 +7,6 @@ The exit codes are steelyard's own contract (docs/ci.md); the rule below exists 
 from __future__ import annotations
 
 import errno
-import sys
-import types
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,13 +16,13 @@ import pytest
 from typer.testing import CliRunner
 
 import steelyard
-import steelyard.rules as rules_package
 from steelyard.cli import app
 from steelyard.errors import LoadError
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec
 from tests.conftest import mlp_tensors, write_safetensors
+from tests.rules._registration import registered_for_the_test
 
 runner = CliRunner()
 RAISED: list[type[Exception]] = [ValueError]
@@ -52,13 +50,7 @@ RULE = RuleSpec(
 
 @pytest.fixture
 def broken_rule(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
-    module = types.ModuleType("steelyard_test_broken_rule")
-    module.RULE = RULE  # type: ignore[attr-defined]
-    monkeypatch.setitem(sys.modules, module.__name__, module)
-    monkeypatch.setattr(rules_package, "_MODULES", (*rules_package._MODULES, module.__name__))
-    rules_package._all.cache_clear()
-    yield
-    rules_package._all.cache_clear()
+    yield from registered_for_the_test(monkeypatch, "steelyard_test_broken_rule", RULE)
 
 
 def _model(tmp_path: Path) -> Path:

@@ -118,3 +118,11 @@ def test_layers_writes_to_a_file(tmp_path: Path) -> None:
     result = runner.invoke(app, ["layers", str(HEALTHY), "-f", "json", "-o", str(target)])
     assert result.exit_code == 0 and result.stdout == ""
     assert json.loads(target.read_text(encoding="utf-8"))["layers"]
+
+
+def test_the_cli_formats_are_the_report_formats() -> None:
+    # One table serves --format and Report.render: the CLI offers exactly its names.
+    from steelyard.cli import AuditFormat
+    from steelyard.render.report_formats import AUDIT_FORMATS
+
+    assert [f.value for f in AuditFormat] == list(AUDIT_FORMATS)

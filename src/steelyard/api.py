@@ -332,7 +332,7 @@ def audit(
     result (see :func:`audit_many`). ``budget`` limits what reading may cost (see
     :mod:`steelyard.budget`); ``base`` is the base model a LoRA/DoRA adapter is merged onto.
     """
-    several = not isinstance(path, (str, Path))
+    single = isinstance(path, (str, Path))
     paths: list[str | Path] = [path] if isinstance(path, (str, Path)) else list(path)
     report = audit_many(
         paths,
@@ -343,7 +343,7 @@ def audit(
         budget=budget,
         base=base,
     )
-    if not several and report.errors and not report.audits and not Path(paths[0]).is_dir():
+    if single and report.errors and not report.audits and not Path(paths[0]).is_dir():
         error = report.errors[0]
         raise LoadError(error.path, error.reason)
     return report

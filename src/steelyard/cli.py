@@ -362,22 +362,9 @@ def layers(
 
 
 def _render(report: Report, chosen: AuditFormat) -> str:
-    from steelyard.render.junit import render_junit
-    from steelyard.render.markdown import render_markdown
-    from steelyard.render.sarif import render_sarif
-    from steelyard.render.table_report import render_table
+    from steelyard.render.report_formats import render_report
 
-    if chosen is AuditFormat.json:
-        return report.to_json()
-    if chosen is AuditFormat.table:
-        return render_table(report, color=_color(), width=_width())
-    if chosen is AuditFormat.markdown:
-        return render_markdown(report)
-    if chosen is AuditFormat.sarif:
-        return render_sarif(report)
-    if chosen is AuditFormat.junit:
-        return render_junit(report)
-    assert_never(chosen)
+    return render_report(report, chosen.value, color=_color(), width=_width())
 
 
 @app.command()

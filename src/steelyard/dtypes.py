@@ -15,7 +15,14 @@ _IEEE: Final[dict[str, np.dtype[np.generic]]] = {
     "f32": np.dtype(np.float32),
     "f16": np.dtype(np.float16),
 }
-_EXTENDED: Final = frozenset({"bf16", "f8_e4m3", "f8_e5m2", "f8_e4m3fnuz", "f8_e5m2fnuz"})
+#: Our names of the extended floats → their type names in ``ml_dtypes``.
+_EXTENDED: Final[dict[str, str]] = {
+    "bf16": "bfloat16",
+    "f8_e4m3": "float8_e4m3fn",
+    "f8_e5m2": "float8_e5m2",
+    "f8_e4m3fnuz": "float8_e4m3fnuz",
+    "f8_e5m2fnuz": "float8_e5m2fnuz",
+}
 
 
 class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
@@ -30,16 +37,8 @@ class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
         if self._table is None:
             import ml_dtypes
 
-            self._table = {
-                "f64": np.dtype(np.float64),
-                "f32": np.dtype(np.float32),
-                "f16": np.dtype(np.float16),
-                "bf16": np.dtype(ml_dtypes.bfloat16),
-                "f8_e4m3": np.dtype(ml_dtypes.float8_e4m3fn),
-                "f8_e5m2": np.dtype(ml_dtypes.float8_e5m2),
-                "f8_e4m3fnuz": np.dtype(ml_dtypes.float8_e4m3fnuz),
-                "f8_e5m2fnuz": np.dtype(ml_dtypes.float8_e5m2fnuz),
-            }
+            extended = {name: np.dtype(getattr(ml_dtypes, t)) for name, t in _EXTENDED.items()}
+            self._table = {**_IEEE, **extended}
         return self._table
 
     def __getitem__(self, key: str) -> np.dtype[np.generic]:

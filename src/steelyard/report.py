@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -163,21 +163,9 @@ class Report:
         """The report as ``steelyard audit --format`` writes it: ``table`` (no colour),
         ``json``, ``markdown``, ``sarif`` or ``junit``. Raises ``ValueError`` for another
         name."""
-        from steelyard.render.junit import render_junit
-        from steelyard.render.markdown import render_markdown
-        from steelyard.render.sarif import render_sarif
-        from steelyard.render.table_report import render_table
+        from steelyard.render.report_formats import render_report
 
-        renderers: dict[str, Callable[[], str]] = {
-            "table": lambda: render_table(self, color=False, width=width),
-            "json": self.to_json,
-            "markdown": lambda: render_markdown(self),
-            "sarif": lambda: render_sarif(self),
-            "junit": lambda: render_junit(self),
-        }
-        if format not in renderers:
-            raise ValueError(f"unknown format {format!r}: one of {', '.join(renderers)}")
-        return renderers[format]()
+        return render_report(self, format, width=width)
 
     def __repr__(self) -> str:
         verdict = "passed" if self.passed else "failed"

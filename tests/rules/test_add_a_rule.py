@@ -7,8 +7,6 @@ rules``."""
 from __future__ import annotations
 
 import json
-import sys
-import types
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,6 +22,7 @@ from steelyard.graph import Layer
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 from tests.conftest import mlp_tensors, write_safetensors
+from tests.rules._registration import registered_for_the_test
 
 runner = CliRunner()
 CALLS: list[str] = []
@@ -68,14 +67,8 @@ RULE = RuleSpec(
 # ---- step 4: register it (here only for the test's duration) -------------------------------
 @pytest.fixture
 def registered(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
-    module = types.ModuleType("steelyard_test_wide_layer")
-    module.RULE = RULE  # type: ignore[attr-defined]
-    monkeypatch.setitem(sys.modules, module.__name__, module)
-    monkeypatch.setattr(rules_package, "_MODULES", (*rules_package._MODULES, module.__name__))
-    rules_package._all.cache_clear()
     CALLS.clear()
-    yield
-    rules_package._all.cache_clear()  # the next test sees the real registry again
+    yield from registered_for_the_test(monkeypatch, "steelyard_test_wide_layer", RULE)
 
 
 def _mlp(tmp_path: Path) -> Path:

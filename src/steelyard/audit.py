@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import hashlib
-import math
 import os
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
@@ -12,7 +11,6 @@ from contextlib import AbstractContextManager, contextmanager, nullcontext
 from dataclasses import fields
 from typing import Any, TypeVar
 
-import numpy as np
 from threadpoolctl import threadpool_limits
 
 from steelyard.coverage import coverage_of
@@ -27,6 +25,7 @@ from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
 from steelyard.rules.base import RuleNotes
 from steelyard.rules.engine import apply_policy
 from steelyard.stats import STREAM_BYTES, LayerStats
+from steelyard.stats.spread import norm_spread
 
 _HASH_CHUNK = 8 * 2**20
 
@@ -196,7 +195,7 @@ def run_rules(
 
 
 #: Layer-health fields every row has; the others are filled by rules (``RuleSpec.health``).
-_MEASURED = ("layer", "fan_in_norm", "norm_histogram")
+_MEASURED = ("layer", "fan_in_norm", "norm_histogram", "norm_percentiles", "norm_outliers")
 _RULE_FILLED = tuple(f for f in fields(LayerHealth) if f.name not in _MEASURED)
 
 
@@ -207,17 +206,7 @@ def _health(
     specs: list[RuleSpec],
     graded: bool,
 ) -> LayerHealth:
-    norms = stats.row_norms(layer)
-    finite = norms[np.isfinite(norms)]
-    if finite.size:
-        low, mid, high = float(finite.min()), float(np.median(finite)), float(finite.max())
-    else:
-        low = mid = high = math.nan
-    histogram: tuple[int, ...] = ()
-    if finite.size and high > 0:
-        floor = max(low, high * 1e-6)
-        edges = np.geomspace(floor, high * (1 + 1e-9), 9)
-        histogram = tuple(int(c) for c in np.histogram(np.clip(finite, floor, None), bins=edges)[0])
+    spread = norm_spread(stats.row_norms(layer))
     # A column no rule of this run fills is empty: None where the report allows it, else 0.
     columns: dict[str, Any] = {
         f.name: None if "None" in str(f.type) else 0 for f in _RULE_FILLED
@@ -230,8 +219,10 @@ def _health(
             columns[column.field] = column.measure(layer, [f for f in mine if f.rule == spec.name])
     return LayerHealth(
         layer=layer_block(layer),
-        fan_in_norm=(low, mid, high),
-        norm_histogram=histogram,
+        fan_in_norm=(spread.low, spread.median, spread.high),
+        norm_histogram=spread.histogram,
+        norm_percentiles=spread.percentiles,
+        norm_outliers=spread.outliers,
         **columns,
     )
 

@@ -33,6 +33,10 @@ class LayerHealth:
     twins: int
     unsupported_share: float | None
     """Share of the layer's weights flagged unsupported; None when no gradient support."""
+    norm_percentiles: tuple[float, ...] = ()
+    """Fan-in norms at the 5th, 25th, 50th, 75th and 95th percentiles (empty when unknown)."""
+    norm_outliers: tuple[tuple[int, float], ...] = ()
+    """(unit, norm) of units far outside the layer's spread of log norms, furthest first."""
 
 
 @dataclass(frozen=True, slots=True)

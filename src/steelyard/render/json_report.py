@@ -9,6 +9,7 @@ from typing import Any
 from steelyard.coverage import coverage_document
 from steelyard.findings import Finding
 from steelyard.report import AUDIT_SCHEMA, CheckpointAudit, Report
+from steelyard.stats.spread import PERCENTILES
 
 SET_SCHEMA = "steelyard.audit-set/1"
 
@@ -45,7 +46,13 @@ def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
     layers = []
     for health in audit.layers:
         low, mid, high = health.fan_in_norm
-        layers.append({**health.layer, "fan_in_norm": {"min": low, "median": mid, "max": high}})
+        spread: dict[str, Any] = {"min": low, "median": mid, "max": high}
+        if health.norm_percentiles:
+            spread["percentiles"] = {
+                f"p{q:g}": v for q, v in zip(PERCENTILES, health.norm_percentiles, strict=True)
+            }
+            spread["outliers"] = [{"unit": u, "norm": v} for u, v in health.norm_outliers]
+        layers.append({**health.layer, "fan_in_norm": spread})
     document: dict[str, Any] = {
         "schema": AUDIT_SCHEMA,
         "tool": {"name": "steelyard", "version": report.tool_version},

@@ -20,6 +20,7 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
+from steelyard.loaders.packed.assemble import unpack_checkpoint
 
 #: safetensors dtype tag → our short name.
 _DTYPES: dict[str, str] = {
@@ -199,6 +200,7 @@ class SafetensorsLoader:
     def load(self, path: Path) -> Checkpoint:
         shards = self._shards_from_index(path) if path.name.endswith(".json") else [_Shard(path)]
         tensors: dict[str, Tensor] = {}
+        origin: dict[str, Path] = {}
         for shard in shards:
             for name, (dtype, shape, _b, _e) in shard.entries.items():
                 if name in tensors:
@@ -211,12 +213,16 @@ class SafetensorsLoader:
                     reader=shard.reader(name),
                     read_span=shard.span_reader(name),
                 )
+                origin[name] = shard.path
+        # Packed layers (GPTQ, AWQ, bitsandbytes, FP8, MLX...) become logical float weights.
+        tensors, notes = unpack_checkpoint(path, tensors, origin)
         return inferred_checkpoint(
             path,
             self.format,
             tensors,
             tuple(s.path for s in shards),
             sum(s.size for s in shards),
+            notes=notes,
         )
 
     def _shards_from_index(self, path: Path) -> list[_Shard]:

@@ -11,6 +11,7 @@ with ``g = i // group_size``.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -19,12 +20,13 @@ import numpy as np
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.gptq import unpack_words
+from steelyard.loaders.packed.stored import Part
 
 ORDER = (0, 2, 4, 6, 1, 3, 5, 7)
 _SLOT_OF_COLUMN = np.argsort(ORDER)
 
 
-def unpack_awq(words: np.ndarray) -> np.ndarray:
+def unpack_awq(words: Part) -> np.ndarray:
     """Codes of AWQ words ``[rows, out / 8]`` as ``[rows, out]`` in true column order."""
     slots = unpack_words(words, 4, axis=1)
     rows, cols = slots.shape
@@ -38,14 +40,14 @@ class AwqWeight:
 
     path: Path
     name: str
-    qweight: np.ndarray
-    qzeros: np.ndarray
-    scales: np.ndarray
+    qweight: Part
+    qzeros: Part
+    scales: Part
     group_size: int
 
     @classmethod
     def build(
-        cls, path: Path, name: str, parts: dict[str, np.ndarray], bits: int, group_size: int
+        cls, path: Path, name: str, parts: Mapping[str, Part], bits: int, group_size: int
     ) -> AwqWeight:
         """Check the parts against each other; lying shapes, bits or groups are LoadErrors."""
         if bits != 4:

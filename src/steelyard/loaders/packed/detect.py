@@ -13,6 +13,9 @@ class Layout(str, Enum):
     AWQ = "awq"
     FP8 = "fp8"
     MLX = "mlx"
+    BNB4 = "bnb-4bit"
+    BNB8 = "bnb-int8"
+    COMPRESSED = "compressed-tensors"
     PLAIN = "plain"
 
 
@@ -30,7 +33,17 @@ def detect_layout(names: Iterable[str], quant_config: Mapping[str, object] | Non
         return Layout.GPTQ
     if method == "fp8":
         return Layout.FP8
+    if method == "compressed-tensors":
+        return Layout.COMPRESSED
+    if method == "bitsandbytes":
+        return Layout.BNB4 if (quant_config or {}).get("load_in_4bit") else Layout.BNB8
     suffixes = {name.rsplit(".", 1)[-1] for name in names}
+    if any(s.startswith("bitsandbytes__") for s in suffixes):
+        return Layout.BNB4
+    if "SCB" in suffixes:
+        return Layout.BNB8
+    if "weight_packed" in suffixes:
+        return Layout.COMPRESSED
     if {"qweight", "qzeros", "scales"} <= suffixes:
         return Layout.GPTQ
     if suffixes & {"weight_scale", "weight_scale_inv"}:

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from steelyard.errors import LoadError
+from steelyard.loaders.packed.stored import Part
 
 
 @dataclass(frozen=True)
@@ -23,13 +24,13 @@ class Fp8Weight:
 
     path: Path
     name: str
-    weight: np.ndarray
+    weight: Part
     scale: np.ndarray
     block: tuple[int, int] | None
 
     @classmethod
     def build(
-        cls, path: Path, name: str, weight: np.ndarray, scale: np.ndarray,
+        cls, path: Path, name: str, weight: Part, scale: Part,
         block: tuple[int, int] | None = None,
     ) -> Fp8Weight:
         """Tell the scale's granularity from its shape; a shape that fits none is refused."""

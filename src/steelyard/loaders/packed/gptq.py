@@ -13,6 +13,7 @@ Inference computes ``W[o, i] = scales[g, o] * (q[i, o] - (z[g, o] + 1))`` with `
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -20,11 +21,12 @@ import numpy as np
 
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
+from steelyard.loaders.packed.stored import Part
 
 SUPPORTED_BITS = (2, 4, 8)
 
 
-def unpack_words(words: np.ndarray, bits: int, axis: int) -> np.ndarray:
+def unpack_words(words: Part, bits: int, axis: int) -> np.ndarray:
     """Codes packed ``32 // bits`` per int32 word along ``axis``, lowest bits first."""
     per_word = 32 // bits
     raw = np.ascontiguousarray(words).view(np.uint32)
@@ -42,20 +44,23 @@ class GptqWeight:
 
     path: Path
     name: str
-    qweight: np.ndarray
-    qzeros: np.ndarray
-    scales: np.ndarray
+    qweight: Part
+    qzeros: Part
+    scales: Part
     g_idx: np.ndarray
     bits: int
+    zero_offset: int = 1
+    """Added to stored zero points: 1 for the "v1" format AutoGPTQ writes, 0 for "v2"."""
 
     @classmethod
     def build(
         cls,
         path: Path,
         name: str,
-        parts: dict[str, np.ndarray],
+        parts: Mapping[str, Part],
         bits: int,
         group_size: int,
+        zero_offset: int = 1,
     ) -> GptqWeight:
         """Check the parts against each other (a lying shape, bit width or group size is a
         :class:`LoadError`) and fill ``g_idx`` from ``group_size`` when it is absent."""
@@ -72,6 +77,8 @@ class GptqWeight:
         if scales.shape[1] != n_out or qzeros.shape != (groups, -(-n_out // per_word)):
             raise LoadError(path, f"{name}: GPTQ scales/qzeros shapes do not match qweight")
         if "g_idx" in parts:
+            if parts["g_idx"].shape != (n_in,):  # checked before a lying size is read
+                raise LoadError(path, f"{name}: GPTQ g_idx does not index the {groups} groups")
             g_idx = np.asarray(parts["g_idx"]).astype(np.int64).reshape(-1)
         else:
             if group_size in (-1, 0):
@@ -81,7 +88,7 @@ class GptqWeight:
             g_idx = np.arange(n_in, dtype=np.int64) // group_size
         if g_idx.shape != (n_in,) or (g_idx.size and (g_idx.min() < 0 or g_idx.max() >= groups)):
             raise LoadError(path, f"{name}: GPTQ g_idx does not index the {groups} groups")
-        return cls(path, name, qweight, qzeros, scales, g_idx, bits)
+        return cls(path, name, qweight, qzeros, scales, g_idx, bits, zero_offset)
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -98,9 +105,10 @@ class GptqWeight:
         return unpack_words(self.qweight, self.bits, axis=0).T
 
     def zeros(self) -> np.ndarray:
-        """Effective zero points ``[groups, out]`` (stored value plus one)."""
+        """Effective zero points ``[groups, out]`` (stored value plus ``zero_offset``)."""
         n_out = self.shape[0]
-        return unpack_words(self.qzeros, self.bits, axis=1)[:, :n_out].astype(np.int64) + 1
+        stored = unpack_words(self.qzeros, self.bits, axis=1)[:, :n_out].astype(np.int64)
+        return stored + self.zero_offset
 
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows (output units) ``[start, stop)``: only their columns of

@@ -9,6 +9,7 @@ stored weight is ``[out, in * bits / 32]`` and scales/biases are ``[out, in / gr
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -17,6 +18,7 @@ import numpy as np
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.gptq import unpack_words
+from steelyard.loaders.packed.stored import Part
 
 
 @dataclass(frozen=True)
@@ -25,15 +27,15 @@ class MlxWeight:
 
     path: Path
     name: str
-    packed: np.ndarray
-    scales: np.ndarray
-    biases: np.ndarray
+    packed: Part
+    scales: Part
+    biases: Part
     bits: int
     group_size: int
 
     @classmethod
     def build(
-        cls, path: Path, name: str, parts: dict[str, np.ndarray], bits: int, group_size: int
+        cls, path: Path, name: str, parts: Mapping[str, Part], bits: int, group_size: int
     ) -> MlxWeight:
         """Check the parts against each other; lying shapes, bits or groups are LoadErrors."""
         if bits not in (2, 4, 8):

@@ -1,0 +1,137 @@
+"""Packed weights of a safetensors checkpoint turned into logical float weights.
+
+Called by the safetensors loader after the headers are checked. For every packed linear
+weight found (:func:`~steelyard.loaders.packed.modules.find_packed`), the layout's decoder is
+built from :class:`~steelyard.loaders.packed.stored.StoredPart` views of its parts (shapes,
+bit widths and group sizes checked against each other and the declared config now, so a lie
+is a :class:`LoadError` at load time; only small parts such as ``g_idx`` or scales are read)
+and one ``f32`` tensor ``<module>.weight`` of shape ``[out, in]`` takes the parts' place. It
+counts ``out * in`` parameters, carries ``stored_type`` (``gptq-int4``...), and is decoded row
+block by row block when read. The parts stay in the checkpoint as bookkeeping tensors (not
+counted) so coverage and tools still see them; none of them becomes a layer.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import replace
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+
+from steelyard import budget
+from steelyard.dtypes import ALL_DTYPES
+from steelyard.errors import LoadError
+from steelyard.graph import Tensor, TensorRole
+from steelyard.loaders.packed.config import QuantConfig, read_quant_config
+from steelyard.loaders.packed.detect import Layout, detect_layout
+from steelyard.loaders.packed.modules import PackedModule, find_packed
+from steelyard.loaders.packed.stored import StoredPart
+from steelyard.streaming import row_blocks
+
+
+class Decoder(Protocol):
+    """What every layout's weight offers: its canonical shape, name and float rows."""
+
+    @property
+    def shape(self) -> tuple[int, int]: ...
+
+    @property
+    def stored_type(self) -> str: ...
+
+    def rows(self, start: int, stop: int) -> np.ndarray: ...
+
+
+#: Builds a layout's decoder from its parts; registered per layout in ``builders``.
+Builder = Callable[[Path, PackedModule, Mapping[str, StoredPart], QuantConfig], Decoder]
+
+
+def _stored(tensor: Tensor, path: Path) -> StoredPart:
+    if tensor.read_span is None:  # every safetensors tensor has one; a guard for other callers
+        raise LoadError(path, f"tensor {tensor.name!r} cannot be read in spans")
+    return StoredPart(path, tensor.name, tensor.shape, np.dtype(ALL_DTYPES[tensor.dtype]),
+                      tensor.read_span)
+
+
+def logical_tensor(name: str, decoder: Decoder, path: Path, stored_bytes: int) -> Tensor:
+    """The ``f32`` ``[out, in]`` tensor that decodes ``decoder`` one row block per read."""
+    n_out, n_in = decoder.shape
+    total = n_out * n_in
+
+    def read_span(start: int, stop: int) -> np.ndarray:
+        start, stop = max(0, start), min(total, stop)
+        out = np.empty(max(0, stop - start), dtype=np.float32)
+        if not out.size:
+            return out
+        first = start // n_in
+        for a, b in row_blocks(-(-stop // n_in) - first, n_in):
+            a, b = a + first, b + first
+            # A NaN or Inf scale is data the audit reports, not a warning to print.
+            with np.errstate(all="ignore"):
+                block = np.asarray(decoder.rows(a, b), dtype=np.float32).reshape(-1)
+            lo, hi = max(start, a * n_in), min(stop, b * n_in)
+            out[lo - start : hi - start] = block[lo - a * n_in : hi - a * n_in]
+        return out
+
+    def read() -> np.ndarray:
+        # The whole float32 copy is bytes the file does not store: an expansion.
+        budget.check_expansion(path, 4 * total, stored_bytes, f"tensor {name!r} dequantized")
+        return read_span(0, total).reshape(n_out, n_in)
+
+    return Tensor(
+        name=name,
+        shape=(n_out, n_in),
+        dtype="f32",
+        role=TensorRole.PARAMETER,
+        reader=read,
+        read_span=read_span,
+        stored_type=decoder.stored_type,
+    )
+
+
+def unpack_checkpoint(
+    checkpoint: Path, tensors: Mapping[str, Tensor], origin: Mapping[str, Path]
+) -> tuple[dict[str, Tensor], list[str]]:
+    """``tensors`` with each packed weight's parts replaced by its logical float weight,
+    and notes for the report naming the layouts found. ``origin`` names each tensor's file."""
+    from steelyard.loaders.packed.builders import BUILDERS
+
+    if not find_packed(tensors, Layout.GPTQ):  # side files are read only for packed files
+        return dict(tensors), []
+    config = read_quant_config(checkpoint)
+    modules = find_packed(tensors, detect_layout(tensors, config.settings))
+    owner: dict[str, PackedModule] = {}
+    logical: dict[str, Tensor] = {}
+    for module in modules:
+        path = origin[module.parts[next(iter(module.parts))]]
+        parts = {key: _stored(tensors[name], origin[name]) for key, name in module.parts.items()}
+        name = module.weight_name
+        if name in tensors and name not in module.parts.values():
+            raise LoadError(path, f"{name!r} is stored both as a float tensor and packed")
+        decoder = BUILDERS[module.layout](path, module, parts, config)
+        stored = sum(part.nbytes for part in parts.values())
+        logical[name] = logical_tensor(name, decoder, path, stored)
+        for part in module.parts.values():
+            owner[part] = module
+    out: dict[str, Tensor] = {}
+    for name, tensor in tensors.items():
+        owned = owner.get(name)
+        if owned is None:
+            out[name] = tensor
+            continue
+        if owned.weight_name not in out:
+            out[owned.weight_name] = logical[owned.weight_name]
+        if name != owned.weight_name:
+            out[name] = replace(tensor, role=TensorRole.BOOKKEEPING)
+    counts: dict[str, int] = {}
+    for module in modules:
+        kind = logical[module.weight_name].stored_type or module.layout.value
+        counts[kind] = counts.get(kind, 0) + 1
+    found = ", ".join(f"{kind} ×{count}" for kind, count in sorted(counts.items()))
+    notes = [f"packed weights decoded to float32 views ({found}); parameters count the "
+             "logical weight elements, the stored codes, scales and zero points are "
+             "bookkeeping" + (f"; settings from {Path(config.source).name}"
+                              if config.source else "; no quantization config found, settings "
+                              "inferred from tensor shapes")]
+    return out, notes

@@ -27,8 +27,6 @@ OVERSIZED_MODULES = {
     "steelyard.loaders.keras.hdf5_access",
     "steelyard.loaders.keras.layers",
     "steelyard.loaders.onnx.loader",
-    "steelyard.loaders.pytorch.unpickler",
-    "steelyard.loaders.pytorch.loader",
 }
 OVERSIZED_CLASSES = {
     "steelyard.loaders.keras.model_config._ConfigWalker",

@@ -27,6 +27,7 @@ from steelyard.loaders import SUPPORTED
 from steelyard.loaders import load as _load
 from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
+from steelyard.run_timeline.result import Timeline
 from steelyard.version import __version__
 
 
@@ -379,3 +380,41 @@ def compare(
         comparison=comparison,
         frozen=tuple(chosen.frozen),
     )
+
+
+def timeline(
+    paths: Sequence[str | Path],
+    order: str = "step",
+    policy: Policy | str | Path | None = None,
+    created: str | None = None,
+    on_checkpoint: Callable[[str], None] | None = None,
+    jobs: int | None = None,
+    budget: Budget | None = None,
+) -> Timeline:
+    """Follow one training run's checkpoints as ``steelyard timeline`` does: ordered by
+    training step (``order="step"``; ``"name"`` or ``"given"`` to override), each audited
+    once, per layer the fan-in norms, dead units, non-finite values and drift, and for each
+    finding where it appeared and went away. ``timeline.passed`` is the gate (findings of the
+    last checkpoint at or above ``fail_on``), ``timeline.to_json()`` the
+    ``steelyard.timeline/1`` document. Fewer than two checkpoints, one that cannot be read,
+    or checkpoints that share no layer raise :class:`~steelyard.errors.LoadError` or
+    :class:`~steelyard.errors.SteelyardError`."""
+    from steelyard.run_timeline.engine import RunSettings, build_timeline
+    from steelyard.run_timeline.ordering import Order, arrange
+
+    try:
+        chosen_order = Order(order)
+    except ValueError:
+        raise SteelyardError(f"order {order!r}: use step, name or given") from None
+    chosen = policy_in_force(policy)
+    with _limits(budget, chosen):
+        placed, notes = arrange(list(paths), chosen_order)
+        if len(placed) < 2:
+            where = ", ".join(str(p) for p in paths) or "no paths"
+            raise SteelyardError(
+                f"{where}: a timeline needs at least two checkpoints, found {len(placed)}"
+            )
+        settings = RunSettings(
+            chosen, chosen_order.value, created or now(), _jobs(jobs), tuple(notes)
+        )
+        return build_timeline(placed, settings, on_checkpoint)

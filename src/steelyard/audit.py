@@ -17,7 +17,7 @@ from steelyard.coverage import coverage_of
 from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
-from steelyard.inventory import checkpoint_block, layer_block
+from steelyard.inventory import checkpoint_block, layer_block, stored_type_of
 from steelyard.policy import Policy
 from steelyard.ranking import rank, rank_key
 from steelyard.report import CheckpointAudit, LayerHealth, Suppressed
@@ -218,7 +218,7 @@ def _health(
                 continue
             columns[column.field] = column.measure(layer, [f for f in mine if f.rule == spec.name])
     return LayerHealth(
-        layer=layer_block(layer),
+        layer=layer_block(layer, stored_type_of(stats.checkpoint, layer)),
         fan_in_norm=(spread.low, spread.median, spread.high),
         norm_histogram=spread.histogram,
         norm_percentiles=spread.percentiles,

@@ -21,9 +21,17 @@ def checkpoint_block(checkpoint: Checkpoint) -> dict[str, Any]:
     }
 
 
-def layer_block(layer: Layer) -> dict[str, Any]:
-    """One entry of ``layers``."""
-    return {
+def stored_type_of(checkpoint: Checkpoint, layer: Layer) -> str | None:
+    """What the file stored for the layer's weight when it is a decoded view (``gptq-int4``,
+    ``Q4_K``); None for weights stored as the floats they are."""
+    tensor = checkpoint.tensors.get(layer.weight)
+    return tensor.stored_type if tensor is not None else None
+
+
+def layer_block(layer: Layer, stored_type: str | None = None) -> dict[str, Any]:
+    """One entry of ``layers``; ``stored_type`` is added only for a decoded weight, so the
+    entries of float checkpoints are unchanged."""
+    block = {
         "name": layer.name,
         "kind": layer.kind.value,
         "weight": layer.weight,
@@ -37,6 +45,9 @@ def layer_block(layer: Layer) -> dict[str, Any]:
         "inputs_from": list(layer.inputs_from),
         "linked_by": layer.linked_by.value,
     }
+    if stored_type is not None:
+        block["stored_type"] = stored_type
+    return block
 
 
 def _groups(checkpoint: Checkpoint, layer: Layer) -> list[dict[str, Any]]:
@@ -62,7 +73,10 @@ def layers_document(checkpoint: Checkpoint) -> dict[str, Any]:
         "schema": LAYERS_SCHEMA,
         "checkpoint": checkpoint_block(checkpoint),
         "layers": [
-            {**layer_block(layer), "unit_groups": _groups(checkpoint, layer)}
+            {
+                **layer_block(layer, stored_type_of(checkpoint, layer)),
+                "unit_groups": _groups(checkpoint, layer),
+            }
             for layer in checkpoint.layers
         ],
         "coverage": coverage_document(coverage_of(checkpoint)),

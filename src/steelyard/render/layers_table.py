@@ -7,6 +7,7 @@ from rich.text import Text
 
 from steelyard.coverage import coverage_of, describe
 from steelyard.graph import Checkpoint, Layer
+from steelyard.inventory import stored_type_of
 from steelyard.render.text import human_bytes, human_count, to_text
 from steelyard.text_safety import shown
 
@@ -44,7 +45,12 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
     table = Table(show_edge=False, header_style="bold", pad_edge=False)
     longest = max((len(shown(layer.name)) for layer in checkpoint.layers), default=5)
     table.add_column("layer", min_width=min(longest, 60), overflow="fold")
-    for column in ("kind", "out × in × kernel", "activation", "fed by", "parameters"):
+    # The stored-as column appears only when some weight is a decoded view (packed, GGUF).
+    stored = {layer.name: stored_type_of(checkpoint, layer) for layer in checkpoint.layers}
+    decoded = any(stored.values())
+    columns = ("kind", "out × in × kernel", *(("stored as",) if decoded else ()), "activation",
+               "fed by", "parameters")
+    for column in columns:
         table.add_column(
             column,
             justify="right" if column == "parameters" else "left",
@@ -56,6 +62,7 @@ def render_layers(checkpoint: Checkpoint, *, color: bool = False, width: int = 1
             shown(layer.name),
             layer.kind.value,
             _shape(layer),
+            *((stored[layer.name] or "—",) if decoded else ()),
             layer.activation.value,
             f"{fed} ({layer.linked_by.value})" if layer.inputs_from else fed,
             human_count(_parameters(layer)),

@@ -169,9 +169,14 @@ def file_metadata(path: Path) -> Mapping[str, Any]:
 
 def place(path: Path, root: Path | None) -> Placed:
     """Where ``path`` sits in training, from the most trusted source that says."""
+    if not path.exists():
+        raise LoadError(path, "does not exist")
+    try:
+        stored = step_from_metadata(file_metadata(path))
+    except OSError as exc:
+        raise LoadError(path, f"cannot be read ({exc.strerror})") from None
     named = step_from_names(_names(path, root))
     state, problem = step_from_trainer_state(path)
-    stored = step_from_metadata(file_metadata(path))
     notes = [problem] if problem else []
     chosen = state or stored or named
     for other in (stored, named):

@@ -1,26 +1,43 @@
-"""The terminal audit report: header, verdict, ranked findings, layer health, caution."""
+"""The terminal audit report: header, verdict, ranked findings, layer health, run summary,
+caution.
+
+Every line is laid out here (through :mod:`steelyard.render.grid` and
+:mod:`steelyard.render.fitting`) to at most the given width, so rich never folds a word or a
+name in the middle. Below :data:`~steelyard.render.findings_view.COMPACT_BELOW` columns the
+findings and the layer health use their compact layouts.
+"""
 
 from __future__ import annotations
 
 import math
 
 from rich.console import Group, RenderableType
-from rich.table import Table
 from rich.text import Text
 
-from steelyard.coverage import describe
-from steelyard.findings import Finding, Severity, units_cell
-from steelyard.render.text import human_bytes, human_count, titled_table, to_text
+from steelyard.coverage import Coverage
+from steelyard.render.findings_view import (
+    COMPACT_BELOW,
+    MAX_ROWS,
+    explanations,
+    findings_table,
+    grouped,
+    headline,
+    indented,
+)
+from steelyard.render.fitting import distinct_tails, wrap_words
+from steelyard.render.grid import Cell, Column, Grid
+from steelyard.render.text import count, human_bytes, number, percent, plural, to_text
 from steelyard.report import CAUTION, CheckpointAudit, Report
 from steelyard.rules import registry
 from steelyard.text_safety import shown_deep
 
-_STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
 _BARS = "▁▂▃▄▅▆▇█"
-#: Findings shown in full in the terminal; the rest are counted (JSON has them all).
-MAX_SHOWN = 40
 #: Tensors in no layer named in the terminal (JSON lists them all).
 _UNCOVERED_SHOWN = 8
+#: Width of the header's labels.
+_LABEL = 12
+#: Suppressed findings listed (JSON has them all).
+_SUPPRESSED_SHOWN = 40
 
 
 def spark(histogram: tuple[int, ...]) -> str:
@@ -31,231 +48,261 @@ def spark(histogram: tuple[int, ...]) -> str:
     return "".join(" " if c == 0 else _BARS[min(7, math.ceil(7 * c / top))] for c in histogram)
 
 
-def _number(value: float) -> str:
-    return "—" if not math.isfinite(value) else f"{value:.3g}"
+def _labelled(label: str, value: str | Text, width: int) -> list[Text]:
+    """``label`` then ``value`` wrapped at spaces (a path after its separators), continuation
+    lines under the value."""
+    text = value if isinstance(value, Text) else Text(value)
+    out: list[Text] = []
+    offset = 0
+    for index, line in enumerate(wrap_words(text.plain, max(1, width - _LABEL))):
+        start = text.plain.find(line, offset)
+        # Lines are runs of the value (it wraps at spaces), so each keeps its own styles.
+        piece = text[start : start + len(line)] if line and start >= 0 else Text(line)
+        offset = start + len(line) if start >= 0 else offset
+        lead = Text(label.ljust(_LABEL), style="bold") if index == 0 else Text(" " * _LABEL)
+        out.append(lead + piece)
+    return out
 
 
-def _grouped(findings: tuple[Finding, ...]) -> list[tuple[Finding, list[str]]]:
-    """Info findings that say the same thing about several layers become one row."""
-    rows: list[tuple[Finding, list[str]]] = []
-    for finding in findings:
-        if finding.severity is Severity.INFO and not finding.units:
-            for seen, layers in rows:
-                if (seen.severity, seen.rule, seen.message, seen.hint) == (
-                    finding.severity,
-                    finding.rule,
-                    finding.message,
-                    finding.hint,
-                ) and not seen.units:
-                    layers.append(finding.layer or "—")
-                    break
-            else:
-                rows.append((finding, [finding.layer] if finding.layer else []))
-        else:
-            rows.append((finding, [finding.layer] if finding.layer else []))
-    return rows
+def coverage_line(coverage: Coverage) -> str:
+    """What the layer rules saw, in the report's number style."""
+    if coverage.parameters == 0:
+        return "no parameters: nothing was checked"
+    missing = len(coverage.uncovered)
+    rest = (
+        "every counted tensor is in a layer"
+        if not missing
+        else f"{plural(missing, 'tensor')} in no layer"
+    )
+    return f"layer rules saw {percent(coverage.share)} of {count(coverage.parameters)} parameters; {rest}"
 
 
 def _verdict(report: Report, audit: CheckpointAudit) -> Text:
     counts = audit.counts()
     failing = audit.failing(report.gate)
-    summary = f"{counts['error']} errors, {counts['warning']} warnings, {counts['info']} info"
+    summary = (
+        f"{plural(counts['error'], 'error')}, {plural(counts['warning'], 'warning')}, "
+        f"{counts['info']:,} info"
+    )
     if report.gate is None:
-        return Text.assemble(
-            ("REPORT ONLY ", "bold"), f"{summary} (gate disabled: --fail-on never)"
-        )
+        return Text.assemble(("REPORT ONLY", "bold"), f" {summary} (gate disabled: --fail-on never)")
     if failing:
         return Text.assemble(
-            ("FAIL ", "bold red"), f"{summary}; {len(failing)} at or above {report.fail_on}"
+            ("FAIL", "bold red"), f" {summary}; {count(len(failing))} at or above {report.fail_on}"
         )
-    return Text.assemble(("PASS ", "bold green"), f"{summary}; none at or above {report.fail_on}")
+    return Text.assemble(("PASS", "bold green"), f" {summary}; none at or above {report.fail_on}")
 
 
-def _audit(report: Report, audit: CheckpointAudit) -> list[RenderableType]:
+def _header(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     block = audit.checkpoint
-    header = Text.assemble(
-        ("checkpoint ", "bold"),
-        str(block["path"]),
-        "\n",
-        ("format ", "bold"),
-        str(block["format"]),
-        ("   parameters ", "bold"),
-        f"{int(block['parameters']):,}",
-        ("   layers ", "bold"),
-        str(len(audit.layers)),
-        ("   gradient support ", "bold"),
-        audit.gradient_source or "none",
-        "\n",
-        ("policy ", "bold"),
-        report.policy_source,
-        ("   sha256 ", "bold"),
-        str(block.get("sha256", ""))[:16] + "…",
-        *(
-            ("\n", ("coverage ", "bold"), describe(audit.coverage))
-            if audit.coverage is not None
-            else ()
+    size = f", {human_bytes(int(block['file_size']))}" if "file_size" in block else ""
+    pairs: list[tuple[str, str | Text]] = [
+        ("checkpoint", str(block["path"])),
+        ("sha256", str(block.get("sha256", "")) or "not computed"),
+        (
+            "format",
+            f"{block['format']}{size}; {plural(int(block['parameters']), 'parameter')} in "
+            f"{plural(len(audit.layers), 'layer')}",
         ),
+        ("gradients", audit.gradient_source or "none"),
+        ("policy", report.policy_source),
+    ]
+    if audit.coverage is not None:
+        pairs.append(("coverage", coverage_line(audit.coverage)))
+    pairs.append(("verdict", _verdict(report, audit)))
+    return [line for label, value in pairs for line in _labelled(label, value, width)]
+
+
+def _health(audit: CheckpointAudit, width: int, tails: dict[str, str]) -> list[Text]:
+    compact = width < COMPACT_BELOW
+    columns = [
+        Column("layer", wrap="name", floor=16, one_line=compact),
+        *(() if compact else (Column("kind"),)),
+        Column("units", align="right"),
+        Column("min" if compact else "fan-in norm min", align="right", wrap="words"),
+        Column("median", align="right"),
+        Column("max", align="right"),
+        Column("histogram"),
+        Column("dead", align="right"),
+        Column("twins", align="right"),
+        Column("unsup." if compact else "unsupported", align="right"),
+    ]
+    grid = Grid(tuple(columns), tails=tails)
+    for row in audit.layers:
+        low, mid, high = row.fan_in_norm
+        share = "—" if row.unsupported_share is None else percent(row.unsupported_share)
+        grid.add(
+            Cell.of(str(row.layer["name"])),
+            *(() if compact else (str(row.layer["kind"]),)),
+            count(int(row.layer["units"])),
+            number(low),
+            number(mid),
+            number(high),
+            spark(row.norm_histogram),
+            count(row.dead) if row.dead else "—",
+            count(row.twins) if row.twins else "—",
+            share,
+        )
+    legend = (
+        "min, median, max: L2 norm of each unit's incoming weights (fan-in norm) across the "
+        "layer's units; histogram: how many units fall in each of a few fan-in norm bins, "
+        "log-spaced from min (left) to max (right), the tallest bar the fullest bin; dead and "
+        "twins: units the dead-unit and twin-units rules flagged; "
+        f"{'unsup.' if compact else 'unsupported'}: share of the layer's weights the "
+        "unsupported-weight rule flagged (— without gradient support)"
     )
-    parts: list[RenderableType] = [header, _verdict(report, audit), Text("")]
-    specs = registry()
+    return [
+        Text("layer health", style="bold"),
+        *grid.render(width),
+        *indented(legend, width, "dim", indent=0),
+    ]
+
+
+def _audit(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
+    parts = _header(report, audit, width)
+    parts.append(Text(""))
+    names = [str(row.layer["name"]) for row in audit.layers]
+    names += [f.layer for f in audit.findings if f.layer]
+    tails = distinct_tails(names)
+    specs = registry(None)
     if audit.findings:
-        findings = Table(show_edge=False, header_style="bold", pad_edge=False, expand=False)
-        for column in ("#", "severity", "rule", "layer", "units", "finding"):
-            findings.add_column(column, overflow="fold", max_width=24 if column == "layer" else None)
-        explained: set[str] = set()
-        for index, (finding, layers) in enumerate(_grouped(audit.findings[:MAX_SHOWN]), 1):
-            body = Text(finding.message)
-            if finding.rule not in explained and finding.rule in specs:
-                # The why is the rule's, not the finding's: say it once per report.
-                body.append(f"\nwhy: {specs[finding.rule].summary}", style="dim")
-                explained.add(finding.rule)
-            body.append(f"\nhint: {finding.hint}", style="italic")
-            findings.add_row(
-                str(index),
-                Text(finding.severity.value, style=_STYLE[finding.severity]),
-                finding.rule,
-                ", ".join(layers) or "—",
-                units_cell(finding, limit=6),
-                body,
+        rows = grouped(audit.findings)
+        shown = rows[:MAX_ROWS]
+        parts.append(headline(rows, len(audit.findings), shown))
+        parts += findings_table(shown, specs, width, tails)
+        if len(rows) > len(shown):
+            hidden = sum(r.folded for r in rows[len(shown) :])
+            parts += indented(
+                f"… and {plural(hidden, 'more finding')} in {plural(len(rows) - len(shown), 'row')} "
+                "not shown (--format json lists them all)",
+                width,
+                "dim",
+                indent=0,
             )
-        parts.append(findings)
-        if len(audit.findings) > MAX_SHOWN:
-            parts.append(
-                Text(
-                    f"… and {len(audit.findings) - MAX_SHOWN} more (use --format json)", style="dim"
-                )
-            )
+        if width < COMPACT_BELOW:
+            parts += [Text(""), *explanations(shown, specs, width)]
     else:
         parts.append(Text("no findings", style="green"))
     if audit.baselined:
-        parts.append(
-            Text(
-                f"{len(audit.baselined)} findings matched the baseline and are not gated on",
-                style="dim",
-            )
+        parts += indented(
+            f"{plural(len(audit.baselined), 'finding')} matched the baseline and are not gated on",
+            width,
+            "dim",
+            indent=0,
         )
     if audit.suppressed:
-        parts.append(
-            Text(f"{len(audit.suppressed)} findings silenced by the policy's ignore entries:", style="dim")
+        parts += indented(
+            f"{plural(len(audit.suppressed), 'finding')} silenced by the policy's ignore entries:",
+            width,
+            "dim",
+            indent=0,
         )
-        parts += [
-            Text(
-                f"  {s.finding.rule} on {s.finding.layer or 'the checkpoint'}: "
-                f"{s.finding.message} (ignored for layers {s.layers!r}: {s.reason})",
-                style="dim",
+        for s in audit.suppressed[:_SUPPRESSED_SHOWN]:
+            parts += indented(
+                f"{s.finding.rule} on {s.finding.layer or 'the checkpoint'}: {s.finding.message} "
+                f"(ignored for layers {s.layers!r}: {s.reason})",
+                width,
+                "dim",
             )
-            for s in audit.suppressed[:MAX_SHOWN]
-        ]
     if audit.layers:
-        health = titled_table(
-            "layer health",
-            (
-                "layer",
-                "kind",
-                "units",
-                "fan-in norm min",
-                "median",
-                "max",
-                "distribution",
-                "dead",
-                "twins",
-                "unsupported",
-            ),
-            right=("units", "fan-in norm min", "median", "max", "dead", "twins", "unsupported"),
-        )
-        for row in audit.layers:
-            low, mid, high = row.fan_in_norm
-            share = "—" if row.unsupported_share is None else f"{100 * row.unsupported_share:.2g}%"
-            health.add_row(
-                str(row.layer["name"]),
-                str(row.layer["kind"]),
-                human_count(int(row.layer["units"])),
-                _number(low),
-                _number(mid),
-                _number(high),
-                spark(row.norm_histogram),
-                str(row.dead or "—"),
-                str(row.twins or "—"),
-                share,
-            )
-        parts += [Text(""), health]
+        parts += [Text(""), *_health(audit, width, tails)]
     uncovered = audit.coverage.uncovered if audit.coverage is not None else ()
     if uncovered:
-        shown = ", ".join(f"{u.name} {list(u.shape)}" for u in uncovered[:_UNCOVERED_SHOWN])
+        shown_names = ", ".join(f"{u.name} {list(u.shape)}" for u in uncovered[:_UNCOVERED_SHOWN])
         more = (
-            f" and {len(uncovered) - _UNCOVERED_SHOWN:,} more (--format json lists them all)"
+            f" and {count(len(uncovered) - _UNCOVERED_SHOWN)} more (--format json lists them all)"
             if len(uncovered) > _UNCOVERED_SHOWN
             else ""
         )
-        parts.append(Text(f"in no layer: {shown}{more}", style="dim"))
-    parts += [Text(f"note: {note}", style="dim") for note in audit.notes]
+        parts += indented(f"in no layer: {shown_names}{more}", width, "dim", indent=0)
+    for note in audit.notes:
+        parts += indented(f"note: {note}", width, "dim", indent=0)
     return parts
 
 
-def _summary(report: Report) -> list[RenderableType]:
-    """The run's last word: one row per checkpoint, every failure named."""
-    table = titled_table(
-        "summary", ("checkpoint", "verdict", "errors", "warnings", "coverage"),
-        right=("errors", "warnings", "coverage"),
+def _summary(report: Report, width: int) -> list[Text]:
+    """The run's last word: one row per checkpoint, then every failure named in full."""
+    paths = [str(a.checkpoint["path"]) for a in report.audits] + [e.path for e in report.errors]
+    grid = Grid(
+        tails=distinct_tails(paths),
+        columns=(
+            Column("checkpoint", wrap="name", floor=24, one_line=True),
+            Column("verdict"),
+            Column("errors", align="right"),
+            Column("warnings", align="right"),
+            Column("coverage", align="right"),
+        )
     )
-    rows: list[tuple[str, Text, str, str, str]] = []
+    rows: list[tuple[str, Cell, str, str, str]] = []
+    failures: list[str] = []
     for audit in report.audits:
         counts = audit.counts()
         failing = audit.failing(report.gate)
-        verdict = (
-            Text("report", style="bold")
-            if report.gate is None
-            else Text("FAIL", style="bold red")
-            if failing
-            else Text("PASS", style="bold green")
-        )
-        share = "—" if audit.coverage is None else f"{100 * audit.coverage.share:.1f}%"
-        rows.append(
-            (str(audit.checkpoint["path"]), verdict, f"{counts['error']:,}", f"{counts['warning']:,}", share)
-        )
-    rows += [(e.path, Text("UNREADABLE", style="bold red"), "—", "—", "—") for e in report.errors]
-    for row in sorted(rows, key=lambda r: r[0]):
-        table.add_row(*row)
-    return [Text(""), table]
-
-
-def _inputs(report: Report) -> list[RenderableType]:
-    parts: list[RenderableType] = []
+        path = str(audit.checkpoint["path"])
+        if report.gate is None:
+            mark = Cell.of("report", "bold")
+        elif failing:
+            mark = Cell.of("FAIL", "bold red")
+            failures.append(
+                f"FAIL {path}: {plural(len(failing), 'finding')} at or above {report.fail_on}"
+            )
+        else:
+            mark = Cell.of("PASS", "bold green")
+        share = "—" if audit.coverage is None else percent(audit.coverage.share)
+        rows.append((path, mark, count(counts["error"]), count(counts["warning"]), share))
     for error in report.errors:
-        parts.append(Text.assemble(("unreadable ", "bold red"), error.line))
+        rows.append((error.path, Cell.of("UNREADABLE", "bold red"), "—", "—", "—"))
+        failures.append(f"UNREADABLE {error.path}: {error.reason}")
+    for row in sorted(rows, key=lambda r: r[0]):
+        grid.add(*row)
+    lines = [Text(""), Text("summary", style="bold"), *grid.render(width)]
+    for failure in sorted(failures, key=lambda f: f.split(" ", 1)[1]):
+        lines += indented(failure, width, "red", indent=0)
+    verdict = "PASS" if report.passed else "FAIL"
+    unreadable = f", {count(len(report.errors))} unreadable" if report.errors else ""
+    lines.append(
+        Text.assemble(
+            ("overall ", "bold"),
+            (verdict, "bold green" if report.passed else "bold red"),
+            f" over {plural(len(report.audits), 'checkpoint')} audited{unreadable}",
+        )
+    )
+    return lines
+
+
+def _inputs(report: Report, width: int, summarised: bool) -> list[Text]:
+    parts: list[Text] = []
+    for error in () if summarised else report.errors:  # the summary names them otherwise
+        parts += indented(f"unreadable {error.line}", width, "bold red", indent=0)
     for skipped in report.skipped:
-        parts.append(Text(f"skipped {skipped.path}: {skipped.reason}", style="dim"))
-    parts += [Text(f"note: {note}", style="dim") for note in report.notes]
-    parts += [Text(f"policy: {note}", style="yellow") for note in report.policy_notes]
+        parts += indented(f"skipped {skipped.path}: {skipped.reason}", width, "dim", indent=0)
+    for note in report.notes:
+        parts += indented(f"note: {note}", width, "dim", indent=0)
+    for note in report.policy_notes:
+        parts += indented(f"policy: {note}", width, "yellow", indent=0)
     return parts
 
 
 def render_table(report: Report, *, color: bool = False, width: int = 120) -> str:
-    """The whole terminal report."""
+    """The whole terminal report, no line wider than ``width`` (at least 40)."""
+    width = max(40, width)
     report = shown_deep(report)  # names from files: escaped, one line each
-    parts: list[RenderableType] = []
+    parts: list[Text] = []
     for index, audit in enumerate(report.audits):
         if index:
-            parts.append(Text("─" * min(width, 100), style="dim"))
-        parts.extend(_audit(report, audit))
-    inputs = _inputs(report)
+            parts += [Text(""), Text("─" * min(width, 100), style="dim")]
+        parts += _audit(report, audit, width)
+    summarised = len(report.audits) + len(report.errors) > 1
+    inputs = _inputs(report, width, summarised)
     if inputs:
         parts += [Text(""), *inputs]
-    if len(report.audits) + len(report.errors) > 1:
-        verdict = "PASS" if report.passed else "FAIL"
-        unreadable = f", {len(report.errors)} unreadable" if report.errors else ""
-        parts += _summary(report)
-        parts.append(
-            Text.assemble(
-                ("overall ", "bold"),
-                (verdict, "bold green" if report.passed else "bold red"),
-                f" over {len(report.audits)} checkpoints audited{unreadable}",
-            )
-        )
+    if summarised:
+        parts += _summary(report, width)
     elif report.errors or not report.audits:
         parts.append(Text.assemble(("overall ", "bold"), ("FAIL", "bold red"), ": nothing audited"))
-    parts += [Text(""), Text(CAUTION, style="italic")]
-    return to_text([Group(*parts)], color=color, width=width)
+    parts += [Text(""), *indented(CAUTION, width, "italic", indent=0)]
+    renderables: list[RenderableType] = [Group(*parts)]
+    return to_text(renderables, color=color, width=width)
 
 
 __all__ = ["human_bytes", "render_table", "spark"]

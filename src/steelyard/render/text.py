@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import math
 from collections.abc import Container, Iterable
 
 from rich.console import Console, RenderableType
@@ -66,3 +67,48 @@ def human_bytes(value: int) -> str:
             return f"{size:.0f} {unit}" if unit == "B" else f"{size:.1f} {unit}"
         size /= 1024
     return f"{value} B"
+
+
+# One number rule for the terminal reports: counts are exact with thousands separators;
+# measured values have three significant figures, with separators from a thousand up and
+# powers of ten below a ten-thousandth; shares are percentages that never round a partial share
+# up to 100 % or down to 0 %.
+
+
+def count(value: int) -> str:
+    """An exact count: 1234567 → '1,234,567'."""
+    return f"{value:,}"
+
+
+def number(value: float) -> str:
+    """A measured value to three significant figures: 0.457, 9.29, 12,300, 7.2e-05; '—' for
+    NaN and '±inf' for infinities."""
+    if math.isnan(value):
+        return "—"
+    if math.isinf(value):
+        return "inf" if value > 0 else "-inf"
+    if value == 0:
+        return "0"
+    rounded = float(f"{value:.3g}")  # 999.6 → 1000.0 before the magnitude is read
+    if abs(rounded) >= 1000:
+        return f"{rounded:,.0f}"
+    return f"{rounded:.3g}"
+
+
+def percent(share: float) -> str:
+    """A share in [0, 1] as a percentage to three significant figures."""
+    if share <= 0:
+        return "0%"
+    if share >= 1:
+        return "100%"
+    text = f"{100 * share:.3g}"
+    if float(text) >= 100:
+        return ">99.9%"
+    if float(text) < 0.001:
+        return "<0.001%"
+    return f"{text}%"
+
+
+def plural(value: int, word: str, many: str | None = None) -> str:
+    """'1 error', '2 errors', '1,024 units' (``many`` for irregular plurals)."""
+    return f"{value:,} {word if value == 1 else (many or word + 's')}"

@@ -1,0 +1,163 @@
+"""The findings of one checkpoint in the terminal report, in two layouts.
+
+Wide terminals (at least :data:`COMPACT_BELOW` columns) get a table whose last column holds the
+message, the rule's why (once per rule) and the hint. Narrow ones get one line per row (number,
+severity, rule, layer, units) with the message wrapped under it, and each rule's why and hints
+once, below the table. Info findings that say the same thing about several layers fold into one
+row that says how many findings it stands for, so the counts in the header add up to the rows.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+from rich.text import Text
+
+from steelyard.findings import Finding, Severity, units_cell
+from steelyard.render.fitting import wrap_words
+from steelyard.render.grid import Cell, Column, Grid
+from steelyard.render.text import plural
+from steelyard.rules.base import RuleSpec
+
+#: Narrower terminals than this get the compact layout.
+COMPACT_BELOW = 110
+#: Rows shown in full; the rest are counted (JSON has them all).
+MAX_ROWS = 40
+#: Layers named in a folded row.
+_FOLDED_NAMED = 12
+STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
+
+
+@dataclass(frozen=True)
+class FindingRow:
+    """One row: a finding, and every layer it stands for when folded."""
+
+    finding: Finding
+    layers: tuple[str, ...]
+
+    @property
+    def folded(self) -> int:
+        """How many findings the row stands for."""
+        return max(1, len(self.layers))
+
+
+def grouped(findings: tuple[Finding, ...]) -> list[FindingRow]:
+    """Info findings that say the same thing about several layers become one row."""
+    rows: list[tuple[Finding, list[str]]] = []
+    for finding in findings:
+        if finding.severity is Severity.INFO and not finding.units:
+            key = (finding.rule, finding.message, finding.hint)
+            for seen, layers in rows:
+                if (
+                    seen.severity is Severity.INFO
+                    and not seen.units
+                    and (seen.rule, seen.message, seen.hint) == key
+                ):
+                    layers.append(finding.layer or "—")
+                    break
+            else:
+                rows.append((finding, [finding.layer or "—"]))
+        else:
+            rows.append((finding, [finding.layer] if finding.layer else []))
+    return [FindingRow(f, tuple(layers)) for f, layers in rows]
+
+
+def _layer_cell(row: FindingRow) -> str:
+    if len(row.layers) > 1:
+        return plural(len(row.layers), "layer")
+    return row.layers[0] if row.layers else "—"
+
+
+def _folded_note(row: FindingRow) -> list[tuple[str, str]]:
+    if len(row.layers) <= 1:
+        return []
+    named = ", ".join(row.layers[:_FOLDED_NAMED])
+    more = (
+        f" and {len(row.layers) - _FOLDED_NAMED:,} more"
+        if len(row.layers) > _FOLDED_NAMED
+        else ""
+    )
+    return [(f"{plural(len(row.layers), 'finding')}, one per layer: {named}{more}", "dim")]
+
+
+def headline(rows: list[FindingRow], total: int, shown: list[FindingRow]) -> Text:
+    """The count line over the table: findings, rows, and what folding and the cap hid."""
+    text = Text.assemble(("findings ", "bold"), f"{total:,}")
+    if len(rows) != total:
+        text.append(f" in {plural(len(rows), 'row')}; a row for several layers says how many")
+    if len(shown) < len(rows):
+        text.append(f"; the first {len(shown):,} rows shown")
+    return text
+
+
+def findings_table(
+    rows: list[FindingRow], specs: Mapping[str, RuleSpec], width: int, tails: dict[str, str]
+) -> list[Text]:
+    """The findings as lines of at most ``width`` cells."""
+    compact = width < COMPACT_BELOW
+    columns = [
+        Column("#", align="right"),
+        Column("severity"),
+        Column("rule", wrap="name"),
+        Column("layer", wrap="name", floor=16, one_line=compact),
+        Column("units", wrap="name", floor=8),
+    ]
+    if not compact:
+        columns.append(Column("finding", wrap="words", floor=40))
+    grid = Grid(tuple(columns), tails=tails, indent_below=5)
+    explained: set[str] = set()
+    for index, row in enumerate(rows, 1):
+        finding = row.finding
+        cells: list[Cell | str] = [
+            str(index),
+            Cell.of(finding.severity.value, STYLE[finding.severity]),
+            finding.rule,
+            _layer_cell(row),
+            units_cell(finding, limit=4 if compact else 6),
+        ]
+        text = [(finding.message, ""), *_folded_note(row)]
+        if compact:
+            grid.add(*cells, below=text)
+            continue
+        if finding.rule not in explained and finding.rule in specs:
+            # The why is the rule's, not the finding's: say it once per report.
+            text.append((f"why: {specs[finding.rule].summary}", "dim"))
+            explained.add(finding.rule)
+        text.append((f"hint: {finding.hint}", "italic"))
+        grid.add(*cells, Cell(tuple(text)))
+    return grid.render(width)
+
+
+def explanations(rows: list[FindingRow], specs: Mapping[str, RuleSpec], width: int) -> list[Text]:
+    """Under the compact table: each rule's why once, and its hints (one per distinct hint,
+    naming the rows it answers)."""
+    order: list[str] = []
+    hints: dict[str, dict[str, list[int]]] = {}
+    for index, row in enumerate(rows, 1):
+        rule = row.finding.rule
+        if rule not in hints:
+            order.append(rule)
+            hints[rule] = {}
+        hints[rule].setdefault(row.finding.hint, []).append(index)
+    lines = [Text("why it matters and what to do", style="bold")]
+    for rule in order:
+        numbers = [n for rows_ in hints[rule].values() for n in rows_]
+        lines.append(Text.assemble((rule, "bold"), f" ({_rows(numbers)})"))
+        if rule in specs:
+            lines += indented(f"why: {specs[rule].summary}", width, "dim")
+        for hint, numbers_ in hints[rule].items():
+            label = "hint" if len(hints[rule]) == 1 else f"hint for {_rows(numbers_)}"
+            lines += indented(f"{label}: {hint}", width, "italic")
+    return lines
+
+
+def _rows(numbers: list[int]) -> str:
+    return ("row " if len(numbers) == 1 else "rows ") + ", ".join(str(n) for n in numbers)
+
+
+def indented(text: str, width: int, style: str = "", indent: int = 2) -> list[Text]:
+    """``text`` wrapped at spaces into lines indented by ``indent`` cells."""
+    return [
+        Text(" " * indent + line, style=style) for line in wrap_words(text, max(1, width - indent))
+    ]

@@ -28,13 +28,14 @@ from steelyard.loaders.packed.stored import Part
 SUPPORTED_BITS = (2, 4, 8)
 
 
-def declared_bits(settings: Mapping[str, Any]) -> int | None:
-    """The one ``num_bits`` of the config's weight schemes, if they agree on one."""
+def declared(settings: Mapping[str, Any], key: str) -> int | None:
+    """The one ``key`` (``num_bits``, ``group_size``) of the config's weight schemes, if they
+    agree on one integer; None when absent or when schemes differ (the shapes decide)."""
     groups = settings.get("config_groups")
     if not isinstance(groups, Mapping):
         return None
     found = {
-        scheme["weights"].get("num_bits")
+        scheme["weights"].get(key)
         for scheme in groups.values()
         if isinstance(scheme, Mapping) and isinstance(scheme.get("weights"), Mapping)
     }
@@ -80,7 +81,7 @@ class PackQuantizedWeight:
         dims = (int(shape[0]), int(shape[1]))
         check_elements(path, dims, f"{name} (dequantized)")
         fits = [b for b in SUPPORTED_BITS if -(-dims[1] * b // 32) == packed.shape[1]]
-        bits = declared_bits(settings)
+        bits = declared(settings, "num_bits")
         if bits is None:
             bits = 4 if 4 in fits else (fits[0] if fits else 0)
         if bits not in fits or packed.shape[0] != dims[0]:
@@ -111,7 +112,9 @@ class PackQuantizedWeight:
             if g_idx.size and (g_idx.min() < 0 or g_idx.max() >= groups):
                 raise LoadError(path, f"{name}: weight_g_idx does not index the {groups} groups")
             return g_idx
-        group = -(-n_in // groups) if groups else 0
+        group = declared(settings, "group_size") or (-(-n_in // groups) if groups else 0)
+        if groups == 1:  # per channel: one scale column whatever the declared group
+            group = max(n_in, 1)
         if group <= 0 or -(-n_in // group) != groups:
             raise LoadError(path, f"{name}: {groups} scale groups do not cover {n_in} inputs")
         return np.arange(n_in, dtype=np.int64) // group

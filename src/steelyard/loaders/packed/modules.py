@@ -71,13 +71,14 @@ def _match(
         return PackedModule(prefix, Layout.COMPRESSED, _present(leaves, prefix, keys))
     if weight is None:
         return None
-    state = [k for k in modules.get(f"{prefix}.weight" if prefix else "weight", {})
-             if k.startswith("quant_state.bitsandbytes__")]
+    base = f"{prefix}.weight" if prefix else "weight"
+    # bitsandbytes 4-bit: <m>.weight.absmax ... and <m>.weight.quant_state.bitsandbytes__nf4
+    state = [k for k in modules.get(f"{base}.quant_state", {}) if k.startswith("bitsandbytes__")]
     if state:
-        inner = modules[f"{prefix}.weight" if prefix else "weight"]
-        parts = {"weight": f"{prefix}.weight" if prefix else "weight"}
-        base = parts["weight"]
-        parts.update({key: f"{base}.{key}" for key in (*_BNB_LEAVES, *state) if key in inner})
+        inner = modules.get(base, {})
+        parts = {"weight": base}
+        parts.update({key: f"{base}.{key}" for key in _BNB_LEAVES if key in inner})
+        parts.update({f"quant_state.{key}": f"{base}.quant_state.{key}" for key in state})
         return PackedModule(prefix, Layout.BNB4, parts)
     if "SCB" in leaves and weight.dtype == "i8":
         return PackedModule(prefix, Layout.BNB8,

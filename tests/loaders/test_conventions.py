@@ -306,7 +306,8 @@ def _previous_by_scan(name: str, names: set[str]) -> str | None:
 
 
 def test_numbered_sibling_index_agrees_with_a_downward_scan() -> None:
-    from steelyard.loaders.conventions import _Siblings, _split
+    from steelyard.loaders.conventions.module_names import split_name as _split
+    from steelyard.loaders.conventions.numbering import Siblings as _Siblings
 
     rng = np.random.default_rng(7)
     stems = ["", "conv", "fc_", "layer", "dense"]

@@ -67,6 +67,7 @@ class AuditFormat(str, Enum):
     markdown = "markdown"
     sarif = "sarif"
     junit = "junit"
+    html = "html"
 
 
 class Unreadable(str, Enum):
@@ -288,6 +289,8 @@ _BY_ENDING = {
     ".markdown": "markdown",
     ".xml": "junit",
     ".txt": "table",
+    ".html": "html",
+    ".htm": "html",
 }
 
 
@@ -309,7 +312,7 @@ def _targets(chosen: str | None, outputs: list[Path] | None) -> list[tuple[str, 
         if fmt is None:
             raise SteelyardError(
                 f"--output {output}: cannot tell the format from its ending; name it "
-                "with --format or use .json, .sarif, .md, .xml or .txt"
+                "with --format or use .json, .sarif, .md, .xml, .html or .txt"
             )
         targets.append((fmt, output))
     return targets
@@ -466,27 +469,13 @@ class CompareFormat(str, Enum):
     markdown = "markdown"
     sarif = "sarif"
     junit = "junit"
+    html = "html"
 
 
 def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
-    from steelyard.render.compare_formats import (
-        render_compare_junit,
-        render_compare_markdown,
-        render_compare_sarif,
-    )
-    from steelyard.render.compare_table import render_compare_table
+    from steelyard.render.compare_formats import render_comparison
 
-    if chosen is CompareFormat.json:
-        return report.to_json()
-    if chosen is CompareFormat.table:
-        return render_compare_table(report, color=_color(), width=_width())
-    if chosen is CompareFormat.markdown:
-        return render_compare_markdown(report)
-    if chosen is CompareFormat.sarif:
-        return render_compare_sarif(report)
-    if chosen is CompareFormat.junit:
-        return render_compare_junit(report)
-    assert_never(chosen)
+    return render_comparison(report, chosen.value, color=_color(), width=_width())
 
 
 @app.command()

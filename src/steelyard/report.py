@@ -165,7 +165,7 @@ class Report:
 
     def render(self, format: str = "table", *, width: int = 120) -> str:
         """The report as ``steelyard audit --format`` writes it: ``table`` (no colour),
-        ``json``, ``markdown``, ``sarif`` or ``junit``. Raises ``ValueError`` for another
+        ``json``, ``markdown``, ``sarif``, ``junit`` or ``html``. Raises ``ValueError`` for another
         name."""
         from steelyard.render.report_formats import render_report
 

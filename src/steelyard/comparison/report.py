@@ -208,3 +208,11 @@ class CompareReport:
     def to_dict(self) -> dict[str, Any]:
         """The document as plain data."""
         return json.loads(self.to_json())  # type: ignore[no-any-return, unused-ignore]
+
+    def render(self, format: str = "table", *, width: int = 120) -> str:
+        """The report as ``steelyard compare --format`` writes it: ``table`` (no colour),
+        ``json``, ``markdown``, ``sarif``, ``junit`` or ``html``. Raises ``ValueError`` for
+        another name."""
+        from steelyard.render.compare_formats import render_comparison
+
+        return render_comparison(self, format, width=width)

@@ -9,6 +9,8 @@ registry only. Markdown has its own short body: verdict, layer changes, findings
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 from steelyard.comparison.report import CompareReport, LayerDiff, Status
 from steelyard.ranking import rank
 from steelyard.render.compare_table import coverage_line, number, overview
@@ -184,3 +186,28 @@ def render_compare_markdown(report: CompareReport) -> str:
         "",
     ]
     return "\n".join(lines)
+
+
+#: The names ``steelyard compare --format`` and ``CompareReport.render`` accept.
+COMPARE_FORMATS = ("table", "json", "markdown", "sarif", "junit", "html")
+
+
+def render_comparison(
+    report: CompareReport, format: str, *, color: bool = False, width: int = 120
+) -> str:
+    """``report`` in ``format`` (one of :data:`COMPARE_FORMATS`); ``color`` and ``width``
+    only shape the table. Raises ``ValueError`` for another name."""
+    from steelyard.render.compare_table import render_compare_table
+    from steelyard.render.report_formats import html_renderers
+
+    renderers: dict[str, Callable[[], str]] = {
+        "table": lambda: render_compare_table(report, color=color, width=width),
+        "json": report.to_json,
+        "markdown": lambda: render_compare_markdown(report),
+        "sarif": lambda: render_compare_sarif(report),
+        "junit": lambda: render_compare_junit(report),
+        "html": lambda: html_renderers().render_compare_html(report),
+    }
+    if format not in renderers:
+        raise ValueError(f"unknown format {format!r}: one of {', '.join(COMPARE_FORMATS)}")
+    return renderers[format]()

@@ -3,11 +3,25 @@
 from __future__ import annotations
 
 from collections.abc import Callable
+from types import ModuleType
 
+from steelyard.errors import SteelyardError
 from steelyard.report import Report
 
 #: The names ``steelyard audit --format`` and ``Report.render`` accept.
-AUDIT_FORMATS = ("table", "json", "markdown", "sarif", "junit")
+AUDIT_FORMATS = ("table", "json", "markdown", "sarif", "junit", "html")
+
+
+def html_renderers() -> ModuleType:
+    """The HTML renderers, or one clear error when the ``html`` extra is not installed."""
+    try:
+        import steelyard.render.html as html
+    except ImportError as exc:
+        raise SteelyardError(
+            f"HTML reports need the html extra ({exc.name} is not installed): "
+            "pip install 'steelyard[html]'"
+        ) from None
+    return html
 
 
 def render_report(report: Report, format: str, *, color: bool = False, width: int = 120) -> str:
@@ -25,6 +39,7 @@ def render_report(report: Report, format: str, *, color: bool = False, width: in
         "markdown": lambda: render_markdown(report),
         "sarif": lambda: render_sarif(report),
         "junit": lambda: render_junit(report),
+        "html": lambda: html_renderers().render_audit_html(report),
     }
     if format not in renderers:
         raise ValueError(f"unknown format {format!r}: one of {', '.join(AUDIT_FORMATS)}")

@@ -1,6 +1,7 @@
-"""Packed checkpoints written by the quantization library itself (``fixtures/gen_packed.py``:
-compressed-tensors' own ``PackedQuantizationCompressor.compress``), decoded by steelyard and
-compared with the library's own ``decompress`` of the same tensors, stored beside them."""
+"""Quantized checkpoints written by the quantization library itself (``fixtures/gen_packed.py``:
+compressed-tensors 0.20.1's own pack-quantized, int-quantized and float-quantized (FP8)
+compressors), decoded by steelyard and compared with the library's own ``decompress`` of the
+same tensors, stored beside them."""
 
 from __future__ import annotations
 
@@ -15,10 +16,17 @@ from steelyard.api import load
 FIXTURES = Path(__file__).resolve().parents[3] / "fixtures" / "packed"
 CASES = sorted(p.name for p in FIXTURES.iterdir() if p.is_dir()) if FIXTURES.is_dir() else []
 M = "model.layers.0.mlp.up_proj"
+STORED = {
+    "ct-w4-g16-asym": "pack-quantized-int4",
+    "ct-w4-g32-sym": "pack-quantized-int4",
+    "ct-w8-channel-sym": "pack-quantized-int8",
+    "ct-int8-g8-asym": "int-quantized-int8",
+    "ct-fp8-channel": "fp8-e4m3-channel",
+}
 
 
 def test_fixtures_are_present() -> None:
-    assert {"ct-w4-g16-asym", "ct-w4-g32-sym", "ct-w8-channel-sym"} <= set(CASES)
+    assert set(STORED) <= set(CASES)
 
 
 @pytest.mark.parametrize("case", CASES)
@@ -27,8 +35,7 @@ def test_compressed_tensors_writer_and_reader_agree_with_steelyard(case: str) ->
     checkpoint = load(folder / "model.safetensors")
     tensor = checkpoint.tensors[f"{M}.weight"]
     expected = load_file(str(folder / "expected.safetensors"))[f"{M}.weight"]
-    bits = 8 if "w8" in case else 4
-    assert tensor.stored_type == f"pack-quantized-int{bits}"
+    assert tensor.stored_type == STORED[case]
     assert tensor.shape == expected.shape and checkpoint.parameters == expected.size
     got = tensor.read()
     # The library dequantizes in the scales' float16; steelyard keeps float32. Rounded to

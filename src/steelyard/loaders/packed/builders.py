@@ -17,7 +17,7 @@ from steelyard.errors import LoadError
 from steelyard.loaders.packed.assemble import Builder, Decoder
 from steelyard.loaders.packed.awq import AwqWeight
 from steelyard.loaders.packed.bnb import Bnb4Weight, Bnb8Weight
-from steelyard.loaders.packed.compressed import PackQuantizedWeight
+from steelyard.loaders.packed.compressed import IntQuantizedWeight, PackQuantizedWeight
 from steelyard.loaders.packed.config import QuantConfig
 from steelyard.loaders.packed.detect import Layout
 from steelyard.loaders.packed.fp8 import Fp8Weight
@@ -141,6 +141,11 @@ def compressed(path: Path, module: PackedModule, parts: Parts, config: QuantConf
     return PackQuantizedWeight.build(path, module.prefix, parts, config.settings)
 
 
+def int8(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) -> Decoder:
+    """compressed-tensors ``int-quantized`` (int8 weight stored unpacked, with scales)."""
+    return IntQuantizedWeight.build(path, module.prefix, parts, config.settings)
+
+
 BUILDERS: dict[Layout, Builder] = {
     Layout.GPTQ: gptq,
     Layout.AWQ: awq,
@@ -149,4 +154,5 @@ BUILDERS: dict[Layout, Builder] = {
     Layout.BNB4: bnb4,
     Layout.BNB8: bnb8,
     Layout.COMPRESSED: compressed,
+    Layout.INT8: int8,
 }

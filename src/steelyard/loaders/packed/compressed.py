@@ -151,3 +151,58 @@ class PackQuantizedWeight:
         scale = self.scale if self.scale.shape[0] == 1 else self.scale[start:stop]
         zeros = self._zeros(start, stop)
         return (codes - zeros[:, self.g_idx]) * scale[:, self.g_idx]
+
+
+@dataclass(frozen=True)
+class IntQuantizedWeight:
+    """compressed-tensors ``int-quantized``: an int8 ``weight [out, in]`` stored unpacked,
+    ``weight_scale`` per tensor, channel (``[out, 1]``) or group (``[out, groups]``), optional
+    ``weight_zero_point`` of the scale's shape; ``W = (q - z) * scale`` (the library's
+    ``dequantize``, as for pack-quantized)."""
+
+    path: Path
+    name: str
+    weight: Part
+    scale: np.ndarray
+    zero: np.ndarray
+    g_idx: np.ndarray
+
+    @classmethod
+    def build(
+        cls, path: Path, name: str, parts: Mapping[str, Part], settings: Mapping[str, Any]
+    ) -> IntQuantizedWeight:
+        """Check the scale and zero point against the weight."""
+        weight = parts["weight"]
+        if weight.ndim != 2 or weight.dtype != np.int8:
+            raise LoadError(path, f"{name}: int-quantized weight is not a 2-D int8 tensor")
+        n_out, n_in = weight.shape
+        check_elements(path, (n_out, n_in), f"{name} (dequantized)")
+        scale = np.asarray(parts["weight_scale"], dtype=np.float32)
+        scale = scale.reshape(1, 1) if scale.size == 1 else scale
+        if scale.ndim != 2 or scale.shape[0] not in (1, n_out):
+            raise LoadError(path, f"{name}: weight_scale {list(scale.shape)} is not [out, groups]")
+        zero = np.zeros(scale.shape, np.float32)
+        if "weight_zero_point" in parts:
+            stored = np.asarray(parts["weight_zero_point"], dtype=np.float32)
+            if stored.size != scale.size:
+                raise LoadError(path, f"{name}: weight_zero_point does not match weight_scale")
+            zero = stored.reshape(scale.shape)
+        g_idx = PackQuantizedWeight._groups(path, name, parts, settings, n_in, scale.shape[1])
+        return cls(path, name, weight, scale, zero, g_idx)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        """Canonical ``[out, in]`` shape."""
+        return (int(self.weight.shape[0]), int(self.weight.shape[1]))
+
+    @property
+    def stored_type(self) -> str:
+        """What was stored, for reports."""
+        return "int-quantized-int8"
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        """Dequantized float32 rows ``[start, stop)``."""
+        codes = np.asarray(self.weight[start:stop], dtype=np.float32)
+        pick = slice(None) if self.scale.shape[0] == 1 else slice(start, stop)
+        scale, zero = self.scale[pick][:, self.g_idx], self.zero[pick][:, self.g_idx]
+        return (codes - zero) * scale

@@ -16,6 +16,7 @@ class Layout(str, Enum):
     BNB4 = "bnb-4bit"
     BNB8 = "bnb-int8"
     COMPRESSED = "compressed-tensors"
+    INT8 = "int-quantized"
     PLAIN = "plain"
 
 

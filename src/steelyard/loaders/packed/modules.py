@@ -86,6 +86,10 @@ def _match(
     if weight.dtype == "u32" and "scales" in leaves and "biases" in leaves:
         return PackedModule(prefix, Layout.MLX,
                             _present(leaves, prefix, ("weight", "scales", "biases")))
+    if weight.dtype == "i8" and "weight_scale" in leaves:  # compressed-tensors int-quantized
+        keys = ("weight", "weight_scale", "weight_zero_point", "weight_g_idx", "input_scale",
+                "input_zero_point")
+        return PackedModule(prefix, Layout.INT8, _present(leaves, prefix, keys))
     if weight.dtype.startswith("f8") and ("weight_scale" in leaves or
                                           "weight_scale_inv" in leaves):
         keys = ("weight", "weight_scale", "weight_scale_inv", "input_scale")

@@ -122,6 +122,7 @@ def norm_spread_chart(audit: CheckpointAudit) -> Spec | None:
     colour = severity_scale()
     layers: list[Spec] = [
         {
+            "name": "whiskers",
             "data": {"name": "layers"},
             "params": depth_zoom(),
             "mark": {"type": "rule", "strokeWidth": 1.5},
@@ -129,6 +130,7 @@ def norm_spread_chart(audit: CheckpointAudit) -> Spec | None:
                          "color": colour, "tooltip": tooltip},
         },
         {
+            "name": "boxes",
             "data": {"name": "layers"},
             "transform": [{"calculate": "datum.depth - 0.32", "as": "left"},
                           {"calculate": "datum.depth + 0.32", "as": "right"}],
@@ -138,13 +140,18 @@ def norm_spread_chart(audit: CheckpointAudit) -> Spec | None:
                          "color": colour, "tooltip": tooltip},
         },
         {
+            "name": "medians",
             "data": {"name": "layers"},
-            "mark": {"type": "tick", "color": "#ffffff", "thickness": 2},
-            "encoding": {"x": x, "y": {**y, "field": "median"}, "tooltip": tooltip},
+            "transform": [{"calculate": "datum.depth - 0.32", "as": "left"},
+                          {"calculate": "datum.depth + 0.32", "as": "right"}],
+            "mark": {"type": "rule", "color": "#ffffff", "strokeWidth": 2},
+            "encoding": {"x": {**x, "field": "left"}, "x2": {"field": "right"},
+                         "y": {**y, "field": "median"}, "tooltip": tooltip},
         },
     ]
     if outliers:
         layers.append({
+            "name": "far_out",
             "data": {"name": "outliers"},
             "mark": {"type": "point", "shape": "diamond", "filled": True, "size": 60,
                      "color": "#5b2a86"},

@@ -1,7 +1,9 @@
-"""Quantized checkpoints written by the quantization library itself (``fixtures/gen_packed.py``:
-compressed-tensors 0.20.1's own pack-quantized, int-quantized and float-quantized (FP8)
-compressors), decoded by steelyard and compared with the library's own ``decompress`` of the
-same tensors, stored beside them."""
+"""Quantized checkpoints written by the quantization libraries themselves, decoded by steelyard
+and compared with each library's own dequantization of the same tensors, stored beside them:
+``fixtures/gen_packed.py`` (compressed-tensors 0.20.1's pack-quantized, int-quantized and
+float-quantized FP8 compressors and their ``decompress``) and ``fixtures/gen_bnb.py``
+(bitsandbytes 0.50.2's ``quantize_4bit`` NF4/FP4 with and without double quantization, and
+LLM.int8 ``int8_vectorwise_quant``; its ``dequantize_4bit`` / ``int8_vectorwise_dequant``)."""
 
 from __future__ import annotations
 
@@ -15,13 +17,16 @@ from steelyard.api import load
 
 FIXTURES = Path(__file__).resolve().parents[3] / "fixtures" / "packed"
 CASES = sorted(p.name for p in FIXTURES.iterdir() if p.is_dir()) if FIXTURES.is_dir() else []
-M = "model.layers.0.mlp.up_proj"
 STORED = {
     "ct-w4-g16-asym": "pack-quantized-int4",
     "ct-w4-g32-sym": "pack-quantized-int4",
     "ct-w8-channel-sym": "pack-quantized-int8",
     "ct-int8-g8-asym": "int-quantized-int8",
     "ct-fp8-channel": "fp8-e4m3-channel",
+    "bnb-nf4-dq": "bnb-nf4-dq",
+    "bnb-nf4": "bnb-nf4",
+    "bnb-fp4": "bnb-fp4",
+    "bnb-int8": "bnb-int8",
 }
 
 
@@ -33,12 +38,19 @@ def test_fixtures_are_present() -> None:
 def test_compressed_tensors_writer_and_reader_agree_with_steelyard(case: str) -> None:
     folder = FIXTURES / case
     checkpoint = load(folder / "model.safetensors")
-    tensor = checkpoint.tensors[f"{M}.weight"]
-    expected = load_file(str(folder / "expected.safetensors"))[f"{M}.weight"]
+    expected_file = load_file(str(folder / "expected.safetensors"))
+    (name, expected), = expected_file.items()
+    tensor = checkpoint.tensors[name]
     assert tensor.stored_type == STORED[case]
     assert tensor.shape == expected.shape and checkpoint.parameters == expected.size
     got = tensor.read()
-    # The library dequantizes in the scales' float16; steelyard keeps float32. Rounded to
-    # float16, every value must be the library's exactly.
-    np.testing.assert_array_equal(got.astype(np.float16).astype(np.float32), expected)
-    assert [layer.name for layer in checkpoint.layers] == [M]
+    if case.startswith("ct-"):
+        # compressed-tensors dequantizes in the scales' float16; steelyard keeps float32.
+        # Rounded to float16, every value must be the library's exactly.
+        np.testing.assert_array_equal(got.astype(np.float16).astype(np.float32), expected)
+    elif case == "bnb-int8":
+        # The library multiplies by a float32 1/127, steelyard divides by 127: one rounding.
+        np.testing.assert_allclose(got, expected, rtol=2e-7, atol=0)
+    else:
+        np.testing.assert_array_equal(got, expected)  # bitsandbytes 4-bit: float32, exact
+    assert [layer.name for layer in checkpoint.layers] == [name.removesuffix(".weight")]

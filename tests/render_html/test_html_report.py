@@ -16,7 +16,13 @@ import steelyard
 from steelyard.cli import app
 from steelyard.errors import SteelyardError
 from steelyard.report import CAUTION
-from tests.render_html._pages import HOSTILE_NAMES, audit_html, compare_pair, deep_mlp, hostile_model
+from tests.render_html._pages import (
+    HOSTILE_NAMES,
+    audit_html,
+    compare_pair,
+    deep_mlp,
+    hostile_model,
+)
 
 pytest.importorskip("jinja2")
 pytest.importorskip("vl_convert")
@@ -162,3 +168,25 @@ def test_missing_extra_is_one_clear_error(monkeypatch: pytest.MonkeyPatch) -> No
     monkeypatch.setattr(builtins, "__import__", without_vl_convert)
     with pytest.raises(SteelyardError, match=r"steelyard\[html\]"):
         bundle.chart_runtime()
+
+
+def test_spectrum_chart_places_the_top_singular_value_against_the_edge() -> None:
+    """The demo's never-trained layer: the chart's top singular value is numpy's largest
+    singular value of the weights (read with the reference safetensors package), and the
+    Marchenko–Pastur edge σ(√m + √n) (Marchenko & Pastur 1967) is recomputed here from σ."""
+    from safetensors.numpy import load_file
+
+    path = Path("fixtures/demo/pumpwear-nightly-bad.safetensors")
+    page = audit_html(path)
+    rows = _specs(page)["cp0-chart-spectrum"]["data"]["values"]  # type: ignore[index]
+    report = steelyard.audit(path)
+    flagged = [f for f in report.findings if f.rule == "untrained-layer"]
+    assert [r["layer"] for r in rows] == [f.layer for f in flagged] and rows
+    weights = load_file(path)
+    for row, finding in zip(rows, flagged, strict=True):
+        matrix = weights[f"{row['layer']}.weight"].astype(np.float64)
+        top = np.linalg.svd(matrix, compute_uv=False)[0]
+        assert row["top"] == pytest.approx(top, rel=0.05)  # Lanczos may stop within 5 % of a fluctuation
+        m, n = matrix.shape
+        assert row["edge"] == pytest.approx(finding.evidence["sigma"] * (np.sqrt(m) + np.sqrt(n)), rel=1e-9)
+        assert row["allowed"] > row["edge"] >= row["top"] * 0.5

@@ -6,7 +6,12 @@ from dataclasses import replace
 from typing import Any
 
 from steelyard.coverage import describe
-from steelyard.render.html.charts import findings_chart, norm_spread_chart, parts_chart
+from steelyard.render.html.charts import (
+    findings_chart,
+    norm_spread_chart,
+    parts_chart,
+    spectrum_chart,
+)
 from steelyard.render.html.order import along_model
 from steelyard.render.html.page import gate_text, render_page, verdict
 from steelyard.report import CheckpointAudit, Report
@@ -43,7 +48,11 @@ def _checkpoint(
     order = along_model([h.layer for h in audit.layers])
     audit = replace(audit, layers=tuple(audit.layers[i] for i in order))
     charts: dict[str, str | None] = {}
-    for key, build in (("spread", norm_spread_chart), ("findings", findings_chart), ("parts", parts_chart)):
+    builders = (
+        ("spread", norm_spread_chart), ("findings", findings_chart), ("parts", parts_chart),
+        ("spectrum", spectrum_chart),
+    )
+    for key, build in builders:
         spec = build(audit)
         charts[key] = None
         if spec is not None:

@@ -243,6 +243,45 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
     return chart
 
 
+def spectrum_chart(audit: CheckpointAudit) -> Spec | None:
+    """For each layer the untrained-layer rule measured and flagged: its top singular value
+    against the Marchenko–Pastur edge of a random matrix of its shape and scale, and the
+    Tracy–Widom allowance above it (values from the finding's evidence)."""
+    rows = []
+    for finding in audit.findings:
+        e = finding.evidence
+        numbers = [_number(e.get(k)) for k in ("top_singular", "mp_edge", "fluctuation", "edge_fluctuations")]
+        top, edge, wobble, allowed = numbers
+        if finding.layer is None or top is None or edge is None or wobble is None or allowed is None:
+            continue
+        rows.append({"layer": finding.layer, "top": top, "edge": edge, "allowed": edge + allowed * wobble,
+                     "initializer": e.get("initializer")})
+    if not rows:
+        return None
+    y = {"field": "layer", "type": "nominal", "title": None, "sort": None}
+    tooltip = [{"field": "layer"}, {"field": "initializer"},
+               {"field": "top", "format": ".4g", "title": "top singular value"},
+               {"field": "edge", "format": ".4g", "title": "Marchenko–Pastur edge"},
+               {"field": "allowed", "format": ".4g", "title": "edge + allowed fluctuations"}]
+    x = {"type": "quantitative", "title": "singular value", "scale": {"zero": True}}
+    layers: list[Spec] = [
+        {"mark": {"type": "rule", "color": "#9aa7b1", "strokeWidth": 6},
+         "encoding": {"y": y, "x": {**x, "field": "edge"}, "x2": {"field": "allowed"}, "tooltip": tooltip}},
+        {"mark": {"type": "tick", "color": "#28323c", "thickness": 2},
+         "encoding": {"y": y, "x": {**x, "field": "edge"}, "tooltip": tooltip}},
+        {"mark": {"type": "point", "filled": True, "size": 90, "color": SEVERITY_COLOURS["warning"]},
+         "encoding": {"y": y, "x": {**x, "field": "top"}, "tooltip": tooltip}},
+    ]
+    return base({"data": {"values": rows}, "layer": layers}, height=max(40, 26 * len(rows)))
+
+
+def _number(value: object) -> float | None:
+    """A finite number from a finding's evidence, else None."""
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
+        return float(value)
+    return None
+
+
 def _in_order(names: Iterable[str]) -> list[str]:
     """Distinct names in first-seen order (the checkpoint's order of blocks)."""
     return list(dict.fromkeys(names))

@@ -31,6 +31,7 @@ from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers
 from steelyard.report import Report
+from steelyard.run_timeline.ordering import Order
 from steelyard.text_safety import shown
 from steelyard.version import __version__
 
@@ -571,77 +572,27 @@ def policy(
         _write(policy_text(load_policy(policy_file)), None)
 
 
-class TimelineFormat(str, Enum):
-    """Output formats of ``steelyard timeline``."""
-
-    table = "table"
-    json = "json"
-
-
-class TimelineOrder(str, Enum):
-    """How ``steelyard timeline`` orders the checkpoints."""
-
-    step = "step"
-    name = "name"
-    given = "given"
-
-
 @app.command()
 def timeline(
-    paths: list[Path] = typer.Argument(
-        ..., help="The run's checkpoints: files, shard indexes, checkpoint folders, or the run folder."
-    ),
-    order: TimelineOrder = typer.Option(
-        TimelineOrder.step,
-        "--order",
-        help="step: by training step (trainer_state.json, file metadata, or names such as "
-        "checkpoint-1200); name: by path, numbers compared as numbers; given: as named.",
-    ),
-    format: TimelineFormat = typer.Option(
-        TimelineFormat.table, "--format", "-f", help="Output format."
-    ),
-    output: Path | None = typer.Option(
-        None, "--output", "-o", help="Write the timeline here, atomically."
-    ),
+    paths: list[Path] = typer.Argument(..., help="The run's checkpoints, or the run folder."),
+    order: Order = typer.Option(Order.step, "--order", help="By training step, name or as given."),
+    format: LayersFormat = typer.Option(LayersFormat.table, "--format", "-f", help="Output format."),
+    output: Path | None = typer.Option(None, "--output", "-o", help="Write it here, atomically."),
     fail_on: _FailOnOption = None,
     policy_file: _PolicyOption = None,
     quiet: _QuietOption = False,
-    jobs: int | None = typer.Option(
-        None, "--jobs", "-j", min=1, metavar="N", help="Worker threads per checkpoint."
-    ),
     budget: _BudgetOption = None,
 ) -> None:
-    """Follow one training run's checkpoints layer by layer; exit 1 when a finding of the last
-    checkpoint reaches the gate."""
-    from steelyard.progress import Progress
-
+    """Follow a training run's checkpoints layer by layer (docs/timeline.md); exit 1 when a
+    finding of the last checkpoint reaches the gate."""
     with _guarded():
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
-        _reading(paths[0] if len(paths) == 1 else "the checkpoints named")
-        shown_bar = not quiet and sys.stderr.isatty()
-        total = len(api.expand_paths(paths)) if shown_bar else 0
-        with Progress(enabled=shown_bar, total=total) as progress:
-
-            def advance(path: str) -> None:
-                _reading(path)
-                progress.advance(_bar_text(path))
-
-            result = api.timeline(
-                paths, order.value, policy=policy, on_checkpoint=advance, jobs=jobs, budget=limits
-            )
+        result = api.timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
         _STATE["reading"] = None
-        if format is TimelineFormat.json:
-            text = result.to_json()
-        elif format is TimelineFormat.table:
-            from steelyard.render.timeline_table import render_timeline_table
-
-            text = render_timeline_table(result, color=_color() and output is None, width=_width())
-        else:
-            assert_never(format)
-        _write_report(text, output, quiet)
+        color = _color() and output is None
+        _write_report(result.render(format.value, width=_width(), color=color), output, quiet)
     raise typer.Exit(result.exit_code)
-
 
 def main() -> None:
     """Console-script entry point."""

@@ -165,15 +165,15 @@ class Timeline:
         """The document as plain data."""
         return json.loads(self.to_json())
 
-    def render(self, format: str = "table", *, width: int = 120) -> str:
-        """``table`` (no colour) or ``json``, as ``steelyard timeline --format`` writes them;
-        ``ValueError`` for another name."""
+    def render(self, format: str = "table", *, width: int = 120, color: bool = False) -> str:
+        """``table`` (ANSI styles only with ``color``) or ``json``, as ``steelyard timeline
+        --format`` writes them; ``ValueError`` for another name."""
         if format == "json":
             return self.to_json()
         if format == "table":
             from steelyard.render.timeline_table import render_timeline_table
 
-            return render_timeline_table(self, width=width)
+            return render_timeline_table(self, width=width, color=color)
         raise ValueError(f"unknown timeline format {format!r}; use table or json")
 
     def __repr__(self) -> str:

@@ -101,9 +101,10 @@ def main() -> int:
         f"model: {shape.parameters:,} parameters bf16 ({mib(2 * shape.parameters)} per "
         f"checkpoint), {args.count} checkpoints"
     )
-    print(f"{'step':<16} {'VmHWM':>10} {'peak RssAnon':>14}")
+    print(f"{'step':<16} {'start RSS':>10} {'VmHWM':>10} {'peak RssAnon':>14}")
     for name, row in rows.items():
-        print(f"{name:<16} {mib(row['vm_hwm']):>10} {mib(row['peak_anon']):>14}")
+        start, hwm, anon = mib(row["start_rss"]), mib(row["vm_hwm"]), mib(row["peak_anon"])
+        print(f"{name:<16} {start:>10} {hwm:>10} {anon:>14}")
     ratio = rows[f"timeline-{args.count}"]["vm_hwm"] / rows[f"timeline-{few}"]["vm_hwm"]
     anon = rows[f"timeline-{args.count}"]["peak_anon"] / rows[f"timeline-{few}"]["peak_anon"]
     print(f"peak RSS ratio {args.count} / {few} checkpoints: {ratio:.3f} (target <= {TARGET})")

@@ -129,3 +129,13 @@ def test_layer_sets_that_share_nothing(tmp_path: Path) -> None:
 def test_unknown_order_is_a_usage_error(tmp_path: Path) -> None:
     result = runner.invoke(app, ["timeline", str(RUN), "--order", "mtime"])
     assert result.exit_code == 2
+
+
+def test_api_function_survives_importing_the_engine() -> None:
+    # steelyard.timeline is the API function; the engine package has another name so that
+    # importing it cannot replace the function on the package (as steelyard.comparison).
+    import steelyard
+    import steelyard.run_timeline.engine
+
+    assert callable(steelyard.timeline)
+    assert steelyard.timeline.__module__ == "steelyard.api"

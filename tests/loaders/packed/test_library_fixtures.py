@@ -3,7 +3,9 @@ and compared with each library's own dequantization of the same tensors, stored 
 ``fixtures/gen_packed.py`` (compressed-tensors 0.20.1's pack-quantized, int-quantized and
 float-quantized FP8 compressors and their ``decompress``) and ``fixtures/gen_bnb.py``
 (bitsandbytes 0.50.2's ``quantize_4bit`` NF4/FP4 with and without double quantization, and
-LLM.int8 ``int8_vectorwise_quant``; its ``dequantize_4bit`` / ``int8_vectorwise_dequant``)."""
+LLM.int8 ``int8_vectorwise_quant``; its ``dequantize_4bit`` / ``int8_vectorwise_dequant``) and
+``fixtures/gen_awq.py`` (AutoAWQ 0.2.9's ``WQLinear_GEMM.from_linear`` packing and its
+``dequantize_gemm``)."""
 
 from __future__ import annotations
 
@@ -27,6 +29,8 @@ STORED = {
     "bnb-nf4": "bnb-nf4",
     "bnb-fp4": "bnb-fp4",
     "bnb-int8": "bnb-int8",
+    "awq-g16": "awq-int4",
+    "awq-g32": "awq-int4",
 }
 
 
@@ -44,8 +48,8 @@ def test_compressed_tensors_writer_and_reader_agree_with_steelyard(case: str) ->
     assert tensor.stored_type == STORED[case]
     assert tensor.shape == expected.shape and checkpoint.parameters == expected.size
     got = tensor.read()
-    if case.startswith("ct-"):
-        # compressed-tensors dequantizes in the scales' float16; steelyard keeps float32.
+    if case.startswith(("ct-", "awq-")):
+        # Both libraries dequantize in the scales' float16; steelyard keeps float32.
         # Rounded to float16, every value must be the library's exactly.
         np.testing.assert_array_equal(got.astype(np.float16).astype(np.float32), expected)
     elif case == "bnb-int8":

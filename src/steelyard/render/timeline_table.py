@@ -7,6 +7,7 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from rich.console import RenderableType
+from rich.table import Table
 from rich.text import Text
 
 from steelyard.findings import Severity, compact_units
@@ -68,6 +69,7 @@ def _checkpoints(timeline: Timeline) -> RenderableType:
         ("#", "step", "from", "findings", "path"),
         {"#", "step", "findings"},
     )
+    _fitted(table)
     for entry in timeline.checkpoints:
         table.add_row(
             str(entry.index),
@@ -79,38 +81,65 @@ def _checkpoints(timeline: Timeline) -> RenderableType:
     return table
 
 
-def _layers(timeline: Timeline) -> RenderableType:
-    columns = (
+#: Columns whose text may fold onto more lines (names, paths, lists); the others keep their
+#: numbers whole.
+_FOLDING = {"layer", "findings", "path", "where", "units when it appeared"}
+#: Layer columns left out below :data:`WIDE` columns, so the rest keep their numbers whole.
+_WIDE_ONLY = {"shape", "norm max", "Δ prev", "cos first"}
+WIDE = 120
+
+
+def _fitted(table: Table) -> Table:
+    for column in table.columns:
+        if str(column.header) in _FOLDING:
+            column.overflow = "fold"
+        else:
+            column.no_wrap = True
+    return table
+
+
+def _layer_cells(timeline: Timeline, series: LayerSeries) -> dict[str, str]:
+    points = _present(series)
+    last = points[-1][1]
+    return {
+        "layer": shown(series.name),
+        "shape": f"{series.units}×{series.fan_in}",
+        "norm median": _span(points, lambda p: p.fan_in_norm_median),
+        "norm max": _span(points, lambda p: p.fan_in_norm_max),
+        "dead": _count(timeline, points, lambda p: p.dead),
+        "NaN/Inf": _count(timeline, points, lambda p: p.nonfinite),
+        "Δ prev": _drift(last.from_previous),
+        "Δ first": _drift(last.from_first),
+        "cos first": _drift(last.from_first, cosine=True),
+        "findings": shown(_layer_findings(timeline, series)),
+    }
+
+
+def _layers(timeline: Timeline, width: int) -> RenderableType:
+    names = [
         "layer",
         "shape",
-        "fan-in median",
-        "fan-in max",
+        "norm median",
+        "norm max",
         "dead",
-        "non-finite",
+        "NaN/Inf",
         "Δ prev",
         "Δ first",
         "cos first",
-        "findings (first seen)",
+        "findings",
+    ]
+    if width < WIDE:
+        names = [n for n in names if n not in _WIDE_ONLY]
+    numeric = {"norm median", "norm max", "Δ prev", "Δ first", "cos first"}
+    title = (
+        "Layers: fan-in norm median/max, dead units and NaN/Inf first→last (@ the step a "
+        "count first changed); drift (Δ: relative change) in the last checkpoint; findings "
+        "@ the step they appeared"
     )
-    numeric = {"fan-in median", "fan-in max", "Δ prev", "Δ first", "cos first"}
-    table = titled_table(
-        "Layers across the run (first → last; @ = step it first changed)", columns, numeric
-    )
+    table = _fitted(titled_table(title, names, numeric))
     for series in timeline.layers[:MAX_ROWS]:
-        points = _present(series)
-        last = points[-1][1]
-        table.add_row(
-            shown(series.name),
-            f"{series.units}×{series.fan_in}",
-            _span(points, lambda p: p.fan_in_norm_median),
-            _span(points, lambda p: p.fan_in_norm_max),
-            _count(timeline, points, lambda p: p.dead),
-            _count(timeline, points, lambda p: p.nonfinite),
-            _drift(last.from_previous),
-            _drift(last.from_first),
-            _drift(last.from_first, cosine=True),
-            shown(_layer_findings(timeline, series)),
-        )
+        cells = _layer_cells(timeline, series)
+        table.add_row(*(cells[n] for n in names))
     return table
 
 
@@ -120,6 +149,7 @@ def _findings(timeline: Timeline) -> RenderableType:
         ("rule", "where", "appeared", "went away", "at the end", "units when it appeared"),
         set(),
     )
+    _fitted(table)
     for span in timeline.findings[:MAX_ROWS]:
         table.add_row(
             span.rule,
@@ -168,7 +198,7 @@ def render_timeline_table(timeline: Timeline, *, color: bool = False, width: int
         Text(""),
         _checkpoints(timeline),
         Text(""),
-        _layers(timeline),
+        _layers(timeline, width),
     ]
     if len(timeline.layers) > MAX_ROWS:
         parts.append(Text(f"… {len(timeline.layers) - MAX_ROWS} more layers in --format json"))

@@ -25,14 +25,11 @@ OVERSIZED_MODULES = {
     "steelyard.loaders.keras.h5_layout",
     "steelyard.loaders.keras.hdf5_access",
     "steelyard.loaders.keras.layers",
-    "steelyard.loaders.onnx.loader",
 }
 OVERSIZED_CLASSES = {
     "steelyard.loaders.keras.model_config._ConfigWalker",
     "steelyard.loaders.keras.hdf5_access.H5Store",
     "steelyard.loaders.keras.layers._LayerFactory",
-    "steelyard.loaders.onnx.loader._Builder",
-    "steelyard.loaders.onnx.node_graph.Tracer",
 }
 MAX_MODULE_LINES = 600
 MAX_CLASS_LINES = 250

@@ -1,0 +1,59 @@
+"""A layer draft: what a node's weights say about a layer before the graph walks add its
+bias, norm, activation and links (:mod:`~steelyard.loaders.onnx.loader` finishes it)."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from steelyard.graph import Activation, LayerKind
+from steelyard.loaders.onnx.lookthrough import View
+from steelyard.loaders.onnx.quantized import QuantWeight
+from steelyard.loaders.onnx.stored import Node
+
+Array = Callable[[], np.ndarray]
+
+
+@dataclass
+class Draft:
+    """A layer before its bias, norm, activation and links are known."""
+
+    node: Node
+    name: str
+    kind: LayerKind
+    weight: View | QuantWeight
+    units: int
+    in_per_group: int
+    kernel: tuple[int, ...]
+    groups: int
+    view: Array
+    data: str
+    """Value key of the input whose units the weights read."""
+    out: str
+    """Value key whose unit axis holds this layer's units (follow starts here)."""
+    trailing: int = 0
+    bias: str | None = None
+    bias_view: Array | None = None
+    want_bias: bool = True
+    activation: Activation | None = None
+    gate: str | None = None
+    own_inputs: tuple[str, ...] | None = None
+    opaque_next: bool = False
+
+
+def f32(
+    read: Array,
+    transform: Callable[[np.ndarray], np.ndarray] | None = None,
+    shape: tuple[int, ...] | None = None,
+) -> Array:
+    def view() -> np.ndarray:
+        array = np.asarray(read()).astype(np.float32)
+        if transform is not None:
+            array = transform(array)
+        if shape is not None:
+            array = array.reshape(shape)
+        return np.ascontiguousarray(array, dtype=np.float32)
+
+    return view

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 from rich.text import Text
 
-from steelyard.findings import Finding, Severity, units_cell
+from steelyard.findings import Finding, Severity, compact_units, units_cell
 from steelyard.render.fitting import wrap_words
 from steelyard.render.grid import Cell, Column, Grid
 from steelyard.render.text import plural
@@ -26,6 +26,8 @@ COMPACT_BELOW = 110
 MAX_ROWS = 40
 #: Layers named in a folded row.
 _FOLDED_NAMED = 12
+#: Distinct hints of one rule shown under the compact table.
+_HINTS_SHOWN = 4
 STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
 
 
@@ -87,7 +89,7 @@ def headline(rows: list[FindingRow], total: int, shown: list[FindingRow]) -> Tex
     if len(rows) != total:
         text.append(f" in {plural(len(rows), 'row')}; a row for several layers says how many")
     if len(shown) < len(rows):
-        text.append(f"; the first {len(shown):,} rows shown")
+        text.append(f" (the first {len(shown):,} rows shown)")
     return text
 
 
@@ -100,8 +102,8 @@ def findings_table(
         Column("#", align="right"),
         Column("severity"),
         Column("rule", wrap="name"),
-        Column("layer", wrap="name", floor=16, one_line=compact),
-        Column("units", wrap="name", floor=8),
+        Column("layer", wrap="name", floor=40, one_line=True),
+        Column("units", wrap="name", floor=12),
     ]
     if not compact:
         columns.append(Column("finding", wrap="words", floor=40))
@@ -131,29 +133,33 @@ def findings_table(
 
 def explanations(rows: list[FindingRow], specs: Mapping[str, RuleSpec], width: int) -> list[Text]:
     """Under the compact table: each rule's why once, and its hints (one per distinct hint,
-    naming the rows it answers)."""
-    order: list[str] = []
+    naming the rows it answers; the first few when a rule has many)."""
     hints: dict[str, dict[str, list[int]]] = {}
     for index, row in enumerate(rows, 1):
-        rule = row.finding.rule
-        if rule not in hints:
-            order.append(rule)
-            hints[rule] = {}
-        hints[rule].setdefault(row.finding.hint, []).append(index)
+        hints.setdefault(row.finding.rule, {}).setdefault(row.finding.hint, []).append(index)
     lines = [Text("why it matters and what to do", style="bold")]
-    for rule in order:
-        numbers = [n for rows_ in hints[rule].values() for n in rows_]
-        lines.append(Text.assemble((rule, "bold"), f" ({_rows(numbers)})"))
+    for rule, by_hint in hints.items():
+        numbers = sorted(n for rows_ in by_hint.values() for n in rows_)
+        lines += indented(f"{rule} ({_rows(numbers)})", width, "bold", indent=0)
         if rule in specs:
             lines += indented(f"why: {specs[rule].summary}", width, "dim")
-        for hint, numbers_ in hints[rule].items():
-            label = "hint" if len(hints[rule]) == 1 else f"hint for {_rows(numbers_)}"
+        for hint, numbers_ in list(by_hint.items())[:_HINTS_SHOWN]:
+            label = "hint" if len(by_hint) == 1 else f"hint for {_rows(numbers_)}"
             lines += indented(f"{label}: {hint}", width, "italic")
+        if len(by_hint) > _HINTS_SHOWN:
+            rest = len(by_hint) - _HINTS_SHOWN
+            lines += indented(
+                f"… and {plural(rest, 'other hint')} (--format json has every finding's)",
+                width,
+                "dim",
+            )
     return lines
 
 
 def _rows(numbers: list[int]) -> str:
-    return ("row " if len(numbers) == 1 else "rows ") + ", ".join(str(n) for n in numbers)
+    """``rows 3-4, 8-40``: row numbers as ranges."""
+    spans = compact_units(tuple(numbers), limit=len(numbers)).split(",")
+    return ("row " if len(numbers) == 1 else "rows ") + ", ".join(spans)
 
 
 def indented(text: str, width: int, style: str = "", indent: int = 2) -> list[Text]:

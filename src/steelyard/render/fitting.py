@@ -11,14 +11,17 @@ Widths are terminal cells (``rich.cells.cell_len``), so wide characters count do
 from __future__ import annotations
 
 import re
+from bisect import bisect_left, bisect_right
 from collections.abc import Iterable, Sequence
 
 from rich.cells import cell_len
 
-#: Where a name may wrap: after these characters.
-NAME_BREAKS = "./_-,:"
+#: Where a name may wrap: after these characters, the first group preferred (``q_proj`` stays
+#: whole while a ``.`` or ``/`` can take the break).
+PREFERRED_BREAKS = "./,"
+NAME_BREAKS = "./,_-:"
 #: Where a name may be shortened from the left: before a component that follows these.
-_COMPONENT = re.compile(r"[^./]+[./]?|[./]")
+_COMPONENT = re.compile(r"[^./_]+[./_]?|[./_]")
 ELLIPSIS = "…"
 
 
@@ -48,8 +51,9 @@ def _hard_cut(piece: str, width: int) -> list[str]:
     return [*lines, current] if current else lines
 
 
-def _pack(pieces: Iterable[str], width: int, joiner: str) -> list[str]:
-    """Greedy packing of pieces into lines of at most ``width`` cells."""
+def _pack(pieces: Iterable[str], width: int, joiner: str, finer: str = "") -> list[str]:
+    """Greedy packing of pieces into lines of at most ``width`` cells; a piece wider than a
+    line is split after the ``finer`` separators, and only then cut."""
     lines: list[str] = []
     current = ""
     for piece in pieces:
@@ -61,19 +65,23 @@ def _pack(pieces: Iterable[str], width: int, joiner: str) -> list[str]:
             lines.append(current)
         if cell_len(piece) <= width:
             current = piece
-        else:
-            *whole, current = _hard_cut(piece, width)
-            lines += whole
+            continue
+        parts = name_pieces(piece, finer) if finer else []
+        *whole, current = (
+            _pack(parts, width, "") if len(parts) > 1 else _hard_cut(piece, width)
+        )
+        lines += whole
     if current or not lines:
         lines.append(current)
     return lines
 
 
-def wrap_name(name: str, width: int, breaks: str = NAME_BREAKS) -> list[str]:
-    """A name in lines of at most ``width`` cells, broken only after its separators."""
+def wrap_name(name: str, width: int) -> list[str]:
+    """A name in lines of at most ``width`` cells, broken only after its separators (``.``,
+    ``/`` and ``,`` first, then ``_``, ``-`` and ``:``)."""
     if cell_len(name) <= width:
         return [name]
-    return _pack(name_pieces(name, breaks), max(1, width), "")
+    return _pack(name_pieces(name, PREFERRED_BREAKS), max(1, width), "", NAME_BREAKS)
 
 
 def wrap_words(text: str, width: int) -> list[str]:
@@ -93,9 +101,12 @@ def longest_word(text: str) -> int:
     return max((cell_len(w) for w in text.split()), default=0)
 
 
-def longest_piece(name: str, breaks: str = NAME_BREAKS) -> int:
-    """Cells of the widest unbreakable piece of a name."""
-    return max((cell_len(p) for p in name_pieces(name, breaks)), default=0)
+def longest_piece(name: str, breaks: str = PREFERRED_BREAKS) -> int:
+    """Cells of the widest piece of a name (or of a list of names with spaces) between its
+    spaces and (preferred) separators."""
+    return max(
+        (cell_len(p) for word in name.split() for p in name_pieces(word, breaks)), default=0
+    )
 
 
 def _components(name: str) -> list[str]:
@@ -103,29 +114,30 @@ def _components(name: str) -> list[str]:
 
 
 def distinct_tails(names: Iterable[str]) -> dict[str, str]:
-    """For each name, the shortest run of trailing components (split after ``.`` and ``/``)
-    that is not also a trailing run of another name, so tails of different names differ.
+    """For each name, the shortest run of trailing components (split after ``.``, ``/``, ``_``)
+    with which no other name ends, so that no shown tail can be misread as part of another.
 
-    ``model.layers.17.self_attn.q_proj`` among its siblings keeps ``17.self_attn.q_proj``; a
-    name that is itself the tail of another (``fc1`` beside ``encoder.fc1``) keeps everything.
+    ``model.layers.7.self_attn.q_proj`` beside ``model.layers.17.self_attn.q_proj`` keeps
+    ``layers.7.self_attn.q_proj`` (``7.self_attn.q_proj`` also ends the other name), while the
+    latter keeps ``17.self_attn.q_proj``; a name that ends another (``fc1`` beside
+    ``encoder.fc1``) keeps everything.
     """
     unique = sorted(set(names))
-    parts = {name: _components(name) for name in unique}
-    counts: dict[str, int] = {}
-    for name in unique:
-        seen = set()
-        for start in range(len(parts[name])):
-            tail = "".join(parts[name][start:])
-            if tail not in seen:
-                seen.add(tail)
-                counts[tail] = counts.get(tail, 0) + 1
+    # A tail ends another name iff, reversed, it starts that name reversed: a sorted list of
+    # reversed names answers it with two bisections, not a scan of every name.
+    backwards = sorted(name[::-1] for name in unique)
+
+    def ending(tail: str) -> int:
+        reverse = tail[::-1]
+        return bisect_right(backwards, reverse + "\U0010ffff") - bisect_left(backwards, reverse)
+
     tails: dict[str, str] = {}
     for name in unique:
-        comps = parts[name]
+        comps = _components(name)
         tails[name] = name
-        for start in range(len(comps) - 1, -1, -1):
+        for start in range(len(comps) - 1, 0, -1):
             tail = "".join(comps[start:])
-            if counts.get(tail, 0) == 1 and tail != ".":
+            if ending(tail) == 1:
                 tails[name] = tail
                 break
     return tails
@@ -155,8 +167,8 @@ def fit_name(name: str, width: int, tails: dict[str, str], *, one_line: bool = F
         return [name]
     if one_line:
         short = shortened(name, width, tails.get(name, name))
-        return wrap_name(short, width)
-    return wrap_name(name, width)
+        return wrap_words(short, width)
+    return wrap_words(name, width)
 
 
 def widest(lines: Sequence[str]) -> int:

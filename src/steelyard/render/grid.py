@@ -17,6 +17,7 @@ from rich.cells import cell_len
 from rich.text import Text
 
 from steelyard.render.fitting import (
+    ELLIPSIS,
     fit_name,
     longest_piece,
     longest_word,
@@ -85,10 +86,18 @@ class Grid:
         natural = max([cell_len(column.header), *(widest(t.split("\n")) for t in texts)])
         if column.wrap == "words":
             least = max([longest_word(column.header), *(longest_word(t) for t in texts)])
+            if column.floor:
+                # A word wider than the floor (a long quoted tensor name) wraps after its
+                # separators rather than starve every other column.
+                least = min(least, max(column.floor, longest_word(column.header)))
         elif column.wrap == "name":
             pieces = [longest_piece(t) for t in texts]
             if column.one_line:
-                pieces = [longest_piece(self.tails.get(t, t)) + 1 for t in texts]
+                # Room for each name's distinct tail on one line, so shortening never wraps.
+                pieces = [
+                    min(cell_len(t), cell_len(self.tails.get(t, t)) + len(ELLIPSIS))
+                    for t in texts
+                ]
             least = max([longest_word(column.header), *pieces])
         else:
             values = [widest(t.split("\n")) for t in texts]
@@ -97,16 +106,18 @@ class Grid:
 
     def widths(self, width: int) -> list[int]:
         """Column widths that fit ``width``: natural widths, then the widest flexible column
-        gives up a cell at a time, first down to its floor, then down to its minimum."""
+        gives up a cell at a time, first down to its floor, then down to its minimum (no word
+        or name piece broken), and only on a terminal too narrow even for that, further (a
+        shortened name then wraps, a piece longer than its column is cut)."""
         needs = [self._needs(i) for i in range(len(self.columns))]
         widths = [natural for natural, _ in needs]
         budget = width - len(GAP) * (len(self.columns) - 1)
-        for stage in ("floor", "minimum"):
+        for stage in ("floor", "minimum", "squeeze"):
+            limits = [
+                self._limit(stage, column, natural, least)
+                for column, (natural, least) in zip(self.columns, needs, strict=True)
+            ]
             while sum(widths) > budget:
-                limits = [
-                    max(least, min(natural, column.floor)) if stage == "floor" else least
-                    for column, (natural, least) in zip(self.columns, needs, strict=True)
-                ]
                 room = [w - lim for w, lim in zip(widths, limits, strict=True)]
                 if max(room) <= 0:
                     break
@@ -115,6 +126,14 @@ class Grid:
                 )
                 widths[widest_index] -= 1
         return widths
+
+    @staticmethod
+    def _limit(stage: str, column: Column, natural: int, least: int) -> int:
+        if stage == "floor":
+            return max(least, min(natural, column.floor))
+        if stage == "minimum" or column.wrap == "none":
+            return least
+        return min(least, 4)
 
     def _lines(self, column: Column, cell: Cell, width: int) -> list[tuple[str, str]]:
         out: list[tuple[str, str]] = []

@@ -27,7 +27,7 @@ from steelyard.render.findings_view import (
 from steelyard.render.fitting import distinct_tails, wrap_words
 from steelyard.render.grid import Cell, Column, Grid
 from steelyard.render.text import count, human_bytes, number, percent, plural, to_text
-from steelyard.report import CAUTION, CheckpointAudit, Report
+from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
 from steelyard.rules import registry
 from steelyard.text_safety import shown_deep
 
@@ -113,43 +113,80 @@ def _header(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     return [line for label, value in pairs for line in _labelled(label, value, width)]
 
 
+def _flagged(row: LayerHealth) -> str:
+    """The compact table's one column for what the rules flagged in the layer."""
+    flags = [
+        *([f"{count(row.dead)} dead"] if row.dead else []),
+        *([plural(row.twins, "twin")] if row.twins else []),
+        *(
+            [f"{percent(row.unsupported_share)} unsupported"]
+            if row.unsupported_share
+            else []
+        ),
+    ]
+    return ", ".join(flags) or "—"
+
+
 def _health(audit: CheckpointAudit, width: int, tails: dict[str, str]) -> list[Text]:
+    """The layer-health table; the compact one drops the kind (``steelyard layers`` has it)
+    and folds the rule-filled columns into one."""
     compact = width < COMPACT_BELOW
-    columns = [
-        Column("layer", wrap="name", floor=16, one_line=compact),
-        *(() if compact else (Column("kind"),)),
+    measured = [
         Column("units", align="right"),
         Column("min" if compact else "fan-in norm min", align="right", wrap="words"),
         Column("median", align="right"),
         Column("max", align="right"),
         Column("histogram"),
-        Column("dead", align="right"),
-        Column("twins", align="right"),
-        Column("unsup." if compact else "unsupported", align="right"),
     ]
+    if compact:
+        columns = [
+            Column("layer", wrap="name", floor=40, one_line=True),
+            *measured,
+            Column("flagged", wrap="words", floor=12),
+        ]
+    else:
+        columns = [
+            Column("layer", wrap="name", floor=40, one_line=True),
+            Column("kind"),
+            *measured,
+            Column("dead", align="right"),
+            Column("twins", align="right"),
+            Column("unsupported", align="right"),
+        ]
     grid = Grid(tuple(columns), tails=tails)
     for row in audit.layers:
         low, mid, high = row.fan_in_norm
-        share = "—" if row.unsupported_share is None else percent(row.unsupported_share)
-        grid.add(
-            Cell.of(str(row.layer["name"])),
-            *(() if compact else (str(row.layer["kind"]),)),
+        values = [
             count(int(row.layer["units"])),
             number(low),
             number(mid),
             number(high),
             spark(row.norm_histogram),
+        ]
+        if compact:
+            grid.add(str(row.layer["name"]), *values, _flagged(row))
+            continue
+        share = "—" if row.unsupported_share is None else percent(row.unsupported_share)
+        grid.add(
+            str(row.layer["name"]),
+            str(row.layer["kind"]),
+            *values,
             count(row.dead) if row.dead else "—",
             count(row.twins) if row.twins else "—",
             share,
         )
+    flags = (
+        "flagged: units the dead-unit and twin-units rules flagged, and the share of weights "
+        "the unsupported-weight rule flagged"
+        if compact
+        else "dead and twins: units the dead-unit and twin-units rules flagged; unsupported: "
+        "share of the layer's weights the unsupported-weight rule flagged (— without gradient "
+        "support)"
+    )
     legend = (
         "min, median, max: L2 norm of each unit's incoming weights (fan-in norm) across the "
         "layer's units; histogram: how many units fall in each of a few fan-in norm bins, "
-        "log-spaced from min (left) to max (right), the tallest bar the fullest bin; dead and "
-        "twins: units the dead-unit and twin-units rules flagged; "
-        f"{'unsup.' if compact else 'unsupported'}: share of the layer's weights the "
-        "unsupported-weight rule flagged (— without gradient support)"
+        f"log-spaced from min (left) to max (right), the tallest bar the fullest bin; {flags}"
     )
     return [
         Text("layer health", style="bold"),

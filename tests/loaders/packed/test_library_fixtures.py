@@ -5,7 +5,8 @@ float-quantized FP8 compressors and their ``decompress``) and ``fixtures/gen_bnb
 (bitsandbytes 0.50.2's ``quantize_4bit`` NF4/FP4 with and without double quantization, and
 LLM.int8 ``int8_vectorwise_quant``; its ``dequantize_4bit`` / ``int8_vectorwise_dequant``) and
 ``fixtures/gen_awq.py`` (AutoAWQ 0.2.9's ``WQLinear_GEMM.from_linear`` packing and its
-``dequantize_gemm``)."""
+``dequantize_gemm``), ``fixtures/gen_gptq.py`` (AutoGPTQ 0.7.1's ``QuantLinear.pack``, act-order
+included, and its CPU ``forward`` on the identity matrix)."""
 
 from __future__ import annotations
 
@@ -31,6 +32,10 @@ STORED = {
     "bnb-int8": "bnb-int8",
     "awq-g16": "awq-int4",
     "awq-g32": "awq-int4",
+    "gptq-w4-g16": "gptq-int4",
+    "gptq-w4-g32-act": "gptq-int4",
+    "gptq-w8-g32": "gptq-int8",
+    "gptq-w2-g16-act": "gptq-int2",
 }
 
 
@@ -50,8 +55,8 @@ def test_library_writer_and_reader_agree_with_steelyard(case: str) -> None:
     assert tensor.shape == expected.shape
     assert checkpoint.parameters == expected.size + (bias.size if bias is not None else 0)
     got = tensor.read()
-    if case.startswith(("ct-", "awq-")):
-        # Both libraries dequantize in the scales' float16; steelyard keeps float32.
+    if case.startswith(("ct-", "awq-", "gptq-")):
+        # These libraries dequantize in the scales' float16; steelyard keeps float32.
         # Rounded to float16, every value must be the library's exactly.
         np.testing.assert_array_equal(got.astype(np.float16).astype(np.float32), expected)
     elif case == "bnb-int8":

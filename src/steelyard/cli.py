@@ -541,7 +541,7 @@ def rules(
         hint = f"; did you mean {close[0]!r}?" if close else ""
         _say(f"steelyard: error: no rule named {name!r}{hint}")
         raise typer.Exit(2)
-    sys.stdout.write(render_rule(specs[name]))
+    sys.stdout.write(render_rule(specs[name], color=_color(), width=_width()))
 
 
 @app.command()

@@ -30,13 +30,24 @@ def render_rules(specs: Mapping[str, AnySpec], *, color: bool = False, width: in
     return to_text([table], color=color, width=width)
 
 
-def render_rule(spec: AnySpec) -> str:
-    """The rule's page: its docstring, defaults and help address."""
-    lines = [
-        inspect.cleandoc(spec.doc),
-        "",
+def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
+    """The rule's page: its docstring (Markdown: headings, emphasis, code, lists) rendered for
+    a terminal by rich, or as plain text when not coloured, then defaults and help address."""
+    from rich.markdown import Markdown
+    from rich.text import Text
+
+    from steelyard.render.findings_view import indented
+
+    footer = [
         f"default severity: {spec.severity.value}",
         f"thresholds: {_thresholds(spec)}",
         f"help: {spec.help_uri}",
     ]
-    return "\n".join(lines) + "\n"
+    page = [
+        Markdown(inspect.cleandoc(spec.doc), hyperlinks=False),
+        Text(""),
+        *(line for text in footer for line in indented(text, width, indent=0)),
+    ]
+    text = to_text(page, color=color, width=width)
+    # rich pads Markdown paragraphs to the width; a plain page should not end lines in blanks.
+    return text if color else "\n".join(line.rstrip() for line in text.split("\n"))

@@ -33,6 +33,7 @@ def render_rules(specs: Mapping[str, AnySpec], *, color: bool = False, width: in
 def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
     """The rule's page: its docstring (Markdown: headings, emphasis, code, lists) rendered for
     a terminal by rich, or as plain text when not coloured, then defaults and help address."""
+    from rich.console import RenderableType
     from rich.markdown import Markdown
     from rich.text import Text
 
@@ -43,7 +44,7 @@ def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
         f"thresholds: {_thresholds(spec)}",
         f"help: {spec.help_uri}",
     ]
-    page = [
+    page: list[RenderableType] = [
         Markdown(inspect.cleandoc(spec.doc), hyperlinks=False),
         Text(""),
         *(line for text in footer for line in indented(text, width, indent=0)),

@@ -32,14 +32,31 @@ def pack_words(codes: np.ndarray, bits: int, axis: int) -> np.ndarray:
     """Pack unsigned ``codes`` ``32 // bits`` per int32 along ``axis``, lowest bits first,
     padding the axis with zero codes (AutoGPTQ's ``pack`` for qweight (axis 0) and qzeros
     (axis 1), MLX's ``quantize``, compressed-tensors' ``pack_to_int32``: one code at a time)."""
-    per = 32 // bits
     moved = np.moveaxis(codes, axis, 0)
+    if bits == 3:
+        return np.moveaxis(_pack_3bit(moved), 0, axis)
+    per = 32 // bits
     n_words = -(-moved.shape[0] // per)
     words = np.zeros((n_words, *moved.shape[1:]), dtype=np.uint64)
     for index in np.ndindex(moved.shape):
         word = (index[0] // per, *index[1:])
         words[word] |= int(moved[index]) << (bits * (index[0] % per))
     return np.moveaxis(words.astype(np.uint32).view(np.int32), 0, axis)
+
+
+def _pack_3bit(moved: np.ndarray) -> np.ndarray:
+    """AutoGPTQ's 3-bit packing, bit by bit: code k of each run of 32 occupies bits 3k..3k+2
+    of the run's three words read as one little-endian stream (its pack() splits codes 10 and
+    21 across words this way; recalled, and checked against the library's own fixtures)."""
+    runs = -(-moved.shape[0] // 32)
+    words = np.zeros((3 * runs, *moved.shape[1:]), dtype=np.uint64)
+    for index in np.ndindex(moved.shape):
+        run, k = divmod(index[0], 32)
+        for b in range(3):
+            position = 3 * k + b
+            bit = (int(moved[index]) >> b) & 1
+            words[(3 * run + position // 32, *index[1:])] |= bit << (position % 32)
+    return words.astype(np.uint32).view(np.int32)
 
 
 # --- GPTQ (Frantar et al. 2022, "GPTQ", arXiv 2210.17323: W = s * (q - z) per group;

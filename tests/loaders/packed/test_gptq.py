@@ -78,7 +78,8 @@ def test_group_size_without_g_idx_matches_explicit():
 @pytest.mark.parametrize(
     "change, bits, group",
     [
-        ({}, 3, 16),                                          # unsupported bit width
+        ({}, 5, 16),                                          # unsupported bit width
+        ({}, 3, 16),                                          # 4 rows: not whole 3-bit runs
         ({"scales": np.ones((2, 7), np.float16)}, 4, 16),      # scales lie about out
         ({"qzeros": np.zeros((5, 1), np.int32)}, 4, 16),       # zeros lie about groups
         ({"g_idx": np.full(32, 9, np.int32)}, 4, 16),          # g_idx past the groups

@@ -36,6 +36,7 @@ STORED = {
     "gptq-w4-g32-act": "gptq-int4",
     "gptq-w8-g32": "gptq-int8",
     "gptq-w2-g16-act": "gptq-int2",
+    "gptq-w3-g32": "gptq-int3",
 }
 
 

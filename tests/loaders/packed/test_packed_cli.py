@@ -87,9 +87,12 @@ def _set(key: str, value: np.ndarray) -> Callable[[dict[str, np.ndarray]], None]
 HOSTILE: dict[str, tuple[Callable[[Path], Path], str]] = {
     "gptq scales wider than qweight": (
         lambda d: _gptq(d, _set("scales", np.ones((2, 17), np.float16))), "shapes"),
-    "gptq 3-bit declared": (
+    "gptq 5-bit declared": (
+        lambda d: _gptq(d, config={"quantization_config": {"quant_method": "gptq", "bits": 5}}),
+        "bit width 5"),
+    "gptq 3-bit declared over 4-bit words": (
         lambda d: _gptq(d, config={"quantization_config": {"quant_method": "gptq", "bits": 3}}),
-        "bit width 3"),
+        "does not fit"),
     "gptq g_idx past the groups": (
         lambda d: _gptq(d, _set("g_idx", np.full(32, 1000, np.int32))), "g_idx"),
     "gptq qweight truncated to fewer inputs": (

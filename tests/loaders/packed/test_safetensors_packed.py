@@ -54,7 +54,7 @@ M = "model.layers.0.mlp.up_proj"
 @pytest.mark.parametrize(
     "bits, n_out, n_in, group, act",
     [(4, 12, 64, 16, False), (4, 7, 32, 32, True), (2, 5, 48, 16, True),
-     (8, 9, 24, 8, False), (8, 3, 8, 8, True)],
+     (8, 9, 24, 8, False), (8, 3, 8, 8, True), (3, 32, 64, 32, True), (3, 7, 32, 16, False)],
 )
 def test_gptq_matches_published_formula(tmp_path: Path, bits: int, n_out: int, n_in: int,
                                         group: int, act: bool) -> None:

@@ -21,7 +21,7 @@ from steelyard.loaders.packed.compressed import IntQuantizedWeight, PackQuantize
 from steelyard.loaders.packed.config import QuantConfig
 from steelyard.loaders.packed.detect import Layout
 from steelyard.loaders.packed.fp8 import Fp8Weight
-from steelyard.loaders.packed.gptq import SUPPORTED_BITS, GptqWeight
+from steelyard.loaders.packed.gptq import SUPPORTED_BITS, GptqWeight, codes_in, words_for
 from steelyard.loaders.packed.mlx import MlxWeight
 from steelyard.loaders.packed.modules import PackedModule
 from steelyard.loaders.packed.stored import StoredPart
@@ -40,10 +40,10 @@ def _need(path: Path, module: PackedModule, parts: Parts, *keys: str) -> None:
 
 def _gptq_bits(path: Path, module: PackedModule, parts: Parts, declared: int | None) -> int:
     n_out, zero_words = parts["qweight"].shape[1], parts["qzeros"].shape[1]
-    fits = [b for b in SUPPORTED_BITS if -(-n_out * b // 32) == zero_words]
+    fits = [b for b in SUPPORTED_BITS if words_for(n_out, b) == zero_words]
     if "g_idx" in parts:
-        n_in = parts["g_idx"].shape[0] if parts["g_idx"].ndim == 1 else -1
-        fits = [b for b in fits if parts["qweight"].shape[0] * (32 // b) == n_in]
+        n_in = parts["g_idx"].shape[0] if parts["g_idx"].ndim == 1 else -2
+        fits = [b for b in fits if codes_in(parts["qweight"].shape[0], b) == n_in]
     if declared is not None:
         if declared not in SUPPORTED_BITS:
             raise LoadError(path, f"{module.prefix}: GPTQ bit width {declared} is not "
@@ -63,7 +63,7 @@ def gptq(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) ->
     """GPTQ: bits and group size declared or read from the shapes; v2 zero points."""
     _need(path, module, parts, "qweight", "qzeros", "scales")
     bits = _gptq_bits(path, module, parts, config.integer("bits", "w_bit"))
-    n_in = parts["qweight"].shape[0] * (32 // bits)
+    n_in = codes_in(parts["qweight"].shape[0], bits)
     groups = parts["scales"].shape[0]
     group = config.integer("group_size", "q_group_size")
     if group is None or group in (-1, 0):

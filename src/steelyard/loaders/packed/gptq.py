@@ -8,7 +8,9 @@ not run here): the integer codes ``q[in, out]`` are packed along the input axis,
 reader adds one back); ``scales[groups, out]``; ``g_idx[in]`` names each input channel's
 group (act-order shuffles it; without it channel ``i`` is in group ``i // group_size``).
 Inference computes ``W[o, i] = scales[g, o] * (q[i, o] - (z[g, o] + 1))`` with ``g = g_idx[i]``.
-3-bit packing crosses word boundaries and is refused until it is implemented.
+3-bit codes cross word boundaries: every three words hold 32 codes as one little-endian
+96-bit stream (code ``k`` at bits ``3k .. 3k+2``, word 0 lowest), which is what ``pack``'s
+explicit bit splitting for 3 bits amounts to; so 3-bit axes are a multiple of 32 codes.
 """
 
 from __future__ import annotations
@@ -23,13 +25,49 @@ from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.stored import Part
 
-SUPPORTED_BITS = (2, 4, 8)
+SUPPORTED_BITS = (2, 3, 4, 8)
+
+
+def codes_in(words: int, bits: int) -> int:
+    """Codes held by ``words`` packed words along one axis (-1 when 3-bit words are not a
+    whole number of 3-word runs)."""
+    if bits == 3:
+        return words // 3 * 32 if words % 3 == 0 else -1
+    return words * (32 // bits)
+
+
+def words_for(codes: int, bits: int) -> int:
+    """Packed words needed for ``codes`` codes along one axis (padded to whole words/runs)."""
+    if bits == 3:
+        return -(-codes // 32) * 3
+    return -(-codes // (32 // bits))
+
+
+def _unpack_3bit(moved: np.ndarray) -> np.ndarray:
+    """3-bit codes of ``moved[..., words]`` (words a multiple of 3) along the last axis."""
+    runs = moved.reshape(*moved.shape[:-1], -1, 3).astype(np.uint64)
+    low = runs[..., 0] | (runs[..., 1] << np.uint64(32))
+    high = runs[..., 2]
+    out = np.empty((*runs.shape[:-1], 32), dtype=np.uint64)
+    seven = np.uint64(7)
+    for k in range(32):
+        p = 3 * k
+        if p + 3 <= 64:
+            out[..., k] = (low >> np.uint64(p)) & seven
+        elif p >= 64:
+            out[..., k] = (high >> np.uint64(p - 64)) & seven
+        else:  # code 21 straddles bit 64
+            out[..., k] = ((low >> np.uint64(p)) | (high << np.uint64(64 - p))) & seven
+    return out.astype(np.uint32).reshape(*moved.shape[:-1], -1)
 
 
 def unpack_words(words: Part, bits: int, axis: int) -> np.ndarray:
-    """Codes packed ``32 // bits`` per int32 word along ``axis``, lowest bits first."""
-    per_word = 32 // bits
+    """Codes packed ``32 // bits`` per int32 word along ``axis``, lowest bits first (3-bit:
+    32 codes per 3 words)."""
     raw = np.ascontiguousarray(words).view(np.uint32)
+    if bits == 3:
+        return np.moveaxis(_unpack_3bit(np.moveaxis(raw, axis, -1)), -1, axis)
+    per_word = 32 // bits
     shifts = np.arange(per_word, dtype=np.uint32) * np.uint32(bits)
     mask = np.uint32((1 << bits) - 1)
     moved = np.moveaxis(raw, axis, -1)
@@ -65,16 +103,18 @@ class GptqWeight:
         """Check the parts against each other (a lying shape, bit width or group size is a
         :class:`LoadError`) and fill ``g_idx`` from ``group_size`` when it is absent."""
         if bits not in SUPPORTED_BITS:
-            raise LoadError(path, f"{name}: GPTQ bit width {bits} is not supported (2, 4, 8)")
+            raise LoadError(path, f"{name}: GPTQ bit width {bits} is not supported (2, 3, 4, 8)")
         for key in ("qweight", "qzeros", "scales"):
             if key not in parts or parts[key].ndim != 2:
                 raise LoadError(path, f"{name}: GPTQ needs a 2-D {key}")
         qweight, qzeros, scales = parts["qweight"], parts["qzeros"], parts["scales"]
-        per_word = 32 // bits
-        n_in, n_out = qweight.shape[0] * per_word, qweight.shape[1]
+        n_in, n_out = codes_in(qweight.shape[0], bits), qweight.shape[1]
+        if n_in < 0:
+            raise LoadError(path, f"{name}: 3-bit GPTQ qweight rows {qweight.shape[0]} are not "
+                            "whole 3-word runs")
         check_elements(path, (n_out, n_in), f"{name} (dequantized)")
         groups = scales.shape[0]
-        if scales.shape[1] != n_out or qzeros.shape != (groups, -(-n_out // per_word)):
+        if scales.shape[1] != n_out or qzeros.shape != (groups, words_for(n_out, bits)):
             raise LoadError(path, f"{name}: GPTQ scales/qzeros shapes do not match qweight")
         if "g_idx" in parts:
             if parts["g_idx"].shape != (n_in,):  # checked before a lying size is read
@@ -93,7 +133,7 @@ class GptqWeight:
     @property
     def shape(self) -> tuple[int, int]:
         """Canonical ``[out, in]`` shape of the dequantized weight."""
-        return (self.qweight.shape[1], self.qweight.shape[0] * (32 // self.bits))
+        return (self.qweight.shape[1], codes_in(self.qweight.shape[0], self.bits))
 
     @property
     def stored_type(self) -> str:

@@ -15,9 +15,8 @@ import os
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
-from enum import Enum
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, NoReturn
+from typing import TYPE_CHECKING, NoReturn
 
 import click
 import typer
@@ -25,6 +24,21 @@ from typing_extensions import assert_never
 
 from steelyard import api
 from steelyard.budget import Budget
+from steelyard.cli_options import (
+    AuditFormat,
+    BudgetOption,
+    ColorChoice,
+    CompareFormat,
+    FailOn,
+    FailOnOption,
+    LayersFormat,
+    OutputOption,
+    PolicyOption,
+    QuietOption,
+    TimelineFormat,
+    Unreadable,
+    output_targets,
+)
 from steelyard.comparison.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.gradients import GradsKind
@@ -51,88 +65,6 @@ _STATE: dict[str, object] = {"debug": False, "reading": None, "color": "auto"}
 
 #: Exit code of an internal error (a bug in steelyard, never a verdict on the input).
 EXIT_INTERNAL = 3
-
-
-class LayersFormat(str, Enum):
-    """Output formats of ``steelyard layers`` and ``steelyard rules``."""
-
-    table = "table"
-    json = "json"
-
-
-class AuditFormat(str, Enum):
-    """Output formats of ``steelyard audit``."""
-
-    table = "table"
-    json = "json"
-    markdown = "markdown"
-    sarif = "sarif"
-    junit = "junit"
-    html = "html"
-
-
-class Unreadable(str, Enum):
-    """What an unreadable checkpoint does to the run's exit code."""
-
-    input_error = "input-error"
-    gate_failure = "gate-failure"
-
-
-class ColorChoice(str, Enum):
-    """When the terminal report is coloured."""
-
-    auto = "auto"
-    always = "always"
-    never = "never"
-
-
-class FailOn(str, Enum):
-    """The lowest severity that fails the gate."""
-
-    error = "error"
-    warning = "warning"
-    info = "info"
-    never = "never"
-
-
-# Options that audit and compare share: declared once so that they mean the same in both.
-_OutputOption = Annotated[
-    list[Path] | None,
-    typer.Option(
-        "--output",
-        "-o",
-        help="Write the report here, atomically; repeat for several formats from one run. "
-        "The format follows the extension (.json, .sarif, .md, .xml for JUnit, .txt for the "
-        "table) unless --format names it.",
-    ),
-]
-_FailOnOption = Annotated[
-    FailOn | None,
-    typer.Option(
-        "--fail-on",
-        help="Lowest severity that fails the gate [default: the policy's, else error].",
-    ),
-]
-_PolicyOption = Annotated[
-    Path | None,
-    typer.Option(
-        "--policy",
-        help="Policy file [default: steelyard.toml or [tool.steelyard] in pyproject.toml, found upwards].",
-    ),
-]
-_QuietOption = Annotated[
-    bool, typer.Option("--quiet", "-q", help="No progress or diagnostics on stderr.")
-]
-_BudgetOption = Annotated[
-    list[str] | None,
-    typer.Option(
-        "--budget",
-        metavar="KEY=VALUE",
-        help="Raise or lower a resource budget, KEY=VALUE (repeatable): expansion-bytes, "
-        "checkpoint-expansion-bytes, tensor-elements, layer-units, load-seconds; sizes accept "
-        "512M, 2G. Overrides the policy's [budget] table.",
-    ),
-]
 
 
 def _color(stream: object = None) -> bool:
@@ -281,44 +213,6 @@ def _write(text: str, output: Path | None) -> None:
         raise SteelyardError(f"{output}: cannot write the report ({exc.strerror})") from None
 
 
-#: Report formats by file ending; ".sarif.json" is SARIF (the name code-scanning uploads use).
-_BY_ENDING = {
-    ".sarif.json": "sarif",
-    ".sarif": "sarif",
-    ".json": "json",
-    ".md": "markdown",
-    ".markdown": "markdown",
-    ".xml": "junit",
-    ".txt": "table",
-    ".html": "html",
-    ".htm": "html",
-}
-
-
-def _targets(chosen: str | None, outputs: list[Path] | None) -> list[tuple[str, Path | None]]:
-    """(format, file or stdout) for each report to write: one run, several files. An explicit
-    ``--format`` that contradicts a file's ending is refused rather than guessed."""
-    if not outputs:
-        return [(chosen or "table", None)]
-    targets: list[tuple[str, Path | None]] = []
-    for output in outputs:
-        name = output.name.lower()
-        inferred = next((f for end, f in _BY_ENDING.items() if name.endswith(end)), None)
-        if chosen is not None and inferred is not None and inferred != chosen:
-            raise SteelyardError(
-                f"--output {output}: its ending says {inferred}, but --format says {chosen}; "
-                "rename the file or drop --format"
-            )
-        fmt = chosen or inferred
-        if fmt is None:
-            raise SteelyardError(
-                f"--output {output}: cannot tell the format from its ending; name it "
-                "with --format or use .json, .sarif, .md, .xml, .html or .txt"
-            )
-        targets.append((fmt, output))
-    return targets
-
-
 def _write_report(text: str, output: Path | None, quiet: bool) -> None:
     """Write a report; when it went to a file, say so on stderr unless ``quiet``."""
     _write(text, output)
@@ -347,8 +241,8 @@ def layers(
     output: Path | None = typer.Option(
         None, "--output", "-o", help="Write the layer graph here, atomically."
     ),
-    policy_file: _PolicyOption = None,
-    budget: _BudgetOption = None,
+    policy_file: PolicyOption = None,
+    budget: BudgetOption = None,
 ) -> None:
     """Show the layer graph steelyard reads from a checkpoint."""
     with _guarded():
@@ -389,16 +283,16 @@ def audit(
     format: AuditFormat | None = typer.Option(
         None, "--format", "-f", help="Output format [default: table]."
     ),
-    output: _OutputOption = None,
-    fail_on: _FailOnOption = None,
-    policy_file: _PolicyOption = None,
+    output: OutputOption = None,
+    fail_on: FailOnOption = None,
+    policy_file: PolicyOption = None,
     baseline: Path | None = typer.Option(
         None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."
     ),
     write_baseline: Path | None = typer.Option(
         None, "--write-baseline", help="Record the current findings as a baseline file."
     ),
-    quiet: _QuietOption = False,
+    quiet: QuietOption = False,
     unreadable: Unreadable = typer.Option(
         Unreadable.input_error,
         "--unreadable",
@@ -414,14 +308,14 @@ def audit(
         help="Worker threads per checkpoint [default: the machine's cores]; the report is "
         "the same for every value.",
     ),
-    budget: _BudgetOption = None,
+    budget: BudgetOption = None,
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
     from steelyard.baseline import apply_baseline, baseline_text, read_baseline
     from steelyard.progress import Progress
 
     with _guarded():
-        targets = _targets(format.value if format else None, output)
+        targets = output_targets(format.value if format else None, output)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         _reading(baseline)
@@ -462,17 +356,6 @@ def audit(
 
 
 
-class CompareFormat(str, Enum):
-    """Output formats of ``steelyard compare``."""
-
-    table = "table"
-    json = "json"
-    markdown = "markdown"
-    sarif = "sarif"
-    junit = "junit"
-    html = "html"
-
-
 def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
     from steelyard.render.compare_formats import render_comparison
 
@@ -486,17 +369,17 @@ def compare(
     format: CompareFormat | None = typer.Option(
         None, "--format", "-f", help="Output format [default: table]."
     ),
-    output: _OutputOption = None,
-    fail_on: _FailOnOption = None,
-    policy_file: _PolicyOption = None,
-    quiet: _QuietOption = False,
-    budget: _BudgetOption = None,
+    output: OutputOption = None,
+    fail_on: FailOnOption = None,
+    policy_file: PolicyOption = None,
+    quiet: QuietOption = False,
+    budget: BudgetOption = None,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
     from steelyard.progress import Progress
 
     with _guarded():
-        targets = _targets(format.value if format else None, output)
+        targets = output_targets(format.value if format else None, output, CompareFormat)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
@@ -576,23 +459,28 @@ def policy(
 def timeline(
     paths: list[Path] = typer.Argument(..., help="The run's checkpoints, or the run folder."),
     order: Order = typer.Option(Order.step, "--order", help="By training step, name or as given."),
-    format: LayersFormat = typer.Option(LayersFormat.table, "--format", "-f", help="Output format."),
-    output: Path | None = typer.Option(None, "--output", "-o", help="Write it here, atomically."),
-    fail_on: _FailOnOption = None,
-    policy_file: _PolicyOption = None,
-    quiet: _QuietOption = False,
-    budget: _BudgetOption = None,
+    format: TimelineFormat | None = typer.Option(
+        None, "--format", "-f", help="Output format [default: table]."
+    ),
+    output: OutputOption = None,
+    fail_on: FailOnOption = None,
+    policy_file: PolicyOption = None,
+    quiet: QuietOption = False,
+    budget: BudgetOption = None,
 ) -> None:
     """Follow a training run's checkpoints layer by layer (docs/timeline.md); exit 1 when a
     finding of the last checkpoint reaches the gate."""
     with _guarded():
+        targets = output_targets(format.value if format else None, output, TimelineFormat)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
         result = api.timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
         _STATE["reading"] = None
-        color = _color() and output is None
-        _write_report(result.render(format.value, width=_width(), color=color), output, quiet)
+        for chosen, target in targets:
+            color = _color() and target is None
+            _write_report(result.render(chosen, width=_width(), color=color), target, quiet)
     raise typer.Exit(result.exit_code)
+
 
 def main() -> None:
     """Console-script entry point."""

@@ -183,3 +183,15 @@ def test_compare_page_draws_offline(browser: Any, tmp_path: Path) -> None:
         assert page.locator("tr#layer-0").inner_text().startswith("0")
     finally:
         opened.close()
+
+
+def test_timeline_page_draws_offline(browser: Any, tmp_path: Path) -> None:
+    timeline = steelyard.timeline([Path("fixtures/timeline_run")])
+    page_file = _write(tmp_path, "timeline.html", timeline.render("html"))
+    opened = Opened(browser, page_file)
+    try:
+        charts = opened.page.query_selector_all("[data-chart]")
+        assert len(charts) >= 5 and all(c.get_attribute("data-drawn") == "yes" for c in charts)
+        assert opened.fetched == [] and opened.errors == []
+    finally:
+        opened.close()

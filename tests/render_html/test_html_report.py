@@ -190,3 +190,31 @@ def test_spectrum_chart_places_the_top_singular_value_against_the_edge() -> None
         m, n = matrix.shape
         assert row["edge"] == pytest.approx(finding.evidence["sigma"] * (np.sqrt(m) + np.sqrt(n)), rel=1e-9)
         assert row["allowed"] > row["edge"] >= row["top"] * 0.5
+
+
+def test_timeline_page_draws_the_timelines_numbers(tmp_path: Path) -> None:
+    """Every point of the line charts is the value of the steelyard.timeline/1 document of the
+    same run (the committed torch-trained run with a planted death and a planted NaN)."""
+    timeline = steelyard.timeline([Path("fixtures/timeline_run")])
+    document = timeline.to_dict()
+    page = timeline.render("html")
+    specs = _specs(page)
+    steps = [c["step"] for c in document["checkpoints"]]
+    medians = {(r["layer"], r["x"]): r["value"] for r in specs["measure-median"]["data"]["values"]}  # type: ignore[index]
+    dead = {(r["layer"], r["x"]): r["value"] for r in specs["measure-dead"]["data"]["values"]}  # type: ignore[index]
+    for layer in document["layers"]:
+        series = layer["series"]
+        for i, step in enumerate(steps):
+            if not layer["present"][i]:
+                continue
+            assert medians[(layer["name"], step)] == pytest.approx(series["fan_in_norm_median"][i])
+            assert dead[(layer["name"], step)] == series["dead_units"][i]
+    cells = specs["presence"]["data"]["values"]  # type: ignore[index]
+    died = sorted(c["x"] for c in cells if c["finding"].startswith("dead-unit"))
+    assert died[0] == 600  # planted: the first checkpoint where the units are dead (fixtures/timeline_run/planted.json)
+    out = tmp_path / "run.html"
+    result = CliRunner().invoke(app, ["timeline", "fixtures/timeline_run", "-o", str(out), "--fail-on", "never"])
+    assert result.exit_code == 0, result.stderr
+    assert out.read_text(encoding="utf-8").startswith("<!doctype html>")
+    refused = CliRunner().invoke(app, ["timeline", "fixtures/timeline_run", "-o", str(tmp_path / "run.sarif")])
+    assert refused.exit_code == 2 and "writes table, json, html" in refused.stderr

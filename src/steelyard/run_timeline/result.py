@@ -166,15 +166,19 @@ class Timeline:
         return json.loads(self.to_json())
 
     def render(self, format: str = "table", *, width: int = 120, color: bool = False) -> str:
-        """``table`` (ANSI styles only with ``color``) or ``json``, as ``steelyard timeline
-        --format`` writes them; ``ValueError`` for another name."""
+        """``table`` (ANSI styles only with ``color``), ``json`` or ``html``, as ``steelyard
+        timeline --format`` writes them; ``ValueError`` for another name."""
         if format == "json":
             return self.to_json()
         if format == "table":
             from steelyard.render.timeline_table import render_timeline_table
 
             return render_timeline_table(self, width=width, color=color)
-        raise ValueError(f"unknown timeline format {format!r}; use table or json")
+        if format == "html":
+            from steelyard.render.report_formats import html_renderers
+
+            return html_renderers().render_timeline_html(self)
+        raise ValueError(f"unknown timeline format {format!r}; use table, json or html")
 
     def __repr__(self) -> str:
         verdict = "passed" if self.passed else "failed"

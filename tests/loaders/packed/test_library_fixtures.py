@@ -26,6 +26,7 @@ STORED = {
     "ct-w8-channel-sym": "pack-quantized-int8",
     "ct-int8-g8-asym": "int-quantized-int8",
     "ct-fp8-channel": "fp8-e4m3-channel",
+    "ct-fp8-block": "fp8-e4m3-block",
     "bnb-nf4-dq": "bnb-nf4-dq",
     "bnb-nf4": "bnb-nf4",
     "bnb-fp4": "bnb-fp4",

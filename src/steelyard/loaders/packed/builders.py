@@ -17,7 +17,11 @@ from steelyard.errors import LoadError
 from steelyard.loaders.packed.assemble import Builder, Decoder
 from steelyard.loaders.packed.awq import AwqWeight
 from steelyard.loaders.packed.bnb import Bnb4Weight, Bnb8Weight
-from steelyard.loaders.packed.compressed import IntQuantizedWeight, PackQuantizedWeight
+from steelyard.loaders.packed.compressed import (
+    IntQuantizedWeight,
+    PackQuantizedWeight,
+    block_structure,
+)
 from steelyard.loaders.packed.config import QuantConfig
 from steelyard.loaders.packed.detect import Layout
 from steelyard.loaders.packed.fp8 import Fp8Weight
@@ -115,7 +119,7 @@ def fp8(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) -> 
     n_out = weight.shape[0] if weight.ndim else 0
     per_channel = scale.size == n_out and (scale.ndim == 1 or scale.shape[-1:] == (1,))
     if scale.ndim == 2 and scale.size > 1 and not per_channel:
-        declared = config.settings.get("weight_block_size")
+        declared = config.settings.get("weight_block_size", block_structure(config.settings))
         if declared is None:
             block = (128, 128)  # the one block size FP8 checkpoints with block scales use
         elif (isinstance(declared, list) and len(declared) == 2 and all(

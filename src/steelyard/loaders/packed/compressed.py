@@ -46,6 +46,20 @@ def declared(settings: Mapping[str, Any], key: str) -> int | None:
     return None
 
 
+def block_structure(settings: Mapping[str, Any]) -> object:
+    """compressed-tensors' ``block_structure`` ([rows, columns] of a block scale's tile) when
+    every weight scheme of the config declares the same one; None otherwise."""
+    groups = settings.get("config_groups")
+    if not isinstance(groups, Mapping):
+        return None
+    found = [
+        scheme["weights"].get("block_structure")
+        for scheme in groups.values()
+        if isinstance(scheme, Mapping) and isinstance(scheme.get("weights"), Mapping)
+    ]
+    return found[0] if found and all(f == found[0] for f in found) else None
+
+
 def _size(part: Part) -> int:
     return int(np.prod(part.shape, dtype=np.int64)) if part.shape else 1
 

@@ -379,3 +379,26 @@ def test_the_hash_has_its_own_label_and_the_histogram_a_legend(runs: dict[tuple[
         assert f"sha256      {digest}" in run.lines
         legend = " ".join(run.lines[run.lines.index(next(x for x in run.lines if x.startswith("min, median"))) :])
         assert "histogram:" in legend and "log-spaced from min (left) to max (right)" in legend
+
+
+GOLDEN = REPO / "tests" / "golden"
+BAD = "fixtures/demo/pumpwear-nightly-bad.safetensors"
+GOLDEN_CASES = {
+    # audit-bad.txt (120 columns) is tests/test_golden.py's; these are the other two widths.
+    "audit-bad-80.txt": (80, ["audit", BAD, "--grads", "fixtures/demo/pumpwear-nightly-bad.grads.safetensors"]),
+    "audit-bad-200.txt": (200, ["audit", BAD, "--grads", "fixtures/demo/pumpwear-nightly-bad.grads.safetensors"]),
+    "audit-two-80.txt": (80, ["audit", "fixtures/demo/pumpwear-healthy.safetensors", BAD]),
+}
+
+
+@pytest.mark.parametrize("name", sorted(GOLDEN_CASES))
+def test_golden_widths(name: str, update_golden: bool, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Refresh with: python -m pytest tests/test_terminal_layout.py --update-golden
+    monkeypatch.chdir(REPO)
+    width, args = GOLDEN_CASES[name]
+    result = CliRunner().invoke(app, args, env={"COLUMNS": str(width), "NO_COLOR": "1"})
+    assert result.exit_code in (0, 1), result.output
+    target = GOLDEN / name
+    if update_golden or not target.exists():
+        target.write_text(result.stdout, encoding="utf-8")
+    assert result.stdout == target.read_text(encoding="utf-8")

@@ -26,6 +26,8 @@ COMPACT_BELOW = 110
 MAX_ROWS = 40
 #: Layers named in a folded row.
 _FOLDED_NAMED = 12
+#: Widest line of a message in the wide table, for reading comfort.
+_PROSE = 100
 #: Distinct hints of one rule shown under the compact table.
 _HINTS_SHOWN = 4
 STYLE = {Severity.ERROR: "bold red", Severity.WARNING: "yellow", Severity.INFO: "cyan"}
@@ -106,7 +108,7 @@ def findings_table(
         Column("units", wrap="name", floor=12),
     ]
     if not compact:
-        columns.append(Column("finding", wrap="words", floor=40))
+        columns.append(Column("finding", wrap="words", floor=40, cap=_PROSE))
     grid = Grid(tuple(columns), tails=tails, indent_below=5)
     explained: set[str] = set()
     for index, row in enumerate(rows, 1):

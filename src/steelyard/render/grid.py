@@ -41,6 +41,9 @@ class Column:
     """Width this column keeps while other columns can still give room up."""
     one_line: bool = False
     """For ``name`` columns: shorten from the left to a distinct tail before wrapping."""
+    cap: int = 0
+    """For ``words`` columns: the widest a line of prose gets however wide the terminal
+    (long lines are hard to read); 0 for no cap."""
 
 
 @dataclass(frozen=True)
@@ -84,6 +87,8 @@ class Grid:
         column = self.columns[index]
         texts = [t for row in self.rows for t, _ in row.cells[index].paragraphs]
         natural = max([cell_len(column.header), *(widest(t.split("\n")) for t in texts)])
+        if column.cap:
+            natural = min(natural, max(column.cap, cell_len(column.header)))
         if column.wrap == "words":
             least = max([longest_word(column.header), *(longest_word(t) for t in texts)])
             if column.floor:

@@ -105,7 +105,7 @@ def rule_shares(path: str) -> dict[str, float]:
         elif spec.finish is not None:
             list(spec.finish(ctx, settings[spec.name]))
         spent[spec.name] += time.perf_counter() - start
-    from steelyard.audit import sha256_of
+    from steelyard.checkpoint_audit import sha256_of
 
     start = time.perf_counter()
     sha256_of(checkpoint.files or (checkpoint.path,))

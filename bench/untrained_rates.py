@@ -23,7 +23,7 @@ import json
 import sys
 from pathlib import Path
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.loaders import load
 from steelyard.policy import Policy
 from steelyard.rules.untrained_layer import RULE

@@ -95,7 +95,7 @@ def test_a_tensor_that_fails_to_read_after_loading_is_the_inputs_error(
 
 def test_a_file_truncated_after_loading_is_the_inputs_error(tmp_path: Path) -> None:
     # Loaded, then cut short before the rules read it (a copy still being written).
-    from steelyard.audit import audit_checkpoint
+    from steelyard.checkpoint_audit import audit_checkpoint
     from steelyard.loaders import load
     from steelyard.policy import Policy
 

@@ -17,7 +17,7 @@ import pytest
 import safetensors.numpy
 
 from steelyard import api, streaming
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.errors import LoadError
 from steelyard.policy import Policy
 from steelyard.stats import LayerStats, sums_of_squares

@@ -16,7 +16,7 @@ from pathlib import Path
 
 from steelyard import budget as _budget
 from steelyard import discovery
-from steelyard.audit import audit_checkpoint, default_jobs
+from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
 from steelyard.budget import Budget
 from steelyard.comparison.report import CompareReport
 from steelyard.discovery import Plan

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 from safetensors.numpy import save_file
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding
 from steelyard.gradients import GradsKind, sidecar_source
 from steelyard.graph import Checkpoint

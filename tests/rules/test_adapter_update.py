@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from safetensors.numpy import save_file
 
-from steelyard.audit import audit_checkpoint
+from steelyard.checkpoint_audit import audit_checkpoint
 from steelyard.findings import Finding, Severity
 from steelyard.loaders.adapter import load_adapter
 from steelyard.policy import Policy

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from steelyard.api import load
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding
 from steelyard.policy import LayerOverride, Policy
 from steelyard.rules.constraint_breach import RULE

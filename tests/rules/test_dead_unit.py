@@ -19,7 +19,7 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 from safetensors.numpy import save_file
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding
 from steelyard.loaders import load
 from steelyard.policy import Policy

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from steelyard.api import load
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding, Severity
 from steelyard.policy import LayerOverride, Policy
 from steelyard.rules.fan_in_norm import RULE

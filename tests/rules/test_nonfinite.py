@@ -23,7 +23,7 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding
 from steelyard.loaders import load
 from steelyard.policy import Policy

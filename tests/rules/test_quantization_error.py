@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding, Severity
 from steelyard.loaders import load
 from steelyard.policy import Policy

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from steelyard.api import load
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding, Severity
 from steelyard.policy import Policy
 from steelyard.rules.uncovered_weights import RULE

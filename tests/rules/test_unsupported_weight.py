@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from safetensors.numpy import save_file
 
-from steelyard.audit import audit_checkpoint, run_rules
+from steelyard.checkpoint_audit import audit_checkpoint, run_rules
 from steelyard.errors import LoadError
 from steelyard.findings import Severity
 from steelyard.gradients import GradsKind, optimizer_source, sidecar_source

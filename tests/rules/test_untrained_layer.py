@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 from safetensors.numpy import save_file
 
-from steelyard.audit import run_rules
+from steelyard.checkpoint_audit import run_rules
 from steelyard.findings import Finding, Severity
 from steelyard.loaders import load
 from steelyard.policy import Policy

@@ -17,7 +17,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from steelyard.audit import audit_checkpoint
+from steelyard.checkpoint_audit import audit_checkpoint
 from steelyard.comparison.checks import CompareContext, run
 from steelyard.comparison.diff import (
     Alignment,

@@ -101,7 +101,7 @@ class Side:
 
 def statistics(checkpoint: Checkpoint, cache_bytes: int = 256 * 2**20) -> LayerStats:
     """Statistics for one side of a comparison: handed to the side's audit (the ``stats=``
-    argument of :func:`steelyard.audit.audit_checkpoint`) and keeping matrices after the
+    argument of :func:`steelyard.checkpoint_audit.audit_checkpoint`) and keeping matrices after the
     audit's rules are done, within ``cache_bytes``, for the comparison's measures."""
     return LayerStats(checkpoint, cache_bytes=cache_bytes, retain=True)
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 
-from steelyard.audit import audit_checkpoint
+from steelyard.checkpoint_audit import audit_checkpoint
 from steelyard.errors import LoadError, UnreadableTensor
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint

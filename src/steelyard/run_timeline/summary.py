@@ -1,6 +1,6 @@
 """One checkpoint's contribution to the timeline: what its audit measured per layer, and which
 findings it holds. Nothing here re-implements a rule: the numbers come from the audit's own
-layer-health rows (:mod:`steelyard.audit`) and the statistics the audit read through."""
+layer-health rows (:mod:`steelyard.checkpoint_audit`) and the statistics the audit read through."""
 
 from __future__ import annotations
 

@@ -152,8 +152,21 @@ def mlx(rng: np.random.Generator, bits: int, n_out: int, n_in: int,
         for i in range(n_in):
             g = i // group
             expected[o, i] = np.float32(scales[o, g]) * q[o, i] + np.float32(biases[o, g])
-    packed = pack_words(q, bits, 1).view(np.uint32)
+    packed = (pack_words(q, bits, 1) if 32 % bits == 0 else pack_stream(q, bits)).view(np.uint32)
     return {"weight": packed, "scales": scales, "biases": biases}, expected
+
+
+def pack_stream(codes: np.ndarray, bits: int) -> np.ndarray:
+    """Each row's codes as one little-endian bit stream in int32 words, bit by bit (MLX's
+    packing for 3, 5 and 6 bits, as its own quantize writes it: see fixtures/gen_mlx.py)."""
+    rows, n = codes.shape
+    words = np.zeros((rows, -(-n * bits // 32)), dtype=np.uint64)
+    for r in range(rows):
+        for k in range(n):
+            for b in range(bits):
+                position = k * bits + b
+                words[r, position // 32] |= ((int(codes[r, k]) >> b) & 1) << (position % 32)
+    return words.astype(np.uint32).view(np.int32)
 
 
 # --- bitsandbytes 4-bit (QLoRA, Dettmers et al. 2023, arXiv 2305.14314: NF4 code values in

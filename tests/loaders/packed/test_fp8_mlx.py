@@ -94,7 +94,7 @@ def test_mlx_rows_match_scalar_packer(bits, n_out, groups, seed):
     np.testing.assert_allclose(w.rows(0, n_out), expected, rtol=1e-6, atol=1e-6)
 
 
-@pytest.mark.parametrize("bits, group, scales_shape", [(3, 4, (1, 2)), (4, 3, (1, 2)),
+@pytest.mark.parametrize("bits, group, scales_shape", [(7, 4, (1, 2)), (3, 4, (1, 2)), (4, 3, (1, 2)),
                                                        (4, 4, (1, 3))])
 def test_mlx_lying_parts_refused(bits, group, scales_shape):
     parts = {"weight": np.zeros((1, 1), np.uint32), "scales": np.ones(scales_shape, np.float16),

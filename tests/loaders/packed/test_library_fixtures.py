@@ -6,10 +6,12 @@ float-quantized FP8 compressors and their ``decompress``) and ``fixtures/gen_bnb
 LLM.int8 ``int8_vectorwise_quant``; its ``dequantize_4bit`` / ``int8_vectorwise_dequant``) and
 ``fixtures/gen_awq.py`` (AutoAWQ 0.2.9's ``WQLinear_GEMM.from_linear`` packing and its
 ``dequantize_gemm``), ``fixtures/gen_gptq.py`` (AutoGPTQ 0.7.1's ``QuantLinear.pack``, act-order
-included, and its CPU ``forward`` on the identity matrix)."""
+included, and its CPU ``forward`` on the identity matrix) and ``fixtures/gen_mlx.py`` (MLX
+0.32.4's ``mx.quantize`` at 2-8 bits, ``mx.save_safetensors`` and ``mx.dequantize``)."""
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -38,6 +40,12 @@ STORED = {
     "gptq-w8-g32": "gptq-int8",
     "gptq-w2-g16-act": "gptq-int2",
     "gptq-w3-g32": "gptq-int3",
+    "mlx-w4-g64": "mlx-int4-g64",
+    "mlx-w2-g32": "mlx-int2-g32",
+    "mlx-w8-g32": "mlx-int8-g32",
+    "mlx-w3-g32": "mlx-int3-g32",
+    "mlx-w5-g64": "mlx-int5-g64",
+    "mlx-w6-g32": "mlx-int6-g32",
 }
 
 
@@ -61,6 +69,19 @@ def test_library_writer_and_reader_agree_with_steelyard(case: str) -> None:
         # These libraries dequantize in the scales' float16; steelyard keeps float32.
         # Rounded to float16, every value must be the library's exactly.
         np.testing.assert_array_equal(got.astype(np.float16).astype(np.float32), expected)
+    elif case.startswith("mlx-"):
+        # MLX computes float16(float16(scale * q) + bias): two float16 roundings, each at most
+        # half a float16 step of its result; steelyard's float32 differs by no more. A wrong
+        # code would be off by a whole scale (about 1e-2 here), far beyond this bound.
+        group = json.loads((folder / "config.json").read_text())["quantization"]["group_size"]
+        bias = load_file(str(folder / "model.safetensors"))[name.removesuffix("weight") + "biases"]
+        bias = np.repeat(bias.astype(np.float32), group, axis=1)
+
+        def half_step(x: np.ndarray) -> np.ndarray:
+            return 0.5 * np.spacing(np.abs(x).astype(np.float16)).astype(np.float32)
+
+        bound = half_step(got - bias) + half_step(expected)
+        assert np.all(np.abs(got - expected) <= bound * 1.01)
     elif case == "bnb-int8":
         # The library multiplies by a float32 1/127, steelyard divides by 127: one rounding.
         np.testing.assert_allclose(got, expected, rtol=2e-7, atol=0)

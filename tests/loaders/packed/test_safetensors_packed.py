@@ -101,7 +101,8 @@ def test_fp8_matches_ocp_decoding(tmp_path: Path, kind: str, n_out: int, n_in: i
 
 
 @pytest.mark.parametrize("bits, n_out, n_in, group", [(4, 6, 128, 64), (8, 5, 32, 16),
-                                                      (2, 3, 64, 32)])
+                                                      (2, 3, 64, 32), (3, 4, 64, 32),
+                                                      (5, 3, 64, 64), (6, 2, 32, 16)])
 def test_mlx_matches_published_formula(tmp_path: Path, bits: int, n_out: int, n_in: int,
                                        group: int) -> None:
     parts, expected = ref.mlx(np.random.default_rng(bits + n_out), bits, n_out, n_in, group)

@@ -16,8 +16,8 @@ from pathlib import Path
 
 from steelyard import budget as _budget
 from steelyard import discovery
-from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
 from steelyard.budget import Budget
+from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
 from steelyard.comparison.report import CompareReport
 from steelyard.discovery import Plan
 from steelyard.errors import LoadError, SteelyardError, UnreadableTensor

@@ -29,7 +29,6 @@ from steelyard.cli_options import (
     BudgetOption,
     ColorChoice,
     CompareFormat,
-    FailOn,
     FailOnOption,
     LayersFormat,
     OutputOption,
@@ -41,6 +40,7 @@ from steelyard.cli_options import (
 )
 from steelyard.comparison.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
+from steelyard.findings import FailOn
 from steelyard.gradients import GradsKind
 from steelyard.inventory import layers_document
 from steelyard.render.layers_table import render_layers

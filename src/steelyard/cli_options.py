@@ -11,6 +11,7 @@ from typing import Annotated
 import typer
 
 from steelyard.errors import SteelyardError
+from steelyard.findings import FailOn
 
 
 class LayersFormat(str, Enum):
@@ -43,15 +44,6 @@ class ColorChoice(str, Enum):
 
     auto = "auto"
     always = "always"
-    never = "never"
-
-
-class FailOn(str, Enum):
-    """The lowest severity that fails the gate."""
-
-    error = "error"
-    warning = "warning"
-    info = "info"
     never = "never"
 
 

@@ -29,6 +29,21 @@ class Severity(str, Enum):
 _RANK = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFO: 2}
 
 
+class FailOn(str, Enum):
+    """What fails a gate: findings of a severity or worse, or nothing (a report-only run).
+    The one place the word ``never`` is given a meaning; reports keep the value as text."""
+
+    ERROR = "error"
+    WARNING = "warning"
+    INFO = "info"
+    NEVER = "never"
+
+    @property
+    def threshold(self) -> Severity | None:
+        """The lowest failing severity; None when nothing fails."""
+        return None if self is FailOn.NEVER else Severity(self.value)
+
+
 @dataclass(frozen=True, slots=True)
 class Finding:
     """One problem a rule saw in one place."""

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from steelyard.budget import Budget
-from steelyard.findings import Severity
+from steelyard.findings import FailOn, Severity
 
 
 @dataclass(frozen=True, slots=True)
@@ -75,7 +75,7 @@ class Policy:
 
     def gate_severity(self) -> Severity | None:
         """Lowest severity that fails the gate; None for ``never``."""
-        return None if self.fail_on == "never" else Severity(self.fail_on)
+        return FailOn(self.fail_on).threshold
 
 
 def unmatched_globs(policy: Policy, audits: Sequence[CheckpointAuditLike]) -> list[str]:

@@ -21,7 +21,7 @@ from typing import Any
 from steelyard._toml import tomllib
 from steelyard.budget import Budget
 from steelyard.errors import PolicyError, SteelyardError
-from steelyard.findings import Severity
+from steelyard.findings import FailOn, Severity
 from steelyard.policy import Ignore, LayerOverride, Policy
 from steelyard.rules import registry
 
@@ -38,7 +38,7 @@ _MENTIONS_STEELYARD = re.compile(
     rb"^[ \t]*(\[\[?[ \t]*tool[ \t]*\.[ \t]*[\"']?steelyard\b|tool[ \t]*\.[ \t]*[\"']?steelyard\b)",
     re.MULTILINE,
 )
-_FAIL_ON = ("error", "warning", "info", "never")
+_FAIL_ON = tuple(f.value for f in FailOn)
 _SEVERITIES = tuple(s.value for s in Severity)
 #: Thresholds that are fractions or cosines (must lie in [0, 1]).
 _UNIT_INTERVAL = (

@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from steelyard.coverage import Coverage
-from steelyard.findings import Finding, Severity
+from steelyard.findings import FailOn, Finding, Severity
 
 AUDIT_SCHEMA = "steelyard.audit/1"
 
@@ -132,7 +132,7 @@ class Report:
     @property
     def gate(self) -> Severity | None:
         """Lowest failing severity, None for ``never``."""
-        return None if self.fail_on == "never" else Severity(self.fail_on)
+        return FailOn(self.fail_on).threshold
 
     @property
     def passed(self) -> bool:

@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from enum import Enum
 from typing import Any
 
-from steelyard.findings import Finding, Severity
+from steelyard.findings import FailOn, Finding, Severity
 
 COMPARE_SCHEMA = "steelyard.compare/1"
 
@@ -192,7 +192,7 @@ class CompareReport:
     @property
     def gate(self) -> Severity | None:
         """Lowest failing severity, None for ``never``."""
-        return None if self.fail_on == "never" else Severity(self.fail_on)
+        return FailOn(self.fail_on).threshold
 
     @property
     def passed(self) -> bool:

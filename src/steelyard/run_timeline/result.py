@@ -7,7 +7,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from steelyard.findings import Severity
+from steelyard.findings import FailOn, Severity
 
 TIMELINE_SCHEMA = "steelyard.timeline/1"
 
@@ -131,7 +131,7 @@ class Timeline:
     @property
     def gate(self) -> Severity | None:
         """Lowest failing severity, None for ``never``."""
-        return None if self.fail_on == "never" else Severity(self.fail_on)
+        return FailOn(self.fail_on).threshold
 
     def failing(self) -> list[FindingSpan]:
         """Findings present in the last checkpoint at or above the gate."""

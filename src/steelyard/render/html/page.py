@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 
 from markupsafe import Markup, escape
 
-from steelyard.findings import Finding, units_cell
+from steelyard.findings import FailOn, Finding, units_cell
 from steelyard.render.html.bundle import chart_runtime
 from steelyard.report import CAUTION
 
@@ -131,4 +131,5 @@ def verdict(gate_off: bool, failed: bool) -> dict[str, str]:
 
 def gate_text(fail_on: str) -> str:
     """The gate in words for the masthead."""
-    return "gate off" if fail_on == "never" else f"fails on {fail_on} and above"
+    threshold = FailOn(fail_on).threshold
+    return "gate off" if threshold is None else f"fails on {threshold.value} and above"

@@ -36,6 +36,10 @@ CASES: dict[str, list[str]] = {
     "audit-two.json": ["audit", HEALTHY, BAD, "-f", "json", "--grads", GRADS],
     "layers-onnx.txt": ["layers", "fixtures/demo/pumpwear-nightly-bad.onnx"],
     "layers-keras.json": ["layers", KERAS_BAD, "-f", "json"],
+    "compare-bad.json": ["compare", HEALTHY, BAD, "-f", "json"],
+    "compare-bad.md": ["compare", HEALTHY, BAD, "-f", "markdown"],
+    "compare-bad.sarif": ["compare", HEALTHY, BAD, "-f", "sarif"],
+    "compare-bad.junit.xml": ["compare", HEALTHY, BAD, "-f", "junit"],
 }
 
 

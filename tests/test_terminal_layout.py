@@ -381,6 +381,34 @@ def test_the_hash_has_its_own_label_and_the_histogram_a_legend(runs: dict[tuple[
         assert "histogram:" in legend and "log-spaced from min (left) to max (right)" in legend
 
 
+@pytest.mark.parametrize("case", ["llama", "long"])
+@pytest.mark.parametrize("width", WIDTHS)
+def test_layers_table_fits_and_keeps_names_apart(
+    models: dict[str, Path], case: str, width: int, tmp_path: Path
+) -> None:
+    table, document = tmp_path / "layers.txt", tmp_path / "layers.json"
+    runner = CliRunner()
+    env = {"COLUMNS": str(width), "NO_COLOR": "1"}
+    assert runner.invoke(app, ["layers", str(models[case]), "-o", str(table)], env=env).exit_code == 0
+    assert runner.invoke(app, ["layers", str(models[case]), "-f", "json", "-o", str(document)]).exit_code == 0
+    lines = table.read_text(encoding="utf-8").splitlines()
+    assert all(cell_len(line) <= width for line in lines)
+    names = [str(entry["name"]) for entry in json.loads(document.read_text())["layers"]]
+    first, spans = _table_after(lines, r"layer\s+kind|\s+out ×")
+    shown: list[str] = []
+    for line in lines[first:]:
+        if not line.strip():
+            break
+        if line.startswith("    fed by "):  # the compact layout's line under a row
+            continue
+        cells = _cells(line, spans)
+        if cells[1]:
+            shown.append(cells[0])
+        else:
+            shown[-1] += cells[0]
+    _assert_distinguishable(shown, names)
+
+
 GOLDEN = REPO / "tests" / "golden"
 BAD = "fixtures/demo/pumpwear-nightly-bad.safetensors"
 GOLDEN_CASES = {
@@ -388,6 +416,7 @@ GOLDEN_CASES = {
     "audit-bad-80.txt": (80, ["audit", BAD, "--grads", "fixtures/demo/pumpwear-nightly-bad.grads.safetensors"]),
     "audit-bad-200.txt": (200, ["audit", BAD, "--grads", "fixtures/demo/pumpwear-nightly-bad.grads.safetensors"]),
     "audit-two-80.txt": (80, ["audit", "fixtures/demo/pumpwear-healthy.safetensors", BAD]),
+    "layers-onnx-80.txt": (80, ["layers", "fixtures/demo/pumpwear-nightly-bad.onnx"]),
 }
 
 

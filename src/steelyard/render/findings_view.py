@@ -15,13 +15,10 @@ from dataclasses import dataclass
 from rich.text import Text
 
 from steelyard.findings import Finding, Severity, compact_units, units_cell
-from steelyard.render.fitting import wrap_words
-from steelyard.render.grid import Cell, Column, Grid
+from steelyard.render.grid import COMPACT_BELOW, Cell, Column, Grid, indented
 from steelyard.render.text import plural
 from steelyard.rules.base import RuleSpec
 
-#: Narrower terminals than this get the compact layout.
-COMPACT_BELOW = 110
 #: Rows shown in full; the rest are counted (JSON has them all).
 MAX_ROWS = 40
 #: Layers named in a folded row.
@@ -162,10 +159,3 @@ def _rows(numbers: list[int]) -> str:
     """``rows 3-4, 8-40``: row numbers as ranges."""
     spans = compact_units(tuple(numbers), limit=len(numbers)).split(",")
     return ("row " if len(numbers) == 1 else "rows ") + ", ".join(spans)
-
-
-def indented(text: str, width: int, style: str = "", indent: int = 2) -> list[Text]:
-    """``text`` wrapped at spaces into lines indented by ``indent`` cells."""
-    return [
-        Text(" " * indent + line, style=style) for line in wrap_words(text, max(1, width - indent))
-    ]

@@ -26,6 +26,33 @@ from steelyard.render.fitting import (
 )
 
 GAP = "  "
+#: Narrower terminals than this get the reports' compact layouts.
+COMPACT_BELOW = 110
+#: Width of the labels of a report header ("checkpoint", "sha256", ...).
+LABEL = 12
+
+
+def indented(text: str, width: int, style: str = "", indent: int = 2) -> list[Text]:
+    """``text`` wrapped at spaces into lines indented by ``indent`` cells."""
+    return [
+        Text(" " * indent + line, style=style) for line in wrap_words(text, max(1, width - indent))
+    ]
+
+
+def labelled(label: str, value: str | Text, width: int) -> list[Text]:
+    """``label`` then ``value`` wrapped at spaces (a path after its separators), continuation
+    lines under the value, each keeping the value's styles."""
+    text = value if isinstance(value, Text) else Text(value)
+    out: list[Text] = []
+    offset = 0
+    for index, line in enumerate(wrap_words(text.plain, max(1, width - LABEL))):
+        start = text.plain.find(line, offset)
+        # Lines are runs of the value (it wraps at spaces), so each keeps its own styles.
+        piece = text[start : start + len(line)] if line and start >= 0 else Text(line)
+        offset = start + len(line) if start >= 0 else offset
+        lead = Text(label.ljust(LABEL), style="bold") if index == 0 else Text(" " * LABEL)
+        out.append(lead + piece)
+    return out
 
 
 @dataclass(frozen=True)

@@ -37,7 +37,7 @@ def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
     from rich.markdown import Markdown
     from rich.text import Text
 
-    from steelyard.render.findings_view import indented
+    from steelyard.render.grid import indented
 
     footer = [
         f"default severity: {spec.severity.value}",

@@ -14,19 +14,24 @@ import math
 from rich.console import Group, RenderableType
 from rich.text import Text
 
-from steelyard.coverage import Coverage
 from steelyard.render.findings_view import (
-    COMPACT_BELOW,
     MAX_ROWS,
     explanations,
     findings_table,
     grouped,
     headline,
-    indented,
 )
-from steelyard.render.fitting import distinct_tails, wrap_words
-from steelyard.render.grid import Cell, Column, Grid
-from steelyard.render.text import count, human_bytes, number, percent, plural, to_text
+from steelyard.render.fitting import distinct_tails
+from steelyard.render.grid import COMPACT_BELOW, Cell, Column, Grid, indented, labelled
+from steelyard.render.text import (
+    count,
+    coverage_line,
+    human_bytes,
+    number,
+    percent,
+    plural,
+    to_text,
+)
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
 from steelyard.rules import registry
 from steelyard.text_safety import shown_deep
@@ -34,8 +39,6 @@ from steelyard.text_safety import shown_deep
 _BARS = "▁▂▃▄▅▆▇█"
 #: Tensors in no layer named in the terminal (JSON lists them all).
 _UNCOVERED_SHOWN = 8
-#: Width of the header's labels.
-_LABEL = 12
 #: Suppressed findings listed (JSON has them all).
 _SUPPRESSED_SHOWN = 40
 
@@ -46,35 +49,6 @@ def spark(histogram: tuple[int, ...]) -> str:
         return ""
     top = max(histogram)
     return "".join(" " if c == 0 else _BARS[min(7, math.ceil(7 * c / top))] for c in histogram)
-
-
-def _labelled(label: str, value: str | Text, width: int) -> list[Text]:
-    """``label`` then ``value`` wrapped at spaces (a path after its separators), continuation
-    lines under the value."""
-    text = value if isinstance(value, Text) else Text(value)
-    out: list[Text] = []
-    offset = 0
-    for index, line in enumerate(wrap_words(text.plain, max(1, width - _LABEL))):
-        start = text.plain.find(line, offset)
-        # Lines are runs of the value (it wraps at spaces), so each keeps its own styles.
-        piece = text[start : start + len(line)] if line and start >= 0 else Text(line)
-        offset = start + len(line) if start >= 0 else offset
-        lead = Text(label.ljust(_LABEL), style="bold") if index == 0 else Text(" " * _LABEL)
-        out.append(lead + piece)
-    return out
-
-
-def coverage_line(coverage: Coverage) -> str:
-    """What the layer rules saw, in the report's number style."""
-    if coverage.parameters == 0:
-        return "no parameters: nothing was checked"
-    missing = len(coverage.uncovered)
-    rest = (
-        "every counted tensor is in a layer"
-        if not missing
-        else f"{plural(missing, 'tensor')} in no layer"
-    )
-    return f"layer rules saw {percent(coverage.share)} of {count(coverage.parameters)} parameters; {rest}"
 
 
 def _verdict(report: Report, audit: CheckpointAudit) -> Text:
@@ -110,7 +84,7 @@ def _header(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     if audit.coverage is not None:
         pairs.append(("coverage", coverage_line(audit.coverage)))
     pairs.append(("verdict", _verdict(report, audit)))
-    return [line for label, value in pairs for line in _labelled(label, value, width)]
+    return [line for label, value in pairs for line in labelled(label, value, width)]
 
 
 def _flagged(row: LayerHealth) -> str:

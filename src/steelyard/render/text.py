@@ -9,6 +9,8 @@ from collections.abc import Container, Iterable
 from rich.console import Console, RenderableType
 from rich.table import Table
 
+from steelyard.coverage import Coverage
+
 
 def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width: int = 120) -> str:
     """Render to text; with ``color`` the string carries ANSI styles for a terminal."""
@@ -112,3 +114,16 @@ def percent(share: float) -> str:
 def plural(value: int, word: str, many: str | None = None) -> str:
     """'1 error', '2 errors', '1,024 units' (``many`` for irregular plurals)."""
     return f"{value:,} {word if value == 1 else (many or word + 's')}"
+
+
+def coverage_line(coverage: Coverage) -> str:
+    """What the layer rules saw, in the report's number style."""
+    if coverage.parameters == 0:
+        return "no parameters: nothing was checked"
+    missing = len(coverage.uncovered)
+    rest = (
+        "every counted tensor is in a layer"
+        if not missing
+        else f"{plural(missing, 'tensor')} in no layer"
+    )
+    return f"layer rules saw {percent(coverage.share)} of {count(coverage.parameters)} parameters; {rest}"

@@ -29,7 +29,7 @@ from steelyard.loaders import load
 from steelyard.loaders.keras import archive as keras_archive
 from steelyard.loaders.keras import hdf5_access as keras_hdf5
 from steelyard.loaders.keras.archive import KerasArchiveLoader
-from steelyard.loaders.keras.h5_layout import KerasH5Loader
+from steelyard.loaders.keras.h5_loader import KerasH5Loader
 
 FIX = Path(__file__).resolve().parents[2] / "fixtures" / "real" / "keras"
 MODELS = ("mlp", "cnn", "rnn", "nested")
@@ -821,7 +821,7 @@ def test_keras3_nested_functional_with_a_name_clash(tmp_path: Path) -> None:
 
 
 def test_constraint_axes_decide_per_unit() -> None:
-    from steelyard.loaders.keras.model_config import constraint_of
+    from steelyard.loaders.keras.layer_settings import constraint_of
 
     # FORMATS.md: MaxNorm bounds the L2 norm over ``axis`` (default 0: per Dense unit; per
     # conv filter needs [0, 1, 2]). Conv2D kernels are [kh, kw, in, out]: units on axis 3.
@@ -1073,7 +1073,7 @@ def test_hard_link_alias_of_a_dataset_is_refused(tmp_path: Path) -> None:
 
 
 def test_natural_order_of_huge_and_non_ascii_numbers() -> None:
-    from steelyard.loaders.keras.model_config import natural_key
+    from steelyard.loaders.keras.config_values import natural_key
 
     names = ["vars/10", "vars/9", "vars/" + "9" * 5000, "vars/0010", "vars/\u00b2"]
     ordered = sorted(names, key=natural_key)

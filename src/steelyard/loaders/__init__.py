@@ -22,7 +22,7 @@ _REGISTRY: tuple[tuple[str, str], ...] = (
     ("steelyard.loaders.npz", "NpzLoader"),
     ("steelyard.loaders.keras.archive", "KerasArchiveLoader"),
     ("steelyard.loaders.pytorch.loader", "PytorchLoader"),
-    ("steelyard.loaders.keras.h5_layout", "KerasH5Loader"),
+    ("steelyard.loaders.keras.h5_loader", "KerasH5Loader"),
     ("steelyard.loaders.onnx.loader", "OnnxLoader"),
     ("steelyard.loaders.gguf", "GgufLoader"),
 )

@@ -1,5 +1,8 @@
-"""Keras models: ``archive`` (``.keras`` zip archives) and ``h5_layout`` (legacy HDF5 and
-``.weights.h5``: where Keras puts each variable) read through ``hdf5_access`` (checked HDF5
-access, every h5py call in a sandboxed child process); ``model_config`` (config parsing,
-variable roles, canonical orientation), ``layers`` (layers and links) and ``optimizer``
-(optimizer slots mapped onto model variables)."""
+"""Keras models: ``archive`` (``.keras`` zip archives) and ``h5_loader`` (HDF5 files), which read
+``weights_h5`` (Keras 3 ``.weights.h5``: where Keras puts each variable) and ``legacy_h5``
+(legacy whole models and weights-only ``.h5``) through ``h5_file`` (where the bytes are, links
+walked one at a time) and ``hdf5_access`` (checked attributes and datasets, every h5py call in
+a sandboxed child process); ``model_config`` (the config flattened into atoms, with
+``inbound``, ``config_values``, ``layer_classes``, ``variables`` and ``layer_settings``),
+``layers`` (layers and links: ``layer_factory``, ``orientation``, ``linking``) and
+``optimizer`` (optimizer slots mapped onto model variables)."""

@@ -30,10 +30,11 @@ from steelyard.loaders.base import (
     spill_member,
 )
 from steelyard.loaders.keras import hdf5_access as kh
-from steelyard.loaders.keras import model_config as kc
 from steelyard.loaders.keras import optimizer as ko
-from steelyard.loaders.keras.h5_layout import read_weights_h5
-from steelyard.loaders.keras.hdf5_access import H5Store, Location
+from steelyard.loaders.keras.h5_file import Location
+from steelyard.loaders.keras.hdf5_access import H5Store
+from steelyard.loaders.keras.model_config import parse_model
+from steelyard.loaders.keras.weights_h5 import keras_checkpoint, read_weights_h5
 from steelyard.loaders.sandbox import isolated
 
 CONFIG = "config.json"
@@ -139,7 +140,7 @@ def load_archive(path: Path, spill: Path | None = None, spent: int = 0) -> Check
             location = Location(path, info.file_size, spill=spill)
     if not isinstance(config, dict):
         raise LoadError(path, f"{CONFIG} is not a JSON object")
-    graph = kc.parse_model(config, path)
+    graph = parse_model(config, path)
     if graph is None:
         notes.append(f"{CONFIG} does not list the model's layers (subclassed model?)")
     else:
@@ -150,15 +151,5 @@ def load_archive(path: Path, spill: Path | None = None, spent: int = 0) -> Check
     )
     store = H5Store(path, location, spent)
     with store.open() as f:
-        tensors, layers, optimizer, more = read_weights_h5(store, f, graph, opt)
-    notes.extend(more)
-    return Checkpoint(
-        path=str(path),
-        format=Format.KERAS,
-        tensors=tensors,
-        layers=layers,
-        file_size=size,
-        files=(str(path),),
-        optimizer=optimizer,
-        notes=tuple(notes),
-    )
+        read = read_weights_h5(store, f, graph, opt)
+    return keras_checkpoint(path, Format.KERAS, size, read, notes)

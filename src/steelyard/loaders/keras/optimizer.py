@@ -17,14 +17,9 @@ from typing import Any
 import numpy as np
 
 from steelyard.graph import OptimizerSlots, OptimizerState, Tensor
-from steelyard.loaders.keras.model_config import (
-    Atom,
-    as_dict,
-    class_name,
-    flag,
-    non_trainable_roles,
-    number,
-)
+from steelyard.loaders.keras.config_values import as_dict, class_name, flag, number
+from steelyard.loaders.keras.model_config import Atom
+from steelyard.loaders.keras.variables import non_trainable_roles
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,338 @@
+"""One Keras atom as layers: Dense, Conv, ConvTranspose, DepthwiseConv and Embedding become one
+layer, SeparableConv two (depthwise + pointwise), LSTM/GRU/SimpleRNN one per gate and part
+(kernel and recurrent kernel), each in canonical orientation with its bias, activation,
+constraint and regularizer."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from steelyard.errors import LoadError
+from steelyard.graph import Activation, Layer, LayerKind, Link, Tensor
+from steelyard.loaders.keras.layer_classes import (
+    CONV,
+    CONV_T,
+    DENSE,
+    DEPTHWISE,
+    EMBEDDING,
+    RNN_GATES,
+    SEPARABLE,
+)
+from steelyard.loaders.keras.layer_settings import activation_of, constraint_of, regularizer_of
+from steelyard.loaders.keras.model_config import Atom
+from steelyard.loaders.keras.orientation import (
+    bias_slice,
+    conv_canonical,
+    conv_transpose_canonical,
+    dense_canonical,
+    depthwise_canonical,
+    float_view,
+    gate_columns,
+    same,
+)
+
+
+@dataclass
+class Built:
+    """The layers one atom became, and which of them face its inputs and its consumers."""
+
+    layers: list[Layer]
+    entry: list[str]
+    """Layers whose inputs are the atom's inputs."""
+    port: str | None
+    """Layer whose units the atom outputs (None: outputs are not one layer's units)."""
+    last: str | None
+    """Layer that gets the atom's activation and norm."""
+
+
+class LayerFactory:
+    def __init__(self, source: Path) -> None:
+        self.source = source
+
+    def fail(self, atom: Atom, reason: str) -> LoadError:
+        return LoadError(self.source, f"layer {atom.name!r} ({atom.cls}): {reason}")
+
+    def tensor(self, atom: Atom, role: str) -> Tensor:
+        return atom.weights[role]
+
+    def bias(self, atom: Atom, units: int) -> tuple[str | None, Callable[[], np.ndarray] | None]:
+        bias = atom.weights.get("bias")
+        if bias is None:
+            return None, None
+        if bias.shape != (units,):
+            raise self.fail(atom, f"bias {bias.name!r} has shape {bias.shape}, expected ({units},)")
+        return bias.name, float_view(bias, same)
+
+    def build(self, atom: Atom, have_config: bool) -> Built | None:
+        cls = atom.cls
+        conf = atom.config
+        activation = activation_of(conf.get("activation")) if have_config else Activation.UNKNOWN
+        if cls in DENSE:
+            return self._dense(atom, activation)
+        if cls in CONV:
+            return self._conv(atom, activation, CONV[cls], transposed=False)
+        if cls in CONV_T:
+            return self._conv(atom, activation, CONV_T[cls], transposed=True)
+        if cls in DEPTHWISE:
+            return self._depthwise(atom, activation, DEPTHWISE[cls])
+        if cls in SEPARABLE:
+            return self._separable(atom, activation, SEPARABLE[cls])
+        if cls in EMBEDDING:
+            return self._embedding(atom)
+        if cls in RNN_GATES:
+            return _recurrent(self, atom, have_config)
+        return None
+
+    def _extras(
+        self, atom: Atom, prefix: str, kernel: Tensor, unit_axes: set[int]
+    ) -> dict[str, Any]:
+        conf = atom.config
+        ndim = len(kernel.shape)
+        return {
+            "constraint": constraint_of(conf.get(f"{prefix}_constraint"), ndim, unit_axes),
+            "regularizer": regularizer_of(conf.get(f"{prefix}_regularizer")),
+        }
+
+    def _dense(self, atom: Atom, activation: Activation) -> Built:
+        kernel = self.tensor(atom, "kernel")
+        if len(kernel.shape) != 2:
+            raise self.fail(
+                atom, f"kernel {kernel.name!r} has shape {kernel.shape}, expected [in, out]"
+            )
+        fan, units = kernel.shape
+        bias, bias_view = self.bias(atom, units)
+        layer = Layer(
+            name=atom.name,
+            kind=LayerKind.DENSE,
+            weight=kernel.name,
+            bias=bias,
+            units=units,
+            in_per_group=fan,
+            kernel=(),
+            groups=1,
+            activation=activation,
+            weight_view=float_view(kernel, dense_canonical),
+            orient=dense_canonical,
+            bias_view=bias_view,
+            **self._extras(atom, "kernel", kernel, {1}),
+        )
+        return Built([layer], [atom.name], atom.name, atom.name)
+
+    def _conv(self, atom: Atom, activation: Activation, rank: int, transposed: bool) -> Built:
+        kernel = self.tensor(atom, "kernel")
+        shape = kernel.shape
+        if len(shape) != rank + 2:
+            layout = "[k…, out, in]" if transposed else "[k…, in/groups, out]"
+            raise self.fail(atom, f"kernel {kernel.name!r} has shape {shape}, expected {layout}")
+        groups = 1
+        if not transposed:
+            value = atom.config.get("groups", 1)
+            groups = value if isinstance(value, int) and not isinstance(value, bool) else 1
+            if groups < 1 or shape[-1] % groups:
+                raise self.fail(atom, f"groups={value!r} does not divide {shape[-1]} filters")
+        if transposed:
+            units, fan, unit_axis = shape[-2], shape[-1], rank
+            kind, view = LayerKind.CONV_TRANSPOSE, conv_transpose_canonical
+        else:
+            units, fan, unit_axis = shape[-1], shape[-2], rank + 1
+            kind, view = LayerKind.CONV, conv_canonical
+        bias, bias_view = self.bias(atom, units)
+        layer = Layer(
+            name=atom.name,
+            kind=kind,
+            weight=kernel.name,
+            bias=bias,
+            units=units,
+            in_per_group=fan,
+            kernel=tuple(shape[:-2]),
+            groups=groups,
+            activation=activation,
+            weight_view=float_view(kernel, view),
+            orient=view,
+            bias_view=bias_view,
+            **self._extras(atom, "kernel", kernel, {unit_axis}),
+        )
+        return Built([layer], [atom.name], atom.name, atom.name)
+
+    def _depthwise_layer(
+        self,
+        atom: Atom,
+        kernel: Tensor,
+        rank: int,
+        name: str,
+        activation: Activation,
+        with_bias: bool,
+    ) -> Layer:
+        shape = kernel.shape
+        if len(shape) != rank + 2:
+            raise self.fail(
+                atom, f"depthwise kernel {kernel.name!r} has shape {shape}, expected [k…, C, dm]"
+            )
+        channels, multiplier = shape[-2], shape[-1]
+        units = channels * multiplier
+        bias, bias_view = self.bias(atom, units) if with_bias else (None, None)
+        return Layer(
+            name=name,
+            kind=LayerKind.CONV,
+            weight=kernel.name,
+            bias=bias,
+            units=units,
+            in_per_group=1,
+            kernel=tuple(shape[:-2]),
+            groups=channels,
+            activation=activation,
+            weight_view=float_view(kernel, depthwise_canonical),
+            orient=depthwise_canonical,
+            bias_view=bias_view,
+            **self._extras(atom, "depthwise", kernel, {rank, rank + 1}),
+        )
+
+    def _depthwise(self, atom: Atom, activation: Activation, rank: int) -> Built:
+        layer = self._depthwise_layer(
+            atom, self.tensor(atom, "kernel"), rank, atom.name, activation, True
+        )
+        return Built([layer], [atom.name], atom.name, atom.name)
+
+    def _separable(self, atom: Atom, activation: Activation, rank: int) -> Built:
+        depth_name, point_name = f"{atom.name}/depthwise", f"{atom.name}/pointwise"
+        depthwise = self._depthwise_layer(
+            atom,
+            self.tensor(atom, "depthwise_kernel"),
+            rank,
+            depth_name,
+            Activation.IDENTITY,
+            False,
+        )
+        point = self.tensor(atom, "pointwise_kernel")
+        shape = point.shape
+        if (
+            len(shape) != rank + 2
+            or any(k != 1 for k in shape[:-2])
+            or shape[-2] != depthwise.units
+        ):
+            raise self.fail(
+                atom,
+                f"pointwise kernel {point.name!r} has shape {shape}, expected [1…, {depthwise.units}, out]",
+            )
+        units = shape[-1]
+        bias, bias_view = self.bias(atom, units)
+        pointwise = Layer(
+            name=point_name,
+            kind=LayerKind.CONV,
+            weight=point.name,
+            bias=bias,
+            units=units,
+            in_per_group=shape[-2],
+            kernel=tuple(shape[:-2]),
+            groups=1,
+            activation=activation,
+            weight_view=float_view(point, conv_canonical),
+            orient=conv_canonical,
+            bias_view=bias_view,
+            inputs_from=(depth_name,),
+            linked_by=Link.CONFIG,
+            **self._extras(atom, "pointwise", point, {rank + 1}),
+        )
+        return Built([depthwise, pointwise], [depth_name], point_name, point_name)
+
+    def _embedding(self, atom: Atom) -> Built:
+        table = self.tensor(atom, "embeddings")
+        if len(table.shape) != 2:
+            raise self.fail(
+                atom, f"embeddings {table.name!r} has shape {table.shape}, expected [vocab, dim]"
+            )
+        conf = atom.config
+        # Stored [vocab, dim] is already rows-first, like a lookup table elsewhere.
+        layer = Layer(
+            name=atom.name,
+            kind=LayerKind.EMBEDDING,
+            weight=table.name,
+            bias=None,
+            units=table.shape[0],
+            in_per_group=table.shape[1],
+            kernel=(),
+            groups=1,
+            activation=Activation.IDENTITY,
+            weight_view=float_view(table, same),
+            orient=same,
+            constraint=constraint_of(conf.get("embeddings_constraint"), 2, {0}),
+            regularizer=regularizer_of(conf.get("embeddings_regularizer")),
+        )
+        return Built([layer], [atom.name], None, None)
+
+
+def _recurrent(factory: LayerFactory, atom: Atom, have_config: bool) -> Built:
+    """One layer per gate of the kernel and of the recurrent kernel ``[in or H, G·H]``."""
+    gates = RNN_GATES[atom.cls]
+    kernel = factory.tensor(atom, "kernel")
+    recurrent = factory.tensor(atom, "recurrent_kernel")
+    if len(recurrent.shape) != 2 or recurrent.shape[1] != len(gates) * recurrent.shape[0]:
+        raise factory.fail(
+            atom,
+            f"recurrent kernel {recurrent.name!r} has shape {recurrent.shape}, expected [H, {len(gates)}·H]",
+        )
+    hidden = recurrent.shape[0]
+    if len(kernel.shape) != 2 or kernel.shape[1] != len(gates) * hidden:
+        raise factory.fail(
+            atom,
+            f"kernel {kernel.name!r} has shape {kernel.shape}, expected [in, {len(gates) * hidden}]",
+        )
+    bias = atom.weights.get("bias")
+    rows: tuple[int | None, int | None] = (None, None)
+    width = len(gates) * hidden
+    if bias is not None:
+        if bias.shape == (width,):
+            rows = (-1, None)
+        elif bias.shape == (2, width):
+            rows = (0, 1)  # GRU reset_after: input bias, then recurrent bias
+        else:
+            raise factory.fail(atom, f"bias {bias.name!r} has shape {bias.shape}")
+    conf = atom.config
+    if have_config:
+        cell_act = activation_of(conf.get("activation", "tanh"))
+        gate_act = activation_of(conf.get("recurrent_activation", "sigmoid"))
+    else:
+        cell_act = gate_act = Activation.UNKNOWN
+    if atom.cls == "SimpleRNN":
+        gate_acts = {"h": cell_act}
+    else:
+        gate_acts = {g: (cell_act if g in ("c", "h") else gate_act) for g in gates}
+    layers: list[Layer] = []
+    entry: list[str] = []
+    for part, tensor, row, prefix in (
+        ("kernel", kernel, rows[0], "kernel"),
+        ("recurrent_kernel", recurrent, rows[1], "recurrent"),
+    ):
+        extras = factory._extras(atom, prefix, tensor, {1})
+        for index, gate in enumerate(gates):
+            columns = slice(index * hidden, (index + 1) * hidden)
+            name = f"{atom.name}/{part}/{gate}"
+            bias_view = None
+            if bias is not None and row is not None:
+                bias_view = float_view(bias, bias_slice(columns, row))
+            layers.append(
+                Layer(
+                    name=name,
+                    kind=LayerKind.RECURRENT,
+                    weight=tensor.name,
+                    bias=bias.name if bias_view is not None and bias is not None else None,
+                    units=hidden,
+                    in_per_group=tensor.shape[0],
+                    kernel=(),
+                    groups=1,
+                    activation=gate_acts[gate],
+                    weight_view=float_view(tensor, gate_columns(columns)),
+                    orient=gate_columns(columns),
+                    bias_view=bias_view,
+                    gate=gate,
+                    **extras,
+                )
+            )
+            if part == "kernel":
+                entry.append(name)
+    return Built(layers, entry, None, None)

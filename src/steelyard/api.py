@@ -383,7 +383,7 @@ def compare(
 
 
 def timeline(
-    paths: Sequence[str | Path],
+    paths: str | Path | Sequence[str | Path],
     order: str = "step",
     policy: Policy | str | Path | None = None,
     created: str | None = None,
@@ -398,7 +398,7 @@ def timeline(
     last checkpoint at or above ``fail_on``), ``timeline.to_json()`` the
     ``steelyard.timeline/1`` document. Fewer than two checkpoints, one that cannot be read,
     or checkpoints that share no layer raise :class:`~steelyard.errors.LoadError` or
-    :class:`~steelyard.errors.SteelyardError`."""
+    :class:`~steelyard.errors.SteelyardError`. ``paths`` is one path (a run folder) or a list."""
     from steelyard.run_timeline.engine import RunSettings, build_timeline
     from steelyard.run_timeline.ordering import Order, arrange
 
@@ -408,9 +408,10 @@ def timeline(
         raise SteelyardError(f"order {order!r}: use step, name or given") from None
     chosen = policy_in_force(policy)
     with _limits(budget, chosen):
-        placed, notes = arrange(list(paths), chosen_order)
+        named = [paths] if isinstance(paths, (str, Path)) else list(paths)
+        placed, notes = arrange(named, chosen_order)
         if len(placed) < 2:
-            where = ", ".join(str(p) for p in paths) or "no paths"
+            where = ", ".join(str(p) for p in named) or "no paths"
             raise SteelyardError(
                 f"{where}: a timeline needs at least two checkpoints, found {len(placed)}"
             )

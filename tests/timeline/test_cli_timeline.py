@@ -139,3 +139,13 @@ def test_api_function_survives_importing_the_engine() -> None:
 
     assert callable(steelyard.timeline)
     assert steelyard.timeline.__module__ == "steelyard.api"
+
+
+def test_api_takes_one_run_folder_or_a_list() -> None:
+    import steelyard
+    from steelyard.policy import Policy
+
+    one = steelyard.timeline(RUN, policy=Policy(), created="2026-01-01T00:00:00Z")
+    listed = steelyard.timeline([str(RUN)], policy=Policy(), created="2026-01-01T00:00:00Z")
+    assert one.to_json() == listed.to_json()
+    assert len(one.checkpoints) == 12

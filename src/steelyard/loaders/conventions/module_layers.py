@@ -66,6 +66,7 @@ def norm_of(module: Module) -> Norm | None:
 
 
 def unit_count(module: Module) -> int:
+    """Units of a norm module (its scale's or statistics' length); -1 when unknown."""
     leaves = module.leaves
     for key in ("weight", "gamma", "running_mean"):
         if key in leaves and leaves[key].shape:
@@ -74,6 +75,7 @@ def unit_count(module: Module) -> int:
 
 
 def weight_layer(module: Module, model_type: str) -> Layer | None:
+    """The layer a module's 2-5-D floating weight makes (weight-normalised or not), or None."""
     weight = module.leaves.get("weight")
     gain: Tensor | None = None
     dim: int | bool | None = False

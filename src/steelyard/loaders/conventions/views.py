@@ -25,6 +25,8 @@ from steelyard.graph import RowSlice, Tensor
 def float_reader(
     tensor: Tensor, transform: Callable[[np.ndarray], np.ndarray] | None = None
 ) -> Callable[[], np.ndarray]:
+    """Read ``tensor`` as float32, through ``transform`` when given (contiguous result)."""
+
     def read() -> np.ndarray:
         array = tensor.read_float32()
         return np.ascontiguousarray(transform(array)) if transform else array

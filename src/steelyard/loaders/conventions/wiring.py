@@ -123,6 +123,7 @@ def _sibling_norm(name: str, parent: str, leaf: str, norms: Mapping[str, Norm]) 
 def attach_norms(
     layers: list[Layer], modules: Mapping[str, Module], norms: Mapping[str, Norm]
 ) -> list[Layer]:
+    """Each layer with the norm beside it (by naming habit) when its unit count matches."""
     out: list[Layer] = []
     for layer in layers:
         if layer.kind in (LayerKind.RECURRENT, LayerKind.EMBEDDING):

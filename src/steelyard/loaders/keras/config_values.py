@@ -28,10 +28,12 @@ def natural_key(text: str) -> list[Any]:
 
 
 def as_dict(value: Any) -> dict[str, Any]:
+    """``value`` when it is a JSON object, else an empty dict."""
     return value if isinstance(value, dict) else {}
 
 
 def number(value: Any) -> float | None:
+    """``value`` as a finite float; None for anything else (booleans included)."""
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         return None
     number = float(value)
@@ -39,6 +41,7 @@ def number(value: Any) -> float | None:
 
 
 def flag(config: Mapping[str, Any], key: str, default: bool) -> bool:
+    """The boolean ``config[key]``, ``default`` when absent or not a boolean."""
     value = config.get(key, default)
     return value if isinstance(value, bool) else default
 

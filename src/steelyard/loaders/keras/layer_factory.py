@@ -51,6 +51,8 @@ class Built:
 
 
 class LayerFactory:
+    """Builds the layers of one atom, checking its variables' shapes against its class."""
+
     def __init__(self, source: Path) -> None:
         self.source = source
 

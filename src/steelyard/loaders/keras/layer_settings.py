@@ -23,6 +23,7 @@ def activation_of(value: Any) -> Activation:
 
 
 def activation_layer(atom: Atom) -> Activation:
+    """The activation an activation layer (``Activation``, ``ReLU``…) applies."""
     conf = atom.config
     if atom.cls == "Activation":
         return activation_of(conf.get("activation"))

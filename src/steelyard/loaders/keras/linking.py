@@ -29,6 +29,7 @@ from steelyard.loaders.keras.model_config import Atom
 
 
 def unit_kind(cls: str) -> str:
+    """What a class is to the links: ``unit``, ``input``, ``merge``, ``pass`` or ``opaque``."""
     if cls in UNIT:
         return "unit"
     if cls == "InputLayer":
@@ -192,6 +193,8 @@ def _channel_axis_ok(axis: Any, producer: Atom) -> bool:
 
 
 def norm_from(atom: Atom, units: int, producer: Atom) -> Norm | None:
+    """The norm ``atom`` applies to the ``units`` of ``producer``; None when it normalises
+    something else."""
     conf = atom.config
     gamma, beta = atom.weights.get("gamma"), atom.weights.get("beta")
     for tensor in (gamma, beta):

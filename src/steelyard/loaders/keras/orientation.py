@@ -29,10 +29,12 @@ class View:
 
 
 def float_view(tensor: Tensor, transform: Callable[[np.ndarray], np.ndarray]) -> View:
+    """``tensor`` read through ``transform`` (a picklable :class:`View`)."""
     return View(tensor, transform)
 
 
 def same(array: np.ndarray) -> np.ndarray:
+    """The stored orientation is canonical."""
     return array
 
 

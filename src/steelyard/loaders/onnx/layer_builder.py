@@ -1,4 +1,4 @@
-"""ONNX nodes as layer drafts, in canonical orientation (rows are always output units):
+"""ONNX nodes as layer drafts in canonical orientation (rows are always output units):
 
 * Gemm: ``alpha·B`` as ``[out, in]`` (``B`` when ``transB=1``, ``Bᵀ`` otherwise); bias ``beta·C``
   when C holds one value per unit.

@@ -48,6 +48,9 @@ def f32(
     transform: Callable[[np.ndarray], np.ndarray] | None = None,
     shape: tuple[int, ...] | None = None,
 ) -> Array:
+    """``read`` as contiguous float32, through ``transform`` and reshaped to ``shape`` when
+    given."""
+
     def view() -> np.ndarray:
         array = np.asarray(read()).astype(np.float32)
         if transform is not None:

@@ -37,6 +37,8 @@ def optimizer_state(
     order: str,
     notes: list[str],
 ) -> OptimizerState | None:
+    """The optimizer state stored beside the weights in ``container``, by tensor name; None
+    (with a note saying why) when there is none or it cannot be mapped without guessing."""
     keys = [k for k in OPTIMIZER_KEYS if k in container]
     if not keys:
         return None

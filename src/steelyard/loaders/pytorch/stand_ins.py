@@ -140,16 +140,20 @@ class StateDict(OrderedDict[Any, Any]):
 
 
 def opaque_class(qualname: str, base: type[Opaque] = Opaque) -> type[Opaque]:
+    """A placeholder class standing for the global ``qualname``."""
     return type(qualname.rsplit(".", 1)[-1], (base,), {"qualname": qualname, "__slots__": ()})
 
 
 def checked_int(value: object, what: str, minimum: int = 0) -> int:
+    """``value`` when it is an integer of at least ``minimum``, else Unsupported naming ``what``."""
     if not isinstance(value, int) or isinstance(value, bool) or value < minimum:
         raise Unsupported(f"{what} is {type(value).__name__} {short(value)}, not an integer")
     return value
 
 
 def checked_ints(value: object, what: str) -> tuple[int, ...]:
+    """``value`` as a tuple of non-negative integers (at most :data:`MAX_DIMS`), else
+    Unsupported."""
     if not isinstance(value, (tuple, list)) or len(value) > MAX_DIMS:
         raise Unsupported(f"{what} is not a short list of integers")
     if all(type(v) is int and v >= 0 for v in value):
@@ -158,6 +162,7 @@ def checked_ints(value: object, what: str) -> tuple[int, ...]:
 
 
 def short(value: object) -> str:
+    """A scalar shown for a message (cut to 40 characters); empty for anything else."""
     if isinstance(value, (int, float, str, bool)) or value is None:
         text = repr(value)
         return text if len(text) <= 40 else text[:37] + "..."

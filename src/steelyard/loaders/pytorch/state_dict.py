@@ -50,6 +50,8 @@ _PREFIXES = ("module.", "_orig_mod.")
 
 @dataclass
 class Found:
+    """The tensors found in the unpickled tree and where they were."""
+
     tensors: dict[str, TensorRef]
     where: str | None
     """The key path of the state dict inside the checkpoint (None: the top level)."""
@@ -62,6 +64,7 @@ class Found:
 
 
 def brief(value: object) -> str:
+    """A value shown for a message: short, and never ``repr`` of a huge integer."""
     if isinstance(value, int) and not isinstance(value, bool) and value.bit_length() > 128:
         # repr() of an integer of thousands of digits raises (sys.int_max_str_digits).
         return f"an integer of {value.bit_length():,} bits"
@@ -111,6 +114,7 @@ class _Walk:
 
 
 def find_weights(root: object, path: Path) -> Found:
+    """The state dict in an unpickled checkpoint, or LoadError when there is none."""
     walk = _Walk(path)
     found = _find_in(root, path, walk)
     if walk.repeated:
@@ -232,6 +236,7 @@ def _finish(
 
 
 def strip_prefixes(name: str, prefixes: tuple[str, ...]) -> str:
+    """``name`` without the wrapper prefixes stripped from the state dict's names."""
     start = 0
     for prefix in prefixes:
         if name.startswith(prefix, start):

@@ -280,6 +280,8 @@ def zip_source(
     size: int,
     ledger: budget.Ledger,
 ) -> StorageSource:
+    """Where each storage under ``folder`` of a zip archive is (stored spans or compressed
+    members)."""
     source = StorageSource(path, ledger)
     with open(path, "rb") as handle:
         for name, info in members.items():

@@ -22,7 +22,8 @@ from . import _reference as ref
 def _small_row_blocks(monkeypatch: pytest.MonkeyPatch) -> None:
     """Decode three rows per block so that every test crosses row-block boundaries."""
     monkeypatch.setattr(
-        assemble, "row_blocks", lambda rows, n: row_blocks(rows, n, block_bytes=12 * max(n, 1))
+        assemble, "row_blocks",
+        lambda rows, n, _bytes=None: row_blocks(rows, n, block_bytes=12 * max(n, 1)),
     )
 
 

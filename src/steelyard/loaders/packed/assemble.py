@@ -43,6 +43,11 @@ class Decoder(Protocol):
     def rows(self, start: int, stop: int) -> np.ndarray: ...
 
 
+#: Float32 bytes decoded per step. Decoders hold several block-sized temporaries (unpacked
+#: codes, gathered scales and zeros, products), so the step is a quarter of the audit's row
+#: block: the working set stays near one row block however large the read.
+DECODE_BYTES = 4 * 2**20
+
 #: Builds a layout's decoder from its parts; registered per layout in ``builders``.
 Builder = Callable[[Path, PackedModule, Mapping[str, StoredPart], QuantConfig], Decoder]
 
@@ -65,7 +70,7 @@ def logical_tensor(name: str, decoder: Decoder, path: Path, stored_bytes: int) -
         if not out.size:
             return out
         first = start // n_in
-        for a, b in row_blocks(-(-stop // n_in) - first, n_in):
+        for a, b in row_blocks(-(-stop // n_in) - first, n_in, DECODE_BYTES):
             a, b = a + first, b + first
             # A NaN or Inf scale is data the audit reports, not a warning to print.
             with np.errstate(all="ignore"):

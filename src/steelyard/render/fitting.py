@@ -51,13 +51,17 @@ def _hard_cut(piece: str, width: int) -> list[str]:
     return [*lines, current] if current else lines
 
 
-def _pack(pieces: Iterable[str], width: int, joiner: str, finer: str = "") -> list[str]:
-    """Greedy packing of pieces into lines of at most ``width`` cells; a piece wider than a
-    line is split after the ``finer`` separators, and only then cut."""
+def _pack(
+    pieces: Iterable[str | tuple[str, str]], width: int, joiner: str, finer: str = ""
+) -> list[str]:
+    """Greedy packing of pieces into lines of at most ``width`` cells, joined by ``joiner``
+    (or by the joiner a ``(piece, joiner)`` pair brings); a piece wider than a line is split
+    after the ``finer`` separators, and only then cut."""
     lines: list[str] = []
     current = ""
-    for piece in pieces:
-        candidate = f"{current}{joiner}{piece}" if current else piece
+    for item in pieces:
+        piece, join = (item, joiner) if isinstance(item, str) else item
+        candidate = f"{current}{join}{piece}" if current else piece
         if cell_len(candidate) <= width:
             current = candidate
             continue
@@ -89,9 +93,14 @@ def wrap_words(text: str, width: int) -> list[str]:
     line (a long tensor name quoted in a message) wraps after its separators instead."""
     lines: list[str] = []
     for paragraph in text.split("\n"):
-        pieces: list[str] = []
+        pieces: list[tuple[str, str]] = []
         for word in paragraph.split():
-            pieces += [word] if cell_len(word) <= width else wrap_name(word, width)
+            if cell_len(word) <= width:
+                pieces.append((word, " "))
+                continue
+            # The parts of a split word join each other with nothing, never with a space.
+            first, *rest = wrap_name(word, width)
+            pieces += [(first, " "), *((part, "") for part in rest)]
         lines += _pack(pieces, max(1, width), " ")
     return lines
 

@@ -26,6 +26,7 @@ import argparse
 import shutil
 import sys
 import tempfile
+import time
 from pathlib import Path
 
 from _common import MemoryProbe, Shape, emit, machine, mib, run_child, write_checkpoint
@@ -35,26 +36,24 @@ BASE = Shape(vocab=4096, hidden=384, intermediate=1024, layers=3)
 
 
 def child(mode: str, paths: list[str]) -> None:
+    import ml_dtypes  # noqa: F401  (bf16 for the safetensors numpy backend)
+    from safetensors.numpy import load_file
+
+    import steelyard
+    from steelyard.policy import Policy
+
+    started = time.perf_counter()  # the work only, imports excluded
     with MemoryProbe() as probe:
         if mode == "read":
-            import ml_dtypes  # noqa: F401  (bf16 for the safetensors numpy backend)
-            from safetensors.numpy import load_file
-
             tensors = load_file(paths[0])
             probe.sample()
             del tensors
         elif mode == "audit":
-            import steelyard
-            from steelyard.policy import Policy
-
             steelyard.audit(paths[0], policy=Policy(), jobs=1)
         else:
-            import steelyard
-            from steelyard.policy import Policy
-
             result = steelyard.timeline(paths, policy=Policy(), jobs=1)
             assert len(result.checkpoints) == len(paths)
-    emit(probe.report())
+    emit({**probe.report(), "seconds": time.perf_counter() - started})
 
 
 def _shape(scale: float) -> Shape:
@@ -101,10 +100,15 @@ def main() -> int:
         f"model: {shape.parameters:,} parameters bf16 ({mib(2 * shape.parameters)} per "
         f"checkpoint), {args.count} checkpoints"
     )
-    print(f"{'step':<16} {'start RSS':>10} {'VmHWM':>10} {'peak RssAnon':>14}")
+    print(f"{'step':<16} {'start RSS':>10} {'VmHWM':>10} {'peak RssAnon':>14} {'seconds':>8}")
     for name, row in rows.items():
         start, hwm, anon = mib(row["start_rss"]), mib(row["vm_hwm"]), mib(row["peak_anon"])
-        print(f"{name:<16} {start:>10} {hwm:>10} {anon:>14}")
+        print(f"{name:<16} {start:>10} {hwm:>10} {anon:>14} {row['seconds']:>8.1f}")
+    added = rows[f"timeline-{args.count}"]["seconds"] - rows[f"timeline-{few}"]["seconds"]
+    print(
+        f"timeline seconds per added checkpoint: {added / (args.count - few):.2f} "
+        f"(one audit: {rows['audit']['seconds']:.2f}; the rest is drift and its extra reads)"
+    )
     ratio = rows[f"timeline-{args.count}"]["vm_hwm"] / rows[f"timeline-{few}"]["vm_hwm"]
     anon = rows[f"timeline-{args.count}"]["peak_anon"] / rows[f"timeline-{few}"]["peak_anon"]
     print(f"peak RSS ratio {args.count} / {few} checkpoints: {ratio:.3f} (target <= {TARGET})")

@@ -431,3 +431,15 @@ def test_golden_widths(name: str, update_golden: bool, monkeypatch: pytest.Monke
     if update_golden or not target.exists():
         target.write_text(result.stdout, encoding="utf-8")
     assert result.stdout == target.read_text(encoding="utf-8")
+
+
+def test_colour_marks_the_verdict_not_the_whole_line() -> None:
+    result = CliRunner().invoke(
+        app, ["--color", "always", "audit", str(DEMO / "pumpwear-nightly-bad.safetensors")],
+        env={"COLUMNS": "80"},
+    )
+    verdict = next(line for line in result.stdout.splitlines() if "verdict" in line)
+    # SGR 1;31 (bold red) on the word FAIL only, then plain text (ECMA-48 select graphic rendition).
+    assert re.search(r"\x1b\[1;31mFAIL\x1b\[0m \d+ errors?, ", verdict), verdict
+    plain = re.sub(r"\x1b\[[0-9;]*m", "", result.stdout)
+    assert all(cell_len(line) <= 80 for line in plain.splitlines())

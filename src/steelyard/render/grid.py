@@ -50,8 +50,9 @@ def labelled(label: str, value: str | Text, width: int) -> list[Text]:
         # Lines are runs of the value (it wraps at spaces), so each keeps its own styles.
         piece = text[start : start + len(line)] if line and start >= 0 else Text(line)
         offset = start + len(line) if start >= 0 else offset
-        lead = Text(label.ljust(LABEL), style="bold") if index == 0 else Text(" " * LABEL)
-        out.append(lead + piece)
+        # The label's bold is a span of its own, not the line's base style.
+        lead = (label.ljust(LABEL), "bold") if index == 0 else " " * LABEL
+        out.append(Text.assemble(lead, piece))
     return out
 
 

@@ -394,6 +394,11 @@ def test_layers_table_fits_and_keeps_names_apart(
     lines = table.read_text(encoding="utf-8").splitlines()
     assert all(cell_len(line) <= width for line in lines)
     names = [str(entry["name"]) for entry in json.loads(document.read_text())["layers"]]
+    _assert_distinguishable(_layers_rows(lines), names)
+
+
+def _layers_rows(lines: list[str]) -> list[str]:
+    """The layer cells of ``steelyard layers``' table, wrapped names joined."""
     first, spans = _table_after(lines, r"layer\s+kind|\s+out ×")
     shown: list[str] = []
     for line in lines[first:]:
@@ -406,7 +411,7 @@ def test_layers_table_fits_and_keeps_names_apart(
             shown.append(cells[0])
         else:
             shown[-1] += cells[0]
-    _assert_distinguishable(shown, names)
+    return shown
 
 
 GOLDEN = REPO / "tests" / "golden"

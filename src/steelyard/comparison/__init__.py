@@ -35,6 +35,7 @@ from steelyard.comparison.diff import (
 )
 from steelyard.comparison.knowledge import share_structure
 from steelyard.comparison.matching import Pair, match_layers
+from steelyard.comparison.precision import converter_rows, precision_measures, scheme_aliases
 from steelyard.comparison.report import (
     CompareCoverage,
     CompareReport,
@@ -99,13 +100,17 @@ def _align_all(
     lines up under it; rejecting one can break another, so this repeats until stable."""
     order = _topological(pairs, new)
     allowed = {p.new.name for p in order if p.new is not None}
+    conventions = converter_rows(order, old, new)
     rejected: dict[str, str] = {}
     while True:
         perms: dict[str, np.ndarray] = {}
         results: dict[str, Alignment] = {}
         for pair in order:
             assert pair.old is not None and pair.new is not None
-            result = align(old, pair.old, new, pair.new, perms, pair.new.name in allowed)
+            result = align(
+                old, pair.old, new, pair.new, perms, pair.new.name in allowed,
+                conventions.get(pair.new.name),
+            )
             results[pair.new.name] = result
             if result.rows is not None:
                 perms[pair.new.name] = result.rows
@@ -204,9 +209,11 @@ def _matched(
     Σ(B−A)² and ΣA² for the overall change."""
     before, layer = pair.old, pair.new
     assert before is not None and layer is not None
-    rows, columns = result.rows, result.columns
+    columns = result.columns
+    # A converter's row order is undone like a verified permutation, but is not one.
+    rows = result.rows if result.rows is not None else result.convention
     checks = result.checks
-    if rows is not None:
+    if result.rows is not None:
         checks, _ = compare_parts(old, before, new, layer, columns, rows)
     moved = sum(c.moved for c in checks.values())
     same = result.outcome in ("exact", "precision", "permuted")
@@ -237,6 +244,8 @@ def _matched(
         dead_old = frozenset(i for i, r in enumerate(rows.tolist()) if r in dead_old)
     change = relative(measured.diff_sq, measured.old_sq)
     notes = [n for n in (result.note, rejected) if n]
+    if result.convention is not None:
+        notes.append("rows of each head reordered by the GGUF converter for rotary embeddings (undone)")
     if result.columns is not None and not same:
         notes.append("compared after undoing the permutation of its inputs")
     if not same and "weight" in checks and checks["weight"].within:
@@ -264,8 +273,8 @@ def _matched(
         fan_in_norm_new=fan_in_summary(new.stats.row_norms(layer)),
         units_died=tuple(sorted(dead_new - dead_old)),
         units_revived=tuple(sorted(dead_old - dead_new)),
-        permuted=same and (rows is not None or columns is not None),
-        moved_units=0 if rows is None else int(np.count_nonzero(rows != np.arange(rows.size))),
+        permuted=same and (result.rows is not None or columns is not None),
+        moved_units=0 if result.rows is None else int(np.count_nonzero(result.rows != np.arange(result.rows.size))),
         precision_only=result.outcome == "precision",
         precision=result.lower if result.outcome == "precision" else None,
         top_units=() if same else top_units(measured, b),
@@ -274,6 +283,7 @@ def _matched(
         nonfinite_new=found.count,
         nonfinite_units=found.units,
         note="; ".join(notes),
+        **precision_measures(measured, a, b, old, before, new, layer, same),
     )
     finite = math.isfinite(measured.diff_sq) and math.isfinite(measured.old_sq)
     return diff, measured.diff_sq if finite else 0.0, measured.old_sq if finite else 0.0
@@ -508,7 +518,7 @@ def _frozen_notes(policy: Policy, old: Checkpoint) -> list[str]:
 
 def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Comparison:
     """Compare two loaded checkpoints under one policy."""
-    as_stored = match_layers(old.layers, new.layers)
+    as_stored = match_layers(old.layers, new.layers, scheme_aliases(old, new))
     # Both sides are judged with the richer side's structure (activation, links, norm, ...),
     # so a difference in what the files describe is never reported as a change of the model.
     shared = share_structure(old, new, as_stored)

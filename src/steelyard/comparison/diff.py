@@ -319,6 +319,12 @@ class Sums:
     dot: float
     row_old_sq: np.ndarray
     row_diff_sq: np.ndarray
+    max_abs: float = 0.0
+    """Largest |b − a| of any element (NaN when an element is not finite on either side)."""
+    flat_old: np.ndarray | None = None
+    """Rows whose weights are all equal (zero included) in OLD."""
+    flat_new: np.ndarray | None = None
+    """Rows whose weights are all equal (zero included) in NEW."""
 
 
 def sums(old: np.ndarray, new: np.ndarray) -> Sums:
@@ -329,7 +335,10 @@ def sums(old: np.ndarray, new: np.ndarray) -> Sums:
     row_old = np.empty(units, np.float64)
     row_new = np.empty(units, np.float64)
     row_diff = np.empty(units, np.float64)
+    flat_old = np.zeros(units, bool)
+    flat_new = np.zeros(units, bool)
     dot = 0.0
+    largest = 0.0
     for start in range(0, units, block):
         a = old[start : start + block].astype(np.float64)
         b = new[start : start + block].astype(np.float64)
@@ -338,8 +347,13 @@ def sums(old: np.ndarray, new: np.ndarray) -> Sums:
         row_new[start : start + block] = np.einsum("ij,ij->i", b, b)
         row_diff[start : start + block] = np.einsum("ij,ij->i", delta, delta)
         dot += float(np.einsum("ij,ij->", a, b))
+        if delta.size:
+            largest = max(largest, float(np.max(np.abs(delta))))
+            flat_old[start : start + block] = np.ptp(a, axis=1) == 0
+            flat_new[start : start + block] = np.ptp(b, axis=1) == 0
     return Sums(
-        float(row_old.sum()), float(row_new.sum()), float(row_diff.sum()), dot, row_old, row_diff
+        float(row_old.sum()), float(row_new.sum()), float(row_diff.sum()), dot, row_old, row_diff,
+        largest, flat_old, flat_new,
     )
 
 
@@ -422,6 +436,9 @@ class Alignment:
     elements: int = 0
     note: str = ""
     checks: dict[str, PartCheck] = field(default_factory=dict)
+    convention: np.ndarray | None = None
+    """A row order a converter applied by convention (rotary query/key rows in GGUF), undone
+    before measuring: not a change of the model, so never verified against consumers."""
 
 
 def aligned_old(
@@ -518,14 +535,15 @@ def align(
     new: Layer,
     perms: Mapping[str, np.ndarray],
     allow_rows: bool,
+    convention: np.ndarray | None = None,
 ) -> Alignment:
     """Decide exact / precision / permuted / changed for one same-shape pair, given the
-    permutations already found for NEW's producers."""
+    permutations already found for NEW's producers (and a converter's row order to undo)."""
     columns, followed = input_columns(new, new_side.stats.producers(new), perms)
-    result = Alignment(columns=columns)
+    result = Alignment(columns=columns, convention=convention)
     if not followed:
         result.note = "an input layer was permuted in a way this layer's columns cannot be followed"
-    checks, note = compare_parts(old_side, old, new_side, new, columns, None)
+    checks, note = compare_parts(old_side, old, new_side, new, columns, convention)
     result.checks, result.note = checks, result.note or note
     result.moved = sum(c.moved for c in checks.values())
     result.elements = sum(c.elements for c in checks.values())
@@ -537,7 +555,7 @@ def align(
         lowers = sorted({c.lower for c in checks.values() if c.lower}, key=_rank_of)
         result.lower = lowers[0] if lowers else None
         return result
-    if not allow_rows or not followed or new.kind is LayerKind.EMBEDDING or note:
+    if not allow_rows or not followed or new.kind is LayerKind.EMBEDDING or note or convention is not None:
         return result
     rows = _find_rows(old_side, old, new_side, new, columns)
     if rows is not None and not np.array_equal(rows, np.arange(rows.size)):

@@ -13,7 +13,7 @@ the same number of them with the same kinds; anything else is *added* or *remove
 from __future__ import annotations
 
 from collections import defaultdict
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from steelyard.graph import Layer
@@ -32,7 +32,8 @@ class Pair:
     old: Layer | None
     new: Layer | None
     matched_by: str | None
-    """``name`` or ``position`` when both sides are present."""
+    """``name`` or ``position`` when both sides are present (``name`` also when the names
+    matched through a naming-scheme map)."""
 
     @property
     def same_shape(self) -> bool:
@@ -49,11 +50,14 @@ def signature(layer: Layer) -> Signature:
     return (layer.kind.value, layer.units, layer.in_per_group, layer.groups, tuple(layer.kernel))
 
 
-def _by_name(old: Sequence[Layer], new: Sequence[Layer]) -> dict[int, int]:
-    """Old index → new index for layers backed by the same tensor name (and gate)."""
+def _by_name(
+    old: Sequence[Layer], new: Sequence[Layer], aliases: Mapping[str, str]
+) -> dict[int, int]:
+    """Old index → new index for layers backed by the same tensor name (and gate), OLD's
+    names first translated into NEW's naming scheme by ``aliases`` where it has them."""
     slots: dict[tuple[str, str], list[int]] = defaultdict(list)
     for index, layer in enumerate(old):
-        slots[(layer.weight, layer.gate or "")].append(index)
+        slots[(aliases.get(layer.weight, layer.weight), layer.gate or "")].append(index)
     taken: dict[int, int] = {}
     used: dict[tuple[str, str], int] = defaultdict(int)
     for index, layer in enumerate(new):
@@ -132,12 +136,16 @@ def _gaps(
     return out
 
 
-def match_layers(old: Sequence[Layer], new: Sequence[Layer]) -> list[Pair]:
-    """Every layer of both checkpoints, paired where possible, in NEW's order.
+def match_layers(
+    old: Sequence[Layer], new: Sequence[Layer], aliases: Mapping[str, str] | None = None
+) -> list[Pair]:
+    """Every layer of both checkpoints, paired where possible, in NEW's order. ``aliases``
+    maps OLD's weight tensor names to NEW's scheme when the two files name tensors
+    differently (a float checkpoint and its GGUF export: :mod:`steelyard.comparison.precision`).
 
     Removed layers follow the NEW layer they preceded in OLD's order as closely as known.
     """
-    named = _by_name(old, new)
+    named = _by_name(old, new, aliases or {})
     rest_old = [i for i in range(len(old)) if i not in named]
     matched_new = set(named.values())
     rest_new = [j for j in range(len(new)) if j not in matched_new]

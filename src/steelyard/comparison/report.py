@@ -95,6 +95,23 @@ class LayerDiff:
     """``OLD``, ``NEW`` or ``both``: whose layer structure (activation, links, normalisation,
     kind, groups, constraint) both sides were judged with, when one side took it from the
     other (see :mod:`steelyard.comparison.knowledge`); None when each side used its own."""
+    max_abs_change: float | None = None
+    """Largest |b − a| of any weight (the quantization error's worst element when NEW is an
+    export of OLD); None when not compared value by value or not finite."""
+    stored_old: str | None = None
+    """What OLD stored the weight as (``Q4_K``, ``gptq-int4``, ``bf16``...)."""
+    stored_new: str | None = None
+    """What NEW stored the weight as."""
+    rows_flattened: tuple[int, ...] = ()
+    """Units whose weights are all equal (often all zero) in NEW but not in OLD: rows a
+    quantization or an edit destroyed."""
+    update_rank: int | None = None
+    """Effective rank of the update B − A: the fewest singular directions holding 99 % of
+    ‖B − A‖²_F (None when not measured: unchanged layers, embeddings, or a rank above
+    :data:`steelyard.comparison.precision.RANK_LIMIT`, see ``update_rank_above``)."""
+    update_rank_above: int | None = None
+    """Set to the limit when the update needs more directions than it (full-rank noise such
+    as quantization error, or a dense fine-tune)."""
 
 
 @dataclass(frozen=True, slots=True)

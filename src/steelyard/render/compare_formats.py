@@ -13,7 +13,7 @@ from collections.abc import Callable
 
 from steelyard.comparison.report import CompareReport, LayerDiff, Status
 from steelyard.ranking import rank
-from steelyard.render.compare_table import coverage_line, number, overview
+from steelyard.render.compare_table import coverage_line, number, overview, rank_cell
 from steelyard.render.json_report import _clean
 from steelyard.render.markdown import TOP, _cell, _rows
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
@@ -107,20 +107,26 @@ def render_compare_junit(report: CompareReport) -> str:
 
 # ---- Markdown -----------------------------------------------------------------------------
 def _layer_rows(layers: tuple[LayerDiff, ...] | list[LayerDiff]) -> list[str]:
-    lines = [
-        "| layer | status | relative change | cosine | died | revived |",
-        "| --- | --- | --- | --- | --- | --- |",
-    ]
+    stored = any(d.stored_old != d.stored_new for d in layers)
+    ranked = any(d.update_rank is not None or d.update_rank_above for d in layers)
+    head = ["layer", "status", "relative change", "cosine"]
+    head += ["stored", "max abs change"] if stored else []
+    head += ["update rank"] if ranked else []
+    head += ["died", "revived"]
+    lines = ["| " + " | ".join(head) + " |", "|" + " --- |" * len(head)]
     for diff in layers:
         status = diff.status.value
         if diff.permuted:
             status += " (permuted)"
         elif diff.precision_only:
             status += f" ({diff.precision or 'precision'} rounding)"
-        lines.append(
-            f"| `{_cell(diff.name)}` | {status} | {number(diff.relative_change)} | {number(diff.cosine)} | "
-            f"{len(diff.units_died) or '—'} | {len(diff.units_revived) or '—'} |"
-        )
+        cells = [f"`{_cell(diff.name)}`", status, number(diff.relative_change), number(diff.cosine)]
+        if stored:
+            cells += [f"{diff.stored_old or '—'} → {diff.stored_new or '—'}", number(diff.max_abs_change)]
+        if ranked:
+            cells.append(rank_cell(diff))
+        cells += [str(len(diff.units_died) or "—"), str(len(diff.units_revived) or "—")]
+        lines.append("| " + " | ".join(cells) + " |")
     return lines
 
 

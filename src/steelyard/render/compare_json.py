@@ -41,6 +41,12 @@ def layer_entry(diff: LayerDiff) -> dict[str, Any]:
         "moved_elements": diff.moved_elements,
         "elements": diff.elements,
         "nonfinite_new": diff.nonfinite_new,
+        "max_abs_change": diff.max_abs_change,
+        "stored_old": diff.stored_old,
+        "stored_new": diff.stored_new,
+        "rows_flattened": list(diff.rows_flattened),
+        "update_rank": diff.update_rank,
+        "update_rank_above": diff.update_rank_above,
         "top_units": [
             {
                 "unit": u.unit,

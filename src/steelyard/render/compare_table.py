@@ -169,15 +169,24 @@ def _layers_table(layers: tuple[LayerDiff, ...]) -> Table:
         if d.relative_change is not None and math.isfinite(d.relative_change)
     ]
     full = max([1.0, *finite])
+    # Columns a comparison across precisions or of a low-rank fine-tune needs, only then.
+    stored = any(d.stored_old != d.stored_new for d in shown)
+    ranked = any(d.update_rank is not None or d.update_rank_above for d in shown)
+    flattened = any(d.rows_flattened for d in shown)
+    columns = ["layer", "status", "rel. change", "", "cosine"]
+    columns += ["stored", "max |Δ|"] if stored else []
+    columns += ["rank"] if ranked else []
+    columns += ["fan-in norm median", "died", "revived"]
+    columns += ["flattened"] if flattened else []
     table = titled_table(
         "layer changes, largest first",
-        ("layer", "status", "rel. change", "", "cosine", "fan-in norm median", "died", "revived"),
-        right=("rel. change", "cosine", "died", "revived"),
+        tuple(columns),
+        right=("rel. change", "cosine", "max |Δ|", "rank", "died", "revived", "flattened"),
     )
     for diff in shown:
         old_norm = diff.fan_in_norm_old[1] if diff.fan_in_norm_old else None
         new_norm = diff.fan_in_norm_new[1] if diff.fan_in_norm_new else None
-        table.add_row(
+        row: list[RenderableType] = [
             diff.name
             if diff.old_name in (None, diff.name)
             else f"{diff.name} (OLD {diff.old_name})",
@@ -185,11 +194,27 @@ def _layers_table(layers: tuple[LayerDiff, ...]) -> Table:
             number(diff.relative_change),
             bar(diff.relative_change, full),
             number(diff.cosine),
+        ]
+        if stored:
+            row += [f"{diff.stored_old or '—'} → {diff.stored_new or '—'}", number(diff.max_abs_change)]
+        if ranked:
+            row.append(rank_cell(diff))
+        row += [
             f"{number(old_norm)} → {number(new_norm)}",
             str(len(diff.units_died) or "—"),
             str(len(diff.units_revived) or "—"),
-        )
+        ]
+        if flattened:
+            row.append(str(len(diff.rows_flattened) or "—"))
+        table.add_row(*row)
     return table
+
+
+def rank_cell(diff: LayerDiff) -> str:
+    """The update's effective rank, ``>64`` past the resolved limit, ``—`` when not measured."""
+    if diff.update_rank is not None:
+        return str(diff.update_rank)
+    return f">{diff.update_rank_above}" if diff.update_rank_above else "—"
 
 
 def _detail(layers: tuple[LayerDiff, ...]) -> list[RenderableType]:

@@ -6,6 +6,7 @@ from typing import Any
 
 from steelyard.comparison.report import CompareReport
 from steelyard.ranking import rank
+from steelyard.render.compare_table import rank_cell
 from steelyard.render.html.compare_charts import change_charts, in_depth_order
 from steelyard.render.html.page import gate_text, number, render_page, verdict
 
@@ -37,6 +38,10 @@ def render_compare_html(report: CompareReport) -> str:
             "died_units": ", ".join(map(str, d.units_died[:50])),
             "revived_units": ", ".join(map(str, d.units_revived[:50])),
             "note": d.note,
+            "stored": f"{d.stored_old or '—'} → {d.stored_new or '—'}",
+            "max_abs": d.max_abs_change,
+            "rank": rank_cell(d),
+            "flattened": ", ".join(map(str, d.rows_flattened[:20])) or "—",
         }
         for depth, d in enumerate(by_depth)
     ]
@@ -70,6 +75,8 @@ def render_compare_html(report: CompareReport) -> str:
         present=rank(comparison.audit_present),
         layer_anchor=layer_anchor,
         layers=layers,
+        precision_columns=any(d.stored_old != d.stored_new for d in by_depth),
+        rank_column=any(d.update_rank is not None or d.update_rank_above for d in by_depth),
     )
 
 

@@ -106,7 +106,7 @@ def test_layers_that_come_and_go(tmp_path: Path) -> None:
     fc2 = series["fc2"].points
     assert fc2[3] is not None and fc2[3].from_previous is None and fc2[3].from_first is None
     assert fc2[4] is not None and fc2[4].from_previous is not None and fc2[4].from_first is None
-    assert any("fc2" in n and "6x24" in n for n in timeline.notes)
+    assert [n for n in timeline.notes if "fc2" in n and "6x24" in n and "8x24 before" in n]
     assert _check(timeline, [load_file(str(p)) for p in paths]) > 0
 
 

@@ -24,7 +24,7 @@ from steelyard.run_timeline.drift import measure
 from steelyard.run_timeline.ordering import Placed
 from steelyard.run_timeline.result import CheckpointEntry, LayerPoint, LayerSeries, Timeline
 from steelyard.run_timeline.spans import SpanTracker
-from steelyard.run_timeline.summary import snapshot
+from steelyard.run_timeline.summary import Snapshot, snapshot
 from steelyard.stats import LayerStats
 from steelyard.version import __version__
 
@@ -37,6 +37,8 @@ class _Series:
     units: int
     fan_in: int
     points: list[LayerPoint | None] = field(default_factory=list)
+    shape_now: tuple[int, int] | None = None
+    """(units, fan_in) in the latest checkpoint that has the layer."""
 
 
 @dataclass(frozen=True)
@@ -74,26 +76,20 @@ class _Run:
         self.first: Checkpoint | None = None
         self.previous: Checkpoint | None = None
 
-    def add(self, placed: Placed, checkpoint: Checkpoint, settings: RunSettings) -> None:
-        index = len(self.entries)
-        previous = self.previous
-        names = {layer.name for layer in checkpoint.layers}
-        if previous is not None and not names & {layer.name for layer in previous.layers}:
-            raise LoadError(
-                checkpoint.path,
-                f"shares no layer name with the checkpoint before it ({previous.path}); "
-                "a timeline follows the layers of one model",
-            )
+    def _measured(
+        self, checkpoint: Checkpoint, settings: RunSettings
+    ) -> tuple[CheckpointAudit, Snapshot, dict[str, LayerPoint]]:
+        """The checkpoint's audit, its snapshot, and its points with drift; a tensor that
+        turns out unreadable, or a reader out of memory, is this checkpoint's input error."""
         try:
             audit, stats = _audited(checkpoint, settings.policy, settings.jobs)
             taken = snapshot(checkpoint, audit, stats)
             del stats  # the audit's cached matrices go with it
             points: dict[str, LayerPoint] = {}
             for layer in checkpoint.layers:
-                from_previous, from_first = measure(checkpoint, layer, previous, self.first)
-                point = taken.points[layer.name]
+                from_previous, from_first = measure(checkpoint, layer, self.previous, self.first)
                 points[layer.name] = replace(
-                    point, from_previous=from_previous, from_first=from_first
+                    taken.points[layer.name], from_previous=from_previous, from_first=from_first
                 )
         except UnreadableTensor as exc:
             raise LoadError(checkpoint.path, f"could not be read ({exc})") from exc
@@ -103,18 +99,34 @@ class _Run:
                 checkpoint.path,
                 f"is {problem} to read within this process's limits ({type(exc).__name__})",
             ) from exc
+        return audit, taken, points
+
+    def add(self, placed: Placed, checkpoint: Checkpoint, settings: RunSettings) -> None:
+        """Audit, reduce and measure one checkpoint, the next in timeline order."""
+        index = len(self.entries)
+        previous = self.previous
+        names = {layer.name for layer in checkpoint.layers}
+        if previous is not None and not names & {layer.name for layer in previous.layers}:
+            raise LoadError(
+                checkpoint.path,
+                f"shares no layer name with the checkpoint before it ({previous.path}); "
+                "a timeline follows the layers of one model",
+            )
+        audit, taken, points = self._measured(checkpoint, settings)
         for layer in checkpoint.layers:
             series = self.series.get(layer.name)
             if series is None:
                 series = self.series[layer.name] = _Series(
                     layer.kind.value, layer.units, layer.fan_in, [None] * index
                 )
-            elif (series.units, series.fan_in) != (layer.units, layer.fan_in):
+            shape = (layer.units, layer.fan_in)
+            if series.shape_now is not None and series.shape_now != shape:
                 self.notes.append(
-                    f"layer {layer.name} is {layer.units}x{layer.fan_in} in {checkpoint.path} "
-                    f"but {series.units}x{series.fan_in} where it first appeared; no drift "
-                    "is measured against checkpoints of the other shape"
+                    f"layer {layer.name} is {shape[0]}x{shape[1]} from {checkpoint.path} on, "
+                    f"{series.shape_now[0]}x{series.shape_now[1]} before; drift is measured "
+                    "only against checkpoints of the same shape"
                 )
+            series.shape_now = shape
             series.points.append(points[layer.name])
         for series in self.series.values():
             if len(series.points) == index:

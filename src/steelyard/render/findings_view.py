@@ -9,6 +9,7 @@ row that says how many findings it stands for, so the counts in the header add u
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -64,6 +65,14 @@ def grouped(findings: tuple[Finding, ...]) -> list[FindingRow]:
     return [FindingRow(f, tuple(layers)) for f, layers in rows]
 
 
+def _units(finding: Finding, limit: int) -> str:
+    """The units cell, its count of units with thousands separators like every other count
+    (unit indices stay bare: they are names of rows, and commas separate them)."""
+    return re.sub(
+        r"\((\d+) units\)", lambda m: f"({int(m.group(1)):,} units)", units_cell(finding, limit)
+    )
+
+
 def _layer_cell(row: FindingRow) -> str:
     if len(row.layers) > 1:
         return plural(len(row.layers), "layer")
@@ -102,7 +111,7 @@ def findings_table(
         Column("severity"),
         Column("rule", wrap="name"),
         Column("layer", wrap="name", floor=40, one_line=True),
-        Column("units", wrap="name", floor=12),
+        Column("units", wrap="name", floor=14),
     ]
     if not compact:
         columns.append(Column("finding", wrap="words", floor=40, cap=_PROSE))
@@ -115,7 +124,7 @@ def findings_table(
             Cell.of(finding.severity.value, STYLE[finding.severity]),
             finding.rule,
             _layer_cell(row),
-            units_cell(finding, limit=4 if compact else 6),
+            _units(finding, limit=4 if compact else 6),
         ]
         text = [(finding.message, ""), *_folded_note(row)]
         if compact:

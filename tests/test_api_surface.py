@@ -89,3 +89,21 @@ def test_a_report_renders_in_every_format_and_in_a_notebook(
     html = report._repr_html_()
     HTMLParser().feed(html)  # the standard library's parser reads it
     assert "FAIL" in html and report.findings[0].rule in html
+
+
+def test_gate_and_baseline_from_python_equal_the_cli(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+    """``fail_on=`` and ``baseline=`` mean what ``--fail-on`` and ``--baseline`` mean."""
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", "1700000000")
+    monkeypatch.chdir(tmp_path)
+    relaxed = steelyard.audit(NEW, fail_on="never")
+    assert relaxed.passed and relaxed.fail_on == "never"
+    cli = CliRunner().invoke(app, ["audit", str(NEW), "-f", "json", "--fail-on", "never"])
+    assert cli.exit_code == 0 and json.loads(relaxed.to_json()) == json.loads(cli.stdout)
+    recorded = tmp_path / "baseline.json"
+    assert CliRunner().invoke(app, ["audit", str(NEW), "--write-baseline", str(recorded)]).exit_code == 1
+    gated = steelyard.audit(NEW, baseline=recorded)
+    assert gated.passed and not gated.findings  # every finding is in the baseline
+    cli = CliRunner().invoke(app, ["audit", str(NEW), "-f", "json", "--baseline", str(recorded)])
+    assert cli.exit_code == 0 and json.loads(gated.to_json()) == json.loads(cli.stdout)
+    with pytest.raises(steelyard.errors.PolicyError):
+        steelyard.audit(NEW, fail_on="sometimes")

@@ -20,7 +20,8 @@ from steelyard.budget import Budget
 from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
 from steelyard.comparison.report import CompareReport
 from steelyard.discovery import Plan
-from steelyard.errors import LoadError, SteelyardError, UnreadableTensor
+from steelyard.errors import LoadError, PolicyError, SteelyardError, UnreadableTensor
+from steelyard.findings import FailOn
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sidecar_source
 from steelyard.graph import Checkpoint
 from steelyard.loaders import SUPPORTED
@@ -40,8 +41,18 @@ def _limits(budget: Budget | None, policy: Policy | None = None) -> AbstractCont
 def load(path: str | Path, budget: Budget | None = None) -> Checkpoint:
     """Read a checkpoint's structure; tensors stay on disk until something reads them.
 
-    ``budget`` limits what reading may cost (default: the budget in force, see
-    :mod:`steelyard.budget`)."""
+    Args:
+        path: a checkpoint file, a shard index, or a folder holding one checkpoint.
+        budget: what reading may cost (default: the budget in force, see
+            :mod:`steelyard.budget`).
+
+    Returns:
+        The framework-neutral :class:`~steelyard.graph.Checkpoint` (layers, tensors, links).
+
+    Raises:
+        LoadError: when the file cannot be read safely (malformed, hostile, unsupported),
+            with a message naming the file and the problem.
+    """
     with _limits(budget):
         return _load(path)
 
@@ -322,22 +333,47 @@ def audit(
     jobs: int | None = None,
     budget: Budget | None = None,
     base: str | Path | None = None,
+    *,
+    fail_on: str | FailOn | None = None,
+    baseline: str | Path | None = None,
 ) -> Report:
     """Audit checkpoints as ``steelyard audit`` does: ``report.passed`` is the gate,
     ``report.to_json()`` the document.
 
-    ``path`` is a file, a shard index, a folder (every checkpoint in it), or a list of them.
-    ``policy`` is resolved by :func:`policy_in_force`: by default the project's policy file,
-    found as the CLI finds it. One file that cannot be read raises
-    :class:`~steelyard.errors.LoadError`; in a folder or a list, each checkpoint gets its own
-    result (see :func:`audit_many`). ``budget`` limits what reading may cost (see
-    :mod:`steelyard.budget`); ``base`` is the base model a LoRA/DoRA adapter is merged onto.
+    Args:
+        path: a file, a shard index, a folder (every checkpoint in it), or a list of them.
+        grads: a sidecar of per-weight gradient statistics with the model's tensor names.
+        policy: resolved by :func:`policy_in_force`: by default the project's policy file,
+            found as the CLI finds it; a path names a file; ``Policy()`` means the defaults.
+        grads_kind: what the sidecar holds.
+        jobs: worker threads (default: the machine's cores); the report does not depend on it.
+        budget: what reading may cost (see :mod:`steelyard.budget`).
+        base: the base model a LoRA/DoRA adapter is merged onto.
+        fail_on: the gate, overriding the policy's (``error``, ``warning``, ``info``,
+            ``never``), as ``--fail-on`` does.
+        baseline: an earlier baseline file or JSON report: findings in it are reported but
+            not gated on, as ``--baseline`` does.
+
+    Returns:
+        The :class:`~steelyard.report.Report` of the run.
+
+    Raises:
+        LoadError: when ``path`` is one file and it cannot be read (in a folder or a list,
+            each checkpoint gets its own result instead: see :func:`audit_many`).
+        PolicyError: for a broken policy file or an unknown ``fail_on``.
     """
+    chosen = policy_in_force(policy)
+    if fail_on is not None:
+        try:
+            gate = FailOn(fail_on)
+        except ValueError:
+            raise PolicyError(f"fail_on {fail_on!r}: use error, warning, info or never") from None
+        chosen = replace(chosen, fail_on=gate.value)
     single = isinstance(path, (str, Path))
     paths: list[str | Path] = [path] if isinstance(path, (str, Path)) else list(path)
     report = audit_many(
         paths,
-        policy=policy,
+        policy=chosen,
         grads=grads,
         grads_kind=grads_kind,
         jobs=jobs,
@@ -347,6 +383,10 @@ def audit(
     if single and report.errors and not report.audits and not Path(paths[0]).is_dir():
         error = report.errors[0]
         raise LoadError(error.path, error.reason)
+    if baseline is not None:
+        from steelyard.baseline import apply_baseline, read_baseline
+
+        report = apply_baseline(report, read_baseline(Path(baseline)))
     return report
 
 
@@ -358,8 +398,22 @@ def compare(
     budget: Budget | None = None,
 ) -> CompareReport:
     """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
-    ``steelyard.compare/1`` document. ``budget`` limits what reading may cost; ``policy`` is
-    resolved by :func:`policy_in_force` (by default, the project's policy file)."""
+    ``steelyard.compare/1`` document.
+
+    Args:
+        old: the earlier checkpoint (file, shard index or folder).
+        new: the later one, in the same or another format (a GGUF or quantized export too).
+        policy: resolved by :func:`policy_in_force` (by default, the project's policy file).
+        created: the run's timestamp for the report (default: ``SOURCE_DATE_EPOCH`` or now).
+        budget: what reading may cost (see :mod:`steelyard.budget`).
+
+    Returns:
+        The :class:`~steelyard.comparison.report.CompareReport`.
+
+    Raises:
+        LoadError: when either checkpoint cannot be read.
+        PolicyError: for a broken policy file.
+    """
     from steelyard.comparison import compare_checkpoints
 
     chosen = policy_in_force(policy)
@@ -391,14 +445,30 @@ def timeline(
     jobs: int | None = None,
     budget: Budget | None = None,
 ) -> Timeline:
-    """Follow one training run's checkpoints as ``steelyard timeline`` does: ordered by
-    training step (``order="step"``; ``"name"`` or ``"given"`` to override), each audited
+    """Follow one training run's checkpoints as ``steelyard timeline`` does: each audited
     once, per layer the fan-in norms, dead units, non-finite values and drift, and for each
     finding where it appeared and went away. ``timeline.passed`` is the gate (findings of the
     last checkpoint at or above ``fail_on``), ``timeline.to_json()`` the
-    ``steelyard.timeline/1`` document. Fewer than two checkpoints, one that cannot be read,
-    or checkpoints that share no layer raise :class:`~steelyard.errors.LoadError` or
-    :class:`~steelyard.errors.SteelyardError`. ``paths`` is one path (a run folder) or a list."""
+    ``steelyard.timeline/1`` document.
+
+    Args:
+        paths: one path (a run folder) or a list of checkpoints and folders.
+        order: ``"step"`` (training step from trainer_state.json, file metadata or names),
+            ``"name"`` or ``"given"``.
+        policy: resolved by :func:`policy_in_force`.
+        created: the run's timestamp for the report (default: ``SOURCE_DATE_EPOCH`` or now).
+        on_checkpoint: called with each checkpoint's path before it is read (progress).
+        jobs: worker threads per checkpoint's audit.
+        budget: what reading may cost (see :mod:`steelyard.budget`).
+
+    Returns:
+        The :class:`~steelyard.run_timeline.result.Timeline`.
+
+    Raises:
+        LoadError: when a checkpoint cannot be read.
+        SteelyardError: for fewer than two checkpoints, an unknown ``order``, or checkpoints
+            that share no layer.
+    """
     from steelyard.run_timeline.engine import RunSettings, build_timeline
     from steelyard.run_timeline.ordering import Order, arrange
 

@@ -80,8 +80,10 @@ class Shape:
         return max(math.prod(shape) for _, shape in self.tensors())
 
 
-#: How synthetic weights are drawn: ``trained`` (the default) or ``gaussian``.
-WEIGHTS = ("trained", "gaussian")
+#: How synthetic weights are drawn: ``trained`` (the default) or ``gaussian``, the draws the
+#: published results were measured with (never change them), then the families of
+#: ``bench/families.py`` (drawn by ``family_matrix``).
+WEIGHTS = ("trained", "gaussian", "lowrank-heavytail", "outlier-channels", "near-duplicate")
 
 
 #: Matrices are drawn in row blocks of at most this many elements, so that writing a 256k-row
@@ -99,6 +101,8 @@ def _values(
     target = np.dtype(dtype or np.float32)
     if len(shape) == 1:
         return (1.0 + 0.05 * rng.standard_normal(shape, dtype=np.float32)).astype(target)
+    if weights in FAMILIES:
+        return family_matrix(rng, shape[0], shape[1], weights).values.astype(target)
     rows, cols = shape
     sigma = 1.0 / math.sqrt(cols)  # the usual fan-in scaling of an initialisation
     rank = 4
@@ -125,6 +129,131 @@ def _values(
             block += (left * strength) @ right
         out[start : start + n] = block.astype(target)
     return out
+
+
+# ---- weight families (bench/families.py) --------------------------------------------------
+#: Rank of the power-law part of the trained-like families, and its exponent: s_k ∝ k^-1.
+POWER_RANK = 64
+POWER_EXPONENT = 1.0
+#: s_1 of the power-law part, in units of the noise's Marchenko–Pastur edge
+#: σ(√rows + √cols): a few directions stand out of the bulk, the rest sit inside it.
+POWER_STRENGTH = 6.0
+#: Degrees of freedom of the Student-t noise (excess kurtosis 6/(ν − 4) = 6).
+STUDENT_DOF = 5.0
+#: Outlier input columns (the same channels in every matrix of a width, as activation
+#: outlier features are) have ``OUTLIER_COLUMN_RANGE`` × the median norm of the other columns.
+OUTLIER_COLUMN_RANGE = (20.0, 50.0)
+OUTLIER_ROW_SCALE = 8.0
+#: Share of rows that are near copies of another row, and the copies' relative noise.
+DUPLICATE_SHARE = 0.3
+DUPLICATE_NOISE = 1e-3
+FAMILIES = ("lowrank-heavytail", "outlier-channels", "near-duplicate")
+
+
+@dataclass
+class FamilyDraw:
+    """A family's matrix and what was planted in it (global row and column indices)."""
+
+    values: np.ndarray
+    singular_values: np.ndarray
+    """Singular values of the power-law part (exact: its factors are orthonormal)."""
+    outlier_columns: np.ndarray
+    outlier_rows: np.ndarray
+    copies: np.ndarray
+    """Rows that are near copies, and beside them (``sources``) the rows they copy."""
+    sources: np.ndarray
+
+
+def student_t(rng: np.random.Generator, shape: tuple[int, ...], dof: float) -> np.ndarray:
+    """Student-t draws scaled to unit variance (the variance of t_ν is ν / (ν − 2))."""
+    scale = math.sqrt((dof - 2.0) / dof)
+    return (rng.standard_t(dof, size=shape) * scale).astype(np.float32)
+
+
+def _orthonormal(rng: np.random.Generator, n: int, rank: int) -> np.ndarray:
+    """``n × rank`` with orthonormal columns (QR of a Gaussian draw; needs n >= rank)."""
+    q, r = np.linalg.qr(rng.standard_normal((n, rank)))
+    return (q * np.sign(np.diag(r))).astype(np.float32)
+
+
+def outlier_channels(cols: int) -> tuple[np.ndarray, np.ndarray]:
+    """The outlier input channels of a width and their factors: fixed per width (not drawn
+    from the checkpoint's generator), so every matrix reading that width has the same ones."""
+    fixed = np.random.default_rng([cols, 20])
+    count = max(2, cols // 256)
+    channels = np.sort(fixed.choice(cols, size=count, replace=False))
+    return channels, fixed.uniform(*OUTLIER_COLUMN_RANGE, size=count)
+
+
+def family_matrix(rng: np.random.Generator, rows: int, cols: int, family: str) -> FamilyDraw:
+    """A ``rows × cols`` float32 matrix of ``family``, drawn in row blocks.
+
+    Every family starts from the trained-like draw ``lowrank-heavytail``: a power-law part
+    L·diag(s)·R with s_k = POWER_STRENGTH · edge · k^-POWER_EXPONENT over POWER_RANK
+    directions (L, R orthonormal, so those are its singular values: the rows share a few
+    strong directions and are correlated) plus Student-t noise at the initialisation scale
+    1/√fan_in, each row's noise scaled by its own log-normal factor (σ = 0.3).
+    ``outlier-channels`` then sets a few input columns to 20–50 × the median norm of the
+    other columns and multiplies a few rows by OUTLIER_ROW_SCALE; ``near-duplicate`` replaces
+    DUPLICATE_SHARE of each block's rows by a copy of another row of the block plus
+    Gaussian noise of DUPLICATE_NOISE × that row's norm."""
+    if family not in FAMILIES:
+        raise ValueError(f"unknown weight family {family!r}")
+    sigma = 1.0 / math.sqrt(cols)
+    rank = min(POWER_RANK, rows, cols)
+    edge = sigma * (math.sqrt(rows) + math.sqrt(cols))
+    ks = np.arange(1, rank + 1, dtype=np.float64)
+    strengths = (POWER_STRENGTH * edge * ks**-POWER_EXPONENT).astype(np.float32)
+    right = _orthonormal(rng, cols, rank).T
+    channels, factors = (
+        outlier_channels(cols) if family == "outlier-channels" else (np.empty(0, int), None)
+    )
+    out = np.empty((rows, cols), dtype=np.float32)
+    big_rows: list[np.ndarray] = []
+    copies: list[np.ndarray] = []
+    sources: list[np.ndarray] = []
+    step = max(1, _DRAW_ELEMENTS // cols)
+    for start in range(0, rows, step):
+        n = min(step, rows - start)
+        # Blocks of orthonormal columns scaled by √(n/rows) stack to orthonormal columns.
+        if n >= rank:
+            left = _orthonormal(rng, n, rank) * np.float32(math.sqrt(n / rows))
+        else:  # a last block thinner than the rank: only approximately orthonormal
+            left = rng.standard_normal((n, rank), dtype=np.float32) / np.float32(math.sqrt(rows))
+        block = student_t(rng, (n, cols), STUDENT_DOF)
+        block *= (sigma * rng.lognormal(0.0, 0.3, size=(n, 1))).astype(np.float32)
+        block += (left * strengths) @ right
+        if family == "outlier-channels":
+            picked = rng.choice(n, size=max(1, n // 512), replace=False)
+            block[picked] *= np.float32(OUTLIER_ROW_SCALE)
+            big_rows.append(start + picked)
+            norms = np.linalg.norm(block, axis=0)
+            others = np.median(np.delete(norms, channels))
+            assert factors is not None
+            block[:, channels] *= (factors * others / norms[channels]).astype(np.float32)
+        elif family == "near-duplicate" and n >= 2:
+            order = rng.permutation(n)
+            count = min(round(DUPLICATE_SHARE * n), n - 1)
+            copy, source = order[:count], rng.choice(order[count:], size=count)
+            noise = rng.standard_normal((count, cols), dtype=np.float32)
+            noise *= (
+                DUPLICATE_NOISE
+                * np.linalg.norm(block[source], axis=1, keepdims=True)
+                / math.sqrt(cols)
+            ).astype(np.float32)
+            block[copy] = block[source] + noise
+            copies.append(start + copy)
+            sources.append(start + source)
+        out[start : start + n] = block
+    empty = np.empty(0, dtype=np.int64)
+    return FamilyDraw(
+        values=out,
+        singular_values=strengths,
+        outlier_columns=channels,
+        outlier_rows=np.concatenate(big_rows) if big_rows else empty,
+        copies=np.concatenate(copies) if copies else empty,
+        sources=np.concatenate(sources) if sources else empty,
+    )
 
 
 def write_checkpoint(
@@ -276,7 +405,9 @@ def machine() -> dict[str, str]:
     import ml_dtypes
     import safetensors
 
+    cpu = re.findall(r"^model name\s*:\s*(.+)$", Path("/proc/cpuinfo").read_text(), re.M)
     return {
+        "cpu": cpu[0] if cpu else platform.machine(),
         "cores": str(os.cpu_count()),
         "python": platform.python_version(),
         "numpy": np.__version__,
@@ -288,3 +419,42 @@ def machine() -> dict[str, str]:
 
 def mib(value: float) -> str:
     return f"{value / MIB:,.0f} MiB"
+
+
+def rule_shares(path: str, policy: Any = None) -> dict[str, float]:
+    """Seconds per rule on one thread under ``policy`` (default: every rule at its defaults):
+    hooks timed per layer, data loads charged to the first rule that asks for them, as in a
+    real run; then the SHA-256 of the files. (``bench/audit_speed.py``'s measurement, with a
+    policy.)"""
+    from steelyard.api import load
+    from steelyard.checkpoint_audit import sha256_of
+    from steelyard.policy import Policy
+    from steelyard.rules import AuditContext, RuleSettings, registry
+    from steelyard.stats import LayerStats
+
+    checkpoint = load(path)
+    stats = LayerStats(checkpoint)
+    ctx = AuditContext(
+        checkpoint=checkpoint, stats=stats, policy=policy or Policy(), gradients=None
+    )
+    specs = list(registry().values())  # every rule (``enabled`` in the policy is not read)
+    spent = {spec.name: 0.0 for spec in specs}
+    settings: dict[str, Any] = {s.name: RuleSettings(s, ctx.policy) for s in specs}
+    for layer in checkpoint.layers:
+        for spec in specs:
+            if spec.per_layer is not None:
+                start = time.perf_counter()
+                list(spec.per_layer(ctx, settings[spec.name], layer))
+                spent[spec.name] += time.perf_counter() - start
+        stats.release(layer)
+    for spec in specs:
+        start = time.perf_counter()
+        if spec.whole is not None:
+            list(spec.whole(ctx, settings[spec.name]))
+        elif spec.finish is not None:
+            list(spec.finish(ctx, settings[spec.name]))
+        spent[spec.name] += time.perf_counter() - start
+    start = time.perf_counter()
+    sha256_of(checkpoint.files or (checkpoint.path,))
+    spent["(sha256 of the files)"] = time.perf_counter() - start
+    return spent

@@ -107,6 +107,8 @@ class PackQuantizedWeight:
             raise LoadError(path, f"{name}: weight_scale {list(scale.shape)} is not [out, groups]")
         g_idx = cls._groups(path, name, parts, settings, dims[1], scale.shape[1])
         zero = parts.get("weight_zero_point")
+        if zero is not None and _size(zero) == 0:
+            raise LoadError(path, f"{name}: weight_zero_point is empty")
         if zero is not None and _size(zero) > 1:
             packed_zero = (-(-dims[0] * bits // 32), scale.shape[1])
             if zero.shape not in (scale.shape, packed_zero):

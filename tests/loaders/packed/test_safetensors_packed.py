@@ -202,3 +202,20 @@ def test_mixed_checkpoint_keeps_float_layers(tmp_path: Path) -> None:
     np.testing.assert_array_equal(checkpoint.tensors["lm_head.weight"].read(), head)
     np.testing.assert_allclose(checkpoint.tensors[f"{M}.weight"].read(), expected, rtol=1e-6)
     assert checkpoint.parameters == head.size + expected.size
+
+
+def test_whole_read_is_an_expansion_within_the_budget(tmp_path: Path) -> None:
+    # A whole float32 copy of a packed layer is bytes the file does not store: refused past
+    # the expansion budget (steelyard.budget), while row-block reads stay available.
+    from steelyard.budget import Budget, using
+    from steelyard.errors import LoadError
+
+    parts, expected = ref.gptq(np.random.default_rng(9), 8, 1024, 512, 128, act=False)
+    path = ref.save(tmp_path / "model.safetensors", ref.prefixed(M, parts))
+    tensor = load(path).tensors[f"{M}.weight"]
+    with using(Budget(expansion_bytes=2**20)):  # 2 MiB float32 from ~0.5 MiB stored
+        with pytest.raises(LoadError, match="expansion budget"):
+            tensor.read()
+        np.testing.assert_allclose(tensor.read_part(0, 512 * 100),
+                                   expected[:100].reshape(-1), rtol=1e-6)
+    np.testing.assert_allclose(tensor.read(), expected, rtol=1e-6)

@@ -88,3 +88,21 @@ def test_headings_lists_and_code_blocks_become_text() -> None:
     assert "indented code" in plain and "``" not in plain
     coloured = render_rule(spec, color=True, width=60)
     assert ESC in coloured and "Heading one" in coloured
+
+
+@pytest.mark.parametrize("columns", [80, 120, 200])
+def test_rule_list_fits_and_keeps_every_word(columns: int) -> None:
+    result = CliRunner().invoke(app, ["rules"], env={"COLUMNS": str(columns)})
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert all(cell_len(line) <= columns for line in lines)
+    tokens = set(result.stdout.split())
+    for spec in registry().values():
+        assert spec.name in tokens
+        # Words are whole: every word of the summary and thresholds is a token of the output.
+        for word in (spec.summary + " " + " ".join(f"{k}={v}" for k, v in spec.thresholds.items())).split():
+            if "=" not in word:
+                assert word in tokens, word
+        for key, value in spec.thresholds.items():
+            pair = f"{key}={'unset' if value is None else value}"
+            assert pair in tokens or f"{pair}," in tokens, pair

@@ -5,8 +5,9 @@ from __future__ import annotations
 import inspect
 from collections.abc import Mapping
 
-from rich.table import Table
+from rich.console import RenderableType
 
+from steelyard.render.grid import COMPACT_BELOW, Column, Grid
 from steelyard.render.text import to_text
 from steelyard.rules.base import RuleSpec
 
@@ -21,19 +22,31 @@ def _thresholds(spec: AnySpec) -> str:
 
 
 def render_rules(specs: Mapping[str, AnySpec], *, color: bool = False, width: int = 120) -> str:
-    """One row per rule: name, default severity, thresholds, why."""
-    table = Table(show_edge=False, header_style="bold", pad_edge=False)
-    for column in ("rule", "severity", "thresholds", "why"):
-        table.add_column(column, overflow="fold")
+    """One row per rule: name, default severity, thresholds, why; on a narrow terminal the
+    thresholds go under their row. No word is broken (see :mod:`steelyard.render.grid`)."""
+    compact = width < COMPACT_BELOW
+    grid = Grid(
+        (
+            Column("rule"),
+            Column("severity"),
+            *(() if compact else (Column("thresholds", wrap="words", floor=24),)),
+            Column("why", wrap="words", floor=30, cap=80),
+        ),
+        indent_below=2,
+    )
     for spec in specs.values():
-        table.add_row(spec.name, spec.severity.value, _thresholds(spec), spec.summary)
-    return to_text([table], color=color, width=width)
+        if compact:
+            below = [(f"thresholds: {_thresholds(spec)}", "dim")] if spec.thresholds else []
+            grid.add(spec.name, spec.severity.value, spec.summary, below=below)
+        else:
+            grid.add(spec.name, spec.severity.value, _thresholds(spec), spec.summary)
+    renderables: list[RenderableType] = list(grid.render(width))
+    return to_text(renderables, color=color, width=width)
 
 
 def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
     """The rule's page: its docstring (Markdown: headings, emphasis, code, lists) rendered for
     a terminal by rich, or as plain text when not coloured, then defaults and help address."""
-    from rich.console import RenderableType
     from rich.markdown import Markdown
     from rich.text import Text
 

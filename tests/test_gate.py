@@ -296,3 +296,22 @@ def test_torchscript_is_found_by_content_whatever_its_ending(tmp_path: Path) -> 
         "m.onnx", "model.jit", "model.pts", "model.ts",
     ]
     assert not report.errors and any("1 other file" in n for n in report.notes)
+
+
+def test_configs_beside_an_onnx_model_are_not_unreadable_inputs(tmp_path: Path) -> None:
+    """An exported ONNX folder holds config.json, tokenizer files and a README beside the
+    model (common practice, no source): they are ignored, not unreadable external data,
+    while a file of unknown kind that the model does not read still fails closed."""
+    import shutil
+
+    folder = tmp_path / "export"
+    folder.mkdir()
+    shutil.copy(Path("fixtures/demo/pumpwear-healthy.onnx"), folder / "model.onnx")
+    (folder / "config.json").write_text('{"model_type": "mlp"}')
+    (folder / "tokenizer.json").write_text("{}")
+    (folder / "README.md").write_text("invented export for this test")
+    result = runner.invoke(app, ["audit", str(folder), "-f", "json"])
+    assert result.exit_code == 0, result.stderr
+    (folder / "weights.bin").write_bytes(b"\x00" * 64)  # not read by the model: unaccounted for
+    result = runner.invoke(app, ["audit", str(folder), "-f", "json"])
+    assert result.exit_code == 2 and "weights.bin" in result.stderr

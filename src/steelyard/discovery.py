@@ -52,6 +52,14 @@ UNREAD_SUFFIXES = frozenset(
 
 #: Endings other files share (``.ts`` is also TypeScript): a checkpoint only by content.
 CONTENT_ONLY_SUFFIXES = frozenset({".ts", ".pts"})
+#: Endings of the configuration, tokenizer and documentation files that sit beside exported
+#: models (``config.json``, ``tokenizer.json``, ``README.md``...): never an ONNX model's
+#: external data, so never an unreadable input of a folder walk. An ONNX model that names
+#: such a file still reads it. Common practice, no source.
+NOT_DATA_SUFFIXES = frozenset(
+    {".json", ".txt", ".md", ".yaml", ".yml", ".toml", ".cfg", ".ini", ".py", ".csv",
+     ".html", ".jinja", ".model", ".tiktoken", ".png", ".jpg", ".jpeg", ".svg", ".gitattributes"}
+)
 
 INDEX_SUFFIX = ".safetensors.index.json"
 
@@ -225,7 +233,11 @@ def _classify(
                 result.targets.append(path)
             else:
                 result.ignored_files += 1
-        elif path.parent in onnx_folders and sniff_format(path) is None:
+        elif (
+            path.parent in onnx_folders
+            and path.suffix.lower() not in NOT_DATA_SUFFIXES
+            and sniff_format(path) is None
+        ):
             # ``model.onnx.data``, ``weights.pb``…: external data, decided after the audit.
             result.maybe_parts.append(path)
         else:

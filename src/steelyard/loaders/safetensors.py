@@ -20,7 +20,6 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
-from steelyard.loaders.packed.assemble import unpack_checkpoint
 
 #: safetensors dtype tag → our short name.
 _DTYPES: dict[str, str] = {
@@ -214,7 +213,10 @@ class SafetensorsLoader:
                     read_span=shard.span_reader(name),
                 )
                 origin[name] = shard.path
-        # Packed layers (GPTQ, AWQ, bitsandbytes, FP8, MLX...) become logical float weights.
+        # Packed layers (GPTQ, AWQ, bitsandbytes, FP8, MLX...) become logical float weights;
+        # imported here so that sniffing other formats never loads the packed package.
+        from steelyard.loaders.packed.assemble import unpack_checkpoint
+
         tensors, notes = unpack_checkpoint(path, tensors, origin)
         return inferred_checkpoint(
             path,

@@ -269,12 +269,15 @@ def _summary(report: Report, width: int) -> list[Text]:
     lines = [Text(""), Text("summary", style="bold"), *grid.render(width)]
     for failure in sorted(failures, key=lambda f: f.split(" ", 1)[1]):
         lines += indented(failure, width, "red", indent=0)
-    verdict = "PASS" if report.passed else "FAIL"
+    if report.gate is None and report.passed:
+        verdict, style = "REPORT ONLY", "bold"  # as each checkpoint's row says: no gate
+    else:
+        verdict, style = ("PASS", "bold green") if report.passed else ("FAIL", "bold red")
     unreadable = f", {count(len(report.errors))} unreadable" if report.errors else ""
     lines.append(
         Text.assemble(
             ("overall ", "bold"),
-            (verdict, "bold green" if report.passed else "bold red"),
+            (verdict, style),
             f" over {plural(len(report.audits), 'checkpoint')} audited{unreadable}",
         )
     )

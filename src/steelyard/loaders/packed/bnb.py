@@ -129,8 +129,10 @@ class Bnb4Weight:
                             f"not one per {blocksize}-element block ({blocks})")
         table = TABLES[quant_type]
         if "quant_map" in parts:
+            if _size(parts["quant_map"]) != 16:  # checked before reading
+                raise LoadError(path, f"{name}: bitsandbytes quant_map does not have 16 codes")
             stored = np.asarray(parts["quant_map"], dtype=np.float32).reshape(-1)
-            if stored.shape != (16,) or not np.allclose(stored, table, atol=1e-3):
+            if not np.allclose(stored, table, atol=1e-3):
                 raise LoadError(path, f"{name}: bitsandbytes quant_map is not the {quant_type} "
                                 "table")
         nested = cls._nested(path, name, parts, state, blocks)
@@ -153,11 +155,12 @@ class Bnb4Weight:
         if parts["absmax"].dtype != np.uint8 or "nested_quant_map" not in parts:
             raise LoadError(path, f"{name}: double-quantized absmax needs uint8 codes and a "
                             "nested_quant_map")
-        code = np.asarray(parts["nested_quant_map"], dtype=np.float32).reshape(-1)
         nested_absmax = parts["nested_absmax"]
-        if code.shape != (256,) or _size(nested_absmax) != -(-blocks // nested_block):
+        if (_size(parts["nested_quant_map"]) != 256
+                or _size(nested_absmax) != -(-blocks // nested_block)):
             raise LoadError(path, f"{name}: bitsandbytes nested absmax/quant_map sizes do not "
                             f"match {blocks} blocks of {nested_block}")
+        code = np.asarray(parts["nested_quant_map"], dtype=np.float32).reshape(-1)
         return nested_absmax, code, nested_block, float(offset)
 
     @property

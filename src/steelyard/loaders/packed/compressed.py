@@ -64,6 +64,17 @@ def _size(part: Part) -> int:
     return int(np.prod(part.shape, dtype=np.int64)) if part.shape else 1
 
 
+def _scale(path: Path, name: str, part: Part, dims: tuple[int, int]) -> np.ndarray:
+    """``weight_scale`` as ``[1 or out, groups]`` float32; its shape is checked before it is
+    read (at most one scale per weight element), so a huge lying scale is never loaded."""
+    shape = tuple(part.shape)
+    if _size(part) == 1:
+        return np.asarray(part, dtype=np.float32).reshape(1, 1)
+    if len(shape) != 2 or shape[0] not in (1, dims[0]) or not 0 < shape[1] <= max(dims[1], 1):
+        raise LoadError(path, f"{name}: weight_scale {list(shape)} is not [out, groups]")
+    return np.asarray(part, dtype=np.float32)
+
+
 @dataclass(frozen=True)
 class PackQuantizedWeight:
     """One pack-quantized weight, checked, with float rows on demand."""
@@ -101,10 +112,7 @@ class PackQuantizedWeight:
         if bits not in fits or packed.shape[0] != dims[0]:
             raise LoadError(path, f"{name}: weight_packed {list(packed.shape)} does not hold "
                             f"{list(dims)} at a supported bit width {SUPPORTED_BITS}")
-        scale = np.asarray(parts["weight_scale"], dtype=np.float32)
-        scale = scale.reshape(1, 1) if scale.size == 1 else scale
-        if scale.ndim != 2 or scale.shape[0] not in (1, dims[0]):
-            raise LoadError(path, f"{name}: weight_scale {list(scale.shape)} is not [out, groups]")
+        scale = _scale(path, name, parts["weight_scale"], dims)
         g_idx = cls._groups(path, name, parts, settings, dims[1], scale.shape[1])
         zero = parts.get("weight_zero_point")
         if zero is not None and _size(zero) == 0:
@@ -193,16 +201,12 @@ class IntQuantizedWeight:
             raise LoadError(path, f"{name}: int-quantized weight is not a 2-D int8 tensor")
         n_out, n_in = weight.shape
         check_elements(path, (n_out, n_in), f"{name} (dequantized)")
-        scale = np.asarray(parts["weight_scale"], dtype=np.float32)
-        scale = scale.reshape(1, 1) if scale.size == 1 else scale
-        if scale.ndim != 2 or scale.shape[0] not in (1, n_out):
-            raise LoadError(path, f"{name}: weight_scale {list(scale.shape)} is not [out, groups]")
+        scale = _scale(path, name, parts["weight_scale"], (n_out, n_in))
         zero = np.zeros(scale.shape, np.float32)
         if "weight_zero_point" in parts:
-            stored = np.asarray(parts["weight_zero_point"], dtype=np.float32)
-            if stored.size != scale.size:
+            if _size(parts["weight_zero_point"]) != scale.size:  # checked before reading
                 raise LoadError(path, f"{name}: weight_zero_point does not match weight_scale")
-            zero = stored.reshape(scale.shape)
+            zero = np.asarray(parts["weight_zero_point"], dtype=np.float32).reshape(scale.shape)
         g_idx = PackQuantizedWeight._groups(path, name, parts, settings, n_in, scale.shape[1])
         return cls(path, name, weight, scale, zero, g_idx)
 

@@ -37,20 +37,22 @@ class Fp8Weight:
         if weight.ndim != 2:
             raise LoadError(path, f"{name}: an FP8 weight must be 2-D")
         n_out, n_in = weight.shape
-        scale = np.asarray(scale, dtype=np.float32)
+        # Shapes are checked before the scale is read, so a huge lying scale is never loaded.
+        size = int(np.prod(scale.shape, dtype=np.int64)) if scale.shape else 1
         if block is not None:
             bo, bi = block
-            if bo <= 0 or bi <= 0 or scale.shape != (-(-n_out // bo), -(-n_in // bi)):
+            if bo <= 0 or bi <= 0 or tuple(scale.shape) != (-(-n_out // bo), -(-n_in // bi)):
                 raise LoadError(path, f"{name}: FP8 block scales {list(scale.shape)} do not "
                                 f"tile {[n_out, n_in]} in {bo}x{bi} blocks")
-        elif scale.size == 1:
-            scale = scale.reshape(1, 1)
-        elif scale.size == n_out and scale.ndim in (1, 2):
-            scale = scale.reshape(n_out, 1)
+            values = np.asarray(scale, dtype=np.float32)
+        elif size == 1:
+            values = np.asarray(scale, dtype=np.float32).reshape(1, 1)
+        elif size == n_out and scale.ndim in (1, 2):
+            values = np.asarray(scale, dtype=np.float32).reshape(n_out, 1)
         else:
             raise LoadError(path, f"{name}: FP8 scale shape {list(scale.shape)} fits neither "
                             f"one scale nor one per output channel of {n_out}")
-        return cls(path, name, weight, scale, block)
+        return cls(path, name, weight, values, block)
 
     @property
     def shape(self) -> tuple[int, int]:

@@ -19,6 +19,7 @@ from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import checkpoint_block, layer_block, stored_type_of
 from steelyard.policy import Policy
+from steelyard.progress_events import layer_done
 from steelyard.ranking import rank, rank_key
 from steelyard.report import CheckpointAudit, LayerHealth, Suppressed
 from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
@@ -92,6 +93,12 @@ class _Admission:
                 self._ready.notify_all()
 
 
+def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
+    """Elements of the layer's tensors (what its share of the file is measured by)."""
+    tensors = checkpoint.tensors
+    return sum(tensors[name].size for name in layer.tensor_names if name in tensors)
+
+
 def run_rules(
     checkpoint: Checkpoint,
     policy: Policy,
@@ -129,6 +136,8 @@ def run_rules(
 
     admission = _Admission(jobs)
     blas = default_jobs()
+    # Bytes of the file per parameter, so progress can say how much of it was read.
+    per_parameter = checkpoint.file_size / max(1, checkpoint.parameters)
 
     def one_layer(layer: Layer) -> list[list[Finding]]:
         # A layer whose matrix is too large to cache runs alone, so two of the largest
@@ -151,6 +160,7 @@ def run_rules(
                 return out
             finally:
                 stats.release(layer)
+                layer_done(checkpoint.path, round(per_parameter * _parameters(checkpoint, layer)))
 
     def whole(spec: RuleSpec) -> list[Finding]:
         rule_settings = settings[spec.name]

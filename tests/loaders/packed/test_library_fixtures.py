@@ -33,6 +33,7 @@ STORED = {
     "bnb-nf4": "bnb-nf4",
     "bnb-fp4": "bnb-fp4",
     "bnb-int8": "bnb-int8",
+    "bnb-nf4-bf16-storage": "bnb-nf4-dq",
     "awq-g16": "awq-int4",
     "awq-g32": "awq-int4",
     "gptq-w4-g16": "gptq-int4",
@@ -88,3 +89,6 @@ def test_library_writer_and_reader_agree_with_steelyard(case: str) -> None:
     else:
         np.testing.assert_array_equal(got, expected)  # bitsandbytes 4-bit: float32, exact
     assert [layer.name for layer in checkpoint.layers] == [name.removesuffix(".weight")]
+    # A span starting and ending inside rows (and inside packed words) is the same values.
+    a, b = 3, got.size - 5
+    np.testing.assert_array_equal(tensor.read_part(a, b), got.reshape(-1)[a:b])

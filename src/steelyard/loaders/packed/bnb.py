@@ -117,11 +117,14 @@ class Bnb4Weight:
         if packed.ndim not in (1, 2) or (packed.ndim == 2 and packed.shape[1] != 1):
             raise LoadError(path, f"{name}: bitsandbytes packed weight {list(packed.shape)} is not "
                             "a column of bytes")
-        if packed.dtype.itemsize != 1 or parts["absmax"].ndim != 1:
-            raise LoadError(path, f"{name}: bitsandbytes 4-bit needs uint8 codes and 1-D absmax")
-        if _size(packed) != -(-n // 2):
+        if parts["absmax"].ndim != 1:
+            raise LoadError(path, f"{name}: bitsandbytes 4-bit needs a 1-D absmax")
+        # quant_storage other than uint8 (bf16, fp16, fp32 for sharded training) holds the
+        # same bytes viewed as wider elements.
+        stored_bytes = _size(packed) * packed.dtype.itemsize
+        if stored_bytes != -(-n // 2):
             raise LoadError(path, f"{name}: bitsandbytes packed weight holds "
-                            f"{2 * _size(parts['weight'])} codes, not the {n} of {list(dims)}")
+                            f"{2 * stored_bytes} codes, not the {n} of {list(dims)}")
         blocks = -(-n // blocksize)
         absmax = parts["absmax"]
         if _size(absmax) != blocks:
@@ -191,7 +194,10 @@ class Bnb4Weight:
         if e1 <= e0:
             return np.empty((0, n_in), dtype=np.float32)
         b0, b1 = e0 // 2, -(-e1 // 2)
-        raw = np.asarray(self.packed[b0:b1]).reshape(-1).view(np.uint8)
+        width = self.packed.dtype.itemsize
+        i0, i1 = b0 // width, -(-b1 // width)
+        words = np.ascontiguousarray(np.asarray(self.packed[i0:i1])).reshape(-1)
+        raw = words.view(np.uint8)[b0 - i0 * width : b1 - i0 * width]
         codes = np.empty(2 * raw.size, dtype=np.uint8)
         codes[0::2] = raw >> 4
         codes[1::2] = raw & 0x0F

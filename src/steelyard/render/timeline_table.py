@@ -4,6 +4,7 @@ findings over the run (where each appeared and went away), the notes and the cau
 
 from __future__ import annotations
 
+import os
 from collections.abc import Callable
 
 from rich.console import RenderableType
@@ -63,21 +64,36 @@ def _layer_findings(timeline: Timeline, series: LayerSeries) -> str:
     return ", ".join(f"{s.rule}@{_where(timeline, s.appeared)}" for s in spans) or "—"
 
 
+def _common_folder(paths: list[str]) -> str:
+    """The folder every checkpoint sits under ('' when they share none worth naming)."""
+    try:
+        common = os.path.commonpath(paths)
+    except ValueError:  # absolute and relative paths mixed
+        return ""
+    return "" if common in ("", os.sep) or common in paths else common
+
+
 def _checkpoints(timeline: Timeline) -> RenderableType:
-    table = titled_table(
-        f"Checkpoints (ordered by {timeline.order})",
-        ("#", "step", "from", "findings", "path"),
-        {"#", "step", "findings"},
-    )
-    _fitted(table)
+    paths = [c.path for c in timeline.checkpoints]
+    folder = _common_folder(paths)
+    sources = {c.position.source for c in timeline.checkpoints}
+    title = f"Checkpoints (ordered by {timeline.order}"
+    if len(sources) == 1 and None not in sources:
+        title += f"; steps from {sources.pop()}"
+    title += f") in {shown(folder)}" if folder else ")"
+    names = ["#", "step", "from", "findings", "path"]
+    if "steps from" in title:
+        names.remove("from")
+    table = _fitted(titled_table(title, names, {"#", "step", "findings"}))
     for entry in timeline.checkpoints:
-        table.add_row(
-            str(entry.index),
-            _where(timeline, entry.index) if entry.position.value is not None else "—",
-            entry.position.source or "—",
-            str(entry.findings),
-            shown(entry.path),
-        )
+        cells = {
+            "#": str(entry.index),
+            "step": _where(timeline, entry.index) if entry.position.value is not None else "—",
+            "from": entry.position.source or "—",
+            "findings": str(entry.findings),
+            "path": shown(os.path.relpath(entry.path, folder) if folder else entry.path),
+        }
+        table.add_row(*(cells[n] for n in names))
     return table
 
 

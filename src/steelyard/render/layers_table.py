@@ -16,7 +16,7 @@ from steelyard.text_safety import shown
 
 def _shape(layer: Layer) -> str:
     kernel = "×".join(str(k) for k in layer.kernel)
-    base = f"{layer.units} × {layer.in_per_group}"
+    base = f"{layer.units:,} × {layer.in_per_group:,}"
     if layer.groups > 1:
         base += f" (g={layer.groups})"
     return f"{base} × {kernel}" if kernel else base

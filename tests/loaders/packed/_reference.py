@@ -63,8 +63,9 @@ def _pack_3bit(moved: np.ndarray) -> np.ndarray:
 #     storage as AutoGPTQ's QuantLinear.pack writes it, recalled: zeros stored minus one) ----
 
 def gptq(rng: np.random.Generator, bits: int, n_out: int, n_in: int, group: int,
-         act: bool) -> tuple[Parts, np.ndarray]:
-    """Parts of a GPTQ layer and its expected float weight ``[out, in]``."""
+         act: bool, v2: bool = False) -> tuple[Parts, np.ndarray]:
+    """Parts of a GPTQ layer and its expected float weight ``[out, in]`` (``v2``: zero points
+    stored as they are, GPTQModel's "gptq_v2" checkpoint format, recalled)."""
     groups = -(-n_in // group)
     q = rng.integers(0, 2**bits, size=(n_in, n_out))
     z = rng.integers(1, 2**bits, size=(groups, n_out))
@@ -72,7 +73,7 @@ def gptq(rng: np.random.Generator, bits: int, n_out: int, n_in: int, group: int,
     g_idx = np.arange(n_in) // group
     if act:
         g_idx = rng.permutation(g_idx)
-    parts = {"qweight": pack_words(q, bits, 0), "qzeros": pack_words(z - 1, bits, 1),
+    parts = {"qweight": pack_words(q, bits, 0), "qzeros": pack_words(z if v2 else z - 1, bits, 1),
              "scales": s, "g_idx": g_idx.astype(np.int32)}
     expected = np.empty((n_out, n_in), np.float32)
     for o in range(n_out):

@@ -93,6 +93,9 @@ HOSTILE: dict[str, tuple[Callable[[Path], Path], str]] = {
     "gptq 3-bit declared over 4-bit words": (
         lambda d: _gptq(d, config={"quantization_config": {"quant_method": "gptq", "bits": 3}}),
         "does not fit"),
+    "gptq marlin checkpoint format": (
+        lambda d: _gptq(d, config={"quantization_config": {
+            "quant_method": "gptq", "checkpoint_format": "marlin"}}), "checkpoint format"),
     "gptq g_idx past the groups": (
         lambda d: _gptq(d, _set("g_idx", np.full(32, 1000, np.int32))), "g_idx"),
     "gptq qweight truncated to fewer inputs": (

@@ -66,6 +66,14 @@ def test_gptq_matches_published_formula(tmp_path: Path, bits: int, n_out: int, n
     _check(path, M, expected, f"gptq-int{bits}")
 
 
+def test_gptq_v2_zero_points_are_not_offset(tmp_path: Path) -> None:
+    parts, expected = ref.gptq(np.random.default_rng(12), 4, 8, 32, 16, act=True, v2=True)
+    config = {"quantization_config": {"quant_method": "gptq", "bits": 4, "group_size": 16,
+                                      "checkpoint_format": "gptq_v2"}}
+    path = ref.save(tmp_path / "model.safetensors", ref.prefixed(M, parts), config)
+    _check(path, M, expected, "gptq-int4")
+
+
 def test_gptq_without_config_or_g_idx_infers_bits_and_groups(tmp_path: Path) -> None:
     parts, expected = ref.gptq(np.random.default_rng(3), 8, 6, 32, 8, act=False)
     del parts["g_idx"]

@@ -75,7 +75,11 @@ def gptq(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) ->
     if "g_idx" not in parts and (group <= 0 or -(-n_in // group) != groups):
         raise LoadError(path, f"{module.prefix}: GPTQ group size {group} over {n_in} inputs "
                         f"does not give the {groups} groups of scales")
-    v2 = str(config.settings.get("checkpoint_format", "")).lower() == "gptq_v2"
+    layout = str(config.settings.get("checkpoint_format", "gptq")).lower()
+    if layout not in ("gptq", "gptq_v2"):  # marlin, bitblas...: kernel-specific repacking
+        raise LoadError(path, f"{module.prefix}: GPTQ checkpoint format {layout!r} is not "
+                        "supported (gptq, gptq_v2)")
+    v2 = layout == "gptq_v2"
     return GptqWeight.build(path, module.prefix, parts, bits, group, zero_offset=0 if v2 else 1)
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import inspect
+import re
 from collections.abc import Mapping
 
 from rich.console import RenderableType
@@ -10,6 +11,9 @@ from rich.console import RenderableType
 from steelyard.render.grid import COMPACT_BELOW, Column, Grid
 from steelyard.render.text import to_text
 from steelyard.rules.base import RuleSpec
+
+#: A Sphinx cross-reference in a docstring (":func:`name`"): on a terminal, just the code.
+_SPHINX_ROLE = re.compile(r":(?:mod|func|class|meth|data|attr|obj):`([^`]*)`")
 
 #: Kept for callers' annotations: every rule, of any command, is a RuleSpec.
 AnySpec = RuleSpec
@@ -58,7 +62,7 @@ def render_rule(spec: AnySpec, *, color: bool = False, width: int = 120) -> str:
         f"help: {spec.help_uri}",
     ]
     page: list[RenderableType] = [
-        Markdown(inspect.cleandoc(spec.doc), hyperlinks=False),
+        Markdown(_SPHINX_ROLE.sub(r"`\1`", inspect.cleandoc(spec.doc)), hyperlinks=False),
         Text(""),
         *(line for text in footer for line in indented(text, width, indent=0)),
     ]

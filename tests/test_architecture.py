@@ -10,6 +10,7 @@ neither do imports under ``if TYPE_CHECKING:``.
 from __future__ import annotations
 
 import ast
+import sys
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -192,3 +193,47 @@ def test_start_up_imports_no_heavy_format_library() -> None:
         [sys.executable, "-c", probe], capture_output=True, text=True, check=True
     ).stdout.strip()
     assert loaded == ""
+
+
+#: What ``pip install steelyard`` installs (pyproject's dependencies), by import name.
+RUNTIME = {"numpy", "h5py", "safetensors", "onnx", "rich", "typer", "ml_dtypes", "typing_extensions",
+           "threadpoolctl", "tomli"}
+#: The extras' packages (pyproject's optional-dependencies), by import name: imported only
+#: inside the functions that need them, never when a module is imported.
+EXTRAS = {"gguf", "tokenizers", "jinja2", "markupsafe", "vl_convert"}
+
+
+def _third_party_imports() -> list[tuple[str, str, bool]]:
+    """(module, imported top-level name, at module level) for every non-stdlib import."""
+    found = []
+    for name, path in MODULES.items():
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        top_level = {id(node) for node in tree.body}
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                roots = [alias.name.split(".")[0] for alias in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.level == 0 and node.module:
+                roots = [node.module.split(".")[0]]
+            else:
+                continue
+            for root in roots:
+                if root != "steelyard" and root not in sys.stdlib_module_names:
+                    found.append((name, root, id(node) in top_level))
+    return found
+
+
+def test_only_declared_dependencies_are_imported() -> None:
+    """A package a fresh install lacks would fail at start-up (typer >= 0.26 vendors click, so
+    ``import click`` worked here only because another package had installed it)."""
+    found = _third_party_imports()
+    assert {"numpy", "typer", "gguf"} <= {r for _, r, _ in found}  # the scan sees imports at all
+    undeclared = {(m, r) for m, r, _ in found if r not in RUNTIME | EXTRAS}
+    assert undeclared == set()
+
+
+def test_extras_are_imported_lazily() -> None:
+    eager = {(m, r) for m, r, top in _third_party_imports() if r in EXTRAS and top}
+    # The HTML page module is only ever imported through render.report_formats.html_renderers,
+    # which turns a missing extra into one error line.
+    allowed = {("steelyard.render.html.page", "markupsafe")}
+    assert eager - allowed == set()

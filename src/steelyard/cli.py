@@ -16,14 +16,12 @@ import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from types import ModuleType
 from typing import TYPE_CHECKING, NoReturn
 
-import click
 import typer
 from typing_extensions import assert_never
 
-from steelyard import api
-from steelyard.budget import Budget
 from steelyard.cli_options import (
     AuditFormat,
     BudgetOption,
@@ -38,19 +36,18 @@ from steelyard.cli_options import (
     Unreadable,
     output_targets,
 )
-from steelyard.comparison.report import CompareReport
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.findings import FailOn
-from steelyard.gradients import GradsKind
-from steelyard.inventory import layers_document
-from steelyard.render.layers_table import render_layers
-from steelyard.report import Report
+from steelyard.grads_kind import GradsKind
 from steelyard.run_timeline.ordering import Order
 from steelyard.text_safety import shown
 from steelyard.version import __version__
 
 if TYPE_CHECKING:
+    from steelyard.budget import Budget
+    from steelyard.comparison.report import CompareReport
     from steelyard.policy import Policy
+    from steelyard.report import Report
 
 app = typer.Typer(
     add_completion=False,
@@ -88,6 +85,13 @@ def _width() -> int:
         return 120
 
 
+def _api() -> ModuleType:
+    """The library API, imported when a command needs it (``--help`` and ``--version`` do not)."""
+    from steelyard import api
+
+    return api
+
+
 def _say(line: str) -> None:
     """One diagnostic line on stderr, with names from files escaped (a newline in a file name
     never splits it, an escape sequence never reaches the terminal)."""
@@ -106,6 +110,13 @@ def _reading(what: object) -> None:
     _STATE["reading"] = str(what)
 
 
+#: The command-line framework's usage errors (click's ClickException, which typer vendors
+#: from 0.26 on): found through typer so that click need not be installed separately.
+_USAGE_ERROR: type[Exception] = next(
+    (c for c in typer.BadParameter.__mro__ if c.__name__ == "ClickException"), typer.BadParameter
+)
+
+
 @contextmanager
 def _guarded() -> Iterator[None]:
     """Every failure of a command becomes one stderr line and its exit code.
@@ -118,7 +129,7 @@ def _guarded() -> Iterator[None]:
     _STATE["reading"] = None
     try:
         yield
-    except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException):
+    except (typer.Exit, typer.Abort, _USAGE_ERROR):
         raise
     except SteelyardError as error:
         _fail(error)
@@ -155,6 +166,8 @@ def _bar_text(text: str) -> str:
 
 def _budget(policy: Policy | None, pairs: list[str] | None) -> Budget:
     """The budget in force: defaults, then the policy's [budget] table, then --budget."""
+    from steelyard.budget import Budget
+
     chosen = policy.budget if policy is not None and policy.budget is not None else Budget()
     overrides: dict[str, object] = {}
     for pair in pairs or ():
@@ -248,11 +261,15 @@ def layers(
     with _guarded():
         limits = _budget(_policy(policy_file, None), budget)
         _reading(path)
-        checkpoint = api.load(path, budget=limits)
+        checkpoint = _api().load(path, budget=limits)
         if format is LayersFormat.json:
+            from steelyard.inventory import layers_document
+
             text = json.dumps(layers_document(checkpoint), indent=2) + "\n"
         elif format is LayersFormat.table:
             color = _color() and output is None
+            from steelyard.render.layers_table import render_layers
+
             text = render_layers(checkpoint, color=color, width=_width())
         else:
             assert_never(format)
@@ -321,14 +338,14 @@ def audit(
         _reading(baseline)
         accepted = read_baseline(baseline) if baseline is not None else None
         _reading(paths[0] if len(paths) == 1 else "the checkpoints named")
-        run = api.plan(paths, grads, base)
+        run = _api().plan(paths, grads, base)
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(run.targets)) as progress:
 
             def advance(path: str) -> None:
                 _reading(path)
                 progress.advance(_bar_text(path))
 
-            report = api.audit_many(
+            report = _api().audit_many(
                 run,
                 policy=policy,
                 grads=grads,
@@ -385,7 +402,7 @@ def compare(
         with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
             progress.advance(_bar_text(f"{old} → {new}"))
             _reading(f"{old} or {new}")
-            report = api.compare(old, new, policy=policy, budget=limits)
+            report = _api().compare(old, new, policy=policy, budget=limits)
         _STATE["reading"] = None
         for chosen, target in targets:
             _write_report(_render_compare(report, CompareFormat(chosen)), target, quiet)
@@ -474,7 +491,7 @@ def timeline(
         targets = output_targets(format.value if format else None, output, TimelineFormat)
         policy = _policy(policy_file, fail_on)
         limits = _budget(policy, budget)
-        result = api.timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
+        result = _api().timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
         _STATE["reading"] = None
         for chosen, target in targets:
             color = _color() and target is None

@@ -16,26 +16,13 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from enum import Enum
 
 import numpy as np
 
 from steelyard.errors import LoadError
+from steelyard.grads_kind import GradsKind as GradsKind
 from steelyard.graph import Checkpoint, Layer
 from steelyard.stats.reading import locked, read_float32
-
-
-class GradsKind(str, Enum):
-    """What a gradient sidecar holds per weight."""
-
-    RMS = "rms"
-    """Root mean square of the gradient over batches."""
-    ABS = "abs"
-    """Mean absolute gradient."""
-    SQ = "sq"
-    """Mean squared gradient."""
-    FISHER = "fisher"
-    """Diagonal empirical Fisher information (mean squared per-example gradient)."""
 
 
 @dataclass(frozen=True)

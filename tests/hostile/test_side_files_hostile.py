@@ -17,8 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from click.testing import Result
-from typer.testing import CliRunner
+from typer.testing import CliRunner, Result
 
 from steelyard.cli import app
 from tests.conftest import mlp_tensors, write_safetensors

@@ -35,11 +35,20 @@ BLOCK_BYTES = 32 * 2**20
 DESIGN_RECALL = 0.9999
 #: Recall measured by ``bench/twin_recall.py`` on planted twins (worst width, rounded down).
 MEASURED_RECALL = 0.99
-#: Buckets up to this size enumerate their pairs directly; larger ones use a Gram product.
-_SMALL_BUCKET = 32
 #: Most partners kept per row. A layer of many identical rows (a constant initialisation,
 #: say) would otherwise yield n²/2 pairs; 64 partners per row keep such a group connected.
 PARTNERS = 64
+#: Most rows compared all against all in one hash bucket; a larger bucket gets a longer key.
+BUCKET_CAP = 128
+#: Most bits added to a table's key to split an oversized bucket, ``_SPLIT_STEP`` at a time.
+EXTRA_BITS = 24
+_SPLIT_STEP = 4
+#: Buckets up to this size are padded to 2, 4 or 8 rows and multiplied in batches.
+_BATCHED = 8
+#: Time of one dot product in the bucket products relative to one in the exact search's large
+#: blocks (measured, see docs/performance.md): the hashed search is used only when its planned
+#: dot products times this are fewer than the exact search's n(n+1)/2.
+BUCKET_DOT_COST = 3.0
 #: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
 _SLACK = 1e-4
@@ -71,6 +80,8 @@ class Rows:
     def take(self, index: np.ndarray | list[int], dtype: type = np.float64) -> np.ndarray:
         """The rows at ``index`` (extra column included), as ``dtype``."""
         index = np.asarray(index, dtype=np.int64)
+        if self.extra is None:
+            return np.asarray(self.matrix[index], dtype=dtype)
         width = self.matrix.shape[1] + (0 if self.extra is None else 1)
         out = np.empty((index.size, width), dtype=dtype)
         out[:, : self.matrix.shape[1]] = self.matrix[index]
@@ -81,6 +92,10 @@ class Rows:
     def unit(self, index: np.ndarray) -> np.ndarray:
         """r_j/‖r_j‖ at ``index`` as float32 (rows with a zero or non-finite norm become 0)."""
         return scaled(self.take(index, np.float32), self.norms[index])
+
+    def project_rows(self, index: np.ndarray, planes: np.ndarray) -> np.ndarray:
+        """The rows at ``index`` times ``planes``."""
+        return np.asarray(self.take(index, np.float32) @ planes)
 
     def project(self, planes: np.ndarray) -> np.ndarray:
         """Every row times ``planes`` (``[d (+1), k]``), one BLAS product on the stored rows."""
@@ -97,10 +112,16 @@ def normalise(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return scaled(view.matrix, view.norms), view.norms
 
 
+def _inverse(norms: np.ndarray) -> np.ndarray:
+    """1/norms as float32, 0 where a norm is zero or not finite."""
+    usable = np.isfinite(norms) & (norms > 0)
+    return np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
+
+
 def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
     """``rows / norms`` as a new float32 array; rows with a zero or non-finite norm become 0."""
     usable = np.isfinite(norms) & (norms > 0)
-    scale = np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
+    scale = _inverse(norms)
     out = np.empty(rows.shape, dtype=np.float32)
     with np.errstate(invalid="ignore", over="ignore"):
         np.multiply(rows, scale[:, None], out=out)
@@ -108,90 +129,113 @@ def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
     return out
 
 
-def _confirm(
-    rows: Rows, first: np.ndarray, second: np.ndarray, threshold: float, negative: bool
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Cosines of candidate pairs, keeping those past the threshold: a float32 pass over the
-    gathered rows, then float64 for the pairs it cannot rule out."""
-    if first.size == 0:
-        return _EMPTY, _EMPTY, np.zeros(0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return _confirm_pairs(rows, first, second, threshold, negative)
+@dataclass
+class Tally:
+    """What a search spent, filled in as it goes (read by the tests and the benchmark)."""
+
+    method: str = "exact"
+    """``exact`` or ``hashed``: the search that produced the pairs."""
+    tables: int = 0
+    bits: int = 0
+    dots: int = 0
+    """Float32 dot products of normalised rows computed to find and confirm pairs."""
+    planned: int = 0
+    """Dot products the hashed plan needed (counted before any was computed)."""
+    largest: int = 0
+    """The largest set of rows compared all against all in the hashed search (<= BUCKET_CAP)."""
+    split: int = 0
+    """Buckets split by raising their key length."""
+    banded: int = 0
+    """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
 
 
-def _confirm_pairs(
-    rows: Rows, first: np.ndarray, second: np.ndarray, threshold: float, negative: bool
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    width = rows.matrix.shape[1] + 1
-    step = max(1, BLOCK_BYTES // (8 * width))
-    rough = np.empty(first.size)
-    for start in range(0, first.size, step):
-        a, b = first[start : start + step], second[start : start + step]
-        dots = np.einsum("ij,ij->i", rows.matrix[a], rows.matrix[b], dtype=np.float32)
-        if rows.extra is not None:
-            dots = dots + rows.extra[a] * rows.extra[b]
-        rough[start : start + step] = dots / (rows.norms[a] * rows.norms[b])
+def _partner_mask(first: np.ndarray) -> np.ndarray:
+    """True for the first ``PARTNERS`` entries of every run of equal ``first`` values."""
+    if first.size <= PARTNERS:
+        return np.ones(first.size, dtype=bool)
+    starts = np.flatnonzero(np.r_[True, first[1:] != first[:-1]])
+    rank = np.arange(first.size) - np.repeat(starts, np.diff(np.r_[starts, first.size]))
+    return np.asarray(rank < PARTNERS)
+
+
+def _passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
+    """Entries within slack of the threshold in float32 (candidates for the float64 check)."""
     loose = threshold - _SLACK
-    maybe = rough >= loose
+    mask = gram >= loose
     if negative:
-        maybe |= rough <= -loose
-    first, second = first[maybe], second[maybe]
-    cos = np.empty(first.size)
+        mask |= gram <= -loose
+    return np.asarray(mask)
+
+
+def _gram_hits(
+    unit: np.ndarray, threshold: float, negative: bool, tally: Tally
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pairs ``i < k`` of normalised rows passing the float32 filter, by blocked Gram products,
+    with their float32 cosines; each row keeps its first ``PARTNERS`` partners."""
+    n = unit.shape[0]
+    block = max(1, BLOCK_BYTES // max(1, 4 * n))
+    firsts: list[np.ndarray] = []
+    seconds: list[np.ndarray] = []
+    values: list[np.ndarray] = []
+    for start in range(0, n, block):
+        stop = min(n, start + block)
+        gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
+        tally.dots += int(gram.size)
+        hits = np.argwhere(_passing(gram, threshold, negative))
+        hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
+        hits = hits[_partner_mask(hits[:, 0])]
+        firsts.append(hits[:, 0] + start)
+        seconds.append(hits[:, 1] + start)
+        values.append(gram[hits[:, 0], hits[:, 1]])
+    if not firsts:
+        return _EMPTY, _EMPTY, np.zeros(0, np.float32)
+    return (
+        np.concatenate(firsts).astype(np.int64),
+        np.concatenate(seconds).astype(np.int64),
+        np.concatenate(values),
+    )
+
+
+def _settle(
+    rows: Rows,
+    first: np.ndarray,
+    second: np.ndarray,
+    rough: np.ndarray,
+    threshold: float,
+    negative: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Keep the pairs past the threshold: float32 cosines decide where they are more than
+    the slack away from it, float64 cosines recomputed from the rows decide the rest."""
+    cos = rough.astype(np.float64)
+    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < _SLACK)
+    width = rows.matrix.shape[1] + 1
     step = max(1, BLOCK_BYTES // (16 * width))
-    for start in range(0, first.size, step):
-        a, b = first[start : start + step], second[start : start + step]
-        dots = np.einsum("ij,ij->i", rows.take(a), rows.take(b))
-        cos[start : start + step] = dots / (rows.norms[a] * rows.norms[b])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for start in range(0, near.size, step):
+            pick = near[start : start + step]
+            a, b = first[pick], second[pick]
+            dots = np.einsum("ij,ij->i", rows.take(a), rows.take(b))
+            cos[pick] = dots / (rows.norms[a] * rows.norms[b])
     keep = cos >= threshold
     if negative:
         keep |= cos <= -threshold
     return first[keep], second[keep], cos[keep]
 
 
-def _cap_partners(hits: np.ndarray) -> np.ndarray:
-    """At most ``PARTNERS`` hits per row (``hits`` is in row-major order, as argwhere gives)."""
-    if hits.shape[0] <= PARTNERS:
-        return hits
-    rows = hits[:, 0]
-    starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
-    rank = np.arange(rows.size) - np.repeat(starts, np.diff(np.r_[starts, rows.size]))
-    return hits[rank < PARTNERS]
-
-
-def _gram_candidates(
-    unit: np.ndarray, threshold: float, negative: bool
-) -> tuple[np.ndarray, np.ndarray]:
-    """Pairs ``i < k`` of normalised rows whose float32 cosine is within slack of the
-    threshold, by blocked Gram products."""
-    n = unit.shape[0]
-    block = max(1, BLOCK_BYTES // max(1, 4 * n))
-    firsts: list[np.ndarray] = []
-    seconds: list[np.ndarray] = []
-    loose = threshold - _SLACK
-    for start in range(0, n, block):
-        stop = min(n, start + block)
-        gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
-        mask = gram >= loose
-        if negative:
-            mask |= gram <= -loose
-        hits = np.argwhere(mask)
-        hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
-        hits = _cap_partners(hits)
-        firsts.append(hits[:, 0] + start)
-        seconds.append(hits[:, 1] + start)
-    if not firsts:
-        return _EMPTY, _EMPTY
-    return np.concatenate(firsts).astype(np.int64), np.concatenate(seconds).astype(np.int64)
+def _exact_among(
+    rows: Rows, members: np.ndarray, threshold: float, negative: bool, tally: Tally
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    tally.method = "exact"
+    first, second, rough = _gram_hits(rows.unit(members), threshold, negative, tally)
+    return _settle(rows, members[first], members[second], rough, threshold, negative)
 
 
 def exact_pairs(
-    rows: np.ndarray | Rows, threshold: float, negative: bool = False
+    rows: np.ndarray | Rows, threshold: float, negative: bool = False, tally: Tally | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Every pair ``i < k`` of rows past the cosine threshold, by blocked Gram products."""
     view = rows if isinstance(rows, Rows) else Rows.of(rows)
-    every = np.arange(view.count)
-    first, second = _gram_candidates(view.unit(every), threshold, negative)
-    return _confirm(view, first, second, threshold, negative)
+    return _exact_among(view, np.arange(view.count), threshold, negative, tally or Tally())
 
 
 def hash_plan(n: int, threshold: float) -> tuple[int, int]:
@@ -205,34 +249,161 @@ def hash_plan(n: int, threshold: float) -> tuple[int, int]:
     return bits, int(min(64, max(1, tables)))
 
 
-def _bucket_pairs(
-    order: np.ndarray, keys: np.ndarray, rows: Rows, threshold: float, negative: bool
-) -> tuple[list[np.ndarray], list[np.ndarray]]:
-    """Candidate pairs of rows sharing a key (``order`` sorts ``keys``; negative keys are
-    rows left out, each alone in its bucket)."""
-    sorted_keys = keys[order]
-    starts = np.flatnonzero(np.r_[True, sorted_keys[1:] != sorted_keys[:-1]])
-    sizes = np.diff(np.r_[starts, sorted_keys.size])
-    bucket = np.repeat(np.arange(starts.size), sizes)
-    small = sizes[bucket] <= _SMALL_BUCKET
-    firsts: list[np.ndarray] = []
-    seconds: list[np.ndarray] = []
-    # Pairs at distance o in sorted order inside the same small bucket, for o = 1 … 31.
-    for offset in range(1, min(_SMALL_BUCKET, int(sizes.max(initial=1)))):
-        same = (bucket[offset:] == bucket[:-offset]) & small[offset:]
-        if not same.any():
-            continue
-        a = order[:-offset][same]
-        b = order[offset:][same]
-        firsts.append(np.minimum(a, b))
-        seconds.append(np.maximum(a, b))
-    # Large buckets (rows that hash alike in bulk): a Gram search inside the bucket.
-    for index in np.flatnonzero(sizes > _SMALL_BUCKET):
-        members = np.sort(order[starts[index] : starts[index] + sizes[index]])
-        a, b = _gram_candidates(rows.unit(members), threshold, negative)
-        firsts.append(members[a])
-        seconds.append(members[b])
-    return firsts, seconds
+def _table_buckets(
+    view: Rows,
+    signs: np.ndarray,
+    negative: bool,
+    outside: np.ndarray | None,
+    table: int,
+    seed: int,
+    tally: Tally,
+) -> np.ndarray:
+    """Bucket number of every row in one table, oversized buckets split (see module docstring)."""
+    bits = signs.shape[1]
+    keys = signs.astype(np.int64) @ (1 << np.arange(bits, dtype=np.int64))
+    flipped = np.zeros(keys.size, dtype=bool)
+    if negative:
+        # x and −x get complementary keys; key the pair {key, ~key} by its smaller member and
+        # remember which rows were flipped, so the bits added below are flipped alike.
+        mask = (1 << bits) - 1
+        flipped = keys > (keys ^ mask)
+        keys[flipped] ^= mask
+    if outside is not None:
+        keys[outside] = -1 - np.flatnonzero(outside)  # distinct keys: never in a pair
+    bucket = np.unique(keys, return_inverse=True)[1].reshape(-1)
+    sizes = np.bincount(bucket)
+    members = np.flatnonzero(sizes[bucket] > BUCKET_CAP)
+    if members.size == 0:
+        return bucket
+    # Longer keys for the rows of oversized buckets only: their own hyperplanes, seeded by table.
+    planes = np.random.default_rng((seed, table)).standard_normal(
+        (view.matrix.shape[1] + (0 if view.extra is None else 1), EXTRA_BITS), dtype=np.float32
+    )
+    extra = (view.project_rows(members, planes) > 0) ^ flipped[members, None]
+    weights = 1 << np.arange(_SPLIT_STEP, dtype=np.int64)
+    for step in range(EXTRA_BITS // _SPLIT_STEP):
+        big = sizes[bucket[members]] > BUCKET_CAP
+        if not big.any():
+            break
+        tally.split += int(np.unique(bucket[members[big]]).size)
+        chunk = extra[big, step * _SPLIT_STEP : (step + 1) * _SPLIT_STEP].astype(np.int64) @ weights
+        code = bucket.astype(np.int64) << _SPLIT_STEP  # other buckets keep their rows together
+        code[members[big]] += chunk
+        bucket = np.unique(code, return_inverse=True)[1].reshape(-1)
+        sizes = np.bincount(bucket)
+    return bucket
+
+
+def _planned_dots(sizes: np.ndarray) -> int:
+    """Dot products ``_bucket_hits`` will compute for buckets of these sizes."""
+    small = sizes[(sizes >= 2) & (sizes <= _BATCHED)]
+    padded = 1 << np.ceil(np.log2(np.maximum(small, 2))).astype(np.int64)
+    middle = sizes[(sizes > _BATCHED) & (sizes <= BUCKET_CAP)].astype(np.int64)
+    dense = sizes[sizes > BUCKET_CAP].astype(np.int64)
+    band = sum(_band_dots(int(b)) for b in dense)
+    return int((padded * padded).sum() + (middle * middle).sum() + band)
+
+
+def _band_dots(size: int) -> int:
+    return sum(
+        min(BUCKET_CAP, size - s) * min(2 * BUCKET_CAP, size - s)
+        for s in range(0, size, BUCKET_CAP)
+    )
+
+
+def _bucket_hits(
+    view: Rows, bucket: np.ndarray, threshold: float, negative: bool, tally: Tally
+) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
+    """Pairs inside buckets passing the float32 filter, with their float32 cosines.
+
+    Buckets of up to ``_BATCHED`` rows are stacked (padded to 2, 4 or 8 rows) and multiplied in
+    one batched product per size; larger ones up to ``BUCKET_CAP`` get one Gram product each;
+    a bucket still larger compares each run of ``BUCKET_CAP`` members (in index order) with
+    itself and the next run, a band of its Gram matrix, so every member meets at least the
+    ``BUCKET_CAP`` >= ``PARTNERS`` members that follow it."""
+    order = np.argsort(bucket, kind="stable")  # each bucket's members in index order
+    sizes = np.bincount(bucket)
+    starts = np.r_[0, np.cumsum(sizes)[:-1]]
+    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
+    width = view.matrix.shape[1] + (0 if view.extra is None else 1)
+    for pad in (2, 4, 8):
+        chosen = np.flatnonzero((sizes > pad // 2) & (sizes <= pad))
+        step = max(1, BLOCK_BYTES // (8 * pad * width))
+        for at in range(0, chosen.size, step):
+            part = chosen[at : at + step]
+            offsets = np.arange(pad)
+            valid = offsets < sizes[part, None]
+            index = order[np.where(valid, starts[part, None] + offsets, starts[part, None])]
+            stack = np.zeros((part.size, pad, width), dtype=np.float32)
+            stack[valid] = view.take(index[valid], np.float32)
+            inverse = np.zeros(valid.shape, dtype=np.float32)
+            inverse[valid] = _inverse(view.norms[index[valid]])
+            gram = np.matmul(stack, np.ascontiguousarray(stack.transpose(0, 2, 1)))
+            with np.errstate(invalid="ignore", over="ignore"):
+                gram *= inverse[:, :, None]
+                gram *= inverse[:, None, :]
+            tally.dots += int(gram.size)
+            upper = np.triu(np.ones((pad, pad), dtype=bool), 1)
+            hit = (
+                _passing(gram, threshold, negative) & upper & valid[:, :, None] & valid[:, None, :]
+            )
+            which, i, k = np.nonzero(hit)
+            _keep(found, index[which, i], index[which, k], gram[which, i, k])
+    for number in np.flatnonzero((sizes > _BATCHED) & (sizes <= BUCKET_CAP)):
+        members = order[starts[number] : starts[number] + sizes[number]]
+        _block_hits(view, members, members, threshold, negative, tally, found)
+    for number in np.flatnonzero(sizes > BUCKET_CAP):
+        members = order[starts[number] : starts[number] + sizes[number]]
+        tally.banded += int(members.size)
+        for at in range(0, members.size, BUCKET_CAP):
+            _block_hits(
+                view,
+                members[at : at + BUCKET_CAP],
+                members[at : at + 2 * BUCKET_CAP],
+                threshold,
+                negative,
+                tally,
+                found,
+            )
+    return found
+
+
+def _block_hits(
+    view: Rows,
+    rows: np.ndarray,
+    against: np.ndarray,
+    threshold: float,
+    negative: bool,
+    tally: Tally,
+    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]],
+) -> None:
+    """Pairs (rows[i], against[k]) with k > i (``against`` starts with ``rows``)."""
+    # Cosines from the raw rows' Gram matrix, scaled afterwards: b² multiplications instead of
+    # a normalised copy of every gathered row.
+    raw = view.take(against, np.float32)
+    inverse = _inverse(view.norms[against])
+    gram = raw[: rows.size] @ raw.T
+    with np.errstate(invalid="ignore", over="ignore"):
+        gram *= inverse[: rows.size, None]
+        gram *= inverse[None, :]
+    tally.dots += int(gram.size)
+    tally.largest = max(tally.largest, rows.size)
+    i, k = np.nonzero(_passing(gram, threshold, negative))
+    later = k > i
+    i, k = i[later], k[later]
+    _keep(found, rows[i], against[k], gram[i, k])
+
+
+def _keep(
+    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]],
+    a: np.ndarray,
+    b: np.ndarray,
+    cos: np.ndarray,
+) -> None:
+    if a.size:
+        found[0].append(np.minimum(a, b))
+        found[1].append(np.maximum(a, b))
+        found[2].append(cos)
 
 
 def candidate_pairs(
@@ -241,37 +412,48 @@ def candidate_pairs(
     negative: bool = False,
     seed: int = 0,
     usable: np.ndarray | None = None,
+    tally: Tally | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Pairs past the cosine threshold found through sign-hash buckets (see module docstring);
-    only rows where ``usable`` is true take part."""
+    only rows where ``usable`` is true take part. Falls back to the exact search when that is
+    cheaper than confirming the buckets."""
     view = rows if isinstance(rows, Rows) else Rows.of(rows)
+    tally = tally or Tally()
     n = view.count
+    members = np.arange(n) if usable is None else np.flatnonzero(usable)
     width = view.matrix.shape[1] + (0 if view.extra is None else 1)
     bits, tables = hash_plan(n, threshold)
+    tally.bits, tally.tables = bits, tables
     rng = np.random.default_rng(seed)
     # Every table's hyperplanes in one matrix, so the projection is a single BLAS product.
     planes = rng.standard_normal((width, bits * tables), dtype=np.float32)
     signs = view.project(planes) > 0
-    weights = 1 << np.arange(bits, dtype=np.int64)
-    mask = (1 << bits) - 1
     outside = None if usable is None else ~np.asarray(usable, dtype=bool)
-    firsts: list[np.ndarray] = []
-    seconds: list[np.ndarray] = []
-    for table in range(tables):
-        keys = signs[:, table * bits : (table + 1) * bits].astype(np.int64) @ weights
-        if negative:
-            # x and −x get complementary keys; key the pair {key, ~key} by its smaller member.
-            keys = np.minimum(keys, keys ^ mask)
-        if outside is not None:
-            keys[outside] = -1 - np.flatnonzero(outside)  # distinct keys: never in a pair
-        order = np.argsort(keys, kind="stable")
-        found_a, found_b = _bucket_pairs(order, keys, view, threshold, negative)
-        firsts += found_a
-        seconds += found_b
-    if not firsts:
+    buckets = [
+        _table_buckets(view, signs[:, t * bits : (t + 1) * bits], negative, outside, t, seed, tally)
+        for t in range(tables)
+    ]
+    del signs
+    tally.planned = sum(_planned_dots(np.bincount(b)) for b in buckets)
+    exact_dots = members.size * (members.size + 1) // 2
+    if tally.planned * BUCKET_DOT_COST > exact_dots:
+        return _exact_among(view, members, threshold, negative, tally)
+    tally.method = "hashed"
+    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
+    for bucket in buckets:
+        for into, part in zip(
+            found, _bucket_hits(view, bucket, threshold, negative, tally), strict=True
+        ):
+            into += part
+    if not found[0]:
         return _EMPTY, _EMPTY, np.zeros(0)
-    code = np.unique(np.concatenate(firsts).astype(np.int64) * n + np.concatenate(seconds))
-    return _confirm(view, code // n, code % n, threshold, negative)
+    code, where = np.unique(
+        np.concatenate(found[0]) * n + np.concatenate(found[1]), return_index=True
+    )
+    first, second = code // n, code % n
+    rough = np.concatenate(found[2])[where]
+    keep = _partner_mask(first)  # the exact search's cap, on the same row-major order
+    return _settle(view, first[keep], second[keep], rough[keep], threshold, negative)
 
 
 def similar_pairs(
@@ -281,14 +463,14 @@ def similar_pairs(
     exact_limit: int,
     seed: int = 0,
     usable: np.ndarray | None = None,
+    tally: Tally | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     """Pairs among the ``usable`` rows: exact search up to ``exact_limit`` of them, hashed
-    candidates beyond; names the method."""
+    candidates beyond (or exact when cheaper); names the method."""
+    tally = tally or Tally()
     members = np.arange(rows.count) if usable is None else np.flatnonzero(usable)
     if members.size < 2:
         return _EMPTY, _EMPTY, np.zeros(0), "exact"
     if members.size <= exact_limit:
-        first, second = _gram_candidates(rows.unit(members), threshold, negative)
-        a, b, cos = _confirm(rows, members[first], members[second], threshold, negative)
-        return a, b, cos, "exact"
-    return (*candidate_pairs(rows, threshold, negative, seed, usable), "hashed")
+        return (*_exact_among(rows, members, threshold, negative, tally), "exact")
+    return (*candidate_pairs(rows, threshold, negative, seed, usable, tally), tally.method)

@@ -19,7 +19,7 @@ import numpy as np
 
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
-from steelyard.loaders.packed.gptq import unpack_words
+from steelyard.loaders.packed.gptq import dequantize_groups, unpack_words
 from steelyard.loaders.packed.stored import Part
 
 ORDER = (0, 2, 4, 6, 1, 3, 5, 7)
@@ -85,8 +85,11 @@ class AwqWeight:
         """Dequantized float32 rows ``[start, stop)``; whole words are unpacked, then cut."""
         w0, w1 = start // 8, -(-stop // 8)
         cut = slice(start - 8 * w0, stop - 8 * w0)
-        codes = unpack_awq(self.qweight[:, w0:w1])[:, cut].astype(np.float32)
-        zeros = unpack_awq(self.qzeros[:, w0:w1])[:, cut].astype(np.float32)
-        scales = np.asarray(self.scales[:, start:stop], dtype=np.float32)
+        # Codes fit a byte: transpose them as bytes, then widen once in [rows, in] order.
+        codes = unpack_awq(self.qweight[:, w0:w1])[:, cut].astype(np.uint8).T
+        values = np.ascontiguousarray(codes, dtype=np.float32)
+        zeros = np.ascontiguousarray(unpack_awq(self.qzeros[:, w0:w1])[:, cut].T,
+                                     dtype=np.float32)
+        scales = np.ascontiguousarray(np.asarray(self.scales[:, start:stop]).T, dtype=np.float32)
         g = np.arange(self.shape[1]) // self.group_size
-        return np.ascontiguousarray((scales[g] * (codes - zeros[g])).T)
+        return dequantize_groups(values, zeros, scales, g, self.group_size)

@@ -68,12 +68,39 @@ def unpack_words(words: Part, bits: int, axis: int) -> np.ndarray:
     if bits == 3:
         return np.moveaxis(_unpack_3bit(np.moveaxis(raw, axis, -1)), -1, axis)
     per_word = 32 // bits
-    shifts = np.arange(per_word, dtype=np.uint32) * np.uint32(bits)
-    mask = np.uint32((1 << bits) - 1)
-    moved = np.moveaxis(raw, axis, -1)
-    codes = (moved[..., None] >> shifts) & mask
-    codes = codes.reshape(*moved.shape[:-1], moved.shape[-1] * per_word)
-    return np.moveaxis(codes, -1, axis)
+    axis = axis % raw.ndim
+    # Shift into a new axis right after the packed one: [..., words, per_word, ...] is already
+    # the unpacked order, so the final reshape is free (no copy).
+    shifts = (np.arange(per_word, dtype=np.uint32) * np.uint32(bits)).reshape(
+        (per_word,) + (1,) * (raw.ndim - axis - 1))
+    codes = (np.expand_dims(raw, axis + 1) >> shifts) & np.uint32((1 << bits) - 1)
+    return codes.reshape((*raw.shape[:axis], raw.shape[axis] * per_word, *raw.shape[axis + 1:]))
+
+
+def contiguous_group(g_idx: np.ndarray, groups: int) -> int:
+    """The group size when ``g_idx`` is plain consecutive groups (no act-order shuffle), so
+    rows can be dequantized by broadcasting instead of gathering; 0 otherwise."""
+    n = g_idx.size
+    if not groups or n % groups:
+        return 0
+    group = n // groups
+    return group if np.array_equal(g_idx, np.arange(n) // group) else 0
+
+
+def dequantize_groups(
+    codes: np.ndarray, zeros: np.ndarray, scales: np.ndarray, g_idx: np.ndarray, group: int
+) -> np.ndarray:
+    """``scales[:, g] * (codes - zeros[:, g])`` for float32 ``codes [rows, in]`` and
+    ``zeros``/``scales [rows, groups]``, in place in ``codes``; consecutive groups (``group``
+    > 0) by broadcasting, act-order by gathering each input's group."""
+    if group:
+        shaped = codes.reshape(codes.shape[0], codes.shape[1] // group, group)
+        shaped -= zeros[:, :, None]
+        shaped *= scales[:, :, None]
+        return codes
+    codes -= np.take(zeros, g_idx, axis=1)
+    codes *= np.take(scales, g_idx, axis=1)
+    return codes
 
 
 @dataclass(frozen=True)
@@ -89,6 +116,8 @@ class GptqWeight:
     bits: int
     zero_offset: int = 1
     """Added to stored zero points: 1 for the "v1" format AutoGPTQ writes, 0 for "v2"."""
+    group: int = 0
+    """Group size when ``g_idx`` is consecutive groups (see :func:`contiguous_group`)."""
 
     @classmethod
     def build(
@@ -128,7 +157,8 @@ class GptqWeight:
             g_idx = np.arange(n_in, dtype=np.int64) // group_size
         if g_idx.shape != (n_in,) or (g_idx.size and (g_idx.min() < 0 or g_idx.max() >= groups)):
             raise LoadError(path, f"{name}: GPTQ g_idx does not index the {groups} groups")
-        return cls(path, name, qweight, qzeros, scales, g_idx, bits, zero_offset)
+        return cls(path, name, qweight, qzeros, scales, g_idx, bits, zero_offset,
+                   contiguous_group(g_idx, groups))
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -153,8 +183,9 @@ class GptqWeight:
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows (output units) ``[start, stop)``: only their columns of
         ``qweight``, ``scales`` and ``qzeros`` are unpacked, so memory is one row block."""
-        codes = unpack_words(self.qweight[:, start:stop], self.bits, axis=0).astype(np.float32)
-        zeros = self.zeros()[:, start:stop].astype(np.float32)
-        scales = np.asarray(self.scales[:, start:stop], dtype=np.float32)
-        g = self.g_idx
-        return np.ascontiguousarray((scales[g] * (codes - zeros[g])).T)
+        # Codes come [in, rows]; one pass transposes and widens them to float32 [rows, in].
+        codes = unpack_words(self.qweight[:, start:stop], self.bits, axis=0).T
+        codes = np.ascontiguousarray(codes, dtype=np.float32)
+        zeros = np.ascontiguousarray(self.zeros()[:, start:stop].T, dtype=np.float32)
+        scales = np.ascontiguousarray(np.asarray(self.scales[:, start:stop]).T, dtype=np.float32)
+        return dequantize_groups(codes, zeros, scales, self.g_idx, self.group)

@@ -72,6 +72,9 @@ class Hyper:
     falcon_layout: str | None = None
     """Falcon's fused q/k/v layout: ``per-group`` (new decoder architecture), ``q|k|v``
     (multi-query) or ``per-head``."""
+    per_block: tuple[Counts, ...] = ()
+    """Counts of block ``N`` at index ``N`` when they differ from block to block (GGUF stores
+    per-block arrays of head counts for such models); empty when one set fits all."""
 
     @property
     def family(self) -> str:
@@ -87,6 +90,9 @@ class Hyper:
     def counts_for(self, block: str) -> Counts:
         """The counts that apply to the attention block named ``block``."""
         lowered = block.lower()
+        index = _block_index(lowered)
+        if self.per_block and index is not None and index < len(self.per_block):
+            return self.per_block[index]
         if self.vision is not None and ("vision" in lowered or "visual" in lowered):
             return self.vision
         if self.decoder is not None and "decoder" in lowered:
@@ -146,19 +152,47 @@ def from_config(config: Mapping[str, Any]) -> Hyper:
 
 
 def from_gguf(metadata: Mapping[str, Any]) -> Hyper:
-    """Counts from GGUF metadata (scalar values; a per-block array of head counts is not
-    read, and such blocks are left unrecognised)."""
+    """Counts from GGUF metadata. Head counts may be one value or a per-block array (models
+    whose blocks have different numbers of heads); with arrays, each block gets its own."""
     arch = str(metadata.get("general.architecture", ""))
 
     def get(key: str) -> int | None:
         return _int(metadata.get(f"{arch}.{key}"))
 
-    heads = get("attention.head_count")
     width = get("embedding_length")
     key_dim = get("attention.key_length")
-    if key_dim is None and heads and width and width % heads == 0:
-        key_dim = width // heads
-    value_dim = get("attention.value_length") or key_dim
-    kv = get("attention.head_count_kv") or heads
-    main = Counts(heads, kv, key_dim, value_dim, width, get("expert_count"), get("expert_used_count"))
+    value_dim = get("attention.value_length")
+    experts, top_k = get("expert_count"), get("expert_used_count")
+
+    def counts(heads: int | None, kv: int | None) -> Counts:
+        dim = key_dim
+        if dim is None and heads and width and width % heads == 0:
+            dim = width // heads
+        return Counts(heads, kv or heads, dim, value_dim or dim, width, experts, top_k)
+
+    heads_value = metadata.get(f"{arch}.attention.head_count")
+    kv_value = metadata.get(f"{arch}.attention.head_count_kv")
+    if isinstance(heads_value, (list, tuple)) or isinstance(kv_value, (list, tuple)):
+        blocks = max(len(v) for v in (heads_value, kv_value) if isinstance(v, (list, tuple)))
+        per_block = tuple(
+            counts(_int(_at(heads_value, n)), _int(_at(kv_value, n))) for n in range(blocks)
+        )
+        main = next((c for c in per_block if c.heads), counts(None, None))
+        return Hyper(model_type=arch, source="GGUF metadata", main=main, per_block=per_block)
+    main = counts(_int(heads_value), _int(kv_value))
     return Hyper(model_type=arch, source="GGUF metadata", main=main)
+
+
+def _at(value: Any, index: int) -> Any:
+    """``value[index]`` of a per-block array, or the one value every block shares."""
+    if isinstance(value, (list, tuple)):
+        return value[index] if index < len(value) else None
+    return value
+
+
+def _block_index(name: str) -> int | None:
+    """N of a GGUF block name ``blk.N...``; None for other names."""
+    if not name.startswith("blk."):
+        return None
+    number = name[4:].split(".", 1)[0]
+    return int(number) if number.isdigit() else None

@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections import Counter
 from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 from steelyard import budget
 from steelyard.errors import LoadError
@@ -64,7 +65,7 @@ class GgufLoader:
             file_size=header.file_size,
             files=(str(path),),
             notes=(*notes, *layer_notes),
-            metadata={k: v for k, v in header.metadata.items() if isinstance(v, (int, float, str))},
+            metadata=_kept_metadata(header.metadata),
         )
 
 
@@ -134,3 +135,26 @@ def _types(kinds: Counter[str]) -> str:
 
 
 __all__ = ["GgufLoader", "vocabulary_size"]
+
+
+#: Longest per-block array kept from the metadata (head counts per block; a model has far
+#: fewer blocks than this).
+_MAX_BLOCK_ARRAY = 4096
+
+
+def _kept_metadata(metadata: dict[str, Any]) -> dict[str, Any]:
+    """Scalar metadata, plus the small integer arrays that describe blocks one by one
+    (``{arch}.attention.head_count`` and ``head_count_kv`` may be per-block arrays)."""
+    kept: dict[str, Any] = {}
+    for key, value in metadata.items():
+        if isinstance(value, (int, float, str)):
+            kept[key] = value
+        elif (
+            key.endswith((".attention.head_count", ".attention.head_count_kv"))
+            and isinstance(value, ArrayValue)
+            and value.values is not None
+            and 0 < len(value.values) <= _MAX_BLOCK_ARRAY
+            and all(isinstance(v, int) and not isinstance(v, bool) for v in value.values)
+        ):
+            kept[key] = tuple(value.values)
+    return kept

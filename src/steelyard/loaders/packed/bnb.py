@@ -187,13 +187,9 @@ class Bnb4Weight:
         which = np.arange(first, last) // nested_block
         return code[codes] * outer[which] + np.float32(offset)
 
-    def rows(self, start: int, stop: int) -> np.ndarray:
-        """Dequantized float32 rows ``[start, stop)``."""
-        n_in = self.dims[1]
-        e0, e1 = start * n_in, stop * n_in
-        if e1 <= e0:
-            return np.empty((0, n_in), dtype=np.float32)
-        b0, b1 = e0 // 2, -(-e1 // 2)
+    def _codes(self, s0: int, s1: int) -> np.ndarray:
+        """4-bit codes of flattened elements ``[s0, s1)``, high nibble first in each byte."""
+        b0, b1 = s0 // 2, -(-s1 // 2)
         width = self.packed.dtype.itemsize
         i0, i1 = b0 // width, -(-b1 // width)
         words = np.ascontiguousarray(np.asarray(self.packed[i0:i1])).reshape(-1)
@@ -201,12 +197,26 @@ class Bnb4Weight:
         codes = np.empty(2 * raw.size, dtype=np.uint8)
         codes[0::2] = raw >> 4
         codes[1::2] = raw & 0x0F
-        codes = codes[e0 - 2 * b0 : e1 - 2 * b0]
-        blocks = np.arange(e0, e1) // self.blocksize
-        first = e0 // self.blocksize
-        scales = self._scales(first, int(blocks[-1]) + 1)
-        values = self.table[codes] * scales[blocks - first]
-        return values.reshape(stop - start, n_in)
+        return codes[s0 - 2 * b0 : s1 - 2 * b0]
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        """Dequantized float32 rows ``[start, stop)``: the whole absmax blocks covering them
+        are decoded (at most two blocks more) so each block's scale is one broadcast."""
+        n_in = self.dims[1]
+        e0, e1 = start * n_in, stop * n_in
+        if e1 <= e0:
+            return np.empty((max(0, stop - start), n_in), dtype=np.float32)
+        size, first = self.dims[0] * n_in, e0 // self.blocksize
+        last = -(-e1 // self.blocksize)
+        s0, s1 = first * self.blocksize, min(size, last * self.blocksize)
+        values = np.take(self.table, self._codes(s0, s1))
+        scales = self._scales(first, last)
+        whole = (s1 - s0) // self.blocksize
+        blocks = values[: whole * self.blocksize].reshape(whole, self.blocksize)
+        blocks *= scales[:whole, None]
+        if whole < last - first:  # the tensor's last block is short
+            values[whole * self.blocksize :] *= scales[-1]
+        return values[e0 - s0 : e1 - s0].reshape(stop - start, n_in)
 
 
 @dataclass(frozen=True)

@@ -69,12 +69,16 @@ def logical_tensor(name: str, decoder: Decoder, path: Path, stored_bytes: int) -
         out = np.empty(max(0, stop - start), dtype=np.float32)
         if not out.size:
             return out
-        first = start // n_in
-        for a, b in row_blocks(-(-stop // n_in) - first, n_in, DECODE_BYTES):
+        first, last = start // n_in, -(-stop // n_in)
+        # Layouts that keep output units as columns of the packed words read those columns
+        # once for the whole request, then decode it step by step from memory.
+        window = getattr(decoder, "window", None)
+        source: Decoder = window(first, last) if window is not None else decoder
+        for a, b in row_blocks(last - first, n_in, DECODE_BYTES):
             a, b = a + first, b + first
             # A NaN or Inf scale is data the audit reports, not a warning to print.
             with np.errstate(all="ignore"):
-                block = np.asarray(decoder.rows(a, b), dtype=np.float32).reshape(-1)
+                block = np.asarray(source.rows(a, b), dtype=np.float32).reshape(-1)
             lo, hi = max(start, a * n_in), min(stop, b * n_in)
             out[lo - start : hi - start] = block[lo - a * n_in : hi - a * n_in]
         return out

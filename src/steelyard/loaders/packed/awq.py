@@ -12,7 +12,7 @@ with ``g = i // group_size``.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -20,7 +20,7 @@ import numpy as np
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.gptq import dequantize_groups, unpack_words
-from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.stored import ColumnWindow, Part
 
 ORDER = (0, 2, 4, 6, 1, 3, 5, 7)
 _SLOT_OF_COLUMN = np.argsort(ORDER)
@@ -80,6 +80,13 @@ class AwqWeight:
     def codes(self) -> np.ndarray:
         """The integer codes in canonical ``[out, in]`` orientation."""
         return unpack_awq(self.qweight).T
+
+    def window(self, start: int, stop: int) -> AwqWeight:
+        """This weight with the words and scales of rows ``[start, stop)`` read into memory."""
+        w0, w1 = start // 8, -(-stop // 8)
+        return replace(self, qweight=ColumnWindow.of(self.qweight, w0, w1),
+                       qzeros=ColumnWindow.of(self.qzeros, w0, w1),
+                       scales=ColumnWindow.of(self.scales, start, stop))
 
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows ``[start, stop)``; whole words are unpacked, then cut."""

@@ -16,14 +16,14 @@ explicit bit splitting for 3 bits amounts to; so 3-bit axes are a multiple of 32
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
-from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.stored import ColumnWindow, Part
 
 SUPPORTED_BITS = (2, 3, 4, 8)
 
@@ -180,11 +180,18 @@ class GptqWeight:
         stored = unpack_words(self.qzeros, self.bits, axis=1)[:, :n_out].astype(np.int64)
         return stored + self.zero_offset
 
+    def window(self, start: int, stop: int) -> GptqWeight:
+        """This weight with the ``qweight`` and ``scales`` columns of rows ``[start, stop)``
+        read into memory (rows outside them cannot be decoded from it)."""
+        return replace(self, qweight=ColumnWindow.of(self.qweight, start, stop),
+                       scales=ColumnWindow.of(self.scales, start, stop))
+
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows (output units) ``[start, stop)``: only their columns of
         ``qweight``, ``scales`` and ``qzeros`` are unpacked, so memory is one row block."""
-        # Codes come [in, rows]; one pass transposes and widens them to float32 [rows, in].
-        codes = unpack_words(self.qweight[:, start:stop], self.bits, axis=0).T
+        # Codes come [in, rows]. Narrowed to bytes first, the transposing copy moves a quarter
+        # of the memory (about 4x faster than transposing uint32), then widens to float32.
+        codes = unpack_words(self.qweight[:, start:stop], self.bits, axis=0).astype(np.uint8).T
         codes = np.ascontiguousarray(codes, dtype=np.float32)
         zeros = np.ascontiguousarray(self.zeros()[:, start:stop].T, dtype=np.float32)
         scales = np.ascontiguousarray(np.asarray(self.scales[:, start:stop]).T, dtype=np.float32)

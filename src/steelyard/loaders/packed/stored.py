@@ -101,5 +101,42 @@ class StoredPart:
         return out
 
 
-#: What a decoder accepts for each part: an array in memory (tests) or a stored part.
-Part: TypeAlias = "np.ndarray | StoredPart"
+@dataclass(frozen=True)
+class ColumnWindow:
+    """Columns ``[offset, offset + array.shape[1])`` of a 2-D part, read once and held in
+    memory, indexed in the whole part's coordinates. A decoder restricted to one read's rows
+    (``window``) uses it so that the packed columns are read once per read, not once per
+    decoding step."""
+
+    array: np.ndarray
+    offset: int
+    shape: tuple[int, ...]
+    """Shape of the whole part."""
+
+    @classmethod
+    def of(cls, part: Part, start: int, stop: int) -> ColumnWindow:
+        """Columns ``[start, stop)`` of ``part`` read now."""
+        return cls(np.asarray(part[:, start:stop]), start, tuple(part.shape))
+
+    @property
+    def ndim(self) -> int:
+        """Number of axes (of the whole part)."""
+        return len(self.shape)
+
+    @property
+    def dtype(self) -> np.dtype[Any]:
+        """Element type."""
+        return self.array.dtype
+
+    def __getitem__(self, key: Any) -> np.ndarray:
+        rows, cols = key
+        c0, c1, _ = cols.indices(self.shape[1])
+        end = self.offset + self.array.shape[1]
+        if not self.offset <= c0 <= max(c0, c1) <= end:
+            raise IndexError(f"columns [{c0}, {c1}) outside the window [{self.offset}, {end})")
+        return np.asarray(self.array[rows, c0 - self.offset : max(c0, c1) - self.offset])
+
+
+#: What a decoder accepts for each part: an array in memory (tests), a stored part, or a
+#: window of one held in memory.
+Part: TypeAlias = "np.ndarray | StoredPart | ColumnWindow"

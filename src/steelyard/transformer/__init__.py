@@ -16,19 +16,19 @@ from collections import defaultdict
 from dataclasses import replace
 from pathlib import Path
 
-from steelyard.graph import Checkpoint, Format, LayerKind, UnitGroup
+from steelyard.graph import Checkpoint, Format, Layer, LayerKind, UnitGroup
 from steelyard.transformer import attention, experts
 from steelyard.transformer.hyper import Counts, Hyper, from_config, from_gguf
 from steelyard.transformer.mlp import fused_gate_up
-from steelyard.transformer.model import Structure
+from steelyard.transformer.model import AttentionBlock, Span, Structure
 
 _NORM_GAIN = re.compile(r"(norm|(^|[._])ln(_?\w+)?|layernorm)[^.]*\.(weight|gamma|scale)$", re.IGNORECASE)
 _HEAD = re.compile(r"(^|\.)(lm_head|output|embed_out)\.weight$")
 
 
-#: Formats whose loader already reads a ``config.json`` beside the file (name-inferred graphs):
-#: the structure reads it again for the counts, and never adds a side-file read to the others.
-_CONFIG_FORMATS = (Format.SAFETENSORS, Format.NPZ, Format.PYTORCH)
+#: Formats whose folder may hold the model's ``config.json`` (a Hugging Face checkpoint, or an
+#: ONNX export of one), read through the confined side-file reader for the counts.
+_CONFIG_FORMATS = (Format.SAFETENSORS, Format.NPZ, Format.PYTORCH, Format.ONNX)
 
 
 def _hyper(checkpoint: Checkpoint) -> Hyper:
@@ -44,11 +44,43 @@ def _hyper(checkpoint: Checkpoint) -> Hyper:
     return from_config(config)
 
 
+def _module_named(layers: tuple[Layer, ...]) -> tuple[tuple[Layer, ...], dict[str, str]]:
+    """Layers named by the module their weight belongs to where the graph names them after
+    operators (an ONNX export names the layer ``/bert/encoder/layer.0/attention/self/query/MatMul``
+    and its weight ``bert.encoder.layer.0.attention.self.query.weight``), so that one table of
+    module names recognises every format; with the map back to the graph's names."""
+    renamed: list[Layer] = []
+    real: dict[str, str] = {}
+    taken = {layer.name for layer in layers}
+    for layer in layers:
+        module = layer.weight.removesuffix(".weight")
+        if "/" in layer.name and module != layer.weight and "/" not in module and module not in taken:
+            renamed.append(replace(layer, name=module))
+            real[module] = layer.name
+            taken.add(module)
+        else:
+            renamed.append(layer)
+    return tuple(renamed), real
+
+
+def _renamed(block: AttentionBlock, real: dict[str, str]) -> AttentionBlock:
+    """``block`` with its spans naming the graph's layers again."""
+    if not real:
+        return block
+
+    def back(span: Span) -> Span:
+        return replace(span, layer=real.get(span.layer, span.layer))
+
+    heads = tuple(replace(h, q=back(h.q), k=back(h.k), v=back(h.v), o=back(h.o)) for h in block.heads)
+    return replace(block, heads=heads)
+
+
 def recognise(checkpoint: Checkpoint) -> Structure | None:
     """The attention and expert blocks of ``checkpoint``, or None when it has none."""
     hyper = _hyper(checkpoint)
     notes: list[str] = []
-    blocks = attention.find_blocks(checkpoint.layers, hyper, notes)
+    by_module, real_name = _module_named(checkpoint.layers)
+    blocks = [_renamed(b, real_name) for b in attention.find_blocks(by_module, hyper, notes)]
     moe = experts.find_blocks(checkpoint.layers, hyper, notes)
     fused = tuple(fused_gate_up(checkpoint.layers))
     if not blocks and not moe and not fused and not notes:

@@ -1,5 +1,6 @@
 """The spread of fan-in norms the reports draw: numpy's percentiles and Tukey's far-out
-fences (Tukey 1977, Exploratory Data Analysis: beyond Q1 − 3·IQR or Q3 + 3·IQR), on log norms."""
+fences (Tukey 1977, Exploratory Data Analysis: beyond Q1 − 3·IQR or Q3 + 3·IQR), on the
+logarithms of the positive norms' quartiles."""
 
 from __future__ import annotations
 
@@ -32,8 +33,7 @@ def test_far_out_units_match_an_independent_fence_computation() -> None:
     norms[5] = 0.0  # a dead unit: reported by its own rule, never as far out
     norms[6] = np.nan
     spread = norm_spread(norms)
-    logs = np.log(norms[(norms > 0) & np.isfinite(norms)])
-    q1, q3 = np.percentile(logs, [25, 75])
+    q1, q3 = np.log(np.percentile(norms[(norms > 0) & np.isfinite(norms)], [25, 75]))
     low, high = np.exp(q1 - FAR_OUT * (q3 - q1)), np.exp(q3 + FAR_OUT * (q3 - q1))
     expected = {i for i, v in enumerate(norms) if np.isfinite(v) and v > 0 and (v < low or v > high)}
     assert {u for u, _ in spread.outliers} == expected == set(planted)
@@ -47,3 +47,16 @@ def test_outliers_are_capped_and_degenerate_layers_are_quiet() -> None:
     assert norm_spread(np.ones(50)).outliers == ()  # no spread, no fences
     empty = norm_spread(np.array([np.nan, np.inf]))
     assert empty.percentiles == () and empty.histogram == ()
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_histogram_is_numpys_of_the_clipped_norms(seed: int) -> None:
+    """Log-spaced bins from max(min, 1e-6·max) to max, values below clipped into the first
+    (numpy.histogram with those edges is the reference)."""
+    rng = np.random.default_rng(seed)
+    norms = np.concatenate([rng.lognormal(0, 1.5, 500), np.zeros(7), [1e-12, 3e-9]])
+    spread = norm_spread(norms)
+    floor = max(norms.min(), norms.max() * 1e-6)
+    edges = np.geomspace(floor, norms.max() * (1 + 1e-9), 9)
+    expected = np.histogram(np.clip(norms, floor, None), bins=edges)[0]
+    assert spread.histogram == tuple(int(c) for c in expected)

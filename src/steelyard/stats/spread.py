@@ -37,34 +37,55 @@ class NormSpread:
 
 
 def norm_spread(norms: np.ndarray) -> NormSpread:
-    """Summarise the units' norms (non-finite ones are left out, zeros are kept)."""
+    """Summarise the units' norms (non-finite ones are left out, zeros are kept). One sort
+    serves the percentiles, the quartiles of the fences and the histogram."""
     finite_mask = np.isfinite(norms)
-    finite = norms[finite_mask]
-    if not finite.size:
+    ordered = np.sort(norms[finite_mask].astype(np.float64))
+    if not ordered.size:
         nan = float("nan")
         return NormSpread(nan, nan, nan, (), (), ())
-    low, high = float(finite.min()), float(finite.max())
-    percentiles = tuple(float(v) for v in np.percentile(finite, PERCENTILES))
+    low, high = float(ordered[0]), float(ordered[-1])
+    percentiles = tuple(_percentile(ordered, q) for q in PERCENTILES)
     histogram: tuple[int, ...] = ()
     if high > 0:
         floor = max(low, high * 1e-6)
         edges = np.geomspace(floor, high * (1 + 1e-9), BINS + 1)
-        histogram = tuple(int(c) for c in np.histogram(np.clip(finite, floor, None), bins=edges)[0])
-    return NormSpread(low, percentiles[2], high, percentiles, _outliers(norms, finite_mask), histogram)
+        # Values below the floor count in the first bin (np.histogram of the clipped values).
+        cuts = np.searchsorted(ordered, edges[1:-1], side="left")
+        histogram = tuple(int(c) for c in np.diff(np.concatenate(([0], cuts, [ordered.size]))))
+    positive = ordered[np.searchsorted(ordered, 0.0, side="right") :]
+    return NormSpread(low, percentiles[2], high, percentiles, _outliers(norms, positive), histogram)
 
 
-def _outliers(norms: np.ndarray, finite_mask: np.ndarray) -> tuple[tuple[int, float], ...]:
-    """Units whose log norm lies beyond Q1 - 3·IQR or Q3 + 3·IQR; zero norms are dead units,
-    which the dead-unit rule reports, so only positive norms take part."""
-    units = np.flatnonzero(finite_mask & (norms > 0))
-    if units.size < 4:
+def _percentile(ordered: np.ndarray, q: float) -> float:
+    """numpy.percentile's default (linear interpolation between closest ranks) of sorted data."""
+    position = q / 100.0 * (ordered.size - 1)
+    below = int(np.floor(position))
+    above = min(below + 1, ordered.size - 1)
+    fraction = position - below
+    return float(ordered[below] + (ordered[above] - ordered[below]) * fraction)
+
+
+def _outliers(norms: np.ndarray, positive: np.ndarray) -> tuple[tuple[int, float], ...]:
+    """Units whose norm lies beyond the far-out fences of the log norms, ``log Q1 − 3·IQR``
+    and ``log Q3 + 3·IQR`` with ``IQR = log Q3 − log Q1`` (quartiles of the positive norms,
+    ``positive`` sorted): in norm space ``Q1·(Q1/Q3)³`` and ``Q3·(Q3/Q1)³``, so only the few
+    units outside are ever put through a logarithm. Zero norms are dead units, which the
+    dead-unit rule reports, so only positive norms take part."""
+    if positive.size < 4:
         return ()
-    logs = np.log(norms[units].astype(np.float64))
-    q1, q3 = np.percentile(logs, (25.0, 75.0))
-    spread = q3 - q1
-    if spread <= 0:
+    q1, q3 = _percentile(positive, 25.0), _percentile(positive, 75.0)
+    if not q1 < q3:
         return ()
-    distance = np.maximum(q1 - FAR_OUT * spread - logs, logs - q3 - FAR_OUT * spread)
-    beyond = np.flatnonzero(distance > 0)
-    worst = beyond[np.argsort(-distance[beyond], kind="stable")][:MAX_OUTLIERS]
-    return tuple((int(units[i]), float(norms[units[i]])) for i in worst)
+    ratio = (q3 / q1) ** FAR_OUT
+    low, high = q1 / ratio, q3 * ratio
+    with np.errstate(invalid="ignore"):
+        outside = (norms > 0) & ((norms < low) | (norms > high)) & np.isfinite(norms)
+    units = np.flatnonzero(outside)
+    if not units.size:
+        return ()
+    found = norms[units].astype(np.float64)
+    spread = np.log(q3) - np.log(q1)
+    distance = np.maximum(np.log(low) - np.log(found), np.log(found) - np.log(high)) / spread
+    order = np.argsort(-distance, kind="stable")[:MAX_OUTLIERS]
+    return tuple((int(units[i]), float(norms[units[i]])) for i in order)

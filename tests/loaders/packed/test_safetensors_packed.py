@@ -74,6 +74,15 @@ def test_gptq_v2_zero_points_are_not_offset(tmp_path: Path) -> None:
     _check(path, M, expected, "gptq-int4")
 
 
+def test_gptq_dynamic_overrides_let_shapes_decide(tmp_path: Path) -> None:
+    # GPTQModel's "dynamic" section may give a module 8 bits under a 4-bit default.
+    parts, expected = ref.gptq(np.random.default_rng(13), 8, 8, 32, 32, act=False)
+    config = {"quantization_config": {"quant_method": "gptq", "bits": 4, "group_size": 128,
+                                      "dynamic": {r"+:.*mlp.*": {"bits": 8, "group_size": 32}}}}
+    path = ref.save(tmp_path / "model.safetensors", ref.prefixed(M, parts), config)
+    _check(path, M, expected, "gptq-int8")
+
+
 def test_gptq_without_config_or_g_idx_infers_bits_and_groups(tmp_path: Path) -> None:
     parts, expected = ref.gptq(np.random.default_rng(3), 8, 6, 32, 8, act=False)
     del parts["g_idx"]

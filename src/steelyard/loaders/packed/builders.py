@@ -66,11 +66,18 @@ def _gptq_bits(path: Path, module: PackedModule, parts: Parts, declared: int | N
 def gptq(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) -> Decoder:
     """GPTQ: bits and group size declared or read from the shapes; v2 zero points."""
     _need(path, module, parts, "qweight", "qzeros", "scales")
-    bits = _gptq_bits(path, module, parts, config.integer("bits", "w_bit"))
+    declared = config.integer("bits", "w_bit")
+    if config.settings.get("dynamic") and declared is not None:
+        # GPTQModel's per-module overrides (regular expressions, not evaluated here) may give
+        # this module another width: the declared one is a default that the shapes may refute.
+        n_out, words = parts["qweight"].shape[1], parts["qzeros"].shape[1]
+        declared = declared if words_for(n_out, declared) == words else None
+    bits = _gptq_bits(path, module, parts, declared)
     n_in = codes_in(parts["qweight"].shape[0], bits)
     groups = parts["scales"].shape[0]
     group = config.integer("group_size", "q_group_size")
-    if group is None or group in (-1, 0):
+    if group is None or group in (-1, 0) or (config.settings.get("dynamic") and groups and
+                                            -(-n_in // group) != groups):
         group = -(-n_in // groups) if groups else 0
     if "g_idx" not in parts and (group <= 0 or -(-n_in // group) != groups):
         raise LoadError(path, f"{module.prefix}: GPTQ group size {group} over {n_in} inputs "

@@ -236,3 +236,13 @@ def test_whole_read_is_an_expansion_within_the_budget(tmp_path: Path) -> None:
         np.testing.assert_allclose(tensor.read_part(0, 512 * 100),
                                    expected[:100].reshape(-1), rtol=1e-6)
     np.testing.assert_allclose(tensor.read(), expected, rtol=1e-6)
+
+
+def test_fp4_worked_example(tmp_path: Path) -> None:
+    # OCP Microscaling spec, FP4 E2M1: code 1 is 0.5, 7 is 6.0, 9 is -0.5, 15 is -6.0 (the
+    # spec's value table, recalled). Byte 0x71 holds 1 (low nibble, first) then 7; byte 0xF9
+    # holds 9 then 15. MXFP4 scale: E8M0 exponent 128 is 2**1 (bias 127).
+    parts = {"weight_packed": np.array([[0x71, 0xF9]], np.uint8),
+             "weight_scale": np.array([[128]], np.uint8)}
+    path = ref.save(tmp_path / "model.safetensors", ref.prefixed(M, parts))
+    _check(path, M, np.array([[1.0, 12.0, -1.0, -12.0]], np.float32), "mxfp4")

@@ -13,6 +13,8 @@ from __future__ import annotations
 from collections.abc import Mapping
 from pathlib import Path
 
+import numpy as np
+
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.assemble import Builder, Decoder
 from steelyard.loaders.packed.awq import AwqWeight
@@ -24,6 +26,7 @@ from steelyard.loaders.packed.compressed import (
 )
 from steelyard.loaders.packed.config import QuantConfig
 from steelyard.loaders.packed.detect import Layout
+from steelyard.loaders.packed.fp4 import Fp4Weight
 from steelyard.loaders.packed.fp8 import Fp8Weight
 from steelyard.loaders.packed.gptq import SUPPORTED_BITS, GptqWeight, codes_in, words_for
 from steelyard.loaders.packed.mlx import MlxWeight
@@ -152,7 +155,9 @@ def bnb8(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) ->
 
 
 def compressed(path: Path, module: PackedModule, parts: Parts, config: QuantConfig) -> Decoder:
-    """compressed-tensors ``pack-quantized``."""
+    """compressed-tensors ``pack-quantized`` (int32 words), or NVFP4/MXFP4 (uint8 bytes)."""
+    if "weight_packed" in parts and parts["weight_packed"].dtype == np.uint8:
+        return Fp4Weight.build(path, module.prefix, parts)
     return PackQuantizedWeight.build(path, module.prefix, parts, config.settings)
 
 

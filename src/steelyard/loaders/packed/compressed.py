@@ -97,9 +97,6 @@ class PackQuantizedWeight:
             if key not in parts:
                 raise LoadError(path, f"{name}: pack-quantized weight has no {key}")
         packed = parts["weight_packed"]
-        if packed.ndim == 2 and packed.dtype.itemsize == 1:
-            raise LoadError(path, f"{name}: byte-packed weight_packed (NVFP4/MXFP4 layouts) is "
-                            "not supported")
         if packed.ndim != 2 or packed.dtype.itemsize != 4:
             raise LoadError(path, f"{name}: weight_packed is not a 2-D int32 tensor")
         shape = np.asarray(parts["weight_shape"]).reshape(-1) if _size(parts["weight_shape"]) == 2 \

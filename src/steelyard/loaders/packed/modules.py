@@ -67,7 +67,7 @@ def _match(
         return PackedModule(prefix, layout, _present(leaves, prefix, keys))
     if "weight_packed" in leaves:
         keys = ("weight_packed", "weight_scale", "weight_zero_point", "weight_shape",
-                "weight_g_idx")
+                "weight_g_idx", "weight_global_scale", "input_global_scale")
         return PackedModule(prefix, Layout.COMPRESSED, _present(leaves, prefix, keys))
     if weight is None:
         return None

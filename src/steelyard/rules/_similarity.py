@@ -43,8 +43,9 @@ BUCKET_CAP = 128
 #: Most bits added to a table's key to split an oversized bucket, ``_SPLIT_STEP`` at a time.
 EXTRA_BITS = 24
 _SPLIT_STEP = 4
-#: Buckets up to this size are padded to 2, 4 or 8 rows and multiplied in batches.
-_BATCHED = 8
+#: Buckets up to this size list their pairs, which are deduplicated across tables and
+#: confirmed once each; larger buckets are confirmed by one Gram product per table.
+_PAIRED = 4
 #: Time of one dot product in the bucket products relative to one in the exact search's large
 #: blocks (measured, see docs/performance.md): the hashed search is used only when its planned
 #: dot products times this are fewer than the exact search's n(n+1)/2.
@@ -222,6 +223,12 @@ def _settle(
     return first[keep], second[keep], cos[keep]
 
 
+def _exact_dots(n: int) -> int:
+    """Dot products ``_gram_hits`` computes for ``n`` rows (each block times every later row)."""
+    block = max(1, BLOCK_BYTES // max(1, 4 * n))
+    return sum((min(n, s + block) - s) * (n - s) for s in range(0, n, block))
+
+
 def _exact_among(
     rows: Rows, members: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -296,12 +303,9 @@ def _table_buckets(
 
 def _planned_dots(sizes: np.ndarray) -> int:
     """Dot products ``_bucket_hits`` will compute for buckets of these sizes."""
-    small = sizes[(sizes >= 2) & (sizes <= _BATCHED)]
-    padded = 1 << np.ceil(np.log2(np.maximum(small, 2))).astype(np.int64)
-    middle = sizes[(sizes > _BATCHED) & (sizes <= BUCKET_CAP)].astype(np.int64)
+    middle = sizes[(sizes > _PAIRED) & (sizes <= BUCKET_CAP)].astype(np.int64)
     dense = sizes[sizes > BUCKET_CAP].astype(np.int64)
-    band = sum(_band_dots(int(b)) for b in dense)
-    return int((padded * padded).sum() + (middle * middle).sum() + band)
+    return int((middle * middle).sum()) + sum(_band_dots(int(b)) for b in dense)
 
 
 def _band_dots(size: int) -> int:
@@ -311,45 +315,55 @@ def _band_dots(size: int) -> int:
     )
 
 
+def _small_pairs(bucket: np.ndarray) -> np.ndarray:
+    """Codes ``i·n + k`` (i < k) of the pairs in buckets of at most ``_PAIRED`` rows."""
+    n = bucket.size
+    order = np.argsort(bucket, kind="stable")
+    ranked = bucket[order]
+    small = (np.bincount(bucket) <= _PAIRED)[ranked]
+    codes: list[np.ndarray] = []
+    for offset in range(1, _PAIRED):  # pairs at distance ``offset`` in sorted order
+        same = (ranked[offset:] == ranked[:-offset]) & small[offset:]
+        a, b = order[:-offset][same], order[offset:][same]
+        codes.append(np.minimum(a, b).astype(np.int64) * n + np.maximum(a, b))
+    return np.concatenate(codes) if codes else _EMPTY
+
+
+def _pair_hits(
+    view: Rows, codes: np.ndarray, threshold: float, negative: bool, tally: Tally
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Float32 cosines of distinct candidate pairs (two gathered rows each), kept if passing."""
+    n = view.count
+    first, second = codes // n, codes % n
+    width = view.matrix.shape[1] + (0 if view.extra is None else 1)
+    step = max(1, BLOCK_BYTES // (8 * width))
+    rough = np.empty(codes.size, dtype=np.float32)
+    inverse = _inverse(view.norms)
+    for start in range(0, codes.size, step):
+        a, b = first[start : start + step], second[start : start + step]
+        dots = np.einsum("ij,ij->i", view.take(a, np.float32), view.take(b, np.float32))
+        with np.errstate(invalid="ignore", over="ignore"):
+            rough[start : start + step] = dots * inverse[a] * inverse[b]
+    tally.dots += int(codes.size)
+    keep = _passing(rough, threshold, negative)
+    return first[keep], second[keep], rough[keep]
+
+
 def _bucket_hits(
     view: Rows, bucket: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
-    """Pairs inside buckets passing the float32 filter, with their float32 cosines.
+    """Pairs inside buckets of more than ``_PAIRED`` rows passing the float32 filter, with
+    their float32 cosines.
 
-    Buckets of up to ``_BATCHED`` rows are stacked (padded to 2, 4 or 8 rows) and multiplied in
-    one batched product per size; larger ones up to ``BUCKET_CAP`` get one Gram product each;
-    a bucket still larger compares each run of ``BUCKET_CAP`` members (in index order) with
-    itself and the next run, a band of its Gram matrix, so every member meets at least the
-    ``BUCKET_CAP`` >= ``PARTNERS`` members that follow it."""
+    A bucket of up to ``BUCKET_CAP`` rows gets one Gram product; a bucket still larger (its
+    rows agree on every bit of the longest key) compares each run of ``BUCKET_CAP`` members
+    (in index order) with itself and the next run, a band of its Gram matrix, so every member
+    meets at least the ``BUCKET_CAP`` >= ``PARTNERS`` members that follow it."""
     order = np.argsort(bucket, kind="stable")  # each bucket's members in index order
     sizes = np.bincount(bucket)
     starts = np.r_[0, np.cumsum(sizes)[:-1]]
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
-    width = view.matrix.shape[1] + (0 if view.extra is None else 1)
-    for pad in (2, 4, 8):
-        chosen = np.flatnonzero((sizes > pad // 2) & (sizes <= pad))
-        step = max(1, BLOCK_BYTES // (8 * pad * width))
-        for at in range(0, chosen.size, step):
-            part = chosen[at : at + step]
-            offsets = np.arange(pad)
-            valid = offsets < sizes[part, None]
-            index = order[np.where(valid, starts[part, None] + offsets, starts[part, None])]
-            stack = np.zeros((part.size, pad, width), dtype=np.float32)
-            stack[valid] = view.take(index[valid], np.float32)
-            inverse = np.zeros(valid.shape, dtype=np.float32)
-            inverse[valid] = _inverse(view.norms[index[valid]])
-            gram = np.matmul(stack, np.ascontiguousarray(stack.transpose(0, 2, 1)))
-            with np.errstate(invalid="ignore", over="ignore"):
-                gram *= inverse[:, :, None]
-                gram *= inverse[:, None, :]
-            tally.dots += int(gram.size)
-            upper = np.triu(np.ones((pad, pad), dtype=bool), 1)
-            hit = (
-                _passing(gram, threshold, negative) & upper & valid[:, :, None] & valid[:, None, :]
-            )
-            which, i, k = np.nonzero(hit)
-            _keep(found, index[which, i], index[which, k], gram[which, i, k])
-    for number in np.flatnonzero((sizes > _BATCHED) & (sizes <= BUCKET_CAP)):
+    for number in np.flatnonzero((sizes > _PAIRED) & (sizes <= BUCKET_CAP)):
         members = order[starts[number] : starts[number] + sizes[number]]
         _block_hits(view, members, members, threshold, negative, tally, found)
     for number in np.flatnonzero(sizes > BUCKET_CAP):
@@ -434,16 +448,17 @@ def candidate_pairs(
         for t in range(tables)
     ]
     del signs
-    tally.planned = sum(_planned_dots(np.bincount(b)) for b in buckets)
-    exact_dots = members.size * (members.size + 1) // 2
-    if tally.planned * BUCKET_DOT_COST > exact_dots:
+    # True twins collide in most tables: list the small buckets' pairs once.
+    paired = np.unique(np.concatenate([_small_pairs(b) for b in buckets]))
+    tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b in buckets)
+    if tally.planned * BUCKET_DOT_COST > _exact_dots(members.size):
         return _exact_among(view, members, threshold, negative, tally)
     tally.method = "hashed"
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
+    _keep(found, *_pair_hits(view, paired, threshold, negative, tally))
     for bucket in buckets:
-        for into, part in zip(
-            found, _bucket_hits(view, bucket, threshold, negative, tally), strict=True
-        ):
+        hits = _bucket_hits(view, bucket, threshold, negative, tally)
+        for into, part in zip(found, hits, strict=True):
             into += part
     if not found[0]:
         return _EMPTY, _EMPTY, np.zeros(0)

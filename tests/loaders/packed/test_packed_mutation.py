@@ -122,3 +122,20 @@ def test_mutated_mlx(seed, rows, words, groups, bits, group):
              "biases": rng.uniform(0, 1, size=(rows, groups)).astype(np.float16)}
     quant = {k: v for k, v in (("bits", bits), ("group_size", group)) if v is not None}
     _exercise(ref.prefixed(M, parts), {"quantization": quant} if quant else None)
+
+
+@SETTINGS
+@given(seed=st.integers(0, 2**16), rows=st.integers(0, 5), cols=_or(8, st.integers(0, 9)),
+       scale=st.tuples(st.integers(0, 5), st.integers(0, 5)),
+       scale_dtype=st.sampled_from(["u8", "f8", "f32"]),
+       glob=st.one_of(st.none(), st.integers(0, 3)))
+def test_mutated_fp4(seed, rows, cols, scale, scale_dtype, glob):
+    import ml_dtypes
+
+    rng = np.random.default_rng(seed)
+    dtype = {"u8": np.uint8, "f8": ml_dtypes.float8_e4m3fn, "f32": np.float32}[scale_dtype]
+    parts = {"weight_packed": rng.integers(0, 256, size=(rows, cols)).astype(np.uint8),
+             "weight_scale": rng.uniform(0, 4, size=scale).astype(dtype)}
+    if glob is not None:
+        parts["weight_global_scale"] = rng.uniform(0, 2, size=glob).astype(np.float32)
+    _exercise(ref.prefixed(M, parts), None)

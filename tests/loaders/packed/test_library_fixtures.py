@@ -49,6 +49,7 @@ STORED = {
     "mlx-w3-g32": "mlx-int3-g32",
     "mlx-w5-g64": "mlx-int5-g64",
     "mlx-w6-g32": "mlx-int6-g32",
+    "mlx-moe-w4-g32": "mlx-int4-g32",
 }
 
 
@@ -84,7 +85,7 @@ def test_library_writer_and_reader_agree_with_steelyard(case: str) -> None:
         # code would be off by a whole scale (about 1e-2 here), far beyond this bound.
         group = json.loads((folder / "config.json").read_text())["quantization"]["group_size"]
         bias = load_file(str(folder / "model.safetensors"))[name.removesuffix("weight") + "biases"]
-        bias = np.repeat(bias.astype(np.float32), group, axis=1)
+        bias = np.repeat(bias.astype(np.float32), group, axis=-1)
 
         def half_step(x: np.ndarray) -> np.ndarray:
             return 0.5 * np.spacing(np.abs(x).astype(np.float16)).astype(np.float32)

@@ -59,8 +59,11 @@ def _stored(tensor: Tensor, path: Path) -> StoredPart:
                       tensor.read_span)
 
 
-def logical_tensor(name: str, decoder: Decoder, path: Path, stored_bytes: int) -> Tensor:
-    """The ``f32`` ``[out, in]`` tensor that decodes ``decoder`` one row block per read."""
+def logical_tensor(
+    name: str, decoder: Decoder, path: Path, stored_bytes: int, experts: int = 0
+) -> Tensor:
+    """The ``f32`` ``[out, in]`` tensor that decodes ``decoder`` one row block per read
+    (``[experts, out / experts, in]`` for a stack of experts decoded as one matrix)."""
     n_out, n_in = decoder.shape
     total = n_out * n_in
 
@@ -86,17 +89,35 @@ def logical_tensor(name: str, decoder: Decoder, path: Path, stored_bytes: int) -
     def read() -> np.ndarray:
         # The whole float32 copy is bytes the file does not store: an expansion.
         budget.check_expansion(path, 4 * total, stored_bytes, f"tensor {name!r} dequantized")
-        return read_span(0, total).reshape(n_out, n_in)
+        return read_span(0, total).reshape(shape)
 
+    shape = (experts, n_out // experts, n_in) if experts else (n_out, n_in)
     return Tensor(
         name=name,
-        shape=(n_out, n_in),
+        shape=shape,
         dtype="f32",
         role=TensorRole.PARAMETER,
         reader=read,
         read_span=read_span,
         stored_type=decoder.stored_type,
     )
+
+
+def _unstack(
+    module: PackedModule, parts: dict[str, StoredPart]
+) -> tuple[dict[str, StoredPart], int]:
+    """MLX mixture-of-experts stacks (``switch_mlp``: weight, scales and biases all
+    ``[experts, out, ...]``) seen as one ``[experts * out, ...]`` matrix: the row-wise layout
+    decodes each expert's rows the same, and C order makes the flattening free."""
+    stacked = [p for p in parts.values() if p.ndim == 3]
+    if module.layout is not Layout.MLX or not stacked or len(stacked) != len(parts):
+        return parts, 0
+    experts = stacked[0].shape[0]
+    if experts == 0 or any(p.shape[0] != experts for p in stacked):
+        return parts, 0  # the decoder refuses these shapes with its own message
+    flat = {key: replace(p, shape=(experts * p.shape[1], p.shape[2]))
+            for key, p in parts.items()}
+    return flat, experts
 
 
 def unpack_checkpoint(
@@ -115,12 +136,13 @@ def unpack_checkpoint(
     for module in modules:
         path = origin[module.parts[next(iter(module.parts))]]
         parts = {key: _stored(tensors[name], origin[name]) for key, name in module.parts.items()}
+        parts, experts = _unstack(module, parts)
         name = module.weight_name
         if name in tensors and name not in module.parts.values():
             raise LoadError(path, f"{name!r} is stored both as a float tensor and packed")
         decoder = BUILDERS[module.layout](path, module, parts, config)
         stored = sum(part.nbytes for part in parts.values())
-        logical[name] = logical_tensor(name, decoder, path, stored)
+        logical[name] = logical_tensor(name, decoder, path, stored, experts)
         for part in module.parts.values():
             owner[part] = module
     out: dict[str, Tensor] = {}

@@ -245,6 +245,8 @@ def _findings(report: CompareReport, width: int, tails: dict[str, str]) -> list[
     else:
         parts.append(Text("no findings", style="green"))
     present = len(comparison.audit_present)
+    if gated and (present or comparison.ignored):
+        parts.append(Text(""))  # the table ends where a line is empty
     if present:
         were = "was" if present == 1 else "were"
         parts += indented(

@@ -43,6 +43,9 @@ BUCKET_CAP = 128
 #: Most bits added to a table's key to split an oversized bucket, ``_SPLIT_STEP`` at a time.
 EXTRA_BITS = 24
 _SPLIT_STEP = 4
+#: A bucket that longer keys cannot split compares each run of ``BUCKET_CAP`` members with
+#: the ``_BAND``·``BUCKET_CAP`` members from its start: every pair up to that size, a band beyond.
+_BAND = 4
 #: Buckets up to this size list their pairs, which are deduplicated across tables and
 #: confirmed once each; larger buckets are confirmed by one Gram product per table.
 _PAIRED = 4
@@ -301,6 +304,16 @@ def _table_buckets(
     return bucket
 
 
+def confirmation_bound(n: int, tables: int) -> int:
+    """Most dot products a hashed search of ``n`` rows in ``tables`` tables computes.
+
+    A table puts every row in one bucket: a row of a bucket of at most ``_PAIRED`` rows takes
+    part in at most 3 pairs, of at most ``BUCKET_CAP`` rows in at most ``BUCKET_CAP`` Gram
+    entries, of a larger (banded) bucket in at most ``_BAND``·``BUCKET_CAP``. The exact search
+    replaces this plan only when it needs fewer than ``BUCKET_DOT_COST`` times its dots."""
+    return int(max(1.0, BUCKET_DOT_COST) * _BAND * BUCKET_CAP * tables * n)
+
+
 def _planned_dots(sizes: np.ndarray) -> int:
     """Dot products ``_bucket_hits`` will compute for buckets of these sizes."""
     middle = sizes[(sizes > _PAIRED) & (sizes <= BUCKET_CAP)].astype(np.int64)
@@ -310,7 +323,7 @@ def _planned_dots(sizes: np.ndarray) -> int:
 
 def _band_dots(size: int) -> int:
     return sum(
-        min(BUCKET_CAP, size - s) * min(2 * BUCKET_CAP, size - s)
+        min(BUCKET_CAP, size - s) * min(_BAND * BUCKET_CAP, size - s)
         for s in range(0, size, BUCKET_CAP)
     )
 
@@ -357,8 +370,10 @@ def _bucket_hits(
 
     A bucket of up to ``BUCKET_CAP`` rows gets one Gram product; a bucket still larger (its
     rows agree on every bit of the longest key) compares each run of ``BUCKET_CAP`` members
-    (in index order) with itself and the next run, a band of its Gram matrix, so every member
-    meets at least the ``BUCKET_CAP`` >= ``PARTNERS`` members that follow it."""
+    (in index order) with itself and the next ``_BAND`` − 1 runs, a band of its Gram matrix:
+    every pair of a bucket of up to ``_BAND``·``BUCKET_CAP`` rows, and beyond that every
+    member meets at least the (``_BAND`` − 1)·``BUCKET_CAP`` >= ``PARTNERS`` members that
+    follow it (all of its capped partners when the bucket is a cluster of copies)."""
     order = np.argsort(bucket, kind="stable")  # each bucket's members in index order
     sizes = np.bincount(bucket)
     starts = np.r_[0, np.cumsum(sizes)[:-1]]
@@ -373,7 +388,7 @@ def _bucket_hits(
             _block_hits(
                 view,
                 members[at : at + BUCKET_CAP],
-                members[at : at + 2 * BUCKET_CAP],
+                members[at : at + _BAND * BUCKET_CAP],
                 threshold,
                 negative,
                 tally,

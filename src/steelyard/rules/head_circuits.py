@@ -76,6 +76,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
+from steelyard.numbers import measured as shown
 from steelyard.rules import _circuits as circ
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
 from steelyard.rules.scoring import score
@@ -276,9 +277,11 @@ def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
             yield _finding(
                 layer, f"head {h.index}",
                 score(1 / count, limits.idle_share * median / max(h.ov, 1e-30)),
-                f"head {h.index} of {block.name} is idle: its output-value circuit norm {h.ov:.3g} "
-                f"is {h.ov / median if median else 0:.2g}× the block's median {median:.3g}",
-                "prune the head (its q/k/v rows and o columns) or find out why it died",
+                f"head {h.index} of {block.name} is idle: its output-value circuit norm "
+                f"{shown(h.ov)} is {shown(h.ov / median if median else 0)}× the block's median "
+                f"{shown(median)}",
+                "prune the head (its rows of the query, key and value projections and its columns "
+                "of the output projection) or find out why it died",
                 evidence(h),
             )
         others = np.delete(ov, heads.index(h))
@@ -288,7 +291,7 @@ def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
                 layer, f"head {h.index}",
                 score(1 / count, h.ov / max(limits.dominant_ratio * rest, 1e-30)),
                 f"head {h.index} of {block.name} dominates its block: output-value circuit norm "
-                f"{h.ov:.3g} is {h.ov / rest:.1f}× the other heads' median {rest:.3g}",
+                f"{shown(h.ov)} is {shown(h.ov / rest)}× the other heads' median {shown(rest)}",
                 "check what the head attends to before pruning or quantizing this layer",
                 evidence(h),
             )

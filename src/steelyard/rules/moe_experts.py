@@ -69,6 +69,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
+from steelyard.numbers import measured as shown
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
 from steelyard.rules.scoring import score
 from steelyard.transformer.model import ExpertBlock
@@ -252,10 +253,15 @@ def _judge(
         if quiet and unrouted:
             yield _finding(
                 layer, f"expert {e}", score(1 / count, limits.idle_share * median / max(float(norms[e]), 1e-30)),
-                f"expert {e} of {block.name} is idle: weight norm {norms[e]:.3g} is "
-                f"{norms[e] / median if median else 0:.2g}× the median expert's"
-                + (f", router row {router[e]:.3g} vs median {router_median:.3g}" if router is not None and router_median is not None else ""),
-                "drop the expert and its router row, or retrain with a load-balancing loss",
+                f"expert {e} of {block.name} is idle: weight norm {shown(norms[e])} is "
+                f"{shown(norms[e] / median if median else 0)}× the median expert's"
+                + (
+                    f", router row {shown(router[e])} vs median {shown(router_median)}"
+                    if router is not None and router_median is not None
+                    else ""
+                ),
+                "drop the expert and the router's row for it, or retrain with a load-balancing "
+                "loss",
                 evidence(e),
             )
     yield from _twins(block, layer, cosine, limits, evidence)
@@ -285,7 +291,7 @@ def _twins(block: ExpertBlock, layer: Layer, cosine: np.ndarray, limits: MoeExpe
             layer, "experts " + ",".join(str(m) for m in members),
             score(len(members) / count, 1 + 100 * (lowest - limits.twin_cosine)),
             f"experts {named} of {block.name} are twins: weight cosine {lowest:.4f} "
-            f"(≥ {limits.twin_cosine}); they compute nearly the same function",
+            f"(at least {limits.twin_cosine}); they compute nearly the same function",
             "merge the twin experts, or re-initialise one and keep training so they specialise",
             {"block": block.name, "experts": members, "cosine": round(lowest, 4)},
         )

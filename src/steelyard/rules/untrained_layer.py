@@ -162,6 +162,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.numbers import count, measured
 from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
@@ -513,9 +514,9 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         score=score(1.0, limit / max(distance, 1e-9)),
         message=(
             f"the weights look freshly initialised: their distribution matches {best.name} "
-            f"(KS distance {distance:.4f} <= {limit:.4f}; within {margin:g} of it at p = "
-            f"{p_value:.2g}) and the top singular value {top:.4g} stays within {allowed:g} "
-            f"fluctuations of the Marchenko–Pastur edge {edge:.4g}"
+            f"(KS distance {measured(distance)} <= {measured(limit)}; within {margin:g} of it at "
+            f"p = {measured(p_value)}) and the top singular value {measured(top)} stays within "
+            f"{allowed:g} fluctuations of the Marchenko–Pastur edge {measured(edge)}"
             + (
                 "; this is an output layer, so the model's outputs are random"
                 if layer.is_output
@@ -569,7 +570,7 @@ def finish(
                 RULE.name,
                 "weights that fit an initializer's draw, but too few of them to tell a "
                 f"never-trained layer from a trained one at α = {alpha:g} over "
-                f"{len(tested)} tested layers",
+                f"{count(len(tested))} tested layers",
                 layer.name,
             )
 

@@ -246,3 +246,36 @@ def test_fp4_worked_example(tmp_path: Path) -> None:
              "weight_scale": np.array([[128]], np.uint8)}
     path = ref.save(tmp_path / "model.safetensors", ref.prefixed(M, parts))
     _check(path, M, np.array([[1.0, 12.0, -1.0, -12.0]], np.float32), "mxfp4")
+
+
+@pytest.mark.parametrize("kind", ["tensor", "channel", "block"])
+def test_fp8_expert_stack_matches_per_expert_decoding(tmp_path: Path, kind: str) -> None:
+    # A [experts, out, in] FP8 stack: each expert decoded on its own by the reference (OCP FP8
+    # via ml_dtypes times that expert's scale) must equal the stack's view.
+    import ml_dtypes
+
+    rng = np.random.default_rng(14)
+    experts, n_out, n_in, block = 3, 8, 12, (4, 8)
+    w = rng.normal(size=(experts, n_out, n_in)).astype(ml_dtypes.float8_e4m3fn)
+    shapes = {"tensor": (experts,), "channel": (experts, n_out, 1),
+              "block": (experts, n_out // 4, -(-n_in // 8))}
+    scale = rng.uniform(0.5, 2.0, size=shapes[kind]).astype(np.float32)
+    expected = np.empty((experts, n_out, n_in), np.float32)
+    for e in range(experts):
+        for o in range(n_out):
+            for i in range(n_in):
+                if kind == "tensor":
+                    s = scale[e]
+                elif kind == "channel":
+                    s = scale[e, o, 0]
+                else:
+                    s = scale[e, o // 4, i // 8]
+                expected[e, o, i] = np.float32(w[e, o, i]) * s
+    key = "weight_scale_inv" if kind == "block" else "weight_scale"
+    config = {"quantization_config": {"quant_method": "fp8", "weight_block_size": list(block)}}
+    name = "model.layers.0.mlp.experts.down_proj"
+    path = ref.save(tmp_path / "model.safetensors", {f"{name}.weight": w, f"{name}.{key}": scale},
+                    config)
+    tensor = load(path).tensors[f"{name}.weight"]
+    assert tensor.shape == (experts, n_out, n_in) and tensor.stored_type.startswith("fp8-e4m3")
+    np.testing.assert_allclose(tensor.read(), expected, rtol=1e-6)

@@ -27,7 +27,7 @@ from steelyard.graph import Tensor, TensorRole
 from steelyard.loaders.packed.config import QuantConfig, read_quant_config
 from steelyard.loaders.packed.detect import Layout, detect_layout
 from steelyard.loaders.packed.modules import PackedModule, find_packed
-from steelyard.loaders.packed.stored import StoredPart
+from steelyard.loaders.packed.stored import Part, StoredPart
 from steelyard.streaming import row_blocks
 
 
@@ -49,7 +49,7 @@ class Decoder(Protocol):
 DECODE_BYTES = 4 * 2**20
 
 #: Builds a layout's decoder from its parts; registered per layout in ``builders``.
-Builder = Callable[[Path, PackedModule, Mapping[str, StoredPart], QuantConfig], Decoder]
+Builder = Callable[[Path, PackedModule, Mapping[str, Part], QuantConfig], Decoder]
 
 
 def _stored(tensor: Tensor, path: Path) -> StoredPart:
@@ -105,19 +105,42 @@ def logical_tensor(
 
 def _unstack(
     module: PackedModule, parts: dict[str, StoredPart]
-) -> tuple[dict[str, StoredPart], int]:
-    """MLX mixture-of-experts stacks (``switch_mlp``: weight, scales and biases all
-    ``[experts, out, ...]``) seen as one ``[experts * out, ...]`` matrix: the row-wise layout
-    decodes each expert's rows the same, and C order makes the flattening free."""
-    stacked = [p for p in parts.values() if p.ndim == 3]
-    if module.layout is not Layout.MLX or not stacked or len(stacked) != len(parts):
-        return parts, 0
-    experts = stacked[0].shape[0]
-    if experts == 0 or any(p.shape[0] != experts for p in stacked):
-        return parts, 0  # the decoder refuses these shapes with its own message
-    flat = {key: replace(p, shape=(experts * p.shape[1], p.shape[2]))
-            for key, p in parts.items()}
-    return flat, experts
+) -> tuple[dict[str, Part], int]:
+    """Mixture-of-experts stacks (``[experts, out, ...]``) seen as one ``[experts * out, ...]``
+    matrix: row-wise layouts decode each expert's rows the same, and C order makes the
+    flattening free. MLX ``switch_mlp`` weight/scales/biases; FP8 weights whose scales are per
+    expert (``[experts]``, repeated over its rows), per row (``[experts, out(, 1)]``) or per
+    block of rows that do not straddle experts. Anything else is left to the decoder's checks."""
+    weight = parts.get("weight")
+    if weight is None or weight.ndim != 3 or not weight.shape[0]:
+        return dict(parts), 0
+    experts, out = weight.shape[0], weight.shape[1]
+
+    def rows(part: StoredPart) -> StoredPart:
+        return replace(part, shape=(part.shape[0] * part.shape[1], *part.shape[2:]))
+
+    if module.layout is Layout.MLX:
+        if all(p.ndim == 3 and p.shape[0] == experts for p in parts.values()):
+            return {key: rows(p) for key, p in parts.items()}, experts
+        return dict(parts), 0
+    if module.layout is Layout.FP8:
+        key = "weight_scale_inv" if "weight_scale_inv" in parts else "weight_scale"
+        scale = parts.get(key)
+        if scale is None or not scale.shape or scale.shape[0] != experts:
+            return dict(parts), 0
+        flat: dict[str, Part] = {k: p for k, p in parts.items() if k != key}
+        flat["weight"] = rows(weight)
+        if scale.size == experts:  # one scale per expert: each of its rows gets it
+            values = np.asarray(scale, dtype=np.float32).reshape(experts, 1)
+            flat[key] = np.repeat(values, out, axis=0)
+        elif scale.ndim in (2, 3) and scale.size == experts * out:
+            flat[key] = replace(scale, shape=(experts * out, 1))
+        elif scale.ndim == 3 and out % max(1, -(-out // scale.shape[1])) == 0:
+            flat[key] = rows(scale)  # whole row blocks per expert
+        else:
+            return dict(parts), 0
+        return flat, experts
+    return dict(parts), 0
 
 
 def unpack_checkpoint(
@@ -135,13 +158,14 @@ def unpack_checkpoint(
     logical: dict[str, Tensor] = {}
     for module in modules:
         path = origin[module.parts[next(iter(module.parts))]]
-        parts = {key: _stored(tensors[name], origin[name]) for key, name in module.parts.items()}
-        parts, experts = _unstack(module, parts)
+        stored_parts = {key: _stored(tensors[name], origin[name])
+                        for key, name in module.parts.items()}
+        parts, experts = _unstack(module, stored_parts)
         name = module.weight_name
         if name in tensors and name not in module.parts.values():
             raise LoadError(path, f"{name!r} is stored both as a float tensor and packed")
         decoder = BUILDERS[module.layout](path, module, parts, config)
-        stored = sum(part.nbytes for part in parts.values())
+        stored = sum(part.nbytes for part in stored_parts.values())
         logical[name] = logical_tensor(name, decoder, path, stored, experts)
         for part in module.parts.values():
             owner[part] = module

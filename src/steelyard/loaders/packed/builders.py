@@ -31,9 +31,9 @@ from steelyard.loaders.packed.fp8 import Fp8Weight
 from steelyard.loaders.packed.gptq import SUPPORTED_BITS, GptqWeight, codes_in, words_for
 from steelyard.loaders.packed.mlx import MlxWeight
 from steelyard.loaders.packed.modules import PackedModule
-from steelyard.loaders.packed.stored import StoredPart
+from steelyard.loaders.packed.stored import Part
 
-Parts = Mapping[str, StoredPart]
+Parts = Mapping[str, Part]
 
 
 def _need(path: Path, module: PackedModule, parts: Parts, *keys: str) -> None:

@@ -128,6 +128,11 @@ class ColumnWindow:
         """Element type."""
         return self.array.dtype
 
+    @property
+    def size(self) -> int:
+        """Number of elements (of the whole part)."""
+        return math.prod(self.shape)
+
     def __getitem__(self, key: Any) -> np.ndarray:
         rows, cols = key
         c0, c1, _ = cols.indices(self.shape[1])

@@ -35,8 +35,8 @@ BLOCK_BYTES = 32 * 2**20
 DESIGN_RECALL = 0.9999
 #: Recall measured by ``bench/twin_recall.py`` on planted twins (worst width, rounded down).
 MEASURED_RECALL = 0.99
-#: Most partners kept per row. A layer of many identical rows (a constant initialisation,
-#: say) would otherwise yield n²/2 pairs; 64 partners per row keep such a group connected.
+#: Most later partners kept per row (plus each row's first earlier one). A layer of many
+#: identical rows (a constant initialisation, say) would otherwise yield n²/2 pairs.
 PARTNERS = 64
 #: Most rows compared all against all in one hash bucket; a larger bucket gets a longer key.
 BUCKET_CAP = 128
@@ -153,13 +153,23 @@ class Tally:
     """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
 
 
-def _partner_mask(first: np.ndarray) -> np.ndarray:
-    """True for the first ``PARTNERS`` entries of every run of equal ``first`` values."""
-    if first.size <= PARTNERS:
-        return np.ones(first.size, dtype=bool)
-    starts = np.flatnonzero(np.r_[True, first[1:] != first[:-1]])
+def _partner_mask(
+    first: np.ndarray, second: np.ndarray, certain: np.ndarray, seen: np.ndarray
+) -> np.ndarray:
+    """Hits (in row-major order) kept under the partner cap: the first ``PARTNERS`` of every
+    row, and for a row not ``seen`` as a later member before, its first ``certain`` hit as the
+    later member (and any uncertain one before it), so that no row with a twin is cut off
+    from its group by the cap."""
+    starts = np.flatnonzero(np.r_[True, first[1:] != first[:-1]]) if first.size else _EMPTY
     rank = np.arange(first.size) - np.repeat(starts, np.diff(np.r_[starts, first.size]))
-    return np.asarray(rank < PARTNERS)
+    keep = rank < PARTNERS
+    unseen = ~seen[second]
+    keep |= unseen & ~certain  # near the threshold: the float64 check may still drop it
+    fresh = np.flatnonzero(unseen & certain)
+    values, where = np.unique(second[fresh], return_index=True)
+    keep[fresh[where]] = True
+    seen[values] = True
+    return np.asarray(keep)
 
 
 def _passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
@@ -178,6 +188,7 @@ def _gram_hits(
     with their float32 cosines; each row keeps its first ``PARTNERS`` partners."""
     n = unit.shape[0]
     block = max(1, BLOCK_BYTES // max(1, 4 * n))
+    seen = np.zeros(n, dtype=bool)
     firsts: list[np.ndarray] = []
     seconds: list[np.ndarray] = []
     values: list[np.ndarray] = []
@@ -187,10 +198,12 @@ def _gram_hits(
         tally.dots += int(gram.size)
         hits = np.argwhere(_passing(gram, threshold, negative))
         hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
-        hits = hits[_partner_mask(hits[:, 0])]
-        firsts.append(hits[:, 0] + start)
-        seconds.append(hits[:, 1] + start)
-        values.append(gram[hits[:, 0], hits[:, 1]])
+        rough = gram[hits[:, 0], hits[:, 1]]
+        certain = _passing(rough, threshold + 2 * _SLACK, negative)
+        keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
+        firsts.append(hits[keep, 0] + start)
+        seconds.append(hits[keep, 1] + start)
+        values.append(rough[keep])
     if not firsts:
         return _EMPTY, _EMPTY, np.zeros(0, np.float32)
     return (
@@ -482,7 +495,9 @@ def candidate_pairs(
     )
     first, second = code // n, code % n
     rough = np.concatenate(found[2])[where]
-    keep = _partner_mask(first)  # the exact search's cap, on the same row-major order
+    # The exact search's cap, on the same row-major order.
+    certain = _passing(rough, threshold + 2 * _SLACK, negative)
+    keep = _partner_mask(first, second, certain, np.zeros(n, dtype=bool))
     return _settle(view, first[keep], second[keep], rough[keep], threshold, negative)
 
 

@@ -67,6 +67,7 @@ from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
 from steelyard.loaders.adapter import AdaptedModule, adapter_of
 from steelyard.loaders.adapter.factors import singular_values
+from steelyard.numbers import count, measured
 from steelyard.rules.base import (
     AuditContext,
     RuleSettings,
@@ -175,9 +176,9 @@ def check_layer(
                 score=score(
                     1.0, ratio / limits.max_update_ratio if limits.max_update_ratio else math.inf
                 ),
-                message=f"the update is {ratio:.3g}× the base weight (‖ΔW‖/‖W‖, limit "
+                message=f"the update is {measured(ratio)}× the base weight (‖ΔW‖/‖W‖, limit "
                 f"{limits.max_update_ratio:g}): it replaces the layer rather than adapting it",
-                hint="check the base model is the one the adapter was trained on, and the "
+                hint="check that the base model is the one the adapter was trained on, and check the "
                 "learning rate and lora_alpha",
                 evidence=evidence,
             )
@@ -194,9 +195,10 @@ def check_layer(
             layer,
             severity=Severity.INFO,
             score=score(unused / module.rank, share / max(below, 1e-12)),
-            message=f"the update uses {spectrum.effective_rank} of its rank {module.rank}: "
-            f"{unused} singular values are below {share:g} of the largest",
-            hint="lower r for this module (rank_pattern) to save parameters",
+            message=f"the update uses {count(spectrum.effective_rank)} of its rank {count(module.rank)}: "
+            f"{count(unused)} singular values are below {share:g} of the largest",
+            hint="lower this module's LoRA rank (its rank_pattern entry in adapter_config.json) "
+            "to save parameters",
             evidence={**evidence, "singular_values": [float(v) for v in values[:64]]},
         )
 

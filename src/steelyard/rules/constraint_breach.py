@@ -35,6 +35,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer
+from steelyard.numbers import count
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
@@ -105,7 +106,7 @@ def check_layer(
         severity=Severity.ERROR,
         units=[int(u) for u in bad],
         score=score(bad.size / layer.units, excess),
-        message=f"{bad.size} of {layer.units} units break the declared {constraint.kind} constraint "
+        message=f"{count(bad.size)} of {count(layer.units)} units break the declared {constraint.kind} constraint "
         f"({measured}; limit {limit_text}, tolerance {tol:g})",
         hint="check which weights were shipped: re-export from the training run or inspect the code "
         "that loaded or edited this checkpoint",

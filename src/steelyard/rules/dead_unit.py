@@ -56,6 +56,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.numbers import count
 from steelyard.rules._bounds import IntervalBounds, finite_range
 from steelyard.rules.base import (
     AuditContext,
@@ -342,7 +343,7 @@ def _finding(
     severity = (
         Severity.ERROR if share >= settings.for_layer(layer).error_share else Severity.WARNING
     )
-    named = ", ".join(f"{name} {len(units)}" for name, units in tests.items() if units)
+    named = ", ".join(f"{count(len(units))} {name}" for name, units in tests.items() if units)
     keep = sorted(record.essential.intersection(dead))
     saving = record.per_unit * (len(dead) - len(keep))
     evidence: dict[str, object] = {name: sorted(units) for name, units in tests.items() if units}
@@ -357,7 +358,7 @@ def _finding(
             evidence[relation] = {k: sorted(v) for k, v in related[relation].items()}
             echoes += "".join(
                 f"; the same channels are dead in {'downstream' if 'down' in relation else 'upstream'}"
-                f" {other} ({len(units)})"
+                f" {other} ({count(len(units))})"
                 for other, units in related[relation].items()
             )
     yield layer_finding(
@@ -366,12 +367,12 @@ def _finding(
         severity=severity,
         units=dead,
         score=score(share, 1 + len(dead)),
-        message=f"{len(dead)} of {layer.units} units are dead ({named}){echoes}",
+        message=f"{count(len(dead))} of {count(layer.units)} units are dead ({named}){echoes}",
         hint=(
             f"units {', '.join(map(str, keep))} hold weights essential-weight marks: keep them; "
-            f"pruning the other {len(dead) - len(keep)} saves exactly {saving} parameters"
+            f"pruning the other {count(len(dead) - len(keep))} saves exactly {count(saving)} parameters"
             if keep
-            else f"pruning them saves exactly {saving} parameters"
+            else f"pruning them saves exactly {count(saving)} parameters"
         )
         + "; if many died, retrain with a lower learning rate, leaky activations or a weaker "
         "penalty",

@@ -55,6 +55,8 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.numbers import count as counted
+from steelyard.numbers import measured
 from steelyard.rules.base import (
     AuditContext,
     RuleSettings,
@@ -212,8 +214,10 @@ def check_layer(
         first["row_sigmas"] is not None or first["column_sigmas"] is not None
     ) else float("inf")
     count = int(found.units.size)
-    where = ", ".join(f"[{w['unit']}, {w['input']}] = {w['value']:.4g}" for w in listed[:3])
-    more = f" and {count - 3} more" if count > 3 else ""
+    where = ", ".join(
+        f"unit {w['unit']} input {w['input']} = {measured(w['value'])}" for w in listed[:3]
+    )
+    more = f" and {counted(count - 3)} more" if count > 3 else ""
     yield layer_finding(
         RULE.name,
         layer,
@@ -221,7 +225,7 @@ def check_layer(
         units=sorted(found.rows),
         score=score(len(found.rows) / layer.units, least / limits.sigma),
         message=(
-            f"{count} weight{'s' if count != 1 else ''} at least {limits.sigma:g} RMS beyond the "
+            f"{counted(count)} weight{'s' if count != 1 else ''} at least {limits.sigma:g} RMS beyond the "
             f"rest of their row and column: {where}{more}"
         ),
         hint="keep these weights exactly when clipping, pruning or quantizing (store them "

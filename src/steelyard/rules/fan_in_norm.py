@@ -44,6 +44,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.numbers import count, measured
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
@@ -122,13 +123,13 @@ def _relative(ctx: AuditContext, limits: FanInNormSettings, layer: Layer) -> Ite
         evidence["status"] = status
         word = "the layer's median" if test == "relative" else "the policy's max-norm"
         limit_text = (
-            f"{ratio_limit:g} × median {median:.4g} = {limit:.4g}"
+            f"{ratio_limit:g} × median {measured(median)} = {measured(limit)}"
             if test == "relative"
-            else f"{limit:.4g}"
+            else f"{limit:g}"
         )
         message = (
-            f"{hit.size} of {layer.units} units have incoming L2 norm up to "
-            f"{float(norms[hit].max()):.4g}, past {word} limit ({limit_text})"
+            f"{count(hit.size)} of {count(layer.units)} units have incoming L2 norm up to "
+            f"{measured(float(norms[hit].max()))}, past {word} limit ({limit_text})"
         )
         if status == "normalised":
             message += "; a normalisation follows, so the raw scale does not change the function"
@@ -137,7 +138,10 @@ def _relative(ctx: AuditContext, limits: FanInNormSettings, layer: Layer) -> Ite
             message += (
                 "; the consumers' columns are correspondingly small, so the units are rescalable"
             )
-            hint = "rebalance: scale each unit's row by its balancing factor a and its consumer columns by 1/a"
+            hint = (
+                "rebalance: multiply each unit's incoming weights by its balancing factor (in "
+                "the evidence) and divide the weights its consumers read from it by the same factor"
+            )
         else:
             hint = "retrain with weight decay or a max-norm constraint on this layer, or lower its learning rate"
         yield layer_finding(

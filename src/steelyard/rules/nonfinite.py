@@ -33,6 +33,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, Tensor, TensorRole
+from steelyard.numbers import count
 from steelyard.rules.base import AuditContext, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score
 
@@ -127,8 +128,8 @@ def check(ctx: AuditContext, settings: RuleSettings[NoSettings]) -> Iterator[Fin
             units=tuple(sorted(units)),
             score=score(total / max(1, bad.size), 1e6),
             message=(
-                f"{what} holds {total} non-finite value{'s' if total != 1 else ''} "
-                f"({nan} NaN, {pos} +Inf, {neg} −Inf) out of {bad.size}"
+                f"{what} holds {count(total)} non-finite value{'s' if total != 1 else ''} "
+                f"({count(nan)} NaN, {count(pos)} +Inf, {count(neg)} −Inf) out of {count(bad.size)}"
             ),
             hint="do not ship this checkpoint; find the training step where values diverged "
             "and restart from the last checkpoint that passed",

@@ -104,6 +104,8 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Format, Layer, LayerKind, TensorRole
+from steelyard.numbers import count, percent
+from steelyard.numbers import measured as value_shown
 from steelyard.rules.base import (
     AuditContext,
     RuleSettings,
@@ -347,11 +349,12 @@ def finish(
             severity=Severity.WARNING,
             score=score(layer.units * layer.fan_in / max(1, size), error / limit),
             message=(
-                f"4-bit round-to-nearest (groups of {row['group_size']}) has a balanced error "
-                f"of {error:.1%}, {error / median:.3g}× the model's median {median:.1%} (limit "
-                f"{limit:.1%}); plain relative error {row['int4_error']:.1%}, worst channel "
-                f"{row['int4_worst_channel']} {row['int4_worst_channel_error']:.1%}; at 8 bits "
-                f"per channel {row['int8_error']:.2%}"
+                f"4-bit round-to-nearest (groups of {count(row['group_size'])}) has a balanced "
+                f"error of {percent(error)}, {value_shown(error / median)}× the model's median "
+                f"{percent(median)} (limit {percent(limit)}); plain relative error "
+                f"{percent(row['int4_error'])}, worst channel {row['int4_worst_channel']} "
+                f"{percent(row['int4_worst_channel_error'])}; at 8 bits per channel "
+                f"{percent(row['int8_error'])}"
             ),
             hint="keep this layer at 8 bits or in float when quantizing the model, or use an "
             "outlier-aware scheme (finer groups, mixed precision, activation-aware scales)",
@@ -373,9 +376,9 @@ def finish(
             units=(),
             score=0.0,
             message=(
-                f"predicted quantization error of {len(measured)} layers"
-                + (f" (median balanced 4-bit error {median:.1%})" if median is not None else "")
-                + (f"; {len(rows) - len(measured)} stored quantized" if len(rows) > len(measured) else "")
+                f"predicted quantization error of {count(len(measured))} layers"
+                + (f" (median balanced 4-bit error {percent(median)})" if median is not None else "")
+                + (f"; {count(len(rows) - len(measured))} stored quantized" if len(rows) > len(measured) else "")
                 + ": see the evidence table"
             ),
             hint="informational: which layers lose most under 8- and 4-bit round-to-nearest",

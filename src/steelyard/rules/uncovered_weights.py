@@ -31,6 +31,7 @@ from dataclasses import dataclass
 
 from steelyard.coverage import coverage_of
 from steelyard.findings import Finding, Severity
+from steelyard.numbers import percent
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction
 from steelyard.rules.scoring import score
 
@@ -65,7 +66,7 @@ def check(
         )
     else:
         message = (
-            f"the layer rules saw {share:.1%} of {coverage.parameters:,} parameters, below "
+            f"the layer rules saw {percent(share)} of {coverage.parameters:,} parameters, below "
             f"min-share {limit:.0%}; {len(coverage.uncovered):,} tensors are in no layer"
         )
     yield Finding(

@@ -94,6 +94,7 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import GradientSource, GradsKind, optimizer_source
 from steelyard.graph import Layer
+from steelyard.numbers import count, measured
 from steelyard.rules.base import (
     AuditContext,
     HealthColumn,
@@ -181,10 +182,11 @@ def _unsupported(
         units=units,
         score=score(len(units) / layer.units, largest / (multiple * rms)),
         message=(
-            f"{rows.size} {where}weight{'s' if rows.size != 1 else ''} in {len(units)} of "
-            f"{layer.units} units reach |w| up to {largest:.4g} (limit {weight_limit:.4g}, "
-            f"RMS {rms:.4g}) with gradient support <= {support_limit:.4g}; total "
-            f"optimal-brain-damage saliency {total:.4g}"
+            f"{count(rows.size)} {where}weight{'s' if rows.size != 1 else ''} in "
+            f"{count(len(units))} of {count(layer.units)} units reach |w| up to "
+            f"{measured(largest)} (limit {measured(weight_limit)}, RMS {measured(rms)}) with "
+            f"gradient support <= {measured(support_limit)}; total optimal-brain-damage "
+            f"saliency {measured(total)}"
         ),
         hint="check whether the inputs these weights read are ever active in the data; prune, "
         "constrain or decay them, or fix the pipeline that starves those inputs",
@@ -294,18 +296,24 @@ def _equilibrium(
     band = limits.equilibrium_band
     inside = 1.0 / band <= ratio <= band
     lam_eff = float(np.median(lam[counted]))
-    shown = f"{ratio:.3g}" if np.isfinite(ratio) else "infinite"
+    shown = measured(ratio) if np.isfinite(ratio) else "infinite"
     message = (
-        f"equilibrium ratio (λ_eff·|w| + l1)/|∂E/∂w| = {shown} (median over {int(counted.sum())} "
-        f"weights, λ_eff = {lam_eff:.4g} from {penalty.source}), "
-        f"{'inside' if inside else 'outside'} [{1 / band:.3g}, {band:.3g}]"
+        f"equilibrium ratio (λ_eff·|w| + l1)/|∂E/∂w| = {shown} (median over {count(int(counted.sum()))} "
+        f"weights, λ_eff = {measured(lam_eff)} from {penalty.source}), "
+        f"{'inside' if inside else 'outside'} [{measured(1 / band)}, {measured(band)}]"
     )
     if inside:
         hint = "informational: the data gradient balances the declared penalty"
     elif ratio > band:
-        hint = "the penalty outweighs the data gradient: train longer, or declare the smaller λ that was used"
+        hint = (
+            "the penalty outweighs the data gradient: train longer, or declare the smaller "
+            "weight decay or regularizer strength that was really used"
+        )
     else:
-        hint = "the data gradient outweighs the penalty: train longer, or declare the larger λ that was used"
+        hint = (
+            "the data gradient outweighs the penalty: train longer, or declare the larger "
+            "weight decay or regularizer strength that was really used"
+        )
     excess = max(ratio, 1.0 / ratio) / band if ratio > 0 else float("inf")
     yield layer_finding(
         RULE.name,

@@ -72,6 +72,7 @@ import numpy as np
 from steelyard.errors import SteelyardError
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.numbers import count as counted
 from steelyard.rules.base import (
     AuditContext,
     RuleSettings,
@@ -314,9 +315,9 @@ def check_layer(
         f"{item['id']} {item['text']!r}" if item["text"] is not None else str(item["id"])
         for item in listed[:12]
     )
-    more = f" and {len(tokens) - 12} more" if len(tokens) > 12 else ""
+    more = f" and {counted(len(tokens) - 12)} more" if len(tokens) > 12 else ""
     lowest = min(ratio for _test, ratio in flagged.values())
-    by_test = ", ".join(f"{name} {count}" for name, count in counts.items())
+    by_test = ", ".join(f"{name} {counted(n)}" for name, n in counts.items())
     yield layer_finding(
         RULE.name,
         layer,
@@ -324,7 +325,7 @@ def check_layer(
         units=tokens,
         score=score(len(tokens) / layer.units, limits.residual_share / max(lowest, 1e-6)),
         message=(
-            f"{len(tokens)} of {layer.units} tokens look never trained in the {role} "
+            f"{counted(len(tokens))} of {counted(layer.units)} tokens look never trained in the {role} "
             f"({by_test}): {shown}{more}"
         ),
         hint="train these tokens (put them in the fine-tuning data) or keep them out of "

@@ -18,6 +18,7 @@ from typing import Any
 from steelyard.comparison.report import LayerDiff
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Checkpoint, Layer
+from steelyard.numbers import measured
 from steelyard.policy import Policy
 from steelyard.report import Suppressed
 from steelyard.rules.base import Command, RuleSettings, RuleSpec
@@ -81,8 +82,8 @@ class CompareContext:
 
 
 def number(value: float | None) -> str:
-    """A measured value in a message (``—`` when not measured)."""
-    return "—" if value is None else f"{value:.3g}"
+    """A measured value in a message (``—`` when not measured), in the one number format."""
+    return measured(value)
 
 
 def compare_rules() -> dict[str, RuleSpec]:

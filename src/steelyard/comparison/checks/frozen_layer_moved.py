@@ -31,6 +31,7 @@ from collections.abc import Iterator
 from steelyard.comparison.checks import CompareContext, number
 from steelyard.comparison.report import Status
 from steelyard.findings import Finding, Severity
+from steelyard.numbers import count
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score
 
@@ -51,7 +52,7 @@ def frozen_layer_moved(ctx: CompareContext, settings: RuleSettings[NoSettings]) 
         if diff.status is Status.CHANGED:
             share = diff.moved_elements / diff.elements if diff.elements else 1.0
             what = (
-                f"changed: {diff.moved_elements} of {diff.elements} elements differ beyond the "
+                f"changed: {count(diff.moved_elements)} of {count(diff.elements)} elements differ beyond the "
                 f"stored precision (relative change {number(diff.relative_change)})"
             )
         elif diff.status is Status.SAME:

@@ -58,7 +58,7 @@ def layer_drift(ctx: CompareContext, settings: RuleSettings[LayerDriftSettings])
             message=f"weights moved by {number(change)} of their norm (limit {limit:g}); "
             f"cosine to OLD {number(diff.cosine)}",
             hint="check the learning rate and whether the layer was re-initialised; if it is "
-            "meant to move, raise layer-drift's limit for it with an [[override]]",
+            "meant to move, raise layer-drift's limit for it in an [[override]] section of the policy",
             evidence={
                 "relative_change": change,
                 "limit": limit,

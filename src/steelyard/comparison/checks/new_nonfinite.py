@@ -26,6 +26,7 @@ import numpy as np
 from steelyard.comparison.checks import CompareContext
 from steelyard.findings import Finding, Severity
 from steelyard.graph import TensorRole
+from steelyard.numbers import plural
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score
 
@@ -62,7 +63,7 @@ def _loose_nonfinite(ctx: CompareContext) -> Iterator[Finding]:
                 tensor=name,
                 units=(),
                 score=score(count / max(1, bad.size), 1e6),
-                message=f"tensor {name!r} holds {count} non-finite value{'s' if count != 1 else ''} "
+                message=f"tensor {name!r} holds {plural(count, 'non-finite value')} "
                 "that were finite in OLD",
                 hint="do not ship NEW; find the training step between the two checkpoints where "
                 "values diverged",
@@ -86,7 +87,7 @@ def new_nonfinite(ctx: CompareContext, settings: RuleSettings[NoSettings]) -> It
             severity=Severity.ERROR,
             units=diff.nonfinite_units,
             score=score(diff.nonfinite_new / max(1, elements), 1e6),
-            message=f"{diff.nonfinite_new} non-finite value{'s' if diff.nonfinite_new != 1 else ''} "
+            message=f"{plural(diff.nonfinite_new, 'non-finite value')} "
             "in NEW where OLD was finite"
             + (f" (layer {diff.status.value} in NEW)" if diff.status.structural else ""),
             hint="do not ship NEW; find the training step between the two checkpoints where "

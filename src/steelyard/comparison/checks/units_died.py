@@ -24,6 +24,7 @@ from collections.abc import Iterator
 
 from steelyard.comparison.checks import CompareContext
 from steelyard.findings import Finding, Severity
+from steelyard.numbers import count
 from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
 from steelyard.rules.scoring import score
 
@@ -41,8 +42,8 @@ def units_died(ctx: CompareContext, settings: RuleSettings[NoSettings]) -> Itera
             severity=Severity.WARNING,
             units=diff.units_died,
             score=score(died / total, 1 + died),
-            message=f"{died} of {total} units alive in OLD are dead in NEW"
-            + (f" ({len(diff.units_revived)} revived)" if diff.units_revived else ""),
+            message=f"{count(died)} of {count(total)} units alive in OLD are dead in NEW"
+            + (f" ({count(len(diff.units_revived))} revived)" if diff.units_revived else ""),
             hint="compare the two runs' learning rate, penalties and warm-up; `steelyard audit NEW` "
             "names the dead-unit test each unit fails",
             evidence={

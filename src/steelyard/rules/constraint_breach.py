@@ -92,6 +92,8 @@ def check_layer(
             (lower or 1.0) / np.maximum(norms[bad], 1e-30),
         )
         excess = float(ratios.max())
+        # Six digits, not the report's usual three: a norm past its limit by a hair would
+        # otherwise read as equal to it.
         measured = f"row norms {float(norms[bad].min()):.6g} to {float(norms[bad].max()):.6g}"
         limit_text = (
             f"[{lower:g}, {upper:g}]"

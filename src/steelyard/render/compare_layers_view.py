@@ -196,8 +196,8 @@ def _legend(shape: _Shape, compact: bool) -> str:
         ]
     if shape.ranked:
         parts.append(
-            "rank: how many singular directions hold 99% of the update (>N: more than were "
-            "counted)"
+            "rank: how many singular directions hold 99% of the update (>N: more than the N "
+            "it counts up to)"
         )
     if not compact:
         parts.append(

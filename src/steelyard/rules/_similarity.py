@@ -1,13 +1,15 @@
 """Finding pairs of nearly parallel rows: blocked exact search and a hashed candidate search.
 
 Both return the same thing, every pair ``i < k`` whose cosine is ``>= threshold`` (and, when
-``negative`` is set, also ``<= -threshold``), with the cosine recomputed in float64 from the
-rows themselves, so the two searches agree on every pair they both see.
+``negative`` is set, also ``<= -threshold``). Cosines come from float32 products of normalised
+rows; a pair within 1e-4 of the threshold (where float32 could decide wrongly) is recomputed in
+float64 from the rows themselves, so the two searches decide every pair alike. Each row keeps
+its first ``PARTNERS`` later partners and its first earlier one (a layer of copies would
+otherwise give n²/2 pairs), in both searches, so neither cuts a row off from its twins.
 
 The rows are a :class:`Rows` view: a float32 matrix, an optional extra last column (a bias)
-and float64 norms. Neither search copies the whole layer: the hashed one projects the stored
-rows directly (a sign hash is unchanged by scaling a row, so nothing needs normalising), and
-only the rows of candidate pairs are gathered.
+and float64 norms. The hashed search projects the stored rows directly (a sign hash is
+unchanged by scaling a row) and gathers only the rows of buckets with more than one row.
 
 * :func:`exact_pairs` multiplies blocks of normalised rows with every later row (BLAS) and
   keeps the entries past the threshold (``np.argwhere``). Cost n²·d/2, memory one block.
@@ -16,10 +18,34 @@ only the rows of candidate pairs are gathered.
   ``bits`` bits. Two rows at angle θ agree on one random hyperplane with probability 1 − θ/π,
   on a whole table key with (1 − θ/π)^bits, and share at least one of L tables with
   1 − (1 − (1 − θ/π)^bits)^L. ``bits`` and ``tables`` are chosen so that this is >= 0.9999 at
-  the threshold angle itself; pairs above the threshold collide more often. Candidates from
-  shared buckets are then checked exactly. Seeded, hence deterministic.
+  the threshold angle itself; pairs above the threshold collide more often. Seeded, hence
+  deterministic.
 
-The measured recall against the exact search is printed by ``bench/twin_recall.py``.
+**Confirmation in blocks, with a bucket cap.** Rows that share directions (trained layers,
+outlier input columns, near copies) agree on many hyperplanes, so they crowd a few buckets;
+confirming every colliding pair one at a time (two gathered rows each) then grows with the
+square of the bucket sizes. Instead:
+
+1. The pairs of buckets of at most ``_PAIRED`` (4) rows are listed, deduplicated across all
+   tables (true twins collide in most of them) and confirmed once each.
+2. A bucket of up to ``BUCKET_CAP`` (128) rows is gathered once per table and confirmed by one
+   Gram product (its raw rows' products, scaled by the inverse norms afterwards).
+3. A bucket of more than ``BUCKET_CAP`` rows gets a longer key for its rows only: sign bits of
+   ``_SPLIT_STEP`` (4) more hyperplanes at a time (seeded per table), up to ``EXTRA_BITS`` (24)
+   more, until every part is within the cap. Each added bit keeps a pair at the threshold
+   together with probability 0.968, so this costs recall only where buckets were crowded.
+4. A bucket still larger (its rows agree on 40 hyperplanes: a cluster of near copies) compares
+   each run of ``BUCKET_CAP`` members, in index order, with the ``_BAND``·``BUCKET_CAP`` (512)
+   members from its start: every pair of a bucket up to 512 rows, a band of the Gram matrix
+   beyond, which still gives each member its capped partners when the cluster is of copies.
+
+Hence at most ``_BAND``·``BUCKET_CAP`` float32 dot products per row and table
+(:func:`confirmation_bound`, counted in :class:`Tally`), whatever the weights. The plan is
+counted before any product is computed; when it times ``BUCKET_DOT_COST`` (3: the measured
+time of a bucket product's dot against one in the exact search's large blocks, 1.6–5 by width)
+exceeds the exact search's dot products, the exact search runs instead, so the cost is the
+smaller of the two. Measured recall and cost against the exact search: ``bench/twin_recall.py``
+and docs/performance.md.
 """
 
 from __future__ import annotations

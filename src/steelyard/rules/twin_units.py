@@ -41,19 +41,33 @@ parameters and its consumer columns) and the squared-norm saving
 ‖r_k‖² + ‖u_k‖² − (‖u_i + s·u_k‖² − ‖u_i‖²), computed on the folded rows.
 
 **Search.** Rows are normalised in float32 (their norms come from the shared one-pass
-statistics, in float64) and every candidate pair is confirmed in float64. Layers of up to
-``exact-limit`` (512) units compare blocks of rows with every later row by Gram products (BLAS),
-n²·d/2 multiply-adds. Wider layers use a sub-quadratic candidate search: random-hyperplane sign
-hashing (SimHash) over several tables sized so that a pair exactly at the threshold collides in
-some table with probability >= 0.9999 (16 bits × 11 tables at cosine 0.995: 176 projections
-per row, one BLAS product, n·d·176), then an exact cosine check of every candidate. Seeded, so
-deterministic. Each row keeps at most 64 partners, which bounds the work on a layer of copies
-(a constant initialisation) while keeping it one connected group; groups of more than 512
-members are checked for cancellation against their kept unit only. A layer whose twins could
-not be reported (no known consumer and ``report-unlinked`` false) is not searched at all.
-Measured against the exact search with planted twins on layers 512–4096 wide
-(``bench/twin_recall.py``): recall 1.0 over 11,520 pairs (no pair missed; a quarter of them lie
-within 0.00125 of the threshold); the rule documents recall >= 0.99 per layer.
+statistics, in float64); a float32 cosine more than 1e-4 from the threshold decides a pair, a
+closer one is recomputed in float64. Layers of up to ``exact-limit`` (512) units compare blocks
+of rows with every later row by Gram products (BLAS), n²·d/2 multiply-adds. Wider layers use a
+sub-quadratic candidate search: random-hyperplane sign hashing (SimHash, Charikar 2002) over
+several tables sized so that a pair exactly at the threshold collides in some table with
+probability >= 0.9999 (16 bits × 11 tables at cosine 0.995: 176 projections per row, one BLAS
+product, n·d·176). Candidates are confirmed in blocks, never one pair at a time across the
+layer: the pairs of buckets of up to 4 rows are deduplicated across tables and confirmed once;
+a larger bucket gets one Gram product per table. *Bucket cap:* a bucket of more than 128 rows
+(rows that share directions, as trained rows do, or near copies) gets a longer key for its
+rows only, 4 more bits at a time up to 24 more; a bucket still larger (its rows agree on 40
+random hyperplanes: a cluster of near copies) compares each run of 128 members with the 512
+members from its start (all pairs up to 512 members, a band beyond). Confirmation thus costs
+at most 4 · 128 dot products per row and table whatever the weights; when the planned dot
+products, times 3 (their measured cost against the exact search's large blocks), exceed the
+exact search's, the layer is searched exactly instead (the evidence then says ``exact``).
+Seeded, so deterministic. Each row keeps its first 64 later partners and its first earlier
+one, which bounds the work on a layer of copies (a constant initialisation) while keeping
+every twin in its group; groups of more than 512 members are checked for cancellation against
+their kept unit only. A layer whose twins could not be reported (no known consumer and
+``report-unlinked`` false) is not searched at all. Measured against the exact search with
+planted twins on layers 1024–8192 wide, fan-in 1024–4096, on independent, correlated
+(low-rank power-law plus heavy-tailed noise), near-duplicate (30 % near copies), outlier-column
+and clustered backgrounds (``bench/twin_recall.py``, figures in docs/performance.md): recall
+1.0 on every layer within the partner cap; the rule documents recall >= 0.99 per layer. In a
+bucket the longer keys cannot split and larger than 512 rows, twins further apart than the band
+may be missed (2 of 1,036 members of a planted cluster, measured).
 
 **Scope.** Embeddings are skipped unless ``include-embeddings`` is true. Recurrent gate layers are
 skipped (a hidden unit is the product of several gates and its own recurrence, so a twin row in

@@ -1,8 +1,9 @@
 """The layer changes of ``steelyard compare`` in the terminal, in two layouts, and the most
 changed units.
 
-Wide terminals (at least :data:`~steelyard.render.grid.COMPACT_BELOW` columns) get one column
-per measure, with a bar of the relative change; narrow ones keep the status, the change, the
+Wide terminals (at least :data:`~steelyard.render.grid.COMPACT_BELOW` columns, and room for
+every measure at its natural width beside the names) get one column per measure, with a bar of
+the relative change; narrow ones keep the status, the change, the
 cosine and the optional columns (stored types, largest single change, update rank) on the row
 and say below it what happened to units (died, revived, flattened). The fan-in norm medians
 are then left to the unit detail and ``--format json``. A layer matched under another name in
@@ -70,6 +71,12 @@ def status_label(diff: LayerDiff) -> str:
     return label
 
 
+def stored_cell(diff: LayerDiff) -> str:
+    """``f32 → Q4_K`` when the stored type changed, the one type when it did not."""
+    old, new = diff.stored_old or "—", diff.stored_new or "—"
+    return old if old == new else f"{old} → {new}"
+
+
 def renamed(diff: LayerDiff) -> bool:
     """OLD's layer has another name than NEW's."""
     return diff.old_name not in (None, diff.name)
@@ -114,12 +121,12 @@ def _columns(shape: _Shape, compact: bool, old_column: bool) -> list[Column]:
         columns.append(Column(""))  # the bar
     columns.append(Column("cosine", align="right"))
     if shape.stored:
-        columns += [Column("stored", wrap="words"), Column("max |Δ|", align="right")]
+        columns += [Column("stored"), Column("max |Δ|", align="right")]
     if shape.ranked:
         columns.append(Column("rank", align="right"))
     if not compact:
         columns += [
-            Column("fan-in norm median", wrap="words"),
+            Column("fan-in norm median"),
             Column("died", align="right"),
             Column("revived", align="right"),
         ]
@@ -151,10 +158,7 @@ def _grid(
             cells.append(bar(diff.relative_change, full))
         cells.append(measured(diff.cosine))
         if shape.stored:
-            cells += [
-                f"{diff.stored_old or '—'} → {diff.stored_new or '—'}",
-                measured(diff.max_abs_change),
-            ]
+            cells += [stored_cell(diff), measured(diff.max_abs_change)]
         if shape.ranked:
             cells.append(rank_cell(diff))
         below: list[tuple[str, str]] = []
@@ -181,6 +185,16 @@ def _fits(grid: Grid, width: int) -> bool:
     """Every column gets its natural width: no name shortened or wrapped."""
     natural = grid.widths(10**6)
     return sum(natural) + len(GAP) * (len(natural) - 1) <= width
+
+
+def _roomy(grid: Grid, width: int) -> bool:
+    """Only the name columns give up room: every measure keeps its natural width."""
+    natural, got = grid.widths(10**6), grid.widths(width)
+    return all(
+        fitted >= wanted
+        for column, fitted, wanted in zip(grid.columns, got, natural, strict=True)
+        if column.wrap != "name"
+    )
 
 
 def _legend(shape: _Shape, compact: bool) -> str:
@@ -216,10 +230,15 @@ def _legend(shape: _Shape, compact: bool) -> str:
 
 def layer_changes(layers: tuple[LayerDiff, ...], width: int, tails: dict[str, str]) -> list[Text]:
     """The layer-changes table, its legend and the count of rows left out."""
-    compact = width < COMPACT_BELOW
     shown = layers[:MAX_ROWS]
     shape = _Shape(shown)
+    compact = width < COMPACT_BELOW
     grid = _grid(shown, shape, compact, old_column=False, tails=tails)
+    if not compact and not _roomy(grid, width):
+        # The wide layout's many columns (stored types, rank, flattened...) do not fit beside
+        # the names: the compact one keeps every measure readable instead of wrapping them.
+        compact = True
+        grid = _grid(shown, shape, compact, old_column=False, tails=tails)
     if shape.renamed and not compact:
         wide = _grid(shown, shape, compact, old_column=True, tails=tails)
         grid = wide if _fits(wide, width) else grid

@@ -169,7 +169,13 @@ def write(folder: Path, shape: Shape, family: str) -> Path:
 
 
 def measure(
-    size: str, shape: Shape, families: list[str], rounds: int, root: Path, tiny: Path
+    size: str,
+    shape: Shape,
+    families: list[str],
+    rounds: int,
+    root: Path,
+    tiny: Path,
+    with_shares: bool = True,
 ) -> dict[str, Any]:
     """Every family of one size: written, measured in interleaved rounds, deleted."""
     paths: dict[str, Path] = {}
@@ -205,6 +211,7 @@ def measure(
                 "shares"
             ]
             for variant, suffix in (("audit", ""), ("searched", "-searched"))
+            if with_shares
         }
         summary["families"][family] = {"steps": steps, "shares": shares}
         shutil.rmtree(paths[family].parent, ignore_errors=True)
@@ -237,6 +244,8 @@ def print_summary(summary: dict[str, Any]) -> None:
         )
     print("\nper-rule seconds on one thread (audit | searched), top 4 of each:")
     for family, data in summary["families"].items():
+        if not data["shares"]:
+            continue
         parts = []
         for variant in ("audit", "searched"):
             shares = data["shares"][variant]
@@ -255,6 +264,7 @@ def main() -> None:
     parser.add_argument("--families", default=",".join(FAMILIES))
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--json", type=Path, help="also write every measurement here")
+    parser.add_argument("--no-shares", action="store_true", help="skip the per-rule times")
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -277,7 +287,7 @@ def main() -> None:
             if shutil.disk_usage(root).free < need:
                 print(f"{size}: skipped, needs {need / GIB:.1f} GiB free disk")
                 continue
-            summary = measure(size, shape, families, args.rounds, root, tiny)
+            summary = measure(size, shape, families, args.rounds, root, tiny, not args.no_shares)
             summary["machine"] = machine()
             print_summary(summary)
             summaries.append(summary)

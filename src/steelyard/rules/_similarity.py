@@ -41,8 +41,8 @@ square of the bucket sizes. Instead:
 
 Hence at most ``_BAND``·``BUCKET_CAP`` float32 dot products per row and table
 (:func:`confirmation_bound`, counted in :class:`Tally`), whatever the weights. The plan is
-counted before any product is computed; when it times ``BUCKET_DOT_COST`` (5: the measured
-time of a bucket confirmation's dot against one in the exact search's large blocks: 3.5–9)
+counted before any product is computed; when it times ``BUCKET_DOT_COST`` (3; the measured
+time of a bucket confirmation's dot against one in the exact search's large blocks: 2.2–9)
 exceeds the exact search's dot products, the exact search runs instead, so the cost is the
 smaller of the two. Measured recall and cost against the exact search: ``bench/twin_recall.py``
 and docs/performance.md.
@@ -77,10 +77,11 @@ _BAND = 4
 #: confirmed once each; larger buckets are confirmed by one Gram product per table.
 _PAIRED = 4
 #: Time of one dot product of the bucket confirmation (gathers included) relative to one in the
-#: exact search's large blocks: 3.5 to 9 measured on one thread, fan-in 4096 to 1024 (see
-#: docs/performance.md). The hashed search is used only when its planned dot products times
-#: this are fewer than the exact search's.
-BUCKET_DOT_COST = 5.0
+#: exact search's large blocks: 2.2 to 9 measured on one thread (lower for wide rows and large
+#: buckets; see docs/performance.md). The hashed search is used only when its planned dot
+#: products times this are fewer than the exact search's; 3 errs towards the hashed search,
+#: by at most 1.5 × on the measured 1024-row layers, never on wide ones where time matters.
+BUCKET_DOT_COST = 3.0
 #: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
 _SLACK = 1e-4

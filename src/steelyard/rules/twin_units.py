@@ -55,7 +55,7 @@ rows only, 4 more bits at a time up to 24 more; a bucket still larger (its rows 
 random hyperplanes: a cluster of near copies) compares each run of 128 members with the 512
 members from its start (all pairs up to 512 members, a band beyond). Confirmation thus costs
 at most 4 · 128 dot products per row and table whatever the weights; when the planned dot
-products, times 5 (their measured cost against the exact search's large blocks), exceed the
+products, times 3 (their measured cost against the exact search's large blocks), exceed the
 exact search's, the layer is searched exactly instead (the evidence then says ``exact``).
 Seeded, so deterministic. Each row keeps its first 64 later partners and its first earlier
 one, which bounds the work on a layer of copies (a constant initialisation) while keeping

@@ -59,12 +59,21 @@ def test_trainer_state_is_trusted_over_the_name(tmp_path: Path) -> None:
     paths = write_run(tmp_path, [10, 20, 30], folder="run-{step}", trainer_state=False)
     for path, step in zip(paths, [300, 100, 200], strict=True):
         (path.parent / "trainer_state.json").write_text(json.dumps({"global_step": step}))
-    placed, _ = arrange([tmp_path], Order.step)
+    placed, notes = arrange([tmp_path], Order.step)
     assert [p.position.value for p in placed] == [100, 200, 300]
     assert [p.path for p in placed] == [paths[1], paths[2], paths[0]]
     assert all(p.position.source == "trainer_state" for p in placed)
     # run-10 is no step name (no checkpoint/step/iter word), so nothing disagrees here
-    assert all(not p.notes for p in placed)
+    assert notes == []
+
+
+def test_a_trainer_state_shared_by_several_checkpoints_is_not_used(tmp_path: Path) -> None:
+    # Two checkpoint files in one folder with one trainer_state.json: it cannot say which
+    # is which, so the names decide and the report says why.
+    write_run(tmp_path, [5, 7], folder="run", file="weights_step_{step}.safetensors")
+    placed, notes = arrange([tmp_path / "run"], Order.step)
+    assert [(p.position.value, p.position.source) for p in placed] == [(5, "name"), (7, "name")]
+    assert len(notes) == 1 and "several checkpoints" in notes[0]
 
 
 def test_disagreeing_sources_are_noted(tmp_path: Path) -> None:

@@ -178,7 +178,6 @@ def build_timeline(
         findings=run.tracker.spans(),
         notes=(
             *settings.notes,
-            *(n for p in placed for n in p.notes),
             *dict.fromkeys(run.notes),
             *_grouped(run.audit_notes, run.entries),
         ),

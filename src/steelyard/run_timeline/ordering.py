@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import itertools
 import re
+from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from enum import Enum
@@ -167,8 +168,10 @@ def file_metadata(path: Path) -> Mapping[str, Any]:
     return {}
 
 
-def place(path: Path, root: Path | None) -> Placed:
-    """Where ``path`` sits in training, from the most trusted source that says."""
+def place(path: Path, root: Path | None, alone: bool = True) -> Placed:
+    """Where ``path`` sits in training, from the most trusted source that says. A
+    ``trainer_state.json`` is the checkpoint's only when the checkpoint is ``alone`` in its
+    folder: one beside several checkpoints of the run says nothing about which is which."""
     if not path.exists():
         raise LoadError(path, "does not exist")
     try:
@@ -177,6 +180,14 @@ def place(path: Path, root: Path | None) -> Placed:
         raise LoadError(path, f"cannot be read ({exc.strerror})") from None
     named = step_from_names(_names(path, root))
     state, problem = step_from_trainer_state(path)
+    if state is not None and not alone:
+        state, problem = (
+            None,
+            (
+                f"{path.parent / TRAINER_STATE}: not used, the folder holds several checkpoints "
+                "of the run"
+            ),
+        )
     notes = [problem] if problem else []
     chosen = state or stored or named
     for other in (stored, named):
@@ -239,10 +250,15 @@ def arrange(paths: Sequence[str | Path], order: Order) -> tuple[list[Placed], li
         first = run.errors[0]
         raise LoadError(first.path, first.reason)
     roots = {str(Path(p)): Path(p) for p in paths}
+    folders = Counter(target.parent.resolve() for target in run.targets)
     placed = []
     for target in run.targets:
         root = next((r for r in roots.values() if r.is_dir() and r in target.parents), None)
-        placed.append(place(target, root))
+        placed.append(place(target, root, alone=folders[target.parent.resolve()] == 1))
     result, notes = ordered(placed, order)
+    # The same shared-folder note comes once, not once per checkpoint.
+    for item in placed:
+        notes += [n for n in item.notes if n not in notes]
+    result = [Placed(p.path, p.position) for p in result]
     notes += [f"{s.path}: not read ({s.reason})" for s in run.skipped]
     return result, notes

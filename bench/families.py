@@ -124,8 +124,12 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
     if step in ("shares", "shares-searched"):
         # Imported first, or its import (about a second) is charged to the first rule.
         import ml_dtypes
+        from threadpoolctl import threadpool_limits
 
-        emit({"shares": rule_shares(str(path), _policy(step.replace("shares-", "")))})
+        # One BLAS thread, as each of the audit's workers has: two threads on a busy
+        # machine made small products several times slower.
+        with threadpool_limits(1):
+            emit({"shares": rule_shares(str(path), _policy(step.replace("shares-", "")))})
         return
     if step == "scan":
         import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
@@ -196,7 +200,7 @@ def measure(
     summary: dict[str, Any] = {"size": size, "parameters": shape.parameters, "families": {}}
     for family in families:
         steps: dict[str, Any] = {}
-        for step in STEPS:
+        for step in STEPS if rounds else ():  # --rounds 0: only the per-rule times
             results = runs[family][step]
             steps[step] = {
                 "seconds": statistics.median(r["seconds"] for r in results),
@@ -215,6 +219,7 @@ def measure(
         }
         summary["families"][family] = {"steps": steps, "shares": shares}
         shutil.rmtree(paths[family].parent, ignore_errors=True)
+    loads = loads or [os.getloadavg()[0]]
     summary["load_average_1min"] = [min(loads), statistics.median(loads), max(loads)]
     return summary
 
@@ -231,6 +236,8 @@ def print_summary(summary: dict[str, Any]) -> None:
     )
     print("| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: |")
     for family, data in summary["families"].items():
+        if not data["steps"]:
+            continue
         s = {k: v["seconds"] for k, v in data["steps"].items()}
         peaks = " / ".join(mib(data["steps"][k]["vm_hwm"]) for k in STEPS)
         target = 1.0 if family in TRAINED_LIKE else 1.3

@@ -23,7 +23,7 @@ from steelyard.progress_events import layer_done
 from steelyard.ranking import rank, rank_key
 from steelyard.report import CheckpointAudit, LayerHealth, Suppressed
 from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
-from steelyard.rules.base import RuleNotes
+from steelyard.rules.base import RuleMeasurements, RuleNotes
 from steelyard.rules.engine import apply_policy
 from steelyard.stats import STREAM_BYTES, LayerStats
 from steelyard.stats.spread import norm_spread
@@ -107,6 +107,7 @@ def run_rules(
     jobs: int = 1,
     notes: RuleNotes | None = None,
     stats: LayerStats | None = None,
+    measurements: RuleMeasurements | None = None,
 ) -> tuple[list[Finding], list[Suppressed], LayerStats]:
     """Every rule's findings that the policy keeps (policy severities applied), the findings
     the policy's ignore entries silenced, and the statistics. What rules could not do goes to
@@ -129,6 +130,7 @@ def run_rules(
         policy=policy,
         gradients=gradients,
         notes=notes if notes is not None else RuleNotes(),
+        measurements=measurements if measurements is not None else RuleMeasurements(),
     )
     specs = list((rules or registry()).values())
     settings: dict[str, RuleSettings[Any]] = {spec.name: RuleSettings(spec, policy) for spec in specs}
@@ -205,7 +207,7 @@ def run_rules(
 
 
 #: Layer-health fields every row has; the others are filled by rules (``RuleSpec.health``).
-_MEASURED = ("layer", "fan_in_norm", "norm_histogram", "norm_percentiles", "norm_outliers")
+_MEASURED = ("layer", "fan_in_norm", "norm_histogram", "norm_percentiles", "norm_outliers", "measured")
 _RULE_FILLED = tuple(f for f in fields(LayerHealth) if f.name not in _MEASURED)
 
 
@@ -215,6 +217,7 @@ def _health(
     findings: list[Finding],
     specs: list[RuleSpec],
     graded: bool,
+    measured: RuleMeasurements,
 ) -> LayerHealth:
     spread = norm_spread(stats.row_norms(layer))
     # A column no rule of this run fills is empty: None where the report allows it, else 0.
@@ -233,6 +236,7 @@ def _health(
         norm_histogram=spread.histogram,
         norm_percentiles=spread.percentiles,
         norm_outliers=spread.outliers,
+        measured=measured.of(layer.name),
         **columns,
     )
 
@@ -249,18 +253,19 @@ def audit_checkpoint(
     reading through ``stats`` when given (their checkpoint must be ``checkpoint``)."""
     files = checkpoint.files or (checkpoint.path,)
     notes = RuleNotes()
+    measured = RuleMeasurements()
     if jobs > 1:
         # Hashing is a sequential pass over every byte; with a spare thread it overlaps the
         # rules instead of adding to them (hashlib releases the GIL on large updates).
         with ThreadPoolExecutor(max_workers=1) as hasher:
             digest = hasher.submit(sha256_of, files)
             findings, suppressed, stats = run_rules(
-                checkpoint, policy, gradients, rules, jobs, notes, stats
+                checkpoint, policy, gradients, rules, jobs, notes, stats, measured
             )
             sha256 = digest.result()
     else:
         findings, suppressed, stats = run_rules(
-            checkpoint, policy, gradients, rules, 1, notes, stats
+            checkpoint, policy, gradients, rules, 1, notes, stats, measured
         )
         sha256 = sha256_of(files)
     ranked = rank(findings)
@@ -269,7 +274,7 @@ def audit_checkpoint(
     block["sha256"] = sha256
     block["files"] = list(files)
     health = tuple(
-        _health(layer, stats, findings, specs, gradients is not None)
+        _health(layer, stats, findings, specs, gradients is not None, measured)
         for layer in checkpoint.layers
     )
     return CheckpointAudit(

@@ -37,6 +37,10 @@ class LayerHealth:
     """Fan-in norms at the 5th, 25th, 50th, 75th and 95th percentiles (empty when unknown)."""
     norm_outliers: tuple[tuple[int, float], ...] = ()
     """(unit, norm) of units far outside the layer's spread of log norms, furthest first."""
+    measured: Mapping[str, Any] = field(default_factory=dict)
+    """What rules measured on this layer for the reports, flagged or not (``rule.quantity``
+    keys: per-head circuit norms, per-expert norms, the top singular value against its
+    random-matrix edge), see :class:`steelyard.rules.base.RuleMeasurements`."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import time
 from collections.abc import Callable
 from multiprocessing.connection import Connection
 from pathlib import Path
@@ -80,6 +81,44 @@ def _child(
     conn.close()
 
 
+#: A child that gets little of the processor (a busy CI machine) may take this many times its
+#: CPU allowance in wall-clock time before it is refused anyway (a child blocked without
+#: spinning, which the CPU clock alone would never stop).
+WALL_FACTOR = 4.0
+_TICK = 0.05
+
+
+def _cpu_seconds(pid: int | None) -> float | None:
+    """CPU time the process has used (user + system, from /proc on Linux), None elsewhere."""
+    if pid is None:
+        return None
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as stat:
+            fields = stat.read().rsplit(b")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    except (OSError, ValueError, IndexError):
+        return None
+
+
+def _answered(receiver: Connection, pid: int | None, timeout: float) -> bool:
+    """Wait for the child's answer. A stuck parser spins, so the allowance is ``timeout``
+    seconds of the child's CPU time where the system reports it (so a loaded machine does not
+    refuse a healthy file whose child waited for a processor), and ``WALL_FACTOR`` times
+    that in wall-clock time whatever happens; plain wall-clock ``timeout`` where CPU time is
+    not available."""
+    started = time.monotonic()
+    while True:
+        if receiver.poll(_TICK):
+            return True
+        waited = time.monotonic() - started
+        used = _cpu_seconds(pid)
+        if used is None:
+            if waited >= timeout:
+                return receiver.poll(0)
+        elif used >= timeout or waited >= WALL_FACTOR * timeout:
+            return receiver.poll(0)
+
+
 def isolated(
     source: Path,
     fn: Callable[..., T],
@@ -102,7 +141,7 @@ def isolated(
         return fn(*args)
     sender.close()
     try:
-        if not receiver.poll(timeout):
+        if not _answered(receiver, process.pid, timeout):
             raise LoadError(
                 source,
                 f"was not read within {timeout:g} s: the {reader} is stuck on a damaged or "

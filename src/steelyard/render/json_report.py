@@ -52,7 +52,10 @@ def audit_block(report: Report, audit: CheckpointAudit) -> dict[str, Any]:
                 f"p{q:g}": v for q, v in zip(PERCENTILES, health.norm_percentiles, strict=True)
             }
             spread["outliers"] = [{"unit": u, "norm": v} for u, v in health.norm_outliers]
-        layers.append({**health.layer, "fan_in_norm": spread})
+        entry = {**health.layer, "fan_in_norm": spread}
+        if health.measured:
+            entry["measured"] = dict(health.measured)
+        layers.append(entry)
     document: dict[str, Any] = {
         "schema": AUDIT_SCHEMA,
         "tool": {"name": "steelyard", "version": report.tool_version},

@@ -224,6 +224,29 @@ class RuleNotes:
         return tuple(out)
 
 
+class RuleMeasurements:
+    """Small per-layer measurements a rule publishes for the reports (a head's circuit norms,
+    a layer's top singular value against its random-matrix edge), whether or not they led to
+    a finding, so pictures and JSON can show every layer, not only the flagged ones.
+
+    Values must be JSON-ready and small (a few numbers per head or expert, never per weight).
+    Rules call :meth:`record` from any worker thread."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._by_layer: dict[str, dict[str, Any]] = {}
+
+    def record(self, layer: str, key: str, value: Any) -> None:
+        """Keep ``value`` under ``key`` (by convention ``rule.quantity``) for ``layer``."""
+        with self._lock:
+            self._by_layer.setdefault(layer, {})[key] = value
+
+    def of(self, layer: str) -> dict[str, Any]:
+        """What was recorded for ``layer`` (a copy; empty when nothing was)."""
+        with self._lock:
+            return dict(self._by_layer.get(layer, {}))
+
+
 @dataclass(frozen=True)
 class AuditContext:
     """Everything an audit rule may read: the graph, shared statistics, policy, gradient
@@ -234,6 +257,7 @@ class AuditContext:
     policy: Policy
     gradients: GradientSource | None
     notes: RuleNotes = field(default_factory=RuleNotes)
+    measurements: RuleMeasurements = field(default_factory=RuleMeasurements)
 
 
 def layer_finding(

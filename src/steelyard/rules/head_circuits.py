@@ -192,7 +192,14 @@ def _judge_block(
     out_layer = ctx.checkpoint.layer(block.output_layer)
     if out_layer is None or len(block.heads) < 2:
         return []
-    return list(_judge(block, out_layer, measure_block(block, parts), settings.for_layer(out_layer)))
+    heads = measure_block(block, parts)
+    # Every head's circuit sizes, flagged or not, for the reports' heads-by-layers map.
+    ctx.measurements.record(out_layer.name, "head-circuits.heads", {
+        "block": block.name,
+        "ov_norm": [float(f"{h.ov:.6g}") for h in heads],
+        "qk_norm": [float(f"{h.qk:.6g}") for h in heads],
+    })
+    return list(_judge(block, out_layer, heads, settings.for_layer(out_layer)))
 
 
 @dataclass(frozen=True)

@@ -209,6 +209,12 @@ def _judge_block(
     router_layer = ctx.checkpoint.layer(block.router) if block.router else None
     if router_layer is not None:
         router = np.asarray(ctx.stats.row_norms(router_layer), dtype=np.float64)
+    # Every expert's size, flagged or not, for the reports' experts-by-layers map.
+    ctx.measurements.record(where.name, "moe-experts.experts", {
+        "block": block.name,
+        "weight_norm": [float(f"{np.sqrt(sum(p.squared for _, p in parts)):.6g}") for parts in measured],
+        "router_norm": None if router is None else [float(f"{v:.6g}") for v in router],
+    })
     return list(_judge(block, where, measured, router, settings.for_layer(where)))
 
 

@@ -480,6 +480,10 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         ctx.stats.matrix(layer), seed, tolerance=0.05 * fluctuation, stop_above=edge + allowed * fluctuation
     )
     beyond = (top - edge) / fluctuation
+    ctx.measurements.record(layer.name, "untrained-layer.spectrum", {
+        "top_singular": float(f"{top:.6g}"), "mp_edge": float(f"{edge:.6g}"),
+        "allowed": float(f"{edge + allowed * fluctuation:.6g}"), "initializer": best.name,
+    })
     if beyond > allowed:
         return nothing  # a direction grew out of the bulk: trained
     p_value = min(1.0, len(found) * equivalence_p(distance, sample.size, margin))

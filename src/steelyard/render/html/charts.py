@@ -204,22 +204,36 @@ def findings_chart(audit: CheckpointAudit) -> Spec | None:
 
 
 def parts_chart(audit: CheckpointAudit) -> Spec | None:
-    """Attention heads and experts with findings, block by block (a transformer's map)."""
-    depth = {str(h.layer["name"]): i for i, h in enumerate(audit.layers)}
-    rows: list[dict[str, Any]] = []
+    """Heads × blocks and experts × blocks: every head's output-value circuit norm and every
+    expert's weight norm as a share of its block's median (what the rules measured, flagged
+    or not), with the heads and experts that have findings outlined."""
+    flagged: dict[tuple[str, str, int], str] = {}
     for finding in audit.findings:
-        evidence = finding.evidence
         for kind in ("head", "expert"):
-            index = evidence.get(kind)
-            if isinstance(index, int) and "block" in evidence:
+            index = finding.evidence.get(kind)
+            if isinstance(index, int) and "block" in finding.evidence:
+                flagged.setdefault((kind, str(finding.evidence["block"]), index), finding.message)
+    rows: list[dict[str, Any]] = []
+    blocks: list[str] = []
+    for health in audit.layers:
+        for key, kind, field in (("head-circuits.heads", "head", "ov_norm"), ("moe-experts.experts", "expert", "weight_norm")):
+            measured = health.measured.get(key)
+            if not isinstance(measured, dict) or not isinstance(measured.get(field), list):
+                continue
+            values = [float(v) for v in measured[field]]
+            block = str(measured.get("block", health.layer["name"]))
+            middle = sorted(values)[len(values) // 2] if values else 0.0
+            blocks.append(block)
+            for index, value in enumerate(values):
+                note = flagged.get((kind, block, index))
                 rows.append({
-                    "block": str(evidence["block"]), "kind": kind, "index": index,
-                    "severity": finding.severity.value, "rule": finding.rule,
-                    "message": finding.message, "depth": depth.get(finding.layer or "", -1),
+                    "kind": kind, "block": block, "index": index, "value": finite(value),
+                    "share": finite(value / middle) if middle > 0 else None,
+                    "finding": note or "", "flagged": note is not None,
                 })
     if not rows:
         return None
-    blocks = _in_order(str(r["block"]) for r in sorted(rows, key=lambda r: (r["depth"], r["block"])))
+    order = list(dict.fromkeys(blocks))
     spec: Spec = {
         "data": {"values": rows},
         "facet": {"column": {"field": "kind", "type": "nominal", "title": None,
@@ -227,14 +241,20 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
         "resolve": {"scale": {"x": "independent"}},
         "spec": {
             "width": 320,
-            "height": max(40, 18 * len(blocks)),
-            "mark": {"type": "rect", "stroke": "#ffffff"},
+            "height": max(40, 18 * len(order)),
+            "mark": {"type": "rect"},
             "encoding": {
                 "x": {"field": "index", "type": "ordinal", "title": "index in its block"},
-                "y": {"field": "block", "type": "ordinal", "sort": blocks, "title": None},
-                "color": severity_scale(),
+                "y": {"field": "block", "type": "ordinal", "sort": order, "title": None},
+                "color": {"field": "share", "type": "quantitative", "title": "× block median",
+                          "scale": {"type": "log", "scheme": "blues", "domainMid": 1}},
+                "stroke": {"condition": {"test": "datum.flagged", "value": SEVERITY_COLOURS["error"]},
+                           "value": None},
+                "strokeWidth": {"condition": {"test": "datum.flagged", "value": 2.5}, "value": 0},
                 "tooltip": [{"field": "block"}, {"field": "kind"}, {"field": "index"},
-                            {"field": "rule"}, {"field": "message"}],
+                            {"field": "value", "format": ".4g", "title": "norm"},
+                            {"field": "share", "format": ".3g", "title": "× block median"},
+                            {"field": "finding"}],
             },
         },
     }
@@ -244,22 +264,27 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
 
 
 def spectrum_chart(audit: CheckpointAudit) -> Spec | None:
-    """For each layer the untrained-layer rule measured and flagged: its top singular value
-    against the Marchenko–Pastur edge of a random matrix of its shape and scale, and the
-    Tracy–Widom allowance above it (values from the finding's evidence)."""
+    """Every layer the untrained-layer rule tested (its weights matched an initializer's
+    distribution): the top singular value against the Marchenko–Pastur edge of a random
+    matrix of its shape and scale and the Tracy–Widom allowance above it. A layer whose top
+    value stays inside is flagged as untrained; a trained layer grows directions beyond it."""
+    flagged = {f.layer for f in audit.findings if f.rule == "untrained-layer"}
     rows = []
-    for finding in audit.findings:
-        e = finding.evidence
-        numbers = [_number(e.get(k)) for k in ("top_singular", "mp_edge", "fluctuation", "edge_fluctuations")]
-        top, edge, wobble, allowed = numbers
-        if finding.layer is None or top is None or edge is None or wobble is None or allowed is None:
+    for health in audit.layers:
+        measured = health.measured.get("untrained-layer.spectrum")
+        if not isinstance(measured, dict):
             continue
-        rows.append({"layer": finding.layer, "top": top, "edge": edge, "allowed": edge + allowed * wobble,
-                     "initializer": e.get("initializer")})
+        top, edge, allowed = (_number(measured.get(k)) for k in ("top_singular", "mp_edge", "allowed"))
+        if top is None or edge is None or allowed is None:
+            continue
+        name = str(health.layer["name"])
+        rows.append({"layer": name, "top": top, "edge": edge, "allowed": allowed,
+                     "initializer": measured.get("initializer"),
+                     "verdict": "looks untrained" if name in flagged else "trained direction beyond the edge"})
     if not rows:
         return None
     y = {"field": "layer", "type": "nominal", "title": None, "sort": None}
-    tooltip = [{"field": "layer"}, {"field": "initializer"},
+    tooltip = [{"field": "layer"}, {"field": "verdict"}, {"field": "initializer"},
                {"field": "top", "format": ".4g", "title": "top singular value"},
                {"field": "edge", "format": ".4g", "title": "Marchenko–Pastur edge"},
                {"field": "allowed", "format": ".4g", "title": "edge + allowed fluctuations"}]
@@ -269,8 +294,11 @@ def spectrum_chart(audit: CheckpointAudit) -> Spec | None:
          "encoding": {"y": y, "x": {**x, "field": "edge"}, "x2": {"field": "allowed"}, "tooltip": tooltip}},
         {"mark": {"type": "tick", "color": "#28323c", "thickness": 2},
          "encoding": {"y": y, "x": {**x, "field": "edge"}, "tooltip": tooltip}},
-        {"mark": {"type": "point", "filled": True, "size": 90, "color": SEVERITY_COLOURS["warning"]},
-         "encoding": {"y": y, "x": {**x, "field": "top"}, "tooltip": tooltip}},
+        {"mark": {"type": "point", "filled": True, "size": 90},
+         "encoding": {"y": y, "x": {**x, "field": "top"}, "tooltip": tooltip,
+                      "color": {"field": "verdict", "type": "nominal", "title": None,
+                                "scale": {"domain": ["looks untrained", "trained direction beyond the edge"],
+                                          "range": [SEVERITY_COLOURS["warning"], SEVERITY_COLOURS["info"]]}}}},
     ]
     return base({"data": {"values": rows}, "layer": layers}, height=max(40, 26 * len(rows)))
 

@@ -245,9 +245,11 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
             "mark": {"type": "rect"},
             "encoding": {
                 "x": {"field": "index", "type": "ordinal", "title": "index in its block"},
-                "y": {"field": "block", "type": "ordinal", "sort": order, "title": None},
+                "y": {"field": "block", "type": "ordinal", "sort": order, "title": None,
+                      "axis": {"labelLimit": 320}},
                 "color": {"field": "share", "type": "quantitative", "title": "× block median",
-                          "scale": {"type": "log", "scheme": "blues", "domainMid": 1}},
+                          "scale": {"type": "log", "scheme": "blues", "domainMid": 1},
+                          "legend": {"format": ".2~g"}},
                 "stroke": {"condition": {"test": "datum.flagged", "value": SEVERITY_COLOURS["error"]},
                            "value": None},
                 "strokeWidth": {"condition": {"test": "datum.flagged", "value": 2.5}, "value": 0},

@@ -183,3 +183,22 @@ def test_a_large_layer_is_measured_on_a_seeded_row_sample() -> None:
     # Row-wise schemes: the sample's error estimates the whole matrix's.
     assert sampled.relative == pytest.approx(rtn_errors(w, 128)[1].relative, rel=0.04)
     assert sampled_rows(64, 128, 2**15) is None and sampled_rows(4096, 128, 0) is None
+
+
+@pytest.mark.parametrize("fixture", ["awq-g32", "bnb-nf4", "ct-fp8-block"])
+def test_packed_weights_get_no_prediction_but_the_error_already_paid(fixture: str) -> None:
+    """Weights decoded from a packed store (fixtures written by the quantization libraries
+    themselves, fixtures/gen_packed.py) are already quantized: the rule predicts nothing for
+    them and says so, naming their layers."""
+    import steelyard
+    from steelyard.policy import Policy
+
+    report = steelyard.audit(Path("fixtures/packed") / fixture / "model.safetensors", policy=Policy())
+    audit = report.audits[0]
+    packed = [h.layer["name"] for h in audit.layers if h.layer.get("stored_type")] or [
+        layer["name"] for layer in report.to_dict()["layers"] if layer.get("stored_type")
+    ]
+    assert packed
+    notes = [n for n in audit.notes if n.startswith("quantization-error: error already paid")]
+    assert notes and all(name in notes[0] for name in packed)
+    assert not any(f.rule == "quantization-error" and f.layer in packed for f in audit.findings)

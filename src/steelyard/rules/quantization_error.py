@@ -254,6 +254,8 @@ def quantized_kind(ctx: AuditContext, layer: Layer, matrix: np.ndarray | None) -
     """How ``layer``'s weights are already stored quantized, or None when they are float."""
     tensor = ctx.checkpoint.tensors.get(layer.weight)
     if tensor is not None:
+        if tensor.stored_type is not None:  # decoded from a packed or block-quantized store
+            return tensor.stored_type
         if tensor.role is TensorRole.QUANTIZED:
             return f"quantized tensor ({tensor.dtype})"
         if tensor.dtype.startswith(("i", "u")):

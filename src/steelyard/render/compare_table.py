@@ -31,22 +31,17 @@ from steelyard.render.compare_layers_view import (
 )
 from steelyard.render.findings_view import (
     MAX_ROWS,
-    STYLE,
-    FindingRow,
-    _folded_note,
-    _layer_cell,
-    _units,
     explanations,
+    findings_table,
     grouped,
     headline,
 )
 from steelyard.render.fitting import distinct_tails
-from steelyard.render.grid import COMPACT_BELOW, Cell, Column, Grid, indented, labelled
+from steelyard.render.grid import COMPACT_BELOW, indented, labelled
 from steelyard.render.text import count, percent, plural, to_text
 from steelyard.render.text import number as one_number
 from steelyard.report import CAUTION
 from steelyard.rules import registry
-from steelyard.rules.base import RuleSpec
 from steelyard.text_safety import shown_deep
 
 __all__ = [
@@ -175,50 +170,6 @@ def _header(report: CompareReport, width: int) -> list[Text]:
     return [line for label, value in pairs for line in labelled(label, value, width)]
 
 
-def _findings_table(
-    rows: list[FindingRow],
-    specs: Mapping[str, RuleSpec],
-    width: int,
-    tails: dict[str, str],
-    fresh: set[str],
-) -> list[Text]:
-    """The audit report's findings table, with a line saying which findings come from the
-    audit of NEW."""
-    compact = width < COMPACT_BELOW
-    columns = [
-        Column("#", align="right"),
-        Column("severity"),
-        Column("rule", wrap="name"),
-        Column("layer", wrap="name", floor=40, one_line=True),
-        Column("units", wrap="name", floor=14),
-    ]
-    if not compact:
-        columns.append(Column("finding", wrap="words", floor=40, cap=_PROSE))
-    grid = Grid(tuple(columns), tails=tails, indent_below=5)
-    explained: set[str] = set()
-    for index, row in enumerate(rows, 1):
-        finding = row.finding
-        cells: list[Cell | str] = [
-            str(index),
-            Cell.of(finding.severity.value, STYLE[finding.severity]),
-            finding.rule,
-            _layer_cell(row),
-            _units(finding, limit=4 if compact else 6),
-        ]
-        text = [(finding.message, ""), *_folded_note(row)]
-        if finding.id in fresh:
-            text.append((NEW_IN_AUDIT, "dim"))
-        if compact:
-            grid.add(*cells, below=text)
-            continue
-        if finding.rule not in explained and finding.rule in specs:
-            text.append((f"why: {specs[finding.rule].summary}", "dim"))
-            explained.add(finding.rule)
-        text.append((f"hint: {finding.hint}", "italic"))
-        grid.add(*cells, Cell(tuple(text)))
-    return grid.render(width)
-
-
 def _findings(report: CompareReport, width: int, tails: dict[str, str]) -> list[Text]:
     comparison = report.comparison
     gated: tuple[Finding, ...] = rank(comparison.gated)
@@ -229,7 +180,7 @@ def _findings(report: CompareReport, width: int, tails: dict[str, str]) -> list[
         shown = rows[:MAX_ROWS]
         parts.append(headline(rows, len(gated), shown))
         fresh = {f.id for f in comparison.audit_new}
-        parts += _findings_table(shown, specs, width, tails, fresh)
+        parts += findings_table(shown, specs, width, tails, (fresh, NEW_IN_AUDIT))
         if len(rows) > len(shown):
             hidden = sum(r.folded for r in rows[len(shown) :])
             parts += indented(

@@ -102,9 +102,14 @@ def headline(rows: list[FindingRow], total: int, shown: list[FindingRow]) -> Tex
 
 
 def findings_table(
-    rows: list[FindingRow], specs: Mapping[str, RuleSpec], width: int, tails: dict[str, str]
+    rows: list[FindingRow],
+    specs: Mapping[str, RuleSpec],
+    width: int,
+    tails: dict[str, str],
+    marked: tuple[set[str], str] | None = None,
 ) -> list[Text]:
-    """The findings as lines of at most ``width`` cells."""
+    """The findings as lines of at most ``width`` cells; ``marked`` is (finding ids, a line
+    said under each of them), as compare says which findings come from the audit of NEW."""
     compact = width < COMPACT_BELOW
     columns = [
         Column("#", align="right"),
@@ -127,6 +132,8 @@ def findings_table(
             _units(finding, limit=4 if compact else 6),
         ]
         text = [(finding.message, ""), *_folded_note(row)]
+        if marked is not None and finding.id in marked[0]:
+            text.append((marked[1], "dim"))
         if compact:
             grid.add(*cells, below=text)
             continue

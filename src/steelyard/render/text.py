@@ -10,6 +10,9 @@ from rich.console import Console, RenderableType
 from rich.table import Table
 
 from steelyard.coverage import Coverage
+from steelyard.numbers import count as count
+from steelyard.numbers import percent as percent
+from steelyard.numbers import plural as plural
 
 
 def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width: int = 120) -> str:
@@ -77,11 +80,6 @@ def human_bytes(value: int) -> str:
 # up to 100 % or down to 0 %.
 
 
-def count(value: int) -> str:
-    """An exact count: 1234567 → '1,234,567'."""
-    return f"{value:,}"
-
-
 def number(value: float) -> str:
     """A measured value to three significant figures: 0.457, 9.29, 12,300, 7.2e-05; '—' for
     NaN and '±inf' for infinities."""
@@ -95,25 +93,6 @@ def number(value: float) -> str:
     if abs(rounded) >= 1000:
         return f"{rounded:,.0f}"
     return f"{rounded:.3g}"
-
-
-def percent(share: float) -> str:
-    """A share in [0, 1] as a percentage to three significant figures."""
-    if share <= 0:
-        return "0%"
-    if share >= 1:
-        return "100%"
-    text = f"{100 * share:.3g}"
-    if float(text) >= 100:
-        return ">99.9%"
-    if float(text) < 0.001:
-        return "<0.001%"
-    return f"{text}%"
-
-
-def plural(value: int, word: str, many: str | None = None) -> str:
-    """'1 error', '2 errors', '1,024 units' (``many`` for irregular plurals)."""
-    return f"{value:,} {word if value == 1 else (many or word + 's')}"
 
 
 def coverage_line(coverage: Coverage) -> str:

@@ -11,6 +11,7 @@ from rich.table import Table
 
 from steelyard.coverage import Coverage
 from steelyard.numbers import count as count
+from steelyard.numbers import measured
 from steelyard.numbers import percent as percent
 from steelyard.numbers import plural as plural
 
@@ -81,18 +82,9 @@ def human_bytes(value: int) -> str:
 
 
 def number(value: float) -> str:
-    """A measured value to three significant figures: 0.457, 9.29, 12,300, 7.2e-05; '—' for
-    NaN and '±inf' for infinities."""
-    if math.isnan(value):
-        return "—"
-    if math.isinf(value):
-        return "inf" if value > 0 else "-inf"
-    if value == 0:
-        return "0"
-    rounded = float(f"{value:.3g}")  # 999.6 → 1000.0 before the magnitude is read
-    if abs(rounded) >= 1000:
-        return f"{rounded:,.0f}"
-    return f"{rounded:.3g}"
+    """A measured value to three significant figures (:func:`steelyard.numbers.measured`),
+    but '—' for NaN, which in a report's table means "not measured"."""
+    return "—" if math.isnan(value) else measured(value)
 
 
 def coverage_line(coverage: Coverage) -> str:

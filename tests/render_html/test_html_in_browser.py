@@ -70,6 +70,25 @@ class Opened:
         self.context.close()
 
 
+#: Where the screenshots for review go (CI keeps the folder as an artifact).
+ARTIFACTS = Path(os.environ.get("STEELYARD_ARTIFACTS", Path(__file__).resolve().parents[2] / ".artifacts" / "html"))
+
+
+def screenshots(opened: Opened, name: str) -> list[Path]:
+    """Full-page screenshots at 1280 and 390 pixels wide (a laptop and a phone), for review;
+    the narrow page must not scroll sideways beyond its wide tables."""
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    shots = []
+    for width in (1280, 390):
+        opened.page.set_viewport_size({"width": width, "height": 900})
+        opened.page.wait_for_timeout(300)  # charts re-fit their container
+        target = ARTIFACTS / f"{name}-{width}.png"
+        opened.page.screenshot(path=str(target), full_page=True)
+        assert target.stat().st_size > 10_000
+        shots.append(target)
+    return shots
+
+
 def _write(tmp_path: Path, name: str, text: str) -> Path:
     target = tmp_path / name
     target.write_text(text, encoding="utf-8")
@@ -88,6 +107,7 @@ def test_audit_page_draws_every_chart_offline(browser: Any, tmp_path: Path) -> N
         boxes = page.eval_on_selector("[data-chart$='spread']", "n => n.querySelectorAll('g.boxes_marks path').length")
         assert boxes == 30
         assert opened.fetched == [] and opened.errors == []
+        screenshots(opened, "audit-deep-mlp")
     finally:
         opened.close()
 
@@ -181,6 +201,7 @@ def test_compare_page_draws_offline(browser: Any, tmp_path: Path) -> None:
         assert len(charts) == 3 and all(c.get_attribute("data-drawn") == "yes" for c in charts)
         assert opened.fetched == [] and opened.errors == []
         assert page.locator("tr#layer-0").inner_text().startswith("0")
+        screenshots(opened, "compare")
     finally:
         opened.close()
 

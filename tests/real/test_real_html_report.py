@@ -8,8 +8,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-import pytest
-
 import steelyard
 from tests.render_html.test_html_in_browser import Opened, browser, screenshots  # noqa: F401
 

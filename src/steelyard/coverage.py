@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from steelyard.graph import Checkpoint
+from steelyard.numbers import count, percent, plural
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,24 +69,10 @@ def coverage_document(coverage: Coverage) -> dict[str, Any]:
 
 
 def describe(coverage: Coverage) -> str:
-    """One line for every report: what the layer rules saw."""
+    """One line for every report: what the layer rules saw, in the reports' one number rule
+    (:mod:`steelyard.numbers`: a partial share never rounds to 0 % or 100 %)."""
     if coverage.parameters == 0:
         return "no parameters: nothing was checked"
     missing = len(coverage.uncovered)
-    rest = (
-        "every counted tensor is in a layer"
-        if not missing
-        else f"{missing:,} {'tensor' if missing == 1 else 'tensors'} in no layer"
-    )
-    return (
-        f"layer rules saw {_percent(coverage.share)} of {coverage.parameters:,} parameters; {rest}"
-    )
-
-
-def _percent(share: float) -> str:
-    # Never round a partial share up to a full 100 %, nor a non-zero one down to 0 %.
-    if 0.0 < share < 0.001:
-        return "<0.1%"
-    if 0.999 < share < 1.0:
-        return ">99.9%"
-    return f"{share:.1%}"
+    rest = "every counted tensor is in a layer" if not missing else f"{plural(missing, 'tensor')} in no layer"
+    return f"layer rules saw {percent(coverage.share)} of {count(coverage.parameters)} parameters; {rest}"

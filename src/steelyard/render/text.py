@@ -9,7 +9,7 @@ from collections.abc import Container, Iterable
 from rich.console import Console, RenderableType
 from rich.table import Table
 
-from steelyard.coverage import Coverage
+from steelyard.coverage import Coverage, describe
 from steelyard.numbers import count as count
 from steelyard.numbers import measured
 from steelyard.numbers import percent as percent
@@ -88,13 +88,6 @@ def number(value: float) -> str:
 
 
 def coverage_line(coverage: Coverage) -> str:
-    """What the layer rules saw, in the report's number style."""
-    if coverage.parameters == 0:
-        return "no parameters: nothing was checked"
-    missing = len(coverage.uncovered)
-    rest = (
-        "every counted tensor is in a layer"
-        if not missing
-        else f"{plural(missing, 'tensor')} in no layer"
-    )
-    return f"layer rules saw {percent(coverage.share)} of {count(coverage.parameters)} parameters; {rest}"
+    """What the layer rules saw, as every report says it (:func:`steelyard.coverage.describe`)."""
+    return describe(coverage)
+

@@ -25,9 +25,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from steelyard.comparison.diff import relative
-from steelyard.graph import Checkpoint, Layer, RowSlice
+from steelyard.graph import Checkpoint, Layer
 from steelyard.run_timeline.result import Drift
-from steelyard.stats.numerics import FLOAT_NAMES
+from steelyard.stats.passes import row_run
 from steelyard.stats.reading import locked
 from steelyard.streaming import convert_into, row_blocks
 
@@ -62,18 +62,9 @@ class _Sums:
 
 def _streamable(checkpoint: Checkpoint, layer: Layer) -> tuple[int, int] | None:
     """(first stored row, stored elements per canonical row) when the canonical matrix is a
-    contiguous run of the weight tensor's rows (the rule :mod:`steelyard.stats.passes`
-    streams by)."""
-    tensor = checkpoint.tensors.get(layer.weight)
-    orient = layer.orient
-    if tensor is None or tensor.read_span is None or not isinstance(orient, RowSlice):
-        return None
-    if not tensor.shape or tensor.dtype not in FLOAT_NAMES:
-        return None
-    stop = tensor.shape[0] if orient.stop is None else min(orient.stop, tensor.shape[0])
-    if stop - orient.start != layer.units or math.prod(tensor.shape[1:]) != layer.fan_in:
-        return None
-    return orient.start, layer.fan_in
+    contiguous run of the weight tensor's rows (the rule the statistics stream by)."""
+    run = row_run(checkpoint, layer)
+    return None if run is None else (run[1], layer.fan_in)
 
 
 class RowReader:

@@ -27,6 +27,21 @@ from steelyard.streaming import convert_into, row_blocks
 Block = tuple[int, int, np.ndarray]
 
 
+def row_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int] | None:
+    """(weight tensor, first stored row) when ``layer``'s canonical matrix is a contiguous run
+    of its float weight tensor's rows, which can then be streamed by row spans."""
+    tensor = checkpoint.tensors.get(layer.weight)
+    orient = layer.orient
+    if tensor is None or tensor.read_span is None or not isinstance(orient, RowSlice):
+        return None
+    if not tensor.shape or tensor.dtype not in FLOAT_NAMES:
+        return None
+    stop = tensor.shape[0] if orient.stop is None else min(orient.stop, tensor.shape[0])
+    if stop - orient.start != layer.units or math.prod(tensor.shape[1:]) != layer.fan_in:
+        return None
+    return tensor, orient.start
+
+
 @dataclass(frozen=True, slots=True)
 class Summary:
     """What one pass over a layer's weights leaves behind."""
@@ -59,17 +74,7 @@ class WeightPasses:
 
     def streamable(self, layer: Layer) -> tuple[Tensor, int] | None:
         """(weight tensor, first stored row) when the canonical matrix is a run of its rows."""
-        tensor = self.checkpoint.tensors.get(layer.weight)
-        orient = layer.orient
-        if tensor is None or tensor.read_span is None or not isinstance(orient, RowSlice):
-            return None
-        if not tensor.shape or tensor.dtype not in FLOAT_NAMES:
-            return None
-        stop = tensor.shape[0] if orient.stop is None else min(orient.stop, tensor.shape[0])
-        row = math.prod(tensor.shape[1:])
-        if stop - orient.start != layer.units or row != layer.fan_in:
-            return None
-        return tensor, orient.start
+        return row_run(self.checkpoint, layer)
 
     def summary(self, layer: Layer) -> Summary:
         """The layer's pass summary, running the pass the first time."""

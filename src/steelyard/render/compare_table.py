@@ -31,13 +31,10 @@ from steelyard.render.compare_layers_view import (
 )
 from steelyard.render.findings_view import (
     MAX_ROWS,
-    explanations,
-    findings_table,
-    grouped,
-    headline,
+    findings_section,
 )
 from steelyard.render.fitting import distinct_tails
-from steelyard.render.grid import COMPACT_BELOW, indented, labelled
+from steelyard.render.grid import indented, labelled
 from steelyard.render.text import count, percent, plural, to_text
 from steelyard.render.text import number as one_number
 from steelyard.report import CAUTION
@@ -176,23 +173,8 @@ def _findings(report: CompareReport, width: int, tails: dict[str, str]) -> list[
     parts: list[Text] = []
     if gated:
         specs = registry(None)
-        rows = grouped(gated)
-        shown = rows[:MAX_ROWS]
-        parts.append(headline(rows, len(gated), shown))
         fresh = {f.id for f in comparison.audit_new}
-        parts += findings_table(shown, specs, width, tails, (fresh, NEW_IN_AUDIT))
-        if len(rows) > len(shown):
-            hidden = sum(r.folded for r in rows[len(shown) :])
-            parts += indented(
-                f"… and {plural(hidden, 'more finding')} in "
-                f"{plural(len(rows) - len(shown), 'row')} not shown (--format json lists them "
-                "all)",
-                width,
-                "dim",
-                indent=0,
-            )
-        if width < COMPACT_BELOW:
-            parts += [Text(""), *explanations(shown, specs, width)]
+        parts += findings_section(gated, specs, width, tails, (fresh, NEW_IN_AUDIT))
     else:
         parts.append(Text("no findings", style="green"))
     present = len(comparison.audit_present)

@@ -175,3 +175,29 @@ def _rows(numbers: list[int]) -> str:
     """``rows 3-4, 8-40``: row numbers as ranges."""
     spans = compact_units(tuple(numbers), limit=len(numbers)).split(",")
     return ("row " if len(numbers) == 1 else "rows ") + ", ".join(spans)
+
+
+def findings_section(
+    findings: tuple[Finding, ...] | list[Finding],
+    specs: Mapping[str, RuleSpec],
+    width: int,
+    tails: dict[str, str],
+    marked: tuple[set[str], str] | None = None,
+) -> list[Text]:
+    """The headline, the findings table (at most :data:`MAX_ROWS` rows, the rest counted) and,
+    on a narrow terminal, each rule's why and hints below it: what audit and compare show."""
+    rows = grouped(tuple(findings))
+    shown = rows[:MAX_ROWS]
+    parts = [headline(rows, len(findings), shown), *findings_table(shown, specs, width, tails, marked)]
+    if len(rows) > len(shown):
+        hidden = sum(r.folded for r in rows[len(shown) :])
+        parts += indented(
+            f"… and {plural(hidden, 'more finding')} in {plural(len(rows) - len(shown), 'row')} "
+            "not shown (--format json lists them all)",
+            width,
+            "dim",
+            indent=0,
+        )
+    if width < COMPACT_BELOW:
+        parts += [Text(""), *explanations(shown, specs, width)]
+    return parts

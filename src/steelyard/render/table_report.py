@@ -15,11 +15,7 @@ from rich.console import Group, RenderableType
 from rich.text import Text
 
 from steelyard.render.findings_view import (
-    MAX_ROWS,
-    explanations,
-    findings_table,
-    grouped,
-    headline,
+    findings_section,
 )
 from steelyard.render.fitting import distinct_tails
 from steelyard.render.grid import COMPACT_BELOW, Cell, Column, Grid, indented, labelled
@@ -177,21 +173,7 @@ def _audit(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     tails = distinct_tails(names)
     specs = registry(None)
     if audit.findings:
-        rows = grouped(audit.findings)
-        shown = rows[:MAX_ROWS]
-        parts.append(headline(rows, len(audit.findings), shown))
-        parts += findings_table(shown, specs, width, tails)
-        if len(rows) > len(shown):
-            hidden = sum(r.folded for r in rows[len(shown) :])
-            parts += indented(
-                f"… and {plural(hidden, 'more finding')} in {plural(len(rows) - len(shown), 'row')} "
-                "not shown (--format json lists them all)",
-                width,
-                "dim",
-                indent=0,
-            )
-        if width < COMPACT_BELOW:
-            parts += [Text(""), *explanations(shown, specs, width)]
+        parts += findings_section(audit.findings, specs, width, tails)
     else:
         parts.append(Text("no findings", style="green"))
     if audit.baselined:

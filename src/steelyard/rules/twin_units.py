@@ -461,7 +461,9 @@ def _finding(
         )
         hint = (
             f"merge: drop unit{'s' if len(others) > 1 else ''} {', '.join(map(str, others[:_LIST]))} and "
-            f"add s·u_k to unit {group.keep}'s consumer columns (exact for exact twins); "
+            f"add each dropped unit's consumer weights, scaled by its ratio to unit {group.keep} "
+            f"(the merge's scale in the evidence), to unit {group.keep}'s consumer weights "
+            "(exact for exact twins); "
             "retrain with weight decay if the layer is still training"
         )
     return layer_finding(

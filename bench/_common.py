@@ -424,8 +424,8 @@ def mib(value: float) -> str:
 def rule_shares(path: str, policy: Any = None) -> dict[str, float]:
     """Seconds per rule on one thread under ``policy`` (default: every rule at its defaults):
     hooks timed per layer, data loads charged to the first rule that asks for them, as in a
-    real run; then the SHA-256 of the files. (``bench/audit_speed.py``'s measurement, with a
-    policy.)"""
+    real run; then the SHA-256 of the files. ``bench/audit_speed.py`` and
+    ``bench/families.py`` both report it."""
     from steelyard.api import load
     from steelyard.checkpoint_audit import sha256_of
     from steelyard.policy import Policy

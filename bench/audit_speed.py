@@ -40,6 +40,7 @@ from _common import (
     emit,
     machine,
     mib,
+    rule_shares,
     run_child,
     write_checkpoint,
 )
@@ -75,42 +76,6 @@ def child(mode: str, path: str, jobs: str) -> None:
         emit({"seconds": seconds, "findings": len(report.audits[0].findings), **probe.report()})
     elif mode == "shares":
         emit(rule_shares(path))
-
-
-def rule_shares(path: str) -> dict[str, float]:
-    """Seconds per rule on one thread (hooks timed per layer, data loads charged to the
-    first rule that asks for them, as in a real run)."""
-    from steelyard.api import load
-    from steelyard.policy import Policy
-    from steelyard.rules import AuditContext, RuleSettings, registry
-    from steelyard.stats import LayerStats
-
-    checkpoint = load(path)
-    stats = LayerStats(checkpoint)
-    ctx = AuditContext(checkpoint=checkpoint, stats=stats, policy=Policy(), gradients=None)
-    specs = list(registry().values())
-    spent = {spec.name: 0.0 for spec in specs}
-    settings = {s.name: RuleSettings(s, ctx.policy) for s in specs}
-    for layer in checkpoint.layers:
-        for spec in specs:
-            if spec.per_layer is not None:
-                start = time.perf_counter()
-                list(spec.per_layer(ctx, settings[spec.name], layer))
-                spent[spec.name] += time.perf_counter() - start
-        stats.release(layer)
-    for spec in specs:
-        start = time.perf_counter()
-        if spec.whole is not None:
-            list(spec.whole(ctx, settings[spec.name]))
-        elif spec.finish is not None:
-            list(spec.finish(ctx, settings[spec.name]))
-        spent[spec.name] += time.perf_counter() - start
-    from steelyard.checkpoint_audit import sha256_of
-
-    start = time.perf_counter()
-    sha256_of(checkpoint.files or (checkpoint.path,))
-    spent["(sha256 of the files)"] = time.perf_counter() - start
-    return spent
 
 
 def main() -> None:

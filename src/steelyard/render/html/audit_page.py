@@ -13,7 +13,7 @@ from steelyard.render.html.charts import (
     spectrum_chart,
 )
 from steelyard.render.html.order import along_model
-from steelyard.render.html.page import gate_text, render_page, verdict
+from steelyard.render.html.page import masthead, render_page, verdict
 from steelyard.report import CheckpointAudit, Report
 
 
@@ -27,11 +27,7 @@ def render_audit_html(report: Report) -> str:
         "audit.html.j2",
         specs,
         title=title,
-        version=report.tool_version,
-        created=report.created,
-        policy_source=report.policy_source,
-        gate_text=gate_text(report.fail_on),
-        verdict=verdict(report.gate is None and not report.errors, not report.passed),
+        **masthead(report, gate_off=report.gate is None and not report.errors),
         checkpoints=checkpoints,
         errors=report.errors,
         skipped=report.skipped,

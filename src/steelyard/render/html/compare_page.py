@@ -8,7 +8,7 @@ from steelyard.comparison.report import CompareReport
 from steelyard.ranking import rank
 from steelyard.render.compare_table import rank_cell
 from steelyard.render.html.compare_charts import change_charts, in_depth_order
-from steelyard.render.html.page import gate_text, number, render_page, verdict
+from steelyard.render.html.page import masthead, number, render_page
 
 _CAPTIONS = (
     "Relative change ‖NEW − OLD‖ / ‖OLD‖ of each layer's weights, in checkpoint order (log "
@@ -56,11 +56,7 @@ def render_compare_html(report: CompareReport) -> str:
     return render_page(
         "compare.html.j2",
         specs,
-        version=report.tool_version,
-        created=report.created,
-        policy_source=report.policy_source,
-        gate_text=gate_text(report.fail_on),
-        verdict=verdict(report.gate is None, not report.passed),
+        **masthead(report, gate_off=report.gate is None),
         old=_side(comparison.old),
         new=_side(comparison.new),
         coverage=covered,

@@ -11,7 +11,7 @@ import json
 import math
 from functools import lru_cache
 from importlib import resources
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Protocol
 
 from markupsafe import Markup, escape
 
@@ -120,6 +120,33 @@ def render_page(template: str, specs: list[tuple[str, dict[str, Any]]], **contex
         specs=specs,
         **context,
     )
+
+
+class _Run(Protocol):
+    """What every report (audit, comparison, timeline) says about its run."""
+
+    @property
+    def tool_version(self) -> str: ...
+    @property
+    def created(self) -> str: ...
+    @property
+    def policy_source(self) -> str: ...
+    @property
+    def fail_on(self) -> str: ...
+    @property
+    def passed(self) -> bool: ...
+
+
+def masthead(run: _Run, gate_off: bool) -> dict[str, Any]:
+    """The page header's values: version, time, policy, the gate in words and the verdict
+    badge (``report only`` when ``gate_off``, else pass or fail)."""
+    return {
+        "version": run.tool_version,
+        "created": run.created,
+        "policy_source": run.policy_source,
+        "gate_text": gate_text(run.fail_on),
+        "verdict": verdict(gate_off, not run.passed),
+    }
 
 
 def verdict(gate_off: bool, failed: bool) -> dict[str, str]:

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from steelyard.render.html.page import gate_text, render_page, verdict
+from steelyard.render.html.page import masthead, render_page
 from steelyard.render.html.timeline_charts import measure_charts, positions, presence_chart
 from steelyard.run_timeline.result import Timeline
 
@@ -51,11 +51,7 @@ def render_timeline_html(timeline: Timeline) -> str:
     return render_page(
         "timeline.html.j2",
         specs,
-        version=timeline.tool_version,
-        created=timeline.created,
-        policy_source=timeline.policy_source,
-        gate_text=gate_text(timeline.fail_on),
-        verdict=verdict(timeline.gate is None, not timeline.passed),
+        **masthead(timeline, gate_off=timeline.gate is None),
         checkpoints=[
             {"label": label(c.index), "path": c.path, "source": c.position.source or "order given",
              "findings": c.findings, "sha256": c.sha256}

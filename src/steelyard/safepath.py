@@ -34,23 +34,21 @@ _CLOEXEC = getattr(os, "O_CLOEXEC", 0)
 _BINARY = getattr(os, "O_BINARY", 0)
 
 
+#: What each kind of file is called in messages, in the order the kinds are tried.
+_KINDS: tuple[tuple[Callable[[int], bool], str], ...] = (
+    (stat.S_ISREG, "a regular file"),
+    (stat.S_ISDIR, "a folder"),
+    (stat.S_ISLNK, "a symbolic link"),
+    (stat.S_ISFIFO, "a FIFO"),
+    (stat.S_ISSOCK, "a socket"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+)
+
+
 def kind_of(mode: int) -> str:
     """What a file of ``st_mode`` ``mode`` is, for messages ("a FIFO", "a folder", …)."""
-    if stat.S_ISREG(mode):
-        return "a regular file"
-    if stat.S_ISDIR(mode):
-        return "a folder"
-    if stat.S_ISLNK(mode):
-        return "a symbolic link"
-    if stat.S_ISFIFO(mode):
-        return "a FIFO"
-    if stat.S_ISSOCK(mode):
-        return "a socket"
-    if stat.S_ISCHR(mode):
-        return "a character device"
-    if stat.S_ISBLK(mode):
-        return "a block device"
-    return "not a regular file"
+    return next((name for is_kind, name in _KINDS if is_kind(mode)), "not a regular file")
 
 
 def _within(path: Path, base: Path) -> bool:

@@ -9,13 +9,13 @@ registry only. Markdown has its own short body: verdict, layer changes, findings
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 
 from steelyard.comparison.report import CompareReport, LayerDiff, Status
 from steelyard.ranking import rank
 from steelyard.render.compare_table import coverage_line, number, overview, rank_cell
 from steelyard.render.json_report import _clean
-from steelyard.render.markdown import TOP, _cell, _rows
+from steelyard.render.markdown import _cell, _rows, top_then_rest
 from steelyard.report import CAUTION, CheckpointAudit, LayerHealth, Report
 from steelyard.rules import Command, registry
 from steelyard.text_safety import shown_deep
@@ -106,7 +106,7 @@ def render_compare_junit(report: CompareReport) -> str:
 
 
 # ---- Markdown -----------------------------------------------------------------------------
-def _layer_rows(layers: tuple[LayerDiff, ...] | list[LayerDiff]) -> list[str]:
+def _layer_rows(layers: Sequence[LayerDiff]) -> list[str]:
     stored = any(d.stored_old != d.stored_new for d in layers)
     ranked = any(d.update_rank is not None or d.update_rank_above for d in layers)
     head = ["layer", "status", "relative change", "cosine"]
@@ -165,21 +165,12 @@ def render_compare_markdown(report: CompareReport) -> str:
         if d.status is not Status.SAME or d.permuted or d.precision_only
     ]
     if moved:
-        lines += _layer_rows(moved[:TOP])
-        if len(moved) > TOP:
-            lines += ["", f"<details><summary>{len(moved) - TOP} more layers</summary>", ""]
-            lines += _layer_rows(moved[TOP:])
-            lines += ["", "</details>"]
-        lines.append("")
+        lines += [*top_then_rest(moved, _layer_rows, "layers"), ""]
     else:
         lines += ["Every layer is identical.", ""]
     gated = rank(comparison.gated)
     if gated:
-        lines += _rows(gated[:TOP])
-        if len(gated) > TOP:
-            lines += ["", f"<details><summary>{len(gated) - TOP} more findings</summary>", ""]
-            lines += _rows(gated[TOP:])
-            lines += ["", "</details>"]
+        lines += top_then_rest(gated, _rows, "findings")
     else:
         lines.append("No findings.")
     if comparison.notes:

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
+from typing import TypeVar
+
 from steelyard.coverage import describe
 from steelyard.findings import Finding, units_cell
 from steelyard.report import CAUTION, CheckpointAudit, Report
@@ -10,18 +13,37 @@ from steelyard.text_safety import shown_deep
 #: Findings shown in the main table; the rest go in a collapsible block.
 TOP = 10
 
+_Item = TypeVar("_Item")
+
 
 def _cell(text: str) -> str:
     return text.replace("|", "\\|").replace("\n", " ")
 
 
-def _rows(findings: tuple[Finding, ...] | list[Finding]) -> list[str]:
+def _rows(findings: Sequence[Finding]) -> list[str]:
     lines = ["| severity | rule | layer | units | finding |", "| --- | --- | --- | --- | --- |"]
     for finding in findings:
         lines.append(
             f"| {finding.severity.value} | `{finding.rule}` | `{_cell(finding.layer or '—')}` | "
             f"{_cell(units_cell(finding, limit=6))} | {_cell(finding.message)} |"
         )
+    return lines
+
+
+def collapsed(summary: str, body: list[str]) -> list[str]:
+    """``body`` inside a block that shows only ``summary`` until opened (GitHub renders
+    ``<details>``; the blank lines let the Markdown inside it render)."""
+    return [f"<details><summary>{summary}</summary>", "", *body, "", "</details>"]
+
+
+def top_then_rest(
+    items: Sequence[_Item], rows: Callable[[Sequence[_Item]], list[str]], what: str
+) -> list[str]:
+    """The table ``rows`` makes of the first :data:`TOP` ``items``, and the rest, if any,
+    in a collapsed table after it ("12 more ``what``")."""
+    lines = rows(items[:TOP])
+    if len(items) > TOP:
+        lines += ["", *collapsed(f"{len(items) - TOP} more {what}", rows(items[TOP:]))]
     return lines
 
 
@@ -46,28 +68,21 @@ def _audit(report: Report, audit: CheckpointAudit) -> list[str]:
     if audit.baselined:
         lines += [f"{len(audit.baselined)} findings matched the baseline.", ""]
     if audit.findings:
-        lines += _rows(audit.findings[:TOP])
-        rest = audit.findings[TOP:]
-        if rest:
-            lines += ["", f"<details><summary>{len(rest)} more findings</summary>", ""]
-            lines += _rows(rest)
-            lines += ["", "</details>"]
+        lines += top_then_rest(audit.findings, _rows, "findings")
     else:
         lines.append("No findings.")
     lines.append("")
     if audit.suppressed:
-        lines += [f"<details><summary>{len(audit.suppressed)} findings ignored by the policy</summary>", ""]
-        lines += [
+        ignored = [
             f"- `{s.finding.rule}` on `{_cell(s.finding.layer or '—')}`: {_cell(s.finding.message)} "
             f"(ignored for layers `{_cell(s.layers)}`: {_cell(s.reason)})"
             for s in audit.suppressed
         ]
-        lines += ["", "</details>", ""]
+        lines += [*collapsed(f"{len(audit.suppressed)} findings ignored by the policy", ignored), ""]
     uncovered = audit.coverage.uncovered if audit.coverage is not None else ()
     if uncovered:
-        lines += [f"<details><summary>{len(uncovered)} tensors in no layer</summary>", ""]
-        lines += [f"- `{_cell(u.name)}` {list(u.shape)}, {u.parameters:,} parameters" for u in uncovered]
-        lines += ["", "</details>", ""]
+        tensors = [f"- `{_cell(u.name)}` {list(u.shape)}, {u.parameters:,} parameters" for u in uncovered]
+        lines += [*collapsed(f"{len(uncovered)} tensors in no layer", tensors), ""]
     if audit.notes:
         lines += [f"- note: {_cell(note)}" for note in audit.notes] + [""]
     return lines
@@ -79,9 +94,8 @@ def _inputs(report: Report) -> list[str]:
         lines += [f"### ❌ {len(report.errors)} checkpoints could not be read", ""]
         lines += [f"- `{_cell(e.path)}`: {_cell(e.reason)}" for e in report.errors] + [""]
     if report.skipped:
-        lines += [f"<details><summary>{len(report.skipped)} files skipped</summary>", ""]
-        lines += [f"- `{_cell(s.path)}`: {_cell(s.reason)}" for s in report.skipped]
-        lines += ["", "</details>", ""]
+        skipped = [f"- `{_cell(s.path)}`: {_cell(s.reason)}" for s in report.skipped]
+        lines += [*collapsed(f"{len(report.skipped)} files skipped", skipped), ""]
     lines += [f"- {_cell(n)}" for n in (*report.notes, *report.policy_notes)]
     if report.notes or report.policy_notes:
         lines.append("")

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from enum import Enum
 from typing import Any
@@ -77,6 +77,23 @@ class Finding:
         units = ",".join(str(u) for u in self.units)
         text = "\x1f".join((self.rule, where, self.part, units))
         return hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+
+
+def severity_counts(findings: Iterable[Finding]) -> dict[str, int]:
+    """How many of ``findings`` there are of each severity, by its name (every severity
+    listed, worst first, 0 where there is none)."""
+    out = {s.value: 0 for s in Severity}
+    for finding in findings:
+        out[finding.severity.value] += 1
+    return out
+
+
+def at_or_above(findings: Iterable[Finding], fail_on: Severity | None) -> list[Finding]:
+    """The ``findings`` at or above the gate ``fail_on``, in their order; none when there is
+    no gate (None, a report-only run)."""
+    if fail_on is None:
+        return []
+    return [f for f in findings if f.severity.at_least(fail_on)]
 
 
 def compact_units(units: tuple[int, ...] | list[int], limit: int = 12) -> str:

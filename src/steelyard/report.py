@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from steelyard.coverage import Coverage
-from steelyard.findings import FailOn, Finding, Severity
+from steelyard.findings import FailOn, Finding, Severity, at_or_above, severity_counts
 
 AUDIT_SCHEMA = "steelyard.audit/1"
 
@@ -97,16 +97,11 @@ class CheckpointAudit:
 
     def counts(self) -> dict[str, int]:
         """Findings per severity (baselined ones excluded)."""
-        out = {s.value: 0 for s in Severity}
-        for finding in self.findings:
-            out[finding.severity.value] += 1
-        return out
+        return severity_counts(self.findings)
 
     def failing(self, fail_on: Severity | None) -> list[Finding]:
         """Findings at or above the gate."""
-        if fail_on is None:
-            return []
-        return [f for f in self.findings if f.severity.at_least(fail_on)]
+        return at_or_above(self.findings, fail_on)
 
 
 @dataclass(frozen=True)

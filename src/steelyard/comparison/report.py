@@ -8,7 +8,7 @@ from dataclasses import dataclass, field
 from enum import Enum
 from typing import Any
 
-from steelyard.findings import FailOn, Finding, Severity
+from steelyard.findings import FailOn, Finding, Severity, at_or_above, severity_counts
 
 COMPARE_SCHEMA = "steelyard.compare/1"
 
@@ -174,16 +174,11 @@ class Comparison:
 
     def counts(self) -> dict[str, int]:
         """Gated findings per severity."""
-        out = {s.value: 0 for s in Severity}
-        for finding in self.gated:
-            out[finding.severity.value] += 1
-        return out
+        return severity_counts(self.gated)
 
     def failing(self, fail_on: Severity | None) -> list[Finding]:
         """Gated findings at or above the gate."""
-        if fail_on is None:
-            return []
-        return [f for f in self.gated if f.severity.at_least(fail_on)]
+        return at_or_above(self.gated, fail_on)
 
     def statuses(self) -> dict[str, int]:
         """Layers per status."""

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 from html import escape
 
+from steelyard.findings import severity_counts
 from steelyard.report import CAUTION, Report
 
 _TOP = 10
@@ -14,9 +15,7 @@ _TOP = 10
 def render_notebook_html(report: Report) -> str:
     """The HTML fragment a notebook shows for ``report``."""
     findings = report.findings
-    counts = {"error": 0, "warning": 0, "info": 0}
-    for finding in findings:
-        counts[finding.severity.value] += 1
+    counts = severity_counts(findings)
     verdict = "PASS" if report.passed else "FAIL"
     colour = "#1a7f37" if report.passed else "#b3261e"
     gate = "gate off" if report.gate is None else f"fails on {report.gate.value} and above"

@@ -32,6 +32,7 @@ from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.base import parse_json
 from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.unpacked import UnpackedWeight, part_size
 
 #: NF4 code values as listed in the QLoRA paper (Dettmers et al. 2023, "QLoRA: Efficient
 #: Finetuning of Quantized LLMs", arXiv 2305.14314, Appendix E; recalled from memory) and,
@@ -76,10 +77,6 @@ def _positive(path: Path, name: str, state: Mapping[str, Any], key: str) -> int:
     return value
 
 
-def _size(part: Part) -> int:
-    return int(np.prod(part.shape, dtype=np.int64)) if part.shape else 1
-
-
 @dataclass(frozen=True)
 class Bnb4Weight:
     """One 4-bit bitsandbytes weight, checked, with float rows on demand."""
@@ -121,18 +118,18 @@ class Bnb4Weight:
             raise LoadError(path, f"{name}: bitsandbytes 4-bit needs a 1-D absmax")
         # quant_storage other than uint8 (bf16, fp16, fp32 for sharded training) holds the
         # same bytes viewed as wider elements.
-        stored_bytes = _size(packed) * packed.dtype.itemsize
+        stored_bytes = part_size(packed) * packed.dtype.itemsize
         if stored_bytes != -(-n // 2):
             raise LoadError(path, f"{name}: bitsandbytes packed weight holds "
                             f"{2 * stored_bytes} codes, not the {n} of {list(dims)}")
         blocks = -(-n // blocksize)
         absmax = parts["absmax"]
-        if _size(absmax) != blocks:
-            raise LoadError(path, f"{name}: bitsandbytes absmax has {_size(absmax)} entries, "
+        if part_size(absmax) != blocks:
+            raise LoadError(path, f"{name}: bitsandbytes absmax has {part_size(absmax)} entries, "
                             f"not one per {blocksize}-element block ({blocks})")
         table = TABLES[quant_type]
         if "quant_map" in parts:
-            if _size(parts["quant_map"]) != 16:  # checked before reading
+            if part_size(parts["quant_map"]) != 16:  # checked before reading
                 raise LoadError(path, f"{name}: bitsandbytes quant_map does not have 16 codes")
             stored = np.asarray(parts["quant_map"], dtype=np.float32).reshape(-1)
             if not np.allclose(stored, table, atol=1e-3):
@@ -159,8 +156,8 @@ class Bnb4Weight:
             raise LoadError(path, f"{name}: double-quantized absmax needs uint8 codes and a "
                             "nested_quant_map")
         nested_absmax = parts["nested_absmax"]
-        if (_size(parts["nested_quant_map"]) != 256
-                or _size(nested_absmax) != -(-blocks // nested_block)):
+        if (part_size(parts["nested_quant_map"]) != 256
+                or part_size(nested_absmax) != -(-blocks // nested_block)):
             raise LoadError(path, f"{name}: bitsandbytes nested absmax/quant_map sizes do not "
                             f"match {blocks} blocks of {nested_block}")
         code = np.asarray(parts["nested_quant_map"], dtype=np.float32).reshape(-1)
@@ -220,12 +217,9 @@ class Bnb4Weight:
 
 
 @dataclass(frozen=True)
-class Bnb8Weight:
+class Bnb8Weight(UnpackedWeight):
     """One LLM.int8 weight ``[out, in]`` with its row scales."""
 
-    path: Path
-    name: str
-    weight: Part
     scb: np.ndarray
 
     @classmethod
@@ -237,8 +231,8 @@ class Bnb8Weight:
         n_out = weight.shape[0]
         check_elements(path, weight.shape, f"{name} (dequantized)")
         scb = parts["SCB"]
-        if _size(scb) != n_out or scb.ndim not in (1, 2):
-            raise LoadError(path, f"{name}: LLM.int8 SCB has {_size(scb)} scales for {n_out} rows")
+        if part_size(scb) != n_out or scb.ndim not in (1, 2):
+            raise LoadError(path, f"{name}: LLM.int8 SCB has {part_size(scb)} scales for {n_out} rows")
         if "weight_format" in parts:
             fmt = np.asarray(parts["weight_format"]).reshape(-1)
             if fmt.size != 1 or int(fmt[0]) != 0:
@@ -248,16 +242,10 @@ class Bnb8Weight:
         return cls(path, name, weight, scales)
 
     @property
-    def shape(self) -> tuple[int, int]:
-        """Canonical ``[out, in]`` shape."""
-        return (int(self.weight.shape[0]), int(self.weight.shape[1]))
-
-    @property
     def stored_type(self) -> str:
         """What was stored, for reports."""
         return "bnb-int8"
 
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows ``[start, stop)``."""
-        codes = np.asarray(self.weight[start:stop], dtype=np.float32)
-        return codes * (self.scb[start:stop, None] / np.float32(127))
+        return self.codes(start, stop) * (self.scb[start:stop, None] / np.float32(127))

@@ -24,6 +24,7 @@ from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.gptq import unpack_words
 from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.unpacked import UnpackedWeight, part_size
 
 SUPPORTED_BITS = (2, 4, 8)
 
@@ -60,15 +61,11 @@ def block_structure(settings: Mapping[str, Any]) -> object:
     return found[0] if found and all(f == found[0] for f in found) else None
 
 
-def _size(part: Part) -> int:
-    return int(np.prod(part.shape, dtype=np.int64)) if part.shape else 1
-
-
 def _scale(path: Path, name: str, part: Part, dims: tuple[int, int]) -> np.ndarray:
     """``weight_scale`` as ``[1 or out, groups]`` float32; its shape is checked before it is
     read (at most one scale per weight element), so a huge lying scale is never loaded."""
     shape = tuple(part.shape)
-    if _size(part) == 1:
+    if part_size(part) == 1:
         return np.asarray(part, dtype=np.float32).reshape(1, 1)
     if len(shape) != 2 or shape[0] not in (1, dims[0]) or not 0 < shape[1] <= max(dims[1], 1):
         raise LoadError(path, f"{name}: weight_scale {list(shape)} is not [out, groups]")
@@ -99,7 +96,7 @@ class PackQuantizedWeight:
         packed = parts["weight_packed"]
         if packed.ndim != 2 or packed.dtype.itemsize != 4:
             raise LoadError(path, f"{name}: weight_packed is not a 2-D int32 tensor")
-        shape = np.asarray(parts["weight_shape"]).reshape(-1) if _size(parts["weight_shape"]) == 2 \
+        shape = np.asarray(parts["weight_shape"]).reshape(-1) if part_size(parts["weight_shape"]) == 2 \
             else np.empty(0)
         if shape.size != 2 or shape.dtype.kind not in "iu" or (shape <= 0).any():
             raise LoadError(path, f"{name}: weight_shape is not two positive sizes")
@@ -115,9 +112,9 @@ class PackQuantizedWeight:
         scale = _scale(path, name, parts["weight_scale"], dims)
         g_idx = cls._groups(path, name, parts, settings, dims[1], scale.shape[1])
         zero = parts.get("weight_zero_point")
-        if zero is not None and _size(zero) == 0:
+        if zero is not None and part_size(zero) == 0:
             raise LoadError(path, f"{name}: weight_zero_point is empty")
-        if zero is not None and _size(zero) > 1:
+        if zero is not None and part_size(zero) > 1:
             packed_zero = (-(-dims[0] * bits // 32), scale.shape[1])
             if zero.shape not in (scale.shape, packed_zero):
                 raise LoadError(path, f"{name}: weight_zero_point {list(zero.shape)} fits "
@@ -155,7 +152,7 @@ class PackQuantizedWeight:
 
     def _zeros(self, start: int, stop: int) -> np.ndarray:
         offset = 1 << (self.bits - 1)
-        if self.zero is None or _size(self.zero) <= 1:
+        if self.zero is None or part_size(self.zero) <= 1:
             value = 0.0 if self.zero is None else float(np.asarray(self.zero).reshape(-1)[0])
             return np.full((stop - start, self.scale.shape[1]), value, dtype=np.float32)
         if self.zero.shape == self.scale.shape:
@@ -178,15 +175,12 @@ class PackQuantizedWeight:
 
 
 @dataclass(frozen=True)
-class IntQuantizedWeight:
+class IntQuantizedWeight(UnpackedWeight):
     """compressed-tensors ``int-quantized``: an int8 ``weight [out, in]`` stored unpacked,
     ``weight_scale`` per tensor, channel (``[out, 1]``) or group (``[out, groups]``), optional
     ``weight_zero_point`` of the scale's shape; ``W = (q - z) * scale`` (the library's
     ``dequantize``, as for pack-quantized)."""
 
-    path: Path
-    name: str
-    weight: Part
     scale: np.ndarray
     zero: np.ndarray
     g_idx: np.ndarray
@@ -204,16 +198,11 @@ class IntQuantizedWeight:
         scale = _scale(path, name, parts["weight_scale"], (n_out, n_in))
         zero = np.zeros(scale.shape, np.float32)
         if "weight_zero_point" in parts:
-            if _size(parts["weight_zero_point"]) != scale.size:  # checked before reading
+            if part_size(parts["weight_zero_point"]) != scale.size:  # checked before reading
                 raise LoadError(path, f"{name}: weight_zero_point does not match weight_scale")
             zero = np.asarray(parts["weight_zero_point"], dtype=np.float32).reshape(scale.shape)
         g_idx = PackQuantizedWeight._groups(path, name, parts, settings, n_in, scale.shape[1])
         return cls(path, name, weight, scale, zero, g_idx)
-
-    @property
-    def shape(self) -> tuple[int, int]:
-        """Canonical ``[out, in]`` shape."""
-        return (int(self.weight.shape[0]), int(self.weight.shape[1]))
 
     @property
     def stored_type(self) -> str:
@@ -222,7 +211,7 @@ class IntQuantizedWeight:
 
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows ``[start, stop)``."""
-        codes = np.asarray(self.weight[start:stop], dtype=np.float32)
+        codes = self.codes(start, stop)
         pick = slice(None) if self.scale.shape[0] == 1 else slice(start, stop)
         scale, zero = self.scale[pick][:, self.g_idx], self.zero[pick][:, self.g_idx]
         return (codes - zero) * scale

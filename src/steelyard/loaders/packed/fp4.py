@@ -23,16 +23,13 @@ import numpy as np
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.unpacked import part_size
 
 
 def _table() -> np.ndarray:
     import ml_dtypes
 
     return np.arange(16, dtype=np.uint8).view(ml_dtypes.float4_e2m1fn).astype(np.float32)
-
-
-def _size(part: Part) -> int:
-    return int(np.prod(part.shape, dtype=np.int64)) if part.shape else 1
 
 
 @dataclass(frozen=True)
@@ -67,7 +64,7 @@ class Fp4Weight:
         elif "float8" in scale.dtype.name:
             values, kind = np.asarray(scale, dtype=np.float32), "nvfp4"
             glob = parts.get("weight_global_scale")
-            if glob is None or _size(glob) != 1:
+            if glob is None or part_size(glob) != 1:
                 raise LoadError(path, f"{name}: NVFP4 needs one weight_global_scale")
             with np.errstate(all="ignore"):  # a zero or NaN global scale is data to report
                 values = values / np.float32(np.asarray(glob, dtype=np.float32).reshape(-1)[0])

@@ -16,15 +16,13 @@ import numpy as np
 
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.stored import Part
+from steelyard.loaders.packed.unpacked import UnpackedWeight, part_size
 
 
 @dataclass(frozen=True)
-class Fp8Weight:
+class Fp8Weight(UnpackedWeight):
     """One FP8 weight ``[out, in]`` (float32 rows through ``weight``) and its scales."""
 
-    path: Path
-    name: str
-    weight: Part
     scale: np.ndarray
     block: tuple[int, int] | None
 
@@ -38,7 +36,7 @@ class Fp8Weight:
             raise LoadError(path, f"{name}: an FP8 weight must be 2-D")
         n_out, n_in = weight.shape
         # Shapes are checked before the scale is read, so a huge lying scale is never loaded.
-        size = int(np.prod(scale.shape, dtype=np.int64)) if scale.shape else 1
+        size = part_size(scale)
         if block is not None:
             bo, bi = block
             if bo <= 0 or bi <= 0 or tuple(scale.shape) != (-(-n_out // bo), -(-n_in // bi)):
@@ -55,11 +53,6 @@ class Fp8Weight:
         return cls(path, name, weight, values, block)
 
     @property
-    def shape(self) -> tuple[int, int]:
-        """Canonical ``[out, in]`` shape."""
-        return (int(self.weight.shape[0]), int(self.weight.shape[1]))
-
-    @property
     def granularity(self) -> str:
         """``tensor``, ``channel`` or ``block``: reported as part of the stored type."""
         if self.block is not None:
@@ -74,7 +67,7 @@ class Fp8Weight:
 
     def rows(self, start: int, stop: int) -> np.ndarray:
         """Dequantized float32 rows ``[start, stop)``."""
-        values = np.array(self.weight[start:stop], dtype=np.float32)  # a fresh, writable copy
+        values = self.codes(start, stop)  # scaled in place below
         if self.block is None:
             scale = self.scale if self.scale.shape[0] == 1 else self.scale[start:stop]
             return values * scale

@@ -135,12 +135,28 @@ def spill_member(path: Path, info: zipfile.ZipInfo) -> Path:
     return spilled(key, lambda target: inflate_member(path, info, target))
 
 
+#: The first bytes of a zip archive (a local file header).
+ZIP_MAGIC = b"PK\x03\x04"
+#: What opening a file that is not, or not quite, a zip archive raises.
+_ZIP_OPEN_ERRORS = (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError)
+
+
 def open_zip(path: Path) -> zipfile.ZipFile:
     """Open a zip archive or raise a clean error."""
     try:
         return zipfile.ZipFile(path)
-    except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError) as exc:
+    except _ZIP_OPEN_ERRORS as exc:
         raise LoadError(path, f"is not a readable zip archive ({exc})") from None
+
+
+def zip_names_for_sniff(path: Path) -> list[str] | None:
+    """Member names from a zip's central directory (nothing inflated), for a loader's
+    ``sniff``; None when the file does not open as a zip archive."""
+    try:
+        with zipfile.ZipFile(path) as archive:
+            return archive.namelist()
+    except _ZIP_OPEN_ERRORS:
+        return None
 
 
 def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:

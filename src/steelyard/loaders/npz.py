@@ -32,11 +32,13 @@ from steelyard.dtypes import FLOAT_DTYPES, name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import (
+    ZIP_MAGIC,
     file_size,
     member_expansion,
     open_zip,
     safe_zip_names,
     spill_member,
+    zip_names_for_sniff,
 )
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
 
@@ -110,12 +112,10 @@ class NpzLoader:
     format = Format.NPZ
 
     def sniff(self, path: Path, head: bytes) -> bool:
-        if head[:4] != b"PK\x03\x04":
+        if head[:4] != ZIP_MAGIC:
             return False
-        try:
-            with zipfile.ZipFile(path) as archive:
-                names = archive.namelist()
-        except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError):
+        names = zip_names_for_sniff(path)
+        if names is None:  # a damaged archive named .npz is still ours, to report
             return path.suffix == ".npz"
         return bool(names) and all(n.endswith(".npy") for n in names)
 
@@ -190,7 +190,7 @@ class NpzLoader:
                 with open(path, "rb") as handle:
                     handle.seek(info.header_offset)
                     raw = handle.read(_LOCAL_HEADER.size)
-                    if len(raw) != _LOCAL_HEADER.size or raw[:4] != b"PK\x03\x04":
+                    if len(raw) != _LOCAL_HEADER.size or raw[:4] != ZIP_MAGIC:
                         raise LoadError(path, f"member {info.filename!r} has a broken local header")
                     local = _LOCAL_HEADER.unpack(raw)
                     start = info.header_offset + _LOCAL_HEADER.size + local[9] + local[10]

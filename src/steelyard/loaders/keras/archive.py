@@ -21,6 +21,7 @@ from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders.base import (
+    ZIP_MAGIC,
     file_size,
     member_expansion,
     open_zip,
@@ -28,6 +29,7 @@ from steelyard.loaders.base import (
     read_zip_member,
     safe_zip_names,
     spill_member,
+    zip_names_for_sniff,
 )
 from steelyard.loaders.keras import hdf5_access as kh
 from steelyard.loaders.keras import optimizer as ko
@@ -55,7 +57,7 @@ def _data_start(path: Path, info: zipfile.ZipInfo, archive_size: int) -> int:
     if len(header) != _LOCAL_HEADER.size:
         raise LoadError(path, f"archive member {info.filename!r} has a truncated local header")
     fields = _LOCAL_HEADER.unpack(header)
-    if fields[0] != b"PK\x03\x04":
+    if fields[0] != ZIP_MAGIC:
         raise LoadError(path, f"archive member {info.filename!r} has a damaged local header")
     name_length, extra_length = int(fields[-2]), int(fields[-1])
     start = info.header_offset + _LOCAL_HEADER.size + name_length + extra_length
@@ -71,14 +73,8 @@ class KerasArchiveLoader:
 
     def sniff(self, path: Path, head: bytes) -> bool:
         """A zip whose members include ``config.json`` and the model's weights file."""
-        if head[:4] != b"PK\x03\x04":
-            return False
-        try:
-            with zipfile.ZipFile(path) as archive:
-                names = set(archive.namelist())
-        except (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError):
-            return False
-        return CONFIG in names and (WEIGHTS in names or NPZ_WEIGHTS in names)
+        names = zip_names_for_sniff(path) if head[:4] == ZIP_MAGIC else None
+        return names is not None and CONFIG in names and (WEIGHTS in names or NPZ_WEIGHTS in names)
 
     def load(self, path: Path) -> Checkpoint:
         """Read the archive's structure (in a time-limited child process); tensors stay in

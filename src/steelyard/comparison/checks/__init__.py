@@ -11,6 +11,7 @@ whole-comparison rules: their check reads the per-layer comparison
 
 from __future__ import annotations
 
+import sys
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -21,7 +22,7 @@ from steelyard.graph import Checkpoint, Layer
 from steelyard.numbers import measured
 from steelyard.policy import Policy
 from steelyard.report import Suppressed
-from steelyard.rules.base import Command, RuleSettings, RuleSpec
+from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec, WholeCheck
 from steelyard.rules.engine import apply_policy
 
 
@@ -84,6 +85,22 @@ class CompareContext:
 def number(value: float | None) -> str:
     """A measured value in a message (``—`` when not measured), in the one number format."""
     return measured(value)
+
+
+def compare_rule(
+    *, name: str, severity: Severity, summary: str, check: WholeCheck, settings: type[Any] = NoSettings
+) -> RuleSpec:
+    """The spec of a comparison rule: its ``check`` reads the whole comparison, it serves
+    ``steelyard compare`` only, and its page is the docstring of the module ``check`` is in."""
+    return RuleSpec(
+        name=name,
+        severity=severity,
+        summary=summary,
+        doc=sys.modules[check.__module__].__doc__ or "",
+        settings=settings,
+        whole=check,
+        commands=(Command.COMPARE,),
+    )
 
 
 def compare_rules() -> dict[str, RuleSpec]:

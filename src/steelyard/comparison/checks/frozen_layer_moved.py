@@ -28,11 +28,11 @@ from __future__ import annotations
 import fnmatch
 from collections.abc import Iterator
 
-from steelyard.comparison.checks import CompareContext, number
+from steelyard.comparison.checks import CompareContext, compare_rule, number
 from steelyard.comparison.report import Status
 from steelyard.findings import Finding, Severity
 from steelyard.numbers import count
-from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
+from steelyard.rules.base import NoSettings, RuleSettings
 from steelyard.rules.scoring import score
 
 
@@ -81,11 +81,9 @@ def frozen_layer_moved(ctx: CompareContext, settings: RuleSettings[NoSettings]) 
         )
 
 
-RULE = RuleSpec(
+RULE = compare_rule(
     name="frozen-layer-moved",
     severity=Severity.ERROR,
     summary="a layer the policy declares frozen changed, so the freeze did not hold",
-    doc=__doc__ or "",
-    whole=frozen_layer_moved,
-    commands=(Command.COMPARE,),
+    check=frozen_layer_moved,
 )

@@ -26,10 +26,10 @@ from __future__ import annotations
 from collections.abc import Iterator
 from dataclasses import dataclass
 
-from steelyard.comparison.checks import CompareContext, number
+from steelyard.comparison.checks import CompareContext, compare_rule, number
 from steelyard.comparison.report import Status
 from steelyard.findings import Finding, Severity
-from steelyard.rules.base import Command, RuleSettings, RuleSpec, threshold
+from steelyard.rules.base import RuleSettings, threshold
 from steelyard.rules.scoring import score
 
 
@@ -68,12 +68,10 @@ def layer_drift(ctx: CompareContext, settings: RuleSettings[LayerDriftSettings])
         )
 
 
-RULE = RuleSpec(
+RULE = compare_rule(
     name="layer-drift",
     severity=Severity.WARNING,
     settings=LayerDriftSettings,
     summary="a layer that moved by more than half its norm was replaced, diverged or over-trained",
-    doc=__doc__ or "",
-    whole=layer_drift,
-    commands=(Command.COMPARE,),
+    check=layer_drift,
 )

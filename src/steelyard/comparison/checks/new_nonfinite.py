@@ -23,11 +23,11 @@ from collections.abc import Iterator
 
 import numpy as np
 
-from steelyard.comparison.checks import CompareContext
+from steelyard.comparison.checks import CompareContext, compare_rule
 from steelyard.findings import Finding, Severity
 from steelyard.graph import TensorRole
 from steelyard.numbers import plural
-from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
+from steelyard.rules.base import NoSettings, RuleSettings
 from steelyard.rules.scoring import score
 
 
@@ -101,11 +101,9 @@ def new_nonfinite(ctx: CompareContext, settings: RuleSettings[NoSettings]) -> It
     yield from _loose_nonfinite(ctx)
 
 
-RULE = RuleSpec(
+RULE = compare_rule(
     name="new-nonfinite",
     severity=Severity.ERROR,
     summary="NaN or ±Inf that appeared since OLD breaks every output depending on it",
-    doc=__doc__ or "",
-    whole=new_nonfinite,
-    commands=(Command.COMPARE,),
+    check=new_nonfinite,
 )

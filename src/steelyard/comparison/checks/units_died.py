@@ -22,10 +22,10 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from steelyard.comparison.checks import CompareContext
+from steelyard.comparison.checks import CompareContext, compare_rule
 from steelyard.findings import Finding, Severity
 from steelyard.numbers import count
-from steelyard.rules.base import Command, NoSettings, RuleSettings, RuleSpec
+from steelyard.rules.base import NoSettings, RuleSettings
 from steelyard.rules.scoring import score
 
 
@@ -54,11 +54,9 @@ def units_died(ctx: CompareContext, settings: RuleSettings[NoSettings]) -> Itera
         )
 
 
-RULE = RuleSpec(
+RULE = compare_rule(
     name="units-died",
     severity=Severity.WARNING,
     summary="units that died since OLD are capacity lost in that stretch of training",
-    doc=__doc__ or "",
-    whole=units_died,
-    commands=(Command.COMPARE,),
+    check=units_died,
 )

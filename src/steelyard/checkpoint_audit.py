@@ -52,11 +52,23 @@ def default_jobs() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _map(pool: ThreadPoolExecutor | None, work: Callable[[T], R], items: Sequence[T]) -> list[R]:
-    """``[work(x) for x in items]``, on the pool when there is one; order is kept."""
+def _map(
+    pool: ThreadPoolExecutor | None,
+    work: Callable[[T], R],
+    items: Sequence[T],
+    cost: Callable[[T], int] | None = None,
+) -> list[R]:
+    """``[work(x) for x in items]``, on the pool when there is one; the result keeps the
+    items' order. With ``cost``, the pool starts the costliest items first (longest
+    processing time first, Graham 1969): a model's largest layers (embedding, head) come
+    first and last in file order, and started last they leave one worker finishing alone."""
     if pool is None:
         return [work(item) for item in items]
-    return list(pool.map(work, items))
+    order: Sequence[int] = range(len(items))
+    if cost is not None:
+        order = sorted(order, key=lambda index: -cost(items[index]))
+    futures = {index: pool.submit(work, items[index]) for index in order}
+    return [futures[index].result() for index in range(len(items))]
 
 
 def _blas_threads(count: int | None) -> AbstractContextManager[object]:
@@ -175,7 +187,10 @@ def run_rules(
     pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
     try:
         with _blas_threads(1):
-            per_layer = _map(pool, one_layer, checkpoint.layers) if hooked else []
+            per_layer = (
+                _map(pool, one_layer, checkpoint.layers, lambda layer: _parameters(checkpoint, layer))
+                if hooked else []
+            )
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())
         # Whole-checkpoint rules scan every layer themselves: one after another, because two

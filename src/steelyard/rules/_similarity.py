@@ -461,7 +461,8 @@ def _block_hits(
         gram *= inverse[None, :]
     tally.dots += int(gram.size)
     tally.largest = max(tally.largest, rows.size)
-    i, k = np.nonzero(_passing(gram, threshold, negative))
+    # Flat positions split by divmod: ``nonzero`` of a 2-D mask is several times slower.
+    i, k = np.divmod(np.flatnonzero(_passing(gram, threshold, negative)), gram.shape[1])
     later = k > i
     i, k = i[later], k[later]
     _keep(found, rows[i], against[k], gram[i, k])

@@ -102,6 +102,25 @@ class EssentialWeights:
         return frozenset(self.units.tolist())
 
 
+def _squares_f64(block: np.ndarray, rows: np.ndarray | None, columns: np.ndarray | None) -> np.ndarray:
+    """Σ w² in float64 of the chosen ``rows`` (per row) or ``columns`` (per column) of
+    ``block``, a row block at a time: a float64 copy of a whole slice would double the
+    working set when the found weights touch most rows (outlier channels)."""
+    units, fan_in = block.shape
+    if rows is not None:
+        out = np.empty(rows.size)
+        for a, b in row_blocks(rows.size, fan_in, _BLOCK_BYTES):
+            wide = block[rows[a:b]].astype(np.float64)
+            out[a:b] = np.einsum("ij,ij->i", wide, wide)
+        return out
+    assert columns is not None
+    out = np.zeros(columns.size)
+    for a, b in row_blocks(units, max(1, columns.size), _BLOCK_BYTES):
+        wide = block[a:b, columns].astype(np.float64)
+        out += np.einsum("ij,ij->j", wide, wide)
+    return out
+
+
 _NONE = EssentialWeights(*(np.zeros(0, dtype) for dtype in (np.int64, np.int64, float, float, float)))
 
 
@@ -130,7 +149,8 @@ def measure(
         # (with >= every zero would be a candidate, one Python step each).
         hits = magnitude > row_limit[a:b, None]
         if hits.any():
-            uu, kk = np.nonzero(hits)
+            # Flat positions split by divmod: ``nonzero`` of a 2-D mask is several times slower.
+            uu, kk = np.divmod(np.flatnonzero(hits), fan_in)
             found_u.append(uu + a)
             found_k.append(kk)
     if not found_u:
@@ -138,8 +158,7 @@ def measure(
     cand_u, cand_k = np.concatenate(found_u), np.concatenate(found_k)
     # Column sums only for the (rare) candidates' columns.
     wanted, where = np.unique(cand_k, return_inverse=True)
-    picked = block[:, wanted].astype(np.float64)
-    columns = np.einsum("ij,ij->j", picked, picked)[where]
+    columns = _squares_f64(block, None, wanted)[where]
     w2 = np.square(block[cand_u, cand_k].astype(np.float64))
     keep = (w2 * (fan_in - 1 + s2) >= s2 * rows[cand_u]) & (
         w2 * (units - 1 + s2) >= s2 * columns
@@ -148,15 +167,15 @@ def measure(
     u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
     if u.size == 0:
         return _NONE
-    # The scales of the few found weights exactly, in float64: subtracting w² from a float32
-    # sum it dominates would leave mostly rounding error.
-    row_rms = np.empty(u.size)
-    col_rms = np.empty(u.size)
-    for i, (unit, column) in enumerate(zip(u.tolist(), k.tolist(), strict=True)):
-        row = block[unit].astype(np.float64)
-        col = block[:, column].astype(np.float64)
-        row_rms[i] = np.sqrt((np.dot(row, row) - row[column] ** 2) / (fan_in - 1))
-        col_rms[i] = np.sqrt((np.dot(col, col) - col[unit] ** 2) / (units - 1))
+    # The scales of the found weights exactly, in float64: subtracting w² from a float32 sum
+    # it dominates would leave mostly rounding error. Each row and column holding a found
+    # weight is summed once, however many it holds (outlier channels put thousands in one).
+    found_rows, row_of = np.unique(u, return_inverse=True)
+    found_columns, column_of = np.unique(k, return_inverse=True)
+    row_sums = _squares_f64(block, found_rows, None)[row_of]
+    column_sums = _squares_f64(block, None, found_columns)[column_of]
+    row_rms = np.sqrt(np.maximum(row_sums - w2, 0.0) / (fan_in - 1))
+    col_rms = np.sqrt(np.maximum(column_sums - w2, 0.0) / (units - 1))
     with np.errstate(divide="ignore", invalid="ignore"):
         extremity = np.sqrt(w2) / np.maximum(row_rms, col_rms)
     order = np.lexsort((k, u, -extremity))

@@ -237,3 +237,56 @@ def test_extras_are_imported_lazily() -> None:
     # which turns a missing extra into one error line.
     allowed = {("steelyard.render.html.page", "markupsafe")}
     assert eager - allowed == set()
+
+
+def _audit_imports(path: Path) -> set[str]:
+    """Which of the slow optional libraries a JSON audit of ``path`` imported (fresh process)."""
+    import subprocess
+
+    probe = (
+        "import sys\n"
+        "from steelyard.cli import main\n"
+        f"sys.argv = ['steelyard', 'audit', {str(path)!r}, '--fail-on', 'never', '-f', 'json', '-q']\n"
+        "try:\n    main()\nexcept SystemExit as exit:\n    assert exit.code == 0, exit.code\n"
+        "print('imported:' + ','.join(m for m in ('ml_dtypes', 'onnx') if m in sys.modules), "
+        "file=sys.stderr)\n"
+    )
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    (line,) = [x for x in done.stderr.splitlines() if x.startswith("imported:")]
+    return set(filter(None, line.removeprefix("imported:").split(",")))
+
+
+def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
+    # ml_dtypes 0.7.0 took 1.1-2.1 s to import here (python -X importtime,
+    # ml_dtypes._ml_dtypes_ext), ten times the rest of a small audit, so a file stored in
+    # float32 or float16 must never import it (docs/performance.md, Start-up). Files written
+    # by the reference writers (safetensors.numpy, numpy.savez) in two shapes and two float
+    # types, plus the Keras-written demo files (fixtures/make_demo.py). ONNX is left out: the
+    # onnx package itself imports ml_dtypes (onnx 1.23, onnx/_mapping.py), as the probe shows.
+    import numpy as np
+    from safetensors.numpy import save_file
+
+    rng = np.random.default_rng(18)
+    written = []
+    for dtype in (np.float32, np.float16):
+        for width in (3, 17):
+            tensors = {
+                "encoder.weight": rng.normal(size=(width, 5)).astype(dtype),
+                "encoder.bias": rng.normal(size=width).astype(dtype),
+                "head.weight": rng.normal(size=(2, width)).astype(dtype),
+            }
+            stem = tmp_path / f"model_{np.dtype(dtype).name}_{width}"
+            save_file(tensors, f"{stem}.safetensors")
+            np.savez(f"{stem}.npz", **tensors)  # type: ignore[arg-type]
+            written += [Path(f"{stem}.safetensors"), Path(f"{stem}.npz")]
+    demo = SRC.parent / "fixtures" / "demo"
+    written += [demo / "pumpwear-nightly-bad.keras", demo / "pumpwear-healthy.h5"]
+    loaded = {path.name: _audit_imports(path) for path in written}
+    assert {name: mods for name, mods in loaded.items() if "ml_dtypes" in mods} == {}
+
+
+def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it() -> None:
+    # The probe above can fail: a bf16 file is decoded by ml_dtypes (the reference library).
+    bf16 = SRC.parent / "fixtures" / "demo" / "pumpwear-healthy.bf16.safetensors"
+    assert "ml_dtypes" in _audit_imports(bf16)

@@ -5,6 +5,7 @@ Every analysis runs in float32; the stored dtype name is kept for reports.
 
 from __future__ import annotations
 
+import sys
 from collections.abc import Iterator, Mapping
 from typing import Final
 
@@ -100,11 +101,22 @@ def is_float_name(name: str) -> bool:
 
 
 def name_of(dtype: np.dtype[np.generic]) -> str:
-    """Short name of a numpy dtype (byte order ignored); ``"other"`` when unknown."""
+    """Short name of a numpy dtype (byte order ignored); ``"other"`` when unknown.
+
+    The IEEE and integer tables are searched first; the extended floats only for a dtype of
+    kind ``"V"`` (what ml_dtypes' types are) and only when ml_dtypes is already imported,
+    since no such dtype can exist before. Naming a float32 array thus never imports ml_dtypes,
+    whose import costs about a second (docs/performance.md, Start-up).
+    """
     base = dtype.newbyteorder("=") if dtype.byteorder not in ("=", "|") else dtype
-    for key, value in ALL_DTYPES.items():
-        if base == value:
-            return key
+    for table in (_IEEE, INT_DTYPES):
+        for key, value in table.items():
+            if base == value:
+                return key
+    if dtype.kind == "V" and "ml_dtypes" in sys.modules:
+        for key, value in FLOAT_DTYPES.items():
+            if base == value:
+                return key
     if dtype.kind == "c":
         return "c64" if dtype.itemsize == 8 else "c128"
     return "other"

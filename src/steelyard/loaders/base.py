@@ -11,12 +11,13 @@ import json
 import os
 import zipfile
 import zlib
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Protocol
 
 from steelyard import budget
 from steelyard.errors import LoadError
-from steelyard.graph import Checkpoint, Format
+from steelyard.graph import Checkpoint, Format, Layer, OptimizerState, Tensor
 from steelyard.loaders.spill import spilled
 
 #: Largest JSON/pickle/config blob any loader will parse (bounded memory on hostile input).
@@ -35,6 +36,33 @@ class Loader(Protocol):
     def load(self, path: Path) -> Checkpoint:
         """Read the file's structure (not its tensors) into a checkpoint."""
         ...
+
+
+#: What a loader read from a file: tensors by name, layers, optimizer state, its notes.
+Reading = tuple[dict[str, Tensor], tuple[Layer, ...], OptimizerState | None, list[str]]
+
+
+def checkpoint_from(
+    path: Path,
+    format: Format,
+    size: int,
+    read: Reading,
+    files: Sequence[Path],
+    notes: Sequence[str] = (),
+) -> Checkpoint:
+    """The checkpoint of ``path`` from what its loader read; ``files`` are every file read
+    (the main one first) and ``notes`` come before the reading's own."""
+    tensors, layers, optimizer, more = read
+    return Checkpoint(
+        path=str(path),
+        format=format,
+        tensors=tensors,
+        layers=layers,
+        file_size=size,
+        files=tuple(str(f) for f in files),
+        optimizer=optimizer,
+        notes=(*notes, *more),
+    )
 
 
 def inside(folder: Path, relative: str, source: Path) -> Path:

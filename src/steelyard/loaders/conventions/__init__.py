@@ -34,7 +34,7 @@ from steelyard.graph import (
     TensorRole,
     mark_outputs,
 )
-from steelyard.loaders.base import MAX_METADATA_BYTES
+from steelyard.loaders.base import MAX_METADATA_BYTES, checkpoint_from
 from steelyard.loaders.conventions.layout_file import apply_layout, read_layout
 from steelyard.loaders.conventions.module_layers import norm_of, weight_layer
 from steelyard.loaders.conventions.module_names import group_modules
@@ -95,16 +95,7 @@ def inferred_checkpoint(
     """The checkpoint of a graph-less file (safetensors, npz, PyTorch): layers inferred from
     the tensor names and a ``config.json`` beside ``path``, their notes after ``notes``."""
     layers, layer_notes = build_layers(tensors, read_hf_config(path.parent), source=path)
-    return Checkpoint(
-        path=str(path),
-        format=format,
-        tensors=tensors,
-        layers=layers,
-        file_size=size,
-        files=tuple(str(f) for f in files),
-        optimizer=optimizer,
-        notes=(*notes, *layer_notes),
-    )
+    return checkpoint_from(path, format, size, (tensors, layers, optimizer, layer_notes), files, notes)
 
 
 def build_layers(

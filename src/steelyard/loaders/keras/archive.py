@@ -22,6 +22,7 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders.base import (
     ZIP_MAGIC,
+    checkpoint_from,
     file_size,
     member_expansion,
     open_zip,
@@ -36,7 +37,7 @@ from steelyard.loaders.keras import optimizer as ko
 from steelyard.loaders.keras.h5_file import Location
 from steelyard.loaders.keras.hdf5_access import H5Store
 from steelyard.loaders.keras.model_config import parse_model
-from steelyard.loaders.keras.weights_h5 import keras_checkpoint, read_weights_h5
+from steelyard.loaders.keras.weights_h5 import read_weights_h5
 from steelyard.loaders.sandbox import isolated
 
 CONFIG = "config.json"
@@ -148,4 +149,4 @@ def load_archive(path: Path, spill: Path | None = None, spent: int = 0) -> Check
     store = H5Store(path, location, spent)
     with store.open() as f:
         read = read_weights_h5(store, f, graph, opt)
-    return keras_checkpoint(path, Format.KERAS, size, read, notes)
+    return checkpoint_from(path, Format.KERAS, size, read, (path,), notes)

@@ -10,12 +10,12 @@ from pathlib import Path
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
-from steelyard.loaders.base import file_size
+from steelyard.loaders.base import checkpoint_from, file_size
 from steelyard.loaders.keras import hdf5_access as kh
 from steelyard.loaders.keras.h5_file import H5_ERRORS, Location, has_hdf5_magic, reason
 from steelyard.loaders.keras.hdf5_access import H5Store
 from steelyard.loaders.keras.legacy_h5 import read_legacy
-from steelyard.loaders.keras.weights_h5 import WeightsRead, keras_checkpoint, read_weights_h5
+from steelyard.loaders.keras.weights_h5 import WeightsRead, read_weights_h5
 from steelyard.loaders.sandbox import isolated
 
 
@@ -39,7 +39,7 @@ def load_h5_file(path: Path) -> Checkpoint:
             raise
         except H5_ERRORS as exc:
             raise store.fail(f"is a damaged HDF5 file ({reason(exc)})") from None
-    return keras_checkpoint(path, Format.KERAS_H5, size, read)
+    return checkpoint_from(path, Format.KERAS_H5, size, read, (path,))
 
 
 class KerasH5Loader:

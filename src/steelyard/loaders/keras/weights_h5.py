@@ -12,13 +12,12 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Sequence
-from pathlib import Path
 from typing import Any
 
 import h5py
 
-from steelyard.graph import Checkpoint, Format, OptimizerState, Tensor, TensorRole
+from steelyard.graph import OptimizerState, Tensor, TensorRole
+from steelyard.loaders.base import Reading
 from steelyard.loaders.keras import optimizer as ko
 from steelyard.loaders.keras.config_values import MAX_DEPTH, natural_key
 from steelyard.loaders.keras.hdf5_access import H5Store
@@ -38,25 +37,7 @@ from steelyard.loaders.keras.variables import (
 )
 
 #: What reading a Keras HDF5 weights layout yields: tensors, layers, optimizer state, notes.
-WeightsRead = tuple[dict[str, Tensor], tuple[Any, ...], OptimizerState | None, list[str]]
-
-
-def keras_checkpoint(
-    path: Path, format: Format, size: int, read: WeightsRead, notes: Sequence[str] = ()
-) -> Checkpoint:
-    """The checkpoint of one Keras file (``.keras``, ``.h5``) from what its weights layout
-    yielded; ``notes`` come before the layout's own."""
-    tensors, layers, optimizer, more = read
-    return Checkpoint(
-        path=str(path),
-        format=format,
-        tensors=tensors,
-        layers=layers,
-        file_size=size,
-        files=(str(path),),
-        optimizer=optimizer,
-        notes=(*notes, *more),
-    )
+WeightsRead = Reading
 
 
 def read_weights_h5(

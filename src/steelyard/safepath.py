@@ -55,6 +55,32 @@ def _within(path: Path, base: Path) -> bool:
     return path == base or base in path.parents
 
 
+def _place(path: Path, base: Path) -> str:
+    """Where ``path`` leads once every link is followed: ``inside`` ``base``, ``outside`` it,
+    or ``unresolved`` (a link loop, a part that vanished meanwhile)."""
+    try:
+        resolved = path.resolve()
+    except (OSError, RuntimeError):
+        return "unresolved"
+    return "inside" if _within(resolved, base) else "outside"
+
+
+#: Why a symbolic link found in a model's folder is not followed, by where it leads.
+_LINK_REFUSED = {
+    "unresolved": "symbolic link that cannot be resolved, not followed",
+    "outside": "symbolic link to a file outside the folder, not followed",
+    "inside": "symbolic link, not followed",
+}
+
+#: Why a regular file found in a model's folder may not be opened, by where its path leads
+#: (outside only through a linked parent folder); None: it may be opened.
+_FILE_REFUSED: dict[str, str | None] = {
+    "unresolved": "cannot be resolved",
+    "outside": "resolves outside the folder (a linked parent folder), not followed",
+    "inside": None,
+}
+
+
 def entry_problem(path: Path, folder: Path) -> str | None:
     """Why ``path``, found inside ``folder``, may not be opened; None when it may.
 
@@ -68,22 +94,10 @@ def entry_problem(path: Path, folder: Path) -> str | None:
         return f"cannot be examined ({exc.strerror})"
     base = folder.resolve()
     if stat.S_ISLNK(info.st_mode):
-        try:
-            target = path.resolve()
-        except (OSError, RuntimeError):
-            return "symbolic link that cannot be resolved, not followed"
-        if not _within(target, base):
-            return "symbolic link to a file outside the folder, not followed"
-        return "symbolic link, not followed"
+        return _LINK_REFUSED[_place(path, base)]
     if not stat.S_ISREG(info.st_mode):
         return f"{kind_of(info.st_mode)}, not a regular file"
-    try:
-        resolved = path.resolve()
-    except (OSError, RuntimeError):
-        return "cannot be resolved"
-    if not _within(resolved, base):
-        return "resolves outside the folder (a linked parent folder), not followed"
-    return None
+    return _FILE_REFUSED[_place(path, base)]
 
 
 def confined(folder: Path, relative: str, source: Path) -> Path:

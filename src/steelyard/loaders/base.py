@@ -11,13 +11,15 @@ import json
 import os
 import zipfile
 import zlib
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any, Protocol
 
+import numpy as np
+
 from steelyard import budget
 from steelyard.errors import LoadError
-from steelyard.graph import Checkpoint, Format, Layer, OptimizerState, Tensor
+from steelyard.graph import Checkpoint, Format, Layer, OptimizerState, Tensor, TensorRole
 from steelyard.loaders.spill import spilled
 
 #: Largest JSON/pickle/config blob any loader will parse (bounded memory on hostile input).
@@ -62,6 +64,27 @@ def checkpoint_from(
         files=tuple(str(f) for f in files),
         optimizer=optimizer,
         notes=(*notes, *more),
+    )
+
+
+def float32_tensor(
+    name: str,
+    shape: tuple[int, ...],
+    role: TensorRole,
+    reader: Callable[[], np.ndarray],
+    read_span: Callable[[int, int], np.ndarray] | None,
+    stored_type: str | None = None,
+) -> Tensor:
+    """A tensor computed as float32 when read (a dequantized GGUF block or packed weight, an
+    adapter's update): ``f32`` whatever lies beneath it, which ``stored_type`` names."""
+    return Tensor(
+        name=name,
+        shape=shape,
+        dtype="f32",
+        role=role,
+        reader=reader,
+        read_span=read_span,
+        stored_type=stored_type,
     )
 
 

@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable, Mapping
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -55,7 +55,7 @@ from steelyard.loaders.adapter.model import (
     FactorCache,
     adapter_of,
 )
-from steelyard.loaders.base import parse_json
+from steelyard.loaders.base import float32_tensor, parse_json
 from steelyard.safepath import read_beside
 
 CONFIG_NAME = "adapter_config.json"
@@ -265,9 +265,21 @@ def _span_from_rows(
     return read_span
 
 
+def _derived_tensor(
+    name: str,
+    canonical: tuple[int, ...],
+    whole: Callable[[], np.ndarray],
+    block: Callable[[int, int], np.ndarray] | None,
+) -> Tensor:
+    """A float32 tensor computed from the factors (ΔW, or the merged W + ΔW), not counted as
+    parameters; streamed in spans of whole rows when ``block`` reads rows thread-safely."""
+    span = None if block is None else _span_from_rows(block, int(np.prod(canonical[1:])))
+    return float32_tensor(name, canonical, TensorRole.BOOKKEEPING, whole, span)
+
+
 def _delta_layer(module: AdaptedModule, aux: tuple[str, ...]) -> tuple[Layer, Tensor]:
     """The ΔW layer of an adapter read alone, and its derived (uncounted) tensor."""
-    units, fan_in = module.units, int(np.prod(module.canonical[1:]))
+    units = module.units
 
     def block(first: int, last: int) -> np.ndarray:
         return rows(module.factors(), first, last)
@@ -275,14 +287,7 @@ def _delta_layer(module: AdaptedModule, aux: tuple[str, ...]) -> tuple[Layer, Te
     def whole() -> np.ndarray:
         return block(0, units).reshape(module.canonical)
 
-    tensor = Tensor(
-        name=f"{module.name}.delta_weight",
-        shape=module.canonical,
-        dtype="f32",
-        role=TensorRole.BOOKKEEPING,
-        reader=whole,
-        read_span=_span_from_rows(block, fan_in),
-    )
+    tensor = _derived_tensor(f"{module.name}.delta_weight", module.canonical, whole, block)
     layer = Layer(
         name=module.name,
         kind=module.kind,
@@ -366,7 +371,7 @@ def _merged_layer(
     magnitude: Tensor | None,
 ) -> tuple[Layer, Tensor]:
     """The base layer with its weight replaced by the merged W + ΔW (DoRA-scaled)."""
-    units, fan_in = layer.units, layer.fan_in
+    units = layer.units
     streamed = _base_rows(base, layer)
     cached_whole: list[np.ndarray] = []
 
@@ -393,13 +398,8 @@ def _merged_layer(
             cached_whole.clear()  # the base matrix is the audit's to cache, not ours
 
     suffix = "dora" if magnitude is not None else "lora"
-    tensor = Tensor(
-        name=f"{layer.weight}+{suffix}",
-        shape=module.canonical,
-        dtype="f32",
-        role=TensorRole.BOOKKEEPING,
-        reader=whole,
-        read_span=None if streamed is None else _span_from_rows(block, fan_in),
+    tensor = _derived_tensor(
+        f"{layer.weight}+{suffix}", module.canonical, whole, None if streamed is None else block
     )
     extra = (module.a, module.b) + (() if magnitude is None else (magnitude.name,))
     merged = replace(
@@ -464,54 +464,66 @@ def load_adapter(path: str | Path, base: str | Path | Checkpoint | None = None) 
         name: replace(t, role=TensorRole.PARAMETER) if t.dtype in FLOAT_DTYPES else t
         for name, t in tensors.items()
     }
-    if base is None:
-        return _alone(target, stored, config, modules, counted, extra, notes)
-    return _merged(target, stored, config, modules, counted, extra, notes, base)
+    read = _AdapterRead(target, stored, config, modules, counted, extra, notes)
+    return _alone(read) if base is None else _merged(read, base)
 
 
-def _alone(
-    target: Path,
-    stored: Checkpoint,
-    config: AdapterConfig,
-    modules: dict[str, AdaptedModule],
-    counted: dict[str, Tensor],
-    extra: list[str],
-    notes: list[str],
-) -> Checkpoint:
+@dataclass(frozen=True)
+class _AdapterRead:
+    """What was read from the adapter file, before its layers are made (alone or merged)."""
+
+    target: Path
+    stored: Checkpoint
+    config: AdapterConfig
+    modules: dict[str, AdaptedModule]
+    counted: dict[str, Tensor]
+    extra: list[str]
+    notes: list[str]
+
+    def checkpoint(
+        self,
+        tensors: dict[str, Tensor],
+        layers: tuple[Layer, ...],
+        modules: Mapping[str, AdaptedModule],
+        base: Checkpoint | None,
+    ) -> AdapterCheckpoint:
+        """The adapter's checkpoint; merged onto ``base``, it also carries the base's files,
+        size, optimizer state and notes."""
+        return AdapterCheckpoint(
+            path=str(self.target),
+            format=self.stored.format,
+            tensors=tensors,
+            layers=layers,
+            file_size=self.stored.file_size + (base.file_size if base else 0),
+            files=(*self.stored.files, *(base.files if base else ())),
+            optimizer=base.optimizer if base else None,
+            notes=(*(base.notes if base else ()), *self.notes),
+            adapter=AdapterInfo(
+                config=self.config,
+                modules=modules,
+                base=base.path if base else None,
+                extra=tuple(self.extra),
+            ),
+        )
+
+
+def _alone(read: _AdapterRead) -> Checkpoint:
     layers: list[Layer] = []
-    all_tensors = dict(counted)
-    for module in modules.values():
+    all_tensors = dict(read.counted)
+    for module in read.modules.values():
         aux = (module.a, module.b) + (() if module.magnitude is None else (module.magnitude,))
         layer, tensor = _delta_layer(module, aux)
         layers.append(layer)
         all_tensors[tensor.name] = tensor
-    if any(m.magnitude is not None for m in modules.values()):
-        notes.append(
+    if any(m.magnitude is not None for m in read.modules.values()):
+        read.notes.append(
             "DoRA magnitudes are stored but the merged weight needs the base model "
             "(--base); the layers show the update ΔW"
         )
-    return AdapterCheckpoint(
-        path=str(target),
-        format=stored.format,
-        tensors=all_tensors,
-        layers=tuple(layers),
-        file_size=stored.file_size,
-        files=stored.files,
-        notes=tuple(notes),
-        adapter=AdapterInfo(config=config, modules=modules, extra=tuple(extra)),
-    )
+    return read.checkpoint(all_tensors, tuple(layers), read.modules, None)
 
 
-def _merged(
-    target: Path,
-    stored: Checkpoint,
-    config: AdapterConfig,
-    modules: dict[str, AdaptedModule],
-    counted: dict[str, Tensor],
-    extra: list[str],
-    notes: list[str],
-    base: str | Path | Checkpoint,
-) -> Checkpoint:
+def _merged(read: _AdapterRead, base: str | Path | Checkpoint) -> Checkpoint:
     if isinstance(base, Checkpoint):
         base_checkpoint = base
     else:
@@ -519,18 +531,20 @@ def _merged(
 
         base_checkpoint = load(base)
     if adapter_of(base_checkpoint) is not None:
-        raise LoadError(target, f"the base {base_checkpoint.path} is itself an adapter")
-    clash = sorted(set(counted) & set(base_checkpoint.tensors))
+        raise LoadError(read.target, f"the base {base_checkpoint.path} is itself an adapter")
+    clash = sorted(set(read.counted) & set(base_checkpoint.tensors))
     if clash:
-        raise LoadError(target, f"tensor {clash[0]!r} is in both the adapter and the base")
-    all_tensors: dict[str, Tensor] = {**base_checkpoint.tensors, **counted}
+        raise LoadError(read.target, f"tensor {clash[0]!r} is in both the adapter and the base")
+    all_tensors: dict[str, Tensor] = {**base_checkpoint.tensors, **read.counted}
     replaced: dict[str, Layer] = {}
     paired: dict[str, AdaptedModule] = {}
-    for module in modules.values():
-        layer = _base_layer(base_checkpoint, module, target)
+    for module in read.modules.values():
+        layer = _base_layer(base_checkpoint, module, read.target)
         if layer.name in replaced:
-            raise LoadError(target, f"two adapted modules update the base layer {layer.name!r}")
-        magnitude = counted.get(module.magnitude) if module.magnitude else None
+            raise LoadError(
+                read.target, f"two adapted modules update the base layer {layer.name!r}"
+            )
+        magnitude = read.counted.get(module.magnitude) if module.magnitude else None
         merged, tensor = _merged_layer(base_checkpoint, module, layer, magnitude)
         replaced[layer.name] = merged
         all_tensors[tensor.name] = tensor
@@ -538,27 +552,15 @@ def _merged(
             module, name=layer.name, base_layer=replace(layer, name=f"{layer.name} (base)")
         )
     layers = tuple(replaced.get(layer.name, layer) for layer in base_checkpoint.layers)
-    notes.append(
+    read.notes.append(
         f"merged onto the base {base_checkpoint.path}: adapted layers show W + ΔW"
         + (
             " (DoRA: rescaled per unit by the stored magnitudes)"
-            if any(m.magnitude is not None for m in modules.values())
+            if any(m.magnitude is not None for m in read.modules.values())
             else ""
         )
     )
-    return AdapterCheckpoint(
-        path=str(target),
-        format=stored.format,
-        tensors=all_tensors,
-        layers=layers,
-        file_size=stored.file_size + base_checkpoint.file_size,
-        files=(*stored.files, *base_checkpoint.files),
-        optimizer=base_checkpoint.optimizer,
-        notes=(*base_checkpoint.notes, *notes),
-        adapter=AdapterInfo(
-            config=config, modules=paired, base=base_checkpoint.path, extra=tuple(extra)
-        ),
-    )
+    return read.checkpoint(all_tensors, layers, paired, base_checkpoint)
 
 
 __all__ = [

@@ -22,6 +22,7 @@ from steelyard import budget
 from steelyard.dtypes import FLOAT_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
+from steelyard.loaders.base import float32_tensor
 from steelyard.loaders.conventions import role_for
 from steelyard.loaders.gguf.header import Header, TensorInfo
 
@@ -111,14 +112,13 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
             role=TensorRole.QUANTIZED,
             reader=_refuse(data.path, info),
         )
-    return Tensor(
-        name=info.name,
-        shape=shape,
-        dtype="f32",
-        role=TensorRole.PARAMETER,
-        reader=_dequantized_reader(data, info),
-        read_span=_dequantized_span(data, info),
-        stored_type=type_name(info.type_id),
+    return float32_tensor(
+        info.name,
+        shape,
+        TensorRole.PARAMETER,
+        _dequantized_reader(data, info),
+        _dequantized_span(data, info),
+        type_name(info.type_id),
     )
 
 

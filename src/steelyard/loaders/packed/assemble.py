@@ -24,6 +24,7 @@ from steelyard import budget
 from steelyard.dtypes import ALL_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
+from steelyard.loaders.base import float32_tensor
 from steelyard.loaders.packed.config import QuantConfig, read_quant_config
 from steelyard.loaders.packed.detect import Layout, detect_layout
 from steelyard.loaders.packed.modules import PackedModule, find_packed
@@ -92,15 +93,7 @@ def logical_tensor(
         return read_span(0, total).reshape(shape)
 
     shape = (experts, n_out // experts, n_in) if experts else (n_out, n_in)
-    return Tensor(
-        name=name,
-        shape=shape,
-        dtype="f32",
-        role=TensorRole.PARAMETER,
-        reader=read,
-        read_span=read_span,
-        stored_type=decoder.stored_type,
-    )
+    return float32_tensor(name, shape, TensorRole.PARAMETER, read, read_span, decoder.stored_type)
 
 
 def _unstack(

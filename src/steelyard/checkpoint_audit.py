@@ -7,12 +7,11 @@ import os
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import AbstractContextManager, contextmanager, nullcontext
+from contextlib import contextmanager, nullcontext
 from dataclasses import fields
 from typing import Any, TypeVar
 
-from threadpoolctl import threadpool_limits
-
+from steelyard.blas import blas_threads
 from steelyard.coverage import coverage_of
 from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
@@ -69,17 +68,6 @@ def _map(
         order = sorted(order, key=lambda index: -cost(items[index]))
     futures = {index: pool.submit(work, items[index]) for index in order}
     return [futures[index].result() for index in range(len(items))]
-
-
-def _blas_threads(count: int | None) -> AbstractContextManager[object]:
-    """Limit the BLAS thread pool to ``count`` threads while the block runs (None: as is).
-
-    The worker threads already keep every core busy, and two BLAS calls that each start a
-    thread per core from two workers make four threads fight over two cores: an audit of a
-    freshly initialised 322M checkpoint took 5.4 s with two workers that way, 3.2 s with one
-    BLAS thread each, and 3.9 s on one worker.
-    """
-    return nullcontext() if count is None else threadpool_limits(count, user_api="blas")
 
 
 class _Admission:
@@ -160,7 +148,9 @@ def run_rules(
         # Running alone, the layer gets every core for BLAS back. The BLAS thread count of a
         # layer never depends on ``jobs``: float32 products are summed in an order that
         # depends on it, and the report must not.
-        with admission.slots(jobs if alone else 1), _blas_threads(blas if alone else 1):
+        # Other layers run with the one BLAS thread set around the pool (changing the limit
+        # costs a call into every BLAS library, so it is changed only for the layers alone).
+        with admission.slots(jobs if alone else 1), (blas_threads(blas) if alone else nullcontext()):
             try:
                 out: list[list[Finding]] = []
                 for spec in hooked:
@@ -186,7 +176,11 @@ def run_rules(
 
     pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
     try:
-        with _blas_threads(1):
+        # One BLAS thread per worker: the workers already keep every core busy, and two BLAS
+        # calls that each start a thread per core from two workers make four threads fight
+        # over two cores (a freshly initialised 322M checkpoint took 5.4 s with two workers
+        # that way, 3.2 s with one BLAS thread each, and 3.9 s on one worker).
+        with blas_threads(1):
             per_layer = (
                 _map(pool, one_layer, checkpoint.layers, lambda layer: _parameters(checkpoint, layer))
                 if hooked else []

@@ -54,7 +54,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from threadpoolctl import threadpool_limits
+
+from steelyard.blas import blas_threads
 
 #: Working-set bytes for one Gram block (rows of the block × all later rows, float32).
 BLOCK_BYTES = 32 * 2**20
@@ -518,7 +519,7 @@ def candidate_pairs(
     _keep(found, *_pair_hits(view, paired, threshold, negative, tally))
     # Bucket products are small: OpenBLAS threads would cost more than they do (measured: a
     # 32-row bucket of width 1024 took 8.8 ms on two threads, 0.2 ms on one).
-    with threadpool_limits(1, user_api="blas"):
+    with blas_threads(1):
         for bucket in buckets:
             hits = _bucket_hits(view, bucket, threshold, negative, tally)
             for into, part in zip(found, hits, strict=True):

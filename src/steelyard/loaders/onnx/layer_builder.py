@@ -212,22 +212,11 @@ class LayerBuilder:
         if found is None:
             return []
         shape = found.shape
-        draft = Draft(
-            node=node,
-            name=self.base_name(node, found.weight),
-            kind=kind,
-            weight=found,
-            units=shape[0],
-            in_per_group=shape[1],
-            kernel=tuple(shape[2:]),
-            groups=groups,
-            view=found.read,
-            data=node.input(0),
-            out=follow_from or (node.outputs[0] if node.outputs else ""),
-            trailing=len(shape) - 2,
-            bias=found.bias,
-            bias_view=found.bias_read,
-        )
+        draft = self._simple(node, kind, found, shape, found.read, node.input(0), groups, len(shape) - 2)
+        # The dequantized read is float32 in canonical shape already (no second conversion),
+        # and a bias is found with the quantized weight, not after the node.
+        draft.view, draft.bias, draft.bias_view = found.read, found.bias, found.bias_read
+        draft.out = follow_from or draft.out
         if node.op == "QLinearConv":
             draft.want_bias = False
             draft.opaque_next = True  # a fused ReLU hides in the output quantisation range

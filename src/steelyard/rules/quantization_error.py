@@ -95,6 +95,7 @@ activation-aware scaling, finer groups) on them.
 
 from __future__ import annotations
 
+import functools
 import threading
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -160,9 +161,12 @@ def _dequantized(block: np.ndarray, levels: float, group: int | None) -> np.ndar
         # Zeros neither change a group's absmax nor add error (0 quantizes to 0).
         padded = np.pad(block, ((0, 0), (0, pad))) if pad else block
         shaped = padded.reshape(rows, -1, group)
-    scale = np.abs(shaped).max(axis=2, keepdims=True) / np.float32(levels)
-    safe = np.where(scale > 0, scale, np.float32(1))
-    out = np.rint(shaped / safe) * safe
+    scale = np.abs(shaped).max(axis=2, keepdims=True)
+    scale /= np.float32(levels)
+    scale[scale == 0] = 1  # an all-zero group quantizes to 0 whatever its scale
+    out = shaped / scale
+    np.rint(out, out=out)
+    out *= scale
     return out.reshape(rows, -1)[:, :width]
 
 
@@ -183,14 +187,18 @@ def column_weights(matrix: np.ndarray) -> np.ndarray:
     return out
 
 
+@functools.lru_cache(maxsize=64)
 def sampled_rows(units: int, fan_in: int, budget: int, seed: int = 0) -> np.ndarray | None:
     """The rows measured: all (None) when ``units·fan_in <= budget`` or ``budget`` is 0,
     else ``max(1, budget // fan_in)`` rows drawn without replacement by
-    ``numpy.random.default_rng(seed)``, sorted."""
+    ``numpy.random.default_rng(seed)``, sorted (read-only: drawn once per shape, as the
+    experts of a mixture-of-experts model share a few shapes)."""
     if budget <= 0 or units * fan_in <= budget:
         return None
     count = max(1, min(units, budget // max(1, fan_in)))
-    return np.sort(np.random.default_rng(seed).choice(units, size=count, replace=False))
+    rows = np.sort(np.random.default_rng(seed).choice(units, size=count, replace=False))
+    rows.flags.writeable = False
+    return rows
 
 
 def rtn_errors(

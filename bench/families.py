@@ -29,6 +29,8 @@ just before each family's steps):
 * ``scan``: for every tensor ``safe_open(...).get_tensor``, widen to float32,
   ``numpy.linalg.norm(x, axis=1)`` for 2-D tensors, ``numpy.isnan(x).any()``;
 * ``audit``: ``steelyard.api.audit(path)``, every rule enabled, default ``--jobs``;
+* ``audit-1``: the same with ``jobs=1``: how the audit scales with cores, and whether its
+  report (all but the creation time) is the same as with the default jobs;
 * ``searched``: the same with ``twin-units``'s ``report-unlinked`` on, so every layer is
   twin-searched (a llama block's projections otherwise are not: no consumer to merge into).
 
@@ -44,6 +46,7 @@ Nothing is asserted: the issue's targets (audit <= 1.0 × scan on trained-like w
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import shutil
@@ -74,7 +77,7 @@ SIZES = {
 }
 TINY = Shape(vocab=256, hidden=64, intermediate=128, layers=1)
 FAMILIES = ("gaussian", "trained", "lowrank-heavytail", "outlier-channels", "near-duplicate")
-STEPS = ("floor", "scan", "audit", "searched")
+STEPS = ("floor", "scan", "audit", "audit-1", "searched")
 SHARD_BYTES = 3 * 2**29  # 1.5 GiB
 CHUNK = 16 * 2**20
 GIB = 2**30
@@ -135,7 +138,7 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
         import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
 
         scan(tiny)
-    elif step in ("audit", "searched"):
+    elif step in ("audit", "audit-1", "searched"):
         from steelyard.api import audit
 
         audit(tiny, policy=_policy(step))
@@ -147,9 +150,14 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
         elif step == "scan":
             scan(path)
         else:
-            report = audit(path, policy=_policy(step))
+            report = audit(path, policy=_policy(step), jobs=1 if step == "audit-1" else None)
             extra["findings"] = len(report.audits[0].findings)
         seconds = time.perf_counter() - start
+    if step in ("audit", "audit-1"):
+        # Reports must not depend on --jobs: everything but the creation time is compared.
+        document = json.loads(report.render("json"))
+        document.pop("created", None)
+        extra["report_sha256"] = hashlib.sha256(json.dumps(document, sort_keys=True).encode()).hexdigest()
     emit({"seconds": seconds, "startup": startup, **extra, **probe.report()})
 
 
@@ -208,7 +216,7 @@ def measure(
                 "startup": statistics.median(r["startup"] for r in results),
                 "vm_hwm": max(r["vm_hwm"] for r in results),
                 "peak_anon": max(r["peak_anon"] for r in results),
-                **{k: results[0][k] for k in ("findings", "bytes") if k in results[0]},
+                **{k: results[0][k] for k in ("findings", "bytes", "report_sha256") if k in results[0]},
             }
         shares = {
             variant: run_child(Path(__file__), [f"shares{suffix}", str(paths[family]), str(tiny)])[
@@ -231,20 +239,24 @@ def print_summary(summary: dict[str, Any]) -> None:
         + "/".join(f"{x:.2f}" for x in summary["load_average_1min"])
     )
     print(
-        "| family | floor | scan | audit | audit/scan | audit/floor | searched | searched/scan "
-        "| searched/floor | peak RSS floor / scan / audit / searched | findings |"
+        "| family | floor | scan | audit | audit/scan | audit/floor | jobs 1 | jobs 1 / jobs 2 "
+        "| same report | searched | searched/scan | searched/floor "
+        "| peak RSS floor / scan / audit / audit-1 / searched | findings |"
     )
-    print("| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: |")
+    print("| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: | ---: | ---: | --- | ---: |")
     for family, data in summary["families"].items():
         if not data["steps"]:
             continue
         s = {k: v["seconds"] for k, v in data["steps"].items()}
         peaks = " / ".join(mib(data["steps"][k]["vm_hwm"]) for k in STEPS)
         target = 1.0 if family in TRAINED_LIKE else 1.3
+        same = data["steps"]["audit"]["report_sha256"] == data["steps"]["audit-1"]["report_sha256"]
         flag = "" if s["audit"] / s["scan"] <= target else " (over)"
         print(
             f"| {family} | {s['floor']:.3f} s | {s['scan']:.2f} s | {s['audit']:.2f} s "
             f"| **{s['audit'] / s['scan']:.2f}**{flag} | {s['audit'] / s['floor']:.0f} "
+            f"| {s['audit-1']:.2f} s | {s['audit-1'] / s['audit']:.2f} "
+            f"| {'yes' if same else 'NO'} "
             f"| {s['searched']:.2f} s | {s['searched'] / s['scan']:.2f} "
             f"| {s['searched'] / s['floor']:.0f} | {peaks} "
             f"| {data['steps']['audit']['findings']} / {data['steps']['searched']['findings']} |"

@@ -421,18 +421,21 @@ def rules(
     ),
 ) -> None:
     """List every rule, or explain one with its math."""
-    from steelyard.render.rules_text import AnySpec, render_rule, render_rules
-    from steelyard.rules import registry
-
-    specs: dict[str, AnySpec] = registry(None)
     if format is LayersFormat.json:
         from steelyard.render.rules_json import render_rules_json
+        from steelyard.rules import registry
 
-        if name is not None and name not in specs:
+        every = registry(None)
+        if name is not None and name not in every:
             _say(f"steelyard: error: no rule named {name!r}")
             raise typer.Exit(2)
-        sys.stdout.write(render_rules_json([specs[name]] if name else list(specs.values())))
+        sys.stdout.write(render_rules_json([every[name]] if name else list(every.values())))
         return
+    # The list and the pages come from the catalogue: no rule module (nor numpy) is imported.
+    from steelyard.render.rules_text import AnySpec, render_rule, render_rules
+    from steelyard.rule_catalogue import cards
+
+    specs: dict[str, AnySpec] = {card.name: card for card in cards()}
     if name is None:
         sys.stdout.write(render_rules(specs, color=_color(), width=_width()))
         return

@@ -5,18 +5,36 @@ from __future__ import annotations
 import inspect
 import re
 from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any, Protocol
 
-from rich.console import RenderableType
-
+from steelyard.render.console import to_text
 from steelyard.render.grid import COMPACT_BELOW, Column, Grid
-from steelyard.render.text import to_text
-from steelyard.rules.base import RuleSpec
+
+if TYPE_CHECKING:
+    from rich.console import RenderableType
+
+    from steelyard.findings import Severity
 
 #: A Sphinx cross-reference in a docstring (":func:`name`"): on a terminal, just the code.
 _SPHINX_ROLE = re.compile(r":(?:mod|func|class|meth|data|attr|obj):`([^`]*)`")
 
-#: Kept for callers' annotations: every rule, of any command, is a RuleSpec.
-AnySpec = RuleSpec
+
+class AnySpec(Protocol):
+    """What the list and the page read of a rule: a live RuleSpec or its catalogue card
+    (:mod:`steelyard.rule_catalogue`), which needs none of the rules' imports."""
+
+    @property
+    def name(self) -> str: ...
+    @property
+    def severity(self) -> Severity: ...
+    @property
+    def summary(self) -> str: ...
+    @property
+    def doc(self) -> str: ...
+    @property
+    def thresholds(self) -> dict[str, Any]: ...
+    @property
+    def help_uri(self) -> str: ...
 
 
 def _thresholds(spec: AnySpec) -> str:

@@ -1,12 +1,10 @@
-"""Rendering rich renderables to a string, so renderers stay free of I/O."""
+"""Text report helpers: tables, numbers and rendering rich renderables to a string."""
 
 from __future__ import annotations
 
-import io
 import math
 from collections.abc import Container, Iterable
 
-from rich.console import Console, RenderableType
 from rich.table import Table
 
 from steelyard.coverage import Coverage, describe
@@ -14,27 +12,7 @@ from steelyard.numbers import count as count
 from steelyard.numbers import measured
 from steelyard.numbers import percent as percent
 from steelyard.numbers import plural as plural
-
-
-def to_text(renderables: Iterable[RenderableType], *, color: bool = False, width: int = 120) -> str:
-    """Render to text; with ``color`` the string carries ANSI styles for a terminal."""
-    buffer = io.StringIO()
-    console = Console(
-        file=buffer,
-        width=width,
-        color_system="truecolor" if color else None,
-        force_terminal=color,
-        no_color=not color,
-        highlight=False,
-        # Names from files are data, never markup: "[/bold]" in a layer name is printed as
-        # it is instead of restyling (or breaking) the report.
-        markup=False,
-        emoji=False,
-        soft_wrap=False,
-    )
-    for renderable in renderables:
-        console.print(renderable)
-    return buffer.getvalue()
+from steelyard.render.console import to_text as to_text
 
 
 def titled_table(title: str, columns: Iterable[str], right: Container[str]) -> Table:

@@ -18,6 +18,7 @@ from collections.abc import Callable, Mapping
 import numpy as np
 
 from steelyard.graph import Activation, Layer, LayerKind, Tensor, TensorRole
+from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
 from steelyard.streaming import float32_from_spans
 
 _LEAVES = ("gate_up_proj", "gate_proj", "up_proj", "down_proj")
@@ -108,20 +109,14 @@ def expert_layers(
         if bias is None or bias.shape != (tensor.shape[0], units) or bias.role is not TensorRole.PARAMETER:
             bias = None
         for expert in range(tensor.shape[0]):
-            out.append(
-                Layer(
-                    name=f"{module}.{expert}.{leaf}",
-                    kind=LayerKind.DENSE,
-                    weight=tensor.name,
-                    bias=bias.name if bias is not None else None,
-                    units=units,
-                    in_per_group=fan_in,
-                    kernel=(),
-                    groups=1,
-                    activation=Activation.UNKNOWN,
-                    weight_view=_Read(tensor, expert, transposed),
-                    bias_view=_bias_reader(bias, expert) if bias is not None else None,
-                    orient=_Slice(expert, transposed),
-                )
+            source = weight_source(
+                tensor.name,
+                _Read(tensor, expert, transposed),
+                _Slice(expert, transposed),
+                None if bias is None else bias.name,
+                None if bias is None else _bias_reader(bias, expert),
             )
+            name = f"{module}.{expert}.{leaf}"
+            geometry = layer_geometry(units, fan_in)
+            out.append(make_layer(name, LayerKind.DENSE, Activation.UNKNOWN, geometry, source))
     return out

@@ -56,6 +56,7 @@ from steelyard.loaders.adapter.model import (
     adapter_of,
 )
 from steelyard.loaders.base import float32_tensor, parse_json
+from steelyard.loaders.layer_parts import canonical_geometry, make_layer, weight_source
 from steelyard.safepath import read_beside
 
 CONFIG_NAME = "adapter_config.json"
@@ -288,20 +289,9 @@ def _delta_layer(module: AdaptedModule, aux: tuple[str, ...]) -> tuple[Layer, Te
         return block(0, units).reshape(module.canonical)
 
     tensor = _derived_tensor(f"{module.name}.delta_weight", module.canonical, whole, block)
-    layer = Layer(
-        name=module.name,
-        kind=module.kind,
-        weight=tensor.name,
-        bias=None,
-        units=units,
-        in_per_group=module.canonical[1],
-        kernel=tuple(module.canonical[2:]),
-        groups=1,
-        activation=Activation.UNKNOWN,
-        weight_view=whole,
-        orient=RowSlice(),
-        aux=aux,
-    )
+    source = weight_source(tensor.name, whole, RowSlice())
+    geometry = canonical_geometry(module.canonical)
+    layer = make_layer(module.name, module.kind, Activation.UNKNOWN, geometry, source, aux=aux)
     return layer, tensor
 
 

@@ -19,7 +19,8 @@ import numpy as np
 from steelyard.errors import LoadError
 from steelyard.graph import Activation, Layer, LayerKind, Link, Tensor, TensorRole
 from steelyard.loaders.base import MAX_METADATA_BYTES
-from steelyard.loaders.conventions.views import AS_STORED, float_reader
+from steelyard.loaders.conventions.views import AS_STORED, float_reader, stored_source
+from steelyard.loaders.layer_parts import canonical_geometry, make_layer
 from steelyard.safepath import read_beside
 
 #: Layout files beside a checkpoint: ``<file stem>.layout.toml`` or ``steelyard.layout.toml``.
@@ -183,7 +184,7 @@ def _declare(
             path, entry, f"axes {list(axes)} are no ordering of the weight's {ndim} axes"
         )
     canonical = tuple(weight.shape[a] for a in axes)
-    units, fan, kernel = canonical[0], canonical[1], canonical[2:]
+    units = canonical[0]
     groups = int(entry.get("groups", 1))
     if units % groups:
         raise _layout_error(path, entry, f"groups={groups} does not divide its {units} units")
@@ -201,20 +202,10 @@ def _declare(
                 f"{list(canonical)} has {units} units",
             )
     transform = AS_STORED if axes == tuple(range(ndim)) else _Axes(axes)
-    return Layer(
-        name=entry["name"],
-        kind=kind,
-        weight=weight.name,
-        bias=bias.name if bias is not None else None,
-        units=units,
-        in_per_group=fan,
-        kernel=kernel,
-        groups=groups,
-        activation=_ACTIVATIONS[entry.get("activation", "unknown")],
-        weight_view=float_reader(weight, None if transform is AS_STORED else transform),
-        bias_view=float_reader(bias) if bias is not None else None,
-        orient=transform,
-    )
+    activation = _ACTIVATIONS[entry.get("activation", "unknown")]
+    geometry = canonical_geometry(canonical, groups)
+    source = stored_source(weight, transform, bias)
+    return make_layer(entry["name"], kind, activation, geometry, source)
 
 
 def apply_layout(

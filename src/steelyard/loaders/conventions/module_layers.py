@@ -19,9 +19,10 @@ from steelyard.loaders.conventions.views import (
     AS_STORED,
     SameOrientation,
     WeightNormView,
-    float_reader,
+    stored_source,
     weight_norm_dim,
 )
+from steelyard.loaders.layer_parts import layer_geometry, make_layer
 
 _EMBEDDING = re.compile(
     r"(^|[._])(embed\w*|embeddings?|wte|wpe|tok_embeddings|word_embeddings|"
@@ -117,23 +118,15 @@ def weight_layer(module: Module, model_type: str) -> Layer | None:
         return None
     if bias is not None and bias.shape[0] != out:
         bias = None
-    view: Callable[[], np.ndarray] = float_reader(weight, transform)
-    orient: Callable[[np.ndarray], np.ndarray] = transform or AS_STORED
+    source = stored_source(weight, transform or AS_STORED, bias)
     if gain is not None and dim is not False:
-        view = WeightNormView(gain, weight, dim, transform)
-        orient = transform or SameOrientation()
-    return Layer(
-        name=module.name or weight.name,
-        kind=kind,
-        weight=weight.name,
-        bias=bias.name if bias is not None else None,
-        units=out,
-        in_per_group=fan,
-        kernel=kernel,
-        groups=1,
-        activation=Activation.UNKNOWN,
-        weight_view=view,
-        bias_view=float_reader(bias) if bias is not None else None,
-        orient=orient,
+        source["weight_view"] = WeightNormView(gain, weight, dim, transform)
+        source["orient"] = transform or SameOrientation()
+    return make_layer(
+        module.name or weight.name,
+        kind,
+        Activation.UNKNOWN,
+        layer_geometry(out, fan, kernel),
+        source,
         aux=(gain.name,) if gain is not None else (),
     )

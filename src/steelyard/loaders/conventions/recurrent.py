@@ -14,7 +14,8 @@ import numpy as np
 
 from steelyard.graph import Activation, Layer, LayerKind
 from steelyard.loaders.conventions.module_names import RECURRENT, Module
-from steelyard.loaders.conventions.views import TransposedColumns, float_reader, row_slice
+from steelyard.loaders.conventions.views import TransposedColumns, row_slice, stored_source
+from steelyard.loaders.layer_parts import layer_geometry, make_layer
 
 _GATES = {4: ("i", "f", "g", "o"), 3: ("r", "z", "n"), 1: ("h",)}
 _GATE_ACT = {
@@ -60,23 +61,10 @@ def recurrent_layers(module: Module) -> list[Layer]:
             pick: Callable[[np.ndarray], np.ndarray] = (
                 TransposedColumns(sl.start, sl.stop) if transposed else row_slice(sl)
             )
-            out.append(
-                Layer(
-                    name=f"{module.name + '.' if module.name else ''}{which}{level}{reverse or ''}.{gate}",
-                    kind=LayerKind.RECURRENT,
-                    weight=weight.name,
-                    bias=bias.name if bias is not None else None,
-                    units=hidden,
-                    in_per_group=fan,
-                    kernel=(),
-                    groups=1,
-                    activation=_GATE_ACT[gate],
-                    weight_view=float_reader(weight, pick),
-                    orient=pick,
-                    bias_view=float_reader(bias, row_slice(sl)) if bias is not None else None,
-                    gate=gate,
-                )
-            )
+            name = f"{module.name + '.' if module.name else ''}{which}{level}{reverse or ''}.{gate}"
+            source = stored_source(weight, pick, bias, row_slice(sl))
+            activation, shape = _GATE_ACT[gate], layer_geometry(hidden, fan)
+            out.append(make_layer(name, LayerKind.RECURRENT, activation, shape, source, gate=gate))
     return out
 
 

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from steelyard.graph import RowSlice, Tensor
+from steelyard.loaders.layer_parts import WeightSource, weight_source
 
 
 def float_reader(
@@ -36,6 +37,23 @@ def float_reader(
 
 #: Stored orientation is canonical; a RowSlice (not a bare function) tells the audit so.
 AS_STORED = RowSlice()
+
+
+def stored_source(
+    weight: Tensor,
+    orient: Callable[[np.ndarray], np.ndarray],
+    bias: Tensor | None = None,
+    bias_rows: RowSlice | None = None,
+) -> WeightSource:
+    """A layer's weights read from the stored ``weight`` through ``orient`` (nothing applied
+    when it is :data:`AS_STORED`), its bias from ``bias``, cut to ``bias_rows`` when given."""
+    return weight_source(
+        weight.name,
+        float_reader(weight, None if orient is AS_STORED else orient),
+        orient,
+        None if bias is None else bias.name,
+        None if bias is None else float_reader(bias, bias_rows),
+    )
 
 
 def row_slice(rows: slice) -> RowSlice:

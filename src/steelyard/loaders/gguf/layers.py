@@ -37,6 +37,7 @@ from steelyard.graph import (
     TensorRole,
 )
 from steelyard.loaders.gguf.header import ArrayValue
+from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
 from steelyard.streaming import float32_from_spans
 
 _BLOCK = re.compile(r"^blk\.(\d+)\.(.+)\.(weight|bias)$")
@@ -156,20 +157,14 @@ def _layer(
             bias = None
         else:
             bias_view = _vector(bias, bias_first, units)
-    return Layer(
-        name=name,
-        kind=kind,
-        weight=weight.name,
-        bias=bias.name if bias is not None else None,
-        units=units,
-        in_per_group=fan_in,
-        kernel=(),
-        groups=1,
-        activation=activation,
-        weight_view=_Rows(weight, first, (units, fan_in)),
-        bias_view=bias_view,
-        orient=orient,
+    source = weight_source(
+        weight.name,
+        _Rows(weight, first, (units, fan_in)),
+        orient,
+        None if bias is None else bias.name,
+        bias_view,
     )
+    return make_layer(name, kind, activation, layer_geometry(units, fan_in), source)
 
 
 def _ffn_activations(arch: str, gated: bool) -> tuple[Activation, Activation]:

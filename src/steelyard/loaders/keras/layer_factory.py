@@ -35,6 +35,13 @@ from steelyard.loaders.keras.orientation import (
     gate_columns,
     same,
 )
+from steelyard.loaders.layer_parts import (
+    WeightSource,
+    canonical_geometry,
+    layer_geometry,
+    make_layer,
+    weight_source,
+)
 
 
 @dataclass
@@ -90,6 +97,15 @@ class LayerFactory:
             return _recurrent(self, atom, have_config)
         return None
 
+    def _source(
+        self,
+        kernel: Tensor,
+        orient: Callable[[np.ndarray], np.ndarray],
+        bias: tuple[str | None, Callable[[], np.ndarray] | None] = (None, None),
+    ) -> WeightSource:
+        """``kernel`` read through ``orient``, with ``bias`` as :meth:`bias` returns it."""
+        return weight_source(kernel.name, float_view(kernel, orient), orient, *bias)
+
     def _extras(
         self, atom: Atom, prefix: str, kernel: Tensor, unit_axes: set[int]
     ) -> dict[str, Any]:
@@ -107,22 +123,10 @@ class LayerFactory:
                 atom, f"kernel {kernel.name!r} has shape {kernel.shape}, expected [in, out]"
             )
         fan, units = kernel.shape
-        bias, bias_view = self.bias(atom, units)
-        layer = Layer(
-            name=atom.name,
-            kind=LayerKind.DENSE,
-            weight=kernel.name,
-            bias=bias,
-            units=units,
-            in_per_group=fan,
-            kernel=(),
-            groups=1,
-            activation=activation,
-            weight_view=float_view(kernel, dense_canonical),
-            orient=dense_canonical,
-            bias_view=bias_view,
-            **self._extras(atom, "kernel", kernel, {1}),
-        )
+        source = self._source(kernel, dense_canonical, self.bias(atom, units))
+        extras = self._extras(atom, "kernel", kernel, {1})
+        geometry = layer_geometry(units, fan)
+        layer = make_layer(atom.name, LayerKind.DENSE, activation, geometry, source, **extras)
         return Built([layer], [atom.name], atom.name, atom.name)
 
     def _conv(self, atom: Atom, activation: Activation, rank: int, transposed: bool) -> Built:
@@ -143,22 +147,10 @@ class LayerFactory:
         else:
             units, fan, unit_axis = shape[-1], shape[-2], rank + 1
             kind, view = LayerKind.CONV, conv_canonical
-        bias, bias_view = self.bias(atom, units)
-        layer = Layer(
-            name=atom.name,
-            kind=kind,
-            weight=kernel.name,
-            bias=bias,
-            units=units,
-            in_per_group=fan,
-            kernel=tuple(shape[:-2]),
-            groups=groups,
-            activation=activation,
-            weight_view=float_view(kernel, view),
-            orient=view,
-            bias_view=bias_view,
-            **self._extras(atom, "kernel", kernel, {unit_axis}),
-        )
+        source = self._source(kernel, view, self.bias(atom, units))
+        geometry = layer_geometry(units, fan, tuple(shape[:-2]), groups)
+        extras = self._extras(atom, "kernel", kernel, {unit_axis})
+        layer = make_layer(atom.name, kind, activation, geometry, source, **extras)
         return Built([layer], [atom.name], atom.name, atom.name)
 
     def _depthwise_layer(
@@ -177,22 +169,11 @@ class LayerFactory:
             )
         channels, multiplier = shape[-2], shape[-1]
         units = channels * multiplier
-        bias, bias_view = self.bias(atom, units) if with_bias else (None, None)
-        return Layer(
-            name=name,
-            kind=LayerKind.CONV,
-            weight=kernel.name,
-            bias=bias,
-            units=units,
-            in_per_group=1,
-            kernel=tuple(shape[:-2]),
-            groups=channels,
-            activation=activation,
-            weight_view=float_view(kernel, depthwise_canonical),
-            orient=depthwise_canonical,
-            bias_view=bias_view,
-            **self._extras(atom, "depthwise", kernel, {rank, rank + 1}),
-        )
+        bias = self.bias(atom, units) if with_bias else (None, None)
+        source = self._source(kernel, depthwise_canonical, bias)
+        geometry = layer_geometry(units, 1, tuple(shape[:-2]), channels)
+        extras = self._extras(atom, "depthwise", kernel, {rank, rank + 1})
+        return make_layer(name, LayerKind.CONV, activation, geometry, source, **extras)
 
     def _depthwise(self, atom: Atom, activation: Activation, rank: int) -> Built:
         layer = self._depthwise_layer(
@@ -222,20 +203,13 @@ class LayerFactory:
                 f"pointwise kernel {point.name!r} has shape {shape}, expected [1…, {depthwise.units}, out]",
             )
         units = shape[-1]
-        bias, bias_view = self.bias(atom, units)
-        pointwise = Layer(
-            name=point_name,
-            kind=LayerKind.CONV,
-            weight=point.name,
-            bias=bias,
-            units=units,
-            in_per_group=shape[-2],
-            kernel=tuple(shape[:-2]),
-            groups=1,
-            activation=activation,
-            weight_view=float_view(point, conv_canonical),
-            orient=conv_canonical,
-            bias_view=bias_view,
+        source = self._source(point, conv_canonical, self.bias(atom, units))
+        pointwise = make_layer(
+            point_name,
+            LayerKind.CONV,
+            activation,
+            layer_geometry(units, shape[-2], tuple(shape[:-2])),
+            source,
             inputs_from=(depth_name,),
             linked_by=Link.CONFIG,
             **self._extras(atom, "pointwise", point, {rank + 1}),
@@ -250,18 +224,12 @@ class LayerFactory:
             )
         conf = atom.config
         # Stored [vocab, dim] is already rows-first, like a lookup table elsewhere.
-        layer = Layer(
-            name=atom.name,
-            kind=LayerKind.EMBEDDING,
-            weight=table.name,
-            bias=None,
-            units=table.shape[0],
-            in_per_group=table.shape[1],
-            kernel=(),
-            groups=1,
-            activation=Activation.IDENTITY,
-            weight_view=float_view(table, same),
-            orient=same,
+        layer = make_layer(
+            atom.name,
+            LayerKind.EMBEDDING,
+            Activation.IDENTITY,
+            canonical_geometry(table.shape),
+            self._source(table, same),
             constraint=constraint_of(conf.get("embeddings_constraint"), 2, {0}),
             regularizer=regularizer_of(conf.get("embeddings_regularizer")),
         )
@@ -314,27 +282,15 @@ def _recurrent(factory: LayerFactory, atom: Atom, have_config: bool) -> Built:
         for index, gate in enumerate(gates):
             columns = slice(index * hidden, (index + 1) * hidden)
             name = f"{atom.name}/{part}/{gate}"
-            bias_view = None
+            bias_part: tuple[str | None, Callable[[], np.ndarray] | None] = (None, None)
             if bias is not None and row is not None:
-                bias_view = float_view(bias, bias_slice(columns, row))
-            layers.append(
-                Layer(
-                    name=name,
-                    kind=LayerKind.RECURRENT,
-                    weight=tensor.name,
-                    bias=bias.name if bias_view is not None and bias is not None else None,
-                    units=hidden,
-                    in_per_group=tensor.shape[0],
-                    kernel=(),
-                    groups=1,
-                    activation=gate_acts[gate],
-                    weight_view=float_view(tensor, gate_columns(columns)),
-                    orient=gate_columns(columns),
-                    bias_view=bias_view,
-                    gate=gate,
-                    **extras,
-                )
+                bias_part = (bias.name, float_view(bias, bias_slice(columns, row)))
+            source = factory._source(tensor, gate_columns(columns), bias_part)
+            geometry = layer_geometry(hidden, tensor.shape[0])
+            layer = make_layer(
+                name, LayerKind.RECURRENT, gate_acts[gate], geometry, source, gate=gate, **extras
             )
+            layers.append(layer)
             if part == "kernel":
                 entry.append(name)
     return Built(layers, entry, None, None)

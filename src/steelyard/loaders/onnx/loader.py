@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Layer, LayerKind, Link, Tensor, mark_outputs
+from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
 from steelyard.loaders.onnx.input_walk import InputWalk
 from steelyard.loaders.onnx.layer_builder import LayerBuilder, unique_names
 from steelyard.loaders.onnx.layer_draft import Draft, f32
@@ -81,21 +82,16 @@ def _layers(graphs: Graphs, folder: Folder, drafts: list[Draft]) -> tuple[Layer,
             inputs: tuple[str, ...] | None = draft.own_inputs
         else:
             inputs = backward.sources(draft.data)
+        weight = draft.weight.source if isinstance(draft.weight, View) else draft.weight.weight
+        source = weight_source(weight, draft.view, None, bias, None if bias is None else bias_view)
+        geometry = layer_geometry(draft.units, draft.in_per_group, draft.kernel, draft.groups)
         layers.append(
-            Layer(
-                name=draft.name,
-                kind=draft.kind,
-                weight=draft.weight.source
-                if isinstance(draft.weight, View)
-                else draft.weight.weight,
-                bias=bias,
-                units=draft.units,
-                in_per_group=draft.in_per_group,
-                kernel=draft.kernel,
-                groups=draft.groups,
-                activation=activation,
-                weight_view=draft.view,
-                bias_view=bias_view if bias is not None else None,
+            make_layer(
+                draft.name,
+                draft.kind,
+                activation,
+                geometry,
+                source,
                 norm=norm,
                 inputs_from=inputs or (),
                 linked_by=Link.NONE if inputs is None else Link.GRAPH,

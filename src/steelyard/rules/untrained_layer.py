@@ -71,8 +71,11 @@ across the checkpoint that decides which of the layers that passed are reported.
    37 %; from memory, and confirmed by the test suite's fresh draws of every family from
    64 × 8 to 1024 × 1024, none of which comes near the limit). Training makes units differ in
    norm: row scales spread lognormally by only 5 % already give R ≈ 12 on a 2048 × 2048 layer.
-   The row norms come from the shared one-pass statistics, so this test costs nothing and
-   keeps the spectrum test to the layers that really look untouched.
+   The row norms come from the shared one-pass statistics, so this test costs nothing; it
+   runs first, with the largest kurtosis among the layer's candidates (R falls as κ grows, so
+   a layer beyond the limit then is beyond it for whichever candidate fits best). Most
+   trained layers end here, before any sample is drawn, and the answer is the one testing it
+   after the distribution would give.
 
 3. *Spectrum.* No singular value of W[units, fan_in] may lie beyond the Marchenko–Pastur edge
    σ(√m + √n) (Marchenko & Pastur 1967) by more than ``edge-fluctuations`` (4) Tracy–Widom
@@ -80,15 +83,25 @@ across the checkpoint that decides which of the layers that passed are reported.
    singular value; see :mod:`steelyard.rules._spectrum`), σ being the element standard
    deviation of the best candidate. Training grows a few strong directions, which leave the
    bulk; a layer that matches an initializer's histogram but has such an outlier was trained
-   and is not reported. The top singular value comes from ``numpy.linalg.svd`` for matrices of
-   up to 2^16 entries (256 × 256) and from seeded Golub–Kahan–Lanczos bidiagonalisation beyond
-   (up to 40 steps, each one product with W and one with Wᵀ, stopping when a step adds less
-   than 5 % of a fluctuation or once the value passes the limit; see
-   :func:`steelyard.rules._spectrum.top_singular_value`). The estimate never overestimates,
-   and Lanczos converges fastest for the values that stand out from the bulk, which are the
-   ones it looks for; on a bulk without outliers it may stop a fluctuation or two low, which
-   does not change the answer. (A full SVD takes about 30 ms at 512 × 512 and seconds at
-   2048 × 5632; 30 Lanczos steps on the latter took 75 ms here.)
+   and is not reported. Matrices of more than 2^17 entries (256 × 512) are searched on every
+   k-th row (k up to 8, at least 2^17 entries and 64 rows kept, from a seeded offset), against
+   the edge and fluctuation of that m' × n subsample: the rows of an i.i.d. matrix are an
+   i.i.d. matrix, so a fresh draw passes as often as before, and a submatrix's top singular
+   value never exceeds the whole one's (Thompson 1972), so what it shows beyond its edge the
+   whole matrix has too. This bounds the search to about two or three passes over the matrix
+   (it took 40–80 on the whole one); the price is power against *weak* learned directions: a
+   direction θ·u·vᵀ is seen from about 2.5 σ(mn)^{1/4} instead of 1.5 σ(mn)^{1/4} (the
+   threshold σ(mn)^{1/4} below which no method can see it, Baik, Ben Arous & Péché 2005),
+   measured on 1024 × 1024 draws in the tests. The top singular value comes from
+   ``numpy.linalg.svd`` for up to 2^16 entries and from seeded Golub–Kahan–Lanczos
+   bidiagonalisation beyond (up to 40 steps, each one product with the rows and one with their
+   transpose, stopping when a step adds less than 5 % of a fluctuation or once the value passes
+   the limit; see :func:`steelyard.rules._spectrum.top_singular_value`). The estimate never
+   overestimates, and Lanczos converges fastest for the values that stand out from the bulk,
+   which are the ones it looks for; on a bulk without outliers it may stop a fluctuation or
+   two low, which does not change the answer. The measurement ``untrained-layer.spectrum``
+   (the HTML report's spectrum chart) gives the top value, edge and limit of the rows searched
+   and, for a subsample, their count (``rows_searched``).
 
 4. *Significance across candidates and layers.* The three tests above can only fail to
    reject "this is an initializer's draw", and failing to reject is not evidence: with a
@@ -125,9 +138,9 @@ across the checkpoint that decides which of the layers that passed are reported.
 
    The per-layer tests run while the layer is in memory; the layers' results are kept and
    the Holm step runs once every layer is done, so findings never depend on ``--jobs``.
-   Candidates are still ruled out early, by the probe bound on D against the KS limit, as
-   before; a layer that fits is tested in full even when it is too small to be claimed, so
-   that the note can say so.
+   Candidates are still ruled out early, by the probe bound on D against the KS limit (all
+   candidates at once on 257 order statistics); a layer that fits is tested in full even when
+   it is too small to be claimed, so that the note can say so.
 
 Layers with fewer than ``min-weights`` (256) weights or min(units, fan_in) < ``min-dim`` (8)
 are skipped (they could never reach significance), and below 8 rows the Marchenko–Pastur edge
@@ -153,7 +166,6 @@ parameters; then retrain it.
 from __future__ import annotations
 
 import math
-import threading
 import zlib
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
@@ -163,133 +175,14 @@ import numpy as np
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
 from steelyard.numbers import count, measured
-from steelyard.rules._spectrum import edge_fluctuation, mp_edge, top_singular_value
+from steelyard.rules._initializers import Candidate, candidates, cdf_table
+from steelyard.rules._layer_results import LayerResults
+from steelyard.rules._spectrum import edge_check
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
-_SQRT2 = math.sqrt(2.0)
-#: Abramowitz & Stegun (1964), Handbook of Mathematical Functions, formula 7.1.26:
-#: erf(x) = 1 − (a1·t + … + a5·t⁵)·exp(−x²) with t = 1/(1 + p·x), x >= 0, |error| <= 1.5e-7,
-#: far below the resolution of any KS limit used here (>= 1/√sample).
-_AS_P = 0.3275911
-_AS_A = (1.061405429, -1.453152027, 1.421413741, -0.284496736, 0.254829592)
-
-
-def erf(x: np.ndarray) -> np.ndarray:
-    """Vectorised erf by Abramowitz & Stegun 7.1.26 (absolute error <= 1.5e-7)."""
-    x = np.asarray(x, dtype=np.float64)
-    a = np.abs(x)
-    t = 1.0 / (1.0 + _AS_P * a)
-    poly = np.zeros_like(t)
-    for coefficient in _AS_A:  # Horner: ((((a5 t + a4) t + a3) t + a2) t + a1) t
-        poly = (poly + coefficient) * t
-    return np.asarray(np.copysign(1.0 - poly * np.exp(-a * a), x), dtype=np.float64)
-
-
-def _phi(z: np.ndarray) -> np.ndarray:
-    """Standard normal CDF, Φ(z) = (1 + erf(z/√2)) / 2."""
-    return 0.5 * (1.0 + erf(np.asarray(z, dtype=np.float64) / _SQRT2))
-
-
-#: Standard deviation of a unit normal truncated to (−2, 2): sqrt(1 − 2·2φ(2)/(Φ(2) − Φ(−2))).
-_MASS = math.erf(2.0 / _SQRT2)
-_TAIL = 2.0 * math.exp(-2.0) / math.sqrt(2.0 * math.pi)  # 2φ(2)
-TRUNCATED_STD = math.sqrt(1.0 - 2.0 * _TAIL / _MASS)
-#: Kurtosis μ₄/μ₂² of that truncated normal: E[z⁴] = 3 − (a³ + 3a)·2φ(a)/mass at a = 2.
-TRUNCATED_KURTOSIS = (3.0 - 14.0 * _TAIL / _MASS) / TRUNCATED_STD**4
 #: Fewest units for the row-spread test (its limit relies on a large-sample standard error).
 SPREAD_ROWS = 64
-
-
-@dataclass(frozen=True)
-class Candidate:
-    """One initializer for one layer shape."""
-
-    name: str
-    family: str
-    """``uniform`` (bound ``scale``), ``normal`` (std ``scale``) or ``truncated`` (a normal of
-    std ``scale`` truncated at ±2·``scale``)."""
-    scale: float
-
-    @property
-    def std(self) -> float:
-        """Standard deviation of one drawn element."""
-        if self.family == "uniform":
-            return self.scale / math.sqrt(3.0)
-        if self.family == "truncated":
-            return self.scale * TRUNCATED_STD
-        return self.scale
-
-    @property
-    def kurtosis(self) -> float:
-        """μ₄/μ₂² of one drawn element."""
-        if self.family == "uniform":
-            return 9.0 / 5.0
-        if self.family == "truncated":
-            return TRUNCATED_KURTOSIS
-        return 3.0
-
-    def cdf(self, x: np.ndarray) -> np.ndarray:
-        """The candidate's CDF at ``x``."""
-        if self.family == "uniform":
-            return np.asarray(
-                np.clip((x + self.scale) / (2.0 * self.scale), 0.0, 1.0), dtype=np.float64
-            )
-        if self.family == "normal":
-            return _phi(x / self.scale)
-        inner = (_phi(np.clip(x / self.scale, -2.0, 2.0)) - (1.0 - _MASS) / 2.0) / _MASS
-        return np.asarray(np.clip(inner, 0.0, 1.0), dtype=np.float64)
-
-
-def _variance_scaling(prefix: str, fan_in: int, fan_out: int) -> list[Candidate]:
-    """Glorot, He and LeCun candidates for one pair of fans."""
-    avg = (fan_in + fan_out) / 2.0
-    out: list[Candidate] = []
-    for name, variance in (
-        (f"glorot{prefix}", 1.0 / avg),
-        (f"he{prefix}", 2.0 / fan_in),
-        (f"lecun{prefix}", 1.0 / fan_in),
-    ):
-        std = math.sqrt(variance)
-        out.append(Candidate(f"{name}-uniform", "uniform", math.sqrt(3.0) * std))
-        out.append(Candidate(f"{name}-normal", "normal", std))
-        out.append(Candidate(f"{name}-truncated-normal", "truncated", std / TRUNCATED_STD))
-    return out
-
-
-def _fans(layer: Layer) -> tuple[int, int]:
-    receptive = math.prod(layer.kernel)
-    if layer.kind is LayerKind.CONV_TRANSPOSE:
-        return (
-            layer.units // max(1, layer.groups)
-        ) * receptive, layer.in_per_group * layer.groups * receptive
-    return layer.fan_in, layer.units * receptive
-
-
-def candidates(layer: Layer, gates: int = 1) -> list[Candidate]:
-    """The initializers a layer of this kind and shape could have been drawn from."""
-    small = [
-        Candidate("normal-0.02", "normal", 0.02),
-        Candidate("truncated-normal-0.02", "truncated", 0.02),
-    ]
-    if layer.kind is LayerKind.EMBEDDING:
-        return [
-            Candidate("normal-1", "normal", 1.0),
-            Candidate("keras-embedding-uniform", "uniform", 0.05),
-            *small,
-        ]
-    fan_in, fan_out = _fans(layer)
-    found = [Candidate("pytorch-default", "uniform", 1.0 / math.sqrt(fan_in))]
-    found += _variance_scaling("", fan_in, fan_out)
-    receptive = math.prod(layer.kernel)
-    if layer.groups > 1 and layer.kind is LayerKind.CONV:
-        depth_in = layer.in_per_group * layer.groups * receptive
-        depth_out = max(1, layer.units // layer.groups) * receptive
-        found += _variance_scaling("-depthwise", depth_in, depth_out)
-    if layer.kind is LayerKind.RECURRENT:
-        found.append(Candidate("pytorch-recurrent", "uniform", 1.0 / math.sqrt(layer.units)))
-        found += _variance_scaling("-all-gates", layer.fan_in, gates * layer.units)
-    return found + small
 
 
 def ks_distance(
@@ -315,19 +208,60 @@ def ks_distance(
 _PROBES = 257
 
 
+def ks_bounds(sorted_sample: np.ndarray, found: list[Candidate], at: np.ndarray) -> np.ndarray:
+    """:func:`ks_distance` over the order statistics ``at`` for every candidate at once."""
+    n = sorted_sample.size
+    values = cdf_table(found, sorted_sample[at])
+    upper = ((at + 1) / n)[None, :] - values
+    lower = values - (at / n)[None, :]
+    return np.maximum(upper.max(axis=1), lower.max(axis=1))
+
+
+def best_fits(
+    sorted_sample: np.ndarray, found: list[Candidate], limit: float
+) -> list[tuple[float, Candidate]]:
+    """The best and runner-up candidates by KS distance, (D, candidate) in order, exactly as
+    over every candidate; empty when even the cheap lower bound rules every one out.
+
+    A lower bound on every candidate's D from 257 order statistics rules most layers out at
+    about 1 % of the cost. Each full D lies within [bound, bound + slack]; only a candidate
+    whose bound is at most the second-smallest upper end can be the best or the runner-up, so
+    only those are computed in full (ties keep the candidates' order)."""
+    n = sorted_sample.size
+    probe = np.unique(np.linspace(0, n - 1, _PROBES).astype(np.int64))
+    bounds = ks_bounds(sorted_sample, found, probe)
+    if bounds.min() > limit:
+        return []
+    slack = (int(np.diff(probe).max()) if probe.size > 1 else 0) / n
+    uppers = np.sort(bounds + slack)
+    cutoff = uppers[min(1, uppers.size - 1)]
+    close = [c for c, bound in zip(found, bounds, strict=True) if bound <= cutoff]
+    # Candidates of one law (Glorot and LeCun of a square layer) are measured once.
+    distances: dict[tuple[str, float], float] = {}
+    for c in close:
+        if (c.family, c.scale) not in distances:
+            distances[c.family, c.scale] = ks_distance(sorted_sample, c.cdf)
+    return sorted(((distances[c.family, c.scale], c) for c in close), key=lambda x: x[0])
+
+
 def ks_limit(n: int, floor: float) -> float:
     """max(1.95/√n, floor): the α = 0.001 Kolmogorov critical value, floored."""
     return max(1.95 / math.sqrt(n), floor)
 
 
-def row_spread(row_squares: np.ndarray, fan_in: int, kurtosis: float) -> float:
-    """R = (IQR(S)/1.349 / median S)² / ((κ − 1)/n): about 1 for an i.i.d. draw, large once
-    training has made the units' norms differ (see the module docstring)."""
+def relative_spread(row_squares: np.ndarray) -> float:
+    """(IQR(S)/1.349 / median S)², the squared robust coefficient of variation of the units'
+    sums of squares (infinite when the median is not positive)."""
     low, middle, high = np.quantile(row_squares, [0.25, 0.5, 0.75])
     if middle <= 0:
         return math.inf
-    relative = (high - low) / 1.349 / middle
-    return float(relative**2 / ((kurtosis - 1.0) / fan_in))
+    return float(((high - low) / 1.349 / middle) ** 2)
+
+
+def row_spread(row_squares: np.ndarray, fan_in: int, kurtosis: float) -> float:
+    """R = (IQR(S)/1.349 / median S)² / ((κ − 1)/n): about 1 for an i.i.d. draw, large once
+    training has made the units' norms differ (see the module docstring)."""
+    return relative_spread(row_squares) / ((kurtosis - 1.0) / fan_in)
 
 
 def spread_limit(units: int, sigmas: float) -> float:
@@ -417,16 +351,8 @@ class UntrainedLayerSettings:
     include_embeddings: bool = threshold(True)
 
 
-class _Records:
-    """Per-audit store of :class:`_Tested`, filled by the per-layer hook from any thread."""
-
-    def __init__(self) -> None:
-        self.lock = threading.Lock()
-        self.by_layer: dict[str, _Tested] = {}
-
-
-def _records(ctx: AuditContext) -> _Records:
-    return ctx.stats.shared(f"{RULE.name}:records", _Records)
+def _results(ctx: AuditContext) -> LayerResults[_Tested]:
+    return ctx.stats.shared(f"{RULE.name}:results", LayerResults[_Tested])
 
 
 def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _Tested | None:
@@ -436,54 +362,47 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
     norms = ctx.stats.row_norms(layer)
     if not np.all(np.isfinite(norms)):
         return None  # nonfinite's business (a NaN or infinity makes its row norm so)
+    found = candidates(layer, _gates(ctx, layer))
+    nothing = _Tested(len(found), 1.0, None)
+    spread_max = spread_limit(m, limits.row_spread)
+    # The cheapest sufficient test first, from the shared pass's row norms: R falls as κ
+    # grows, so a spread beyond the limit under the largest candidate kurtosis is beyond it
+    # for every candidate, and the layer is trained whichever candidate fits best (the same
+    # answer as testing it after the distribution).
+    spread = relative_spread(norms**2) if m >= SPREAD_ROWS else None
+    if spread is not None and spread / ((max(c.kurtosis for c in found) - 1.0) / n) > spread_max:
+        return nothing
     seed = zlib.crc32(layer.name.encode("utf-8")) ^ limits.seed
     sample = ctx.stats.sample(layer, limits.sample, seed)
     if sample[0] == sample[-1]:
         return None
-    found = candidates(layer, _gates(ctx, layer))
-    nothing = _Tested(len(found), 1.0, None)
     limit = limits.ks if limits.ks is not None else ks_limit(sample.size, limits.ks_floor)
     margin = limits.ks_margin
-    # A lower bound on every candidate's D from 257 order statistics rules most layers out
-    # at about 1 % of the cost.
-    probe = np.unique(np.linspace(0, sample.size - 1, _PROBES).astype(np.int64))
-    bounds = [ks_distance(sample, c.cdf, probe) for c in found]
-    if min(bounds) > limit:
+    scored = best_fits(sample, found, limit)
+    if not scored or scored[0][0] > limit:
         return nothing
-    # Each full D lies within [bound, bound + slack]; only a candidate whose bound is at most
-    # the second-smallest upper end can be the best or the runner-up, so only those are
-    # computed in full (the result is exactly that of computing all of them).
-    slack = (int(np.diff(probe).max()) if probe.size > 1 else 0) / sample.size
-    uppers = sorted(bound + slack for bound in bounds)
-    cutoff = uppers[min(1, len(uppers) - 1)]
-    close = [c for c, bound in zip(found, bounds, strict=True) if bound <= cutoff]
-    scored = sorted(((ks_distance(sample, c.cdf), c) for c in close), key=lambda item: item[0])
     distance, best = scored[0]
-    if distance > limit:
-        return nothing
     # The KS distance barely sees a wrong scale in small samples; the mean square does.
     z = scale_z(sample, best)
     relative = abs(z) * math.sqrt((best.kurtosis - 1.0) / sample.size)
     if abs(z) > limits.scale_z and relative > limits.scale_floor:
         return nothing
-    spread: float | None = None
-    spread_max = spread_limit(m, limits.row_spread)
-    if m >= SPREAD_ROWS:
-        spread = row_spread(norms**2, n, best.kurtosis)
+    if spread is not None:
+        spread /= (best.kurtosis - 1.0) / n  # R for the best candidate
         if spread > spread_max:
             return nothing  # the units' norms differ as only training makes them
-    edge = mp_edge(best.std, m, n)
-    fluctuation = edge_fluctuation(best.std, m, n)
     allowed = limits.edge_fluctuations
     # Only a layer that matched an initializer is read whole, for its spectrum.
-    top, method = top_singular_value(
-        ctx.stats.matrix(layer), seed, tolerance=0.05 * fluctuation, stop_above=edge + allowed * fluctuation
-    )
-    beyond = (top - edge) / fluctuation
-    ctx.measurements.record(layer.name, "untrained-layer.spectrum", {
+    check = edge_check(ctx.stats.matrix(layer), best.std, allowed, seed)
+    top, edge, fluctuation, beyond = check.top, check.edge, check.fluctuation, check.beyond
+    spectrum: dict[str, object] = {
         "top_singular": float(f"{top:.6g}"), "mp_edge": float(f"{edge:.6g}"),
         "allowed": float(f"{edge + allowed * fluctuation:.6g}"), "initializer": best.name,
-    })
+    }
+    subsampled = check.rows < m
+    if subsampled:
+        spectrum["rows_searched"] = check.rows
+    ctx.measurements.record(layer.name, "untrained-layer.spectrum", spectrum)
     if beyond > allowed:
         return nothing  # a direction grew out of the bulk: trained
     p_value = min(1.0, len(found) * equivalence_p(distance, sample.size, margin))
@@ -504,8 +423,10 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         "beyond_edge": round(beyond, 4),
         "edge_fluctuations": allowed,
         "sigma": best.std,
-        "spectrum": method,
+        "spectrum": check.method,
     }
+    if subsampled:
+        evidence["spectrum_rows"] = check.rows
     if spread is not None:
         evidence["row_spread"] = round(spread, 4)
         evidence["row_spread_limit"] = round(spread_max, 4)
@@ -519,8 +440,10 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         message=(
             f"the weights look freshly initialised: their distribution matches {best.name} "
             f"(KS distance {measured(distance)} <= {measured(limit)}; within {margin:g} of it at "
-            f"p = {measured(p_value)}) and the top singular value {measured(top)} stays within "
-            f"{allowed:g} fluctuations of the Marchenko–Pastur edge {measured(edge)}"
+            f"p = {measured(p_value)}) and the top singular value {measured(top)}"
+            + (f" of {count(check.rows)} of its {count(m)} rows" if subsampled else "")
+            + f" stays within {allowed:g} fluctuations of the Marchenko–Pastur edge "
+            f"{measured(edge)}"
             + (
                 "; this is an output layer, so the model's outputs are random"
                 if layer.is_output
@@ -543,9 +466,7 @@ def check_layer(
     if layer.kind is not LayerKind.EMBEDDING or limits.include_embeddings:
         tested = _layer(ctx, limits, layer)
         if tested is not None:
-            records = _records(ctx)
-            with records.lock:
-                records.by_layer[layer.name] = tested
+            _results(ctx).put(layer, tested)
     yield from ()
 
 
@@ -553,13 +474,7 @@ def finish(
     ctx: AuditContext, settings: RuleSettings[UntrainedLayerSettings]
 ) -> Iterator[Finding]:
     """Holm's procedure over every tested layer; findings for the layers it confirms."""
-    records = _records(ctx)
-    with records.lock:
-        tested = [
-            (layer, records.by_layer[layer.name])
-            for layer in ctx.checkpoint.layers
-            if layer.name in records.by_layer
-        ]
+    tested = _results(ctx).in_order(ctx.checkpoint.layers)
     alpha = settings.rule_wide.alpha
     confirmed = holm([t.p_value for _, t in tested], alpha)
     for (layer, result), significant in zip(tested, confirmed, strict=True):

@@ -74,6 +74,7 @@ from steelyard.rules.base import (
     RuleSpec,
     fraction,
     layer_finding,
+    model_finding,
     threshold,
 )
 from steelyard.rules.scoring import score
@@ -215,12 +216,11 @@ def finish(ctx: AuditContext, settings: RuleSettings[AdapterUpdateSettings]) -> 
     original = {key: name for name, m in stored.items() for key in (_module_key(m),)}
     for key, layer_name in sorted(original.items()):
         if config.targets(key, source) is False:
-            yield Finding(
-                rule=RULE.name,
+            yield model_finding(
+                RULE.name,
                 severity=Severity.WARNING,
                 layer=layer_name,
                 tensor=stored[layer_name].a,
-                units=(),
                 score=score(1.0, 1.0),
                 message=f"module {key!r} holds LoRA factors but target_modules does not name it "
                 "(peft would not load them)",
@@ -231,12 +231,9 @@ def finish(ctx: AuditContext, settings: RuleSettings[AdapterUpdateSettings]) -> 
     if isinstance(targets, tuple):
         for name in targets:
             if not any(key == name or key.endswith("." + name) for key in original):
-                yield Finding(
-                    rule=RULE.name,
+                yield model_finding(
+                    RULE.name,
                     severity=Severity.WARNING,
-                    layer=None,
-                    tensor=None,
-                    units=(),
                     score=score(1.0, 1.0),
                     message=f"target_modules names {name!r} but the file holds no factors for "
                     "it (peft would leave that update at zero)",

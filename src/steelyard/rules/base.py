@@ -287,6 +287,32 @@ def layer_finding(
     )
 
 
+def model_finding(
+    rule: str,
+    *,
+    severity: Severity,
+    score: float,
+    message: str,
+    hint: str,
+    evidence: Mapping[str, Any] | None = None,
+    layer: str | None = None,
+    tensor: str | None = None,
+) -> Finding:
+    """A finding on the checkpoint as a whole (no units), optionally pointing at a layer
+    name or stored tensor that need not be one of the graph's layers."""
+    return Finding(
+        rule=rule,
+        severity=severity,
+        layer=layer,
+        tensor=tensor,
+        units=(),
+        score=score,
+        message=message,
+        hint=hint,
+        evidence=dict(evidence or {}),
+    )
+
+
 @dataclass(frozen=True)
 class HealthColumn:
     """A column of the layer-health table that a rule fills from its own findings."""

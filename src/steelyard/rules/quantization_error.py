@@ -112,6 +112,7 @@ from steelyard.rules.base import (
     RuleSettings,
     RuleSpec,
     layer_finding,
+    model_finding,
     threshold,
 )
 from steelyard.rules.scoring import score
@@ -378,12 +379,9 @@ def finish(
         )
         carried = True
     if settings.rule_wide.table:
-        yield Finding(
-            rule=RULE.name,
+        yield model_finding(
+            RULE.name,
             severity=Severity.INFO,
-            layer=None,
-            tensor=None,
-            units=(),
             score=0.0,
             message=(
                 f"predicted quantization error of {count(len(measured))} layers"

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 from steelyard.coverage import coverage_of
 from steelyard.findings import Finding, Severity
 from steelyard.numbers import percent
-from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction
+from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, model_finding
 from steelyard.rules.scoring import score
 
 _LISTED = 10
@@ -69,12 +69,9 @@ def check(
             f"the layer rules saw {percent(share)} of {coverage.parameters:,} parameters, below "
             f"min-share {limit:.0%}; {len(coverage.uncovered):,} tensors are in no layer"
         )
-    yield Finding(
-        rule=RULE.name,
+    yield model_finding(
+        RULE.name,
         severity=Severity.ERROR if nothing else Severity.WARNING,
-        layer=None,
-        tensor=None,
-        units=(),
         score=score(1.0 - share, limit / max(share, 1e-6)),
         message=message,
         hint="declare the missing layers in a layout file, or lower min-share for this "

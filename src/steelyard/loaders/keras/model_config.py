@@ -180,20 +180,8 @@ class _ConfigWalker:
                 for index in inner.inputs:
                     self._pend(index).refs.extend(links)
             else:
-                index = len(self.atoms)
-                self.atoms.append(
-                    Atom(
-                        name=name,
-                        raw_name=name,
-                        cls=lcls,
-                        config=own,
-                        trainable=layer_trainable,
-                        key_path=key_path,
-                        top=top or name,
-                    )
-                )
+                index = self._add_atom(name, lcls, own, layer_trainable, key_path, top or name, links)
                 self.paths.append(path)
-                self.pending.append(_Pending(index, list(links)))
                 scope.entries[name] = _Entry(atom=index)
             previous = (name, 0)
         if sequential:
@@ -221,6 +209,32 @@ class _ConfigWalker:
     def _pend(self, atom: int) -> _Pending:
         return self.pending[atom]
 
+    def _add_atom(
+        self,
+        name: str,
+        cls: str,
+        config: Mapping[str, Any],
+        trainable: bool,
+        key_path: str,
+        top: str,
+        links: list[tuple[_Scope, str, int]],
+    ) -> int:
+        """Record one plain layer of the config as an atom fed by ``links``; its index."""
+        index = len(self.atoms)
+        self.atoms.append(
+            Atom(
+                name=name,
+                raw_name=name,
+                cls=cls,
+                config=config,
+                trainable=trainable,
+                key_path=key_path,
+                top=top,
+            )
+        )
+        self.pending.append(_Pending(index, list(links)))
+        return index
+
     def _wrapped_atom(
         self,
         entry: Any,
@@ -239,20 +253,9 @@ class _ConfigWalker:
         name = name or config.get("name")
         if not cls or cls in CONTAINERS or cls in WRAPPERS or not isinstance(name, str):
             return None
-        index = len(self.atoms)
-        self.atoms.append(
-            Atom(
-                name=name,
-                raw_name=name,
-                cls=cls,
-                config=config,
-                trainable=trainable and config.get("trainable", True) is not False,
-                key_path=key_path,
-                top=top,
-            )
-        )
+        trainable = trainable and config.get("trainable", True) is not False
+        index = self._add_atom(name, cls, config, trainable, key_path, top, links)
         self.display[index] = f"{wrapper}/{name}"
-        self.pending.append(_Pending(index, list(links)))
         return index
 
     def _wrapper(

@@ -99,6 +99,11 @@ class _Pending:
     """Atoms feeding it that are no config layer of their own (a Bidirectional's halves)."""
 
 
+def _own_trainable(parent: bool, config: Mapping[str, Any]) -> bool:
+    """A layer trains when its parent does and its own config does not say otherwise."""
+    return parent and config.get("trainable", True) is not False
+
+
 class _ConfigWalker:
     """Builds atoms from a model config, resolving ``inbound_nodes`` across nested models."""
 
@@ -158,7 +163,7 @@ class _ConfigWalker:
                     used[key] = 0
                 key_path = f"{key_prefix}/layers/{key}" if key_prefix else f"layers/{key}"
             own = lcfg if isinstance(lcfg, dict) else {}
-            layer_trainable = trainable and own.get("trainable", True) is not False
+            layer_trainable = _own_trainable(trainable, own)
             if sequential:
                 refs = [previous] if previous is not None else []
             else:
@@ -180,7 +185,7 @@ class _ConfigWalker:
                 for index in inner.inputs:
                     self._pend(index).refs.extend(links)
             else:
-                index = self._add_atom(name, lcls, own, layer_trainable, key_path, top or name, links)
+                index = self._add_atom(name, lcls, own, trainable, key_path, top or name, links)
                 self.paths.append(path)
                 scope.entries[name] = _Entry(atom=index)
             previous = (name, 0)
@@ -214,7 +219,7 @@ class _ConfigWalker:
         name: str,
         cls: str,
         config: Mapping[str, Any],
-        trainable: bool,
+        parent_trainable: bool,
         key_path: str,
         top: str,
         links: list[tuple[_Scope, str, int]],
@@ -227,7 +232,7 @@ class _ConfigWalker:
                 raw_name=name,
                 cls=cls,
                 config=config,
-                trainable=trainable,
+                trainable=_own_trainable(parent_trainable, config),
                 key_path=key_path,
                 top=top,
             )
@@ -253,7 +258,6 @@ class _ConfigWalker:
         name = name or config.get("name")
         if not cls or cls in CONTAINERS or cls in WRAPPERS or not isinstance(name, str):
             return None
-        trainable = trainable and config.get("trainable", True) is not False
         index = self._add_atom(name, cls, config, trainable, key_path, top, links)
         self.display[index] = f"{wrapper}/{name}"
         return index

@@ -12,7 +12,7 @@ from __future__ import annotations
 import re
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypedDict
 
 import numpy as np
 
@@ -146,6 +146,31 @@ def unmapped(source: str, why: str) -> OptimizerResult:
     return OptimizerResult(note=f"optimizer state in {source} not mapped: {why}")
 
 
+class _Settings(TypedDict):
+    """What :class:`OptimizerState` reports of the optimizer's config."""
+
+    beta1: float | None
+    beta2: float | None
+    eps: float | None
+    weight_decay: float | None
+    decoupled: bool | None
+
+
+def _settings(opt: OptimizerConfig | None, kind: str, keras3: bool) -> _Settings:
+    beta1 = beta2 = eps = decay = None
+    decoupled: bool | None = None
+    if opt is not None:
+        if kind in ("adam", "adamw"):
+            beta1, beta2 = opt.number("beta_1"), opt.number("beta_2")
+        eps = opt.number("epsilon") if kind != "sgd" else None
+        decay = opt.number("weight_decay")
+        if kind == "adamw" or (keras3 and decay):
+            decoupled = True
+    elif kind == "adamw":
+        decoupled = True
+    return _Settings(beta1=beta1, beta2=beta2, eps=eps, weight_decay=decay, decoupled=decoupled)
+
+
 def _state(
     opt: OptimizerConfig | None,
     kind: str,
@@ -159,28 +184,8 @@ def _state(
         for name, s in slots.items()
         if s.get(_FIRST) is not None or s.get(_SECOND) is not None
     }
-    beta1 = beta2 = eps = decay = None
-    decoupled: bool | None = None
-    if opt is not None:
-        if kind in ("adam", "adamw"):
-            beta1, beta2 = opt.number("beta_1"), opt.number("beta_2")
-        eps = opt.number("epsilon") if kind != "sgd" else None
-        decay = opt.number("weight_decay")
-        if kind == "adamw" or (keras3 and decay):
-            decoupled = True
-    elif kind == "adamw":
-        decoupled = True
-    return OptimizerState(
-        kind=kind,
-        slots=mapped,
-        step=step,
-        beta1=beta1,
-        beta2=beta2,
-        eps=eps,
-        weight_decay=decay,
-        decoupled=decoupled,
-        source=source,
-    )
+    settings = _settings(opt, kind, keras3)
+    return OptimizerState(kind=kind, slots=mapped, step=step, source=source, **settings)
 
 
 def read_step(tensor: Tensor) -> int | None:

@@ -13,8 +13,9 @@ import difflib
 import json
 import os
 import sys
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from enum import Enum
 from pathlib import Path
 from types import ModuleType
 from typing import TYPE_CHECKING, NoReturn
@@ -32,7 +33,9 @@ from steelyard.cli_options import (
     OutputOption,
     PolicyOption,
     QuietOption,
+    ReportFormatOption,
     TimelineFormat,
+    TimelineFormatOption,
     Unreadable,
     output_targets,
 )
@@ -157,11 +160,21 @@ def _guarded() -> Iterator[None]:
         raise typer.Exit(EXIT_INTERNAL) from None
 
 
-def _bar_text(text: str) -> str:
-    """A name for the progress bar: escaped, and not read as rich markup ("[/x]")."""
+@contextmanager
+def _progress(quiet: bool, total: int) -> Iterator[Callable[[str], None]]:
+    """Advance the stderr progress bar to the next checkpoint's name. The bar is drawn only
+    on a terminal and without ``--quiet``; otherwise rich is not even imported (a piped or
+    JSON run does not pay for it)."""
+    if quiet or not sys.stderr.isatty():
+        yield lambda name: None
+        return
     from rich.markup import escape
 
-    return escape(shown(text))
+    from steelyard.progress import Progress
+
+    with Progress(enabled=True, total=total) as bar:
+        # Names are escaped, and not read as rich markup ("[/x]").
+        yield lambda name: bar.advance(escape(shown(name)))
 
 
 def _budget(policy: Policy | None, pairs: list[str] | None) -> Budget:
@@ -233,6 +246,21 @@ def _write_report(text: str, output: Path | None, quiet: bool) -> None:
         _say(f"steelyard: wrote {output}")
 
 
+def _run_setup(
+    chosen: Enum | None,
+    output: list[Path] | None,
+    offered: type[Enum],
+    policy_file: Path | None,
+    fail_on: FailOn | None,
+    budget: list[str] | None,
+) -> tuple[list[tuple[str, Path | None]], Policy, Budget]:
+    """What every report-writing command settles first: the reports to write (format, file
+    or stdout), the policy in force and the budget."""
+    targets = output_targets(chosen.value if chosen else None, output, offered)
+    policy = _policy(policy_file, fail_on)
+    return targets, policy, _budget(policy, budget)
+
+
 def _policy(policy_file: Path | None, fail_on: FailOn | None) -> Policy:
     """The policy in force, its gate overridden by ``--fail-on`` when given."""
     from dataclasses import replace
@@ -297,9 +325,7 @@ def audit(
         help="Base model that the LoRA/DoRA adapters of the run are merged onto, so the rules "
         "see the merged weights and the report how large each update is.",
     ),
-    format: AuditFormat | None = typer.Option(
-        None, "--format", "-f", help="Output format [default: table]."
-    ),
+    format: ReportFormatOption = None,
     output: OutputOption = None,
     fail_on: FailOnOption = None,
     policy_file: PolicyOption = None,
@@ -328,22 +354,21 @@ def audit(
     budget: BudgetOption = None,
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
-    from steelyard.baseline import apply_baseline, baseline_text, read_baseline
-    from steelyard.progress import Progress
-
     with _guarded():
-        targets = output_targets(format.value if format else None, output)
-        policy = _policy(policy_file, fail_on)
-        limits = _budget(policy, budget)
-        _reading(baseline)
-        accepted = read_baseline(baseline) if baseline is not None else None
+        targets, policy, limits = _run_setup(format, output, AuditFormat, policy_file, fail_on, budget)
+        accepted = None
+        if baseline is not None:
+            from steelyard.baseline import read_baseline
+
+            _reading(baseline)
+            accepted = read_baseline(baseline)
         _reading(paths[0] if len(paths) == 1 else "the checkpoints named")
         run = _api().plan(paths, grads, base)
-        with Progress(enabled=not quiet and sys.stderr.isatty(), total=len(run.targets)) as progress:
+        with _progress(quiet, len(run.targets)) as bar:
 
             def advance(path: str) -> None:
                 _reading(path)
-                progress.advance(_bar_text(path))
+                bar(path)
 
             report = _api().audit_many(
                 run,
@@ -362,8 +387,12 @@ def audit(
             error = report.errors[0]
             raise LoadError(error.path, error.reason)
         if accepted is not None:
+            from steelyard.baseline import apply_baseline
+
             report = apply_baseline(report, accepted)
         if write_baseline is not None:
+            from steelyard.baseline import baseline_text
+
             _write(baseline_text(report.audits, __version__), write_baseline)
         for chosen, target in targets:
             _write_report(_render(report, AuditFormat(chosen)), target, quiet)
@@ -383,9 +412,7 @@ def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
 def compare(
     old: Path = typer.Argument(..., help="The earlier checkpoint (file, shard index, or folder)."),
     new: Path = typer.Argument(..., help="The later checkpoint, in the same or another format."),
-    format: CompareFormat | None = typer.Option(
-        None, "--format", "-f", help="Output format [default: table]."
-    ),
+    format: ReportFormatOption = None,
     output: OutputOption = None,
     fail_on: FailOnOption = None,
     policy_file: PolicyOption = None,
@@ -393,14 +420,10 @@ def compare(
     budget: BudgetOption = None,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
-    from steelyard.progress import Progress
-
     with _guarded():
-        targets = output_targets(format.value if format else None, output, CompareFormat)
-        policy = _policy(policy_file, fail_on)
-        limits = _budget(policy, budget)
-        with Progress(enabled=not quiet and sys.stderr.isatty(), total=1) as progress:
-            progress.advance(_bar_text(f"{old} → {new}"))
+        targets, policy, limits = _run_setup(format, output, CompareFormat, policy_file, fail_on, budget)
+        with _progress(quiet, 1) as bar:
+            bar(f"{old} → {new}")
             _reading(f"{old} or {new}")
             report = _api().compare(old, new, policy=policy, budget=limits)
         _STATE["reading"] = None
@@ -479,9 +502,7 @@ def policy(
 def timeline(
     paths: list[Path] = typer.Argument(..., help="The run's checkpoints, or the run folder."),
     order: Order = typer.Option(Order.step, "--order", help="By training step, name or as given."),
-    format: TimelineFormat | None = typer.Option(
-        None, "--format", "-f", help="Output format [default: table]."
-    ),
+    format: TimelineFormatOption = None,
     output: OutputOption = None,
     fail_on: FailOnOption = None,
     policy_file: PolicyOption = None,
@@ -491,9 +512,7 @@ def timeline(
     """Follow a training run's checkpoints layer by layer (docs/timeline.md); exit 1 when a
     finding of the last checkpoint reaches the gate."""
     with _guarded():
-        targets = output_targets(format.value if format else None, output, TimelineFormat)
-        policy = _policy(policy_file, fail_on)
-        limits = _budget(policy, budget)
+        targets, policy, limits = _run_setup(format, output, TimelineFormat, policy_file, fail_on, budget)
         result = _api().timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
         _STATE["reading"] = None
         for chosen, target in targets:

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 from enum import Enum
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
@@ -60,7 +60,16 @@ class TimelineFormat(str, Enum):
     html = "html"
 
 
-# Options that audit and compare share: declared once so that they mean the same in both.
+def _format_option() -> Any:
+    """``--format`` of a command that writes reports (unset: the ``--output`` endings decide,
+    else the table)."""
+    return typer.Option("--format", "-f", help="Output format [default: table].")
+
+
+# Options that the report-writing commands share: declared once so that they mean the same in
+# each.
+ReportFormatOption = Annotated[AuditFormat | None, _format_option()]
+TimelineFormatOption = Annotated[TimelineFormat | None, _format_option()]
 OutputOption = Annotated[
     list[Path] | None,
     typer.Option(

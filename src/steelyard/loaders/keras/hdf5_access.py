@@ -87,39 +87,47 @@ def _dtype(tag: str) -> np.dtype[Any]:
 
 
 @dataclass(frozen=True)
-class RawReader:
+class _Dataset:
+    """What every dataset reader knows: the shape and the stored dtype tag (``bf16`` or a
+    numpy dtype string); readers return arrays in native byte order."""
+
+    shape: tuple[int, ...]
+    dtype: str
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes of the whole dataset."""
+        return math.prod(self.shape) * _dtype(self.dtype).itemsize
+
+    def decode(self, data: bytes) -> np.ndarray:
+        """The dataset's stored bytes as an array, in native byte order."""
+        dtype = _dtype(self.dtype)
+        array = np.frombuffer(data, dtype=dtype).reshape(self.shape)
+        return array.astype(dtype.newbyteorder("="), copy=False)
+
+
+@dataclass(frozen=True)
+class RawReader(_Dataset):
     """A contiguous dataset read as a plain byte range (no HDF5 involved)."""
 
     location: Location
     offset: int
-    shape: tuple[int, ...]
-    dtype: str
     name: str
 
     def __call__(self) -> np.ndarray:
-        with _bounded(self.location.path, f"dataset {self.name!r}"):
-            dtype = _dtype(self.dtype)
-            count = math.prod(self.shape) * dtype.itemsize
-            data = self.location.read(self.offset, count, f"dataset {self.name!r}")
-            array = np.frombuffer(data, dtype=dtype).reshape(self.shape)
-            return array.astype(dtype.newbyteorder("="), copy=False)
+        what = f"dataset {self.name!r}"
+        with _bounded(self.location.path, what):
+            return self.decode(self.location.read(self.offset, self.nbytes, what))
 
 
 @dataclass(frozen=True)
-class InlineReader:
+class InlineReader(_Dataset):
     """A small dataset kept in its object header (compact layout), copied at load time."""
 
     data: bytes
-    shape: tuple[int, ...]
-    dtype: str
 
     def __call__(self) -> np.ndarray:
-        dtype = _dtype(self.dtype)
-        return (
-            np.frombuffer(self.data, dtype=dtype)
-            .reshape(self.shape)
-            .astype(dtype.newbyteorder("="), copy=False)
-        )
+        return self.decode(self.data)
 
 
 def _band_rows(obj: Any, shape: tuple[int, ...], itemsize: int) -> int:
@@ -163,20 +171,18 @@ def _read_dataset_into(
 
 
 @dataclass(frozen=True)
-class IsolatedReader:
+class IsolatedReader(_Dataset):
     """A chunked (possibly compressed) dataset: decoded once per run by h5py in a child
     process, in row bands, into the spill folder; every read maps that file."""
 
     location: Location
     path: str
-    shape: tuple[int, ...]
-    dtype: str
     source: Path
 
     def __call__(self) -> np.ndarray:
         with _bounded(self.source, f"dataset {self.path!r}"):
             dtype = _dtype(self.dtype).newbyteorder("=")
-            size = math.prod(self.shape) * dtype.itemsize
+            size = self.nbytes
             timeout = load_timeout() + size / READ_RATE
 
             def fill(target: Path) -> None:
@@ -340,7 +346,7 @@ class H5Store(H5File):
         size = math.prod(shape) * stored.itemsize
         layout = obj.id.get_create_plist().get_layout()
         if size == 0:
-            return InlineReader(b"", shape, tag)
+            return InlineReader(shape, tag, b"")
         if layout == h5py.h5d.CONTIGUOUS:
             offset = obj.id.get_offset()
             if offset is None:
@@ -348,7 +354,7 @@ class H5Store(H5File):
             offset = int(offset)
             if offset + size > self.limit:
                 raise self.fail(f"dataset {path!r} claims data past the end of the file")
-            return RawReader(self.location, offset, shape, tag, path)
+            return RawReader(shape, tag, self.location, offset, path)
         if layout == h5py.h5d.COMPACT:
             try:
                 data = np.ascontiguousarray(obj[()]).tobytes()
@@ -356,8 +362,8 @@ class H5Store(H5File):
                 raise self.fail(f"dataset {path!r} cannot be read ({reason(exc)})") from None
             if len(data) != size:
                 raise self.fail(f"dataset {path!r} holds {len(data)} bytes, not {size}")
-            return InlineReader(data, shape, tag)
-        return IsolatedReader(self.location, path, shape, tag, self.source)
+            return InlineReader(shape, tag, data)
+        return IsolatedReader(shape, tag, self.location, path, self.source)
 
     def datasets(self, f: Any, top: str) -> list[str]:
         """Every dataset path under group ``top``, natural order (``vars/10`` after ``vars/9``).

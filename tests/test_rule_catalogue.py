@@ -86,3 +86,23 @@ def test_listing_the_rules_imports_no_rule_and_no_numpy() -> None:
     assert done.returncode == 0, done.stderr
     (line,) = [x for x in done.stderr.splitlines() if x.startswith("imported:")]
     assert line == "imported:", REFRESH if "steelyard.rules" in line else line
+
+
+def test_the_audits_rules_are_read_without_the_comparison_rules() -> None:
+    # registry(AUDIT) skips the modules under steelyard.comparison (an audit does not import
+    # them); that is only right while none of them serves the audit.
+    from steelyard.rules import _MODULES, Command, _all
+
+    every = {spec.name: module for spec, module in zip(_all(), _MODULES, strict=True)}
+    audit = registry(Command.AUDIT)
+    assert set(audit) == {s.name for s in _all() if s.serves(Command.AUDIT)}
+    assert all(not every[name].startswith("steelyard.comparison.") for name in audit)
+    assert {every[s.name] for s in _all() if s.serves(Command.COMPARE)} >= {
+        m for m in _MODULES if m.startswith("steelyard.comparison.")
+    }
+    probe = (
+        "import sys\nfrom steelyard.rules import registry\nregistry()\n"
+        "print(sorted(m for m in sys.modules if m.startswith('steelyard.comparison')))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    assert done.stdout.strip() == "[]"

@@ -13,12 +13,12 @@ from collections.abc import Callable, Sequence
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, replace
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from steelyard import budget as _budget
 from steelyard import discovery
 from steelyard.budget import Budget
 from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
-from steelyard.comparison.report import CompareReport
 from steelyard.discovery import Plan
 from steelyard.errors import LoadError, PolicyError, SteelyardError, UnreadableTensor
 from steelyard.findings import FailOn
@@ -30,6 +30,10 @@ from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
 from steelyard.run_timeline.result import Timeline
 from steelyard.version import __version__
+
+if TYPE_CHECKING:
+    # Imported by compare() itself: an audit never imports the comparison package.
+    from steelyard.comparison.report import CompareReport
 
 
 def _limits(budget: Budget | None, policy: Policy | None = None) -> AbstractContextManager[object]:
@@ -415,6 +419,7 @@ def compare(
         PolicyError: for a broken policy file.
     """
     from steelyard.comparison import compare_checkpoints
+    from steelyard.comparison.report import CompareReport
 
     chosen = policy_in_force(policy)
     with _limits(budget, chosen):

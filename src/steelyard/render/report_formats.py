@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import importlib
 from types import ModuleType
 
 from steelyard.errors import SteelyardError
@@ -24,23 +24,28 @@ def html_renderers() -> ModuleType:
     return html
 
 
+#: Each document format's renderer (module under steelyard.render, function of a Report):
+#: only the one asked for is imported, so a JSON report never imports rich.
+_DOCUMENTS = {
+    "json": ("json_report", "render_json"),
+    "markdown": ("markdown", "render_markdown"),
+    "sarif": ("sarif", "render_sarif"),
+    "junit": ("junit", "render_junit"),
+}
+
+
 def render_report(report: Report, format: str, *, color: bool = False, width: int = 120) -> str:
     """``report`` in ``format`` (one of :data:`AUDIT_FORMATS`); ``color`` and ``width`` only
     shape the table. Raises ``ValueError`` for another name."""
-    from steelyard.render.json_report import render_json
-    from steelyard.render.junit import render_junit
-    from steelyard.render.markdown import render_markdown
-    from steelyard.render.sarif import render_sarif
-    from steelyard.render.table_report import render_table
-
-    renderers: dict[str, Callable[[], str]] = {
-        "table": lambda: render_table(report, color=color, width=width),
-        "json": lambda: render_json(report),
-        "markdown": lambda: render_markdown(report),
-        "sarif": lambda: render_sarif(report),
-        "junit": lambda: render_junit(report),
-        "html": lambda: html_renderers().render_audit_html(report),
-    }
-    if format not in renderers:
+    if format not in AUDIT_FORMATS:
         raise ValueError(f"unknown format {format!r}: one of {', '.join(AUDIT_FORMATS)}")
-    return renderers[format]()
+    if format == "table":
+        from steelyard.render.table_report import render_table
+
+        return render_table(report, color=color, width=width)
+    if format == "html":
+        page: str = html_renderers().render_audit_html(report)
+        return page
+    module, function = _DOCUMENTS[format]
+    text: str = getattr(importlib.import_module(f"steelyard.render.{module}"), function)(report)
+    return text

@@ -171,7 +171,7 @@ def _audit(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     names = [str(row.layer["name"]) for row in audit.layers]
     names += [f.layer for f in audit.findings if f.layer]
     tails = distinct_tails(names)
-    specs = registry(None)
+    specs = registry()  # an audit's findings come from the audit's rules only
     if audit.findings:
         parts += findings_section(audit.findings, specs, width, tails)
     else:

@@ -46,6 +46,7 @@ from steelyard.rules.untrained_layer import (
     holm,
     ks_distance,
     ks_limit,
+    quartiles,
     row_spread,
     scale_z,
     smallest_claimable,
@@ -408,9 +409,10 @@ def test_subsampled_fresh_draws_stay_inside_the_edge(family: str) -> None:
 
 
 def test_subsample_sees_directions_from_the_documented_strength() -> None:
-    # Measured while choosing the subsample (1024 × 1024, 20 draws each, bf16 not applied):
-    # searched whole, directions of 1.5× the threshold were found 20/20; on one row in 8,
-    # 2.0× 0/20, 2.5× and 3.0× 20/20. Below the threshold nothing can see them.
+    # Measured while choosing the subsample (1024 × 1024, bf16-rounded, 20 draws each; the
+    # rule's documentation): searched whole, directions of 1.5× the threshold were found
+    # 20/20; on one row in 8, 1.5× and 2× 0/20, 2.5× and 3× 20/20. Below the threshold
+    # (Baik, Ben Arous & Péché 2005) nothing can see them.
     rng = np.random.default_rng(19)
     sigma = 1 / math.sqrt(1024)
     found = {strength: 0 for strength in (0.8, 2.5, 3.0)}
@@ -596,3 +598,12 @@ def test_findings_and_notes_do_not_depend_on_jobs(tmp_path: Path) -> None:
         results.append((findings, notes.lines(["a", "b", "c", "d"])))
     assert results[0] == results[1] == results[2]
     assert [f.layer for f in results[0][0]] == ["a", "b"]
+
+
+def test_quartiles_are_numpys() -> None:
+    # reference: numpy.quantile's default (linear, Hyndman & Fan type 7) method
+    rng = np.random.default_rng(21)
+    for size in (1, 2, 3, 4, 5, 64, 1023, 2816):
+        values = rng.lognormal(0.0, 1.0, size)
+        expected = np.quantile(values, [0.25, 0.5, 0.75])
+        assert quartiles(values) == tuple(float(v) for v in expected)

@@ -26,10 +26,17 @@ def erf(x: np.ndarray) -> np.ndarray:
     x = np.asarray(x, dtype=np.float64)
     a = np.abs(x)
     t = 1.0 / (1.0 + _AS_P * a)
-    poly = np.zeros_like(t)
-    for coefficient in _AS_A:  # Horner: ((((a5 t + a4) t + a3) t + a2) t + a1) t
-        poly = (poly + coefficient) * t
-    return np.asarray(np.copysign(1.0 - poly * np.exp(-a * a), x), dtype=np.float64)
+    # Horner, ((((a5 t + a4) t + a3) t + a2) t + a1) t, in place (the operations, and so the
+    # values, of the plain expression, without its temporaries).
+    poly = _AS_A[0] * t
+    for coefficient in _AS_A[1:]:
+        poly += coefficient
+        poly *= t
+    np.multiply(a, a, out=a)
+    np.negative(a, out=a)
+    poly *= np.exp(a, out=a)
+    np.subtract(1.0, poly, out=poly)
+    return np.copysign(poly, x, out=poly)
 
 
 def _phi(z: np.ndarray) -> np.ndarray:

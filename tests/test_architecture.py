@@ -239,22 +239,28 @@ def test_extras_are_imported_lazily() -> None:
     assert eager - allowed == set()
 
 
-def _audit_imports(path: Path) -> set[str]:
-    """Which of the slow optional libraries a JSON audit of ``path`` imported (fresh process)."""
+def _audit_imports(path: Path, log: Path) -> set[str]:
+    """Which of the slow optional libraries a JSON audit of ``path`` imported, in its process
+    or in the sandbox processes it forks (HDF5 structures are read in one, which inherits the
+    import hook): every import of one is written to ``log``."""
     import subprocess
 
     probe = (
         "import sys\n"
+        "class Hook:\n"
+        "    def find_spec(self, name, path=None, target=None):\n"
+        "        if name in ('ml_dtypes', 'onnx'):\n"
+        f"            with open({str(log)!r}, 'a') as out:\n"
+        "                out.write(name + '\\n')\n"
+        "sys.meta_path.insert(0, Hook())\n"
         "from steelyard.cli import main\n"
         f"sys.argv = ['steelyard', 'audit', {str(path)!r}, '--fail-on', 'never', '-f', 'json', '-q']\n"
         "try:\n    main()\nexcept SystemExit as exit:\n    assert exit.code == 0, exit.code\n"
-        "print('imported:' + ','.join(m for m in ('ml_dtypes', 'onnx') if m in sys.modules), "
-        "file=sys.stderr)\n"
     )
+    log.unlink(missing_ok=True)
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True)
     assert done.returncode == 0, done.stderr
-    (line,) = [x for x in done.stderr.splitlines() if x.startswith("imported:")]
-    return set(filter(None, line.removeprefix("imported:").split(",")))
+    return set(log.read_text().split()) if log.exists() else set()
 
 
 def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
@@ -282,11 +288,39 @@ def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
             written += [Path(f"{stem}.safetensors"), Path(f"{stem}.npz")]
     demo = SRC.parent / "fixtures" / "demo"
     written += [demo / "pumpwear-nightly-bad.keras", demo / "pumpwear-healthy.h5"]
-    loaded = {path.name: _audit_imports(path) for path in written}
+    loaded = {path.name: _audit_imports(path, tmp_path / "imports.log") for path in written}
     assert {name: mods for name, mods in loaded.items() if "ml_dtypes" in mods} == {}
 
 
-def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it() -> None:
-    # The probe above can fail: a bf16 file is decoded by ml_dtypes (the reference library).
+def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it(tmp_path: Path) -> None:
+    # The probe above can fail: a bf16 file is decoded by ml_dtypes (the reference library),
+    # and an import in the HDF5 sandbox is seen too (a Keras file whose weights are bf16,
+    # written with h5py in the layout of fixtures/demo/*.keras).
+    import shutil
+    import zipfile
+
+    import h5py
+    import ml_dtypes
+    import numpy as np
+
+    log = tmp_path / "imports.log"
     bf16 = SRC.parent / "fixtures" / "demo" / "pumpwear-healthy.bf16.safetensors"
-    assert "ml_dtypes" in _audit_imports(bf16)
+    assert "ml_dtypes" in _audit_imports(bf16, log)
+    demo = SRC.parent / "fixtures" / "demo" / "pumpwear-nightly-bad.keras"
+    with zipfile.ZipFile(demo) as archive:
+        archive.extractall(tmp_path / "members")
+    weights = tmp_path / "members" / "model.weights.h5"
+    with h5py.File(weights, "r+") as h5:
+        found: list[str] = []
+        h5.visititems(lambda name, obj: found.append(name) if isinstance(obj, h5py.Dataset) else None)
+        for name in found:
+            values = np.asarray(h5[name][()])
+            if values.dtype == np.float32 and values.size:
+                del h5[name]
+                # Keras 3's layout for bfloat16: 2-byte opaque data with a dtype attribute.
+                h5[name] = values.astype(ml_dtypes.bfloat16).view(np.uint16).view("V2")
+                h5[name].attrs["dtype"] = "bfloat16"
+                break
+    shutil.make_archive(str(tmp_path / "bf16"), "zip", tmp_path / "members")
+    keras_bf16 = (tmp_path / "bf16.zip").rename(tmp_path / "bf16.keras")
+    assert "ml_dtypes" in _audit_imports(keras_bf16, log)

@@ -379,7 +379,8 @@ def test_a_row_subsample_never_shows_more_than_the_whole_matrix() -> None:
     for strength in (0.0, 2.0, 4.0):
         matrix = _spiked(rng, 1024, 512, strength).astype(np.float32)
         whole = np.linalg.svd(matrix.astype(np.float64), compute_uv=False)[0]
-        check = edge_check(matrix, 1 / math.sqrt(512), 4.0, seed=3)
+        assert row_stride(1024, 512) == 4
+        check = edge_check(matrix[3::4], 1 / math.sqrt(512), 4.0, seed=3)
         assert check.rows == 256  # every 4th row from offset 3
         rows = matrix[3::4].astype(np.float64)
         exact = np.linalg.svd(rows, compute_uv=False)[0]
@@ -401,7 +402,8 @@ def test_subsampled_fresh_draws_stay_inside_the_edge(family: str) -> None:
         for seed in range(12):
             matrix = draw(rng, (m, n)).astype(np.float32)
             sigma = float(np.sqrt(np.mean(matrix.astype(np.float64) ** 2)))
-            check = edge_check(matrix, sigma, 4.0, seed)
+            stride = row_stride(m, n)
+            check = edge_check(matrix[seed % stride :: stride], sigma, 4.0, seed)
             assert check.rows < m
             scores.append(check.beyond)
         assert max(scores) < 4.0
@@ -419,7 +421,7 @@ def test_subsample_sees_directions_from_the_documented_strength() -> None:
     for strength in found:
         for seed in range(8):
             matrix = _spiked(rng, 1024, 1024, strength).astype(np.float32)
-            found[strength] += edge_check(matrix, sigma, 4.0, seed).beyond > 4.0
+            found[strength] += edge_check(matrix[seed % 8 :: 8], sigma, 4.0, seed).beyond > 4.0
     assert found == {0.8: 0, 2.5: 8, 3.0: 8}
     # what the subsample gives up: the whole matrix shows a 1.5× direction
     matrix = _spiked(rng, 1024, 1024, 1.5).astype(np.float32)
@@ -607,3 +609,30 @@ def test_quartiles_are_numpys() -> None:
         values = rng.lognormal(0.0, 1.0, size)
         expected = np.quantile(values, [0.25, 0.5, 0.75])
         assert quartiles(values) == tuple(float(v) for v in expected)
+
+
+@pytest.mark.parametrize("stream_bytes", [0, 2**30])
+def test_row_subsamples_are_the_same_rows_however_the_layer_is_read(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, stream_bytes: int
+) -> None:
+    # stream_bytes 0: the layer is streamed in row blocks (of 3 rows of 40 float32 here), not
+    # assembled; 2**30: read whole. Reference: the safetensors package's own reader.
+    import ml_dtypes
+    import safetensors.numpy
+
+    from steelyard import streaming
+    from steelyard.stats import LayerStats
+
+    monkeypatch.setattr(streaming, "CHUNK_BYTES", 3 * 40 * 4)
+    rng = np.random.default_rng(22)
+    stored = {"wide.weight": rng.standard_normal((301, 40)).astype(ml_dtypes.bfloat16)}
+    path = tmp_path / "m.safetensors"
+    safetensors.numpy.save_file(stored, str(path))
+    weights = safetensors.numpy.load_file(str(path))["wide.weight"].astype(np.float32)
+    checkpoint = load(path)
+    (layer,) = checkpoint.layers
+    for start, step in ((0, 1), (0, 8), (5, 8), (2, 3), (6, 7)):
+        stats = LayerStats(checkpoint, stream_bytes=stream_bytes)
+        picked = stats.rows(layer, start, step)
+        np.testing.assert_array_equal(picked, weights[start::step])
+        assert picked.flags["C_CONTIGUOUS"] and picked.dtype == np.float32

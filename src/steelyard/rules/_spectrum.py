@@ -96,14 +96,11 @@ class EdgeCheck:
         return (self.top - self.edge) / self.fluctuation
 
 
-def edge_check(matrix: np.ndarray, sigma: float, allowed: float, seed: int = 0) -> EdgeCheck:
-    """Search ``matrix`` (or its row subsample, see the module) for a singular value more than
-    ``allowed`` fluctuations beyond the edge of an i.i.d. matrix of element deviation σ."""
-    m, n = matrix.shape
-    stride = row_stride(m, n)
-    # A contiguous copy (1/stride of a pass) makes each product a plain BLAS call.
-    rows = matrix if stride == 1 else np.ascontiguousarray(matrix[seed % stride :: stride])
-    kept = rows.shape[0]
+def edge_check(rows: np.ndarray, sigma: float, allowed: float, seed: int = 0) -> EdgeCheck:
+    """Search ``rows`` (a whole matrix, or the rows ``start::row_stride(m, n)`` of a larger
+    one, see the module) for a singular value more than ``allowed`` fluctuations beyond the
+    edge of an i.i.d. matrix of their shape and element deviation σ."""
+    kept, n = rows.shape
     edge = mp_edge(sigma, kept, n)
     fluctuation = edge_fluctuation(sigma, kept, n)
     limit = edge + allowed * fluctuation

@@ -48,7 +48,7 @@ across the checkpoint that decides which of the layers that passed are reported.
    erf of Abramowitz & Stegun (1964) formula 7.1.26 (absolute error <= 1.5e-7, vectorised).
    The sample is read by the shared statistics (``LayerStats.sample``): from the layer's matrix
    when it is in memory, else picked from the row blocks as they stream past, so an embedding
-   table is never assembled unless it matches a candidate.
+   table is never assembled (the spectrum's row subsample is picked the same way).
 
    The KS distance barely notices a wrong *scale* in a small sample (a normal 20 % too wide
    is only D ≈ 0.07 away), and a trained layer often looks Gaussian; with a dozen candidate
@@ -182,7 +182,7 @@ from steelyard.graph import Layer, LayerKind
 from steelyard.numbers import count, measured
 from steelyard.rules._initializers import Candidate, candidates, cdf_table
 from steelyard.rules._layer_results import LayerResults
-from steelyard.rules._spectrum import edge_check
+from steelyard.rules._spectrum import edge_check, row_stride
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
@@ -419,8 +419,10 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         if spread > spread_max:
             return nothing  # the units' norms differ as only training makes them
     allowed = limits.edge_fluctuations
-    # Only a layer that matched an initializer is read whole, for its spectrum.
-    check = edge_check(ctx.stats.matrix(layer), best.std, allowed, seed)
+    # Only a layer that matched an initializer is read for its spectrum: every stride-th row
+    # (streamed when the layer is too large to cache).
+    stride = row_stride(m, n)
+    check = edge_check(ctx.stats.rows(layer, seed % stride, stride), best.std, allowed, seed)
     top, edge, fluctuation, beyond = check.top, check.edge, check.fluctuation, check.beyond
     spectrum: dict[str, object] = {
         "top_singular": float(f"{top:.6g}"), "mp_edge": float(f"{edge:.6g}"),

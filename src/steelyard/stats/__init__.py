@@ -110,6 +110,12 @@ class LayerStats:
         """Canonical ``W[units, fan_in]`` as float32 (read once while it fits the cache)."""
         return self._passes.matrix(layer)
 
+    def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
+        """Rows ``start``, ``start + step``, … of ``W[units, fan_in]`` as contiguous float32.
+        A layer too large to cache is streamed in row blocks for them instead of being
+        assembled, so a row subsample of a large embedding costs its own memory only."""
+        return self._passes.rows(layer, start, step)
+
     def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:
         """A seeded uniform sample of ``size`` of the layer's weights (all of them when it has
         no more), sorted, float64. The positions are ``default_rng(seed).choice(units·fan_in,

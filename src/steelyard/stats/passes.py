@@ -130,6 +130,21 @@ class WeightPasses:
             picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
         return np.sort(picked).astype(np.float64)
 
+    def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
+        """See :meth:`steelyard.stats.LayerStats.rows`."""
+        units, fan_in = layer.units, layer.fan_in
+        source = self.streamable(layer)
+        cached = self.cache.get(("matrix", layer.name))
+        if step == 1 or cached is not None or source is None or 4 * units * fan_in <= self.stream_bytes:
+            return np.ascontiguousarray(self.matrix(layer)[start::step])
+        picked = np.empty((len(range(start, units, step)), fan_in), dtype=np.float32)
+        scratch = np.empty(0, dtype=np.float32)
+        for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
+            first = a + (start - a) % step  # the first kept row at or after a
+            if first < b:
+                picked[(first - start) // step : (b - 1 - start) // step + 1] = block[first - a :: step]
+        return picked
+
     def _pass(self, layer: Layer, keep: bool) -> np.ndarray | None:
         """Read the layer's weights once and store their summary (and the weight tensor's
         counts); returns the matrix when it was assembled (always when ``keep``)."""

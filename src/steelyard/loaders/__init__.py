@@ -7,6 +7,7 @@ turn, and returns the :class:`~steelyard.graph.Checkpoint` of the first that rec
 from __future__ import annotations
 
 import importlib
+from collections.abc import Iterator
 from pathlib import Path
 
 from steelyard.errors import LoadError
@@ -35,9 +36,9 @@ SUPPORTED = (
 _HEAD_BYTES = 4096
 
 
-def loaders() -> list[Loader]:
-    """Every available loader, in sniffing order."""
-    found: list[Loader] = []
+def _each_loader() -> Iterator[Loader]:
+    """Every available loader, in sniffing order, each imported only when its turn comes: a
+    file the first loaders recognise never imports the others (docs/performance.md, Start-up)."""
     for module_name, class_name in _REGISTRY:
         try:
             module = importlib.import_module(module_name)
@@ -45,8 +46,12 @@ def loaders() -> list[Loader]:
             if exc.name == module_name:
                 continue
             raise
-        found.append(getattr(module, class_name)())
-    return found
+        yield getattr(module, class_name)()
+
+
+def loaders() -> list[Loader]:
+    """Every available loader, in sniffing order."""
+    return list(_each_loader())
 
 
 def sniff_format(path: Path) -> str | None:
@@ -58,7 +63,7 @@ def sniff_format(path: Path) -> str | None:
         return None
     if not head:
         return None
-    for loader in loaders():
+    for loader in _each_loader():
         try:
             if loader.sniff(path, head):
                 return loader.format.value
@@ -94,7 +99,7 @@ def load(path: str | Path) -> Checkpoint:
         raise LoadError(target, f"cannot be opened ({exc.strerror})") from None
     if not head:
         raise LoadError(target, "is empty")
-    for loader in loaders():
+    for loader in _each_loader():
         if loader.sniff(target, head):
             try:
                 checkpoint = loader.load(target)

@@ -3,7 +3,8 @@
 Runs once after loading and before the rules (:func:`annotate`, called by
 :func:`steelyard.loaders.load`): the counts come from the model's own description (a
 ``config.json`` beside the file, read through the one side-file helper, or the GGUF metadata,
-see :mod:`.hyper`), the blocks from the layer names (:mod:`.attention`, :mod:`.experts`). The
+see :mod:`.hyper`), the blocks from the layer names (:mod:`.attention`, :mod:`.experts`); a
+Keras file's attention layers declare both through its loader (:mod:`.keras_heads`). The
 result is a :class:`~steelyard.transformer.model.Structure` on ``Checkpoint.transformer`` and
 the layers' unit groupings on ``Checkpoint.unit_groups`` (``steelyard layers --format json``
 shows them as ``unit_groups``). Nothing here reads a weight: names, shapes and counts only.
@@ -17,7 +18,7 @@ from dataclasses import replace
 from pathlib import Path
 
 from steelyard.graph import Checkpoint, Format, Layer, LayerKind, UnitGroup
-from steelyard.transformer import attention, experts
+from steelyard.transformer import attention, experts, keras_heads
 from steelyard.transformer.hyper import Counts, Hyper, from_config, from_gguf
 from steelyard.transformer.mlp import fused_gate_up
 from steelyard.transformer.model import AttentionBlock, Span, Structure
@@ -79,8 +80,12 @@ def recognise(checkpoint: Checkpoint) -> Structure | None:
     """The attention and expert blocks of ``checkpoint``, or None when it has none."""
     hyper = _hyper(checkpoint)
     notes: list[str] = []
-    by_module, real_name = _module_named(checkpoint.layers)
-    blocks = [_renamed(b, real_name) for b in attention.find_blocks(by_module, hyper, notes)]
+    if checkpoint.format in keras_heads.KERAS_FORMATS:
+        blocks, source = keras_heads.find_blocks(checkpoint, notes)
+        hyper = replace(hyper, source=source)
+    else:
+        by_module, real_name = _module_named(checkpoint.layers)
+        blocks = [_renamed(b, real_name) for b in attention.find_blocks(by_module, hyper, notes)]
     moe = experts.find_blocks(checkpoint.layers, hyper, notes)
     fused = tuple(fused_gate_up(checkpoint.layers))
     if not blocks and not moe and not fused and not notes:

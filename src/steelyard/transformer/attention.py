@@ -86,7 +86,7 @@ def find_blocks(layers: tuple[Layer, ...], hyper: Hyper, notes: list[str]) -> li
             if k is None or v is None or o is None:
                 continue
             name = _block_name(parent, leaf)
-            block = _separate(name, layer, k, v, o, hyper.counts_for(name), notes)
+            block = separate_block(name, layer, k, v, o, hyper.counts_for(name), notes)
             if block is not None:
                 blocks.append(block)
                 seen.update((layer.name, k.name, v.name, o.name))
@@ -133,9 +133,11 @@ def _dims(
     return heads, kv, head_dim
 
 
-def _separate(
+def separate_block(
     name: str, q: Layer, k: Layer, v: Layer, o: Layer, counts: Counts, notes: list[str]
 ) -> AttentionBlock | None:
+    """The block of separate projections ``q``, ``k``, ``v``, ``o`` split into heads by
+    ``counts``; None (with a note) when their shapes do not fit the counts."""
     dims = _dims(name, counts, q.units, k.units, notes)
     if dims is None:
         return None

@@ -100,7 +100,8 @@ class Structure:
     """``decoder``, ``encoder``, ``encoder-decoder``, ``vision`` or ``unknown``."""
     model_type: str
     source: str
-    """Where the counts came from: ``config.json``, ``GGUF metadata`` or ``names``."""
+    """Where the counts came from: ``config.json``, ``GGUF metadata``, ``Keras model config``,
+    ``Keras weight shapes`` (a ``.weights.h5`` without its config) or ``names``."""
     attention: tuple[AttentionBlock, ...] = ()
     experts: tuple[ExpertBlock, ...] = ()
     tied_embeddings: bool | None = None

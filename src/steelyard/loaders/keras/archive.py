@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import struct
 import zipfile
+from dataclasses import replace
 from pathlib import Path
 
 from steelyard import budget
@@ -148,5 +149,6 @@ def load_archive(path: Path, spill: Path | None = None, spent: int = 0) -> Check
     )
     store = H5Store(path, location, spent)
     with store.open() as f:
-        read = read_weights_h5(store, f, graph, opt)
-    return checkpoint_from(path, Format.KERAS, size, read, (path,), notes)
+        reading, metadata = read_weights_h5(store, f, graph, opt)
+    checkpoint = checkpoint_from(path, Format.KERAS, size, reading, (path,), notes)
+    return replace(checkpoint, metadata=metadata) if metadata else checkpoint

@@ -6,6 +6,7 @@ sandbox; tensors stay on disk until read.
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 from steelyard.errors import LoadError
@@ -39,7 +40,9 @@ def load_h5_file(path: Path) -> Checkpoint:
             raise
         except H5_ERRORS as exc:
             raise store.fail(f"is a damaged HDF5 file ({reason(exc)})") from None
-    return checkpoint_from(path, Format.KERAS_H5, size, read, (path,))
+    reading, metadata = read
+    checkpoint = checkpoint_from(path, Format.KERAS_H5, size, reading, (path,))
+    return replace(checkpoint, metadata=metadata) if metadata else checkpoint
 
 
 class KerasH5Loader:

@@ -50,6 +50,13 @@ SEPARABLE: dict[str, int] = {
     "SeparableConvolution2D": 2,
 }
 EMBEDDING = frozenset({"Embedding"})
+#: Attention layers made of EinsumDense sub-layers (``query``, ``key``, ``value``,
+#: ``attention_output``, optional ``gate``); see :mod:`~steelyard.loaders.keras.attention`.
+#: ``GroupQueryAttention`` is the name Keras exports (and writes in configs) for its class
+#: ``GroupedQueryAttention``.
+ATTENTION = frozenset({"MultiHeadAttention", "GroupQueryAttention", "GroupedQueryAttention"})
+#: Config class → the Python class name Keras derives ``.weights.h5`` keys from, where they differ.
+KEY_CLASS = {"GroupQueryAttention": "GroupedQueryAttention"}
 #: Recurrent classes → gate order along the kernel's last axis.
 RNN_GATES: dict[str, tuple[str, ...]] = {
     "LSTM": ("i", "f", "c", "o"),
@@ -123,6 +130,7 @@ def unit_classes() -> frozenset[str]:
         | set(SEPARABLE)
         | set(EMBEDDING)
         | set(RNN_GATES)
+        | set(ATTENTION)
     )
 
 
@@ -138,8 +146,15 @@ def to_snake_case(name: str) -> str:
 
 #: snake_case family → class, for files without a config (default layer names / keys).
 FAMILY: dict[str, str] = {
-    to_snake_case(c): c
-    for c in sorted(set(UNIT) | BATCH_NORM | LAYER_NORM | GROUP_NORM | {"PReLU"} | set(CONTAINERS))
+    to_snake_case(KEY_CLASS.get(c, c)): c
+    for c in sorted(
+        set(UNIT) - {"GroupedQueryAttention"}
+        | BATCH_NORM
+        | LAYER_NORM
+        | GROUP_NORM
+        | {"PReLU"}
+        | set(CONTAINERS)
+    )
 }
 
 

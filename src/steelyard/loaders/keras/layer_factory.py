@@ -5,6 +5,7 @@ constraint and regularizer."""
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -14,7 +15,9 @@ import numpy as np
 
 from steelyard.errors import LoadError
 from steelyard.graph import Activation, Layer, LayerKind, Link, Tensor
+from steelyard.loaders.keras import attention as ka
 from steelyard.loaders.keras.layer_classes import (
+    ATTENTION,
     CONV,
     CONV_T,
     DENSE,
@@ -62,6 +65,8 @@ class LayerFactory:
 
     def __init__(self, source: Path) -> None:
         self.source = source
+        self.attention: list[ka.AttentionFacts] = []
+        """The head counts of every attention layer built, in model order."""
 
     def fail(self, atom: Atom, reason: str) -> LoadError:
         return LoadError(self.source, f"layer {atom.name!r} ({atom.cls}): {reason}")
@@ -95,6 +100,8 @@ class LayerFactory:
             return self._embedding(atom)
         if cls in RNN_GATES:
             return _recurrent(self, atom, have_config)
+        if cls in ATTENTION:
+            return self._attention(atom, have_config)
         return None
 
     def _source(
@@ -215,6 +222,49 @@ class LayerFactory:
             **self._extras(atom, "pointwise", point, {rank + 1}),
         )
         return Built([depthwise, pointwise], [depth_name], point_name, point_name)
+
+    def _attention(self, atom: Atom, have_config: bool) -> Built:
+        """Query, key, (gate,) value and output projections of a Keras attention layer as
+        dense layers whose rows (columns for the output) run head by head; see
+        :mod:`~steelyard.loaders.keras.attention`. Its facts go to :attr:`attention`."""
+        try:
+            found = ka.dims(atom.weights, atom.config, have_config)
+        except ka.AttentionShapeError as exc:
+            raise self.fail(atom, str(exc)) from None
+        gated = "gate/kernel" in atom.weights
+        layers: list[Layer] = []
+        for part, _ in ka.PARTS:
+            kernel = atom.weights.get(f"{part}/kernel")
+            if kernel is None:
+                continue
+            shape = kernel.shape
+            links: dict[str, Any] = {}
+            if part == "attention_output":
+                units, fan, orient = math.prod(shape[2:]), shape[0] * shape[1], ka.heads_last
+                unit_axes = set(range(2, len(shape)))
+                if found.kv_heads == found.heads and not gated and have_config:
+                    # Input h·d_v + j is value unit h·d_v + j averaged over positions with
+                    # weights that sum to 1: dead, constant or scaled as that unit is.
+                    links = {"inputs_from": (f"{atom.name}/value",), "linked_by": Link.CONFIG}
+            else:
+                units, fan, orient, unit_axes = shape[1] * shape[2], shape[0], ka.heads_first, {1, 2}
+            bias = atom.weights.get(f"{part}/bias")
+            source = self._source(
+                kernel, orient, (bias.name, float_view(bias, ka.flat)) if bias else (None, None)
+            )
+            activation = Activation.SIGMOID if part == "gate" else Activation.IDENTITY
+            extras = self._extras(atom, "kernel", kernel, unit_axes)
+            geometry = layer_geometry(units, fan)
+            name = f"{atom.name}/{part}"
+            layers.append(
+                make_layer(name, LayerKind.DENSE, activation, geometry, source, **extras, **links)
+            )
+        self.attention.append(ka.facts(atom.name, atom.cls, found, gated, have_config))
+        output = layers[-1].name
+        # Query and key/value read different inputs in cross-attention; linked only when the
+        # layer has one producer (self-attention).
+        entry = [layer.name for layer in layers[:-1]] if len(set(atom.preds)) <= 1 else []
+        return Built(layers, entry, output, output)
 
     def _embedding(self, atom: Atom) -> Built:
         table = self.tensor(atom, "embeddings")

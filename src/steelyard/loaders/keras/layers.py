@@ -13,6 +13,7 @@ from typing import Any
 
 from steelyard.errors import LoadError
 from steelyard.graph import Activation, Layer, Link, mark_outputs
+from steelyard.loaders.keras.attention import KEY
 from steelyard.loaders.keras.layer_classes import (
     ACTIVATION_LAYERS,
     BATCH_NORM,
@@ -31,8 +32,10 @@ from steelyard.loaders.keras.variables import expected_roles
 
 def build_layers(
     atoms: list[Atom], source: Path, have_config: bool
-) -> tuple[tuple[Layer, ...], list[str]]:
-    """Turn atoms with attached tensors into canonical layers, linked from the config.
+) -> tuple[tuple[Layer, ...], list[str], dict[str, Any]]:
+    """Turn atoms with attached tensors into canonical layers, linked from the config; with
+    notes and the checkpoint metadata the layers declare (attention heads, see
+    :mod:`~steelyard.loaders.keras.attention`).
 
     ``have_config`` False means the atoms were inferred from names alone: activations are
     unknown and nothing is linked.
@@ -47,7 +50,7 @@ def build_layers(
         needed = [
             r
             for r in (expected_roles(atom.cls, atom.config if have_config else {}) or [])
-            if r != "bias"
+            if r.rpartition("/")[2] != "bias"
         ]
         if not atom.weights or any(role not in atom.weights for role in needed):
             skipped.append(atom.name)
@@ -69,12 +72,13 @@ def build_layers(
             + ", ".join(skipped[:5])
             + ("…" if len(skipped) > 5 else "")
         )
+    metadata: dict[str, Any] = {KEY: tuple(factory.attention)} if factory.attention else {}
     layers: list[Layer] = []
     if not have_config:
         for atom in atoms:
             if atom.name in built:
                 layers.extend(built[atom.name].layers)
-        return tuple(layers), notes
+        return tuple(layers), notes, metadata
     linker = Linker(atoms, built)
     for atom in atoms:
         result = built.get(atom.name)
@@ -94,7 +98,7 @@ def build_layers(
             if layer.name == result.last:
                 update.update(finals)
             layers.append(replace(layer, **update) if update else layer)
-    return mark_outputs(layers), notes
+    return mark_outputs(layers), notes, metadata
 
 
 def _finish(atom: Atom, result: Built, linker: Linker) -> dict[str, Any]:

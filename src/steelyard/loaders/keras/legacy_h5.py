@@ -79,7 +79,7 @@ def read_legacy(store: H5Store, f: Any) -> WeightsRead:
                 "no model config: layer kinds were inferred from default layer names; "
                 "activations and links are unknown"
             )
-    layers, more = build_layers(atoms, store.source, graph is not None)
+    layers, more, metadata = build_layers(atoms, store.source, graph is not None)
     notes.extend(more)
     optimizer = None
     if "optimizer_weights" in f:
@@ -89,7 +89,7 @@ def read_legacy(store: H5Store, f: Any) -> WeightsRead:
         optimizer, note = _legacy_optimizer(store, f, atoms, groups, opt, version)
         if note:
             notes.append(note)
-    return tensors, layers, optimizer, notes
+    return (tensors, layers, optimizer, notes), metadata
 
 
 def _legacy_atoms(layer: str, items: list[tuple[str, Tensor]]) -> list[Atom]:

@@ -28,6 +28,7 @@ from steelyard.loaders.keras.inbound import Fail, inbound_refs, output_refs
 from steelyard.loaders.keras.layer_classes import (
     BIDIRECTIONAL_MERGE,
     CONTAINERS,
+    KEY_CLASS,
     WRAPPERS,
     to_snake_case,
 )
@@ -155,7 +156,7 @@ class _ConfigWalker:
             if sequential and lcls == "InputLayer":
                 key_path = ""
             else:
-                key = to_snake_case(lcls)
+                key = to_snake_case(KEY_CLASS.get(lcls, lcls))
                 if key in used:
                     used[key] += 1
                     key = f"{key}_{used[key]}"

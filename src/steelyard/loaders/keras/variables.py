@@ -7,8 +7,10 @@ import re
 from collections.abc import Mapping
 from typing import Any
 
+from steelyard.loaders.keras import attention
 from steelyard.loaders.keras.config_values import flag
 from steelyard.loaders.keras.layer_classes import (
+    ATTENTION,
     BATCH_NORM,
     CONV,
     CONV_T,
@@ -30,6 +32,8 @@ def expected_roles(cls: str, config: Mapping[str, Any] | None) -> list[str] | No
     With ``config`` None (no model config) optional variables are assumed present; callers
     then only use this list to match names, never positions.
     """
+    if cls in ATTENTION:
+        return attention.roles(config)
     conf = config or {}
     bias = ["bias"] if flag(conf, "use_bias", True) else []
     if cls in DENSE or cls in CONV or cls in CONV_T or cls in DEPTHWISE:
@@ -70,6 +74,8 @@ def non_trainable_roles(cls: str) -> frozenset[str]:
 
 def role_of_name(cls: str, weight_name: str) -> str:
     """The variable role a stored weight name carries (``dense/kernel:0`` → ``kernel``)."""
+    if cls in ATTENTION:
+        return attention.role_of_name(weight_name)
     leaf = weight_name.rsplit("/", 1)[-1]
     leaf = re.sub(r":\d+$", "", leaf)
     if cls in DEPTHWISE and leaf == "depthwise_kernel":

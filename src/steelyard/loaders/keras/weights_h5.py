@@ -18,10 +18,12 @@ import h5py
 
 from steelyard.graph import OptimizerState, Tensor, TensorRole
 from steelyard.loaders.base import Reading
+from steelyard.loaders.keras import attention
 from steelyard.loaders.keras import optimizer as ko
 from steelyard.loaders.keras.config_values import MAX_DEPTH, natural_key
 from steelyard.loaders.keras.hdf5_access import H5Store
 from steelyard.loaders.keras.layer_classes import (
+    ATTENTION,
     RNN_GATES,
     WRAPPED_ATTRIBUTES,
     class_from_name,
@@ -36,8 +38,9 @@ from steelyard.loaders.keras.variables import (
     roles_by_count,
 )
 
-#: What reading a Keras HDF5 weights layout yields: tensors, layers, optimizer state, notes.
-WeightsRead = Reading
+#: What reading a Keras HDF5 weights layout yields: tensors, layers, optimizer state, notes;
+#: and the checkpoint metadata its layers declare (``Checkpoint.metadata``).
+WeightsRead = tuple[Reading, dict[str, Any]]
 
 
 def read_weights_h5(
@@ -67,7 +70,7 @@ def read_weights_h5(
                 "no model config: layer kinds were inferred from the weight file's keys; "
                 "activations and links are unknown"
             )
-    layers, more = build_layers(atoms, store.source, have_config)
+    layers, more, metadata = build_layers(atoms, store.source, have_config)
     notes.extend(more)
     optimizer = None
     if "optimizer" in f:
@@ -75,7 +78,7 @@ def read_weights_h5(
         if note:
             notes.append(note)
     ordered = _model_order(tensors, atoms)
-    return ordered, layers, optimizer, notes
+    return (ordered, layers, optimizer, notes), metadata
 
 
 def _model_order(tensors: dict[str, Tensor], atoms: list[Atom]) -> dict[str, Tensor]:
@@ -123,6 +126,13 @@ def _attach_vars(
     for atom in atoms:
         if not atom.key_path:
             continue
+        if atom.cls in ATTENTION:
+            weights = _attention_weights(index, atom.key_path)
+            if weights is None or set(weights) != set(attention.roles(atom.config)):
+                mismatched.append(f"{atom.name} (its sub-layers' variables)")
+            else:
+                atom.weights, atom.order = weights, list(weights)
+            continue
         prefix = _vars_path(atom)
         variables = index.get(prefix)
         if variables is None:
@@ -148,6 +158,25 @@ def _attach_vars(
             + ", ".join(mismatched[:5])
             + ("…" if len(mismatched) > 5 else "")
         )
+
+
+def _attention_weights(index: _Indexed, key_path: str) -> dict[str, Tensor] | None:
+    """An attention layer's variables by role (``query/kernel``…) in Keras' order, from the
+    groups of its sub-layers; None when a sub-layer holds other than a kernel and a bias."""
+    out: dict[str, Tensor] = {}
+    for part, _ in attention.PARTS:
+        found = [
+            variables
+            for key in attention.group_keys(part)
+            if (variables := index.get(f"{key_path}/{key}/vars"))
+        ]
+        if not found:
+            continue
+        if len(found) > 1 or len(found[0]) > 2:
+            return None
+        for role, tensor in zip(("kernel", "bias"), found[0], strict=False):
+            out[f"{part}/{role}"] = tensor
+    return out
 
 
 def _roles(cls: str, config: Any, count: int) -> list[str] | None:
@@ -202,6 +231,12 @@ def _atoms_from_keys(store: H5Store, f: Any, tensors: dict[str, Tensor]) -> list
             key_path=key_path,
             top=top,
         )
+        if cls in ATTENTION:
+            atom.name = own_name or key_path
+            atom.weights = _attention_weights(index, key_path) or {}
+            atom.order = list(atom.weights)
+            atoms.append(atom)
+            return
         prefix = _vars_path(atom)
         variables = index.get(prefix) or []
         if not cls:

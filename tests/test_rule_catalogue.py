@@ -1,5 +1,6 @@
 """The rule catalogue (``src/steelyard/rule_catalogue.json``) that ``steelyard rules`` reads
-instead of importing every rule: it must say what the live registry says, to the byte.
+instead of importing every rule: it must say what the live registry says, to the byte, and a
+catalogue made from other rule modules than those on disk must never be read.
 
 The reference is the registry itself (:func:`steelyard.rules.registry`): the catalogue is a
 copy of it for start-up time (docs/performance.md, Start-up).
@@ -46,15 +47,39 @@ def test_list_and_pages_from_cards_are_the_registrys(width: int, color: bool) ->
         assert render_rule(read[name], color=color, width=width) == render_rule(spec, color=color, width=width)
 
 
-def test_the_listing_shows_what_the_catalogue_says(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    # The checks above can fail: the file's words, not the registry's, are what is shown.
+def _planted(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, sources: str) -> str:
+    """A catalogue whose first rule says what the registry does not; returns that rule."""
     document = json.loads(catalogue_text())
+    document["sources"] = sources
     document["rules"][0]["summary"] = "planted summary"
     planted = tmp_path / "rule_catalogue.json"
     planted.write_text(json.dumps(document), encoding="utf-8")
     monkeypatch.setattr(rule_catalogue, "CATALOGUE", planted)
-    assert cards()[0].summary == "planted summary"
-    assert cards()[0].summary != registry(None)[cards()[0].name].summary
+    return str(document["rules"][0]["name"])
+
+
+def test_the_listing_shows_what_the_catalogue_says(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # The checks above can fail: made from the modules on disk, the file's words are shown.
+    name = _planted(tmp_path, monkeypatch, rule_catalogue.sources_digest())
+    assert {c.name: c.summary for c in cards()}[name] == "planted summary"
+
+
+@pytest.mark.parametrize("sources", ["0" * 64, ""])
+def test_a_catalogue_of_other_rule_sources_is_not_read(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, sources: str
+) -> None:
+    # A rule edited since the catalogue was made: the live registry speaks, never stale text.
+    name = _planted(tmp_path, monkeypatch, sources)
+    assert {c.name: c.summary for c in cards()}[name] == registry(None)[name].summary
+
+
+def test_the_digest_covers_the_rule_modules_and_the_severities() -> None:
+    # A check that the digest reads what the cards are made of (rule modules, findings.py),
+    # so an edited rule is noticed.
+    rule_files = {p.name for p in rule_catalogue._SOURCES[0].glob("*.py")}
+    assert {"dead_unit.py", "base.py", "__init__.py"} <= rule_files
+    assert rule_catalogue._SEVERITIES.name == "findings.py" and rule_catalogue._SEVERITIES.is_file()
+    assert len(rule_catalogue.sources_digest()) == 64
 
 
 def test_a_missing_or_broken_catalogue_falls_back_to_the_registry(
@@ -63,7 +88,8 @@ def test_a_missing_or_broken_catalogue_falls_back_to_the_registry(
     live = [card_of(spec) for spec in registry(None).values()]
     monkeypatch.setattr(rule_catalogue, "CATALOGUE", tmp_path / "absent.json")
     assert cards() == live
-    for text in ("{not json", '{"rules": [{"name": "x"}]}', '{"rules": [{"severity": "fatal"}]}'):
+    digest = rule_catalogue.sources_digest()
+    for text in ("{not json", '{"rules": []}', f'{{"sources": "{digest}", "rules": [{{"name": "x"}}]}}'):
         broken = tmp_path / "broken.json"
         broken.write_text(text, encoding="utf-8")
         monkeypatch.setattr(rule_catalogue, "CATALOGUE", broken)

@@ -253,3 +253,12 @@ def test_a_config_that_disagrees_with_the_stored_kernels_is_refused(tmp_path: Pa
     _write_keras(path, spec, np.random.default_rng(0), declared={"num_heads": 2, "key_dim": 4})
     with pytest.raises(LoadError, match=r"wrong\.keras.*attn.*declares heads 2 \(stored 4\)"):
         steelyard.load(path)
+
+
+def test_empty_head_axes_are_refused_with_one_line(tmp_path: Path) -> None:
+    # kv = 0 would divide by zero when heads are shared out: a bad file, exit 2, not a crash.
+    spec = {"cls": "GroupQueryAttention", "heads": 2, "kv": 0, "dh": 2, "dv": 2, "d": 4}
+    path = tmp_path / "empty.keras"
+    _write_keras(path, spec, np.random.default_rng(0), declared={"num_key_value_heads": 1})
+    with pytest.raises(LoadError, match=r"empty\.keras.*attn.*expected non-empty"):
+        steelyard.load(path)

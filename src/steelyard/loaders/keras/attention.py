@@ -131,9 +131,10 @@ def dims(weights: Mapping[str, Tensor], config: Mapping[str, Any], have_config: 
     biases and (with a config) against the counts the config declares."""
     shapes = {p: weights[f"{p}/kernel"].shape for p in ("query", "key", "value", "attention_output")}
     q, k, v, o = shapes.values()
-    if len(q) != 3 or len(k) != 3 or len(v) != 3 or len(o) < 3:
+    if len(q) != 3 or len(k) != 3 or len(v) != 3 or len(o) < 3 or 0 in (*q, *k, *v, *o):
         raise AttentionShapeError(
-            f"kernels {q}, {k}, {v}, {o}: expected [d, heads, width] and [heads, width, out…]"
+            f"kernels {q}, {k}, {v}, {o}: expected non-empty [d, heads, width] and "
+            "[heads, width, out…]"
         )
     heads, head_dim, kv, value_dim = q[1], q[2], k[1], v[2]
     if k[2] != head_dim or v[1] != kv or o[0] != heads or o[1] != value_dim or heads % kv:

@@ -9,7 +9,6 @@ file that reaches stderr passes through :func:`steelyard.text_safety.shown`.
 
 from __future__ import annotations
 
-import difflib
 import json
 import os
 import sys
@@ -463,6 +462,8 @@ def rules(
         sys.stdout.write(render_rules(specs, color=_color(), width=_width()))
         return
     if name not in specs:
+        import difflib  # only for a name that is not a rule
+
         close = difflib.get_close_matches(name, list(specs), n=1)
         hint = f"; did you mean {close[0]!r}?" if close else ""
         _say(f"steelyard: error: no rule named {name!r}{hint}")

@@ -4,5 +4,5 @@
 walked one at a time) and ``hdf5_access`` (checked attributes and datasets, every h5py call in
 a sandboxed child process); ``model_config`` (the config flattened into atoms, with
 ``inbound``, ``config_values``, ``layer_classes``, ``variables`` and ``layer_settings``),
-``layers`` (layers and links: ``layer_factory``, ``orientation``, ``linking``) and
+``layers`` (layers and links: ``layer_factory``, ``orientation``, ``attention``, ``linking``) and
 ``optimizer`` (optimizer slots mapped onto model variables)."""

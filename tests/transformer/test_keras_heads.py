@@ -262,3 +262,30 @@ def test_empty_head_axes_are_refused_with_one_line(tmp_path: Path) -> None:
     _write_keras(path, spec, np.random.default_rng(0), declared={"num_key_value_heads": 1})
     with pytest.raises(LoadError, match=r"empty\.keras.*attn.*expected non-empty"):
         steelyard.load(path)
+
+
+@pytest.mark.parametrize("kind", ["keras", "h5"])
+def test_adam_moments_of_attention_variables_map_as_keras_looks_them_up(kind: str) -> None:
+    # Reference: keras's own optimizer._get_variable_index at save time (adam_gated.expected.npz,
+    # fixtures/gen_keras_heads.py); query, key, gate and value kernels share one shape, so only
+    # Keras' variable order (query, key, gate, value, attention_output) puts each moment right.
+    expected = np.load(FIXTURES / "adam_gated.expected.npz")
+    checkpoint = steelyard.load(FIXTURES / f"adam_gated.{kind}")
+    state = checkpoint.optimizer
+    assert state is not None and state.kind == "adam", checkpoint.notes
+    paths = [str(p) for p in expected["path"]]
+    assert sum("/gate/" in p for p in paths) == 2  # the gated layer's gate kernel and bias
+    for i, path in enumerate(paths):
+        layer_name, _, variable = path.rpartition("/")
+        layer = checkpoint.layer(layer_name)
+        assert layer is not None, path
+        name = layer.weight if variable == "kernel" else layer.bias
+        assert name is not None
+        np.testing.assert_array_equal(checkpoint.tensors[name].read(), expected[f"w/{i}"])
+        slots = state.slots[name]
+        assert slots.first_moment is not None and slots.second_moment is not None
+        np.testing.assert_array_equal(slots.first_moment.read(), expected[f"m/{i}"])
+        np.testing.assert_array_equal(slots.second_moment.read(), expected[f"v/{i}"])
+    gated = checkpoint.transformer
+    assert gated is not None
+    assert [(b.name, len(b.heads), b.kv_heads) for b in gated.attention] == [("gated", 2, 2), ("gqa", 4, 2)]

@@ -289,3 +289,41 @@ def test_adam_moments_of_attention_variables_map_as_keras_looks_them_up(kind: st
     gated = checkpoint.transformer
     assert gated is not None
     assert [(b.name, len(b.heads), b.kv_heads) for b in gated.attention] == [("gated", 2, 2), ("gqa", 4, 2)]
+
+
+def test_keras2_legacy_h5_with_multi_head_attention(tmp_path: Path) -> None:
+    # The tf.keras 2 layout, written here with h5py; from memory of tf.keras 2.x files (no
+    # tf.keras in the fixture venv): model_weights/<layer>/<layer>/<sub-layer>/kernel:0, the
+    # weight_names attribute listing query, key, value, attention_output (kernel, bias).
+    heads, dh, d = 3, 2, 6
+    rng = np.random.default_rng(3)
+    shapes = {"query": (d, heads, dh), "key": (d, heads, dh), "value": (d, heads, dh), "attention_output": (heads, dh, d)}
+    kernels = {p: rng.standard_normal(s).astype(np.float32) for p, s in shapes.items()}
+    model = {"class_name": "Functional", "config": {"name": "model", "layers": [
+        {"class_name": "InputLayer", "name": "input_1", "config": {"name": "input_1", "batch_input_shape": [None, 4, d]}, "inbound_nodes": []},
+        {"class_name": "MultiHeadAttention", "name": "multi_head_attention", "inbound_nodes": [[["input_1", 0, 0, {"value": ["input_1", 0, 0]}]]],
+         "config": {"name": "multi_head_attention", "num_heads": heads, "key_dim": dh, "value_dim": dh, "output_shape": None, "use_bias": True}},
+    ], "input_layers": [["input_1", 0, 0]], "output_layers": [["multi_head_attention", 0, 0]]}}
+    path = tmp_path / "tf2.h5"
+    with h5py.File(path, "w") as f:
+        f.attrs["keras_version"] = b"2.15.0"
+        f.attrs["model_config"] = json.dumps(model).encode()
+        root = f.create_group("model_weights")
+        root.attrs["layer_names"] = [b"input_1", b"multi_head_attention"]
+        root.create_group("input_1").attrs["weight_names"] = []
+        group = root.create_group("multi_head_attention")
+        names = []
+        for part, kernel in kernels.items():
+            for variable, value in (("kernel", kernel), ("bias", np.zeros(kernel.shape[2:] if part == "attention_output" else kernel.shape[1:], np.float32))):
+                name = f"multi_head_attention/{part}/{variable}:0"
+                group.create_dataset(name, data=value)
+                names.append(name.encode())
+        group.attrs["weight_names"] = names
+    checkpoint = steelyard.load(path)
+    assert checkpoint.transformer is not None
+    (block,) = checkpoint.transformer.attention
+    assert (block.name, len(block.heads), block.head_dim) == ("multi_head_attention", heads, dh)
+    for head in block.heads:
+        q = checkpoint.layer(head.q.layer)
+        assert q is not None
+        np.testing.assert_array_equal(q.matrix()[head.q.start : head.q.stop], kernels["query"][:, head.index, :].T)

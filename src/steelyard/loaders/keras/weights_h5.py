@@ -128,6 +128,8 @@ def _attach_vars(
             continue
         if atom.cls in ATTENTION:
             weights = _attention_weights(index, atom.key_path)
+            if weights == {}:
+                continue  # never built, so nothing stored (as for any layer without variables)
             if weights is None or set(weights) != set(attention.roles(atom.config)):
                 mismatched.append(f"{atom.name} (its sub-layers' variables)")
             else:

@@ -196,7 +196,10 @@ def _write_keras(path: Path, spec: dict[str, Any], rng: np.random.Generator, dec
                    "inbound_nodes": [{"args": [_tensor(inputs[0]), _tensor(inputs[-1])], "kwargs": {}}]})
     model = {"class_name": "Functional", "config": {"name": "f", "layers": layers,
              "input_layers": [[n, 0, 0] for n in inputs], "output_layers": [["attn", 0, 0]]}}
-    shapes = {"query": (d, heads, dh), "key": (d, kv, dh), "value": (d, kv, dv), "output": (heads, dv, d)}
+    out = tuple(spec.get("out", (d,)))  # MultiHeadAttention's output_shape
+    if "out" in spec:
+        config["output_shape"] = list(out)
+    shapes = {"query": (d, heads, dh), "key": (d, kv, dh), "value": (d, kv, dv), "output": (heads, dv, *out)}
     stored = {p: rng.standard_normal(s).astype(np.float32) for p, s in shapes.items()}
     buffer = io.BytesIO()
     with h5py.File(buffer, "w") as f:
@@ -219,13 +222,14 @@ def _write_keras(path: Path, spec: dict[str, Any], rng: np.random.Generator, dec
 
 SHAPES = [
     {"cls": "MultiHeadAttention", "heads": 2, "kv": 2, "dh": 3, "dv": 5, "d": 7},
+    {"cls": "MultiHeadAttention", "heads": 3, "kv": 3, "dh": 2, "dv": 4, "d": 6, "out": (2, 5)},
     {"cls": "MultiHeadAttention", "heads": 6, "kv": 6, "dh": 4, "dv": 4, "d": 24, "cross": True},
     {"cls": "GroupQueryAttention", "heads": 8, "kv": 2, "dh": 4, "dv": 4, "d": 16},
     {"cls": "GroupQueryAttention", "heads": 3, "kv": 1, "dh": 5, "dv": 5, "d": 10},
 ]
 
 
-@pytest.mark.parametrize("spec", SHAPES, ids=lambda s: f"{s['cls']}-{s['heads']}x{s['kv']}")
+@pytest.mark.parametrize("spec", SHAPES, ids=lambda s: f"{s['cls']}-{s['heads']}x{s['kv']}-d{s['d']}")
 def test_generated_files_of_several_shapes(tmp_path: Path, spec: dict[str, Any]) -> None:
     path = tmp_path / "model.keras"
     stored = _write_keras(path, spec, np.random.default_rng(spec["heads"]))
@@ -240,7 +244,9 @@ def test_generated_files_of_several_shapes(tmp_path: Path, spec: dict[str, Any])
         o = checkpoint.layer(head.o.layer)
         assert q is not None and o is not None
         np.testing.assert_array_equal(q.matrix()[head.q.start : head.q.stop], stored["query"][:, head.index, :].T)
-        np.testing.assert_array_equal(o.matrix()[:, head.o.start : head.o.stop], stored["output"][head.index].T)
+        # Output input h·d_v + j is kernel[h, j, …]; its units are output_shape flattened.
+        want = stored["output"][head.index].reshape(spec["dv"], -1).T
+        np.testing.assert_array_equal(o.matrix()[:, head.o.start : head.o.stop], want)
     query = checkpoint.layer("attn/query")
     assert query is not None
     # Cross-attention reads two inputs: the query projection is not linked to either.

@@ -454,10 +454,10 @@ def rules(
         sys.stdout.write(render_rules_json([every[name]] if name else list(every.values())))
         return
     # The list and the pages come from the catalogue: no rule module (nor numpy) is imported.
-    from steelyard.render.rules_text import AnySpec, render_rule, render_rules
+    from steelyard.render.rules_text import render_rule, render_rules
     from steelyard.rule_catalogue import cards
 
-    specs: dict[str, AnySpec] = {card.name: card for card in cards()}
+    specs = {card.name: card for card in cards()}
     if name is None:
         sys.stdout.write(render_rules(specs, color=_color(), width=_width()))
         return

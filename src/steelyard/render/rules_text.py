@@ -5,7 +5,7 @@ from __future__ import annotations
 import inspect
 import re
 from collections.abc import Mapping
-from typing import TYPE_CHECKING, Any, Protocol
+from typing import TYPE_CHECKING
 
 from steelyard.render.console import to_text
 from steelyard.render.grid import COMPACT_BELOW, Column, Grid
@@ -13,28 +13,15 @@ from steelyard.render.grid import COMPACT_BELOW, Column, Grid
 if TYPE_CHECKING:
     from rich.console import RenderableType
 
-    from steelyard.findings import Severity
+    from steelyard.rule_catalogue import RuleCard
+    from steelyard.rules.base import RuleSpec
+
+    #: A live rule, or its catalogue card (:mod:`steelyard.rule_catalogue`), which needs none
+    #: of the rules' imports: the list and the page read the same fields of either.
+    AnySpec = RuleCard | RuleSpec
 
 #: A Sphinx cross-reference in a docstring (":func:`name`"): on a terminal, just the code.
 _SPHINX_ROLE = re.compile(r":(?:mod|func|class|meth|data|attr|obj):`([^`]*)`")
-
-
-class AnySpec(Protocol):
-    """What the list and the page read of a rule: a live RuleSpec or its catalogue card
-    (:mod:`steelyard.rule_catalogue`), which needs none of the rules' imports."""
-
-    @property
-    def name(self) -> str: ...
-    @property
-    def severity(self) -> Severity: ...
-    @property
-    def summary(self) -> str: ...
-    @property
-    def doc(self) -> str: ...
-    @property
-    def thresholds(self) -> dict[str, Any]: ...
-    @property
-    def help_uri(self) -> str: ...
 
 
 def _thresholds(spec: AnySpec) -> str:

@@ -383,7 +383,9 @@ class Checkpoint:
     """What the loader wants the user to know (e.g. which state-dict key was used)."""
     metadata: Mapping[str, Any] = field(default_factory=dict)
     """Architecture metadata stored in the file itself (GGUF scalar key/values such as
-    ``llama.attention.head_count``); empty for formats that store none."""
+    ``llama.attention.head_count``; a Keras file's attention head counts under
+    ``keras.attention``, see :mod:`steelyard.loaders.keras.attention`); empty for formats
+    that store none."""
     unit_groups: Mapping[str, tuple[UnitGroup, ...]] = field(default_factory=dict)
     """Layer name → its units grouped into attention heads or experts (set after loading by
     :func:`steelyard.transformer.annotate`; empty when no such structure was recognised)."""

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import sys
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -74,16 +75,23 @@ def _live() -> list[RuleCard]:
 
 
 def _document(cards: list[RuleCard]) -> dict[str, Any]:
+    from steelyard.rules import _MODULES
+
     rules = [{**asdict(card), "severity": card.severity.value} for card in cards]
-    return {"sources": sources_digest(), "rules": rules}
+    return {"sources": sources_digest(), "modules": list(_MODULES), "rules": rules}
 
 
 def cards() -> list[RuleCard]:
     """Every rule's card, in documentation order: from the catalogue when it was made from
-    the rule modules on disk, else from the live registry."""
+    the rule modules on disk, else from the live registry. A process that has imported the
+    registry already and registered other modules than the catalogue lists (a program or
+    test that adds a rule of its own) gets the live rules too."""
     try:
         document = json.loads(CATALOGUE.read_text(encoding="utf-8"))
         if not document["sources"] or document["sources"] != sources_digest():
+            return _live()
+        loaded = sys.modules.get("steelyard.rules")
+        if loaded is not None and list(getattr(loaded, "_MODULES", ())) != document["modules"]:
             return _live()
         return [RuleCard(**{**rule, "severity": Severity(rule["severity"])}) for rule in document["rules"]]
     except (OSError, ValueError, KeyError, TypeError):

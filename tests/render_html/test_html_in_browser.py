@@ -216,3 +216,20 @@ def test_timeline_page_draws_offline(browser: Any, tmp_path: Path) -> None:
         assert opened.fetched == [] and opened.errors == []
     finally:
         opened.close()
+
+
+def test_heads_map_draws_a_head_whose_circuit_is_zero(browser: Any, tmp_path: Path) -> None:
+    """The Keras fixture's idle head has an all-zero output-value circuit (share 0 of its
+    block's median, which a log colour scale cannot place): the map still draws one cell per
+    head of both attention blocks (4 + 4), with no console error."""
+    page_file = _write(tmp_path, "heads.html", audit_html(Path("fixtures/keras_heads/planted.keras")))
+    opened = Opened(browser, page_file)
+    try:
+        chart = "[data-chart$='parts']"
+        assert opened.page.get_attribute(chart, "data-drawn") == "yes"
+        cells = opened.page.eval_on_selector(chart, "n => n.querySelectorAll('g.mark-rect.role-mark path').length")
+        assert cells == 8
+        assert opened.fetched == [] and opened.errors == []
+        screenshots(opened, "audit-keras-heads")
+    finally:
+        opened.close()

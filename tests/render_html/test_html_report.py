@@ -15,6 +15,7 @@ from typer.testing import CliRunner
 import steelyard
 from steelyard.cli import app
 from steelyard.errors import SteelyardError
+from steelyard.render.html.charts import SHARE_FLOOR
 from steelyard.report import CAUTION
 from tests.render_html._pages import (
     HOSTILE_NAMES,
@@ -241,3 +242,23 @@ def test_heads_and_experts_map_shows_every_head_and_outlines_the_planted_ones() 
     assert idle_expert["flagged"] and idle_expert["share"] < 0.01
     clean = [r for r in heads.values() if not r["flagged"]]
     assert clean and all(0.5 < r["share"] < 2 for r in clean)
+
+
+def test_heads_map_outlines_twins_and_colours_an_all_zero_head() -> None:
+    """The trained Keras fixture (fixtures/keras_heads, planted.json, written by keras 3 through
+    fixtures/gen_keras_heads.py): its idle head's output columns are exactly zero, so its share
+    of the block median is 0, which a logarithmic colour scale cannot place; the map colours it
+    at the floor and keeps the true 0 for its tooltip. Twin findings name two heads each, and
+    both are outlined."""
+    folder = Path("fixtures/keras_heads")
+    planted = json.loads((folder / "planted.json").read_text())
+    page = steelyard.audit(folder / "planted.keras", policy=steelyard.policy.Policy()).render("html")
+    rows = _specs(page)["cp0-chart-parts"]["data"]["values"]  # type: ignore[index]
+    heads = {(r["block"].rsplit("/", 1)[-1], r["index"]): r for r in rows if r["kind"] == "head"}
+    idle = heads[(planted["idle_heads"][0]["block"], planted["idle_heads"][0]["head"])]
+    assert idle["flagged"] and idle["share"] == 0 and idle["shade"] == SHARE_FLOOR
+    twins = {(t["block"], h) for t in planted["twin_heads"] for h in t["heads"]}
+    assert twins and all(heads[key]["flagged"] for key in twins)
+    planted_keys = twins | {(planted["idle_heads"][0]["block"], planted["idle_heads"][0]["head"])}
+    assert not any(r["flagged"] for key, r in heads.items() if key not in planted_keys)
+    assert all(r["shade"] >= SHARE_FLOOR for r in rows if r["shade"] is not None)

@@ -203,16 +203,25 @@ def findings_chart(audit: CheckpointAudit) -> Spec | None:
     return base(spec, height=max(60, 34 * rules))
 
 
+#: The smallest share of a block's median the heads-and-experts map colours apart (log scale).
+SHARE_FLOOR = 1e-3
+
+
 def parts_chart(audit: CheckpointAudit) -> Spec | None:
     """Heads × blocks and experts × blocks: every head's output-value circuit norm and every
     expert's weight norm as a share of its block's median (what the rules measured, flagged
     or not), with the heads and experts that have findings outlined."""
     flagged: dict[tuple[str, str, int], str] = {}
     for finding in audit.findings:
+        if "block" not in finding.evidence:
+            continue
         for kind in ("head", "expert"):
-            index = finding.evidence.get(kind)
-            if isinstance(index, int) and "block" in finding.evidence:
-                flagged.setdefault((kind, str(finding.evidence["block"]), index), finding.message)
+            # One head or expert (idle, dominant), or several (a cluster of twins).
+            one, several = finding.evidence.get(kind), finding.evidence.get(kind + "s")
+            members = [one] if isinstance(one, int) else several if isinstance(several, list) else []
+            for index in members:
+                if isinstance(index, int):
+                    flagged.setdefault((kind, str(finding.evidence["block"]), index), finding.message)
     rows: list[dict[str, Any]] = []
     blocks: list[str] = []
     for health in audit.layers:
@@ -229,6 +238,9 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
                 rows.append({
                     "kind": kind, "block": block, "index": index, "value": finite(value),
                     "share": finite(value / middle) if middle > 0 else None,
+                    # The colour scale is logarithmic: an all-zero head (idle) would stop the
+                    # chart from drawing, so its colour is the floor's (its tooltip says 0).
+                    "shade": max(finite(value / middle) or 0.0, SHARE_FLOOR) if middle > 0 else None,
                     "finding": note or "", "flagged": note is not None,
                 })
     if not rows:
@@ -247,7 +259,7 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
                 "x": {"field": "index", "type": "ordinal", "title": "index in its block"},
                 "y": {"field": "block", "type": "ordinal", "sort": order, "title": None,
                       "axis": {"labelLimit": 320}},
-                "color": {"field": "share", "type": "quantitative", "title": "× block median",
+                "color": {"field": "shade", "type": "quantitative", "title": "× block median",
                           "scale": {"type": "log", "scheme": "blues", "domainMid": 1},
                           "legend": {"format": ".2~g"}},
                 "stroke": {"condition": {"test": "datum.flagged", "value": SEVERITY_COLOURS["error"]},

@@ -14,6 +14,15 @@ every checkpoint with only ``untrained-layer`` and prints, per size bucket of th
 
 Exits non-zero when the false-positive rate over all layers exceeds ``--max-fp`` or the
 detection rate on layers of at least ``--tp-from`` weights falls below ``--min-tp``.
+
+The calibration layers are small (at most 5,000 weights), so their spectrum is searched whole.
+``--planted`` measures the large layers instead, whose spectrum is searched on a row
+subsample: fresh PyTorch-default draws (U(±1/√n)) of several shapes, each alone in a file, plus
+one delocalised learned direction θ·u·vᵀ of strength θ = c·σ(mn)^{1/4} (c = 0: never trained;
+σ(mn)^{1/4} is the threshold below which no test can see it), and prints how often each
+is reported as untrained (no folder needed: the draws are made here, seeded)::
+
+    python bench/untrained_rates.py --planted [--draws 10] [--set spectrum-stride=1]
 """
 
 from __future__ import annotations
@@ -31,10 +40,46 @@ from steelyard.rules.untrained_layer import RULE
 BUCKETS = ((0, 256), (256, 512), (512, 1024), (1024, 2048), (2048, 5001))
 
 
+PLANTED_SHAPES = ((1024, 1024), (2816, 1024), (1024, 2816), (512, 512))
+PLANTED_STRENGTHS = (0.0, 1.5, 2.0, 2.5, 3.0, 4.0)
+
+
+def planted(draws: int, policy: Policy) -> None:
+    """Print, per shape and strength c, how many of ``draws`` layers were reported."""
+    import math
+    import tempfile
+
+    import numpy as np
+    from safetensors.numpy import save_file
+
+    rng = np.random.default_rng(0)
+    print("shape".ljust(14) + "".join(f"c={c:g}".rjust(9) for c in PLANTED_STRENGTHS))
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "layer.safetensors"
+        for m, n in PLANTED_SHAPES:
+            bound = 1.0 / math.sqrt(n)  # PyTorch's Linear default, U(±1/√fan_in)
+            sigma = bound / math.sqrt(3.0)
+            row = f"{m}x{n}".ljust(14)
+            for strength in PLANTED_STRENGTHS:
+                reported = 0
+                for _ in range(draws):
+                    weight = rng.uniform(-bound, bound, (m, n))
+                    u, v = rng.standard_normal(m), rng.standard_normal(n)
+                    theta = strength * sigma * (m * n) ** 0.25
+                    weight += theta * np.outer(u / np.linalg.norm(u), v / np.linalg.norm(v))
+                    save_file({"fc.weight": weight.astype(np.float32)}, str(path))
+                    findings, _, _ = run_rules(load(path), policy, None, rules={RULE.name: RULE})
+                    reported += bool(findings)
+                row += f"{reported}/{draws}".rjust(9)
+            print(row, flush=True)
+
+
 def main() -> int:
     """Measure and print the rates; non-zero exit when a target is missed."""
     parser = argparse.ArgumentParser()
-    parser.add_argument("folder", type=Path)
+    parser.add_argument("folder", type=Path, nargs="?")
+    parser.add_argument("--planted", action="store_true", help="large layers with a planted direction")
+    parser.add_argument("--draws", type=int, default=10)
     parser.add_argument(
         "--set", action="append", default=[], metavar="KEY=VALUE", help="a rule threshold"
     )
@@ -43,9 +88,14 @@ def main() -> int:
     parser.add_argument("--tp-from", type=int, default=1024)
     parser.add_argument("--show", action="store_true", help="list every false positive")
     args = parser.parse_args()
-    labels = json.loads((args.folder / "labels.json").read_text())
     overrides = {key: float(value) for key, value in (item.split("=", 1) for item in args.set)}
     policy = Policy(rules={RULE.name: overrides}) if overrides else Policy()
+    if args.planted:
+        planted(args.draws, policy)
+        return 0
+    if args.folder is None:
+        parser.error("the calibration folder is needed (or --planted)")
+    labels = json.loads((args.folder / "labels.json").read_text())
     # (kind, bucket) -> [layers, flagged]
     counts: dict[tuple[str, int], list[int]] = {}
     misses: list[str] = []

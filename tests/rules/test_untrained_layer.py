@@ -636,3 +636,21 @@ def test_row_subsamples_are_the_same_rows_however_the_layer_is_read(
         picked = stats.rows(layer, start, step)
         np.testing.assert_array_equal(picked, weights[start::step])
         assert picked.flags["C_CONTIGUOUS"] and picked.dtype == np.float32
+
+
+def test_spectrum_stride_one_searches_every_row_as_before(tmp_path: Path) -> None:
+    # A PyTorch-default draw with one learned direction of 1.5× the threshold (it moved the
+    # weights by 1.5/32 ≈ 5 % in Frobenius norm): searched whole (spectrum-stride 1) the
+    # direction shows, as it did before the subsample; on one row in 8 it cannot (the
+    # documented price of the bounded search).
+    rng = np.random.default_rng(23)
+    bound = 1 / math.sqrt(1024)
+    weight = rng.uniform(-bound, bound, (1024, 1024))
+    u, v = rng.normal(size=1024), rng.normal(size=1024)
+    theta = 1.5 * bound / math.sqrt(3) * 1024**0.5
+    weight += theta * np.outer(u / np.linalg.norm(u), v / np.linalg.norm(v))
+    path = _save(tmp_path, {"fc1.weight": weight})
+    whole = Policy(rules={RULE.name: {"spectrum-stride": 1}})
+    assert _run(path, whole) == []
+    (finding,) = _run(path)
+    assert finding.evidence["spectrum_rows"] == 128

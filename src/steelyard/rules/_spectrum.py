@@ -71,10 +71,10 @@ def edge_fluctuation(sigma: float, m: int, n: int) -> float:
     return 0.5 * sigma * (1.0 / math.sqrt(m) + 1.0 / math.sqrt(n)) ** (1.0 / 3.0)
 
 
-def row_stride(m: int, n: int) -> int:
+def row_stride(m: int, n: int, most: int = SUBSAMPLE) -> int:
     """Keep every ``row_stride``-th row: 1 up to ``WHOLE_ENTRIES`` entries, else up to
-    ``SUBSAMPLE`` while at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows remain."""
-    return max(1, min(SUBSAMPLE, (m * n) // WHOLE_ENTRIES, m // MIN_ROWS))
+    ``most`` while at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows remain."""
+    return max(1, min(most, (m * n) // WHOLE_ENTRIES, m // MIN_ROWS))
 
 
 @dataclass(frozen=True)

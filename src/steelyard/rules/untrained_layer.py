@@ -84,7 +84,8 @@ across the checkpoint that decides which of the layers that passed are reported.
    deviation of the best candidate. Training grows a few strong directions, which leave the
    bulk; a layer that matches an initializer's histogram but has such an outlier was trained
    and is not reported. Matrices of more than 2^17 entries (256 × 512) are searched on every
-   k-th row (k up to 8, at least 2^17 entries and 64 rows kept, from a seeded offset), against
+   k-th row (k up to ``spectrum-stride``, 8; at least 2^17 entries and 64 rows kept, from a
+   seeded offset), against
    the edge and fluctuation of that m' × n subsample: the rows of an i.i.d. matrix are an
    i.i.d. matrix, so a fresh draw passes as often as before, and a submatrix's top singular
    value never exceeds the whole one's (Thompson 1972), so what it shows beyond its edge the
@@ -95,7 +96,10 @@ across the checkpoint that decides which of the layers that passed are reported.
    Measured on fresh N(0, 1/n) draws with one planted direction, 4 fluctuations allowed: at
    1024 × 1024, directions of 1.5, 2, 2.5 and 3 × the threshold were found in 0, 0, 20 and 20
    of 20 draws (the whole-matrix search: 20 of 20 each), at 2816 × 1024 2, 2.5 and 3 × in 4, 10
-   and 10 of 10. The top singular value comes from ``numpy.linalg.svd`` for up to 2^16
+   and 10 of 10. So a layer whose only learned part is one such weak direction (it moved the
+   weights by a few per cent) can now be reported as untrained; ``spectrum-stride`` 1 (or 0)
+   searches every row, as before this bound, at 40–80 passes (``bench/untrained_rates.py
+   --planted`` measures both). The top singular value comes from ``numpy.linalg.svd`` for up to 2^16
    entries and from seeded Golub–Kahan–Lanczos bidiagonalisation beyond (up to 40 steps, each
    one product with the rows and one with their transpose, stopping once the value passes the
    limit or, after 8 steps, when a step adds less than 5 % of a fluctuation or less than a
@@ -371,6 +375,7 @@ class UntrainedLayerSettings:
     scale_floor: float = threshold(0.05)
     row_spread: float = threshold(10.0)
     edge_fluctuations: float = threshold(4.0)
+    spectrum_stride: int = threshold(8)
     sample: int = threshold(20000)
     min_weights: int = threshold(256)
     min_dim: int = threshold(8)
@@ -421,7 +426,7 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
     allowed = limits.edge_fluctuations
     # Only a layer that matched an initializer is read for its spectrum: every stride-th row
     # (streamed when the layer is too large to cache).
-    stride = row_stride(m, n)
+    stride = row_stride(m, n, limits.spectrum_stride)
     check = edge_check(ctx.stats.rows(layer, seed % stride, stride), best.std, allowed, seed)
     top, edge, fluctuation, beyond = check.top, check.edge, check.fluctuation, check.beyond
     spectrum: dict[str, object] = {

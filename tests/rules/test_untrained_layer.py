@@ -362,9 +362,10 @@ def _spiked(rng: np.random.Generator, m: int, n: int, strength: float) -> np.nda
 
 def test_row_strides_keep_enough_rows_and_entries() -> None:
     assert row_stride(256, 512) == 1  # 2^17 entries: searched whole
-    assert row_stride(1024, 1024) == 8
-    assert row_stride(512, 512) == 2  # keeps 2^17 entries
-    assert row_stride(256, 8192) == 4  # keeps 64 rows
+    assert row_stride(1024, 1024) == 4 and row_stride(1024, 1024, 8) == 8
+    assert row_stride(512, 512, 8) == 2  # keeps 2^17 entries
+    assert row_stride(256, 8192, 8) == 4  # keeps 64 rows
+    assert row_stride(4096, 4096, 0) == row_stride(4096, 4096, 1) == 1
     for m, n in ((300, 1000), (4096, 700), (32000, 64), (70, 40000)):
         kept = -(-m // row_stride(m, n))
         assert kept >= 64 or kept == m
@@ -413,16 +414,18 @@ def test_subsampled_fresh_draws_stay_inside_the_edge(family: str) -> None:
 def test_subsample_sees_directions_from_the_documented_strength() -> None:
     # Measured while choosing the subsample (1024 × 1024, bf16-rounded, 20 draws each; the
     # rule's documentation): searched whole, directions of 1.5× the threshold were found
-    # 20/20; on one row in 8, 1.5× and 2× 0/20, 2.5× and 3× 20/20. Below the threshold
-    # (Baik, Ben Arous & Péché 2005) nothing can see them.
+    # 20/20; on one row in 4, 1.5× 0/20, 2× 19/20, 2.5× 20/20; on one row in 8, 2× 0/20 and
+    # 2.5× 20/20. Below the threshold (Baik, Ben Arous & Péché 2005) nothing can see them.
     rng = np.random.default_rng(19)
     sigma = 1 / math.sqrt(1024)
-    found = {strength: 0 for strength in (0.8, 2.5, 3.0)}
-    for strength in found:
-        for seed in range(8):
-            matrix = _spiked(rng, 1024, 1024, strength).astype(np.float32)
-            found[strength] += edge_check(matrix[seed % 8 :: 8], sigma, 4.0, seed).beyond > 4.0
-    assert found == {0.8: 0, 2.5: 8, 3.0: 8}
+    for stride, strengths in ((4, (0.8, 2.5, 3.0)), (8, (0.8, 3.0))):
+        found = dict.fromkeys(strengths, 0)
+        for strength in strengths:
+            for seed in range(8):
+                matrix = _spiked(rng, 1024, 1024, strength).astype(np.float32)
+                rows = matrix[seed % stride :: stride]
+                found[strength] += edge_check(rows, sigma, 4.0, seed).beyond > 4.0
+        assert found == {strengths[0]: 0, **dict.fromkeys(strengths[1:], 8)}
     # what the subsample gives up: the whole matrix shows a 1.5× direction
     matrix = _spiked(rng, 1024, 1024, 1.5).astype(np.float32)
     top, _ = top_singular_value(matrix, 0, 0.05 * edge_fluctuation(sigma, 1024, 1024))
@@ -641,9 +644,10 @@ def test_row_subsamples_are_the_same_rows_however_the_layer_is_read(
 def test_spectrum_stride_one_searches_every_row_as_before(tmp_path: Path) -> None:
     # A PyTorch-default draw with one learned direction of 1.5× the threshold (it moved the
     # weights by 1.5/32 ≈ 5 % in Frobenius norm): searched whole (spectrum-stride 1) the
-    # direction shows, as it did before the subsample; on one row in 8 it cannot (the
-    # documented price of the bounded search).
-    rng = np.random.default_rng(23)
+    # direction shows, as it did before the subsample; on one row in 4 it cannot (the
+    # documented price of the bounded search; measured 9 times in 10 at this size, so the
+    # draw is fixed).
+    rng = np.random.default_rng(24)
     bound = 1 / math.sqrt(1024)
     weight = rng.uniform(-bound, bound, (1024, 1024))
     u, v = rng.normal(size=1024), rng.normal(size=1024)
@@ -653,4 +657,4 @@ def test_spectrum_stride_one_searches_every_row_as_before(tmp_path: Path) -> Non
     whole = Policy(rules={RULE.name: {"spectrum-stride": 1}})
     assert _run(path, whole) == []
     (finding,) = _run(path)
-    assert finding.evidence["spectrum_rows"] == 128
+    assert finding.evidence["spectrum_rows"] == 256

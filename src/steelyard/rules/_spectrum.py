@@ -16,10 +16,10 @@ matrix's top singular value exceeds the edge by more than a few fluctuations onl
 training, which grows a few strong directions, pushes outliers beyond it.
 
 **Bounded cost: a row subsample.** Matrices of more than ``WHOLE_ENTRIES`` entries are
-tested on every ``stride``-th row (``stride`` up to ``SUBSAMPLE`` = 8, keeping at least
-``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows), from a seeded offset, so that the search
-costs about as much as two or three passes over the whole matrix instead of the 40–80 of a
-search on all of it. Two facts make this a test of the same hypothesis:
+tested on every ``stride``-th row (``stride`` up to ``SUBSAMPLE`` = 4 unless the caller says
+otherwise, keeping at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows), from a seeded
+offset, so that the search costs a few passes over the whole matrix instead of the 40–80 of
+a search on all of it. Two facts make this a test of the same hypothesis:
 
 * *Null law.* The rows of a matrix of i.i.d. entries are a matrix of i.i.d. entries, so the
   subsample's top singular value has the edge and Tracy–Widom fluctuation of its own shape
@@ -34,9 +34,9 @@ bulk of an i.i.d. m × n matrix only when θ exceeds σ(mn)^{1/4} (Baik, Ben Aro
 Ann. Probab. 33; for rectangular matrices Benaych-Georges & Nadakuditi 2012, J. Multivariate
 Anal. 111); a delocalised direction keeps θ√f of its strength in a fraction f of the rows,
 whose own threshold is σ(f·mn)^{1/4}, so the subsample sees directions from f^{-1/4}
-(8^{1/4} ≈ 1.7) times that threshold, and reports them (4 fluctuations beyond its edge) from
-about 2.5 times it; the whole matrix, from about 1.5 times. Training's directions are usually
-many times the bulk edge. The measured rates are in the documentation of ``untrained-layer``
+(4^{1/4} ≈ 1.4, 8^{1/4} ≈ 1.7) times that threshold, and reports them (4 fluctuations beyond
+its edge) from about 2 times it with one row in 4, 2.5 times with one in 8; the whole matrix
+from about 1.5 times. Training's directions are usually many times the bulk edge. The measured rates are in the documentation of ``untrained-layer``
 and checked by ``tests/rules/test_untrained_layer.py``.
 """
 
@@ -52,7 +52,7 @@ SVD_ENTRIES = 2**16
 #: Matrices up to this many entries are searched whole; larger ones on a row subsample.
 WHOLE_ENTRIES = 2**17
 #: At most one row in this many is kept in a subsample.
-SUBSAMPLE = 8
+SUBSAMPLE = 4
 #: Fewest rows a subsample keeps (below, the Marchenko–Pastur edge describes it poorly).
 MIN_ROWS = 64
 #: Most Lanczos steps (each one product with A and one with Aᵀ).

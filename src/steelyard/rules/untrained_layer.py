@@ -84,31 +84,30 @@ across the checkpoint that decides which of the layers that passed are reported.
    deviation of the best candidate. Training grows a few strong directions, which leave the
    bulk; a layer that matches an initializer's histogram but has such an outlier was trained
    and is not reported. Matrices of more than 2^17 entries (256 × 512) are searched on every
-   k-th row (k up to ``spectrum-stride``, 8; at least 2^17 entries and 64 rows kept, from a
-   seeded offset), against
-   the edge and fluctuation of that m' × n subsample: the rows of an i.i.d. matrix are an
-   i.i.d. matrix, so a fresh draw passes as often as before, and a submatrix's top singular
-   value never exceeds the whole one's (Thompson 1972), so what it shows beyond its edge the
-   whole matrix has too. This bounds the search to about two or three passes over the matrix
-   (it took 40–80 on the whole one); the price is power against *weak* learned directions: a
-   direction θ·u·vᵀ is seen from about 2.5 σ(mn)^{1/4} instead of 1.5 σ(mn)^{1/4}, σ(mn)^{1/4}
-   being the threshold below which no method can see it (Baik, Ben Arous & Péché 2005).
-   Measured on fresh N(0, 1/n) draws with one planted direction, 4 fluctuations allowed: at
-   1024 × 1024, directions of 1.5, 2, 2.5 and 3 × the threshold were found in 0, 0, 20 and 20
-   of 20 draws (the whole-matrix search: 20 of 20 each), at 2816 × 1024 2, 2.5 and 3 × in 4, 10
-   and 10 of 10. So a layer whose only learned part is one such weak direction (it moved the
-   weights by a few per cent) can now be reported as untrained; ``spectrum-stride`` 1 (or 0)
-   searches every row, as before this bound, at 40–80 passes (``bench/untrained_rates.py
-   --planted`` measures both). The top singular value comes from ``numpy.linalg.svd`` for up to 2^16
-   entries and from seeded Golub–Kahan–Lanczos bidiagonalisation beyond (up to 40 steps, each
-   one product with the rows and one with their transpose, stopping once the value passes the
-   limit or, after 8 steps, when a step adds less than 5 % of a fluctuation or less than a
-   tenth of the distance still left to the limit: a bulk without outliers creeps towards its
-   edge, an outlier is approached in geometrically shrinking steps; see
-   :func:`steelyard.rules._spectrum.top_singular_value`). The estimate never
-   overestimates, and Lanczos converges fastest for the values that stand out from the bulk,
-   which are the ones it looks for; on a bulk without outliers it may stop a fluctuation or
-   two low, which does not change the answer. The measurement ``untrained-layer.spectrum``
+   k-th row (k up to ``spectrum-stride``, 4; at least 2^17 entries and 64 rows kept, from a
+   seeded offset), against the edge and fluctuation of that m' × n subsample: the rows of an
+   i.i.d. matrix are an i.i.d. matrix, so a fresh draw passes as often as before, and a
+   submatrix's top singular value never exceeds the whole one's (Thompson 1972), so what it
+   shows beyond its edge the whole matrix has too. This bounds the search to a few passes over
+   the matrix (it took 40–80 on the whole one); the price is power against *weak* learned
+   directions: a direction θ·u·vᵀ is seen from about 2 σ(mn)^{1/4} instead of 1.5 σ(mn)^{1/4},
+   σ(mn)^{1/4} being the threshold below which no method can see it (Baik, Ben Arous & Péché
+   2005). Measured on fresh N(0, 1/n) draws with one planted direction, 4 fluctuations
+   allowed: at 1024 × 1024, directions of 1.5, 2 and 2.5 × the threshold were found in 0, 19
+   and 20 of 20 draws (one row in 8: 0, 0 and 20; the whole matrix: 20 of 20 each), at
+   2816 × 1024 in 0, 10 and 10 of 10. So a layer whose only learned part is one such weak
+   direction (it moved the weights by a few per cent) can now be reported as untrained;
+   ``spectrum-stride`` 1 (or 0) searches every row, as before this bound, at 40–80 passes
+   (``bench/untrained_rates.py --planted`` measures both). The top singular value comes from
+   ``numpy.linalg.svd`` for up to 2^16 entries and from seeded Golub–Kahan–Lanczos
+   bidiagonalisation beyond (up to 40 steps, each one product with the rows and one with their
+   transpose, stopping once the value passes the limit or, after 8 steps, when a step adds
+   less than 5 % of a fluctuation or less than a tenth of the distance still left to the
+   limit: a bulk without outliers creeps towards its edge, an outlier is approached in
+   geometrically shrinking steps; see :func:`steelyard.rules._spectrum.top_singular_value`).
+   The estimate never overestimates, and Lanczos converges fastest for the values that stand
+   out from the bulk, which are the ones it looks for; on a bulk without outliers it may stop
+   a fluctuation or two low, which does not change the answer. The measurement ``untrained-layer.spectrum``
    (the HTML report's spectrum chart) gives the top value, edge and limit of the rows searched
    and, for a subsample, their count (``rows_searched``).
 
@@ -186,7 +185,7 @@ from steelyard.graph import Layer, LayerKind
 from steelyard.numbers import count, measured
 from steelyard.rules._initializers import Candidate, candidates, cdf_table
 from steelyard.rules._layer_results import LayerResults
-from steelyard.rules._spectrum import edge_check, row_stride
+from steelyard.rules._spectrum import SUBSAMPLE, edge_check, row_stride
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 
@@ -375,7 +374,7 @@ class UntrainedLayerSettings:
     scale_floor: float = threshold(0.05)
     row_spread: float = threshold(10.0)
     edge_fluctuations: float = threshold(4.0)
-    spectrum_stride: int = threshold(8)
+    spectrum_stride: int = threshold(SUBSAMPLE)
     sample: int = threshold(20000)
     min_weights: int = threshold(256)
     min_dim: int = threshold(8)

@@ -266,10 +266,12 @@ def _audit_imports(path: Path, log: Path) -> set[str]:
 def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
     # ml_dtypes 0.7.0 took 1.1-2.1 s to import here (python -X importtime,
     # ml_dtypes._ml_dtypes_ext), ten times the rest of a small audit, so a file stored in
-    # float32 or float16 must never import it (docs/performance.md, Start-up). Files written
-    # by the reference writers (safetensors.numpy, numpy.savez) in two shapes and two float
-    # types, plus the Keras-written demo files (fixtures/make_demo.py). ONNX is left out: the
-    # onnx package itself imports ml_dtypes (onnx 1.23, onnx/_mapping.py), as the probe shows.
+    # float32 or float16 must never import it (docs/performance.md, Start-up), nor a bf16
+    # safetensors file (widened from its bit patterns). Files written by the reference writers
+    # (safetensors.numpy, numpy.savez) in two shapes and two float types, plus the
+    # Keras-written demo files (fixtures/make_demo.py) and the bf16 safetensors demo. ONNX is
+    # left out: the onnx package itself imports ml_dtypes (onnx 1.23, onnx/_mapping.py), as
+    # the probe shows.
     import numpy as np
     from safetensors.numpy import save_file
 
@@ -287,15 +289,20 @@ def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
             np.savez(f"{stem}.npz", **tensors)  # type: ignore[arg-type]
             written += [Path(f"{stem}.safetensors"), Path(f"{stem}.npz")]
     demo = SRC.parent / "fixtures" / "demo"
-    written += [demo / "pumpwear-nightly-bad.keras", demo / "pumpwear-healthy.h5"]
+    written += [
+        demo / "pumpwear-nightly-bad.keras",
+        demo / "pumpwear-healthy.h5",
+        demo / "pumpwear-healthy.bf16.safetensors",
+    ]
     loaded = {path.name: _audit_imports(path, tmp_path / "imports.log") for path in written}
     assert {name: mods for name, mods in loaded.items() if "ml_dtypes" in mods} == {}
 
 
 def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it(tmp_path: Path) -> None:
-    # The probe above can fail: a bf16 file is decoded by ml_dtypes (the reference library),
-    # and an import in the HDF5 sandbox is seen too (a Keras file whose weights are bf16,
-    # written with h5py in the layout of fixtures/demo/*.keras).
+    # The probe above can fail: an fp8 safetensors file is decoded by ml_dtypes (the reference
+    # library; written here by safetensors.numpy from ml_dtypes arrays), and an import in the
+    # HDF5 sandbox is seen too (a Keras file whose weights are bf16, written with h5py in the
+    # layout of fixtures/demo/*.keras).
     import shutil
     import zipfile
 
@@ -303,9 +310,13 @@ def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it(tmp_path: Path) ->
     import ml_dtypes
     import numpy as np
 
+    from safetensors.numpy import save_file
+
     log = tmp_path / "imports.log"
-    bf16 = SRC.parent / "fixtures" / "demo" / "pumpwear-healthy.bf16.safetensors"
-    assert "ml_dtypes" in _audit_imports(bf16, log)
+    rng = np.random.default_rng(3)
+    fp8 = tmp_path / "fp8.safetensors"
+    save_file({"encoder.weight": rng.normal(size=(6, 5)).astype(ml_dtypes.float8_e4m3fn)}, str(fp8))
+    assert "ml_dtypes" in _audit_imports(fp8, log)
     demo = SRC.parent / "fixtures" / "demo" / "pumpwear-nightly-bad.keras"
     with zipfile.ZipFile(demo) as archive:
         archive.extractall(tmp_path / "members")

@@ -43,6 +43,24 @@ def test_other_dtypes_convert_as_numpy_casts(dtype: type, rng: np.random.Generat
     np.testing.assert_array_equal(out, values.astype(np.float32))
 
 
+def test_bf16_tensors_widen_from_their_bits_as_ml_dtypes_decodes_them(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Every bf16 bit pattern (NaN payloads, ±Inf, subnormals, signed zeros) stored by the
+    # safetensors package, read back through the loader's bit reader (no ml_dtypes) in odd
+    # spans and chunks: the same float32 bits as ml_dtypes' cast (the reference library).
+    _small_chunks(monkeypatch)
+    patterns = np.arange(2**16, dtype=np.uint16).view(ml_dtypes.bfloat16).reshape(256, 256)
+    path = write_safetensors(tmp_path / "every.safetensors", {"a.weight": patterns})
+    tensor = api.load(path).tensors["a.weight"]
+    assert tensor.read_bits is not None and tensor.dtype == "bf16"
+    reference = patterns.astype(np.float32).view(np.uint32).reshape(-1)
+    assert np.array_equal(tensor.read_float32().view(np.uint32).reshape(-1), reference)
+    part = np.empty(1001, np.float32)
+    tensor.widen_part(777, 1778, part)
+    assert np.array_equal(part.view(np.uint32), reference[777:1778])
+
+
 def _small_chunks(monkeypatch: pytest.MonkeyPatch) -> None:
     """Blocks of a few hundred bytes so that tiny tensors take many chunks and row blocks."""
     monkeypatch.setattr(streaming, "CHUNK_BYTES", 256)

@@ -26,6 +26,16 @@ _EXTENDED: Final[dict[str, str]] = {
 }
 
 
+#: Bytes per element of the extended floats, known without importing ml_dtypes.
+_EXTENDED_SIZES: Final[dict[str, int]] = {
+    "bf16": 2,
+    "f8_e4m3": 1,
+    "f8_e5m2": 1,
+    "f8_e4m3fnuz": 1,
+    "f8_e5m2fnuz": 1,
+}
+
+
 class _ExtendedFloats(Mapping[str, "np.dtype[np.generic]"]):
     """The float dtypes, built on first use: bf16 and fp8 come from ``ml_dtypes``, whose
     import costs about a second, so commands that read no such file (``--version``,
@@ -93,6 +103,12 @@ INT_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = {
 }
 
 ALL_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = _Joined(FLOAT_DTYPES, INT_DTYPES)
+
+
+def itemsize_of(name: str) -> int:
+    """Bytes per element of a stored dtype name (without importing ml_dtypes for bf16/fp8)."""
+    size = _EXTENDED_SIZES.get(name)
+    return size if size is not None else ALL_DTYPES[name].itemsize
 
 
 def is_float_name(name: str) -> bool:

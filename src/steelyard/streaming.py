@@ -30,17 +30,30 @@ def convert_into(source: np.ndarray, out: np.ndarray) -> None:
     flat_out = out.reshape(-1)
     flat_in = source.reshape(-1)
     if flat_in.dtype.name == "bfloat16" and flat_in.dtype.byteorder in ("=", "|", "<"):
-        np.left_shift(flat_in.view(np.uint16), 16, out=flat_out.view(np.uint32), dtype=np.uint32)
+        widen_bf16_bits(flat_in.view(np.uint16), flat_out)
     else:
         flat_out[...] = flat_in
 
 
+def widen_bf16_bits(bits: np.ndarray, out: np.ndarray) -> None:
+    """Write the bf16 values whose bit patterns are ``bits`` (native uint16) into the float32
+    array ``out`` (same element count): each pattern is the upper half of the float32's."""
+    np.left_shift(bits.reshape(-1), 16, out=out.reshape(-1).view(np.uint32), dtype=np.uint32)
+
+
 def float32_from_spans(read_span: SpanReader, shape: tuple[int, ...]) -> np.ndarray:
     """The whole tensor as float32, read and converted one chunk at a time."""
+    return float32_from_parts(lambda start, stop, into: convert_into(read_span(start, stop), into), shape)
+
+
+def float32_from_parts(
+    widen: Callable[[int, int, np.ndarray], None], shape: tuple[int, ...]
+) -> np.ndarray:
+    """The whole tensor as float32, ``widen(start, stop, into)`` filling one chunk at a time."""
     out = np.empty(shape, dtype=np.float32)
     flat = out.reshape(-1)
     for start, stop in chunks(flat.size):
-        convert_into(read_span(start, stop), flat[start:stop])
+        widen(start, stop, flat[start:stop])
     return out
 
 

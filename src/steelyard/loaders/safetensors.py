@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES
+from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES, itemsize_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
@@ -107,7 +107,7 @@ class _Shard:
                 f"{self.size - self.data_start} data bytes",
             )
         dtype = _DTYPES[tag]
-        expected = math.prod(shape) * ALL_DTYPES[dtype].itemsize
+        expected = math.prod(shape) * itemsize_of(dtype)
         if end - begin != expected:
             raise LoadError(
                 path,
@@ -151,28 +151,33 @@ class _Shard:
                 done += got
         return buffer
 
+    # The numpy dtype is looked up when a tensor is read, not when it is listed: a bf16 or fp8
+    # dtype comes from ml_dtypes, whose import alone takes over a second (ml_dtypes 0.7).
     def reader(self, name: str) -> Callable[[], np.ndarray]:
         dtype, shape, begin, end = self.entries[name]
-        stored = ALL_DTYPES[dtype].newbyteorder("<")
 
         def read() -> np.ndarray:
             if end == begin:
                 return np.zeros(shape, dtype=ALL_DTYPES[dtype])
-            return self._read_into(np.empty(shape, dtype=stored), begin)
+            return self._read_into(np.empty(shape, dtype=ALL_DTYPES[dtype].newbyteorder("<")), begin)
 
         return read
 
-    def span_reader(self, name: str) -> Callable[[int, int], np.ndarray]:
+    def span_reader(self, name: str, bits: bool = False) -> Callable[[int, int], np.ndarray]:
+        """Elements ``[start, stop)`` of the flattened tensor; with ``bits``, as unsigned
+        integers of the element's width (the raw patterns: how bf16 is widened without
+        ml_dtypes)."""
         dtype, shape, begin, _end = self.entries[name]
-        stored = ALL_DTYPES[dtype].newbyteorder("<")
         size = math.prod(shape)
+        width = itemsize_of(dtype)
 
         def read_span(start: int, stop: int) -> np.ndarray:
             start, stop = max(0, start), min(size, stop)
+            stored = np.dtype(f"<u{width}") if bits else ALL_DTYPES[dtype].newbyteorder("<")
             buffer = np.empty(max(0, stop - start), dtype=stored)
             if buffer.size == 0:
                 return buffer
-            return self._read_into(buffer, begin + start * stored.itemsize)
+            return self._read_into(buffer, begin + start * width)
 
         return read_span
 
@@ -211,6 +216,7 @@ class SafetensorsLoader:
                     role=role_for(name, dtype in FLOAT_DTYPES),
                     reader=shard.reader(name),
                     read_span=shard.span_reader(name),
+                    read_bits=shard.span_reader(name, bits=True) if dtype == "bf16" else None,
                 )
                 origin[name] = shard.path
         # Packed layers (GPTQ, AWQ, bitsandbytes, FP8, MLX...) become logical float weights;

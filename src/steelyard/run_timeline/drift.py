@@ -29,7 +29,7 @@ from steelyard.graph import Checkpoint, Layer
 from steelyard.run_timeline.result import Drift
 from steelyard.stats.passes import row_run
 from steelyard.stats.reading import locked
-from steelyard.streaming import convert_into, row_blocks
+from steelyard.streaming import row_blocks
 
 
 @dataclass(slots=True)
@@ -88,9 +88,8 @@ class RowReader:
             return self._whole[start:stop]
         first, width = self._source
         tensor = self.checkpoint.tensors[layer.weight]
-        stored = tensor.read_part((first + start) * width, (first + stop) * width)
         out = np.empty((stop - start, width), dtype=np.float32)
-        convert_into(stored, out)
+        tensor.widen_part((first + start) * width, (first + stop) * width, out)
         return out
 
 

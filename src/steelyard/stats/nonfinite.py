@@ -17,7 +17,7 @@ from steelyard.graph import Tensor
 from steelyard.stats.memo import Memo
 from steelyard.stats.numerics import FLOAT_NAMES, ITEMSIZE
 from steelyard.stats.reading import read_stored
-from steelyard.streaming import chunks, convert_into
+from steelyard.streaming import chunks
 
 #: NaN, +Inf and −Inf counts of one tensor.
 Counts = tuple[int, int, int]
@@ -101,12 +101,11 @@ def _count(tensor: Tensor) -> Counts:
     if tensor.read_span is not None and tensor.size:
         wide = ITEMSIZE.get(tensor.dtype, 4) >= 4 and tensor.dtype in FLOAT_NAMES
         for start, stop in chunks(tensor.size):
-            stored = tensor.read_part(start, stop)
             if wide:
-                count_into(stored, counts)
+                count_into(tensor.read_part(start, stop), counts)
             else:
-                block = np.empty(stored.size, dtype=np.float32)
-                convert_into(stored, block)
+                block = np.empty(stop - start, dtype=np.float32)
+                tensor.widen_part(start, stop, block)
                 count_into(block, counts)
     elif tensor.size:
         count_into(_judged(read_stored(tensor)), counts)

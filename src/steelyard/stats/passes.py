@@ -223,7 +223,7 @@ class WeightPasses:
         tensor, first = source
         assert tensor.read_span is not None
         for a, b in row_blocks(units, fan_in):
-            stored = tensor.read_part((first + a) * fan_in, (first + b) * fan_in)
+            start, stop = (first + a) * fan_in, (first + b) * fan_in
             if full is not None:
                 block = full[a:b]
             else:
@@ -231,9 +231,12 @@ class WeightPasses:
                 if scratch.size < (b - a) * fan_in:
                     scratch = np.empty((b - a) * fan_in, dtype=np.float32)
                 block = scratch[: (b - a) * fan_in].reshape(b - a, fan_in)
-            convert_into(stored, block)
             if counts is not None:  # float64 storage: counted as stored
+                stored = tensor.read_part(start, stop)
+                convert_into(stored, block)
                 count_into(stored, counts)
+            else:
+                tensor.widen_part(start, stop, block)
             yield a, b, block
 
     def _read_matrix(self, layer: Layer) -> np.ndarray:

@@ -7,7 +7,7 @@ import os
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import contextmanager, nullcontext
+from contextlib import contextmanager
 from dataclasses import fields
 from typing import Any, TypeVar
 
@@ -116,11 +116,11 @@ def run_rules(
     Per-layer rules run layer by layer: each task runs every such rule enabled on one layer
     while that layer's data is in memory, then releases it, so each tensor is read once.
     Whole-checkpoint rules (and the per-layer rules' ``finish``) run afterwards, one at a
-    time. ``jobs`` > 1 runs layer tasks on that many threads, each with a one-thread BLAS (a
-    layer too large for the matrix cache runs alone, with a BLAS thread per job); numpy,
-    BLAS, file reads and hashing release the GIL in the heavy loops, so threads rather than
-    processes. The findings are collected in the same order as with one, so the report does
-    not depend on ``jobs``.
+    time. ``jobs`` > 1 runs layer tasks on that many threads, every one with a one-thread
+    BLAS (a layer too large for the matrix cache runs alone); numpy, BLAS, file reads and
+    hashing release the GIL in the heavy loops, so threads rather than processes. The
+    findings are collected in the same order as with one, so the report does not depend on
+    ``jobs``.
     """
     # A comparison passes the statistics it measures change from, so each layer is read once.
     stats = stats if stats is not None else LayerStats(checkpoint)
@@ -137,20 +137,18 @@ def run_rules(
     hooked = [spec for spec in specs if spec.per_layer is not None]
 
     admission = _Admission(jobs)
-    blas = default_jobs()
     # Bytes of the file per parameter, so progress can say how much of it was read.
     per_parameter = checkpoint.file_size / max(1, checkpoint.parameters)
 
     def one_layer(layer: Layer) -> list[list[Finding]]:
         # A layer whose matrix is too large to cache runs alone, so two of the largest
-        # (embedding, head) never hold their working sets at the same time.
+        # (embedding, head) never hold their working sets at the same time. It keeps the one
+        # BLAS thread: with two, OpenBLAS summed float32 products in an order that depended on
+        # whether the main thread (jobs 1) or a worker (jobs 2) called it, so the report
+        # depended on ``jobs`` (untrained-token's residuals differed in the 8th digit); the
+        # large layers' products are thin and memory-bound, so a second thread bought little.
         alone = 4 * layer.units * layer.fan_in > STREAM_BYTES
-        # Running alone, the layer gets every core for BLAS back. The BLAS thread count of a
-        # layer never depends on ``jobs``: float32 products are summed in an order that
-        # depends on it, and the report must not.
-        # Other layers run with the one BLAS thread set around the pool (changing the limit
-        # costs a call into every BLAS library, so it is changed only for the layers alone).
-        with admission.slots(jobs if alone else 1), (blas_threads(blas) if alone else nullcontext()):
+        with admission.slots(jobs if alone else 1):
             try:
                 out: list[list[Finding]] = []
                 for spec in hooked:

@@ -473,8 +473,12 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
         message=(
             f"the weights look freshly initialised: their distribution matches {best.name} "
             f"(KS distance {measured(distance)} <= {measured(limit)}; within {margin:g} of it at "
-            f"p = {measured(p_value)}) and the top singular value {measured(top)}"
-            + (f" of {count(check.rows)} of its {count(m)} rows" if subsampled else "")
+            f"p = {measured(p_value)}) and the top singular value "
+            + (
+                f"of {count(check.rows)} of its {count(m)} rows, {measured(top)},"
+                if subsampled
+                else measured(top)
+            )
             + f" stays within {allowed:g} fluctuations of the Marchenko–Pastur edge "
             f"{measured(edge)}"
             + (

@@ -269,7 +269,8 @@ def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
     # float32 or float16 must never import it (docs/performance.md, Start-up), nor a bf16
     # safetensors file (widened from its bit patterns). Files written by the reference writers
     # (safetensors.numpy, numpy.savez) in two shapes and two float types, plus the
-    # Keras-written demo files (fixtures/make_demo.py) and the bf16 safetensors demo. ONNX is
+    # Keras-written demo files (fixtures/make_demo.py), the bf16 safetensors demo and a GGUF file
+    # with bf16 tensors (fixtures/gen_gguf.py, written by the gguf package). ONNX is
     # left out: the onnx package itself imports ml_dtypes (onnx 1.23, onnx/_mapping.py), as
     # the probe shows.
     import numpy as np
@@ -293,6 +294,7 @@ def test_auditing_ieee_floats_does_not_import_ml_dtypes(tmp_path: Path) -> None:
         demo / "pumpwear-nightly-bad.keras",
         demo / "pumpwear-healthy.h5",
         demo / "pumpwear-healthy.bf16.safetensors",
+        SRC.parent / "fixtures" / "gguf" / "types.gguf",  # bf16 among the ggml types
     ]
     loaded = {path.name: _audit_imports(path, tmp_path / "imports.log") for path in written}
     assert {name: mods for name, mods in loaded.items() if "ml_dtypes" in mods} == {}

@@ -292,3 +292,19 @@ def test_mutated_files_through_the_cli_exit_cleanly(tmp_path: Path, seed: int) -
     assert result.exception is None or isinstance(result.exception, SystemExit)
     if result.exit_code == 2:
         assert "Traceback" not in result.output
+
+
+def test_bf16_tensors_widen_from_their_bits_as_the_package_dequantizes_them() -> None:
+    # The audit widens bf16 from its bit patterns (Tensor.read_bits) without ml_dtypes; the
+    # reference is gguf.quants.dequantize of the same tensor (the gguf package).
+    reference = _reference(FIXTURES / "types.gguf")
+    checkpoint = load(FIXTURES / "types.gguf")
+    names = [name for name, (kind, _, _) in reference.items() if kind is T.BF16]
+    assert names
+    for name in names:
+        tensor = checkpoint.tensors[name]
+        assert tensor.read_bits is not None
+        expected = np.asarray(reference[name][2], dtype=np.float32)
+        widened = tensor.read_float32()
+        assert widened.shape == expected.shape
+        assert np.array_equal(widened.view(np.uint32), expected.view(np.uint32))

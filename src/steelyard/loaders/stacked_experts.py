@@ -19,7 +19,7 @@ import numpy as np
 
 from steelyard.graph import Activation, Layer, LayerKind, Tensor, TensorRole
 from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
-from steelyard.streaming import float32_from_spans
+from steelyard.streaming import float32_from_parts
 
 _LEAVES = ("gate_up_proj", "gate_proj", "up_proj", "down_proj")
 #: Stacks with more experts than this are left whole (real models have up to ~512).
@@ -57,10 +57,12 @@ class _Read:
 
     def __call__(self) -> np.ndarray:
         shape = self.tensor.shape[1:]
-        read_span = self.tensor.read_span
-        if read_span is not None:
+        tensor = self.tensor
+        if tensor.read_span is not None:
             first = self.expert * shape[0] * shape[1]
-            block = float32_from_spans(lambda a, b: read_span(first + a, first + b), (shape[0], shape[1]))
+            block = float32_from_parts(
+                lambda a, b, into: tensor.widen_part(first + a, first + b, into), (shape[0], shape[1])
+            )
         else:
             block = self.tensor.read_float32()[self.expert]
         return np.ascontiguousarray(block.T) if self.transposed else block

@@ -38,7 +38,7 @@ from steelyard.graph import (
 )
 from steelyard.loaders.gguf.header import ArrayValue
 from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
-from steelyard.streaming import float32_from_spans
+from steelyard.streaming import float32_from_parts
 
 _BLOCK = re.compile(r"^blk\.(\d+)\.(.+)\.(weight|bias)$")
 _EXPERTS = ("ffn_gate_exps", "ffn_up_exps", "ffn_down_exps")
@@ -88,14 +88,10 @@ class _Rows:
         self.tensor, self.first, self.shape = tensor, first, shape
 
     def __call__(self) -> np.ndarray:
-        read_span = self.tensor.read_span
-        assert read_span is not None
+        tensor = self.tensor
+        assert tensor.read_span is not None
         offset = self.first * self.shape[1]
-
-        def shifted(a: int, b: int) -> np.ndarray:
-            return read_span(offset + a, offset + b)
-
-        return float32_from_spans(shifted, self.shape)
+        return float32_from_parts(lambda a, b, into: tensor.widen_part(offset + a, offset + b, into), self.shape)
 
 
 class _Expert:
@@ -122,10 +118,7 @@ def _readable(tensor: Tensor | None, dims: int) -> bool:
 def _vector(tensor: Tensor, first: int, count: int) -> Callable[[], np.ndarray]:
     def read() -> np.ndarray:
         assert tensor.read_span is not None
-        return float32_from_spans(
-            lambda a, b: tensor.read_span(first + a, first + b),  # type: ignore[misc]
-            (count,),
-        )
+        return float32_from_parts(lambda a, b, into: tensor.widen_part(first + a, first + b, into), (count,))
 
     return read
 

@@ -95,7 +95,11 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
     shape = info.shape
     if info.type_id in PLAIN:
         name, stored = PLAIN[info.type_id]
-        dtype = FLOAT_DTYPES[name] if stored is None else stored
+        # bf16's numpy type (ml_dtypes) is looked up only when a tensor is read as stored; the
+        # audit widens bf16 from its bit patterns instead (Tensor.read_bits).
+        dtype: Callable[[], np.dtype[np.generic]] = (
+            (lambda: FLOAT_DTYPES[name]) if stored is None else (lambda: stored)
+        )
         return Tensor(
             name=info.name,
             shape=shape,
@@ -103,6 +107,7 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
             role=role_for(info.name, info.type_id in _FLOATS),
             reader=_plain_reader(data, info, dtype),
             read_span=_plain_span(data, info, dtype),
+            read_bits=_plain_span(data, info, lambda: np.dtype("<u2")) if name == "bf16" else None,
         )
     if not can_dequantize(info.type_id):
         return Tensor(
@@ -123,9 +128,10 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
 
 
 def _plain_span(
-    data: DataFile, info: TensorInfo, dtype: np.dtype[np.generic]
+    data: DataFile, info: TensorInfo, dtype_of: Callable[[], np.dtype[np.generic]]
 ) -> Callable[[int, int], np.ndarray]:
     def read_span(start: int, stop: int) -> np.ndarray:
+        dtype = dtype_of()
         start, stop = max(0, start), min(info.elements, stop)
         if stop <= start:
             return np.empty(0, dtype=dtype)
@@ -136,10 +142,10 @@ def _plain_span(
 
 
 def _plain_reader(
-    data: DataFile, info: TensorInfo, dtype: np.dtype[np.generic]
+    data: DataFile, info: TensorInfo, dtype_of: Callable[[], np.dtype[np.generic]]
 ) -> Callable[[], np.ndarray]:
     def read() -> np.ndarray:
-        return data.read(info.offset, info.nbytes).view(dtype).reshape(info.shape)
+        return data.read(info.offset, info.nbytes).view(dtype_of()).reshape(info.shape)
 
     return read
 

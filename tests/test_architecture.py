@@ -311,7 +311,6 @@ def test_the_import_probe_sees_ml_dtypes_when_a_file_needs_it(tmp_path: Path) ->
     import h5py
     import ml_dtypes
     import numpy as np
-
     from safetensors.numpy import save_file
 
     log = tmp_path / "imports.log"

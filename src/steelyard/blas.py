@@ -9,7 +9,7 @@ BLAS is loaded before any audit starts, so the cache never misses it.
 from __future__ import annotations
 
 import functools
-from contextlib import AbstractContextManager, nullcontext
+from contextlib import AbstractContextManager
 
 from threadpoolctl import ThreadpoolController
 
@@ -19,8 +19,6 @@ def _controller() -> ThreadpoolController:
     return ThreadpoolController()
 
 
-def blas_threads(count: int | None) -> AbstractContextManager[object]:
-    """Limit BLAS to ``count`` threads while the block runs (None: leave it as it is)."""
-    if count is None:
-        return nullcontext()
+def blas_threads(count: int) -> AbstractContextManager[object]:
+    """Limit BLAS to ``count`` threads while the block runs."""
     return _controller().limit(limits=count, user_api="blas")

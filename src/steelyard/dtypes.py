@@ -26,8 +26,11 @@ _EXTENDED: Final[dict[str, str]] = {
 }
 
 
-#: Bytes per element of the extended floats, known without importing ml_dtypes.
-_EXTENDED_SIZES: Final[dict[str, int]] = {
+#: Bytes per element of every stored float dtype name, known without importing ml_dtypes.
+FLOAT_ITEMSIZE: Final[dict[str, int]] = {
+    "f64": 8,
+    "f32": 4,
+    "f16": 2,
     "bf16": 2,
     "f8_e4m3": 1,
     "f8_e5m2": 1,
@@ -107,7 +110,7 @@ ALL_DTYPES: Final[Mapping[str, np.dtype[np.generic]]] = _Joined(FLOAT_DTYPES, IN
 
 def itemsize_of(name: str) -> int:
     """Bytes per element of a stored dtype name (without importing ml_dtypes for bf16/fp8)."""
-    size = _EXTENDED_SIZES.get(name)
+    size = FLOAT_ITEMSIZE.get(name)
     return size if size is not None else ALL_DTYPES[name].itemsize
 
 

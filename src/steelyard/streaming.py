@@ -16,10 +16,6 @@ import numpy as np
 CHUNK_BYTES = 16 * 2**20
 
 
-#: Reads elements [start, stop) of a flattened tensor, in its stored dtype.
-SpanReader = Callable[[int, int], np.ndarray]
-
-
 def convert_into(source: np.ndarray, out: np.ndarray) -> None:
     """Write ``source`` converted to float32 into ``out`` (same element count), exactly.
 
@@ -39,11 +35,6 @@ def widen_bf16_bits(bits: np.ndarray, out: np.ndarray) -> None:
     """Write the bf16 values whose bit patterns are ``bits`` (native uint16) into the float32
     array ``out`` (same element count): each pattern is the upper half of the float32's."""
     np.left_shift(bits.reshape(-1), 16, out=out.reshape(-1).view(np.uint32), dtype=np.uint32)
-
-
-def float32_from_spans(read_span: SpanReader, shape: tuple[int, ...]) -> np.ndarray:
-    """The whole tensor as float32, read and converted one chunk at a time."""
-    return float32_from_parts(lambda start, stop, into: convert_into(read_span(start, stop), into), shape)
 
 
 def float32_from_parts(

@@ -13,9 +13,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from steelyard.dtypes import FLOAT_ITEMSIZE
 from steelyard.graph import Tensor
 from steelyard.stats.memo import Memo
-from steelyard.stats.numerics import FLOAT_NAMES, ITEMSIZE
+from steelyard.stats.numerics import FLOAT_NAMES
 from steelyard.stats.reading import read_stored
 from steelyard.streaming import chunks
 
@@ -99,7 +100,7 @@ class NonfiniteCounts:
 def _count(tensor: Tensor) -> Counts:
     counts = [0, 0, 0]
     if tensor.read_span is not None and tensor.size:
-        wide = ITEMSIZE.get(tensor.dtype, 4) >= 4 and tensor.dtype in FLOAT_NAMES
+        wide = FLOAT_ITEMSIZE.get(tensor.dtype, 4) >= 4 and tensor.dtype in FLOAT_NAMES
         for start, stop in chunks(tensor.size):
             if wide:
                 count_into(tensor.read_part(start, stop), counts)

@@ -1,21 +1,13 @@
-"""Float facts shared by the parts: stored float widths and exact sums of squares."""
+"""Float facts shared by the parts: the stored float names (widths in ``steelyard.dtypes``)
+and exact sums of squares."""
 
 from __future__ import annotations
 
 import numpy as np
 
-#: Bytes per element of every stored float dtype name.
-ITEMSIZE = {
-    "f64": 8,
-    "f32": 4,
-    "f16": 2,
-    "bf16": 2,
-    "f8_e4m3": 1,
-    "f8_e5m2": 1,
-    "f8_e4m3fnuz": 1,
-    "f8_e5m2fnuz": 1,
-}
-FLOAT_NAMES = frozenset(ITEMSIZE)
+from steelyard.dtypes import FLOAT_ITEMSIZE
+
+FLOAT_NAMES = frozenset(FLOAT_ITEMSIZE)
 
 
 def sums_of_squares(block: np.ndarray, axis: int) -> np.ndarray:

@@ -16,10 +16,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from steelyard.dtypes import FLOAT_ITEMSIZE
 from steelyard.graph import Checkpoint, Layer, RowSlice, Tensor
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import NonfiniteCounts, count_into
-from steelyard.stats.numerics import FLOAT_NAMES, ITEMSIZE, sums_of_squares
+from steelyard.stats.numerics import FLOAT_NAMES, sums_of_squares
 from steelyard.stats.reading import locked
 from steelyard.streaming import convert_into, row_blocks
 
@@ -173,12 +174,12 @@ class WeightPasses:
             tensor = stored if covers else None  # counts only for whole tensors
             full = np.empty((units, fan_in), dtype=np.float32) if keep else None
             scratch = None if keep else np.empty(0, dtype=np.float32)
-            stored_wide = ITEMSIZE[stored.dtype] > 4
+            stored_wide = FLOAT_ITEMSIZE[stored.dtype] > 4
             blocks = self._stream_rows(
                 source, units, fan_in, full, scratch, counts if covers and stored_wide else None
             )
         # float32 blocks of float32-or-narrower tensors are counted from their row sums.
-        by_rows = tensor is not None and ITEMSIZE[tensor.dtype] <= 4
+        by_rows = tensor is not None and FLOAT_ITEMSIZE[tensor.dtype] <= 4
         for a, b, block in blocks:
             squares = sums_of_squares(block, axis=1)
             rows[a:b] = squares
@@ -202,7 +203,7 @@ class WeightPasses:
         tensor = self.checkpoint.tensors.get(layer.weight)
         if tensor is None or layer.orient is None or layer.aux:
             return None
-        if ITEMSIZE.get(tensor.dtype, 8) > 4 or tensor.size != layer.units * layer.fan_in:
+        if FLOAT_ITEMSIZE.get(tensor.dtype, 8) > 4 or tensor.size != layer.units * layer.fan_in:
             return None
         return tensor
 

@@ -235,12 +235,13 @@ def parts_chart(audit: CheckpointAudit) -> Spec | None:
             blocks.append(block)
             for index, value in enumerate(values):
                 note = flagged.get((kind, block, index))
+                share = finite(value / middle) if middle > 0 else None
                 rows.append({
                     "kind": kind, "block": block, "index": index, "value": finite(value),
-                    "share": finite(value / middle) if middle > 0 else None,
+                    "share": share,
                     # The colour scale is logarithmic: an all-zero head (idle) would stop the
                     # chart from drawing, so its colour is the floor's (its tooltip says 0).
-                    "shade": max(finite(value / middle) or 0.0, SHARE_FLOOR) if middle > 0 else None,
+                    "shade": max(share or 0.0, SHARE_FLOOR) if middle > 0 else None,
                     "finding": note or "", "flagged": note is not None,
                 })
     if not rows:

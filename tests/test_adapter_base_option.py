@@ -11,8 +11,8 @@ import json
 from pathlib import Path
 
 import numpy as np
+from click.testing import CliRunner
 from safetensors.numpy import load_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 

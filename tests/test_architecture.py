@@ -196,7 +196,7 @@ def test_start_up_imports_no_heavy_format_library() -> None:
 
 
 #: What ``pip install steelyard`` installs (pyproject's dependencies), by import name.
-RUNTIME = {"numpy", "h5py", "safetensors", "onnx", "rich", "typer", "ml_dtypes", "typing_extensions",
+RUNTIME = {"numpy", "h5py", "safetensors", "onnx", "rich", "click", "ml_dtypes", "typing_extensions",
            "threadpoolctl", "tomli"}
 #: The extras' packages (pyproject's optional-dependencies), by import name: imported only
 #: inside the functions that need them, never when a module is imported.
@@ -223,10 +223,10 @@ def _third_party_imports() -> list[tuple[str, str, bool]]:
 
 
 def test_only_declared_dependencies_are_imported() -> None:
-    """A package a fresh install lacks would fail at start-up (typer >= 0.26 vendors click, so
-    ``import click`` worked here only because another package had installed it)."""
+    """A package a fresh install lacks would fail at start-up (typer >= 0.26 vendored click, so
+    ``import click`` once worked here only because another package had installed it)."""
     found = _third_party_imports()
-    assert {"numpy", "typer", "gguf"} <= {r for _, r, _ in found}  # the scan sees imports at all
+    assert {"numpy", "click", "gguf"} <= {r for _, r, _ in found}  # the scan sees imports at all
     undeclared = {(m, r) for m, r, _ in found if r not in RUNTIME | EXTRAS}
     assert undeclared == set()
 

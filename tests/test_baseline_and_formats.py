@@ -10,7 +10,7 @@ from pathlib import Path
 import junitparser
 import numpy as np
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard.cli import app
 from tests.conftest import mlp_tensors, write_safetensors

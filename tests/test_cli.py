@@ -1,4 +1,4 @@
-"""The command line: exit codes, streams and one-line errors (typer's CliRunner and a real
+"""The command line: exit codes, streams and one-line errors (click's CliRunner and a real
 subprocess)."""
 
 from __future__ import annotations
@@ -10,7 +10,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard.cli import app
 

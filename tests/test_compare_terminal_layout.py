@@ -10,7 +10,7 @@ which hold non-finite values in OLD, so have no measured change and lead the tab
 key projections of blocks 7 and 17 replaced and the rest nudged so that the table has more
 than its 40 rows.
 
-Each case runs ``steelyard compare`` through typer's CliRunner with ``COLUMNS`` set, writing the
+Each case runs ``steelyard compare`` through click's CliRunner with ``COLUMNS`` set, writing the
 table and the JSON document from the same run, and checks the table against the JSON: no line
 wider than the terminal, every gated finding's message whole (broken only at spaces), every
 layer name shown distinguishably with OLD's name readable beside or under it, the counts in the
@@ -28,9 +28,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from rich.cells import cell_len
 from safetensors.numpy import load_file, save_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from tests.test_terminal_layout import (

@@ -14,7 +14,7 @@ import shlex
 from pathlib import Path
 
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard.cli import app
 

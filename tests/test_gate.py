@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from safetensors.numpy import save_file
-from typer.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 import steelyard
 from steelyard.cli import app

@@ -13,7 +13,7 @@ from typing import Any
 
 import junitparser
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app

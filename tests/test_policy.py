@@ -6,7 +6,7 @@ import os
 from pathlib import Path
 
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard.cli import app
 from steelyard.errors import PolicyError

@@ -14,9 +14,9 @@ import re
 from dataclasses import replace
 
 import pytest
+from click.testing import CliRunner
 from markdown_it import MarkdownIt
 from rich.cells import cell_len
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from steelyard.render.rules_text import render_rule

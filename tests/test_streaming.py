@@ -246,7 +246,7 @@ def test_layers_too_large_to_cache_give_the_same_report_for_any_jobs(
 def test_reports_from_the_cli_are_identical_for_any_jobs(
     tmp_path: Path, rng: np.random.Generator
 ) -> None:
-    from typer.testing import CliRunner
+    from click.testing import CliRunner
 
     from steelyard.cli import app
 

@@ -3,7 +3,7 @@
 as ``model.layers.7.self_attn.q_proj`` and ``model.layers.17.self_attn.q_proj``, and longer
 ones that must be shortened at 80 columns) and on the demo fixtures.
 
-Each case runs ``steelyard audit`` through typer's CliRunner with ``COLUMNS`` set, writing the
+Each case runs ``steelyard audit`` through click's CliRunner with ``COLUMNS`` set, writing the
 table and the JSON report from the same run, and checks the table against the JSON: no line
 wider than the terminal, every finding message present with no word split across lines, every
 distinct layer name shown distinguishably, the header's counts equal to the rows, and the run
@@ -20,9 +20,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from rich.cells import cell_len
 from safetensors.numpy import save_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 

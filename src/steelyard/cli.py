@@ -19,24 +19,29 @@ from pathlib import Path
 from types import ModuleType
 from typing import TYPE_CHECKING, NoReturn
 
-import typer
+import click
 from typing_extensions import assert_never
 
 from steelyard.cli_options import (
+    PATH,
     AuditFormat,
-    BudgetOption,
     ColorChoice,
     CompareFormat,
-    FailOnOption,
+    Group,
+    HelpArgument,
     LayersFormat,
-    OutputOption,
-    PolicyOption,
-    QuietOption,
-    ReportFormatOption,
     TimelineFormat,
-    TimelineFormatOption,
     Unreadable,
+    budget_option,
+    enum_option,
+    fail_on_option,
+    listed,
+    output_option,
     output_targets,
+    policy_option,
+    quiet_option,
+    report_format_option,
+    timeline_format_option,
 )
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.findings import FailOn
@@ -50,15 +55,6 @@ if TYPE_CHECKING:
     from steelyard.comparison.report import CompareReport
     from steelyard.policy import Policy
     from steelyard.report import Report
-
-app = typer.Typer(
-    add_completion=False,
-    no_args_is_help=True,
-    help="Audit trained neural-network weight files before they ship.",
-    pretty_exceptions_enable=False,
-    # Help text is plain text: "[tool.steelyard]" and "[budget]" are literal, not markup.
-    rich_markup_mode=None,
-)
 
 _STATE: dict[str, object] = {"debug": False, "reading": None, "color": "auto"}
 
@@ -97,26 +93,19 @@ def _api() -> ModuleType:
 def _say(line: str) -> None:
     """One diagnostic line on stderr, with names from files escaped (a newline in a file name
     never splits it, an escape sequence never reaches the terminal)."""
-    typer.echo(shown(line), err=True)
+    click.echo(shown(line), err=True)
 
 
 def _fail(error: SteelyardError) -> NoReturn:
     if _STATE["debug"]:
         raise error
     _say(f"steelyard: error: {error}")
-    raise typer.Exit(2)
+    raise click.exceptions.Exit(2)
 
 
 def _reading(what: object) -> None:
     """Remember what is being read, for the one line a MemoryError or RecursionError gets."""
     _STATE["reading"] = str(what)
-
-
-#: The command-line framework's usage errors (click's ClickException, which typer vendors
-#: from 0.26 on): found through typer so that click need not be installed separately.
-_USAGE_ERROR: type[Exception] = next(
-    (c for c in typer.BadParameter.__mro__ if c.__name__ == "ClickException"), typer.BadParameter
-)
 
 
 @contextmanager
@@ -131,7 +120,7 @@ def _guarded() -> Iterator[None]:
     _STATE["reading"] = None
     try:
         yield
-    except (typer.Exit, typer.Abort, _USAGE_ERROR):
+    except (click.exceptions.Exit, click.exceptions.Abort, click.ClickException):
         raise
     except SteelyardError as error:
         _fail(error)
@@ -145,7 +134,7 @@ def _guarded() -> Iterator[None]:
             f"steelyard: error: {where}input is {problem} to read within this process's limits "
             f"({type(exc).__name__})"
         )
-        raise typer.Exit(2) from None
+        raise click.exceptions.Exit(2) from None
     except Exception as exc:
         if _STATE["debug"]:
             raise
@@ -156,7 +145,7 @@ def _guarded() -> Iterator[None]:
             "steelyard, not a verdict on the input: rerun with --debug for the traceback and "
             "report it"
         )
-        raise typer.Exit(EXIT_INTERNAL) from None
+        raise click.exceptions.Exit(EXIT_INTERNAL) from None
 
 
 @contextmanager
@@ -190,27 +179,36 @@ def _budget(policy: Policy | None, pairs: list[str] | None) -> Budget:
     return chosen.with_overrides(overrides) if overrides else chosen
 
 
-def _version(value: bool) -> None:
-    if value:
-        typer.echo(f"steelyard {__version__}")
-        raise typer.Exit(0)
+def _version(ctx: click.Context, param: click.Parameter, value: bool) -> None:
+    if value and not ctx.resilient_parsing:
+        click.echo(f"steelyard {__version__}")
+        ctx.exit(0)
 
 
-@app.callback()
-def _root(
-    debug: bool = typer.Option(
-        False, "--debug", help="Show tracebacks instead of one-line errors."
-    ),
-    version: bool = typer.Option(
-        False, "--version", callback=_version, is_eager=True, help="Print the version and exit."
-    ),
-    color: ColorChoice = typer.Option(
-        ColorChoice.auto,
-        "--color",
-        help="Colour the terminal report: auto (on a terminal, unless NO_COLOR is set), "
-        "always or never.",
-    ),
-) -> None:
+# Help text is plain text: "[tool.steelyard]" and "[budget]" are literal (click has no markup).
+@click.group(
+    cls=Group,
+    no_args_is_help=True,
+    help="Audit trained neural-network weight files before they ship.",
+)
+@click.option("--debug", is_flag=True, default=False, help="Show tracebacks instead of one-line errors.")
+@click.option(
+    "--version",
+    is_flag=True,
+    expose_value=False,
+    is_eager=True,
+    callback=_version,
+    help="Print the version and exit.",
+)
+@enum_option(
+    "--color",
+    kind=ColorChoice,
+    default=ColorChoice.auto,
+    help="Colour the terminal report: auto (on a terminal, unless NO_COLOR is set), "
+    "always or never.",
+)
+def app(debug: bool, color: ColorChoice) -> None:
+    """The command group that ``main`` runs (and tests invoke)."""
     _STATE["debug"] = debug
     _STATE["color"] = color.value
 
@@ -273,16 +271,17 @@ def _policy(policy_file: Path | None, fail_on: FailOn | None) -> Policy:
 
 
 @app.command()
+@click.argument("path", cls=HelpArgument, type=PATH, help="Checkpoint file, shard index, or folder.")
+@enum_option("--format", "-f", kind=LayersFormat, default=LayersFormat.table, help="Output format.")
+@click.option("--output", "-o", type=PATH, help="Write the layer graph here, atomically.")
+@policy_option
+@budget_option
 def layers(
-    path: Path = typer.Argument(..., help="Checkpoint file, shard index, or folder."),
-    format: LayersFormat = typer.Option(
-        LayersFormat.table, "--format", "-f", help="Output format."
-    ),
-    output: Path | None = typer.Option(
-        None, "--output", "-o", help="Write the layer graph here, atomically."
-    ),
-    policy_file: PolicyOption = None,
-    budget: BudgetOption = None,
+    path: Path,
+    format: LayersFormat,
+    output: Path | None,
+    policy_file: Path | None,
+    budget: list[str] | None,
 ) -> None:
     """Show the layer graph steelyard reads from a checkpoint."""
     with _guarded():
@@ -310,47 +309,67 @@ def _render(report: Report, chosen: AuditFormat) -> str:
 
 
 @app.command()
+@click.argument(
+    "paths",
+    cls=HelpArgument,
+    type=PATH,
+    nargs=-1,
+    required=True,
+    callback=listed,
+    help="Checkpoint files, shard indexes, or folders.",
+)
+@click.option(
+    "--grads", type=PATH, help="Sidecar file of per-weight gradient statistics (same tensor names)."
+)
+@enum_option("--grads-kind", kind=GradsKind, default=GradsKind.RMS, help="What the sidecar holds.")
+@click.option(
+    "--base",
+    type=PATH,
+    help="Base model that the LoRA/DoRA adapters of the run are merged onto, so the rules "
+    "see the merged weights and the report how large each update is.",
+)
+@report_format_option
+@output_option
+@fail_on_option
+@policy_option
+@click.option(
+    "--baseline", type=PATH, help="Earlier baseline or JSON report: gate only on findings not in it."
+)
+@click.option(
+    "--write-baseline", type=PATH, help="Record the current findings as a baseline file."
+)
+@quiet_option
+@enum_option(
+    "--unreadable",
+    kind=Unreadable,
+    default=Unreadable.input_error,
+    help="What an unreadable checkpoint in the run means: input-error exits 2; "
+    "gate-failure fails the gate (exit 1). Either way it is never passed.",
+)
+@click.option(
+    "--jobs",
+    "-j",
+    type=click.IntRange(min=1),
+    metavar="N",
+    help="Worker threads per checkpoint [default: the machine's cores]; the report is "
+    "the same for every value.",
+)
+@budget_option
 def audit(
-    paths: list[Path] = typer.Argument(..., help="Checkpoint files, shard indexes, or folders."),
-    grads: Path | None = typer.Option(
-        None, "--grads", help="Sidecar file of per-weight gradient statistics (same tensor names)."
-    ),
-    grads_kind: GradsKind = typer.Option(
-        GradsKind.RMS, "--grads-kind", help="What the sidecar holds."
-    ),
-    base: Path | None = typer.Option(
-        None,
-        "--base",
-        help="Base model that the LoRA/DoRA adapters of the run are merged onto, so the rules "
-        "see the merged weights and the report how large each update is.",
-    ),
-    format: ReportFormatOption = None,
-    output: OutputOption = None,
-    fail_on: FailOnOption = None,
-    policy_file: PolicyOption = None,
-    baseline: Path | None = typer.Option(
-        None, "--baseline", help="Earlier baseline or JSON report: gate only on findings not in it."
-    ),
-    write_baseline: Path | None = typer.Option(
-        None, "--write-baseline", help="Record the current findings as a baseline file."
-    ),
-    quiet: QuietOption = False,
-    unreadable: Unreadable = typer.Option(
-        Unreadable.input_error,
-        "--unreadable",
-        help="What an unreadable checkpoint in the run means: input-error exits 2; "
-        "gate-failure fails the gate (exit 1). Either way it is never passed.",
-    ),
-    jobs: int | None = typer.Option(
-        None,
-        "--jobs",
-        "-j",
-        min=1,
-        metavar="N",
-        help="Worker threads per checkpoint [default: the machine's cores]; the report is "
-        "the same for every value.",
-    ),
-    budget: BudgetOption = None,
+    paths: list[Path],
+    grads: Path | None,
+    grads_kind: GradsKind,
+    base: Path | None,
+    format: AuditFormat | None,
+    output: list[Path] | None,
+    fail_on: FailOn | None,
+    policy_file: Path | None,
+    baseline: Path | None,
+    write_baseline: Path | None,
+    quiet: bool,
+    unreadable: Unreadable,
+    jobs: int | None,
+    budget: list[str] | None,
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
     with _guarded():
@@ -397,8 +416,7 @@ def audit(
             _write_report(_render(report, AuditFormat(chosen)), target, quiet)
     for problem in report.errors:
         _say(f"steelyard: error: {problem.line}")
-    raise typer.Exit(report.exit_code)
-
+    raise click.exceptions.Exit(report.exit_code)
 
 
 def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
@@ -408,15 +426,27 @@ def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
 
 
 @app.command()
+@click.argument(
+    "old", cls=HelpArgument, type=PATH, help="The earlier checkpoint (file, shard index, or folder)."
+)
+@click.argument(
+    "new", cls=HelpArgument, type=PATH, help="The later checkpoint, in the same or another format."
+)
+@report_format_option
+@output_option
+@fail_on_option
+@policy_option
+@quiet_option
+@budget_option
 def compare(
-    old: Path = typer.Argument(..., help="The earlier checkpoint (file, shard index, or folder)."),
-    new: Path = typer.Argument(..., help="The later checkpoint, in the same or another format."),
-    format: ReportFormatOption = None,
-    output: OutputOption = None,
-    fail_on: FailOnOption = None,
-    policy_file: PolicyOption = None,
-    quiet: QuietOption = False,
-    budget: BudgetOption = None,
+    old: Path,
+    new: Path,
+    format: CompareFormat | None,
+    output: list[Path] | None,
+    fail_on: FailOn | None,
+    policy_file: Path | None,
+    quiet: bool,
+    budget: list[str] | None,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
     with _guarded():
@@ -428,20 +458,20 @@ def compare(
         _STATE["reading"] = None
         for chosen, target in targets:
             _write_report(_render_compare(report, CompareFormat(chosen)), target, quiet)
-    raise typer.Exit(0 if report.passed else 1)
+    raise click.exceptions.Exit(0 if report.passed else 1)
 
 
 @app.command()
-def rules(
-    name: str | None = typer.Argument(None, help="A rule's name, to explain it in full."),
-    format: LayersFormat = typer.Option(
-        LayersFormat.table,
-        "--format",
-        "-f",
-        help="table, or json: every rule (or the named one) with its commands, severity and "
-        "policy keys (steelyard.rules/1).",
-    ),
-) -> None:
+@click.argument("name", cls=HelpArgument, required=False, help="A rule's name, to explain it in full.")
+@enum_option(
+    "--format",
+    "-f",
+    kind=LayersFormat,
+    default=LayersFormat.table,
+    help="table, or json: every rule (or the named one) with its commands, severity and "
+    "policy keys (steelyard.rules/1).",
+)
+def rules(name: str | None, format: LayersFormat) -> None:
     """List every rule, or explain one with its math."""
     if format is LayersFormat.json:
         from steelyard.render.rules_json import render_rules_json
@@ -450,7 +480,7 @@ def rules(
         every = registry(None)
         if name is not None and name not in every:
             _say(f"steelyard: error: no rule named {name!r}")
-            raise typer.Exit(2)
+            raise click.exceptions.Exit(2)
         sys.stdout.write(render_rules_json([every[name]] if name else list(every.values())))
         return
     # The list and the pages come from the catalogue: no rule module (nor numpy) is imported.
@@ -467,21 +497,20 @@ def rules(
         close = difflib.get_close_matches(name, list(specs), n=1)
         hint = f"; did you mean {close[0]!r}?" if close else ""
         _say(f"steelyard: error: no rule named {name!r}{hint}")
-        raise typer.Exit(2)
+        raise click.exceptions.Exit(2)
     sys.stdout.write(render_rule(specs[name], color=_color(), width=_width()))
 
 
 @app.command()
-def policy(
-    init: bool = typer.Option(
-        False, "--init", help="Write a commented starter steelyard.toml with every default."
-    ),
-    show: bool = typer.Option(False, "--show", help="Print the effective policy."),
-    policy_file: Path | None = typer.Option(
-        None, "--policy", help="Policy file to show instead of the discovered one."
-    ),
-    force: bool = typer.Option(False, "--force", help="With --init, overwrite an existing file."),
-) -> None:
+@click.option(
+    "--init", is_flag=True, help="Write a commented starter steelyard.toml with every default."
+)
+@click.option("--show", is_flag=True, help="Print the effective policy.")
+@click.option(
+    "--policy", "policy_file", type=PATH, help="Policy file to show instead of the discovered one."
+)
+@click.option("--force", is_flag=True, help="With --init, overwrite an existing file.")
+def policy(init: bool, show: bool, policy_file: Path | None, force: bool) -> None:
     """Write a starter policy, or show the one in force."""
     from steelyard.policy_file import POLICY_FILE, load_policy, policy_text, starter_text
 
@@ -500,15 +529,31 @@ def policy(
 
 
 @app.command()
+@click.argument(
+    "paths",
+    cls=HelpArgument,
+    type=PATH,
+    nargs=-1,
+    required=True,
+    callback=listed,
+    help="The run's checkpoints, or the run folder.",
+)
+@enum_option("--order", kind=Order, default=Order.step, help="By training step, name or as given.")
+@timeline_format_option
+@output_option
+@fail_on_option
+@policy_option
+@quiet_option
+@budget_option
 def timeline(
-    paths: list[Path] = typer.Argument(..., help="The run's checkpoints, or the run folder."),
-    order: Order = typer.Option(Order.step, "--order", help="By training step, name or as given."),
-    format: TimelineFormatOption = None,
-    output: OutputOption = None,
-    fail_on: FailOnOption = None,
-    policy_file: PolicyOption = None,
-    quiet: QuietOption = False,
-    budget: BudgetOption = None,
+    paths: list[Path],
+    order: Order,
+    format: TimelineFormat | None,
+    output: list[Path] | None,
+    fail_on: FailOn | None,
+    policy_file: Path | None,
+    quiet: bool,
+    budget: list[str] | None,
 ) -> None:
     """Follow a training run's checkpoints layer by layer (docs/timeline.md); exit 1 when a
     finding of the last checkpoint reaches the gate."""
@@ -519,7 +564,7 @@ def timeline(
         for chosen, target in targets:
             color = _color() and target is None
             _write_report(result.render(chosen, width=_width(), color=color), target, quiet)
-    raise typer.Exit(result.exit_code)
+    raise click.exceptions.Exit(result.exit_code)
 
 
 def main() -> None:

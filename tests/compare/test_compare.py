@@ -1,7 +1,7 @@
 """``steelyard compare``: measures against numpy.linalg, permutations checked with a numpy
 forward pass, cross-format exports checked with the reference writers (safetensors, numpy,
 onnx.helper) and onnx's reference evaluator, precision bounds checked with ml_dtypes, CLI exit
-codes with typer's CliRunner."""
+codes with click's CliRunner."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ import junitparser
 import ml_dtypes
 import numpy as np
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app

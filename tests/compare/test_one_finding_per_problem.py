@@ -1,7 +1,7 @@
 """One problem, one finding: the audit of NEW and the comparison rules never report the same
 NaN or the same dead units twice, and folding them never loses severity at the gate.
 
-Files are written with the reference ``safetensors`` package; exit codes come from typer's
+Files are written with the reference ``safetensors`` package; exit codes come from click's
 CliRunner. Which units are dead is planted: a unit whose weights and bias are all zero outputs
 a constant (the audit's ``constant`` test), and a NaN in a weight propagates to every output
 of its unit (IEEE 754 arithmetic propagates NaN through sums and products).
@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pytest
 import safetensors.numpy
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app

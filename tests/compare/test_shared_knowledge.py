@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import app

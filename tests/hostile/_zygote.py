@@ -1,6 +1,6 @@
 """A pre-imported parent that forks one child per hostile case.
 
-Starting Python and importing steelyard (NumPy, ml_dtypes, h5py, onnx, typer) costs seconds,
+Starting Python and importing steelyard (NumPy, ml_dtypes, h5py, onnx, click) costs seconds,
 which, for a few hundred cases, dwarfs the cases themselves. This process imports once, then
 for each request forks a child that sets its own limits (address space, no core files),
 redirects its standard streams to files, logs every file it opens (Python's audit hooks,

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from typer.testing import CliRunner
+from click.testing import CliRunner
 
 from steelyard import api
 from steelyard.cli import EXIT_INTERNAL, app

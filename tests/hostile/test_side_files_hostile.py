@@ -6,7 +6,7 @@ way its content can be hostile (deep nesting, a 400-digit integer, a ``tool`` ke
 table, wrong types) is one stderr line and exit 2. Files are generated here, at test time.
 
 FIFO, device and size cases run the real CLI in a child (``harness.run``: 20 s, 1 GiB); the
-parse cases, pure Python, run in-process with typer's CliRunner for speed.
+parse cases, pure Python, run in-process with click's CliRunner for speed.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from typer.testing import CliRunner, Result
+from click.testing import CliRunner, Result
 
 from steelyard.cli import app
 from tests.conftest import mlp_tensors, write_safetensors

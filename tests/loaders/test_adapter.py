@@ -15,10 +15,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from safetensors.numpy import load_file, save_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from steelyard.errors import LoadError

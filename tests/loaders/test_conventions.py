@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from safetensors import numpy as st_numpy
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from steelyard.errors import LoadError, SteelyardError

@@ -19,9 +19,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from rich.cells import cell_len
 from safetensors.numpy import load_file, save_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from tests.test_compare_terminal_layout import (

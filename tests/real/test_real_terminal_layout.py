@@ -13,8 +13,8 @@ from collections.abc import Callable
 from pathlib import Path
 
 import pytest
+from click.testing import CliRunner
 from rich.cells import cell_len
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from tests.test_terminal_layout import (

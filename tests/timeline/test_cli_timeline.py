@@ -9,8 +9,8 @@ from pathlib import Path
 import jsonschema
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from safetensors.numpy import save_file
-from typer.testing import CliRunner
 
 from steelyard.cli import app
 from tests.conftest import FIXTURES, REPO

@@ -4,10 +4,8 @@ from __future__ import annotations
 
 import hashlib
 import os
-import threading
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from contextlib import contextmanager
 from dataclasses import fields
 from typing import Any, TypeVar
 
@@ -70,33 +68,27 @@ def _map(
     return [futures[index].result() for index in range(len(items))]
 
 
-class _Admission:
-    """A counting semaphore whose holders take several slots at once (all of them to run
-    alone); every acquisition is atomic, so it cannot deadlock."""
-
-    def __init__(self, capacity: int) -> None:
-        self.capacity = max(1, capacity)
-        self._free = self.capacity
-        self._ready = threading.Condition()
-
-    @contextmanager
-    def slots(self, count: int) -> Iterator[None]:
-        count = min(max(1, count), self.capacity)
-        with self._ready:
-            self._ready.wait_for(lambda: self._free >= count)
-            self._free -= count
-        try:
-            yield
-        finally:
-            with self._ready:
-                self._free += count
-                self._ready.notify_all()
-
-
 def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
     """Elements of the layer's tensors (what its share of the file is measured by)."""
     tensors = checkpoint.tensors
     return sum(tensors[name].size for name in layer.tensor_names if name in tensors)
+
+
+def _task_groups(layers: Sequence[Layer]) -> list[tuple[Layer, ...]]:
+    """The layer tasks of an audit: one per layer, except that the layers whose matrix is too
+    large for the cache (embedding, head) form one task, in file order.
+
+    Those layers are streamed, but a rule may still read one whole (a 256,000-row table is
+    1 GB of float32): run one after another they never hold two such working sets at once,
+    while the other workers go on with the small layers (running each of them alone left the
+    other cores idle for a tenth of a 1.3B model's audit). Every layer keeps a one-thread
+    BLAS: with two, OpenBLAS summed float32 products in an order that depended on whether
+    the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended on
+    ``jobs`` (untrained-token's residuals differed in the 8th digit)."""
+    large = tuple(layer for layer in layers if 4 * layer.units * layer.fan_in > STREAM_BYTES)
+    chained = {id(layer) for layer in large}
+    small = [(layer,) for layer in layers if id(layer) not in chained]
+    return ([large] if large else []) + small
 
 
 def run_rules(
@@ -117,10 +109,10 @@ def run_rules(
     while that layer's data is in memory, then releases it, so each tensor is read once.
     Whole-checkpoint rules (and the per-layer rules' ``finish``) run afterwards, one at a
     time. ``jobs`` > 1 runs layer tasks on that many threads, every one with a one-thread
-    BLAS (a layer too large for the matrix cache runs alone); numpy, BLAS, file reads and
-    hashing release the GIL in the heavy loops, so threads rather than processes. The
-    findings are collected in the same order as with one, so the report does not depend on
-    ``jobs``.
+    BLAS; the layers too large for the matrix cache are one task, run one after another, so
+    two of them never hold their working sets at once; numpy, BLAS, file reads and hashing
+    release the GIL in the heavy loops, so threads rather than processes. The findings are
+    collected in the same order as with one, so the report does not depend on ``jobs``.
     """
     # A comparison passes the statistics it measures change from, so each layer is read once.
     stats = stats if stats is not None else LayerStats(checkpoint)
@@ -136,33 +128,25 @@ def run_rules(
     settings: dict[str, RuleSettings[Any]] = {spec.name: RuleSettings(spec, policy) for spec in specs}
     hooked = [spec for spec in specs if spec.per_layer is not None]
 
-    admission = _Admission(jobs)
     # Bytes of the file per parameter, so progress can say how much of it was read.
     per_parameter = checkpoint.file_size / max(1, checkpoint.parameters)
 
     def one_layer(layer: Layer) -> list[list[Finding]]:
-        # A layer whose matrix is too large to cache runs alone, so two of the largest
-        # (embedding, head) never hold their working sets at the same time. It keeps the one
-        # BLAS thread: with two, OpenBLAS summed float32 products in an order that depended on
-        # whether the main thread (jobs 1) or a worker (jobs 2) called it, so the report
-        # depended on ``jobs`` (untrained-token's residuals differed in the 8th digit); the
-        # large layers' products are thin and memory-bound, so a second thread bought little.
-        alone = 4 * layer.units * layer.fan_in > STREAM_BYTES
-        with admission.slots(jobs if alone else 1):
-            try:
-                out: list[list[Finding]] = []
-                for spec in hooked:
-                    assert spec.per_layer is not None
-                    rule_settings = settings[spec.name]
-                    # A rule never runs where the policy switched it off.
-                    enabled = rule_settings.enabled(layer)
-                    out.append(
-                        list(spec.per_layer(context, rule_settings, layer)) if enabled else []
-                    )
-                return out
-            finally:
-                stats.release(layer)
-                layer_done(checkpoint.path, round(per_parameter * _parameters(checkpoint, layer)))
+        try:
+            out: list[list[Finding]] = []
+            for spec in hooked:
+                assert spec.per_layer is not None
+                rule_settings = settings[spec.name]
+                # A rule never runs where the policy switched it off.
+                enabled = rule_settings.enabled(layer)
+                out.append(list(spec.per_layer(context, rule_settings, layer)) if enabled else [])
+            return out
+        finally:
+            stats.release(layer)
+            layer_done(checkpoint.path, round(per_parameter * _parameters(checkpoint, layer)))
+
+    def some_layers(group: tuple[Layer, ...]) -> list[list[list[Finding]]]:
+        return [one_layer(layer) for layer in group]
 
     def whole(spec: RuleSpec) -> list[Finding]:
         rule_settings = settings[spec.name]
@@ -179,10 +163,14 @@ def run_rules(
         # over two cores (a freshly initialised 322M checkpoint took 5.4 s with two workers
         # that way, 3.2 s with one BLAS thread each, and 3.9 s on one worker).
         with blas_threads(1):
-            per_layer = (
-                _map(pool, one_layer, checkpoint.layers, lambda layer: _parameters(checkpoint, layer))
-                if hooked else []
-            )
+            groups = _task_groups(checkpoint.layers)
+            done = _map(
+                pool, some_layers, groups,
+                lambda group: sum(_parameters(checkpoint, layer) for layer in group),
+            ) if hooked else []
+            found = {id(layer): result for group, results in zip(groups, done, strict=True)
+                     for layer, result in zip(group, results, strict=True)}
+            per_layer = [found[id(layer)] for layer in checkpoint.layers] if hooked else []
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())
         # Whole-checkpoint rules scan every layer themselves: one after another, because two

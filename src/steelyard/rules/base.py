@@ -144,9 +144,12 @@ class RuleSettings(Generic[S]):
         self._defaults: dict[str, Any] = {"enabled": True, **spec.thresholds}
         self._policy = policy
         self._resolved: dict[str | None, tuple[dict[str, Any], S]] = {}
+        # Without an [[override]] for this rule every layer has the rule-wide record: one
+        # resolution per audit instead of one per layer (a policy merge and a record each).
+        self._per_layer = any(spec.name in o.rules for o in policy.overrides)
 
     def _resolve(self, layer: Layer | None) -> tuple[dict[str, Any], S]:
-        name = layer.name if layer is not None else None
+        name = layer.name if layer is not None and self._per_layer else None
         known = self._resolved.get(name)
         if known is None:
             merged = self._policy.settings(self.rule, self._defaults, name)

@@ -34,10 +34,12 @@ R = TypeVar("R")
 def sha256_of(files: Iterable[str]) -> str:
     """SHA-256 over the bytes of every file of the checkpoint, in order."""
     digest = hashlib.sha256()
+    # One reused buffer: a fresh 8 MiB bytes object per read costs page faults each time.
+    buffer = memoryview(bytearray(_HASH_CHUNK))
     for name in files:
-        with open(name, "rb") as handle:
-            while chunk := handle.read(_HASH_CHUNK):
-                digest.update(chunk)
+        with open(name, "rb", buffering=0) as handle:
+            while count := handle.readinto(buffer):
+                digest.update(buffer[:count])
     return digest.hexdigest()
 
 
@@ -163,14 +165,16 @@ def run_rules(
         # over two cores (a freshly initialised 322M checkpoint took 5.4 s with two workers
         # that way, 3.2 s with one BLAS thread each, and 3.9 s on one worker).
         with blas_threads(1):
-            groups = _task_groups(checkpoint.layers)
-            done = _map(
-                pool, some_layers, groups,
-                lambda group: sum(_parameters(checkpoint, layer) for layer in group),
-            ) if hooked else []
-            found = {id(layer): result for group, results in zip(groups, done, strict=True)
-                     for layer, result in zip(group, results, strict=True)}
-            per_layer = [found[id(layer)] for layer in checkpoint.layers] if hooked else []
+            per_layer: list[list[list[Finding]]] = []
+            if hooked:
+                groups = _task_groups(checkpoint.layers)
+                done = _map(
+                    pool, some_layers, groups,
+                    lambda group: sum(_parameters(checkpoint, layer) for layer in group),
+                )
+                found = {id(layer): result for group, results in zip(groups, done, strict=True)
+                         for layer, result in zip(group, results, strict=True)}
+                per_layer = [found[id(layer)] for layer in checkpoint.layers]
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())
         # Whole-checkpoint rules scan every layer themselves: one after another, because two

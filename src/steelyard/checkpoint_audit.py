@@ -80,10 +80,10 @@ def _task_groups(layers: Sequence[Layer]) -> list[tuple[Layer, ...]]:
     """The layer tasks of an audit: one per layer, except that the layers whose matrix is too
     large for the cache (embedding, head) form one task, in file order.
 
-    Those layers are streamed, but a rule may still read one whole (a 256,000-row table is
-    1 GB of float32): run one after another they never hold two such working sets at once,
-    while the other workers go on with the small layers (running each of them alone left the
-    other cores idle for a tenth of a 1.3B model's audit). Every layer keeps a one-thread
+    Those layers are streamed by the shared pass, but a rule may still ask for one whole
+    (``untrained-token`` reads the token matrices): run one after another they never hold
+    two such working sets at once, while the other workers go on with the small layers
+    (when each of them ran alone, every other worker waited meanwhile). Every layer keeps a one-thread
     BLAS: with two, OpenBLAS summed float32 products in an order that depended on whether
     the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended on
     ``jobs`` (untrained-token's residuals differed in the 8th digit)."""

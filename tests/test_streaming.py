@@ -243,6 +243,57 @@ def test_layers_too_large_to_cache_give_the_same_report_for_any_jobs(
     assert report(2) == one
 
 
+def test_layers_too_large_to_cache_run_one_at_a_time_beside_the_small_ones(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Two layers over the cache limit must never hold their working sets at once, yet must
+    # not stop the other workers: a rule hook records which layers run at the same moment.
+    # (Common practice, no source: a memory bound for the largest working sets.)
+    import threading
+    import time
+    from dataclasses import replace
+
+    import steelyard.checkpoint_audit as engine
+    from steelyard.rules import registry
+
+    monkeypatch.setattr(engine, "STREAM_BYTES", 2**20)
+    vocab, width = 2048, 256  # 2 MiB of float32 each: over the limit
+    tensors = {
+        "model.embed_tokens.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
+        "lm_head.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
+    }
+    for block in range(6):
+        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
+            rng.standard_normal((128, width)).astype(np.float32) * 0.05
+        )
+    path = write_safetensors(tmp_path / "model.safetensors", tensors)
+    large = {"model.embed_tokens", "lm_head"}
+    running: set[str] = set()
+    seen_together: list[frozenset[str]] = []
+    lock = threading.Lock()
+    spec = registry()["dead-unit"]
+    hook = spec.per_layer
+    assert hook is not None
+
+    def watched(ctx, settings, layer):  # type: ignore[no-untyped-def]
+        with lock:
+            running.add(layer.name)
+            seen_together.append(frozenset(running))
+        time.sleep(0.02)  # long enough for the other worker to start something
+        try:
+            return iter(list(hook(ctx, settings, layer)))
+        finally:
+            with lock:
+                running.discard(layer.name)
+
+    checkpoint = api.load(path)
+    assert {layer.name for layer in checkpoint.layers} >= large
+    run_rules(checkpoint, Policy(), None, {spec.name: replace(spec, per_layer=watched)}, jobs=2)
+    assert all(len(together & large) <= 1 for together in seen_together)
+    # while a large layer ran, the other worker ran small ones
+    assert any(together & large and together - large for together in seen_together)
+
+
 def test_reports_from_the_cli_are_identical_for_any_jobs(
     tmp_path: Path, rng: np.random.Generator
 ) -> None:

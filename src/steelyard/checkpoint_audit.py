@@ -76,21 +76,21 @@ def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
     return sum(tensors[name].size for name in layer.tensor_names if name in tensors)
 
 
-def _task_groups(layers: Sequence[Layer]) -> list[tuple[Layer, ...]]:
-    """The layer tasks of an audit: one per layer, except that the layers whose matrix is too
-    large for the cache (embedding, head) form one task, in file order.
+def _task_groups(layers: Sequence[Layer]) -> list[tuple[int, ...]]:
+    """The layer tasks of an audit, as positions in ``layers``: one per layer, except that the
+    layers whose matrix is too large for the cache (embedding, head) form one task, in file
+    order.
 
     Those layers are streamed by the shared pass, but a rule may still ask for one whole
     (``untrained-token`` reads the token matrices): run one after another they never hold
     two such working sets at once, while the other workers go on with the small layers
-    (when each of them ran alone, every other worker waited meanwhile). Every layer keeps a one-thread
-    BLAS: with two, OpenBLAS summed float32 products in an order that depended on whether
-    the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended on
-    ``jobs`` (untrained-token's residuals differed in the 8th digit)."""
-    large = tuple(layer for layer in layers if 4 * layer.units * layer.fan_in > STREAM_BYTES)
-    chained = {id(layer) for layer in large}
-    small = [(layer,) for layer in layers if id(layer) not in chained]
-    return ([large] if large else []) + small
+    (when each of them ran alone, every other worker waited meanwhile). Every layer keeps a
+    one-thread BLAS: with two, OpenBLAS summed float32 products in an order that depended on
+    whether the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended
+    on ``jobs`` (untrained-token's residuals differed in the 8th digit)."""
+    large = [4 * layer.units * layer.fan_in > STREAM_BYTES for layer in layers]
+    chained = tuple(i for i, is_large in enumerate(large) if is_large)
+    return ([chained] if chained else []) + [(i,) for i, is_large in enumerate(large) if not is_large]
 
 
 def run_rules(
@@ -147,8 +147,8 @@ def run_rules(
             stats.release(layer)
             layer_done(checkpoint.path, round(per_parameter * _parameters(checkpoint, layer)))
 
-    def some_layers(group: tuple[Layer, ...]) -> list[list[list[Finding]]]:
-        return [one_layer(layer) for layer in group]
+    def some_layers(group: tuple[int, ...]) -> list[list[list[Finding]]]:
+        return [one_layer(checkpoint.layers[i]) for i in group]
 
     def whole(spec: RuleSpec) -> list[Finding]:
         rule_settings = settings[spec.name]
@@ -165,16 +165,16 @@ def run_rules(
         # over two cores (a freshly initialised 322M checkpoint took 5.4 s with two workers
         # that way, 3.2 s with one BLAS thread each, and 3.9 s on one worker).
         with blas_threads(1):
-            per_layer: list[list[list[Finding]]] = []
+            per_layer: list[list[list[Finding]]] = [[] for _ in checkpoint.layers]
             if hooked:
                 groups = _task_groups(checkpoint.layers)
                 done = _map(
                     pool, some_layers, groups,
-                    lambda group: sum(_parameters(checkpoint, layer) for layer in group),
+                    lambda group: sum(_parameters(checkpoint, checkpoint.layers[i]) for i in group),
                 )
-                found = {id(layer): result for group, results in zip(groups, done, strict=True)
-                         for layer, result in zip(group, results, strict=True)}
-                per_layer = [found[id(layer)] for layer in checkpoint.layers]
+                for group, outcomes in zip(groups, done, strict=True):
+                    for i, outcome in zip(group, outcomes, strict=True):
+                        per_layer[i] = outcome
             if any(spec.tensor_scan for spec in specs):
                 _map(pool, stats.nonfinite, stats.scan_targets())
         # Whole-checkpoint rules scan every layer themselves: one after another, because two

@@ -35,9 +35,9 @@ from steelyard.cli_options import (
     budget_option,
     enum_option,
     fail_on_option,
-    listed,
     output_option,
     output_targets,
+    paths_argument,
     policy_option,
     quiet_option,
     report_format_option,
@@ -309,15 +309,7 @@ def _render(report: Report, chosen: AuditFormat) -> str:
 
 
 @app.command()
-@click.argument(
-    "paths",
-    cls=HelpArgument,
-    type=PATH,
-    nargs=-1,
-    required=True,
-    callback=listed,
-    help="Checkpoint files, shard indexes, or folders.",
-)
+@paths_argument("Checkpoint files, shard indexes, or folders.")
 @click.option(
     "--grads", type=PATH, help="Sidecar file of per-weight gradient statistics (same tensor names)."
 )
@@ -529,15 +521,7 @@ def policy(init: bool, show: bool, policy_file: Path | None, force: bool) -> Non
 
 
 @app.command()
-@click.argument(
-    "paths",
-    cls=HelpArgument,
-    type=PATH,
-    nargs=-1,
-    required=True,
-    callback=listed,
-    help="The run's checkpoints, or the run folder.",
-)
+@paths_argument("The run's checkpoints, or the run folder.")
 @enum_option("--order", kind=Order, default=Order.step, help="By training step, name or as given.")
 @timeline_format_option
 @output_option

@@ -132,6 +132,13 @@ class Group(click.Group):
         return list(self.commands)
 
 
+def paths_argument(help: str) -> Callable[[_F], _F]:
+    """The required, repeatable ``PATHS...`` argument: the command receives a list of paths."""
+    return click.argument(
+        "paths", cls=HelpArgument, type=PATH, nargs=-1, required=True, callback=listed, help=help
+    )
+
+
 def _format_option(kind: type[Enum]) -> Callable[[_F], _F]:
     """``--format`` of a command that writes reports (unset: the ``--output`` endings decide,
     else the table)."""

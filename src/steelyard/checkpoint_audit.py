@@ -23,7 +23,6 @@ from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
 from steelyard.rules.base import RuleMeasurements, RuleNotes
 from steelyard.rules.engine import apply_policy
 from steelyard.stats import STREAM_BYTES, LayerStats
-from steelyard.stats.spread import norm_spread
 
 _HASH_CHUNK = 8 * 2**20
 
@@ -102,6 +101,7 @@ def run_rules(
     notes: RuleNotes | None = None,
     stats: LayerStats | None = None,
     measurements: RuleMeasurements | None = None,
+    pool: ThreadPoolExecutor | None = None,
 ) -> tuple[list[Finding], list[Suppressed], LayerStats]:
     """Every rule's findings that the policy keeps (policy severities applied), the findings
     the policy's ignore entries silenced, and the statistics. What rules could not do goes to
@@ -115,6 +115,7 @@ def run_rules(
     two of them never hold their working sets at once; numpy, BLAS, file reads and hashing
     release the GIL in the heavy loops, so threads rather than processes. The findings are
     collected in the same order as with one, so the report does not depend on ``jobs``.
+    ``pool`` (of ``jobs`` threads) is the caller's when it has work of its own on it.
     """
     # A comparison passes the statistics it measures change from, so each layer is read once.
     stats = stats if stats is not None else LayerStats(checkpoint)
@@ -142,6 +143,8 @@ def run_rules(
                 # A rule never runs where the policy switched it off.
                 enabled = rule_settings.enabled(layer)
                 out.append(list(spec.per_layer(context, rule_settings, layer)) if enabled else [])
+            # The report row's norm summary, here so that it runs on the workers too.
+            stats.spread(layer)
             return out
         finally:
             stats.release(layer)
@@ -158,7 +161,9 @@ def run_rules(
         # ``finish`` always runs: it may report what the rule could not do (a note).
         return list(spec.finish(context, rule_settings)) if spec.finish else []
 
-    pool = ThreadPoolExecutor(max_workers=jobs) if jobs > 1 else None
+    own = pool is None and jobs > 1
+    if own:
+        pool = ThreadPoolExecutor(max_workers=jobs)
     try:
         # One BLAS thread per worker: the workers already keep every core busy, and two BLAS
         # calls that each start a thread per core from two workers make four threads fight
@@ -181,7 +186,7 @@ def run_rules(
         # at once hold two working sets while BLAS already keeps every core busy.
         rest = [whole(spec) for spec in specs]
     finally:
-        if pool is not None:
+        if own and pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
 
     findings: list[Finding] = []
@@ -218,7 +223,7 @@ def _health(
     graded: bool,
     measured: RuleMeasurements,
 ) -> LayerHealth:
-    spread = norm_spread(stats.row_norms(layer))
+    spread = stats.spread(layer)
     # A column no rule of this run fills is empty: None where the report allows it, else 0.
     columns: dict[str, Any] = {
         f.name: None if "None" in str(f.type) else 0 for f in _RULE_FILLED
@@ -254,12 +259,15 @@ def audit_checkpoint(
     notes = RuleNotes()
     measured = RuleMeasurements()
     if jobs > 1:
-        # Hashing is a sequential pass over every byte; with a spare thread it overlaps the
-        # rules instead of adding to them (hashlib releases the GIL on large updates).
-        with ThreadPoolExecutor(max_workers=1) as hasher:
-            digest = hasher.submit(sha256_of, files)
+        # Hashing is a sequential pass over every byte: the first task of the workers, so it
+        # overlaps the rules (hashlib releases the GIL on large updates) without a thread of
+        # its own. On two cores a third thread cost more than it overlapped: the 20M bf16
+        # benchmark took 74-87 ms with two rule workers beside a hashing thread, 70-71 ms
+        # with one (docs/performance.md, "Fifth session").
+        with ThreadPoolExecutor(max_workers=jobs) as pool:
+            digest = pool.submit(sha256_of, files)
             findings, suppressed, stats = run_rules(
-                checkpoint, policy, gradients, rules, jobs, notes, stats, measured
+                checkpoint, policy, gradients, rules, jobs, notes, stats, measured, pool
             )
             sha256 = digest.result()
     else:

@@ -14,6 +14,7 @@ severity, ``[[override]]`` and ``[[ignore]]``: a rule only measures and reports.
 from __future__ import annotations
 
 import dataclasses
+import functools
 import threading
 import typing
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -90,8 +91,10 @@ def policy_key(field_name: str) -> str:
     return field_name.replace("_", "-")
 
 
+@functools.cache
 def schema_of(record: type[Any]) -> tuple[SettingSchema, ...]:
-    """The policy keys of a settings record, in declaration order."""
+    """The policy keys of a settings record, in declaration order (cached: every audit
+    resolves every rule's settings, and ``typing.get_type_hints`` costs 0.2-0.3 ms a call)."""
     hints = typing.get_type_hints(record)
     out: list[SettingSchema] = []
     for item in dataclasses.fields(record):

@@ -54,6 +54,7 @@ from steelyard.stats.nonfinite import Counts, NonfiniteCounts, NonfiniteScan, sc
 from steelyard.stats.numerics import row_norms, sums_of_squares
 from steelyard.stats.passes import WeightPasses
 from steelyard.stats.reading import locked, read_float32, read_stored
+from steelyard.stats.spread import NormSpread, norm_spread
 from steelyard.stats.topology import Topology
 from steelyard.streaming import CHUNK_BYTES
 
@@ -185,6 +186,10 @@ class LayerStats:
         return self._memoized(
             layer, "rows", lambda: np.sqrt(self._passes.summary(layer).row_squares)
         )
+
+    def spread(self, layer: Layer) -> NormSpread:
+        """The summary of the units' norms every report row carries (see :func:`.spread.norm_spread`)."""
+        return self._memoized(layer, "spread", lambda: norm_spread(self.row_norms(layer)))
 
     def fold_scale(self, layer: Layer) -> np.ndarray | None:
         """a_j = γ_j/sqrt(var_j+ε) of the batch norm folded into ``layer`` (float32), or None

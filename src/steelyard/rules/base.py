@@ -14,7 +14,6 @@ severity, ``[[override]]`` and ``[[ignore]]``: a rule only measures and reports.
 from __future__ import annotations
 
 import dataclasses
-import functools
 import threading
 import typing
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -91,10 +90,20 @@ def policy_key(field_name: str) -> str:
     return field_name.replace("_", "-")
 
 
-@functools.cache
+#: Settings record → its schema: every audit resolves every rule's settings, and
+#: ``typing.get_type_hints`` costs 0.2-0.3 ms a call.
+_SCHEMAS: dict[type[Any], tuple[SettingSchema, ...]] = {}
+
+
 def schema_of(record: type[Any]) -> tuple[SettingSchema, ...]:
-    """The policy keys of a settings record, in declaration order (cached: every audit
-    resolves every rule's settings, and ``typing.get_type_hints`` costs 0.2-0.3 ms a call)."""
+    """The policy keys of a settings record, in declaration order."""
+    found = _SCHEMAS.get(record)
+    if found is None:
+        found = _SCHEMAS[record] = _schema(record)
+    return found
+
+
+def _schema(record: type[Any]) -> tuple[SettingSchema, ...]:
     hints = typing.get_type_hints(record)
     out: list[SettingSchema] = []
     for item in dataclasses.fields(record):

@@ -15,6 +15,7 @@ from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import checkpoint_block, layer_block, stored_type_of
+from steelyard.page_advice import small_pages
 from steelyard.policy import Policy
 from steelyard.progress_events import layer_done
 from steelyard.ranking import rank, rank_key
@@ -255,6 +256,18 @@ def audit_checkpoint(
 ) -> CheckpointAudit:
     """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it),
     reading through ``stats`` when given (their checkpoint must be ``checkpoint``)."""
+    with small_pages():
+        return _audit(checkpoint, policy, gradients, rules, jobs, stats)
+
+
+def _audit(
+    checkpoint: Checkpoint,
+    policy: Policy,
+    gradients: GradientSource | None,
+    rules: dict[str, RuleSpec] | None,
+    jobs: int,
+    stats: LayerStats | None,
+) -> CheckpointAudit:
     files = checkpoint.files or (checkpoint.path,)
     notes = RuleNotes()
     measured = RuleMeasurements()

@@ -12,12 +12,13 @@ runs, each in a fresh child process, (1) the baseline: every tensor read with th
 ``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Each child
 makes one untimed warm-up call first (module imports done lazily on first use, page cache),
 then times the second call; peak memory is the child's VmHWM, warm-up included.
-The ratio is median audit time / median baseline time of the same run.
+The ratio is median audit time / median baseline time of the same run. Each child then
+times five more calls; their median is printed as the steady state (warm allocator).
 
 A third child per round runs the audit with ``twin-units`` and ``untrained-layer`` disabled
 by policy (``core``), separating the shared pass and the other rules from those two.
 
-Targets: ratio < 5; peak memory (VmHWM − resident set after imports) < 3 × the largest
+Targets: ratio <= 3 (issue 18; an earlier issue asked for < 5); peak memory (VmHWM − resident set after imports) < 3 × the largest
 tensor + 200 MiB. The share of each rule is measured in one more child that times every
 rule's hooks and whole-checkpoint checks on one thread.
 """
@@ -30,6 +31,7 @@ import statistics
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 from _common import (
@@ -48,6 +50,17 @@ from _common import (
 SHAPE = Shape(vocab=8000, hidden=512, intermediate=1408, layers=4)
 
 
+def _steady(call: Callable[[], object], times: int = 5) -> float:
+    """Median seconds of ``times`` more calls in the same process: the allocator's pools and
+    the worker threads' arenas are warm by then, unlike in the first timed call."""
+    seconds = []
+    for _ in range(times):
+        start = time.perf_counter()
+        call()
+        seconds.append(time.perf_counter() - start)
+    return statistics.median(seconds)
+
+
 def child(mode: str, path: str, jobs: str) -> None:
     if mode == "baseline":
         import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
@@ -59,7 +72,7 @@ def child(mode: str, path: str, jobs: str) -> None:
             tensors = load_file(path)
             seconds = time.perf_counter() - seconds
             del tensors
-        emit({"seconds": seconds, **probe.report()})
+        emit({"seconds": seconds, "steady": _steady(lambda: load_file(path)), **probe.report()})
     elif mode in ("audit", "core"):
         from steelyard.api import audit
         from steelyard.policy import Policy
@@ -73,7 +86,8 @@ def child(mode: str, path: str, jobs: str) -> None:
             seconds = time.perf_counter()
             report = audit(path, policy=policy, jobs=int(jobs) if jobs != "default" else None)
             seconds = time.perf_counter() - seconds
-        emit({"seconds": seconds, "findings": len(report.audits[0].findings), **probe.report()})
+        steady = _steady(lambda: audit(path, policy=policy, jobs=int(jobs) if jobs != "default" else None))
+        emit({"seconds": seconds, "steady": steady, "findings": len(report.audits[0].findings), **probe.report()})
     elif mode == "shares":
         emit(rule_shares(path))
 
@@ -123,7 +137,13 @@ def main() -> None:
             f"full audit (jobs {args.jobs}): median {t_full * 1e3:.1f} ms, "
             f"peak {mib(peak)} (anonymous {mib(anon)}), findings {full[0]['findings']}"
         )
-        print(f"ratio {ratio:.2f} (target < 5): {'ok' if ratio < 5 else 'OVER'}")
+        print(f"ratio {ratio:.2f} (target <= 3): {'ok' if ratio <= 3 else 'OVER'}")
+        s_base = statistics.median(r["steady"] for r in base)
+        s_full = statistics.median(r["steady"] for r in full)
+        print(
+            f"steady state (median of 5 more calls in each child): audit {s_full * 1e3:.1f} ms, "
+            f"load_file {s_base * 1e3:.1f} ms, ratio {s_full / s_base:.2f}"
+        )
         print(
             f"core audit (twin-units and untrained-layer off): median {t_core * 1e3:.1f} ms, "
             f"ratio {t_core / t_base:.2f}, peak {mib(core_peak)}"
@@ -137,7 +157,7 @@ def main() -> None:
         print("time per rule on one thread (data loads charged to the first rule asking):")
         for name, seconds in sorted(shares.items(), key=lambda kv: -kv[1]):
             print(f"  {name:<24}{seconds * 1e3:9.1f} ms  {100 * seconds / total:5.1f} %")
-        if ratio >= 5 or peak >= limit:
+        if ratio > 3 or peak >= limit:
             sys.exit(1)
     finally:
         shutil.rmtree(folder, ignore_errors=True)

@@ -18,8 +18,9 @@ singular vectors ``v_1..v_k`` of the centred matrix, each token is tested, first
    token initialised at zero, or a padding row);
 2. **at the mean**: ``‖c_i‖ ≤ mean-distance × median_i ‖c_i‖`` (mean-distance 0.05): a row left where
    resizing the vocabulary with mean initialisation put it;
-3. **identical rows**: rows bit-for-bit equal to another token's row (found by hashing a
-   random projection and confirmed exactly): two tokens that were never trained apart;
+3. **identical rows**: rows bit-for-bit equal to another token's row (candidates are rows
+   whose norms agree to float32 rounding, each confirmed exactly): two tokens that were never
+   trained apart;
 4. **under-trained (low residual)**: ``r_i ≤ residual-share × median_i r_i``
    (residual-share 0.5), where ``r_i = ‖c_i − Σ_k (c_i·v_k) v_k‖`` is what is left of the
    row once the mean and the principal direction(s) shared by all rows are removed.

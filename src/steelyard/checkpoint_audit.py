@@ -15,7 +15,6 @@ from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
 from steelyard.inventory import checkpoint_block, layer_block, stored_type_of
-from steelyard.page_advice import small_pages
 from steelyard.policy import Policy
 from steelyard.progress_events import layer_done
 from steelyard.ranking import rank, rank_key
@@ -256,27 +255,15 @@ def audit_checkpoint(
 ) -> CheckpointAudit:
     """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it),
     reading through ``stats`` when given (their checkpoint must be ``checkpoint``)."""
-    with small_pages():
-        return _audit(checkpoint, policy, gradients, rules, jobs, stats)
-
-
-def _audit(
-    checkpoint: Checkpoint,
-    policy: Policy,
-    gradients: GradientSource | None,
-    rules: dict[str, RuleSpec] | None,
-    jobs: int,
-    stats: LayerStats | None,
-) -> CheckpointAudit:
     files = checkpoint.files or (checkpoint.path,)
     notes = RuleNotes()
     measured = RuleMeasurements()
     if jobs > 1:
         # Hashing is a sequential pass over every byte: the first task of the workers, so it
         # overlaps the rules (hashlib releases the GIL on large updates) without a thread of
-        # its own. On two cores a third thread cost more than it overlapped: the 20M bf16
-        # benchmark took 74-87 ms with two rule workers beside a hashing thread, 70-71 ms
-        # with one (docs/performance.md, "Fifth session").
+        # its own. On two cores a third thread cost more than it overlapped (300m, i.i.d.
+        # weights: 1.29 s with a hashing thread, 1.14 s without; peak RSS 371 -> 232 MiB;
+        # docs/performance.md, section D, "Fifth session").
         with ThreadPoolExecutor(max_workers=jobs) as pool:
             digest = pool.submit(sha256_of, files)
             findings, suppressed, stats = run_rules(

@@ -18,9 +18,10 @@ times five more calls; their median is printed as the steady state (warm allocat
 A third child per round runs the audit with ``twin-units`` and ``untrained-layer`` disabled
 by policy (``core``), separating the shared pass and the other rules from those two.
 
-Targets: ratio <= 3 (issue 18; an earlier issue asked for < 5); peak memory (VmHWM − resident set after imports) < 3 × the largest
-tensor + 200 MiB. The share of each rule is measured in one more child that times every
-rule's hooks and whole-checkpoint checks on one thread.
+Targets: ratio <= 3 (issue 18; an earlier issue asked for < 5); peak memory (VmHWM −
+resident set after imports) < 3 × the largest tensor + 200 MiB. The share of each rule is
+measured in one more child that times every rule's hooks and whole-checkpoint checks on one
+thread.
 """
 
 from __future__ import annotations
@@ -81,13 +82,15 @@ def child(mode: str, path: str, jobs: str) -> None:
         policy = (
             Policy(rules={"twin-units": off, "untrained-layer": off}) if mode == "core" else None
         )
+        count = int(jobs) if jobs != "default" else None
         audit(path, policy=policy, jobs=1)  # warm-up: lazy imports of loaders and rules
         with MemoryProbe() as probe:
             seconds = time.perf_counter()
-            report = audit(path, policy=policy, jobs=int(jobs) if jobs != "default" else None)
+            report = audit(path, policy=policy, jobs=count)
             seconds = time.perf_counter() - seconds
-        steady = _steady(lambda: audit(path, policy=policy, jobs=int(jobs) if jobs != "default" else None))
-        emit({"seconds": seconds, "steady": steady, "findings": len(report.audits[0].findings), **probe.report()})
+        steady = _steady(lambda: audit(path, policy=policy, jobs=count))
+        found = len(report.audits[0].findings)
+        emit({"seconds": seconds, "steady": steady, "findings": found, **probe.report()})
     elif mode == "shares":
         emit(rule_shares(path))
 

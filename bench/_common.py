@@ -421,11 +421,12 @@ def mib(value: float) -> str:
     return f"{value / MIB:,.0f} MiB"
 
 
-def rule_shares(path: str, policy: Any = None) -> dict[str, float]:
+def rule_shares(path: str, policy: Any = None, digest: str = "blake3") -> dict[str, float]:
     """Seconds per rule on one thread under ``policy`` (default: every rule at its defaults):
     hooks timed per layer, data loads charged to the first rule that asks for them, as in a
-    real run; then the SHA-256 of the files. ``bench/audit_speed.py`` and
-    ``bench/families.py`` both report it."""
+    real run; then the files' identity digest with ``digest`` (the audit's default, BLAKE3),
+    labelled by its algorithm. ``bench/audit_speed.py`` and ``bench/families.py`` both
+    report it."""
     from steelyard.api import load
     from steelyard.rules import registry
 
@@ -434,12 +435,12 @@ def rule_shares(path: str, policy: Any = None) -> dict[str, float]:
     # A first, untimed pass: it pays lazy imports, first reads and first allocations, which
     # are not what a layer costs (21M bf16: dead-unit 86 -> 21 ms, untrained-token 52 -> 27 ms
     # on the second pass).
-    _one_pass(checkpoint, specs, policy)
-    return _one_pass(checkpoint, specs, policy)
+    _one_pass(checkpoint, specs, policy, digest)
+    return _one_pass(checkpoint, specs, policy, digest)
 
 
-def _one_pass(checkpoint: Any, specs: list[Any], policy: Any) -> dict[str, float]:
-    from steelyard.checkpoint_audit import sha256_of
+def _one_pass(checkpoint: Any, specs: list[Any], policy: Any, digest: str) -> dict[str, float]:
+    from steelyard.checkpoint_audit import digest_of
     from steelyard.policy import Policy
     from steelyard.rules import AuditContext, RuleSettings
     from steelyard.stats import LayerStats
@@ -465,6 +466,6 @@ def _one_pass(checkpoint: Any, specs: list[Any], policy: Any) -> dict[str, float
             list(spec.finish(ctx, settings[spec.name]))
         spent[spec.name] += time.perf_counter() - start
     start = time.perf_counter()
-    sha256_of(checkpoint.files or (checkpoint.path,))
-    spent["(sha256 of the files)"] = time.perf_counter() - start
+    digest_of(checkpoint.files or (checkpoint.path,), digest)
+    spent[f"({digest} of the files)"] = time.perf_counter() - start
     return spent

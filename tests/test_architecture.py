@@ -197,7 +197,7 @@ def test_start_up_imports_no_heavy_format_library() -> None:
 
 #: What ``pip install steelyard`` installs (pyproject's dependencies), by import name.
 RUNTIME = {"numpy", "h5py", "safetensors", "onnx", "rich", "click", "ml_dtypes", "typing_extensions",
-           "threadpoolctl", "tomli"}
+           "threadpoolctl", "tomli", "blake3"}
 #: The extras' packages (pyproject's optional-dependencies), by import name: imported only
 #: inside the functions that need them, never when a module is imported.
 EXTRAS = {"gguf", "tokenizers", "jinja2", "markupsafe", "vl_convert"}

@@ -52,7 +52,8 @@ def test_audit_json_schema(unhealthy_file: Path) -> None:
     result = runner.invoke(app, ["audit", str(unhealthy_file), "--format", "json"])
     document = json.loads(result.stdout)
     assert document["schema"] == "steelyard.audit/1"
-    assert len(document["checkpoint"]["sha256"]) == 64
+    # The default identity is BLAKE3 (256-bit: 64 hex digits), and no SHA-256 beside it.
+    assert len(document["checkpoint"]["blake3"]) == 64 and "sha256" not in document["checkpoint"]
     rules = [f["rule"] for f in document["findings"]]
     assert {"nonfinite", "dead-unit", "fan-in-norm"} <= set(rules)
     severities = [f["severity"] for f in document["findings"]]

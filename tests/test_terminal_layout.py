@@ -375,8 +375,8 @@ def test_the_summary_names_every_failure(models: dict[str, Path], tmp_path: Path
 def test_the_hash_has_its_own_label_and_the_histogram_a_legend(runs: dict[tuple[str, int], Run]) -> None:
     for width in WIDTHS:
         run = runs["demo", width]
-        digest = _audits(run)[0]["checkpoint"]["sha256"]  # type: ignore[index]
-        assert f"sha256      {digest}" in run.lines
+        digest = _audits(run)[0]["checkpoint"]["blake3"]  # type: ignore[index]
+        assert f"blake3      {digest}" in run.lines
         legend = " ".join(run.lines[run.lines.index(next(x for x in run.lines if x.startswith("min, median"))) :])
         assert "histogram:" in legend and "log-spaced from min (left) to max (right)" in legend
 

@@ -19,6 +19,7 @@ from steelyard import budget as _budget
 from steelyard import discovery
 from steelyard.budget import Budget
 from steelyard.checkpoint_audit import audit_checkpoint, default_jobs
+from steelyard.digest import DEFAULT_DIGEST, digest_named
 from steelyard.discovery import Plan
 from steelyard.errors import LoadError, PolicyError, SteelyardError, UnreadableTensor
 from steelyard.findings import FailOn
@@ -102,12 +103,15 @@ def audit_one(
     grads_kind: GradsKind = GradsKind.RMS,
     jobs: int | None = None,
     budget: Budget | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> CheckpointAudit:
-    """Load and audit one checkpoint (``jobs`` threads, default: the machine's cores)."""
+    """Load and audit one checkpoint (``jobs`` threads, default: the machine's cores; the
+    files' ``digest``, ``blake3`` or ``sha256``, in the checkpoint block)."""
+    algorithm = digest_named(digest).value
     with _limits(budget, policy):
         checkpoint = _load(path)
         source = gradient_source(checkpoint, grads, grads_kind)
-        return _audited(checkpoint, policy, source, _jobs(jobs))
+        return _audited(checkpoint, policy, source, _jobs(jobs), algorithm)
 
 
 def plan(
@@ -166,6 +170,7 @@ def audit_many(
     unreadable_fails_gate: bool = False,
     budget: Budget | None = None,
     base: str | Path | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> Report:
     """Audit several checkpoints (files, shard indexes, folders) under one gate.
 
@@ -178,8 +183,11 @@ def audit_many(
     LoRA/DoRA adapter of the run is audited merged onto that base model (the other
     checkpoints as they are); a base that no adapter of the run uses is an input error.
     ``policy`` is resolved by :func:`policy_in_force` (by default, the project's policy file,
-    as the CLI finds it).
+    as the CLI finds it). ``digest`` names the content hash of each checkpoint's identity:
+    ``blake3`` (the default) or ``sha256`` (to match digests that registries and manifests
+    publish); any other value is a :class:`~steelyard.errors.SteelyardError`.
     """
+    algorithm = digest_named(digest).value
     chosen = policy_in_force(policy)
     with _limits(budget, chosen):
         return _audit_many(
@@ -190,6 +198,7 @@ def audit_many(
             on_checkpoint,
             jobs,
             unreadable_fails_gate,
+            algorithm,
         )
 
 
@@ -210,6 +219,7 @@ def _audit_many(
     on_checkpoint: Callable[[str], None] | None,
     jobs: int | None,
     unreadable_fails_gate: bool,
+    digest: str,
 ) -> Report:
     grads, grads_kind = sides.grads, sides.grads_kind
     run = paths if isinstance(paths, Plan) else plan(paths, grads, sides.base)
@@ -228,7 +238,9 @@ def _audit_many(
             on_checkpoint(str(path))
         try:
             checkpoint, merged = _target(path, base)
-            audit, used = _audit_target(checkpoint, chosen, sidecar, grads_kind, workers, run)
+            audit, used = _audit_target(
+                checkpoint, chosen, sidecar, grads_kind, workers, run, digest
+            )
         except LoadError as error:
             errors.append(InputError(str(error.path), error.reason))
             continue
@@ -285,27 +297,32 @@ def _audit_target(
     grads_kind: GradsKind,
     jobs: int,
     run: Plan,
+    digest: str,
 ) -> tuple[CheckpointAudit, bool]:
     """One checkpoint's audit, and whether the sidecar gave it support."""
     if sidecar is None:
-        return _audited(checkpoint, policy, optimizer_source(checkpoint), jobs), False
+        return _audited(checkpoint, policy, optimizer_source(checkpoint), jobs, digest), False
     try:
         source = sidecar_source(sidecar.path, grads_kind, sidecar, checkpoint)
     except LoadError:
         if len(run.targets) == 1:
             raise
         # Several checkpoints: the sidecar was made for another one of them.
-        audit = _audited(checkpoint, policy, optimizer_source(checkpoint), jobs)
+        audit = _audited(checkpoint, policy, optimizer_source(checkpoint), jobs, digest)
         note = f"gradient sidecar {sidecar.path} matches no layer of this checkpoint; not used"
         return replace(audit, notes=(*audit.notes, note)), False
-    return _audited(checkpoint, policy, source, jobs), True
+    return _audited(checkpoint, policy, source, jobs, digest), True
 
 
 def _audited(
-    checkpoint: Checkpoint, policy: Policy, source: GradientSource | None, jobs: int
+    checkpoint: Checkpoint,
+    policy: Policy,
+    source: GradientSource | None,
+    jobs: int,
+    digest: str,
 ) -> CheckpointAudit:
     try:
-        return audit_checkpoint(checkpoint, policy, source, jobs=jobs)
+        return audit_checkpoint(checkpoint, policy, source, jobs=jobs, digest=digest)
     except UnreadableTensor as exc:
         raise _unreadable(checkpoint.path, exc) from exc
     except (MemoryError, RecursionError) as exc:
@@ -340,6 +357,7 @@ def audit(
     *,
     fail_on: str | FailOn | None = None,
     baseline: str | Path | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> Report:
     """Audit checkpoints as ``steelyard audit`` does: ``report.passed`` is the gate,
     ``report.to_json()`` the document.
@@ -356,7 +374,11 @@ def audit(
         fail_on: the gate, overriding the policy's (``error``, ``warning``, ``info``,
             ``never``), as ``--fail-on`` does.
         baseline: an earlier baseline file or JSON report: findings in it are reported but
-            not gated on, as ``--baseline`` does.
+            not gated on, as ``--baseline`` does (baselines match findings by checkpoint path
+            and finding id, never by the file digest).
+        digest: the content hash of each checkpoint's identity, as ``--digest``: ``blake3``
+            (the default) or ``sha256`` (to match digests that registries and manifests
+            publish); the checkpoint block carries it under that name.
 
     Returns:
         The :class:`~steelyard.report.Report` of the run.
@@ -365,7 +387,9 @@ def audit(
         LoadError: when ``path`` is one file and it cannot be read (in a folder or a list,
             each checkpoint gets its own result instead: see :func:`audit_many`).
         PolicyError: for a broken policy file or an unknown ``fail_on``.
+        SteelyardError: for an unknown ``digest``.
     """
+    algorithm = digest_named(digest).value
     chosen = policy_in_force(policy)
     if fail_on is not None:
         try:
@@ -383,6 +407,7 @@ def audit(
         jobs=jobs,
         budget=budget,
         base=base,
+        digest=algorithm,
     )
     if single and report.errors and not report.audits and not Path(paths[0]).is_dir():
         error = report.errors[0]
@@ -400,6 +425,7 @@ def compare(
     policy: Policy | str | Path | None = None,
     created: str | None = None,
     budget: Budget | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> CompareReport:
     """Compare two checkpoints: ``report.passed`` is the gate, ``report.to_json()`` the
     ``steelyard.compare/1`` document.
@@ -410,6 +436,8 @@ def compare(
         policy: resolved by :func:`policy_in_force` (by default, the project's policy file).
         created: the run's timestamp for the report (default: ``SOURCE_DATE_EPOCH`` or now).
         budget: what reading may cost (see :mod:`steelyard.budget`).
+        digest: the content hash of both checkpoints' identities, ``blake3`` (the default)
+            or ``sha256``, as ``--digest``.
 
     Returns:
         The :class:`~steelyard.comparison.report.CompareReport`.
@@ -417,16 +445,18 @@ def compare(
     Raises:
         LoadError: when either checkpoint cannot be read.
         PolicyError: for a broken policy file.
+        SteelyardError: for an unknown ``digest``.
     """
     from steelyard.comparison import compare_checkpoints
     from steelyard.comparison.report import CompareReport
 
+    algorithm = digest_named(digest).value
     chosen = policy_in_force(policy)
     with _limits(budget, chosen):
         before = _load(old)
         after = _load(new)
         try:
-            comparison = compare_checkpoints(before, after, chosen)
+            comparison = compare_checkpoints(before, after, chosen, digest=algorithm)
         except UnreadableTensor as exc:
             raise _unreadable(f"{before.path} or {after.path}", exc) from exc
         except (MemoryError, RecursionError) as exc:
@@ -449,6 +479,7 @@ def timeline(
     on_checkpoint: Callable[[str], None] | None = None,
     jobs: int | None = None,
     budget: Budget | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> Timeline:
     """Follow one training run's checkpoints as ``steelyard timeline`` does: each audited
     once, per layer the fan-in norms, dead units, non-finite values and drift, and for each
@@ -465,14 +496,16 @@ def timeline(
         on_checkpoint: called with each checkpoint's path before it is read (progress).
         jobs: worker threads per checkpoint's audit.
         budget: what reading may cost (see :mod:`steelyard.budget`).
+        digest: the content hash of each checkpoint's identity, ``blake3`` (the default) or
+            ``sha256``, as ``--digest``.
 
     Returns:
         The :class:`~steelyard.run_timeline.result.Timeline`.
 
     Raises:
         LoadError: when a checkpoint cannot be read.
-        SteelyardError: for fewer than two checkpoints, an unknown ``order``, or checkpoints
-            that share no layer.
+        SteelyardError: for fewer than two checkpoints, an unknown ``order`` or ``digest``,
+            or checkpoints that share no layer.
     """
     from steelyard.run_timeline.engine import RunSettings, build_timeline
     from steelyard.run_timeline.ordering import Order, arrange
@@ -481,6 +514,7 @@ def timeline(
         chosen_order = Order(order)
     except ValueError:
         raise SteelyardError(f"order {order!r}: use step, name or given") from None
+    algorithm = digest_named(digest).value
     chosen = policy_in_force(policy)
     with _limits(budget, chosen):
         named = [paths] if isinstance(paths, (str, Path)) else list(paths)
@@ -491,6 +525,6 @@ def timeline(
                 f"{where}: a timeline needs at least two checkpoints, found {len(placed)}"
             )
         settings = RunSettings(
-            chosen, chosen_order.value, created or now(), _jobs(jobs), tuple(notes)
+            chosen, chosen_order.value, created or now(), _jobs(jobs), tuple(notes), algorithm
         )
         return build_timeline(placed, settings, on_checkpoint)

@@ -7,10 +7,11 @@ import os
 from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import fields
-from typing import Any, TypeVar
+from typing import Any, Protocol, TypeVar
 
 from steelyard.blas import blas_threads
 from steelyard.coverage import coverage_of
+from steelyard.digest import DEFAULT_DIGEST, Digest, digest_named
 from steelyard.findings import Finding
 from steelyard.gradients import GradientSource
 from steelyard.graph import Checkpoint, Layer
@@ -30,16 +31,36 @@ T = TypeVar("T")
 R = TypeVar("R")
 
 
-def sha256_of(files: Iterable[str]) -> str:
-    """SHA-256 over the bytes of every file of the checkpoint, in order."""
-    digest = hashlib.sha256()
+class _Hasher(Protocol):
+    """What :func:`digest_of` needs of a hash object (hashlib's and blake3's both have it)."""
+
+    def update(self, data: memoryview, /) -> object: ...
+
+    def hexdigest(self) -> str: ...
+
+
+def digest_of(files: Iterable[str], algorithm: str = DEFAULT_DIGEST.value) -> str:
+    """The hex digest of the bytes of every file of the checkpoint, in order, with
+    ``algorithm`` (``blake3``, the default, or ``sha256``; see :mod:`steelyard.digest`).
+
+    BLAKE3 runs with the package's default settings, on the calling thread: the audit
+    already overlaps hashing with its rule workers, so its own threads (``max_threads``)
+    would only compete with them. Both libraries release the GIL on large updates."""
+    hasher: _Hasher
+    if digest_named(algorithm) is Digest.BLAKE3:
+        # Imported here: start-up (``--version``, ``rules``) never pays for it.
+        import blake3
+
+        hasher = blake3.blake3()
+    else:
+        hasher = hashlib.sha256()
     # One reused buffer: a fresh 8 MiB bytes object per read costs page faults each time.
     buffer = memoryview(bytearray(_HASH_CHUNK))
     for name in files:
         with open(name, "rb", buffering=0) as handle:
             while count := handle.readinto(buffer):
-                digest.update(buffer[:count])
-    return digest.hexdigest()
+                hasher.update(buffer[:count])
+    return hasher.hexdigest()
 
 
 def default_jobs() -> int:
@@ -252,33 +273,37 @@ def audit_checkpoint(
     rules: dict[str, RuleSpec] | None = None,
     jobs: int = 1,
     stats: LayerStats | None = None,
+    digest: str = DEFAULT_DIGEST.value,
 ) -> CheckpointAudit:
     """Audit one loaded checkpoint (``jobs`` worker threads; the result does not depend on it),
-    reading through ``stats`` when given (their checkpoint must be ``checkpoint``)."""
+    reading through ``stats`` when given (their checkpoint must be ``checkpoint``). The
+    checkpoint block carries the files' ``digest`` (``blake3`` or ``sha256``) under that
+    algorithm's name."""
+    algorithm = digest_named(digest).value
     files = checkpoint.files or (checkpoint.path,)
     notes = RuleNotes()
     measured = RuleMeasurements()
     if jobs > 1:
         # Hashing is a sequential pass over every byte: the first task of the workers, so it
-        # overlaps the rules (hashlib releases the GIL on large updates) without a thread of
-        # its own. On two cores a third thread cost more than it overlapped (300m, i.i.d.
-        # weights: 1.29 s with a hashing thread, 1.14 s without; peak RSS 371 -> 232 MiB;
-        # docs/performance.md, section D, "Fifth session").
+        # overlaps the rules (hashlib and blake3 release the GIL on large updates) without a
+        # thread of its own. On two cores a third thread cost more than it overlapped (300m,
+        # i.i.d. weights: 1.29 s with a hashing thread, 1.14 s without; peak RSS 371 -> 232
+        # MiB; docs/performance.md, section D, "Fifth session").
         with ThreadPoolExecutor(max_workers=jobs) as pool:
-            digest = pool.submit(sha256_of, files)
+            hashing = pool.submit(digest_of, files, algorithm)
             findings, suppressed, stats = run_rules(
                 checkpoint, policy, gradients, rules, jobs, notes, stats, measured, pool
             )
-            sha256 = digest.result()
+            identity = hashing.result()
     else:
         findings, suppressed, stats = run_rules(
             checkpoint, policy, gradients, rules, 1, notes, stats, measured
         )
-        sha256 = sha256_of(files)
+        identity = digest_of(files, algorithm)
     ranked = rank(findings)
     specs = list((rules or registry()).values())
     block = dict(checkpoint_block(checkpoint))
-    block["sha256"] = sha256
+    block[algorithm] = identity
     block["files"] = list(files)
     health = tuple(
         _health(layer, stats, findings, specs, gradients is not None, measured)

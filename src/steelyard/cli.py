@@ -33,6 +33,7 @@ from steelyard.cli_options import (
     TimelineFormat,
     Unreadable,
     budget_option,
+    digest_option,
     enum_option,
     fail_on_option,
     output_option,
@@ -43,6 +44,7 @@ from steelyard.cli_options import (
     report_format_option,
     timeline_format_option,
 )
+from steelyard.digest import Digest
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.findings import FailOn
 from steelyard.grads_kind import GradsKind
@@ -346,6 +348,7 @@ def _render(report: Report, chosen: AuditFormat) -> str:
     help="Worker threads per checkpoint [default: the machine's cores]; the report is "
     "the same for every value.",
 )
+@digest_option
 @budget_option
 def audit(
     paths: list[Path],
@@ -361,6 +364,7 @@ def audit(
     quiet: bool,
     unreadable: Unreadable,
     jobs: int | None,
+    digest: Digest,
     budget: list[str] | None,
 ) -> None:
     """Audit checkpoints' weight health; exit 1 when a finding reaches the gate."""
@@ -390,6 +394,7 @@ def audit(
                 unreadable_fails_gate=unreadable is Unreadable.gate_failure,
                 budget=limits,
                 base=base,
+                digest=digest.value,
             )
         _STATE["reading"] = None
         if len(paths) == 1 and not paths[0].is_dir() and report.errors and not report.audits:
@@ -429,6 +434,7 @@ def _render_compare(report: CompareReport, chosen: CompareFormat) -> str:
 @fail_on_option
 @policy_option
 @quiet_option
+@digest_option
 @budget_option
 def compare(
     old: Path,
@@ -438,6 +444,7 @@ def compare(
     fail_on: FailOn | None,
     policy_file: Path | None,
     quiet: bool,
+    digest: Digest,
     budget: list[str] | None,
 ) -> None:
     """What changed between two checkpoints, and is it healthy; exit 1 when a finding reaches the gate."""
@@ -446,7 +453,7 @@ def compare(
         with _progress(quiet, 1) as bar:
             bar(f"{old} → {new}")
             _reading(f"{old} or {new}")
-            report = _api().compare(old, new, policy=policy, budget=limits)
+            report = _api().compare(old, new, policy=policy, budget=limits, digest=digest.value)
         _STATE["reading"] = None
         for chosen, target in targets:
             _write_report(_render_compare(report, CompareFormat(chosen)), target, quiet)
@@ -528,6 +535,7 @@ def policy(init: bool, show: bool, policy_file: Path | None, force: bool) -> Non
 @fail_on_option
 @policy_option
 @quiet_option
+@digest_option
 @budget_option
 def timeline(
     paths: list[Path],
@@ -537,13 +545,21 @@ def timeline(
     fail_on: FailOn | None,
     policy_file: Path | None,
     quiet: bool,
+    digest: Digest,
     budget: list[str] | None,
 ) -> None:
     """Follow a training run's checkpoints layer by layer (docs/timeline.md); exit 1 when a
     finding of the last checkpoint reaches the gate."""
     with _guarded():
         targets, policy, limits = _run_setup(format, output, TimelineFormat, policy_file, fail_on, budget)
-        result = _api().timeline(paths, order.value, policy=policy, on_checkpoint=_reading, budget=limits)
+        result = _api().timeline(
+            paths,
+            order.value,
+            policy=policy,
+            on_checkpoint=_reading,
+            budget=limits,
+            digest=digest.value,
+        )
         _STATE["reading"] = None
         for chosen, target in targets:
             color = _color() and target is None

@@ -13,6 +13,7 @@ from typing import Any, TypeVar
 
 import click
 
+from steelyard.digest import DEFAULT_DIGEST, Digest
 from steelyard.errors import SteelyardError
 from steelyard.findings import FailOn
 
@@ -195,6 +196,17 @@ def quiet_option(f: _F) -> _F:
     """``--quiet``/``-q``."""
     return click.option(
         "--quiet", "-q", is_flag=True, default=False, help="No progress or diagnostics on stderr."
+    )(f)
+
+
+def digest_option(f: _F) -> _F:
+    """``--digest``: the command receives a :class:`~steelyard.digest.Digest`."""
+    return enum_option(
+        "--digest",
+        kind=Digest,
+        default=DEFAULT_DIGEST,
+        help="Content hash that identifies each checkpoint in the report: blake3 (fast), or "
+        "sha256 to match the SHA-256 digests that registries and manifests publish.",
     )(f)
 
 

@@ -80,7 +80,8 @@ class CheckpointAudit:
     """The audit of one checkpoint."""
 
     checkpoint: Mapping[str, Any]
-    """As in ``steelyard.layers/1`` plus ``sha256``."""
+    """As in ``steelyard.layers/1`` plus ``files`` and the files' digest under the
+    algorithm's name: ``blake3`` (the default) or ``sha256`` (see :mod:`steelyard.digest`)."""
     layers: tuple[LayerHealth, ...]
     findings: tuple[Finding, ...]
     """Ranked, ignored ones removed."""

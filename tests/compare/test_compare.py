@@ -524,8 +524,8 @@ def test_json_contract(tmp_path: Path, unhealthy_file: Path, healthy_file: Path)
     assert document["schema"] == "steelyard.compare/1"
     assert {"schema", "old", "new", "layers", "findings", "summary", "gate"} <= set(document)
     for side in ("old", "new"):
-        assert {"path", "format", "tensors", "parameters", "sha256"} <= set(document[side])
-        assert len(document[side]["sha256"]) == 64
+        assert {"path", "format", "tensors", "parameters", "blake3"} <= set(document[side])
+        assert len(document[side]["blake3"]) == 64 and "sha256" not in document[side]
     for entry in document["layers"]:
         assert {
             "name",

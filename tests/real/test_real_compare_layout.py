@@ -123,7 +123,7 @@ def _stable(text: str) -> str:
     """The report without NEW's hash: the bytes ``safetensors`` writes for the same tensors may
     change with its version (its header's layout), the rest may not."""
     return "\n".join(
-        "new sha256  (not compared)" if line.startswith("new sha256") else line
+        "new blake3  (not compared)" if line.startswith("new blake3") else line
         for line in text.splitlines()
     )
 

@@ -44,6 +44,7 @@ from steelyard.comparison.report import (
     Status,
     UnitChange,
 )
+from steelyard.digest import DEFAULT_DIGEST
 from steelyard.findings import Finding, Severity
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint, Layer
@@ -516,8 +517,11 @@ def _frozen_notes(policy: Policy, old: Checkpoint) -> list[str]:
     ]
 
 
-def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Comparison:
-    """Compare two loaded checkpoints under one policy."""
+def compare_checkpoints(
+    old: Checkpoint, new: Checkpoint, policy: Policy, digest: str = DEFAULT_DIGEST.value
+) -> Comparison:
+    """Compare two loaded checkpoints under one policy; each side's checkpoint block carries
+    its files' ``digest`` (``blake3`` or ``sha256``) under that algorithm's name."""
     as_stored = match_layers(old.layers, new.layers, scheme_aliases(old, new))
     # Both sides are judged with the richer side's structure (activation, links, norm, ...),
     # so a difference in what the files describe is never reported as a change of the model.
@@ -528,8 +532,8 @@ def compare_checkpoints(old: Checkpoint, new: Checkpoint, policy: Policy) -> Com
     new_side = Side(new, policy, statistics(new))
     # Each audit reads through its side's statistics, which keep what they read: the
     # measures below reuse it instead of reading every layer a second time.
-    old_audit = audit_checkpoint(old, policy, old_grads, stats=old_side.stats)
-    new_audit = audit_checkpoint(new, policy, new_grads, stats=new_side.stats)
+    old_audit = audit_checkpoint(old, policy, old_grads, stats=old_side.stats, digest=digest)
+    new_audit = audit_checkpoint(new, policy, new_grads, stats=new_side.stats, digest=digest)
     alignments, rejected = _align_all(pairs, old_side, new_side)
     diffs: list[LayerDiff] = []
     total_diff = total_base = 0.0

@@ -149,7 +149,8 @@ class Comparison:
     """What changed between two checkpoints, and what the rules found."""
 
     old: Mapping[str, Any]
-    """OLD's ``checkpoint`` block plus ``sha256``."""
+    """OLD's ``checkpoint`` block, with its files' digest under the algorithm's name
+    (``blake3`` or ``sha256``)."""
     new: Mapping[str, Any]
     layers: tuple[LayerDiff, ...]
     """Ranked: structural changes first, then by relative change, largest first."""

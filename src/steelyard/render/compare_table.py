@@ -19,6 +19,7 @@ from rich.console import Group
 from rich.text import Text
 
 from steelyard.comparison.report import CompareReport, Status
+from steelyard.digest import digest_shown
 from steelyard.findings import Finding
 from steelyard.ranking import rank
 from steelyard.render.compare_layers_view import (
@@ -150,10 +151,11 @@ def _header(report: CompareReport, width: int) -> list[Text]:
     comparison = report.comparison
     pairs: list[tuple[str, str | Text]] = []
     for side, block in (("old", comparison.old), ("new", comparison.new)):
+        algorithm, digest = digest_shown(block)
         pairs += [
             (side, str(block["path"])),
             ("", _side(block)),
-            (f"{side} sha256", str(block.get("sha256", "")) or "not computed"),
+            (f"{side} {algorithm}", digest),
         ]
     pairs += [
         ("policy", report.policy_source),

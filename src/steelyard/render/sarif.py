@@ -10,6 +10,7 @@ import json
 import os
 from typing import Any
 
+from steelyard.digest import Digest, digest_in
 from steelyard.findings import Finding, Severity
 from steelyard.render.json_report import _clean
 from steelyard.report import Report, Suppressed
@@ -127,13 +128,16 @@ def sarif_log(report: Report, command: Command = Command.AUDIT) -> dict[str, Any
                 "share": audit.coverage.share,
                 "uncovered_tensors": [u.name for u in audit.coverage.uncovered],
             }
-        artifacts.append(
-            {
-                "location": {"uri": _uri(str(block["path"]))},
-                "hashes": {"sha-256": str(block.get("sha256", ""))},
-                "properties": properties,
-            }
-        )
+        artifact: dict[str, Any] = {"location": {"uri": _uri(str(block["path"]))}}
+        found = digest_in(block)
+        if found is not None and found[0] == Digest.SHA256.value:
+            # The keys of "hashes" are hash function names as IANA's registry of hash
+            # function textual names spells them (SARIF 2.1.0), "sha-256" for SHA-256;
+            # BLAKE3 has no name there, so it goes in the free-form property bag.
+            artifact["hashes"] = {"sha-256": found[1]}
+        elif found is not None:
+            properties[found[0]] = found[1]
+        artifacts.append(artifact | {"properties": properties})
         results += [_result(f, position, rule_index, False) for f in audit.findings]
         results += [_result(f, position, rule_index, True) for f in audit.baselined]
         results += [_result(s.finding, position, rule_index, False, s) for s in audit.suppressed]

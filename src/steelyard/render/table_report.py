@@ -14,6 +14,7 @@ import math
 from rich.console import Group, RenderableType
 from rich.text import Text
 
+from steelyard.digest import digest_shown
 from steelyard.render.findings_view import (
     findings_section,
 )
@@ -68,7 +69,7 @@ def _header(report: Report, audit: CheckpointAudit, width: int) -> list[Text]:
     size = f", {human_bytes(int(block['file_size']))}" if "file_size" in block else ""
     pairs: list[tuple[str, str | Text]] = [
         ("checkpoint", str(block["path"])),
-        ("sha256", str(block.get("sha256", "")) or "not computed"),
+        digest_shown(block),
         (
             "format",
             f"{block['format']}{size}; {plural(int(block['parameters']), 'parameter')} in "

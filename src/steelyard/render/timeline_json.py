@@ -49,7 +49,8 @@ def _checkpoint(entry: CheckpointEntry) -> dict[str, Any]:
         "index": entry.index,
         "path": entry.path,
         "format": entry.format,
-        "sha256": entry.sha256,
+        # Under the algorithm's name, as in the audit's and the comparison's checkpoint blocks.
+        entry.digest[0]: entry.digest[1],
         "parameters": entry.parameters,
         "step": entry.position.value,
         "step_unit": entry.position.unit,

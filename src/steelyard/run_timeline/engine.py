@@ -14,6 +14,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 
 from steelyard.checkpoint_audit import audit_checkpoint
+from steelyard.digest import DEFAULT_DIGEST, digest_in
 from steelyard.errors import LoadError, UnreadableTensor
 from steelyard.gradients import optimizer_source
 from steelyard.graph import Checkpoint
@@ -51,15 +52,22 @@ class RunSettings:
     jobs: int = 1
     notes: tuple[str, ...] = ()
     """Notes from ordering (ties, disagreeing sources)."""
+    digest: str = DEFAULT_DIGEST.value
+    """The content hash of each checkpoint's identity: ``blake3`` or ``sha256``."""
 
 
 def _audited(
-    checkpoint: Checkpoint, policy: Policy, jobs: int
+    checkpoint: Checkpoint, settings: RunSettings
 ) -> tuple[CheckpointAudit, LayerStats]:
     """The audit engine's result for one checkpoint, and the statistics it read through."""
     stats = LayerStats(checkpoint)
     audit = audit_checkpoint(
-        checkpoint, policy, optimizer_source(checkpoint), jobs=jobs, stats=stats
+        checkpoint,
+        settings.policy,
+        optimizer_source(checkpoint),
+        jobs=settings.jobs,
+        stats=stats,
+        digest=settings.digest,
     )
     return audit, stats
 
@@ -82,7 +90,7 @@ class _Run:
         """The checkpoint's audit, its snapshot, and its points with drift; a tensor that
         turns out unreadable, or a reader out of memory, is this checkpoint's input error."""
         try:
-            audit, stats = _audited(checkpoint, settings.policy, settings.jobs)
+            audit, stats = _audited(checkpoint, settings)
             taken = snapshot(checkpoint, audit, stats)
             del stats  # the audit's cached matrices go with it
             points: dict[str, LayerPoint] = {}
@@ -139,7 +147,7 @@ class _Run:
                 index=index,
                 path=str(placed.path),
                 format=checkpoint.format.value,
-                sha256=str(audit.checkpoint.get("sha256", "")),
+                digest=digest_in(audit.checkpoint) or (settings.digest, ""),
                 parameters=checkpoint.parameters,
                 position=placed.position,
                 findings=len(audit.findings),

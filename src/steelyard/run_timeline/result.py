@@ -31,7 +31,9 @@ class CheckpointEntry:
     index: int
     path: str
     format: str
-    sha256: str
+    digest: tuple[str, str]
+    """(algorithm, hex digest) of the checkpoint's files in order: ``blake3`` by default,
+    ``sha256`` when asked for; one algorithm for the whole run."""
     parameters: int
     position: Position
     findings: int

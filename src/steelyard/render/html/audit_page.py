@@ -6,6 +6,7 @@ from dataclasses import replace
 from typing import Any
 
 from steelyard.coverage import describe
+from steelyard.digest import digest_shown
 from steelyard.render.html.charts import (
     findings_chart,
     norm_spread_chart,
@@ -80,7 +81,7 @@ def _checkpoint(
         "path": str(block.get("path", "")),
         "format": block.get("format", ""),
         "parameters": block.get("parameters"),
-        "sha256": block.get("sha256", "not computed"),
+        **dict(zip(("digest_label", "digest"), digest_shown(block), strict=True)),
         "layer_count": len(audit.layers),
         "verdict": verdict(gate_off, bool(audit.failing(report.gate))),
         "counts": audit.counts(),

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from steelyard.comparison.report import CompareReport
+from steelyard.digest import digest_shown
 from steelyard.ranking import rank
 from steelyard.render.compare_table import rank_cell
 from steelyard.render.html.compare_charts import change_charts, in_depth_order
@@ -81,5 +82,5 @@ def _side(block: Any) -> dict[str, Any]:
         "path": str(block.get("path", "")),
         "format": block.get("format", ""),
         "parameters": block.get("parameters"),
-        "sha256": block.get("sha256", "not computed"),
+        **dict(zip(("digest_label", "digest"), digest_shown(block), strict=True)),
     }

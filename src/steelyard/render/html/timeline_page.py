@@ -54,9 +54,11 @@ def render_timeline_html(timeline: Timeline) -> str:
         **masthead(timeline, gate_off=timeline.gate is None),
         checkpoints=[
             {"label": label(c.index), "path": c.path, "source": c.position.source or "order given",
-             "findings": c.findings, "sha256": c.sha256}
+             "findings": c.findings, "digest": c.digest[1]}
             for c in timeline.checkpoints
         ],
+        # One algorithm for the whole run; named as in the JSON ("blake3" or "sha256").
+        digest_label="/".join(dict.fromkeys(c.digest[0] for c in timeline.checkpoints)) or "digest",
         order=timeline.order,
         measure_charts=charts,
         presence="presence" if presence is not None else None,

@@ -335,10 +335,18 @@ def _status() -> dict[str, int]:
 
 
 class MemoryProbe:
-    """Peak anonymous memory by sampling, peak resident set from the kernel's VmHWM."""
+    """Peak resident set from the kernel's VmHWM and, when ``sample``, peak anonymous memory
+    by polling ``/proc/self/status`` from a thread every ``interval`` seconds.
 
-    def __init__(self, interval: float = 0.002) -> None:
+    Timed calls use ``sample=False``: the polling thread takes the interpreter lock every
+    2 ms, which slows a multi-threaded audit on two cores (20M, bf16: about 100 ms bare
+    against 120-140 ms polled in the same child; docs/performance.md, section B, "Sixth
+    session") while a C-bound baseline hardly notices it. ``peak_anon`` is then the larger
+    of the start and end readings, not a peak."""
+
+    def __init__(self, interval: float = 0.002, sample: bool = True) -> None:
         self.interval = interval
+        self.sampling = sample
         self.peak_anon = 0
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, daemon=True)
@@ -353,12 +361,15 @@ class MemoryProbe:
 
     def __enter__(self) -> MemoryProbe:
         self.start = _status()
-        self._thread.start()
+        self.peak_anon = self.start.get("RssAnon", 0)
+        if self.sampling:
+            self._thread.start()
         return self
 
     def __exit__(self, *exc: object) -> None:
-        self._stop.set()
-        self._thread.join()
+        if self.sampling:
+            self._stop.set()
+            self._thread.join()
         self.sample()
         self.end = _status()
 

@@ -10,10 +10,12 @@ The checkpoint is a seeded transformer-shaped safetensors file (vocabulary 8000,
 runs, each in a fresh child process, (1) the baseline: every tensor read with the
 ``safetensors`` package (``safetensors.numpy.load_file``), and (2) the full audit,
 ``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Each child
-makes one untimed warm-up call first (module imports done lazily on first use, page cache),
-then times the second call; peak memory is the child's VmHWM, warm-up included.
-The ratio is median audit time / median baseline time of the same run. Each child then
-times five more calls; their median is printed as the steady state (warm allocator).
+makes one untimed warm-up call first, the same call as the timed one (module imports done
+lazily on first use, page cache), then times the second call with no polling thread running
+(see ``MemoryProbe``); peak memory is the child's VmHWM, warm-up included. The ratio is
+median audit time / median baseline time of the same run. Each child then times five more
+calls, whose median is printed as the steady state (warm allocator), and makes one last
+call under the polling thread for the peak of anonymous memory.
 
 A third child per round runs the audit with ``twin-units`` and ``untrained-layer`` disabled
 by policy (``core``), separating the shared pass and the other rules from those two.
@@ -34,6 +36,7 @@ import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import Any, TypeVar
 
 from _common import (
     MIB,
@@ -47,6 +50,8 @@ from _common import (
     run_child,
     write_checkpoint,
 )
+
+T = TypeVar("T")
 
 SHAPE = Shape(vocab=8000, hidden=512, intermediate=1408, layers=4)
 
@@ -62,18 +67,36 @@ def _steady(call: Callable[[], object], times: int = 5) -> float:
     return statistics.median(seconds)
 
 
+def _measured(call: Callable[[], T]) -> tuple[dict[str, Any], T]:
+    """Warm-up, the timed call, the steady state, then one more call for the anonymous peak.
+
+    The warm-up is the same call as the timed one (imports, page cache, the allocator's
+    first pools), for the baseline and the audit alike. The timed calls run without the
+    polling thread (see ``MemoryProbe``); VmHWM still covers them."""
+    call()
+    with MemoryProbe(sample=False) as probe:
+        seconds = time.perf_counter()
+        result = call()
+        seconds = time.perf_counter() - seconds
+    steady = _steady(call)
+    with MemoryProbe() as anon:
+        call()
+    measured = {
+        "seconds": seconds,
+        "steady": steady,
+        **probe.report(),
+        "start_anon": anon.start.get("RssAnon", 0),
+        "peak_anon": anon.peak_anon,
+    }
+    return measured, result
+
+
 def child(mode: str, path: str, jobs: str) -> None:
     if mode == "baseline":
         import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
         from safetensors.numpy import load_file
 
-        load_file(path)  # warm-up: first-call imports and the page cache
-        with MemoryProbe() as probe:
-            seconds = time.perf_counter()
-            tensors = load_file(path)
-            seconds = time.perf_counter() - seconds
-            del tensors
-        emit({"seconds": seconds, "steady": _steady(lambda: load_file(path)), **probe.report()})
+        emit(_measured(lambda: load_file(path))[0])
     elif mode in ("audit", "core"):
         from steelyard.api import audit
         from steelyard.policy import Policy
@@ -83,14 +106,8 @@ def child(mode: str, path: str, jobs: str) -> None:
             Policy(rules={"twin-units": off, "untrained-layer": off}) if mode == "core" else None
         )
         count = int(jobs) if jobs != "default" else None
-        audit(path, policy=policy, jobs=1)  # warm-up: lazy imports of loaders and rules
-        with MemoryProbe() as probe:
-            seconds = time.perf_counter()
-            report = audit(path, policy=policy, jobs=count)
-            seconds = time.perf_counter() - seconds
-        steady = _steady(lambda: audit(path, policy=policy, jobs=count))
-        found = len(report.audits[0].findings)
-        emit({"seconds": seconds, "steady": steady, "findings": found, **probe.report()})
+        measured, report = _measured(lambda: audit(path, policy=policy, jobs=count))
+        emit({"findings": len(report.audits[0].findings), **measured})
     elif mode == "shares":
         emit(rule_shares(path))
 

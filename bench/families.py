@@ -145,7 +145,8 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
 
         audit(tiny, policy=_policy(step))
     startup = time.perf_counter() - started
-    with MemoryProbe() as probe:
+    # No polling thread while timed (see MemoryProbe): VmHWM gives the peak RSS.
+    with MemoryProbe(sample=False) as probe:
         start = time.perf_counter()
         if step == "floor":
             extra["bytes"] = floor(path)
@@ -217,7 +218,6 @@ def measure(
                 "all_seconds": [round(r["seconds"], 3) for r in results],
                 "startup": statistics.median(r["startup"] for r in results),
                 "vm_hwm": max(r["vm_hwm"] for r in results),
-                "peak_anon": max(r["peak_anon"] for r in results),
                 **{k: results[0][k] for k in ("findings", "bytes", "report_sha256") if k in results[0]},
             }
         shares = {

@@ -294,6 +294,59 @@ def test_layers_too_large_to_cache_run_one_at_a_time_beside_the_small_ones(
     assert any(together & large and together - large for together in seen_together)
 
 
+def test_small_layers_run_on_one_worker_beside_the_others(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Small layers cost interpreter time, which one thread holds at a time: they are one
+    # chain, so two of them never run at once, while the other worker takes the larger
+    # layers. (Common practice, no source: the interpreter lock serialises Python code.)
+    import threading
+    import time
+    from dataclasses import replace
+
+    import steelyard.checkpoint_audit as engine
+    from steelyard.rules import registry
+
+    monkeypatch.setattr(engine, "SMALL_LAYER", 64 * 128)
+    tensors = {}
+    for block in range(4):
+        tensors[f"model.layers.{block}.self_attn.o_proj.weight"] = (
+            rng.standard_normal((64, 128)).astype(np.float32) * 0.05
+        )
+        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
+            rng.standard_normal((256, 128)).astype(np.float32) * 0.05
+        )
+    path = write_safetensors(tmp_path / "model.safetensors", tensors)
+    running: set[str] = set()
+    seen_together: list[frozenset[str]] = []
+    lock = threading.Lock()
+    spec = registry()["dead-unit"]
+    hook = spec.per_layer
+    assert hook is not None
+
+    def watched(ctx, settings, layer):  # type: ignore[no-untyped-def]
+        with lock:
+            running.add(layer.name)
+            seen_together.append(frozenset(running))
+        time.sleep(0.02)
+        try:
+            return iter(list(hook(ctx, settings, layer)))
+        finally:
+            with lock:
+                running.discard(layer.name)
+
+    checkpoint = api.load(path)
+    small = {layer.name for layer in checkpoint.layers if layer.units * layer.fan_in <= 64 * 128}
+    assert len(small) == 4
+    plain = run_rules(checkpoint, Policy(), None, jobs=1)[0]
+    watched_spec = {spec.name: replace(spec, per_layer=watched)}
+    run_rules(api.load(path), Policy(), None, watched_spec, jobs=2)
+    assert all(len(together & small) <= 1 for together in seen_together)
+    assert any(together & small and together - small for together in seen_together)
+    threaded = run_rules(api.load(path), Policy(), None, jobs=2)[0]
+    assert [(f.fingerprint, f.message) for f in plain] == [(f.fingerprint, f.message) for f in threaded]
+
+
 def test_reports_from_the_cli_are_identical_for_any_jobs(
     tmp_path: Path, rng: np.random.Generator
 ) -> None:

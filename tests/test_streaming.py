@@ -374,3 +374,27 @@ def test_jobs_must_be_positive(tmp_path: Path, rng: np.random.Generator) -> None
 
     with pytest.raises(SteelyardError):
         api.audit(path, jobs=0)
+
+
+@pytest.mark.parametrize("kind", ["bf16", "float32", "bf16-with-nan", "bf16-edges"])
+def test_sorted_wide_is_numpys_sort(kind: str, rng: np.random.Generator) -> None:
+    # The bf16 fast path must give numpy's sorted float64 array bit for bit. Reference:
+    # numpy.sort; bf16 rounding by ml_dtypes (the reference bf16 implementation on PyPI).
+    import ml_dtypes
+
+    from steelyard.stats.numerics import sorted_wide
+
+    values = (rng.standard_normal(20_000) * 0.02).astype(np.float32)
+    if kind != "float32":
+        values = values.astype(ml_dtypes.bfloat16).astype(np.float32)
+    if kind == "bf16-with-nan":
+        values[[5, 17]] = [np.nan, -np.nan]
+    if kind == "bf16-edges":
+        edges = np.array([0.0, -0.0, np.inf, -np.inf, 1e-40, -1e-40, 3.0e38, -3.0e38], np.float32)
+        values[: edges.size] = edges.astype(ml_dtypes.bfloat16).astype(np.float32)
+    expected = np.sort(values).astype(np.float64)
+    got = sorted_wide(values)
+    assert got.dtype == np.float64
+    assert np.array_equal(got, expected, equal_nan=True)
+    # the same bit patterns, as a multiset (±0 compare equal, so they may trade places)
+    assert np.array_equal(np.sort(got.view(np.uint64)), np.sort(expected.view(np.uint64)))

@@ -30,3 +30,31 @@ def sums_of_squares(block: np.ndarray, axis: int) -> np.ndarray:
 def row_norms(matrix: np.ndarray) -> np.ndarray:
     """Row L2 norms (see :func:`sums_of_squares`)."""
     return np.sqrt(sums_of_squares(np.asarray(matrix, dtype=np.float32), axis=1))
+
+
+_LOW_HALF = np.uint32(0xFFFF)
+_SIGN16 = np.uint16(0x8000)
+
+
+def sorted_wide(values: np.ndarray) -> np.ndarray:
+    """``values`` (float32) sorted ascending, as float64: the same array as
+    ``np.sort(values).astype(np.float64)``.
+
+    Values widened from bf16 (every low 16-bit half zero, as in most shipped checkpoints)
+    are sorted by their upper halves, mapped to unsigned keys that order as the floats do
+    (negatives' bits all flipped, positives' sign bit set): numpy sorts 16-bit integers with
+    a radix sort, 3 × faster than its float32 sort here (20,000 values: 104 against 330 µs).
+    With a NaN among them numpy's order (NaNs last) is kept by its own sort."""
+    flat = np.ascontiguousarray(values, dtype=np.float32).reshape(-1)
+    bits = flat.view(np.uint32)
+    if flat.size < 1024 or (bits & _LOW_HALF).any():
+        return np.sort(flat).astype(np.float64)
+    high = (bits >> 16).astype(np.uint16)
+    if ((high & np.uint16(0x7FFF)) > np.uint16(0x7F80)).any():  # a NaN
+        return np.sort(flat).astype(np.float64)
+    negative = high >= _SIGN16
+    keys = np.where(negative, ~high, high | _SIGN16)
+    keys.sort(kind="stable")
+    negative = keys < _SIGN16
+    high = np.where(negative, ~keys, keys & np.uint16(0x7FFF))
+    return (high.astype(np.uint32) << 16).view(np.float32).astype(np.float64)

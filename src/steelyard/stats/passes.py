@@ -20,7 +20,7 @@ from steelyard.dtypes import FLOAT_ITEMSIZE
 from steelyard.graph import Checkpoint, Layer, RowSlice, Tensor
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import NonfiniteCounts, count_into
-from steelyard.stats.numerics import FLOAT_NAMES, sums_of_squares
+from steelyard.stats.numerics import FLOAT_NAMES, sorted_wide, sums_of_squares
 from steelyard.stats.reading import locked
 from steelyard.streaming import convert_into, row_blocks
 
@@ -115,24 +115,26 @@ class WeightPasses:
         """See :meth:`steelyard.stats.LayerStats.sample`."""
         units, fan_in = layer.units, layer.fan_in
         total = units * fan_in
-        # Sorted in float32 and widened after: the same values, in half the time.
+        # Sorted in float32 (or by bf16 keys) and widened after: the same values, faster.
         if total <= size:
-            return np.sort(self.matrix(layer).reshape(-1)).astype(np.float64)
-        positions = np.random.default_rng(seed).choice(total, size=size, replace=False)
+            return sorted_wide(self.matrix(layer))
+        # Unshuffled: the values are sorted after, so the draw's order never mattered, and
+        # numpy's shuffle of it took two thirds of the draw (590 against 197 µs for 20,000).
+        positions = np.random.default_rng(seed).choice(total, size=size, replace=False, shuffle=False)
         source = self.streamable(layer)
         cached = self.cache.get(("matrix", layer.name))
         if cached is not None or source is None or 4 * total <= self.stream_bytes:
             # In memory the positions need no order (the values are sorted after): sorting
             # them took twice as long as the gather and the value sort together.
             flat = self.matrix(layer).reshape(-1)
-            return np.sort(flat[positions]).astype(np.float64)
+            return sorted_wide(flat[positions])
         positions.sort()  # streamed: each row block takes its run of positions
         picked = np.empty(size, dtype=np.float32)
         scratch = np.empty(0, dtype=np.float32)
         for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
             lo, hi = np.searchsorted(positions, (a * fan_in, b * fan_in))
             picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
-        return np.sort(picked).astype(np.float64)
+        return sorted_wide(picked)
 
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
         """See :meth:`steelyard.stats.LayerStats.rows`."""

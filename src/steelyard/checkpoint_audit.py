@@ -24,6 +24,7 @@ from steelyard.rules import AuditContext, RuleSettings, RuleSpec, registry
 from steelyard.rules.base import RuleMeasurements, RuleNotes
 from steelyard.rules.engine import apply_policy
 from steelyard.stats import STREAM_BYTES, LayerStats
+from steelyard.work_lanes import run_in_lanes
 
 _HASH_CHUNK = 8 * 2**20
 
@@ -97,36 +98,29 @@ def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
 
 
 #: Layers with at most this many weights cost mostly interpreter time (a few hundred small
-#: numpy calls), not passes over memory.
+#: numpy calls), not passes over memory: one worker prefers them (:mod:`steelyard.work_lanes`).
 SMALL_LAYER = 2**20
 
 
+def _small(layer: Layer) -> bool:
+    return layer.units * layer.fan_in <= SMALL_LAYER
+
+
 def _task_groups(layers: Sequence[Layer]) -> list[tuple[int, ...]]:
-    """The layer tasks of an audit, as positions in ``layers``: one per layer, except two
-    chains, each run in file order by one worker.
+    """The layer tasks of an audit, as positions in ``layers``: one per layer, except that the
+    layers whose matrix is too large for the cache (embedding, head) form one task, in file
+    order.
 
-    * The layers whose matrix is too large for the cache (embedding, head). They are
-      streamed by the shared pass, but a rule may still ask for one whole
-      (``untrained-token`` reads the token matrices): run one after another they never hold
-      two such working sets at once, while the other workers go on with the small layers
-      (when each of them ran alone, every other worker waited meanwhile).
-    * The small layers (:data:`SMALL_LAYER`). Their time is spent in the interpreter,
-      which one thread holds at a time; two workers on them handed it over at almost every
-      numpy call (21M bf16: 0.9-1.7 ms a layer on one worker, 2.6-5.5 ms each on two, and
-      the whole audit slower on two workers than on one). Chained, they take one worker
-      while the others read, hash and reduce the large layers, which hold the interpreter
-      seldom.
-
-    Every layer keeps a one-thread BLAS: with two, OpenBLAS summed float32 products in an
-    order that depended on whether the main thread (jobs 1) or a worker (jobs 2) called it,
-    so the report depended on ``jobs`` (untrained-token's residuals differed in the 8th
-    digit)."""
-    size = [layer.units * layer.fan_in for layer in layers]
-    large = tuple(i for i, n in enumerate(size) if 4 * n > STREAM_BYTES)
-    small = tuple(i for i, n in enumerate(size) if n <= SMALL_LAYER and 4 * n <= STREAM_BYTES)
-    chained = {*large, *small}
-    alone = [(i,) for i in range(len(layers)) if i not in chained]
-    return [chain for chain in (large, small) if chain] + alone
+    Those layers are streamed by the shared pass, but a rule may still ask for one whole
+    (``untrained-token`` reads the token matrices): run one after another they never hold
+    two such working sets at once, while the other workers go on with the small layers
+    (when each of them ran alone, every other worker waited meanwhile). Every layer keeps a
+    one-thread BLAS: with two, OpenBLAS summed float32 products in an order that depended on
+    whether the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended
+    on ``jobs`` (untrained-token's residuals differed in the 8th digit)."""
+    large = [4 * layer.units * layer.fan_in > STREAM_BYTES for layer in layers]
+    chained = tuple(i for i, is_large in enumerate(large) if is_large)
+    return ([chained] if chained else []) + [(i,) for i, is_large in enumerate(large) if not is_large]
 
 
 def run_rules(
@@ -210,9 +204,10 @@ def run_rules(
             per_layer: list[list[list[Finding]]] = [[] for _ in checkpoint.layers]
             if hooked:
                 groups = _task_groups(checkpoint.layers)
-                done = _map(
-                    pool, some_layers, groups,
-                    lambda group: sum(_parameters(checkpoint, checkpoint.layers[i]) for i in group),
+                done = run_in_lanes(
+                    pool, jobs, some_layers, groups,
+                    cost=lambda group: sum(_parameters(checkpoint, checkpoint.layers[i]) for i in group),
+                    small=lambda group: all(_small(checkpoint.layers[i]) for i in group),
                 )
                 for group, outcomes in zip(groups, done, strict=True):
                     for i, outcome in zip(group, outcomes, strict=True):

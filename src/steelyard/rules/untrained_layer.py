@@ -173,6 +173,7 @@ parameters; then retrain it.
 
 from __future__ import annotations
 
+import functools
 import math
 import zlib
 from collections.abc import Callable, Iterator
@@ -193,6 +194,22 @@ from steelyard.rules.scoring import score
 SPREAD_ROWS = 64
 
 
+@functools.lru_cache(maxsize=8)
+def _steps(n: int) -> np.ndarray:
+    """``[0, 1/n, …, 1]``, read-only: every layer's sample has one of a few sizes."""
+    steps = np.arange(n + 1) / n
+    steps.flags.writeable = False
+    return steps
+
+
+@functools.lru_cache(maxsize=8)
+def _probe(n: int) -> np.ndarray:
+    """The order statistics of :func:`best_fits`' lower bound, read-only."""
+    probe = np.unique(np.linspace(0, n - 1, _PROBES).astype(np.int64))
+    probe.flags.writeable = False
+    return probe
+
+
 def ks_distance(
     sorted_sample: np.ndarray,
     cdf: Callable[[np.ndarray], np.ndarray],
@@ -207,7 +224,7 @@ def ks_distance(
     n = sorted_sample.size
     if at is None:
         values = cdf(sorted_sample)
-        steps = np.arange(n + 1) / n
+        steps = _steps(n)
         return float(max((steps[1:] - values).max(), (values - steps[:-1]).max()))
     index = np.asarray(at, dtype=np.int64)
     values = cdf(sorted_sample[index])
@@ -240,7 +257,7 @@ def best_fits(
     whose bound is at most the second-smallest upper end can be the best or the runner-up, so
     only those are computed in full (ties keep the candidates' order)."""
     n = sorted_sample.size
-    probe = np.unique(np.linspace(0, n - 1, _PROBES).astype(np.int64))
+    probe = _probe(n)
     bounds = ks_bounds(sorted_sample, found, probe)
     if bounds.min() > limit:
         return []

@@ -243,82 +243,15 @@ def test_layers_too_large_to_cache_give_the_same_report_for_any_jobs(
     assert report(2) == one
 
 
-def test_layers_too_large_to_cache_run_one_at_a_time_beside_the_small_ones(
-    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    # Two layers over the cache limit must never hold their working sets at once, yet must
-    # not stop the other workers: a rule hook records which layers run at the same moment.
-    # (Common practice, no source: a memory bound for the largest working sets.)
+def _layers_seen_together(path: Path, jobs: int) -> list[frozenset[str]]:
+    """The sets of layers whose ``dead-unit`` hook ran at the same moment, each hook held
+    for 20 ms (long enough for another worker to start something)."""
     import threading
     import time
     from dataclasses import replace
 
-    import steelyard.checkpoint_audit as engine
     from steelyard.rules import registry
 
-    monkeypatch.setattr(engine, "STREAM_BYTES", 2**20)
-    vocab, width = 2048, 256  # 2 MiB of float32 each: over the limit
-    tensors = {
-        "model.embed_tokens.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
-        "lm_head.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
-    }
-    for block in range(6):
-        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
-            rng.standard_normal((128, width)).astype(np.float32) * 0.05
-        )
-    path = write_safetensors(tmp_path / "model.safetensors", tensors)
-    large = {"model.embed_tokens", "lm_head"}
-    running: set[str] = set()
-    seen_together: list[frozenset[str]] = []
-    lock = threading.Lock()
-    spec = registry()["dead-unit"]
-    hook = spec.per_layer
-    assert hook is not None
-
-    def watched(ctx, settings, layer):  # type: ignore[no-untyped-def]
-        with lock:
-            running.add(layer.name)
-            seen_together.append(frozenset(running))
-        time.sleep(0.02)  # long enough for the other worker to start something
-        try:
-            return iter(list(hook(ctx, settings, layer)))
-        finally:
-            with lock:
-                running.discard(layer.name)
-
-    checkpoint = api.load(path)
-    assert {layer.name for layer in checkpoint.layers} >= large
-    run_rules(checkpoint, Policy(), None, {spec.name: replace(spec, per_layer=watched)}, jobs=2)
-    assert all(len(together & large) <= 1 for together in seen_together)
-    # while a large layer ran, the other worker ran small ones
-    assert any(together & large and together - large for together in seen_together)
-
-
-def test_small_layers_run_on_one_worker_beside_the_others(
-    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
-) -> None:
-    # Small layers cost interpreter time, which one thread holds at a time: one worker takes
-    # them first while the other takes the larger layers, so two small ones do not run at
-    # once while larger ones wait. (Common practice, no source: the interpreter lock
-    # serialises Python code.)
-    import threading
-    import time
-    from dataclasses import replace
-
-    import steelyard.checkpoint_audit as engine
-    from steelyard.rules import registry
-
-    monkeypatch.setattr(engine, "SMALL_LAYER", 64 * 128)
-    tensors = {}
-    for block in range(3):
-        tensors[f"model.layers.{block}.self_attn.o_proj.weight"] = (
-            rng.standard_normal((64, 128)).astype(np.float32) * 0.05
-        )
-    for block in range(6):
-        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
-            rng.standard_normal((256, 128)).astype(np.float32) * 0.05
-        )
-    path = write_safetensors(tmp_path / "model.safetensors", tensors)
     running: set[str] = set()
     seen_together: list[frozenset[str]] = []
     lock = threading.Lock()
@@ -337,14 +270,64 @@ def test_small_layers_run_on_one_worker_beside_the_others(
             with lock:
                 running.discard(layer.name)
 
+    run_rules(api.load(path), Policy(), None, {spec.name: replace(spec, per_layer=watched)}, jobs=jobs)
+    return seen_together
+
+
+def test_layers_too_large_to_cache_run_one_at_a_time_beside_the_small_ones(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Two layers over the cache limit must never hold their working sets at once, yet must
+    # not stop the other workers: a rule hook records which layers run at the same moment.
+    # (Common practice, no source: a memory bound for the largest working sets.)
+    import steelyard.checkpoint_audit as engine
+
+    monkeypatch.setattr(engine, "STREAM_BYTES", 2**20)
+    vocab, width = 2048, 256  # 2 MiB of float32 each: over the limit
+    tensors = {
+        "model.embed_tokens.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
+        "lm_head.weight": rng.standard_normal((vocab, width)).astype(np.float32) * 0.02,
+    }
+    for block in range(6):
+        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
+            rng.standard_normal((128, width)).astype(np.float32) * 0.05
+        )
+    path = write_safetensors(tmp_path / "model.safetensors", tensors)
+    large = {"model.embed_tokens", "lm_head"}
+    assert {layer.name for layer in api.load(path).layers} >= large
+    seen_together = _layers_seen_together(path, jobs=2)
+    assert all(len(together & large) <= 1 for together in seen_together)
+    # while a large layer ran, the other worker ran small ones
+    assert any(together & large and together - large for together in seen_together)
+
+
+def test_small_layers_run_on_one_worker_beside_the_others(
+    tmp_path: Path, rng: np.random.Generator, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Small layers cost interpreter time, which one thread holds at a time: one worker takes
+    # them first while the other takes the larger layers, so two small ones do not run at
+    # once while larger ones wait. (Common practice, no source: the interpreter lock
+    # serialises Python code.)
+    import steelyard.checkpoint_audit as engine
+
+    monkeypatch.setattr(engine, "SMALL_LAYER", 64 * 128)
+    tensors = {}
+    for block in range(3):
+        tensors[f"model.layers.{block}.self_attn.o_proj.weight"] = (
+            rng.standard_normal((64, 128)).astype(np.float32) * 0.05
+        )
+    for block in range(6):
+        tensors[f"model.layers.{block}.mlp.up_proj.weight"] = (
+            rng.standard_normal((256, 128)).astype(np.float32) * 0.05
+        )
+    path = write_safetensors(tmp_path / "model.safetensors", tensors)
     checkpoint = api.load(path)
     small = {layer.name for layer in checkpoint.layers if layer.units * layer.fan_in <= 64 * 128}
     assert len(small) == 3
-    plain = run_rules(checkpoint, Policy(), None, jobs=1)[0]
-    watched_spec = {spec.name: replace(spec, per_layer=watched)}
-    run_rules(api.load(path), Policy(), None, watched_spec, jobs=2)
+    seen_together = _layers_seen_together(path, jobs=2)
     assert all(len(together & small) <= 1 for together in seen_together)
     assert any(together & small and together - small for together in seen_together)
+    plain = run_rules(checkpoint, Policy(), None, jobs=1)[0]
     threaded = run_rules(api.load(path), Policy(), None, jobs=2)[0]
     assert [(f.fingerprint, f.message) for f in plain] == [(f.fingerprint, f.message) for f in threaded]
 

@@ -143,8 +143,9 @@ def run_rules(
     Whole-checkpoint rules (and the per-layer rules' ``finish``) run afterwards, one at a
     time. ``jobs`` > 1 runs layer tasks on that many threads, every one with a one-thread
     BLAS; the layers too large for the matrix cache are one task, run one after another, so
-    two of them never hold their working sets at once; numpy, BLAS, file reads and hashing
-    release the GIL in the heavy loops, so threads rather than processes. The findings are
+    two of them never hold their working sets at once; one worker takes the small layers
+    first and the others the rest (:mod:`steelyard.work_lanes`); numpy, BLAS, file reads and
+    hashing release the GIL in the heavy loops, so threads rather than processes. The findings are
     collected in the same order as with one, so the report does not depend on ``jobs``.
     ``pool`` (of ``jobs`` threads) is the caller's when it has work of its own on it.
     """

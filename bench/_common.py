@@ -342,8 +342,7 @@ class MemoryProbe:
     2 ms, which slows a multi-threaded audit on two cores (21M bf16, medians of 6 children
     each: the timed call 81.8 ms polled against 70.0 ms bare, the steady state 73 against
     65 ms; docs/performance.md, section B, "Sixth session") while a C-bound baseline hardly
-    notices it. ``peak_anon`` is then the larger
-    of the start and end readings, not a peak."""
+    notices it. ``peak_anon`` is then the larger of the start and end readings, not a peak."""
 
     def __init__(self, interval: float = 0.002, sample: bool = True) -> None:
         self.interval = interval

@@ -22,9 +22,8 @@ by policy (``core``), separating the shared pass and the other rules from those 
 
 Targets: ratio <= 3 (issue 18; an earlier issue asked for < 5); peak memory (VmHWM −
 resident set before the warm-up call, the module's imports done) < 3 × the largest tensor +
-200 MiB. The share of each rule is
-measured in one more child that times every rule's hooks and whole-checkpoint checks on one
-thread.
+200 MiB. The share of each rule is measured in one more child that times every rule's hooks
+and whole-checkpoint checks on one thread.
 """
 
 from __future__ import annotations

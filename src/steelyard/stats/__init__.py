@@ -120,8 +120,9 @@ class LayerStats:
     def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:
         """A seeded uniform sample of ``size`` of the layer's weights (all of them when it has
         no more), sorted, float64. The positions are ``default_rng(seed).choice(units·fan_in,
-        size, replace=False, shuffle=False)``; a layer too large to cache is streamed in row blocks for them
-        instead of being assembled, so the result never depends on how it was read."""
+        size, replace=False, shuffle=False)``; a layer too large to cache is streamed in row
+        blocks for them instead of being assembled, so the result never depends on how it was
+        read."""
         return self._passes.sample(layer, size, seed)
 
     def bias(self, layer: Layer) -> np.ndarray | None:

@@ -72,23 +72,14 @@ def default_jobs() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def _map(
-    pool: ThreadPoolExecutor | None,
-    work: Callable[[T], R],
-    items: Sequence[T],
-    cost: Callable[[T], int] | None = None,
-) -> list[R]:
+def _map(pool: ThreadPoolExecutor | None, work: Callable[[T], R], items: Sequence[T]) -> list[R]:
     """``[work(x) for x in items]``, on the pool when there is one; the result keeps the
-    items' order. With ``cost``, the pool starts the costliest items first (longest
-    processing time first, Graham 1969): a model's largest layers (embedding, head) come
-    first and last in file order, and started last they leave one worker finishing alone."""
+    items' order. (Layer tasks, which need the costliest first, go through
+    :func:`steelyard.work_lanes.run_in_lanes`.)"""
     if pool is None:
         return [work(item) for item in items]
-    order: Sequence[int] = range(len(items))
-    if cost is not None:
-        order = sorted(order, key=lambda index: -cost(items[index]))
-    futures = {index: pool.submit(work, items[index]) for index in order}
-    return [futures[index].result() for index in range(len(items))]
+    futures = [pool.submit(work, item) for item in items]
+    return [future.result() for future in futures]
 
 
 def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
@@ -145,8 +136,9 @@ def run_rules(
     BLAS; the layers too large for the matrix cache are one task, run one after another, so
     two of them never hold their working sets at once; one worker takes the small layers
     first and the others the rest (:mod:`steelyard.work_lanes`); numpy, BLAS, file reads and
-    hashing release the GIL in the heavy loops, so threads rather than processes. The findings are
-    collected in the same order as with one, so the report does not depend on ``jobs``.
+    hashing release the GIL in the heavy loops, so threads rather than processes. The
+    findings are collected in the same order as with one, so the report does not depend on
+    ``jobs``.
     ``pool`` (of ``jobs`` threads) is the caller's when it has work of its own on it.
     """
     # A comparison passes the statistics it measures change from, so each layer is read once.

@@ -42,6 +42,7 @@ from steelyard.rules.base import RuleMeasurements, RuleNotes
 from steelyard.rules.untrained_layer import (
     RULE,
     SPREAD_ROWS,
+    Ecdf,
     equivalence_p,
     holm,
     ks_distance,
@@ -128,6 +129,47 @@ def test_cdfs_and_ks_statistic_match_scipy() -> None:
         bound = ks_distance(x, candidate.cdf, probe)
         assert expected - 100 / x.size - 1e-7 <= bound <= expected + 1e-7
         assert candidate.std == pytest.approx(frozen.std(), rel=1e-9)
+
+
+@pytest.mark.parametrize("stored", ["bf16", "float16", "float32", "signed-zeros"])
+def test_ecdf_at_distinct_values_is_the_statistic_over_every_order_statistic(stored: str) -> None:
+    # The definition, D = max_i max((i+1)/n − F(x_(i)), F(x_(i)) − i/n) over every order
+    # statistic (Kolmogorov 1933), evaluated directly; the compressed form must give the same
+    # float. Rounding to bf16 by ml_dtypes (the reference bf16 implementation on PyPI).
+    import ml_dtypes
+
+    rng = np.random.default_rng(23)
+    merged = 0
+    for trial in range(40):
+        n = int(rng.integers(300, 25_000))
+        x = (rng.standard_normal(n) * rng.uniform(0.005, 0.1)).astype(np.float32)
+        if stored == "bf16":
+            x = x.astype(ml_dtypes.bfloat16).astype(np.float32)
+        elif stored == "float16":
+            x = x.astype(np.float16).astype(np.float32)
+        elif stored == "signed-zeros":
+            x = x.astype(ml_dtypes.bfloat16).astype(np.float32)
+            x[: n // 10] = 0.0
+            x[n // 10 : n // 5] = -0.0
+        ordered = np.sort(x.astype(np.float64))
+        steps = np.arange(n + 1) / n
+        ecdf = Ecdf(ordered)
+        runs = 1 + int(np.count_nonzero(np.diff(ordered.view(np.uint64))))  # equal bits
+        assert ecdf.values.size == (runs if 2 * (runs - 1) <= n else n)
+        merged += ecdf.values.size < n
+        for candidate in (
+            Candidate("n", "normal", 0.02),
+            Candidate("u", "uniform", 0.05 + trial / 1000),
+            Candidate("t", "truncated", 0.03),
+        ):
+            values = candidate.cdf(ordered)
+            expected = max((steps[1:] - values).max(), (values - steps[:-1]).max())
+            assert ecdf.distance(candidate.cdf) == expected
+            assert ks_distance(ordered, candidate.cdf) == expected
+    if stored in ("bf16", "signed-zeros"):
+        assert merged > 30  # a bf16 sample is mostly ties
+    if stored == "float32":
+        assert merged == 0
 
 
 def test_erf_meets_its_published_error_bound() -> None:

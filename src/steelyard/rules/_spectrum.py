@@ -111,10 +111,18 @@ def edge_check(rows: np.ndarray, sigma: float, allowed: float, seed: int = 0) ->
 
 
 def _orthogonalise(vector: np.ndarray, basis: np.ndarray) -> np.ndarray:
-    """``vector`` minus its projection on the rows of ``basis`` (twice: "twice is enough")."""
-    for _ in range(2):
-        vector = vector - basis.T @ (basis @ vector)
+    """``vector`` minus its projection on the rows of ``basis``, in place (twice: "twice is
+    enough"); ``vector`` must be a fresh array."""
+    if basis.shape[0]:
+        for _ in range(2):
+            vector -= (basis @ vector) @ basis
     return vector
+
+
+def _norm(vector: np.ndarray) -> float:
+    """Euclidean norm: the float ``numpy.linalg.norm`` gives (sqrt of the float32 dot),
+    without its argument handling, which cost more than the product on these sizes."""
+    return float(np.sqrt(vector @ vector))
 
 
 def _ritz_wanted(step: int) -> bool:
@@ -155,19 +163,20 @@ def top_singular_value(
     left = np.zeros((steps, m), dtype=np.float32)
     bidiagonal = np.zeros((steps, steps))
     start = np.random.default_rng(seed).standard_normal(n)
-    right[0] = start / np.linalg.norm(start)
+    right[0] = start / np.linalg.norm(start)  # float64 here, as before
     estimate = 0.0
     for step in range(steps):
         size = step + 1
         u = _orthogonalise(a @ right[step], left[:step])
-        alpha = float(np.linalg.norm(u))
+        alpha = _norm(u)
         bidiagonal[step, step] = alpha
         if alpha <= 1e-12 * max(estimate, 1e-30):
             # the Krylov space is exhausted: the estimate is exact
             return max(estimate, _ritz(bidiagonal, size)), "lanczos"
-        left[step] = u / alpha
-        w = _orthogonalise(left[step] @ a, right[:size])
-        beta = float(np.linalg.norm(w))
+        u /= alpha
+        left[step] = u
+        w = _orthogonalise(u @ a, right[:size])
+        beta = _norm(w)
         exhausted = beta <= 1e-12 * max(alpha, estimate)
         if _ritz_wanted(size) or exhausted:
             current = _ritz(bidiagonal, size)

@@ -210,6 +210,37 @@ def _probe(n: int) -> np.ndarray:
     return probe
 
 
+class Ecdf:
+    """The empirical CDF of a sorted sample, kept at its distinct values only.
+
+    A sample of bf16 weights holds about 2,000 distinct values in 20,000 (bf16 has 256
+    values per binade and sign), so a candidate's CDF is evaluated a tenth as often. Within
+    a run of equal values F is constant, so F_n(x) − F(x) is largest at the run's last index
+    and F(x) − F_n(x⁻) at its first: the statistic is the same float as over every order
+    statistic (tested bit for bit)."""
+
+    def __init__(self, sorted_sample: np.ndarray) -> None:
+        n = sorted_sample.size
+        # Runs of equal *bits*: −0.0 and +0.0 compare equal, but the approximate erf gives
+        # them CDFs 1e-9 apart (and numpy's sort may interleave them).
+        bits = np.ascontiguousarray(sorted_sample, dtype=np.float64).view(np.uint64)
+        ends = np.flatnonzero(bits[1:] != bits[:-1])
+        if 2 * ends.size > n:  # few ties (float32 weights): the sample as it is
+            steps = _steps(n)
+            self.values, self.upto, self.below = sorted_sample, steps[1:], steps[:-1]
+            return
+        last = np.append(ends, n - 1)
+        self.values = sorted_sample[last]
+        #: F_n at each distinct value, and just below it
+        self.upto = (last + 1) / n
+        self.below = np.concatenate(([0.0], self.upto[:-1]))
+
+    def distance(self, cdf: Callable[[np.ndarray], np.ndarray]) -> float:
+        """sup |F_n − F| against a continuous CDF."""
+        values = cdf(self.values)
+        return float(max((self.upto - values).max(), (values - self.below).max()))
+
+
 def ks_distance(
     sorted_sample: np.ndarray,
     cdf: Callable[[np.ndarray], np.ndarray],
@@ -223,9 +254,7 @@ def ks_distance(
     """
     n = sorted_sample.size
     if at is None:
-        values = cdf(sorted_sample)
-        steps = _steps(n)
-        return float(max((steps[1:] - values).max(), (values - steps[:-1]).max()))
+        return Ecdf(sorted_sample).distance(cdf)
     index = np.asarray(at, dtype=np.int64)
     values = cdf(sorted_sample[index])
     upper = (index + 1) / n - values
@@ -267,9 +296,10 @@ def best_fits(
     close = [c for c, bound in zip(found, bounds, strict=True) if bound <= cutoff]
     # Candidates of one law (Glorot and LeCun of a square layer) are measured once.
     distances: dict[tuple[str, float], float] = {}
+    ecdf = Ecdf(sorted_sample)
     for c in close:
         if (c.family, c.scale) not in distances:
-            distances[c.family, c.scale] = ks_distance(sorted_sample, c.cdf)
+            distances[c.family, c.scale] = ecdf.distance(c.cdf)
     return sorted(((distances[c.family, c.scale], c) for c in close), key=lambda x: x[0])
 
 

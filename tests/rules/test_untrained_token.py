@@ -91,3 +91,20 @@ def test_identical_rows_and_zero_rows_are_told_apart() -> None:
     found = measure(matrix, 1)
     assert set(np.flatnonzero(found.duplicates)) == {10, 20}
     assert found.norms[30] == 0.0
+
+
+def test_identical_rows_are_found_in_chunks_bit_for_bit() -> None:
+    # 70,000 zero rows give 69,999 neighbour pairs, more than one chunk of comparisons; the
+    # expected set is every row whose bytes occur more than once (numpy.unique over the rows'
+    # bytes, the reference). A row of −0.0 equals the zero rows as floats, not bit for bit.
+    rng = np.random.default_rng(5)
+    matrix = np.zeros((80_000, 16), np.float32)
+    matrix[70_000:] = rng.standard_normal((10_000, 16)).astype(np.float32)
+    matrix[75_000] = matrix[79_999]
+    matrix[70_001] = -0.0
+    found = measure(matrix, 1)
+    rows = np.ascontiguousarray(matrix).view(np.dtype((np.void, 16 * 4))).reshape(-1)
+    _, inverse, counts = np.unique(rows, return_inverse=True, return_counts=True)
+    expected = counts[inverse] > 1
+    np.testing.assert_array_equal(found.duplicates, expected)
+    assert found.duplicates[:70_000].all() and not found.duplicates[70_001]

@@ -165,9 +165,10 @@ def test_weight_samples_are_the_same_values_however_the_layer_is_read(
     _small_chunks(monkeypatch)
     stored = {"wide.weight": rng.standard_normal((300, 40)).astype(ml_dtypes.bfloat16)}
     path = write_safetensors(tmp_path / "m.safetensors", stored)
-    # reference: safetensors package reader, positions by numpy's Generator.choice
+    # reference: safetensors package reader, positions by numpy's Generator.integers (drawn
+    # with replacement: i.i.d. draws from the layer's weights)
     weights = safetensors.numpy.load_file(str(path))["wide.weight"].astype(np.float32)
-    positions = np.random.default_rng(7).choice(weights.size, size=500, replace=False, shuffle=False)
+    positions = np.random.default_rng(7).integers(0, weights.size, 500)
     expected = np.sort(weights.reshape(-1)[positions].astype(np.float64))
     checkpoint = api.load(path)
     (layer,) = checkpoint.layers

@@ -4,9 +4,10 @@
 across the checkpoint that decides which of the layers that passed are reported.
 
 1. *Distribution.* A seeded sample of the weights (all of them up to ``sample`` = 20,000,
-   else a uniform random draw of that many) is compared with each standard initializer for
-   the layer's fan-in and fan-out by the Kolmogorov–Smirnov distance
-   D = supₓ |F_n(x) − F(x)|. The candidates, with fan_in = (in/groups)·prod(kernel) and
+   else that many drawn uniformly with replacement: i.i.d. draws from the layer's weights,
+   the case the Dvoretzky–Kiefer–Wolfowitz bound of step 4 is stated for) is compared with
+   each standard initializer for the layer's fan-in and fan-out by the Kolmogorov–Smirnov
+   distance D = supₓ |F_n(x) − F(x)|. The candidates, with fan_in = (in/groups)·prod(kernel) and
    fan_out = out·prod(kernel) as PyTorch and Keras compute them:
 
    * ``pytorch-default``: U(±1/√fan_in). PyTorch's Linear and Conv layers use

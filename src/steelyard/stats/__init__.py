@@ -119,10 +119,10 @@ class LayerStats:
 
     def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:
         """A seeded uniform sample of ``size`` of the layer's weights (all of them when it has
-        no more), sorted, float64. The positions are ``default_rng(seed).choice(units·fan_in,
-        size, replace=False, shuffle=False)``; a layer too large to cache is streamed in row
-        blocks for them instead of being assembled, so the result never depends on how it was
-        read."""
+        no more), sorted, float64. The positions are ``default_rng(seed).integers(0,
+        units·fan_in, size)``: drawn with replacement, so the values are i.i.d. draws from
+        the layer's own weights; a layer too large to cache is streamed in row blocks for them
+        instead of being assembled, so the result never depends on how it was read."""
         return self._passes.sample(layer, size, seed)
 
     def bias(self, layer: Layer) -> np.ndarray | None:

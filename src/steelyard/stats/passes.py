@@ -118,9 +118,10 @@ class WeightPasses:
         # Sorted in float32 (or by bf16 keys) and widened after: the same values, faster.
         if total <= size:
             return sorted_wide(self.matrix(layer))
-        # Unshuffled: the values are sorted after, so the draw's order never mattered, and
-        # numpy's shuffle of it took two thirds of the draw (590 against 197 µs for 20,000).
-        positions = np.random.default_rng(seed).choice(total, size=size, replace=False, shuffle=False)
+        # With replacement: i.i.d. draws from the layer's weights, the case the rules' sample
+        # statistics are stated for, in 60 µs for 20,000; numpy's draw without replacement
+        # took 130-210 µs and, below 20 × size weights, a permutation of all the positions.
+        positions = np.random.default_rng(seed).integers(0, total, size)
         source = self.streamable(layer)
         cached = self.cache.get(("matrix", layer.name))
         if cached is not None or source is None or 4 * total <= self.stream_bytes:

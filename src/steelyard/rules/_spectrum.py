@@ -163,7 +163,7 @@ def top_singular_value(
     left = np.zeros((steps, m), dtype=np.float32)
     bidiagonal = np.zeros((steps, steps))
     start = np.random.default_rng(seed).standard_normal(n)
-    right[0] = start / np.linalg.norm(start)  # float64 here, as before
+    right[0] = start / np.linalg.norm(start)
     estimate = 0.0
     for step in range(steps):
         size = step + 1

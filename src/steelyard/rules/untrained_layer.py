@@ -7,8 +7,8 @@ across the checkpoint that decides which of the layers that passed are reported.
    else that many drawn uniformly with replacement: i.i.d. draws from the layer's weights,
    the case the Dvoretzky–Kiefer–Wolfowitz bound of step 4 is stated for) is compared with
    each standard initializer for the layer's fan-in and fan-out by the Kolmogorov–Smirnov
-   distance D = supₓ |F_n(x) − F(x)|. The candidates, with fan_in = (in/groups)·prod(kernel) and
-   fan_out = out·prod(kernel) as PyTorch and Keras compute them:
+   distance D = supₓ |F_n(x) − F(x)|. The candidates, with fan_in =
+   (in/groups)·prod(kernel) and fan_out = out·prod(kernel) as PyTorch and Keras compute them:
 
    * ``pytorch-default``: U(±1/√fan_in). PyTorch's Linear and Conv layers use
      kaiming_uniform with a = √5, whose bound gain·√(3/fan_in) with gain = √(2/(1+a²)) is

@@ -36,14 +36,25 @@ _LOW_HALF = np.uint32(0xFFFF)
 
 
 def _order_keys(high: np.ndarray) -> np.ndarray:
-    """bf16 bit patterns (uint16) to keys that order as the floats do, in place: a negative's
-    bits all flipped, a positive's sign bit set (the usual float-to-integer sort key); the
-    map is its own inverse on the key's top bit read the other way round."""
+    """bf16 bit patterns (uint16) to keys that order as the floats do, in place: a
+    negative's bits all flipped, a positive's sign bit set (the usual float-to-integer sort
+    key)."""
     flip = high >> 15  # 1 for a negative
     np.negative(flip, out=flip)  # 0xFFFF for a negative, 0 for a positive (uint16 wraps)
     flip |= np.uint16(0x8000)
     high ^= flip
     return high
+
+
+def _bf16_patterns(keys: np.ndarray) -> np.ndarray:
+    """The inverse of :func:`_order_keys`, in place: a key whose top bit is clear came from a
+    negative (all its bits flipped), one whose top bit is set from a positive."""
+    flip = keys >> 15
+    flip ^= np.uint16(1)  # 1 for a negative
+    np.negative(flip, out=flip)
+    flip |= np.uint16(0x8000)
+    keys ^= flip
+    return keys
 
 
 def sorted_wide(values: np.ndarray) -> np.ndarray:
@@ -65,13 +76,7 @@ def sorted_wide(values: np.ndarray) -> np.ndarray:
         return np.sort(flat).astype(np.float64)
     keys = _order_keys(high)
     keys.sort(kind="stable")
-    # back: a key with its top bit clear was a negative (all bits flipped)
-    flip = keys >> 15
-    flip ^= np.uint16(1)
-    np.negative(flip, out=flip)
-    flip |= np.uint16(0x8000)
-    keys ^= flip
-    wide = keys.astype(np.uint32)
+    wide = _bf16_patterns(keys).astype(np.uint32)
     wide <<= 16
     out = np.empty(flat.size, dtype=np.float64)
     out[...] = wide.view(np.float32)

@@ -35,26 +35,28 @@ def row_norms(matrix: np.ndarray) -> np.ndarray:
 _LOW_HALF = np.uint32(0xFFFF)
 
 
+def _flip(patterns: np.ndarray, negative: np.ndarray) -> np.ndarray:
+    """The usual float-to-integer sort key on 16-bit patterns, in place, and its inverse:
+    where ``negative`` is 1 every bit flips, elsewhere only the top one (``negative`` is
+    used as scratch)."""
+    np.negative(negative, out=negative)  # 0xFFFF where 1, 0 elsewhere (uint16 wraps)
+    negative |= np.uint16(0x8000)
+    patterns ^= negative
+    return patterns
+
+
 def _order_keys(high: np.ndarray) -> np.ndarray:
     """bf16 bit patterns (uint16) to keys that order as the floats do, in place: a
-    negative's bits all flipped, a positive's sign bit set (the usual float-to-integer sort
-    key)."""
-    flip = high >> 15  # 1 for a negative
-    np.negative(flip, out=flip)  # 0xFFFF for a negative, 0 for a positive (uint16 wraps)
-    flip |= np.uint16(0x8000)
-    high ^= flip
-    return high
+    negative's bits all flipped, a positive's sign bit set."""
+    return _flip(high, high >> 15)
 
 
 def _bf16_patterns(keys: np.ndarray) -> np.ndarray:
     """The inverse of :func:`_order_keys`, in place: a key whose top bit is clear came from a
-    negative (all its bits flipped), one whose top bit is set from a positive."""
-    flip = keys >> 15
-    flip ^= np.uint16(1)  # 1 for a negative
-    np.negative(flip, out=flip)
-    flip |= np.uint16(0x8000)
-    keys ^= flip
-    return keys
+    negative, one whose top bit is set from a positive."""
+    negative = keys >> 15
+    negative ^= np.uint16(1)
+    return _flip(keys, negative)
 
 
 def sorted_wide(values: np.ndarray) -> np.ndarray:

@@ -398,6 +398,30 @@ def run_child(script: Path, args: list[str], env: dict[str, str] | None = None) 
     return result
 
 
+def run_children(
+    script: Path, args: list[list[str]], env: dict[str, str] | None = None
+) -> list[dict[str, Any]]:
+    """:func:`run_child` for each of ``args``, all at once (each in its own interpreter)."""
+    merged = {**os.environ, **(env or {})}
+    running = [
+        subprocess.Popen(
+            [sys.executable, str(script), "--child", *a],
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+            text=True,
+            env=merged,
+        )
+        for a in args
+    ]
+    results = []
+    for a, process in zip(args, running, strict=True):
+        out, err = process.communicate()
+        if process.returncode != 0:
+            raise RuntimeError(f"child {a} failed:\n{err[-4000:]}")
+        results.append(json.loads(out.strip().splitlines()[-1]))
+    return results
+
+
 def emit(result: dict[str, Any]) -> None:
     """A child's result, as the last line of stdout."""
     print(json.dumps(result), flush=True)

@@ -32,7 +32,11 @@ just before each family's steps):
 * ``audit-1``: the same with ``jobs=1``: how the audit scales with cores, and whether its
   report (all but the creation time) is the same as with the default jobs;
 * ``searched``: the same with ``twin-units``'s ``report-unlinked`` on, so every layer is
-  twin-searched (a llama block's projections otherwise are not: no consumer to merge into).
+  twin-searched (a llama block's projections otherwise are not: no consumer to merge into);
+* ``pair``: two ``audit-1`` children at once, each in its own process, their timed calls
+  started together: how much two independent audits slow each other on this machine (the
+  memory system, caches, the host's scheduling). ``2 × audit-1 / pair`` is the most any
+  two-worker audit could gain here, whatever its design: the ceiling of ``jobs 2``.
 
 ``scan``, ``audit`` and ``searched`` children first import what they need and run their
 step once on a tiny checkpoint (lazy imports), untimed but reported as ``startup``; the
@@ -66,6 +70,7 @@ from _common import (
     mib,
     rule_shares,
     run_child,
+    run_children,
     shard_files,
     write_checkpoint,
 )
@@ -77,7 +82,9 @@ SIZES = {
 }
 TINY = Shape(vocab=256, hidden=64, intermediate=128, layers=1)
 FAMILIES = ("gaussian", "trained", "lowrank-heavytail", "outlier-channels", "near-duplicate")
-STEPS = ("floor", "scan", "audit", "audit-1", "searched")
+STEPS = ("floor", "scan", "audit", "audit-1", "searched", "pair")
+#: Seconds the two children of ``pair`` are given to start before their timed calls begin.
+PAIR_START = 4.0
 SHARD_BYTES = 3 * 2**29  # 1.5 GiB
 CHUNK = 16 * 2**20
 GIB = 2**30
@@ -140,11 +147,14 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
         import ml_dtypes  # noqa: F401 - the numpy backend of safetensors needs it for bf16
 
         scan(tiny)
-    elif step in ("audit", "audit-1", "searched"):
+    elif step in ("audit", "audit-1", "searched", "pair"):
         from steelyard.api import audit
 
         audit(tiny, policy=_policy(step))
     startup = time.perf_counter() - started
+    if step == "pair":
+        # Both children begin their timed call at the same wall-clock instant.
+        time.sleep(max(0.0, float(os.environ["STEELYARD_BENCH_START"]) - time.time()))
     # No polling thread while timed (see MemoryProbe): VmHWM gives the peak RSS.
     with MemoryProbe(sample=False) as probe:
         start = time.perf_counter()
@@ -153,7 +163,8 @@ def child(step: str, path_text: str, tiny_text: str) -> None:
         elif step == "scan":
             scan(path)
         else:
-            report = audit(path, policy=_policy(step), jobs=1 if step == "audit-1" else None)
+            one = step in ("audit-1", "pair")
+            report = audit(path, policy=_policy(step), jobs=1 if one else None)
             extra["findings"] = len(report.audits[0].findings)
         seconds = time.perf_counter() - start
     if step in ("audit", "audit-1"):
@@ -205,7 +216,14 @@ def measure(
             warm(paths[family])
             for step in STEPS:
                 loads.append(os.getloadavg()[0])
-                result = run_child(Path(__file__), [step, str(paths[family]), str(tiny)])
+                args = [step, str(paths[family]), str(tiny)]
+                if step == "pair":
+                    start = {"STEELYARD_BENCH_START": str(time.time() + PAIR_START)}
+                    both = run_children(Path(__file__), [args, args], start)
+                    result = {**both[0], "seconds": statistics.mean(r["seconds"] for r in both)}
+                    result["vm_hwm"] = max(r["vm_hwm"] for r in both)
+                else:
+                    result = run_child(Path(__file__), args)
                 runs[family][step].append(result)
         print(f"  round {round_index + 1}/{rounds} done, load {os.getloadavg()[0]:.2f}", flush=True)
     summary: dict[str, Any] = {"size": size, "parameters": shape.parameters, "families": {}}
@@ -242,10 +260,13 @@ def print_summary(summary: dict[str, Any]) -> None:
     )
     print(
         "| family | floor | scan | audit | audit/scan | audit/floor | jobs 1 | jobs 1 / jobs 2 "
-        "| same report | searched | searched/scan | searched/floor "
-        "| peak RSS floor / scan / audit / audit-1 / searched | findings |"
+        "| pair | jobs 2 ceiling | same report | searched | searched/scan | searched/floor "
+        "| peak RSS floor / scan / audit / audit-1 / searched / pair | findings |"
     )
-    print("| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: | ---: | ---: | --- | ---: |")
+    print(
+        "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: | --- | ---: | ---: "
+        "| ---: | --- | ---: |"
+    )
     for family, data in summary["families"].items():
         if not data["steps"]:
             continue
@@ -258,6 +279,7 @@ def print_summary(summary: dict[str, Any]) -> None:
             f"| {family} | {s['floor']:.3f} s | {s['scan']:.2f} s | {s['audit']:.2f} s "
             f"| **{s['audit'] / s['scan']:.2f}**{flag} | {s['audit'] / s['floor']:.0f} "
             f"| {s['audit-1']:.2f} s | {s['audit-1'] / s['audit']:.2f} "
+            f"| {s['pair']:.2f} s | {2 * s['audit-1'] / s['pair']:.2f} "
             f"| {'yes' if same else 'NO'} "
             f"| {s['searched']:.2f} s | {s['searched'] / s['scan']:.2f} "
             f"| {s['searched'] / s['floor']:.0f} | {peaks} "

@@ -63,6 +63,64 @@ def test_a_weight_counted_in_its_own_rms_could_never_pass_so_it_is_left_out() ->
     )
 
 
+def _by_definition(matrix: np.ndarray, sigma: float) -> set[tuple[int, int]]:
+    """Every (unit, input) meeting the page's two inequalities, w² ≥ σ²·(R_j − w²)/(n − 1)
+    and w² ≥ σ²·(C_k − w²)/(m − 1), evaluated in float64 over every weight: the slow
+    reference the rule's blocked scan (and its screening of blocks) must agree with."""
+    wide = matrix.astype(np.float64)
+    w2 = wide**2
+    m, n = wide.shape
+    rows = w2.sum(axis=1, keepdims=True)
+    columns = w2.sum(axis=0, keepdims=True)
+    s2 = sigma * sigma
+    hit = (w2 * (n - 1) >= s2 * (rows - w2)) & (w2 * (m - 1) >= s2 * (columns - w2))
+    hit &= np.isfinite(w2) & (w2 > 0)
+    return {(int(u), int(k)) for u, k in zip(*np.nonzero(hit), strict=True)}
+
+
+def _weights(kind: str, rows: int, cols: int, rng: np.random.Generator) -> np.ndarray:
+    if kind == "gaussian":  # never trained: every other block is passed over
+        out = rng.standard_normal((rows, cols))
+    elif kind == "scaled-rows":  # trained-like: rows of lognormal scale, Student-t weights
+        out = rng.standard_t(4, (rows, cols)) * np.exp(rng.normal(0, 0.7, (rows, 1)))
+    else:  # gaussian with zero rows, a NaN row and spikes late in the layer
+        out = rng.standard_normal((rows, cols))
+        out[::7] = 0.0
+        out[3, 5] = np.nan
+    out = out.astype(np.float32)
+    if kind != "gaussian":
+        # Spikes in the first block (so the screening gives up after two) and in the last.
+        for u in (1, rows // 2, rows - 2):
+            out[u, (7 * u) % cols] = 60.0 * float(np.sqrt(np.nanmean(out[u + 1] ** 2)))
+    return out
+
+
+@pytest.mark.parametrize("kind", ["gaussian", "scaled-rows", "holes-and-spikes"])
+@pytest.mark.parametrize("shape", [(64, 96), (1408, 512), (300, 4100)])
+def test_the_blocked_scan_finds_exactly_what_the_definition_does(
+    kind: str, shape: tuple[int, int]
+) -> None:
+    # The test as the rule's page writes it, over every weight in float64 (definition above).
+    # Shapes from one block to many (1 MiB row blocks); the screening that passes over a
+    # block whose largest weight is below all its row limits must never lose a weight.
+    base = _weights(kind, *shape, np.random.default_rng(sum(shape)))
+    for sigma in (6.0, 20.0):
+        matrix = base.copy()
+        if kind == "gaussian":
+            # One weight only 2 % beyond both of its limits, in the first block: a screening
+            # that skipped a block wrongly would lose it.
+            u, k = 2, 3
+            matrix[u, k] = 0.0
+            rest = max(
+                float(np.sqrt((matrix[u].astype(np.float64) ** 2).sum() / (shape[1] - 1))),
+                float(np.sqrt((matrix[:, k].astype(np.float64) ** 2).sum() / (shape[0] - 1))),
+            )
+            matrix[u, k] = 1.02 * sigma * rest
+        expected = _by_definition(matrix, sigma)
+        assert expected  # the planted weights are there to be found
+        assert measure(matrix, sigma).positions == expected
+
+
 def test_zero_rows_hold_no_outlier_weight_and_are_not_candidates() -> None:
     # A pruned or never-written layer: most rows all zero. A zero weight is never an outlier
     # (its row limit is 0 and it does not exceed it); the rows with a real spike still count.

@@ -12,7 +12,10 @@ over the column's ``m = units`` (a convolution's column is one input channel at 
 position). Leaving the weight out of its own scale matters: with it, no weight can exceed
 ``√n`` RMS of its row (128 inputs: 11.3), however large it is. Rearranged,
 ``w² · (n − 1 + sigma²) ≥ sigma² · R_j``, the test is one comparison per weight against a
-per-row and a per-column limit, so it costs two vectorised passes over the matrix. The RMS
+per-row and a per-column limit, so it costs at most two vectorised passes over the matrix
+(a block of rows whose largest weight stays within the smallest of their row limits holds no
+candidate and is passed over after two flat reductions, as every block of an untrained layer
+is; the column sums are taken only for the candidates' columns). The RMS
 (not the standard deviation) is the scale because weights are centred near zero and the RMS is
 the larger of the two, so the test is conservative. Layers with fewer than 8 units or inputs
 are skipped (too few weights for a scale).
@@ -144,10 +147,24 @@ def measure(
     # |w| >= sqrt(sigma²·R_j/(n−1+sigma²)) is the row test; in cache-sized row blocks, so
     # |W| and the comparison never leave the cache (the matrix is read once).
     row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    # A row whose limit is 0 holds only zeros and one whose limit is NaN holds a NaN: neither
+    # can have a weight strictly beyond it, so the smallest positive limit bounds the block.
+    positive = np.where(row_limit > 0, row_limit, np.float32(np.inf))
     found_u: list[np.ndarray] = []
     found_k: list[np.ndarray] = []
     scratch = np.empty(0, np.float32)
+    failed = 0
     for a, b in row_blocks(units, fan_in, _SCAN_BYTES):
+        # No weight of the block beyond the smallest limit of its rows: nothing to find. Two
+        # flat reductions cost about a third of the scan (a 1408 x 512 block: 71 against
+        # 205 us), and every block of a layer without heavy tails ends here (a NaN fails the
+        # test). Trained rows differ in scale, so a block's smallest limit is often below its
+        # largest weight: after two blocks that fail, the layer is scanned without the test.
+        if failed < 2:
+            peak = max(float(block[a:b].max()), -float(block[a:b].min()))
+            if peak <= float(positive[a:b].min()):
+                continue
+            failed += 1
         if scratch.size < (b - a) * fan_in:
             scratch = np.empty((b - a) * fan_in, np.float32)
         magnitude = np.abs(block[a:b], out=scratch[: (b - a) * fan_in].reshape(b - a, fan_in))

@@ -22,8 +22,15 @@ Usage: python bench/process_split.py [--weights gaussian|trained] [--rounds 7] [
 
 from __future__ import annotations
 
-import argparse
 import os
+
+# One BLAS thread for the whole process, set before numpy loads OpenBLAS: OpenBLAS stops its
+# threads at a fork and starts them again at the next multi-threaded call, after which they
+# spin for about 100 ms, on the cores the next measurement needs. The audit's layer work
+# runs on one BLAS thread per worker anyway.
+os.environ["OPENBLAS_NUM_THREADS"] = "1"
+
+import argparse
 import shutil
 import statistics
 import struct

@@ -61,9 +61,10 @@ def run_in_lanes(
     if pool is None or jobs <= 1:
         return [work(task) for task in tasks]
     order = sorted(range(len(tasks)), key=lambda i: -cost(tasks[i]))
+    is_small = [small(task) for task in tasks]
     queues: _Queues[T] = _Queues(
-        [(i, tasks[i]) for i in order if not small(tasks[i])],
-        [(i, tasks[i]) for i in order if small(tasks[i])],
+        [(i, tasks[i]) for i in order if not is_small[i]],
+        [(i, tasks[i]) for i in order if is_small[i]],
     )
     results: dict[int, R] = {}
 

@@ -1,0 +1,55 @@
+"""Row and column sums of squares: the float32 fast paths against float64 references."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from threadpoolctl import threadpool_limits
+
+from steelyard.stats.numerics import ROW_DOT_WIDTH, sums_of_squares
+
+
+@pytest.mark.parametrize("width", [8, 64, ROW_DOT_WIDTH - 1, ROW_DOT_WIDTH, 512, 5632, 14336])
+def test_row_sums_match_the_exact_sum_within_float32_rounding(width: int) -> None:
+    rng = np.random.default_rng(width)
+    block = (rng.standard_normal((40, width)) * rng.uniform(1e-3, 10, (40, 1))).astype(np.float32)
+    got = sums_of_squares(block, axis=1)
+    # reference: math.fsum, the correctly rounded sum of the float64 squares
+    exact = np.array([math.fsum(float(x) ** 2 for x in row) for row in block])
+    # a float32 sum of n positive terms is within n·eps32 of the truth (common practice, no
+    # source: the textbook bound for recursive summation); both paths must also stay below it
+    bound = width * np.finfo(np.float32).eps
+    assert np.all(np.abs(got - exact) <= bound * exact)
+    # and the BLAS path is the closer one where it applies (3-6 x on these shapes)
+    if width >= ROW_DOT_WIDTH:
+        plain = np.einsum("ij,ij->i", block, block).astype(np.float64)
+        assert np.max(np.abs(got - exact) / exact) <= np.max(np.abs(plain - exact) / exact)
+
+
+@pytest.mark.parametrize("width", [512, 20_000, 200_000])
+def test_row_sums_do_not_depend_on_the_blas_thread_count(width: int) -> None:
+    rng = np.random.default_rng(1)
+    block = rng.standard_normal((3, width)).astype(np.float32)
+    with threadpool_limits(1, user_api="blas"):
+        one = sums_of_squares(block, axis=1)
+    with threadpool_limits(4, user_api="blas"):
+        four = sums_of_squares(block, axis=1)
+    assert np.array_equal(one, four)
+
+
+def test_column_sums_match_the_float64_sum() -> None:
+    rng = np.random.default_rng(2)
+    block = rng.standard_normal((300, 200)).astype(np.float32)
+    # reference: numpy in float64
+    expected = np.einsum("ij,ij->j", block.astype(np.float64), block.astype(np.float64))
+    np.testing.assert_allclose(sums_of_squares(block, axis=0), expected, rtol=300 * 1.2e-7)
+
+
+def test_strided_rows_give_the_contiguous_answer() -> None:
+    rng = np.random.default_rng(4)
+    block = rng.standard_normal((64, 1024)).astype(np.float32)
+    np.testing.assert_array_equal(
+        sums_of_squares(block[::2], axis=1), sums_of_squares(np.ascontiguousarray(block[::2]), axis=1)
+    )

@@ -89,12 +89,15 @@ def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
 
 
 #: Layers with at most this many weights cost mostly interpreter time (a few hundred small
-#: numpy calls), not passes over memory: one worker prefers them (:mod:`steelyard.work_lanes`).
+#: numpy calls), not passes over memory: one worker runs them all (:mod:`steelyard.work_lanes`).
 SMALL_LAYER = 2**20
 
 
 def _small(layer: Layer) -> bool:
-    return layer.units * layer.fan_in <= SMALL_LAYER
+    # A layer streamed for being over the cache limit is never small (with the default
+    # limits it could not be; a lowered STREAM_BYTES must not make it so).
+    weights = layer.units * layer.fan_in
+    return weights <= SMALL_LAYER and 4 * weights <= STREAM_BYTES
 
 
 def _task_groups(layers: Sequence[Layer]) -> list[tuple[int, ...]]:
@@ -134,8 +137,8 @@ def run_rules(
     Whole-checkpoint rules (and the per-layer rules' ``finish``) run afterwards, one at a
     time. ``jobs`` > 1 runs layer tasks on that many threads, every one with a one-thread
     BLAS; the layers too large for the matrix cache are one task, run one after another, so
-    two of them never hold their working sets at once; one worker takes the small layers
-    first and the others the rest (:mod:`steelyard.work_lanes`); numpy, BLAS, file reads and
+    two of them never hold their working sets at once; one worker runs all the small layers
+    and the others only the rest (:mod:`steelyard.work_lanes`); numpy, BLAS, file reads and
     hashing release the GIL in the heavy loops, so threads rather than processes. The
     findings are collected in the same order as with one, so the report does not depend on
     ``jobs``.

@@ -1,16 +1,16 @@
-"""Two queues of layer tasks for the audit's workers: one worker prefers the small ones.
+"""Two queues of layer tasks for the audit's workers: one worker runs all the small ones.
 
 A small layer's time is mostly interpreter time (a few hundred small numpy calls), which one
-thread holds at a time: two workers on small layers at once hand the interpreter lock over at
-almost every call and each goes 2-3 × slower. A large layer's time is mostly numpy loops,
-file reads and hashing, which release it. So worker 0 takes the small tasks first and the
-others the large ones first, and the two overlap; a worker whose queue is empty takes from
-the other one, so neither kind waits for a worker (an i.i.d. model's small layers, each with
-a full untrained-layer test, are more work than its large ones).
+thread holds at a time. Two workers on small layers at once hand the interpreter lock back
+and forth at almost every call, and each goes 2-3 × slower, so together they finish fewer
+layers than one worker alone (21M bf16 i.i.d.: a 512 × 512 layer took 1.8 ms alone and
+4-5.7 ms beside another; docs/performance.md, section B, "Ninth session"). A large layer's
+time is mostly numpy loops, file reads and hashing, which release it. So worker 0 takes the
+small tasks, then large ones from the back of their queue; the other workers take only
+large tasks and stop when none is left, rather than take small ones.
 
-Each queue is ordered costliest first (longest processing time first, Graham 1969); a worker
-takes from the front of its own queue and from the back of the other, so the last tasks of
-the run are small ones. Results come back in the tasks' own order, whatever ran where.
+Each queue is ordered costliest first (longest processing time first, Graham 1969). Results
+come back in the tasks' own order, whatever ran where.
 """
 
 from __future__ import annotations
@@ -30,20 +30,20 @@ class _Queues(Generic[T]):
 
     def __init__(self, large: list[tuple[int, T]], small: list[tuple[int, T]]) -> None:
         self._lock = threading.Lock()
-        self._queues = (deque(large), deque(small))
+        self._large, self._small = deque(large), deque(small)
         self.failed = False
 
-    def take(self, prefer_small: bool) -> tuple[int, T] | None:
-        """The next task for a worker: the front of its own queue, else the back of the
-        other; None when both are empty or a task has failed."""
-        own, other = (1, 0) if prefer_small else (0, 1)
+    def take(self, small_lane: bool) -> tuple[int, T] | None:
+        """The next task for a worker: for the small lane the front of the small queue, else
+        the back of the large one; for the others the front of the large queue. None when
+        there is none for this worker or a task has failed."""
         with self._lock:
             if self.failed:
                 return None
-            if self._queues[own]:
-                return self._queues[own].popleft()
-            if self._queues[other]:
-                return self._queues[other].pop()
+            if small_lane and self._small:
+                return self._small.popleft()
+            if self._large:
+                return self._large.pop() if small_lane else self._large.popleft()
             return None
 
 
@@ -56,8 +56,9 @@ def run_in_lanes(
     small: Callable[[T], bool],
 ) -> list[R]:
     """``[work(t) for t in tasks]``; on ``jobs`` workers of ``pool`` when there is one, worker
-    0 preferring the tasks for which ``small`` holds and the others the rest (see the module).
-    The pool may already be busy with other work; a worker starts when a thread is free."""
+    0 running every task for which ``small`` holds and the others only the rest (see the
+    module). The pool may already be busy with other work; a worker starts when a thread is
+    free."""
     if pool is None or jobs <= 1:
         return [work(task) for task in tasks]
     order = sorted(range(len(tasks)), key=lambda i: -cost(tasks[i]))
@@ -68,8 +69,8 @@ def run_in_lanes(
     )
     results: dict[int, R] = {}
 
-    def worker(prefer_small: bool) -> None:
-        while (taken := queues.take(prefer_small)) is not None:
+    def worker(small_lane: bool) -> None:
+        while (taken := queues.take(small_lane)) is not None:
             index, task = taken
             try:
                 results[index] = work(task)

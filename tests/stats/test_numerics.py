@@ -22,8 +22,9 @@ def test_row_sums_match_the_exact_sum_within_float32_rounding(width: int) -> Non
     # source: the textbook bound for recursive summation); both paths must also stay below it
     bound = width * np.finfo(np.float32).eps
     assert np.all(np.abs(got - exact) <= bound * exact)
-    # and the BLAS path is the closer one where it applies (3-6 x on these shapes)
-    if width >= ROW_DOT_WIDTH:
+    # and from 512 inputs the BLAS path is the closer one (3-6 x on these shapes; at 128 it
+    # was the farther one for 8 of 200 seeds, so it is not asserted there)
+    if width >= 512:
         plain = np.einsum("ij,ij->i", block, block).astype(np.float64)
         assert np.max(np.abs(got - exact) / exact) <= np.max(np.abs(plain - exact) / exact)
 

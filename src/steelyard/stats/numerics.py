@@ -24,10 +24,10 @@ def sums_of_squares(block: np.ndarray, axis: int) -> np.ndarray:
 
     Rows of ``ROW_DOT_WIDTH`` or more go through ``matmul`` as one (1 × n)·(n × 1) product
     per row, which numpy hands to BLAS: 2.2-3 × faster than ``einsum`` on 512-5632-wide
-    weight rows, and 3-6 × closer to the float64 sum (BLAS keeps several partial sums;
-    einsum one running sum). Measured on this project's benchmark host, docs/performance.md
-    ("Ninth session"). The result does not depend on BLAS's thread count (checked up to
-    200,000-wide rows, tests/stats/test_numerics.py).
+    weight rows and, from 512 inputs on, 3-6 × closer to the float64 sum (BLAS keeps several
+    partial sums, einsum one running sum). Measured on this project's benchmark host,
+    docs/performance.md ("Ninth session"). The result does not depend on BLAS's thread count
+    (checked up to 200,000-wide rows, tests/stats/test_numerics.py).
     """
     if axis == 1 and block.ndim == 2 and block.shape[1] >= ROW_DOT_WIDTH:
         # matmul reports float32 overflow (einsum does not); those rows are redone below

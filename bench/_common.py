@@ -384,24 +384,14 @@ class MemoryProbe:
 
 def run_child(script: Path, args: list[str], env: dict[str, str] | None = None) -> dict[str, Any]:
     """Run ``script --child args`` in a fresh interpreter; its last stdout line is JSON."""
-    merged = {**os.environ, **(env or {})}
-    done = subprocess.run(
-        [sys.executable, str(script), "--child", *args],
-        capture_output=True,
-        text=True,
-        env=merged,
-        check=False,
-    )
-    if done.returncode != 0:
-        raise RuntimeError(f"child {args} failed:\n{done.stderr[-4000:]}")
-    result: dict[str, Any] = json.loads(done.stdout.strip().splitlines()[-1])
-    return result
+    return run_children(script, [args], env)[0]
 
 
 def run_children(
     script: Path, args: list[list[str]], env: dict[str, str] | None = None
 ) -> list[dict[str, Any]]:
-    """:func:`run_child` for each of ``args``, all at once (each in its own interpreter)."""
+    """``script --child a`` for each ``a`` of ``args``, all at once, each in a fresh
+    interpreter; the last stdout line of each is JSON."""
     merged = {**os.environ, **(env or {})}
     running = [
         subprocess.Popen(

@@ -93,11 +93,15 @@ def _parameters(checkpoint: Checkpoint, layer: Layer) -> int:
 SMALL_LAYER = 2**20
 
 
+def _streamed(layer: Layer) -> bool:
+    """Whether the layer's float32 matrix is over the cache limit (streamed, never cached)."""
+    return 4 * layer.units * layer.fan_in > STREAM_BYTES
+
+
 def _small(layer: Layer) -> bool:
-    # A layer streamed for being over the cache limit is never small (with the default
-    # limits it could not be; a lowered STREAM_BYTES must not make it so).
-    weights = layer.units * layer.fan_in
-    return weights <= SMALL_LAYER and 4 * weights <= STREAM_BYTES
+    # A streamed layer is never small (with the default limits it could not be; a lowered
+    # STREAM_BYTES must not make it so).
+    return layer.units * layer.fan_in <= SMALL_LAYER and not _streamed(layer)
 
 
 def _task_groups(layers: Sequence[Layer]) -> list[tuple[int, ...]]:
@@ -112,7 +116,7 @@ def _task_groups(layers: Sequence[Layer]) -> list[tuple[int, ...]]:
     one-thread BLAS: with two, OpenBLAS summed float32 products in an order that depended on
     whether the main thread (jobs 1) or a worker (jobs 2) called it, so the report depended
     on ``jobs`` (untrained-token's residuals differed in the 8th digit)."""
-    large = [4 * layer.units * layer.fan_in > STREAM_BYTES for layer in layers]
+    large = [_streamed(layer) for layer in layers]
     chained = tuple(i for i, is_large in enumerate(large) if is_large)
     return ([chained] if chained else []) + [(i,) for i, is_large in enumerate(large) if not is_large]
 

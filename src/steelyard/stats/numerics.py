@@ -29,17 +29,17 @@ def sums_of_squares(block: np.ndarray, axis: int) -> np.ndarray:
     docs/performance.md ("Ninth session"). The result does not depend on BLAS's thread count
     (checked up to 200,000-wide rows, tests/stats/test_numerics.py).
     """
+    spec = "ij,ij->i" if axis == 1 else "ij,ij->j"
     if axis == 1 and block.ndim == 2 and block.shape[1] >= ROW_DOT_WIDTH:
         # matmul reports float32 overflow (einsum does not); those rows are redone below
         with np.errstate(over="ignore", invalid="ignore"):
             rough = np.matmul(block[:, None, :], block[:, :, None]).reshape(-1)
     else:
-        rough = np.einsum("ij,ij->i" if axis == 1 else "ij,ij->j", block, block)
+        rough = np.einsum(spec, block, block)
     out = rough.astype(np.float64)
     risky = np.flatnonzero(~((rough >= 1e-30) & (rough <= 1e30)))
     if risky.size:
         part = block[risky] if axis == 1 else block[:, risky]
-        spec = "ij,ij->i" if axis == 1 else "ij,ij->j"
         out[risky] = np.einsum(spec, part, part, dtype=np.float64)
     return out
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from steelyard.stats.numerics import ROW_DOT_WIDTH, sums_of_squares
+from steelyard.stats.numerics import ROW_DOT_WIDTH, median_of, sums_of_squares
 
 
 @pytest.mark.parametrize("width", [8, 64, ROW_DOT_WIDTH - 1, ROW_DOT_WIDTH, 512, 5632, 14336])
@@ -54,3 +54,31 @@ def test_strided_rows_give_the_contiguous_answer() -> None:
     np.testing.assert_array_equal(
         sums_of_squares(block[::2], axis=1), sums_of_squares(np.ascontiguousarray(block[::2]), axis=1)
     )
+
+
+@pytest.mark.parametrize("dtype", [np.float16, np.float32, np.float64, np.int64])
+def test_median_of_is_numpys_median_bit_for_bit(dtype: type) -> None:
+    """``median_of`` against ``numpy.median`` (the reference it replaces): odd and even sizes,
+    ties, a NaN among the values, several dtypes; the same float, sign included."""
+    rng = np.random.default_rng(11)
+    for trial in range(600):
+        n = int(rng.integers(1, 400))
+        values = (rng.standard_normal(n) * 10).astype(dtype)
+        if trial % 3 == 0:
+            values = np.round(values)  # many ties
+        if trial % 5 == 0 and np.issubdtype(dtype, np.floating):
+            values[rng.integers(0, n)] = np.nan
+        expected = float(np.median(values))
+        got = median_of(values)
+        if np.isnan(expected):
+            assert np.isnan(got)
+        else:
+            assert got == expected and np.signbit(got) == np.signbit(expected)
+
+
+def test_median_of_flattens_and_takes_lists() -> None:
+    """Like numpy.median without an axis: every value of an array, or of a list of floats."""
+    assert median_of(np.array([[1, 5], [3, 4]], np.float32)) == 3.5
+    assert median_of([0.25, 2.0, 1.0]) == 1.0
+    assert np.isnan(median_of(np.zeros(0)))
+

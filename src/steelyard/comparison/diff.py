@@ -31,6 +31,7 @@ from steelyard.policy import Policy
 from steelyard.rules import dead_unit
 from steelyard.rules.base import AuditContext
 from steelyard.stats import LayerStats, read_stored
+from steelyard.stats.numerics import median_of
 
 #: Units listed in a layer's "most changed units".
 TOP_UNITS = 5
@@ -119,7 +120,7 @@ def row_steps(quantized: np.ndarray, values: np.ndarray) -> np.ndarray | None:
     with np.errstate(divide="ignore", invalid="ignore"):
         step = np.where(span > 0, (d[rows, high] - d[rows, low]) / span, np.nan)
     known = step[np.isfinite(step)]
-    fill = float(np.median(np.abs(known))) if known.size else 0.0
+    fill = median_of(np.abs(known)) if known.size else 0.0
     step = np.where(np.isfinite(step), step, 0.0)
     predicted = d[rows, low][:, None] + step[:, None] * (q - q[rows, low][:, None])
     scale = np.maximum(np.abs(d).max(axis=1, keepdims=True), 1e-30)
@@ -394,7 +395,7 @@ def fan_in_summary(norms: np.ndarray) -> tuple[float, float, float]:
     finite = norms[np.isfinite(norms)]
     if not finite.size:
         return (math.nan, math.nan, math.nan)
-    return (float(finite.min()), float(np.median(finite)), float(finite.max()))
+    return (float(finite.min()), median_of(finite), float(finite.max()))
 
 
 @dataclass(frozen=True, slots=True)
@@ -524,7 +525,7 @@ def _vector_step(
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.abs(values.astype(np.float64) / stored)
     known = ratio[np.isfinite(ratio) & (stored != 0)]
-    fill = float(np.median(known)) if known.size else 0.0
+    fill = median_of(known) if known.size else 0.0
     return np.where((stored != 0) & np.isfinite(ratio), ratio, fill)
 
 

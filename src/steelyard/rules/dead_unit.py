@@ -70,6 +70,7 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import median_of
 
 
 @dataclass(frozen=True)
@@ -88,7 +89,7 @@ def _constant(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[
     finite = rows[np.isfinite(rows)]
     if finite.size == 0:
         return set()
-    limit = max(limits.floor, limits.constant * float(np.median(finite)))
+    limit = max(limits.floor, limits.constant * median_of(finite))
     return {int(u) for u in np.flatnonzero(rows <= limit)}
 
 
@@ -102,7 +103,7 @@ def _unused(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[in
         if norms is None:
             return set()
         finite = norms[np.isfinite(norms)]
-        median = float(np.median(finite)) if finite.size else 0.0
+        median = median_of(finite) if finite.size else 0.0
         if median <= 0:
             return set()
         unused &= norms <= limits.unused * median
@@ -132,7 +133,7 @@ def _silenced(ctx: AuditContext, limits: DeadUnitSettings, layer: Layer) -> set[
     if gamma is None:
         return set()
     magnitude = np.abs(gamma.astype(np.float64))
-    median = float(np.median(magnitude))
+    median = median_of(magnitude)
     if median <= 0:
         return set()
     return {int(u) for u in np.flatnonzero(magnitude <= limits.silenced * median)}

@@ -47,6 +47,7 @@ from steelyard.graph import Layer, LayerKind
 from steelyard.numbers import count, measured
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import median_of
 
 _TOP = 10
 
@@ -81,7 +82,7 @@ def _relative(ctx: AuditContext, limits: FanInNormSettings, layer: Layer) -> Ite
     finite = norms[np.isfinite(norms)]
     if finite.size < 2:
         return
-    median = float(np.median(finite))
+    median = median_of(finite)
     ratio_limit = limits.ratio
     absolute = limits.max_norm
     tests: list[tuple[str, float]] = []
@@ -107,7 +108,7 @@ def _relative(ctx: AuditContext, limits: FanInNormSettings, layer: Layer) -> Ite
         if layer.norm is not None:
             severity, status = Severity.INFO, "normalised"
         elif out_norms is not None and test == "relative":
-            out_median = float(np.median(out_norms))
+            out_median = median_of(out_norms)
             product = (
                 (norms[hit] / median) * (out_norms[hit] / out_median) if out_median > 0 else None
             )

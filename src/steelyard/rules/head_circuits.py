@@ -80,6 +80,7 @@ from steelyard.numbers import measured as shown
 from steelyard.rules import _circuits as circ
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import median_of
 from steelyard.transformer.model import AttentionBlock
 
 
@@ -271,7 +272,7 @@ def _finding(layer: Layer, part: str, score_: float, message: str, hint: str, ev
 
 def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: HeadCircuitsSettings) -> Iterator[Finding]:
     ov = np.array([h.ov for h in heads])
-    median = float(np.median(ov))
+    median = median_of(ov)
     count = len(heads)
     idle = {h.index for h in heads if h.ov <= limits.idle_share * median}
 
@@ -292,7 +293,7 @@ def _judge(block: AttentionBlock, layer: Layer, heads: list[_Head], limits: Head
                 evidence(h),
             )
         others = np.delete(ov, heads.index(h))
-        rest = float(np.median(others)) if len(others) else 0.0
+        rest = median_of(others) if len(others) else 0.0
         if rest > 0 and h.ov >= limits.dominant_ratio * rest:
             yield _finding(
                 layer, f"head {h.index}",

@@ -72,6 +72,7 @@ from steelyard.graph import Layer
 from steelyard.numbers import measured as shown
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, fraction, threshold
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import median_of
 from steelyard.transformer.model import ExpertBlock
 
 _SEED = 1701
@@ -123,7 +124,7 @@ def _measure(matrix: np.ndarray, count: int, rows: np.ndarray | None = None) -> 
     flat = matrix.reshape(-1)
     return _Part(
         squared=float(np.sum(rows**2)),
-        fan_in_median=float(np.median(rows)) if rows.size else 0.0,
+        fan_in_median=median_of(rows) if rows.size else 0.0,
         fan_in_max=float(rows.max()) if rows.size else 0.0,
         sample=np.ascontiguousarray(flat[_positions(flat.size, count)], dtype=np.float32),
     )
@@ -241,8 +242,8 @@ def _judge(
         scale = np.outer(lengths, lengths)
         cosine = np.divide(gram, scale, out=np.zeros_like(gram), where=scale > 0)
     np.fill_diagonal(cosine, -np.inf)
-    median = float(np.median(norms))
-    router_median = float(np.median(router)) if router is not None else None
+    median = median_of(norms)
+    router_median = median_of(router) if router is not None else None
 
     def evidence(e: int) -> dict[str, object]:
         nearest = int(np.argmax(cosine[e]))

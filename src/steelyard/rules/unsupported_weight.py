@@ -107,6 +107,7 @@ from steelyard.rules.base import (
 from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
 from steelyard.stats.folding import fold_scale
+from steelyard.stats.numerics import median_of
 
 _TOP = 10
 _ADAM_EPS = 1e-8
@@ -291,11 +292,11 @@ def _equilibrium(
     pull = lam[counted] * magnitude[counted] + penalty.l1
     with np.errstate(divide="ignore", invalid="ignore"):
         ratios = np.where(grads[counted] > 0, pull / grads[counted], np.inf)
-    ratio = float(np.median(ratios))
+    ratio = median_of(ratios)
     q25, q75 = (float(q) for q in np.quantile(ratios, [0.25, 0.75]))
     band = limits.equilibrium_band
     inside = 1.0 / band <= ratio <= band
-    lam_eff = float(np.median(lam[counted]))
+    lam_eff = median_of(lam[counted])
     shown = measured(ratio) if np.isfinite(ratio) else "infinite"
     message = (
         f"equilibrium ratio (λ_eff·|w| + l1)/|∂E/∂w| = {shown} (median over {count(int(counted.sum()))} "

@@ -84,6 +84,7 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.safepath import read_beside
+from steelyard.stats.numerics import median_of
 
 _SAMPLE = 2048
 _POWER = 2
@@ -279,9 +280,9 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
 def _classify(found: TokenRows, limits: UntrainedTokenSettings) -> dict[int, tuple[str, float]]:
     """Token → (test, residual ratio) for every flagged token."""
     out: dict[int, tuple[str, float]] = {}
-    median_norm = float(np.median(found.norms))
-    median_centred = float(np.median(found.centred_norms))
-    median_residual = float(np.median(found.residuals))
+    median_norm = median_of(found.norms)
+    median_centred = median_of(found.centred_norms)
+    median_residual = median_of(found.residuals)
     ratio = found.residuals / median_residual if median_residual > 0 else np.ones_like(found.residuals)
     tests = (
         ("zero row", found.norms <= limits.zero_norm * median_norm),
@@ -346,7 +347,7 @@ def check_layer(
             "matrix": role,
             "counts": counts,
             "tokens": listed,
-            "median_residual": float(np.median(found.residuals)),
+            "median_residual": median_of(found.residuals),
             "principal_directions": limits.principal_directions,
         },
     )

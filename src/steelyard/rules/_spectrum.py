@@ -48,7 +48,14 @@ from dataclasses import dataclass
 import numpy as np
 
 #: Matrices with at most this many entries get a full SVD; larger ones the iteration below.
-SVD_ENTRIES = 2**16
+#: (A full SVD costs about m·n·min(m, n): 0.2 ms at 2^13 entries here, but 1.5-5 ms at 2^16,
+#: where the iteration takes 0.4-0.6 ms; docs/performance.md, "Tenth session".)
+SVD_ENTRIES = 2**13
+#: Matrices of up to this many entries (searched whole) take at least ``CLOSE_STEPS`` steps.
+CLOSE_ENTRIES = 2**16
+#: The iteration's least number of steps on those: close to the exact value on a bulk without
+#: outliers, which is what the full SVD gave them before (see :func:`edge_check`).
+CLOSE_STEPS = 16
 #: Matrices up to this many entries are searched whole; larger ones on a row subsample.
 WHOLE_ENTRIES = 2**17
 #: At most one row in this many is kept in a subsample.
@@ -104,8 +111,18 @@ def edge_check(rows: np.ndarray, sigma: float, allowed: float, seed: int = 0) ->
     edge = mp_edge(sigma, kept, n)
     fluctuation = edge_fluctuation(sigma, kept, n)
     limit = edge + allowed * fluctuation
+    # Up to CLOSE_ENTRIES the search takes CLOSE_STEPS steps before it may stop on small gains:
+    # after 8, a bulk without outliers can still be several fluctuations short of its top
+    # value (1,600 draws of 96 × 128 to 1024 × 64: p99 3.6, worst 5.9), after 16 about two at
+    # worst (p99 0.8, worst 1.8; 2.0 in the tests' draws), and the verdict was the full SVD's on all 4,000 draws with and
+    # without learned directions, against 3 borderline misses at 8 (bench/spectrum_paths.py).
     top, method = top_singular_value(
-        rows, seed, tolerance=0.05 * fluctuation, stop_above=limit, share_of_gap=0.1
+        rows,
+        seed,
+        tolerance=0.05 * fluctuation,
+        stop_above=limit,
+        share_of_gap=0.1,
+        min_steps=CLOSE_STEPS if kept * n <= CLOSE_ENTRIES else MIN_STEPS,
     )
     return EdgeCheck(top, edge, fluctuation, kept, method)
 
@@ -125,10 +142,10 @@ def _norm(vector: np.ndarray) -> float:
     return float(np.sqrt(vector @ vector))
 
 
-def _ritz_wanted(step: int) -> bool:
-    """Whether to compute the estimate after ``step`` steps: every step from ``MIN_STEPS`` on,
-    before that at 1, 2 and 4 steps (enough to stop early on a strong outlier)."""
-    return step >= MIN_STEPS or step in (1, 2, 4)
+def _ritz_wanted(step: int, min_steps: int) -> bool:
+    """Whether to compute the estimate after ``step`` steps: every step from ``min_steps`` on,
+    before that at 1, 2, 4 and 8 steps (enough to stop early on a strong outlier)."""
+    return step >= min_steps or step in (1, 2, 4, 8)
 
 
 def top_singular_value(
@@ -137,6 +154,7 @@ def top_singular_value(
     tolerance: float = 0.0,
     stop_above: float = math.inf,
     share_of_gap: float = 0.0,
+    min_steps: int = MIN_STEPS,
 ) -> tuple[float, str]:
     """The largest singular value and how it was obtained (``svd`` or ``lanczos``).
 
@@ -148,7 +166,7 @@ def top_singular_value(
     estimate. It never exceeds the true value (the bidiagonal matrix is Uₖᵀ A Vₖ for
     orthonormal Uₖ, Vₖ, up to float32 rounding), and it converges much faster than power or
     subspace iteration, above all for values that stand out from the rest. It stops after
-    ``STEPS`` steps, when a step (after the first ``MIN_STEPS``) adds less than
+    ``STEPS`` steps, when a step (after the first ``min_steps``) adds less than
     ``tolerance`` or less than ``share_of_gap`` of the distance still left to ``stop_above``,
     when the Krylov space is exhausted, or as soon as the value passes ``stop_above`` (the
     caller's question is then answered, since the value is a lower bound).
@@ -178,13 +196,13 @@ def top_singular_value(
         w = _orthogonalise(u @ a, right[:size])
         beta = _norm(w)
         exhausted = beta <= 1e-12 * max(alpha, estimate)
-        if _ritz_wanted(size) or exhausted:
+        if _ritz_wanted(size, min_steps) or exhausted:
             current = _ritz(bidiagonal, size)
             gain = current - estimate
             estimate = max(estimate, current)
             remaining = share_of_gap * (stop_above - estimate) if share_of_gap else 0.0
             enough = max(tolerance, remaining)
-            if exhausted or estimate > stop_above or (size >= MIN_STEPS and 0 <= gain <= enough):
+            if exhausted or estimate > stop_above or (size >= min_steps and 0 <= gain <= enough):
                 break
         if size < steps:
             bidiagonal[step, size] = beta

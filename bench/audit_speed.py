@@ -4,9 +4,13 @@ Run from the repository root::
 
     python bench/audit_speed.py                 # fp32, 5 rounds
     python bench/audit_speed.py --dtype bf16 --rounds 7
+    python bench/audit_speed.py --dtype bf16 --weights gaussian --shape deep-narrow
 
-The checkpoint is a seeded transformer-shaped safetensors file (vocabulary 8000, width 512,
-4 blocks with 1408-wide feed-forward layers, untied head: about 21M parameters). Each round
+The checkpoint is a seeded transformer-shaped safetensors file, by default (``--shape base``)
+vocabulary 8000, width 512, 4 blocks with 1408-wide feed-forward layers, untied head: about
+21M parameters; ``mid`` (width 384, 6 blocks), ``deep-narrow`` (width 256, 20 blocks, 142
+layers) and ``wide-vocab`` (32,000 × 256 tables, 4 blocks) spend about the same budget on
+other layer counts (see ``SHAPES``). Each round
 runs, each in a fresh child process, (1) the baseline: every tensor read with the
 ``safetensors`` package (``safetensors.numpy.load_file``), and (2) the full audit,
 ``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Each child
@@ -53,7 +57,14 @@ from _common import (
 
 T = TypeVar("T")
 
-SHAPE = Shape(vocab=8000, hidden=512, intermediate=1408, layers=4)
+#: ~20M-parameter layouts: the same budget spent on few wide layers or many narrow ones (the
+#: audit's cost per layer is mostly fixed, so the layer count matters as much as the bytes).
+SHAPES = {
+    "base": Shape(vocab=8000, hidden=512, intermediate=1408, layers=4),
+    "mid": Shape(vocab=8000, hidden=384, intermediate=1536, layers=6),
+    "deep-narrow": Shape(vocab=4000, hidden=256, intermediate=1024, layers=20),
+    "wide-vocab": Shape(vocab=32000, hidden=256, intermediate=768, layers=4),
+}
 
 
 def _steady(call: Callable[[], object], times: int = 5) -> float:
@@ -128,6 +139,7 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=5)
     parser.add_argument("--jobs", default="default")
     parser.add_argument("--weights", choices=WEIGHTS, default="trained")
+    parser.add_argument("--shape", choices=tuple(SHAPES), default="base")
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -135,14 +147,16 @@ def main() -> None:
         return
     folder = Path(tempfile.mkdtemp(prefix="steelyard-bench-"))
     try:
+        shape = SHAPES[args.shape]
         path = write_checkpoint(
-            folder, SHAPE, args.dtype, shard_bytes=2**40, seed=1, weights=args.weights
+            folder, shape, args.dtype, shard_bytes=2**40, seed=1, weights=args.weights
         )
         itemsize = 2 if args.dtype == "bf16" else 4
-        largest = SHAPE.largest * itemsize
+        largest = shape.largest * itemsize
         print(f"machine: {machine()}")
         print(
-            f"checkpoint: {SHAPE.parameters:,} parameters {args.dtype} ({args.weights}), "
+            f"checkpoint ({args.shape}): {shape.parameters:,} parameters {args.dtype} "
+            f"({args.weights}), {len(list(shape.tensors()))} tensors, "
             f"{path.stat().st_size / MIB:,.1f} MiB, largest tensor {mib(largest)}"
         )
         base, full, core = [], [], []

@@ -41,7 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from _common import WEIGHTS, machine, write_checkpoint
-from audit_speed import SHAPE
+from audit_speed import SHAPES
 
 from steelyard.api import audit
 from steelyard.blas import blas_threads
@@ -113,7 +113,7 @@ def main() -> None:
     folder = Path(tempfile.mkdtemp(prefix="steelyard-split-"))
     try:
         path = args.path or str(
-            write_checkpoint(folder, SHAPE, "bf16", 2**40, seed=1, weights=args.weights)
+            write_checkpoint(folder, SHAPES["base"], "bf16", 2**40, seed=1, weights=args.weights)
         )
         tasks = _tasks(path)
         queue, queue_in = os.pipe()

@@ -21,7 +21,14 @@ from steelyard.findings import Finding
 from steelyard.loaders import load
 from steelyard.policy import Policy
 from steelyard.rules.base import RuleNotes
-from steelyard.rules.untrained_token import RULE, measure, principal_directions, token_matrices
+from steelyard.rules.untrained_token import (
+    RULE,
+    _products,
+    _stable_order,
+    measure,
+    principal_directions,
+    token_matrices,
+)
 
 TOKENS = Path(__file__).resolve().parents[2] / "fixtures" / "transformers_tokens"
 
@@ -108,3 +115,28 @@ def test_identical_rows_are_found_in_chunks_bit_for_bit() -> None:
     expected = counts[inverse] > 1
     np.testing.assert_array_equal(found.duplicates, expected)
     assert found.duplicates[:70_000].all() and not found.duplicates[70_001]
+
+
+def test_stable_order_is_numpys_stable_argsort() -> None:
+    """The duplicate search walks rows in ``numpy.argsort(kind="stable")`` order (the
+    reference): many ties, no ties, one value, all equal."""
+    rng = np.random.default_rng(3)
+    for trial in range(400):
+        n = int(rng.integers(1, 600))
+        values = np.round(rng.random(n) * rng.choice([2.0, 40.0, 1e9])) / 7.0
+        assert np.array_equal(_stable_order(values), np.argsort(values, kind="stable")), trial
+    assert np.array_equal(_stable_order(np.ones(50)), np.arange(50))
+
+
+@pytest.mark.parametrize("shape", [(5000, 256), (3000, 1000), (100, 4096), (1, 7)])
+def test_blocked_products_match_the_exact_product(shape: tuple[int, int]) -> None:
+    """Each entry of the blocked float32 product lies within the float32 dot-product error
+    bound n·eps·Σ|a_i b_i| (Higham, "Accuracy and Stability of Numerical Algorithms", 2002,
+    section 3.1) of the float64 product of the same numbers."""
+    rng = np.random.default_rng(sum(shape))
+    block = rng.standard_normal(shape).astype(np.float32)
+    probes = rng.standard_normal((3, shape[1])).astype(np.float32)
+    got = _products(block, probes).astype(np.float64)
+    exact = block.astype(np.float64) @ probes.T.astype(np.float64)
+    bound = shape[1] * np.finfo(np.float32).eps * (np.abs(block) @ np.abs(probes).T)
+    assert np.all(np.abs(got - exact) <= bound)

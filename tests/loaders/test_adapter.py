@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import math
 import shutil
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +26,13 @@ from steelyard.errors import LoadError
 from steelyard.graph import LayerKind
 from steelyard.loaders import load
 from steelyard.loaders.adapter import adapter_file_in, adapter_of, load_adapter
-from steelyard.loaders.adapter.factors import frobenius, row_squares, singular_values
+from steelyard.loaders.adapter.factors import (
+    Factors,
+    frobenius,
+    row_squares,
+    rows,
+    singular_values,
+)
 
 FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "adapters"
 PAIRS = [
@@ -252,3 +259,16 @@ def test_mutated_adapters_load_or_refuse_with_one_reason(
     assert valid_r and valid_alpha and rank_a == rank_b == effective_r
     layer = checkpoint.layers[0]
     assert layer.matrix().shape == (units, fan_in)
+
+
+def test_product_rows_beyond_float32_become_infinite_without_a_warning() -> None:
+    """Factors whose product leaves the float32 range (up to 3.4e38, IEEE 754 binary32) give
+    ±Inf there, as the merged float32 weight would, and no numpy overflow warning."""
+    left = np.array([[1e30], [1.0], [-1e30]])
+    right = np.array([[1e30, 1.0]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = rows(Factors(left, right), 0, 3)
+    assert got.dtype == np.float32
+    assert got[0, 0] == np.inf and got[2, 0] == -np.inf
+    assert got[1].tolist() == [float(np.float32(1e30)), 1.0]

@@ -37,8 +37,12 @@ class Factors:
 
 
 def rows(factors: Factors, start: int, stop: int) -> np.ndarray:
-    """Rows ``[start, stop)`` of ΔW as float32 ``[stop-start, fan_in]``."""
-    return np.asarray(factors.left[start:stop] @ factors.right).astype(np.float32)
+    """Rows ``[start, stop)`` of ΔW as float32 ``[stop-start, fan_in]``. Entries beyond the
+    float32 range become ±Inf, as they would in the merged float32 weight (``nonfinite``
+    then reports them), without numpy's overflow warning on the terminal."""
+    product = np.asarray(factors.left[start:stop] @ factors.right)
+    with np.errstate(over="ignore"):
+        return product.astype(np.float32)
 
 
 def singular_values(factors: Factors) -> np.ndarray:

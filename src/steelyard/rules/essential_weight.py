@@ -146,7 +146,10 @@ def measure(
     s2 = sigma * sigma
     # |w| >= sqrt(sigma²·R_j/(n−1+sigma²)) is the row test; in cache-sized row blocks, so
     # |W| and the comparison never leave the cache (the matrix is read once).
-    row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    # A limit beyond the float32 range (rows of weights near its top) becomes +Inf, which no
+    # weight exceeds, without numpy's overflow warning.
+    with np.errstate(over="ignore"):
+        row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
     # A row whose limit is 0 holds only zeros and one whose limit is NaN holds a NaN: neither
     # can have a weight strictly beyond it, so the smallest positive limit bounds the block.
     positive = np.where(row_limit > 0, row_limit, np.float32(np.inf))

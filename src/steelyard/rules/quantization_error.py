@@ -176,7 +176,11 @@ def _dequantized(
     scale[scale == 0] = 1  # an all-zero group quantizes to 0 whatever its scale
     out = shaped / scale
     np.rint(out, out=out)
-    out *= scale
+    # Weights at the top of the float32 range can round to a level whose value overflows
+    # (127 · absmax/127 > float32 max): that error is then infinite, and the layer's errors
+    # are left out of the model's median (see ``finish``), without numpy's warning.
+    with np.errstate(over="ignore"):
+        out *= scale
     return out.reshape(rows, -1)[:, :width]
 
 
@@ -379,8 +383,10 @@ def finish(
             score=score(layer.units * layer.fan_in / max(1, size), error / limit),
             message=(
                 f"4-bit round-to-nearest (groups of {count(row['group_size'])}) has a balanced "
-                f"error of {percent(error)}, {value_shown(error / median)}× the model's median "
-                f"{percent(median)} (limit {percent(limit)}); plain relative error "
+                f"error of {percent(error)}, "
+                + (f"{value_shown(error / median)}× the model's median " if median > 0
+                   else "where the model's median is ")
+                + f"{percent(median)} (limit {percent(limit)}); plain relative error "
                 f"{percent(row['int4_error'])}, worst channel {row['int4_worst_channel']} "
                 f"{percent(row['int4_worst_channel_error'])}; at 8 bits per channel "
                 f"{percent(row['int8_error'])}"

@@ -1,0 +1,71 @@
+"""Weights at the edges of their float format are audited quietly: no numpy warning reaches
+the terminal, and the audit completes with a report.
+
+The values are the IEEE 754 binary32 and binary16 extremes (largest finite value, smallest
+subnormal, ±Inf, NaN; IEEE Std 754-2019, table 3.5) and bfloat16's (its largest finite value
+3.3895e38, as ``ml_dtypes.finfo`` gives it), written with the ``safetensors`` package; every
+case runs the whole audit (all rules, one job, so a warning is raised in this thread) with
+warnings turned into errors.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Callable
+from pathlib import Path
+
+import ml_dtypes
+import numpy as np
+import pytest
+from safetensors.numpy import save_file
+
+from steelyard.api import audit_one
+from steelyard.policy import Policy
+
+F32 = np.finfo(np.float32)
+
+#: name → how to turn a layer's N(0, 0.05²) weights into the extreme case
+CASES: dict[str, Callable[[np.ndarray, np.random.Generator], np.ndarray]] = {
+    "float32-max": lambda w, rng: np.full_like(w, F32.max),
+    "alternating-max": lambda w, rng: np.where(rng.random(w.shape) < 0.5, F32.max, -F32.max),
+    "scaled-1e37": lambda w, rng: w * np.float32(1e37),
+    "one-max-outlier": lambda w, rng: _with(w, (3, 5), F32.max),
+    "subnormal": lambda w, rng: w * np.float32(1e-44),
+    "smallest-subnormal": lambda w, rng: np.full_like(w, F32.smallest_subnormal),
+    "infinities": lambda w, rng: np.where(rng.random(w.shape) < 0.5, np.inf, -np.inf),
+    "nan-rows": lambda w, rng: _rows(w, np.nan),
+    "zeros": lambda w, rng: np.zeros_like(w),
+    "constant-rows": lambda w, rng: np.repeat(w[:, :1], w.shape[1], axis=1),
+}
+
+
+def _with(w: np.ndarray, at: tuple[int, int], value: float) -> np.ndarray:
+    out = w.copy()
+    out[at] = value
+    return out
+
+
+def _rows(w: np.ndarray, value: float) -> np.ndarray:
+    out = w.copy()
+    out[::3] = value
+    return out
+
+
+@pytest.mark.parametrize("dtype", ["float32", "bfloat16", "float16"])
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_extreme_weights_are_audited_without_warnings(tmp_path: Path, case: str, dtype: str) -> None:
+    rng = np.random.default_rng(len(case))
+    stored = {"float32": np.float32, "bfloat16": ml_dtypes.bfloat16, "float16": np.float16}[dtype]
+    tensors = {}
+    for index, (units, fan_in) in enumerate(((64, 64), (96, 300), (300, 96), (8, 1000))):
+        weights = (rng.standard_normal((units, fan_in)) * 0.05).astype(np.float32)
+        if index != 2:  # one healthy layer beside the extreme ones
+            weights = CASES[case](weights, rng).astype(np.float32)
+        with np.errstate(over="ignore"):  # float16 cannot hold float32's extremes: they become Inf
+            tensors[f"model.layers.{index}.mlp.up_proj.weight"] = weights.astype(stored)
+    path = tmp_path / "model.safetensors"
+    save_file(tensors, str(path))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        audit = audit_one(path, Policy(), jobs=1)
+    assert len(audit.layers) == 4

@@ -10,6 +10,7 @@ warnings turned into errors.
 
 from __future__ import annotations
 
+import json
 import warnings
 from collections.abc import Callable
 from pathlib import Path
@@ -17,9 +18,11 @@ from pathlib import Path
 import ml_dtypes
 import numpy as np
 import pytest
+from click.testing import CliRunner
 from safetensors.numpy import save_file
 
 from steelyard.api import audit_one
+from steelyard.cli import app
 from steelyard.policy import Policy
 
 F32 = np.finfo(np.float32)
@@ -29,7 +32,7 @@ CASES: dict[str, Callable[[np.ndarray, np.random.Generator], np.ndarray]] = {
     "float32-max": lambda w, rng: np.full_like(w, F32.max),
     "alternating-max": lambda w, rng: np.where(rng.random(w.shape) < 0.5, F32.max, -F32.max),
     "scaled-1e37": lambda w, rng: w * np.float32(1e37),
-    "one-max-outlier": lambda w, rng: _with(w, (3, 5), F32.max),
+    "one-max-outlier": lambda w, rng: _with(w, (min(3, len(w) - 1), min(5, w.shape[1] - 1)), F32.max),
     "subnormal": lambda w, rng: w * np.float32(1e-44),
     "smallest-subnormal": lambda w, rng: np.full_like(w, F32.smallest_subnormal),
     "infinities": lambda w, rng: np.where(rng.random(w.shape) < 0.5, np.inf, -np.inf),
@@ -69,3 +72,56 @@ def test_extreme_weights_are_audited_without_warnings(tmp_path: Path, case: str,
         warnings.simplefilter("error")
         audit = audit_one(path, Policy(), jobs=1)
     assert len(audit.layers) == 4
+
+
+def _transformer(case: str, rng: np.random.Generator) -> dict[str, np.ndarray]:
+    """A one-block decoder (token tables, four attention heads, gated MLP, norms) with every
+    matrix but the down projection turned into ``case``."""
+    vocab, width, inner = 300, 64, 96
+    shapes = {
+        "model.embed_tokens.weight": (vocab, width),
+        "model.layers.0.self_attn.q_proj.weight": (width, width),
+        "model.layers.0.self_attn.k_proj.weight": (width, width),
+        "model.layers.0.self_attn.v_proj.weight": (width, width),
+        "model.layers.0.self_attn.o_proj.weight": (width, width),
+        "model.layers.0.mlp.gate_proj.weight": (inner, width),
+        "model.layers.0.mlp.up_proj.weight": (inner, width),
+        "model.layers.0.mlp.down_proj.weight": (width, inner),
+        "lm_head.weight": (vocab, width),
+    }
+    out = {}
+    for name, shape in shapes.items():
+        weights = (rng.standard_normal(shape) * 0.05).astype(np.float32)
+        out[name] = weights if "down_proj" in name else CASES[case](weights, rng).astype(np.float32)
+    for norm in ("model.layers.0.input_layernorm.weight", "model.layers.0.post_attention_layernorm.weight",
+                 "model.norm.weight"):
+        out[norm] = CASES[case](np.ones((1, width), np.float32), rng).astype(np.float32)[0]
+    return out
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_extreme_transformer_weights_are_audited_without_warnings(tmp_path: Path, case: str) -> None:
+    """The transformer rules too (token tables, attention heads, norms), in bfloat16."""
+    rng = np.random.default_rng(len(case) + 1)
+    tensors = {k: v.astype(ml_dtypes.bfloat16) for k, v in _transformer(case, rng).items()}
+    save_file(tensors, str(tmp_path / "model.safetensors"))
+    (tmp_path / "config.json").write_text(
+        '{"model_type": "llama", "hidden_size": 64, "num_attention_heads": 4, '
+        '"num_key_value_heads": 4, "intermediate_size": 96, "vocab_size": 300}',
+        encoding="utf-8",
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        audit = audit_one(tmp_path / "model.safetensors", Policy(), jobs=1)
+    assert len(audit.layers) >= 8
+    # The JSON report stays strict JSON (RFC 8259 has no Infinity or NaN), on two jobs too.
+    result = CliRunner().invoke(
+        app, ["audit", str(tmp_path / "model.safetensors"), "--format", "json", "--jobs", "2",
+              "--fail-on", "never"],
+    )
+    assert result.exit_code == 0, result.output
+
+    def refuse(constant: str) -> None:
+        raise AssertionError(f"non-standard JSON constant {constant}")
+
+    json.loads(result.stdout, parse_constant=refuse)

@@ -36,18 +36,28 @@ def sketch_matrix(dim: int, left: bool) -> np.ndarray:
     return draw if left else np.ascontiguousarray(draw.T)
 
 
+def product(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a @ b`` in float32, or in float64 when float32 overflowed on finite factors (weights
+    near the top of the float32 range): then the true products rather than Inf."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        out = a @ b
+    if not np.isfinite(out).all() and np.isfinite(a).all() and np.isfinite(b).all():
+        out = a.astype(np.float64) @ b.astype(np.float64)
+    return out
+
+
 def row_factors(rows: np.ndarray, sketch: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Gram ``R Rᵀ`` and sketch ``R·S`` of heads' rows ``R [..., d_h, d]`` (``S`` is ``[d, r]``;
     a leading axis holds several heads). The Gram is a float32 product (relative error about
     1e-6 at these widths, far inside every threshold), returned as float64."""
-    gram = rows @ np.swapaxes(rows, -1, -2)
-    return gram.astype(np.float64), rows @ sketch
+    gram = product(rows, np.swapaxes(rows, -1, -2))
+    return gram.astype(np.float64), product(rows, sketch)
 
 
 def column_factors(columns: np.ndarray, sketch: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Gram ``Cᵀ C`` and sketch ``Ψ·C`` of heads' output columns ``C [..., d, d_v]``."""
-    gram = np.swapaxes(columns, -1, -2) @ columns
-    return gram.astype(np.float64), sketch @ columns
+    gram = product(np.swapaxes(columns, -1, -2), columns)
+    return gram.astype(np.float64), product(sketch, columns)
 
 
 def circuit_norm(gram_a: np.ndarray, gram_b: np.ndarray) -> float:

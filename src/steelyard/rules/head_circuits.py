@@ -247,8 +247,8 @@ def measure_block(block: AttentionBlock, parts: dict[str, tuple[np.ndarray, np.n
                     "v_norm": float(np.sqrt(np.trace(gv[g]))),
                     "o_norm": float(np.sqrt(np.trace(go[h.index]))),
                 },
-                ov_sketch=so[h.index] @ sv[g],
-                qk_sketch=sq[h.index].T @ sk[g],
+                ov_sketch=circ.product(so[h.index], sv[g]),
+                qk_sketch=circ.product(sq[h.index].T, sk[g]),
                 grams=(go[h.index], gv[g], gq[h.index], gk[g]),
             )
         )

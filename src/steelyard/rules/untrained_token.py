@@ -63,6 +63,7 @@ check that the fine-tune actually updated their rows.
 from __future__ import annotations
 
 import json
+import math
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -262,6 +263,16 @@ def _stable_order(values: np.ndarray) -> np.ndarray:
     return order
 
 
+def _power_of_two_scale(row_squares: np.ndarray) -> float:
+    """1, or the power of two that brings the largest row norm to [0.5, 1) when it lies
+    outside [2^-40, 2^40], where float32 products of rows could overflow or underflow (a
+    table near the top of the float32 range, or of subnormals)."""
+    largest = float(np.max(row_squares)) if row_squares.size else 0.0
+    if not largest > 0.0 or 2.0**-80 <= largest <= 2.0**80:
+        return 1.0
+    return 2.0 ** -math.frexp(math.sqrt(largest))[1]
+
+
 def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -> TokenRows:
     """Norms, centred norms, residuals after removing ``k`` principal directions, and exact
     duplicate rows of ``M[V, d]``; ``row_squares`` (Σ m_ij² per row) when already known.
@@ -269,7 +280,17 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     One product ``M·[μ, v_1..v_k]`` gives everything: ``‖c_i‖² = ‖m_i‖² − 2 m_i·μ + ‖μ‖²`` and
     ``c_i·v = m_i·v − μ·v``, combined in float64."""
     rows = matrix.shape[0]
-    block = np.asarray(matrix, dtype=np.float32)
+    original = np.asarray(matrix, dtype=np.float32)
+    squares = (
+        np.einsum("ij,ij->i", original, original, dtype=np.float64) if row_squares is None
+        else np.asarray(row_squares, np.float64)
+    )
+    # Every measurement below is a ratio to the table's own medians, so a table whose float32
+    # sums could overflow or vanish is measured scaled by a power of two (exact) and the
+    # lengths are scaled back at the end.
+    scale = _power_of_two_scale(squares)
+    block = original if scale == 1.0 else original * np.float32(scale)
+    squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
     # One float32 BLAS product: 4× faster than numpy's buffered float64 reduction on a
     # 8000 × 512 table, and the same mean to about 1e-6 of its size (measured).
     mean = (np.ones(rows, np.float32) @ block).astype(np.float64) / max(1, rows)
@@ -281,17 +302,17 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     centred = block[sample_rows]
     centred -= mean.astype(np.float32)
     directions = principal_directions(centred, k)
-    squares = (
-        np.einsum("ij,ij->i", block, block, dtype=np.float64) if row_squares is None
-        else np.asarray(row_squares, np.float64)
-    )
     probes = np.vstack([mean[None, :], directions]).astype(np.float32)
     products = _products(block, probes).astype(np.float64)
     mean_dot = products[:, 0]
     mean_sq = float(mean @ mean)
-    c2 = np.maximum(squares - 2.0 * mean_dot + mean_sq, 0.0)
+    c2 = np.maximum(squares_at_scale - 2.0 * mean_dot + mean_sq, 0.0)
     projected = products[:, 1:] - (directions @ mean)[None, :]
     residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
+    if scale != 1.0:
+        c2 /= scale * scale
+        residuals /= scale
+    block = original  # duplicates are the stored rows' bits
     norms = np.sqrt(squares)
     # Identical rows have equal norms up to the summation order: candidates are neighbours in
     # norm order within 2e-7 (float32 summation order), confirmed bit for bit.

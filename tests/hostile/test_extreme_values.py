@@ -3,9 +3,10 @@ the terminal, and the audit completes with a report.
 
 The values are the IEEE 754 binary32 and binary16 extremes (largest finite value, smallest
 subnormal, ±Inf, NaN; IEEE Std 754-2019, table 3.5) and bfloat16's (its largest finite value
-3.3895e38, as ``ml_dtypes.finfo`` gives it), written with the ``safetensors`` package; every
-case runs the whole audit (all rules, one job, so a warning is raised in this thread) with
-warnings turned into errors.
+3.3895e38, as ``ml_dtypes.finfo`` gives it), written with the ``safetensors`` package, the
+``onnx`` package (a convolution folded with batch normalisation) and the ``gguf`` package;
+every case runs the whole audit (all rules, one job, so a warning is raised in this thread),
+and a comparison, with warnings turned into errors.
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ import pytest
 from click.testing import CliRunner
 from safetensors.numpy import save_file
 
-from steelyard.api import audit_one
+from steelyard.api import audit_one, compare
 from steelyard.cli import app
 from steelyard.policy import Policy
 
@@ -125,3 +126,72 @@ def test_extreme_transformer_weights_are_audited_without_warnings(tmp_path: Path
         raise AssertionError(f"non-standard JSON constant {constant}")
 
     json.loads(result.stdout, parse_constant=refuse)
+
+
+def _onnx_model(case: str, path: Path) -> None:
+    """Conv 3×3 (8 → 16 channels) with batch normalisation, then a dense layer; the
+    convolution, the normalisation scale and the dense weights turned into ``case``."""
+    from onnx import TensorProto, helper, numpy_helper, save
+
+    rng = np.random.default_rng(len(case) + 2)
+
+    def extreme(shape: tuple[int, int]) -> np.ndarray:
+        return CASES[case]((rng.standard_normal(shape) * 0.05).astype(np.float32), rng).astype(np.float32)
+
+    zeros = np.zeros(16, np.float32)
+    arrays = {
+        "conv.w": extreme((16, 72)).reshape(16, 8, 3, 3), "conv.b": zeros,
+        "bn.s": CASES[case](np.ones((1, 16), np.float32), rng).astype(np.float32)[0],
+        "bn.b": zeros, "bn.m": zeros, "bn.v": np.ones(16, np.float32),
+        "fc.w": np.ascontiguousarray(extreme((10, 576)).T), "fc.b": np.zeros(10, np.float32),
+        "shape": np.array([1, 576], np.int64),
+    }
+    nodes = [
+        helper.make_node("Conv", ["x", "conv.w", "conv.b"], ["c"], pads=[1, 1, 1, 1]),
+        helper.make_node("BatchNormalization", ["c", "bn.s", "bn.b", "bn.m", "bn.v"], ["n"]),
+        helper.make_node("Relu", ["n"], ["r"]),
+        helper.make_node("Reshape", ["r", "shape"], ["f"]),
+        helper.make_node("Gemm", ["f", "fc.w", "fc.b"], ["y"]),
+    ]
+    graph = helper.make_graph(
+        nodes, "extreme", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 8, 6, 6])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 10])],
+        [numpy_helper.from_array(v, k) for k, v in arrays.items()],
+    )
+    save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), str(path))
+
+
+def _gguf_model(case: str, path: Path) -> None:
+    """A one-block llama-style GGUF file of float32 tensors turned into ``case``."""
+    import gguf
+
+    rng = np.random.default_rng(len(case) + 3)
+    writer = gguf.GGUFWriter(str(path), "llama")
+    writer.add_block_count(1)
+    for name, shape in (("token_embd.weight", (64, 32)), ("blk.0.ffn_up.weight", (48, 32)),
+                        ("blk.0.ffn_down.weight", (32, 48)), ("output.weight", (64, 32))):
+        weights = (rng.standard_normal(shape) * 0.05).astype(np.float32)
+        writer.add_tensor(name, CASES[case](weights, rng).astype(np.float32))
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_tensors_to_file()
+    writer.close()
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_extreme_onnx_and_gguf_weights_and_their_comparison(tmp_path: Path, case: str) -> None:
+    """A folded convolution (ONNX) and token tables (GGUF) of extreme weights are audited,
+    and compared with the float32-maximum and 1e37-scaled versions, without warnings."""
+    for other in ("float32-max", "scaled-1e37"):
+        _onnx_model(other, tmp_path / f"{other}.onnx")
+        _gguf_model(other, tmp_path / f"{other}.gguf")
+    _onnx_model(case, tmp_path / "case.onnx")
+    _gguf_model(case, tmp_path / "case.gguf")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        assert len(audit_one(tmp_path / "case.onnx", Policy(), jobs=1).layers) == 2
+        assert len(audit_one(tmp_path / "case.gguf", Policy(), jobs=1).layers) >= 3
+        for other in ("float32-max", "scaled-1e37"):
+            for suffix in (".onnx", ".gguf"):
+                report = compare(tmp_path / f"case{suffix}", tmp_path / f"{other}{suffix}")
+                json.dumps(report.to_json(), allow_nan=False)

@@ -136,7 +136,12 @@ def precision_measures(
     if measured.flat_old is not None and measured.flat_new is not None:
         out["rows_flattened"] = tuple(int(i) for i in np.flatnonzero(measured.flat_new & ~measured.flat_old))
     if not same and layer.kind is not LayerKind.EMBEDDING and math.isfinite(measured.diff_sq) and measured.diff_sq > 0:
-        rank, limit = energy_rank(b - a)
+        with np.errstate(over="ignore"):
+            update = b - a
+        if not np.isfinite(update).all():
+            # finite weights whose difference leaves float32: the rank is the same for half of it
+            update = b * np.float32(0.5) - a * np.float32(0.5)
+        rank, limit = energy_rank(update)
         out["update_rank"], out["update_rank_above"] = rank, limit
     return out
 
@@ -149,6 +154,17 @@ def stored_type(side: Side, layer: Layer) -> str | None:
     return tensor.stored_type or tensor.dtype
 
 
+def _unit_scaled(matrix: np.ndarray) -> np.ndarray:
+    """``matrix`` times the power of two that brings its largest magnitude to [0.5, 1) when
+    that lies outside [2^-32, 2^32], where the sketch's float32 products could overflow or
+    vanish (exact but for subnormals; the rank is the same for any multiple)."""
+    peak = float(np.max(np.abs(matrix), initial=0.0))
+    if not math.isfinite(peak) or peak == 0.0 or 2.0**-32 <= peak <= 2.0**32:
+        return matrix
+    factor = 2.0 ** -math.frexp(peak)[1]
+    return np.multiply(matrix, factor, dtype=np.float64).astype(np.float32)
+
+
 def energy_rank(delta: np.ndarray, share: float = RANK_SHARE, limit: int = RANK_LIMIT) -> tuple[int | None, int | None]:
     """(rank, None): the fewest singular directions holding ``share`` of ‖delta‖²_F, or
     (None, limit) when more than ``limit`` are needed. Small layers get an exact SVD; larger
@@ -156,7 +172,7 @@ def energy_rank(delta: np.ndarray, share: float = RANK_SHARE, limit: int = RANK_
     "Finding structure with randomness", Algorithm 4.4), whose captured energy never exceeds
     the truth, so a rank it reports is never too small by more than the directions it
     missed, and a sketch that cannot hold ``share`` says "above the limit" rather than guess."""
-    matrix = np.asarray(delta, dtype=np.float32)
+    matrix = _unit_scaled(np.asarray(delta, dtype=np.float32))
     total = float(np.einsum("ij,ij->", matrix, matrix, dtype=np.float64))
     if not math.isfinite(total) or total == 0:
         return None, None

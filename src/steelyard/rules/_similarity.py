@@ -149,9 +149,11 @@ def normalise(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _inverse(norms: np.ndarray) -> np.ndarray:
-    """1/norms as float32, 0 where a norm is zero or not finite."""
+    """1/norms as float32, 0 where a norm is zero or not finite, +Inf where the inverse
+    leaves float32 (norms below 2.9e-39, rows of subnormals: see :func:`scaled`)."""
     usable = np.isfinite(norms) & (norms > 0)
-    return np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
+    with np.errstate(over="ignore"):
+        return np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
 
 
 def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
@@ -161,6 +163,9 @@ def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
     out = np.empty(rows.shape, dtype=np.float32)
     with np.errstate(invalid="ignore", over="ignore"):
         np.multiply(rows, scale[:, None], out=out)
+    tiny = np.flatnonzero(usable & np.isinf(scale))
+    if tiny.size:  # rows of subnormals: divided in float64, where their norms are normal
+        out[tiny] = rows[tiny].astype(np.float64) / norms[tiny, None]
     out[~usable] = 0.0
     return out
 

@@ -275,7 +275,8 @@ def stored_grid(matrix: np.ndarray) -> str | None:
         shaped = np.asarray(matrix, np.float32).reshape(units, -1, block)
         scale = np.abs(shaped).max(axis=2, keepdims=True) / np.float32(levels)
         safe = np.where(scale > 0, scale, np.float32(1))
-        steps = shaped / safe
+        with np.errstate(invalid="ignore", over="ignore"):  # Inf blocks are on no grid
+            steps = shaped / safe
         if float(np.max(np.abs(steps - np.rint(steps)), initial=0.0)) <= 1e-3:
             return name
     return None

@@ -289,7 +289,9 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     # sums could overflow or vanish is measured scaled by a power of two (exact) and the
     # lengths are scaled back at the end.
     scale = _power_of_two_scale(squares)
-    block = original if scale == 1.0 else original * np.float32(scale)
+    # (the factor itself may lie beyond float32, 2^142 for a table of subnormals: applied in
+    # float64, where the product is exact, then rounded to float32)
+    block = original if scale == 1.0 else np.multiply(original, scale, dtype=np.float64).astype(np.float32)
     squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
     # One float32 BLAS product: 4× faster than numpy's buffered float64 reduction on a
     # 8000 × 512 table, and the same mean to about 1e-6 of its size (measured).

@@ -213,7 +213,10 @@ class LayerStats:
                 if matrix is None:
                     scale = self.fold_scale(layer)
                     assert scale is not None
-                    matrix = (self.matrix(layer) * scale[:, None]).astype(np.float32)
+                    # Folded weights beyond float32 become ±Inf (Inf·0 NaN), as the folded
+                    # layer would compute them; the rules treat such rows as non-finite.
+                    with np.errstate(over="ignore", invalid="ignore"):
+                        matrix = (self.matrix(layer) * scale[:, None]).astype(np.float32)
                     cache.put(key, matrix)
         return Folded(matrix, bias, True)
 

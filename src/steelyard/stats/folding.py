@@ -66,4 +66,5 @@ def fold_bias(
     base = zero if bias is None else bias
     shift = zero if beta is None else beta
     mu = zero if mean is None else mean
-    return np.asarray(((base - mu) * scale + shift).astype(np.float32))
+    with np.errstate(over="ignore", invalid="ignore"):  # Inf or NaN there, as folded
+        return np.asarray(((base - mu) * scale + shift).astype(np.float32))

@@ -145,4 +145,5 @@ def to_float32(array: np.ndarray) -> np.ndarray:
     """Return ``array`` as float32 (a copy only when the dtype differs)."""
     if array.dtype == np.float32:
         return array
-    return array.astype(np.float32)
+    with np.errstate(over="ignore"):  # beyond float32: ±Inf, counted as such by nonfinite
+        return array.astype(np.float32)

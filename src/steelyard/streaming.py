@@ -28,7 +28,9 @@ def convert_into(source: np.ndarray, out: np.ndarray) -> None:
     if flat_in.dtype.name == "bfloat16" and flat_in.dtype.byteorder in ("=", "|", "<"):
         widen_bf16_bits(flat_in.view(np.uint16), flat_out)
     else:
-        flat_out[...] = flat_in
+        # float64 beyond the float32 range becomes ±Inf, as the non-finite counts judge it
+        with np.errstate(over="ignore"):
+            flat_out[...] = flat_in
 
 
 def widen_bf16_bits(bits: np.ndarray, out: np.ndarray) -> None:

@@ -195,3 +195,32 @@ def test_extreme_onnx_and_gguf_weights_and_their_comparison(tmp_path: Path, case
             for suffix in (".onnx", ".gguf"):
                 report = compare(tmp_path / f"case{suffix}", tmp_path / f"{other}{suffix}")
                 json.dumps(report.to_json(), allow_nan=False)
+
+
+@pytest.mark.parametrize("writer", ["safetensors", "npz"])
+@pytest.mark.parametrize("value", [1e300, -1e39, 3.5e38])
+def test_float64_beyond_float32_range_fails_the_gate(tmp_path: Path, writer: str, value: float) -> None:
+    """A float64 value beyond the float32 range (IEEE Std 754-2019, table 3.5: binary32's
+    largest finite value is 3.4028235e38) is what every float32, bf16 or fp16 reader gets as
+    ±Inf; the audit reads in float32, so it counts it as non-finite and the gate fails
+    (fail closed), quietly, on one job and on two."""
+    rng = np.random.default_rng(7)
+    tensors = {f"layers.{i}.weight": rng.standard_normal((48, 40)) * 0.05 for i in range(3)}
+    tensors["layers.1.weight"][5, 7] = value
+    tensors["layers.1.weight"][9, 0] = value
+    path = tmp_path / ("model.safetensors" if writer == "safetensors" else "model.npz")
+    if writer == "safetensors":
+        save_file(tensors, str(path))
+    else:
+        np.savez(path, **tensors)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        audit = audit_one(path, Policy(), jobs=1)
+    found = [f for f in audit.findings if f.rule == "nonfinite" and "layers.1" in f.message]
+    assert found, [f.message for f in audit.findings]
+    assert "2 non-finite values" in found[0].message
+    assert ("0 NaN, 2 +Inf, 0 −Inf" if value > 0 else "0 NaN, 0 +Inf, 2 −Inf") in found[0].message
+    assert "beyond the float32 range" in found[0].message
+    for jobs in ("1", "2"):
+        result = CliRunner().invoke(app, ["audit", str(path), "--format", "json", "--jobs", jobs])
+        assert result.exit_code == 1, result.output

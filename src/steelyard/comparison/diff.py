@@ -343,7 +343,8 @@ def sums(old: np.ndarray, new: np.ndarray) -> Sums:
     for start in range(0, units, block):
         a = old[start : start + block].astype(np.float64)
         b = new[start : start + block].astype(np.float64)
-        delta = b - a
+        with np.errstate(invalid="ignore"):  # Inf − Inf: NaN, a non-finite change
+            delta = b - a
         row_old[start : start + block] = np.einsum("ij,ij->i", a, a)
         row_new[start : start + block] = np.einsum("ij,ij->i", b, b)
         row_diff[start : start + block] = np.einsum("ij,ij->i", delta, delta)

@@ -2,7 +2,9 @@
 
 **What it checks.** Every floating tensor of the checkpoint, weights, biases, normalisation
 parameters, running statistics, and the optimizer state stored with it, is scanned for NaN,
-+Inf and −Inf.
++Inf and −Inf, as the audit reads them in float32: a value stored in float64 beyond the
+float32 range (|x| > 3.4e38) counts as ±Inf, which is what any float32, bf16 or fp16 reader
+gets, and the other rules could not judge it.
 
 **Why it matters.** One non-finite weight makes every output that depends on it non-finite
 (IEEE 754 arithmetic propagates NaN through sums and products), so the model is broken for
@@ -31,6 +33,7 @@ from collections.abc import Iterator
 
 import numpy as np
 
+from steelyard.dtypes import FLOAT_ITEMSIZE
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, Tensor, TensorRole
 from steelyard.numbers import count
@@ -130,6 +133,11 @@ def check(ctx: AuditContext, settings: RuleSettings[NoSettings]) -> Iterator[Fin
             message=(
                 f"{what} holds {count(total)} non-finite value{'s' if total != 1 else ''} "
                 f"({count(nan)} NaN, {count(pos)} +Inf, {count(neg)} −Inf) out of {count(bad.size)}"
+                + (
+                    f"; stored as {tensor.dtype}, values beyond the float32 range count as ±Inf"
+                    if FLOAT_ITEMSIZE.get(tensor.dtype, 4) > 4
+                    else ""
+                )
             ),
             hint="do not ship this checkpoint; find the training step where values diverged "
             "and restart from the last checkpoint that passed",

@@ -2,8 +2,10 @@
 
 A weight tensor read by a layer's pass is counted on the way (see :mod:`.passes`); every other
 tensor is counted by :meth:`NonfiniteCounts.count`, streamed in chunks when its loader allows.
-bf16/fp16/fp8 values are judged after widening to float32 (widening keeps NaN and ±Inf),
-wider floats as stored, integers after conversion.
+Values are judged as the audit reads them, in float32: bf16/fp16/fp8 after widening (which
+keeps NaN and ±Inf), integers after conversion, and wider floats after narrowing, so a float64
+value beyond the float32 range (|x| > 3.4e38) counts as the ±Inf every float32, bf16 or fp16
+reader would get: the audit could not judge it otherwise, and a gate must not pass it.
 """
 
 from __future__ import annotations
@@ -25,7 +27,9 @@ Counts = tuple[int, int, int]
 
 
 def count_into(values: np.ndarray, counts: list[int]) -> None:
-    """Add the NaN, +Inf and −Inf counts of ``values`` (one cheap pass when all finite)."""
+    """Add the NaN, +Inf and −Inf counts of ``values`` (one cheap pass when all finite),
+    floats wider than float32 judged after narrowing to it (see the module)."""
+    values = _narrowed(values)
     if values.size == 0 or bool(np.isfinite(values).all()):
         return
     counts[0] += int(np.isnan(values).sum())
@@ -33,11 +37,19 @@ def count_into(values: np.ndarray, counts: list[int]) -> None:
     counts[2] += int(np.isneginf(values).sum())
 
 
+def _narrowed(values: np.ndarray) -> np.ndarray:
+    """Floats wider than float32 narrowed to it (beyond its range: ±Inf, quietly)."""
+    if values.dtype.kind == "f" and values.dtype.itemsize > 4:
+        with np.errstate(over="ignore"):
+            return values.astype(np.float32)
+    return values
+
+
 def _judged(array: np.ndarray) -> np.ndarray:
-    """The values as the counts judge them: integers and narrow floats as float32."""
+    """The values as the counts judge them: as float32 (see the module)."""
     if array.dtype.kind not in ("f", "V") or array.dtype.itemsize < 4:
         return np.asarray(array, dtype=np.float32)
-    return array
+    return _narrowed(array)
 
 
 @dataclass(frozen=True, slots=True)

@@ -60,3 +60,16 @@ def test_histogram_is_numpys_of_the_clipped_norms(seed: int) -> None:
     edges = np.geomspace(floor, norms.max() * (1 + 1e-9), 9)
     expected = np.histogram(np.clip(norms, floor, None), bins=edges)[0]
     assert spread.histogram == tuple(int(c) for c in expected)
+
+
+def test_histogram_edges_are_numpys_geomspace_bit_for_bit() -> None:
+    """The histogram's log-spaced edges equal ``numpy.geomspace`` (reference: numpy) exactly,
+    over norms from 1e-30 to 1e30, narrow and wide ranges alike."""
+    from steelyard.stats.spread import BINS, _log_edges
+
+    rng = np.random.default_rng(5)
+    for _ in range(20000):
+        high = float(np.exp(rng.uniform(-69, 69)))
+        floor = max(high * float(np.exp(-rng.uniform(0, 20))), high * 1e-6)
+        top = high * (1 + 1e-9)
+        assert np.array_equal(_log_edges(floor, top), np.geomspace(floor, top, BINS + 1))

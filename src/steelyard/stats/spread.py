@@ -49,12 +49,28 @@ def norm_spread(norms: np.ndarray) -> NormSpread:
     histogram: tuple[int, ...] = ()
     if high > 0:
         floor = max(low, high * 1e-6)
-        edges = np.geomspace(floor, high * (1 + 1e-9), BINS + 1)
+        edges = _log_edges(floor, high * (1 + 1e-9))
         # Values below the floor count in the first bin (np.histogram of the clipped values).
         cuts = np.searchsorted(ordered, edges[1:-1], side="left")
         histogram = tuple(int(c) for c in np.diff(np.concatenate(([0], cuts, [ordered.size]))))
     positive = ordered[np.searchsorted(ordered, 0.0, side="right") :]
     return NormSpread(low, percentiles[2], high, percentiles, _outliers(norms, positive), histogram)
+
+
+#: Positions 0…BINS of the histogram's edges on the log scale.
+_POSITIONS = np.arange(BINS + 1, dtype=np.float64)
+
+
+def _log_edges(floor: float, top: float) -> np.ndarray:
+    """``numpy.geomspace(floor, top, BINS + 1)`` bit for bit (its steps: a linspace of the
+    base-10 logarithms, powers of 10, the ends set exactly), without its argument handling,
+    which took ten times as long as the arithmetic (25 against 2 µs, once per layer)."""
+    low, high = np.log10(floor), np.log10(top)
+    logs = _POSITIONS * ((high - low) / BINS) + low
+    logs[-1] = high
+    edges = np.power(10.0, logs)
+    edges[0], edges[-1] = floor, top
+    return edges
 
 
 def _percentile(ordered: np.ndarray, q: float) -> float:

@@ -24,6 +24,7 @@ from safetensors.numpy import save_file
 
 from steelyard.api import audit_one, compare
 from steelyard.cli import app
+from steelyard.findings import Severity
 from steelyard.policy import Policy
 
 F32 = np.finfo(np.float32)
@@ -224,3 +225,65 @@ def test_float64_beyond_float32_range_fails_the_gate(tmp_path: Path, writer: str
     for jobs in ("1", "2"):
         result = CliRunner().invoke(app, ["audit", str(path), "--format", "json", "--jobs", jobs])
         assert result.exit_code == 1, result.output
+
+
+def _onnx_float64(path: Path, value: float) -> None:
+    """Conv (float64 weights) → Gemm (float64, alpha 2, beta 0.5) with one weight of each set
+    to ``value``; written with the ``onnx`` package."""
+    from onnx import TensorProto, helper, numpy_helper, save
+
+    rng = np.random.default_rng(11)
+    conv = rng.standard_normal((8, 4, 3, 3)) * 0.05
+    conv[2, 1, 0, 0] = value
+    dense = rng.standard_normal((8 * 16, 10)) * 0.05  # Gemm B is (K × N)
+    dense[5, 3] = value
+    arrays = {"conv.w": conv, "conv.b": np.zeros(8), "fc.w": dense, "fc.b": np.full(10, value),
+              "shape": np.array([1, 128], np.int64)}
+    nodes = [
+        helper.make_node("Conv", ["x", "conv.w", "conv.b"], ["c"]),
+        helper.make_node("Relu", ["c"], ["r"]),
+        helper.make_node("Reshape", ["r", "shape"], ["f"]),
+        helper.make_node("Gemm", ["f", "fc.w", "fc.b"], ["y"], alpha=2.0, beta=0.5),
+    ]
+    graph = helper.make_graph(
+        nodes, "wide", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, [1, 4, 6, 6])],
+        [helper.make_tensor_value_info("y", TensorProto.DOUBLE, [1, 10])],
+        [numpy_helper.from_array(v, k) for k, v in arrays.items()],
+    )
+    save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), str(path))
+
+
+def _keras_float64(path: Path, value: float) -> None:
+    """A Keras 2 HDF5 model (Conv2D, Dense) of float64 kernels, one weight of each set to
+    ``value``; written with ``h5py`` (the layout of tests/rules/test_nonfinite.py)."""
+    from tests.rules.test_nonfinite import _write_keras2
+
+    rng = np.random.default_rng(12)
+    conv = rng.standard_normal((3, 3, 4, 6)) * 0.05
+    conv[1, 1, 2, 3] = value
+    dense = rng.standard_normal((5, 7)) * 0.05
+    dense[4, 6] = value
+    common = {"padding": "valid", "strides": [1, 1], "use_bias": False, "activation": "linear"}
+    _write_keras2(path, [
+        ("conv", "Conv2D", {**common, "filters": 6, "kernel_size": [3, 3]}, conv),
+        ("fc", "Dense", {"units": 7, "activation": "linear", "use_bias": False}, dense),
+    ])
+
+
+@pytest.mark.parametrize("value", [1e300, -1e39])
+@pytest.mark.parametrize("writer", ["onnx", "keras"])
+def test_float64_beyond_float32_range_in_onnx_and_keras_fails_quietly(
+    tmp_path: Path, writer: str, value: float
+) -> None:
+    """The same fail-closed verdict for ONNX (double initializers, a Gemm's alpha and beta
+    applied) and Keras HDF5 (float64 datasets): every layer with such a weight is flagged
+    non-finite, with no numpy warning on the way."""
+    path = tmp_path / ("model.onnx" if writer == "onnx" else "model.h5")
+    (_onnx_float64 if writer == "onnx" else _keras_float64)(path, value)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        audit = audit_one(path, Policy(), jobs=1)
+    flagged = {f.tensor for f in audit.findings if f.rule == "nonfinite"}
+    expected = {"conv.w", "fc.w", "fc.b"} if writer == "onnx" else {"conv/conv/kernel:0", "fc/fc/kernel:0"}
+    assert expected <= flagged, [(f.rule, f.tensor, f.message) for f in audit.findings]
+    assert audit.failing(Severity.ERROR)  # the default gate (error) fails

@@ -24,6 +24,7 @@ from collections.abc import Callable
 
 import numpy as np
 
+from steelyard.dtypes import to_float32
 from steelyard.graph import Activation, LayerKind
 from steelyard.loaders.onnx.layer_draft import Array, Draft, f32
 from steelyard.loaders.onnx.lookthrough import Folder, View
@@ -102,9 +103,12 @@ class LayerBuilder:
         read = b.read
 
         def weight() -> np.ndarray:
-            array = np.asarray(read()).astype(np.float32)
+            array = to_float32(np.asarray(read()))
             array = array if trans_b else array.T
-            return array * np.float32(alpha) if alpha != 1.0 else array
+            if alpha == 1.0:
+                return array
+            with np.errstate(over="ignore"):  # beyond float32: ±Inf, as nonfinite counts it
+                return array * np.float32(alpha)
 
         draft = self._simple(node, LayerKind.DENSE, b, (units, fan), weight, node.input(0))
         c = self.folder.fold(node.input(2)) if node.input(2) else None
@@ -114,7 +118,8 @@ class LayerBuilder:
             read_c = c.read
 
             def bias() -> np.ndarray:
-                values = np.asarray(read_c()).astype(np.float32).reshape(-1) * np.float32(beta)
+                with np.errstate(over="ignore"):  # beyond float32: ±Inf, as nonfinite counts it
+                    values = to_float32(np.asarray(read_c())).reshape(-1) * np.float32(beta)
                 return np.ascontiguousarray(np.broadcast_to(values, (units,)))
 
             draft.bias, draft.bias_view = c.source, bias

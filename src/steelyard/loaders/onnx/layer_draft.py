@@ -8,6 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from steelyard.dtypes import to_float32
 from steelyard.graph import Activation, LayerKind
 from steelyard.loaders.onnx.lookthrough import View
 from steelyard.loaders.onnx.quantized import QuantWeight
@@ -52,7 +53,7 @@ def f32(
     given."""
 
     def view() -> np.ndarray:
-        array = np.asarray(read()).astype(np.float32)
+        array = to_float32(np.asarray(read()))
         if transform is not None:
             array = transform(array)
         if shape is not None:

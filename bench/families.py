@@ -79,6 +79,9 @@ SIZES = {
     "quick": Shape(vocab=8000, hidden=512, intermediate=1408, layers=8),
     "300m": Shape(vocab=32000, hidden=1024, intermediate=2816, layers=20),
     "1.3b": Shape(vocab=32000, hidden=2048, intermediate=5632, layers=24),
+    # A fine-grained mixture of experts: 32 experts of 512 per block, 576 expert matrices of
+    # 512 x 1024 in 393M parameters (every one a small layer; see docs/performance.md, D).
+    "moe": Shape(vocab=32000, hidden=1024, intermediate=512, layers=6, heads=16, experts=32),
 }
 TINY = Shape(vocab=256, hidden=64, intermediate=128, layers=1)
 FAMILIES = ("gaussian", "trained", "lowrank-heavytail", "outlier-channels", "near-duplicate")

@@ -15,6 +15,7 @@ import json
 import warnings
 from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import ml_dtypes
 import numpy as np
@@ -129,10 +130,25 @@ def test_extreme_transformer_weights_are_audited_without_warnings(tmp_path: Path
     json.loads(result.stdout, parse_constant=refuse)
 
 
+def _save_onnx(
+    path: Path, nodes: list[Any], arrays: dict[str, np.ndarray], x_shape: list[int], elem: int
+) -> None:
+    """An opset-17 model of ``nodes`` from input ``x`` (``x_shape``) to output ``y`` ([1, 10]),
+    both of element type ``elem``, with ``arrays`` as initializers; written with ``onnx``."""
+    from onnx import helper, numpy_helper, save
+
+    graph = helper.make_graph(
+        nodes, "extreme", [helper.make_tensor_value_info("x", elem, x_shape)],
+        [helper.make_tensor_value_info("y", elem, [1, 10])],
+        [numpy_helper.from_array(v, k) for k, v in arrays.items()],
+    )
+    save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), str(path))
+
+
 def _onnx_model(case: str, path: Path) -> None:
     """Conv 3×3 (8 → 16 channels) with batch normalisation, then a dense layer; the
     convolution, the normalisation scale and the dense weights turned into ``case``."""
-    from onnx import TensorProto, helper, numpy_helper, save
+    from onnx import TensorProto, helper
 
     rng = np.random.default_rng(len(case) + 2)
 
@@ -154,12 +170,7 @@ def _onnx_model(case: str, path: Path) -> None:
         helper.make_node("Reshape", ["r", "shape"], ["f"]),
         helper.make_node("Gemm", ["f", "fc.w", "fc.b"], ["y"]),
     ]
-    graph = helper.make_graph(
-        nodes, "extreme", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 8, 6, 6])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 10])],
-        [numpy_helper.from_array(v, k) for k, v in arrays.items()],
-    )
-    save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), str(path))
+    _save_onnx(path, nodes, arrays, [1, 8, 6, 6], TensorProto.FLOAT)
 
 
 def _gguf_model(case: str, path: Path) -> None:
@@ -230,7 +241,7 @@ def test_float64_beyond_float32_range_fails_the_gate(tmp_path: Path, writer: str
 def _onnx_float64(path: Path, value: float) -> None:
     """Conv (float64 weights) → Gemm (float64, alpha 2, beta 0.5) with one weight of each set
     to ``value``; written with the ``onnx`` package."""
-    from onnx import TensorProto, helper, numpy_helper, save
+    from onnx import TensorProto, helper
 
     rng = np.random.default_rng(11)
     conv = rng.standard_normal((8, 4, 3, 3)) * 0.05
@@ -245,12 +256,7 @@ def _onnx_float64(path: Path, value: float) -> None:
         helper.make_node("Reshape", ["r", "shape"], ["f"]),
         helper.make_node("Gemm", ["f", "fc.w", "fc.b"], ["y"], alpha=2.0, beta=0.5),
     ]
-    graph = helper.make_graph(
-        nodes, "wide", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, [1, 4, 6, 6])],
-        [helper.make_tensor_value_info("y", TensorProto.DOUBLE, [1, 10])],
-        [numpy_helper.from_array(v, k) for k, v in arrays.items()],
-    )
-    save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), str(path))
+    _save_onnx(path, nodes, arrays, [1, 4, 6, 6], TensorProto.DOUBLE)
 
 
 def _keras_float64(path: Path, value: float) -> None:

@@ -12,6 +12,9 @@ practice for trained-like weights, no source).
 
 from __future__ import annotations
 
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
 
@@ -23,29 +26,13 @@ from steelyard.rules._spectrum import (
     mp_edge,
 )
 
+sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "bench"))
+from spectrum_paths import draw
+
 ALLOWED = 4.0
 #: Whole-matrix shapes between SVD_ENTRIES and CLOSE_ENTRIES: square, wide, tall, thin.
 SHAPES = ((96, 128), (128, 128), (128, 256), (200, 300), (256, 256), (64, 1024), (512, 128),
           (1024, 64), (100, 600), (24, 2048))
-
-
-def _draw(rng: np.random.Generator, family: str, m: int, n: int) -> np.ndarray:
-    sigma = 1.0 / np.sqrt(n)
-    if family == "uniform":
-        a = rng.uniform(-1.0, 1.0, (m, n)) * sigma * np.sqrt(3.0)
-    else:
-        a = rng.standard_normal((m, n)) * sigma
-    if family == "planted":
-        theta = rng.uniform(0.8, 3.5) * sigma * (m * n) ** 0.25
-        u, v = rng.standard_normal(m), rng.standard_normal(n)
-        a += theta * np.outer(u / np.linalg.norm(u), v / np.linalg.norm(v))
-    if family == "lowrank":
-        rank = 8
-        strengths = rng.uniform(0.2, 2.0) * sigma * (m * n) ** 0.25 / np.arange(1, rank + 1)
-        left = np.linalg.qr(rng.standard_normal((m, rank)))[0]
-        right = np.linalg.qr(rng.standard_normal((n, rank)))[0]
-        a += (left * strengths) @ right.T
-    return a.astype(np.float32)
 
 
 def test_shapes_cover_the_close_range() -> None:
@@ -64,7 +51,7 @@ def test_close_search_gives_the_exact_verdict(family: str) -> None:
     agreed = 0
     for trial in range(160):
         m, n = SHAPES[trial % len(SHAPES)]
-        a = _draw(rng, family, m, n)
+        a = draw(rng, family, m, n)
         sigma = 1.0 / np.sqrt(n)
         check = edge_check(a, sigma, ALLOWED, seed=trial)
         assert check.method == "lanczos"

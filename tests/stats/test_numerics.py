@@ -82,3 +82,22 @@ def test_median_of_flattens_and_takes_lists() -> None:
     assert median_of([0.25, 2.0, 1.0]) == 1.0
     assert np.isnan(median_of(np.zeros(0)))
 
+
+
+def test_power_of_two_toward_one_and_exact_rescaling() -> None:
+    """The factor is 1 inside [1/bound, bound] and for no usable peak, else the power of two
+    putting the peak in [0.5, 1) (IEEE 754 scaling by 2^k is exact for normal results, so the
+    float64 product then rounds to float32 without error)."""
+    from steelyard.stats.numerics import power_of_two_toward_one, times_exactly
+
+    for peak in (1.0, 2.0**32, 2.0**-32, 0.0, -5.0, math.inf, math.nan):
+        assert power_of_two_toward_one(peak, 2.0**32) == 1.0
+    for peak in (3.0e38, 2.0**33, 1.0e-40, 2.0**-33, 7.5e-45):
+        factor = power_of_two_toward_one(peak, 2.0**32)
+        assert 0.5 <= peak * factor < 1.0 and math.frexp(factor)[0] == 0.5
+    tiny = np.array([1.0e-44, -3.0e-42, 7.0e-45], np.float32)  # subnormals
+    factor = power_of_two_toward_one(float(np.abs(tiny).max()), 2.0**32)
+    assert factor > float(np.finfo(np.float32).max)  # the factor itself is beyond float32
+    scaled = times_exactly(tiny, factor)
+    assert scaled.dtype == np.float32
+    assert np.array_equal(scaled.astype(np.float64), tiny.astype(np.float64) * factor)

@@ -28,6 +28,7 @@ import numpy as np
 from steelyard.comparison.diff import Side, Sums
 from steelyard.comparison.matching import Pair
 from steelyard.graph import Checkpoint, Format, Layer, LayerKind
+from steelyard.stats.numerics import power_of_two_toward_one, times_exactly
 
 #: Most singular directions the update's effective rank is resolved to on large layers.
 RANK_LIMIT = 64
@@ -155,14 +156,11 @@ def stored_type(side: Side, layer: Layer) -> str | None:
 
 
 def _unit_scaled(matrix: np.ndarray) -> np.ndarray:
-    """``matrix`` times the power of two that brings its largest magnitude to [0.5, 1) when
-    that lies outside [2^-32, 2^32], where the sketch's float32 products could overflow or
-    vanish (exact but for subnormals; the rank is the same for any multiple)."""
-    peak = float(np.max(np.abs(matrix), initial=0.0))
-    if not math.isfinite(peak) or peak == 0.0 or 2.0**-32 <= peak <= 2.0**32:
-        return matrix
-    factor = 2.0 ** -math.frexp(peak)[1]
-    return np.multiply(matrix, factor, dtype=np.float64).astype(np.float32)
+    """``matrix`` brought to a largest magnitude in [0.5, 1) by a power of two when that lies
+    outside [2^-32, 2^32], where the sketch's float32 products could overflow or vanish (the
+    rank is the same for any multiple)."""
+    factor = power_of_two_toward_one(float(np.max(np.abs(matrix), initial=0.0)), 2.0**32)
+    return matrix if factor == 1.0 else times_exactly(matrix, factor)
 
 
 def energy_rank(delta: np.ndarray, share: float = RANK_SHARE, limit: int = RANK_LIMIT) -> tuple[int | None, int | None]:

@@ -114,8 +114,9 @@ def edge_check(rows: np.ndarray, sigma: float, allowed: float, seed: int = 0) ->
     # Up to CLOSE_ENTRIES the search takes CLOSE_STEPS steps before it may stop on small gains:
     # after 8, a bulk without outliers can still be several fluctuations short of its top
     # value (1,600 draws of 96 × 128 to 1024 × 64: p99 3.6, worst 5.9), after 16 about two at
-    # worst (p99 0.8, worst 1.8; 2.0 in the tests' draws), and the verdict was the full SVD's on all 4,000 draws with and
-    # without learned directions, against 3 borderline misses at 8 (bench/spectrum_paths.py).
+    # worst (p99 0.8, worst 1.8; 2.0 in the tests' draws), and the verdict was the full SVD's
+    # on all 4,000 draws with and without learned directions, against 3 borderline misses at
+    # 8 (bench/spectrum_paths.py).
     top, method = top_singular_value(
         rows,
         seed,

@@ -85,7 +85,7 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.safepath import read_beside
-from steelyard.stats.numerics import median_of
+from steelyard.stats.numerics import median_of, power_of_two_toward_one, times_exactly
 
 _SAMPLE = 2048
 _POWER = 2
@@ -263,16 +263,6 @@ def _stable_order(values: np.ndarray) -> np.ndarray:
     return order
 
 
-def _power_of_two_scale(row_squares: np.ndarray) -> float:
-    """1, or the power of two that brings the largest row norm to [0.5, 1) when it lies
-    outside [2^-40, 2^40], where float32 products of rows could overflow or underflow (a
-    table near the top of the float32 range, or of subnormals)."""
-    largest = float(np.max(row_squares)) if row_squares.size else 0.0
-    if not largest > 0.0 or 2.0**-80 <= largest <= 2.0**80:
-        return 1.0
-    return 2.0 ** -math.frexp(math.sqrt(largest))[1]
-
-
 def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -> TokenRows:
     """Norms, centred norms, residuals after removing ``k`` principal directions, and exact
     duplicate rows of ``M[V, d]``; ``row_squares`` (Σ m_ij² per row) when already known.
@@ -288,10 +278,12 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     # Every measurement below is a ratio to the table's own medians, so a table whose float32
     # sums could overflow or vanish is measured scaled by a power of two (exact) and the
     # lengths are scaled back at the end.
-    scale = _power_of_two_scale(squares)
-    # (the factor itself may lie beyond float32, 2^142 for a table of subnormals: applied in
-    # float64, where the product is exact, then rounded to float32)
-    block = original if scale == 1.0 else np.multiply(original, scale, dtype=np.float64).astype(np.float32)
+    # (the largest row norm brought to [0.5, 1) when it lies outside [2^-40, 2^40], where
+    # float32 products of rows could overflow or vanish: a table near the top of the float32
+    # range, or of subnormals)
+    largest = math.sqrt(float(np.max(squares))) if squares.size else 0.0
+    scale = power_of_two_toward_one(largest, 2.0**40)
+    block = original if scale == 1.0 else times_exactly(original, scale)
     squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
     # One float32 BLAS product: 4× faster than numpy's buffered float64 reduction on a
     # 8000 × 512 table, and the same mean to about 1e-6 of its size (measured).

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from steelyard.dtypes import FLOAT_ITEMSIZE
+from steelyard.dtypes import FLOAT_ITEMSIZE, to_float32
 from steelyard.graph import Tensor
 from steelyard.stats.memo import Memo
 from steelyard.stats.numerics import FLOAT_NAMES
@@ -39,10 +39,7 @@ def count_into(values: np.ndarray, counts: list[int]) -> None:
 
 def _narrowed(values: np.ndarray) -> np.ndarray:
     """Floats wider than float32 narrowed to it (beyond its range: ±Inf, quietly)."""
-    if values.dtype.kind == "f" and values.dtype.itemsize > 4:
-        with np.errstate(over="ignore"):
-            return values.astype(np.float32)
-    return values
+    return to_float32(values) if values.dtype.kind == "f" and values.dtype.itemsize > 4 else values
 
 
 def _judged(array: np.ndarray) -> np.ndarray:

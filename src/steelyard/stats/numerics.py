@@ -1,5 +1,5 @@
 """Float facts shared by the parts: the stored float names (widths in ``steelyard.dtypes``)
-exact sums of squares and a lean median."""
+exact sums of squares, a lean median and exact power-of-two rescaling."""
 
 from __future__ import annotations
 
@@ -123,3 +123,20 @@ def median_of(values: np.ndarray | list[float]) -> float:
     if inexact and np.isnan(parted[-1]):
         return math.nan
     return float(parted[middle[0] : middle[-1] + 1].mean())
+
+
+def power_of_two_toward_one(peak: float, bound: float) -> float:
+    """1.0, or the power of two that brings ``peak`` to [0.5, 1) when it lies outside
+    [1/bound, bound], where float32 sums and products of values that large or small could
+    overflow or vanish (1.0 too for a peak that is 0, negative or not finite). Multiplying
+    by a power of two is exact (but for subnormals), so ratios measured after it are the
+    same; the factor itself may lie beyond float32 (see :func:`times_exactly`)."""
+    if not (math.isfinite(peak) and peak > 0.0) or 1.0 / bound <= peak <= bound:
+        return 1.0
+    return 2.0 ** -math.frexp(peak)[1]
+
+
+def times_exactly(values: np.ndarray, factor: float) -> np.ndarray:
+    """``values`` times ``factor`` as float32, the product taken in float64: a power of two
+    for a table of subnormals (2^142, say) is beyond float32 itself."""
+    return np.multiply(values, factor, dtype=np.float64).astype(np.float32)

@@ -160,6 +160,13 @@ class Tensor:
     """Optional, for ``bf16`` tensors with ``read_span``: elements ``[start, stop)`` as their
     uint16 bit patterns, so the audit widens them without decoding through ml_dtypes (whose
     import alone costs over a second with ml_dtypes 0.7)."""
+    fill_span: Callable[[int, int, np.ndarray], None] | None = field(
+        default=None, repr=False, compare=False
+    )
+    """Optional, for ``f32`` tensors with ``read_span`` whose bytes are little-endian float32:
+    writes elements ``[start, stop)`` into a C-contiguous float32 array of that many elements,
+    so a streamed pass reads the file straight into the layer's matrix instead of into a
+    fresh buffer it then copies (a third of a float32 layer's read time)."""
 
     @property
     def size(self) -> int:
@@ -189,6 +196,17 @@ class Tensor:
         (``read_span`` must be set); broken bytes raise :class:`~steelyard.errors.UnreadableTensor`."""
         from steelyard.streaming import convert_into, widen_bf16_bits
 
+        if (
+            self.fill_span is not None
+            and out.dtype == np.float32
+            and out.flags.c_contiguous
+            and out.size == stop - start
+        ):
+            try:
+                self.fill_span(start, stop, out)
+            except _BROKEN_INPUT as exc:
+                raise UnreadableTensor(self.name, exc) from exc
+            return
         if self.read_bits is None or self.dtype != "bf16":
             convert_into(self.read_part(start, stop), out)
             return

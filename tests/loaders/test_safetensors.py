@@ -56,6 +56,39 @@ def test_bf16_matches_package_after_ml_dtypes(tmp_path: Path, rng: np.random.Gen
     np.testing.assert_array_equal(got.read_float32(), reference.astype(np.float32))
 
 
+def test_float32_parts_fill_the_caller_array_as_the_package_reads_them(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    # A streamed float32 pass reads the file straight into the layer's matrix
+    # (Tensor.fill_span); every part must hold what the safetensors package reads there,
+    # and a part that would leave the tensor or the file is refused, never half-filled.
+    values = rng.normal(size=(37, 11)).astype(np.float32)
+    values[3, 4], values[5, 6] = np.nan, -np.inf
+    path = tmp_path / "f.safetensors"
+    st_numpy.save_file({"w.weight": values, "h.weight": values[:2].astype(np.float16)}, path)
+    reference = st_numpy.load_file(path)["w.weight"].reshape(-1)  # reference: safetensors
+    tensor = load(path).tensors["w.weight"]
+    assert tensor.fill_span is not None
+    assert load(path).tensors["h.weight"].fill_span is None  # other dtypes convert
+    out = np.full(reference.size, 7.0, np.float32)
+    for start, stop in ((0, 1), (1, 100), (100, 101), (101, reference.size)):
+        tensor.widen_part(start, stop, out[start:stop])
+    np.testing.assert_array_equal(out.view(np.uint32), reference.view(np.uint32))
+    strided = np.zeros(2 * 11, np.float32)[::2]  # not contiguous: read, then copied
+    tensor.widen_part(0, 11, strided)
+    np.testing.assert_array_equal(strided, reference[:11])
+    with pytest.raises(ValueError):
+        tensor.fill_span(reference.size - 2, reference.size + 1, np.zeros(3, np.float32))
+    # The file shrinks after it was listed: the read stops with the loader's reason.
+    data = path.read_bytes()
+    data_start = 8 + struct.unpack("<Q", data[:8])[0]
+    w_stop = json.loads(data[8:data_start])["w.weight"]["data_offsets"][1]
+    listed = load(path).tensors["w.weight"]
+    path.write_bytes(data[: data_start + w_stop - 8])  # w's last two values are gone
+    with pytest.raises(LoadError, match="ended before"):
+        listed.widen_part(0, reference.size, np.zeros(reference.size, np.float32))
+
+
 @pytest.mark.parametrize(("tag", "dtype"), [("F8_E4M3", ml_dtypes.float8_e4m3fn), ("F8_E5M2", ml_dtypes.float8_e5m2)])
 def test_fp8_decoded_from_raw_bytes(tmp_path: Path, rng: np.random.Generator, tag: str, dtype: type) -> None:
     # The package's numpy backend cannot read FP8 at all, so the reference is ml_dtypes' cast.

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import struct
+import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -181,6 +182,22 @@ class _Shard:
 
         return read_span
 
+    def fill_reader(self, name: str) -> Callable[[int, int, np.ndarray], None] | None:
+        """For a float32 tensor: elements ``[start, stop)`` read straight into a float32 array
+        of that many elements (``Tensor.fill_span``); None for every other dtype."""
+        dtype, shape, begin, _end = self.entries[name]
+        size = math.prod(shape)
+        if dtype != "f32" or sys.byteorder != "little":
+            return None
+
+        def fill_span(start: int, stop: int, out: np.ndarray) -> None:
+            if not 0 <= start <= stop <= size or out.size != stop - start:
+                raise ValueError(f"elements [{start}, {stop}) of {size} into {out.size}")
+            if out.size:
+                self._read_into(out, begin + start * 4)
+
+        return fill_span
+
 
 def _is_index(head: bytes) -> bool:
     return head.lstrip()[:1] == b"{" and b"weight_map" in head
@@ -217,6 +234,7 @@ class SafetensorsLoader:
                     reader=shard.reader(name),
                     read_span=shard.span_reader(name),
                     read_bits=shard.span_reader(name, bits=True) if dtype == "bf16" else None,
+                    fill_span=shard.fill_reader(name),
                 )
                 origin[name] = shard.path
         # Packed layers (GPTQ, AWQ, bitsandbytes, FP8, MLX...) become logical float weights;

@@ -13,6 +13,14 @@ unchanged by scaling a row) and gathers only the rows of buckets with more than 
 
 * :func:`exact_pairs` multiplies blocks of normalised rows with every later row (BLAS) and
   keeps the entries past the threshold (``np.argwhere``). Cost n²·d/2, memory one block.
+* The *screened* search replaces it for wide rows (:func:`_screen_pays`): every row is
+  projected onto ``SCREEN_DIMENSIONS`` (128) seeded N(0, 1) directions, the short rows'
+  Gram matrix marks the pairs whose projected cosine passes :func:`screen_limit`, and only
+  those are confirmed from the rows themselves. The limit is set so that a pair at the
+  threshold is dropped with chance at most ``SCREEN_MISS`` (1e-9), whatever the rows are (a
+  bound from chi-square tails, not a fit to data); cost n·128·(d + n) instead of n²·d. When
+  so many pairs pass that confirming them one by one would cost more (a layer of near
+  copies), the exact search runs after all.
 * :func:`candidate_pairs` is sub-quadratic: random-hyperplane sign hashing (Charikar 2002,
   "Similarity estimation techniques from rounding algorithms", STOC) into ``tables`` tables of
   ``bits`` bits. Two rows at angle θ agree on one random hyperplane with probability 1 − θ/π,
@@ -51,6 +59,7 @@ and docs/performance.md.
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -85,6 +94,17 @@ _PAIRED = 4
 #: products times this are fewer than the exact search's; 3 errs towards the hashed search,
 #: by at most 1.5 × on the measured 1024-row layers, never on wide ones where time matters.
 BUCKET_DOT_COST = 3.0
+#: Gaussian directions the screened Gram search projects the rows onto (see :func:`screen_limit`).
+SCREEN_DIMENSIONS = 128
+#: Chance, per pair at the threshold, that the screen drops it (designed; see screen_limit).
+SCREEN_MISS = 1e-9
+#: The screen runs on rows of at least ``SCREEN_WIDTH`` entries when its multiply-adds, times
+#: this, are fewer than the full Gram's (whose search also copies every row normalised).
+#: Measured on one thread, 128-512 rows of 256-4608 i.i.d. entries: the screen took 0.41-0.89
+#: of the exact search's time where this picks it (0.41 at 512 x 4608; at most 1.11, 192 x
+#: 576), and 0.91-1.32 where it does not (docs/performance.md, "Twelfth session").
+SCREEN_COST = 0.8
+SCREEN_WIDTH = 512
 #: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
 _SLACK = 1e-4
@@ -290,6 +310,96 @@ def _exact_among(
     return _settle(rows, members[first], members[second], rough, threshold, negative)
 
 
+def screen_limit(threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS) -> float:
+    """The projected cosine that every pair at cosine >= ``threshold`` keeps but with chance
+    ``miss``, after projecting both rows onto ``dimensions`` i.i.d. N(0, 1) directions.
+
+    For unit rows u, v at cosine c and a Gaussian G [d, k], X = Gᵀu and Y = Gᵀv are standard
+    normal in k dimensions, so A = ‖X − Y‖²/(2(1 − c)), B = ‖X‖² and C = ‖Y‖² are χ²_k, and
+    since (B + C)/(2√(BC)) >= 1 the projected cosine is at least 1 − (1 − c)·A/√(BC).
+    Laurent & Massart (2000, Ann. Statist. 28, Lemma 1) bound P(A >= k + 2√(kx) + 2x) and
+    P(B <= k − 2√(kx)) by e^(−x) each; with x = ln(3/miss) all three hold together but with
+    chance ``miss``, and then 1 − cos' <= (1 − c)·a/b. The rows' own distribution does not
+    enter: the bound holds for every pair. −1 when k is too small for any bound."""
+    x = math.log(3.0 / miss)
+    upper = dimensions + 2.0 * math.sqrt(dimensions * x) + 2.0 * x
+    lower = dimensions - 2.0 * math.sqrt(dimensions * x)
+    if lower <= 0:
+        return -1.0
+    return max(-1.0, 1.0 - (1.0 - threshold) * upper / lower)
+
+
+#: Row norms whose raw float32 products are safe: the dot product of two such rows, and its
+#: terms down to a millionth of it, lie within float32's normal range. Rows outside it are
+#: normalised before any product.
+_PLAIN_SCALE = (1e-15, 1e15)
+
+
+def _off_scale(norms: np.ndarray) -> np.ndarray:
+    """Rows whose norm lies outside :data:`_PLAIN_SCALE` (or is not finite)."""
+    return np.asarray(~((norms >= _PLAIN_SCALE[0]) & (norms <= _PLAIN_SCALE[1])))
+_planes_lock = threading.Lock()
+_planes: dict[int, np.ndarray] = {}
+
+
+def _screen_planes(width: int, seed: int) -> np.ndarray:
+    """The screen's ``[width, SCREEN_DIMENSIONS]`` N(0, 1) directions for ``seed``: the first
+    rows of one seeded draw, kept for the process (a generator fills rows in order, so any
+    width reads the same values as drawing that width alone; 0.6M draws took 5.7 ms, more
+    than the projection they serve)."""
+    with _planes_lock:
+        drawn = _planes.get(seed)
+        if drawn is None or drawn.shape[0] < width:
+            rng = np.random.default_rng((seed, SCREEN_DIMENSIONS))
+            drawn = rng.standard_normal((width, SCREEN_DIMENSIONS), dtype=np.float32)
+            drawn.setflags(write=False)
+            _planes[seed] = drawn
+        return drawn[:width]
+
+
+def _screen_pays(count: int, width: int) -> bool:
+    """Whether the screened search of ``count`` rows of ``width`` costs less than the Gram."""
+    screened = count * SCREEN_DIMENSIONS * (width + count)
+    return width >= SCREEN_WIDTH and SCREEN_COST * screened < _exact_dots(count) * width
+
+
+def _gram_among(
+    rows: Rows, members: np.ndarray, threshold: float, negative: bool, seed: int, tally: Tally
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every pair of ``members`` past the threshold: the exact search, or the screened one
+    when that costs less (wide rows: the Gram's n²·d against n·k·(d + n))."""
+    width = rows.matrix.shape[1] + (0 if rows.extra is None else 1)
+    if not _screen_pays(members.size, width):
+        return _exact_among(rows, members, threshold, negative, tally)
+    limit = screen_limit(threshold)
+    planes = _screen_planes(width, seed)
+    everyone = members.size == rows.count
+    projected = rows.project(planes) if everyone else rows.project_rows(members, planes)
+    # Rows far from unit scale are projected normalised: float32 products of rows of
+    # subnormals would lose the digits the screen needs.
+    odd = np.flatnonzero(_off_scale(rows.norms[members]))
+    if odd.size:
+        projected[odd] = rows.unit(members[odd]) @ planes
+    short = normalise(projected)[0]
+    gram = short @ short.T
+    tally.dots += int(projected.size) + int(gram.size)
+    mask = gram >= limit
+    if negative:
+        mask |= gram <= -limit
+    hits = np.flatnonzero(np.triu(mask, 1))
+    first, second = np.divmod(hits, members.size)
+    if BUCKET_DOT_COST * hits.size > _exact_dots(members.size):
+        # So many rows pass the screen (a layer of near copies) that pairs would cost more.
+        return _exact_among(rows, members, threshold, negative, tally)
+    tally.method = "screened"
+    n = rows.count
+    codes = members[first] * n + members[second]  # row-major, as the exact search lists them
+    a, b, rough = _pair_hits(rows, codes, threshold, negative, tally)
+    certain = _passing(rough, threshold + 2 * _SLACK, negative)
+    keep = _partner_mask(a, b, certain, np.zeros(n, dtype=bool))
+    return _settle(rows, a[keep], b[keep], rough[keep], threshold, negative)
+
+
 def exact_pairs(
     rows: np.ndarray | Rows, threshold: float, negative: bool = False, tally: Tally | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -402,11 +512,16 @@ def _pair_hits(
     step = max(1, BLOCK_BYTES // (8 * width))
     rough = np.empty(codes.size, dtype=np.float32)
     inverse = _inverse(view.norms)
+    odd = _off_scale(view.norms)
     for start in range(0, codes.size, step):
         a, b = first[start : start + step], second[start : start + step]
         dots = np.einsum("ij,ij->i", view.take(a, np.float32), view.take(b, np.float32))
         with np.errstate(invalid="ignore", over="ignore"):
-            rough[start : start + step] = dots * inverse[a] * inverse[b]
+            part = dots * inverse[a] * inverse[b]
+        redo = np.flatnonzero(odd[a] | odd[b])
+        if redo.size:  # raw products of such rows underflow or overflow float32
+            part[redo] = np.einsum("ij,ij->i", view.unit(a[redo]), view.unit(b[redo]))
+        rough[start : start + step] = part
     tally.dots += int(codes.size)
     keep = _passing(rough, threshold, negative)
     return first[keep], second[keep], rough[keep]
@@ -459,8 +574,11 @@ def _block_hits(
     """Pairs (rows[i], against[k]) with k > i (``against`` starts with ``rows``)."""
     # Cosines from the raw rows' Gram matrix, scaled afterwards: b² multiplications instead of
     # a normalised copy of every gathered row.
-    raw = view.take(against, np.float32)
-    inverse = _inverse(view.norms[against])
+    norms = view.norms[against]
+    if _off_scale(norms).any():  # raw products would underflow or overflow float32
+        raw, inverse = view.unit(against), np.ones(against.size, np.float32)
+    else:
+        raw, inverse = view.take(against, np.float32), _inverse(norms)
     gram = raw[: rows.size] @ raw.T
     with np.errstate(invalid="ignore", over="ignore"):
         gram *= inverse[: rows.size, None]
@@ -518,7 +636,7 @@ def candidate_pairs(
     paired = np.unique(np.concatenate([_small_pairs(b) for b in buckets]))
     tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b in buckets)
     if tally.planned * BUCKET_DOT_COST > _exact_dots(members.size):
-        return _exact_among(view, members, threshold, negative, tally)
+        return _gram_among(view, members, threshold, negative, seed, tally)
     tally.method = "hashed"
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
     _keep(found, *_pair_hits(view, paired, threshold, negative, tally))
@@ -558,5 +676,5 @@ def similar_pairs(
     if members.size < 2:
         return _EMPTY, _EMPTY, np.zeros(0), "exact"
     if members.size <= exact_limit:
-        return (*_exact_among(rows, members, threshold, negative, tally), "exact")
+        return (*_gram_among(rows, members, threshold, negative, seed, tally), tally.method)
     return (*candidate_pairs(rows, threshold, negative, seed, usable, tally), tally.method)

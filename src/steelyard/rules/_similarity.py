@@ -339,22 +339,35 @@ def _off_scale(norms: np.ndarray) -> np.ndarray:
     """Rows whose norm lies outside :data:`_PLAIN_SCALE` (or is not finite)."""
     return np.asarray(~((norms >= _PLAIN_SCALE[0]) & (norms <= _PLAIN_SCALE[1])))
 _planes_lock = threading.Lock()
-_planes: dict[int, np.ndarray] = {}
+_planes: dict[tuple[tuple[int, ...], int], np.ndarray] = {}
+#: Largest draw kept (entries), and most draws kept, for the process.
+_PLANES_KEPT = 2**22
+_PLANE_SETS = 8
+
+
+def _gaussian_planes(seed: tuple[int, ...], width: int, columns: int) -> np.ndarray:
+    """``numpy.random.default_rng(seed).standard_normal((width, columns))`` in float32, kept
+    for the process: a generator fills rows in order, so the first ``width`` rows of a wider
+    draw are the same values. Drawing them cost as much as the projection they serve (0.6M
+    values: 5.7 ms), and every layer of one width and plan draws the same ones."""
+    key = (seed, columns)
+    with _planes_lock:
+        drawn = _planes.get(key)
+        if drawn is not None and drawn.shape[0] >= width:
+            return drawn[:width]
+    fresh = np.random.default_rng(seed).standard_normal((width, columns), dtype=np.float32)
+    fresh.setflags(write=False)
+    if fresh.size <= _PLANES_KEPT:
+        with _planes_lock:
+            if len(_planes) >= _PLANE_SETS and key not in _planes:
+                _planes.pop(next(iter(_planes)))
+            _planes[key] = fresh
+    return fresh
 
 
 def _screen_planes(width: int, seed: int) -> np.ndarray:
-    """The screen's ``[width, SCREEN_DIMENSIONS]`` N(0, 1) directions for ``seed``: the first
-    rows of one seeded draw, kept for the process (a generator fills rows in order, so any
-    width reads the same values as drawing that width alone; 0.6M draws took 5.7 ms, more
-    than the projection they serve)."""
-    with _planes_lock:
-        drawn = _planes.get(seed)
-        if drawn is None or drawn.shape[0] < width:
-            rng = np.random.default_rng((seed, SCREEN_DIMENSIONS))
-            drawn = rng.standard_normal((width, SCREEN_DIMENSIONS), dtype=np.float32)
-            drawn.setflags(write=False)
-            _planes[seed] = drawn
-        return drawn[:width]
+    """The screen's ``[width, SCREEN_DIMENSIONS]`` N(0, 1) directions for ``seed``."""
+    return _gaussian_planes((seed, SCREEN_DIMENSIONS), width, SCREEN_DIMENSIONS)
 
 
 def _screen_pays(count: int, width: int) -> bool:
@@ -427,8 +440,9 @@ def _table_buckets(
     table: int,
     seed: int,
     tally: Tally,
-) -> np.ndarray:
-    """Bucket number of every row in one table, oversized buckets split (see module docstring)."""
+) -> tuple[np.ndarray, np.ndarray]:
+    """Bucket number of every row in one table, oversized buckets split (see module docstring),
+    and the rows in bucket order (see :func:`_ranked`)."""
     bits = signs.shape[1]
     keys = signs.astype(np.int64) @ (1 << np.arange(bits, dtype=np.int64))
     flipped = np.zeros(keys.size, dtype=bool)
@@ -440,11 +454,11 @@ def _table_buckets(
         keys[flipped] ^= mask
     if outside is not None:
         keys[outside] = -1 - np.flatnonzero(outside)  # distinct keys: never in a pair
-    bucket = np.unique(keys, return_inverse=True)[1].reshape(-1)
+    bucket, order = _ranked(keys)
     sizes = np.bincount(bucket)
     members = np.flatnonzero(sizes[bucket] > BUCKET_CAP)
     if members.size == 0:
-        return bucket
+        return bucket, order
     # Longer keys for the rows of oversized buckets only: their own hyperplanes, seeded by table.
     planes = np.random.default_rng((seed, table)).standard_normal(
         (view.matrix.shape[1] + (0 if view.extra is None else 1), EXTRA_BITS), dtype=np.float32
@@ -459,9 +473,21 @@ def _table_buckets(
         chunk = extra[big, step * _SPLIT_STEP : (step + 1) * _SPLIT_STEP].astype(np.int64) @ weights
         code = bucket.astype(np.int64) << _SPLIT_STEP  # other buckets keep their rows together
         code[members[big]] += chunk
-        bucket = np.unique(code, return_inverse=True)[1].reshape(-1)
+        bucket, order = _ranked(code)
         sizes = np.bincount(bucket)
-    return bucket
+    return bucket, order
+
+
+def _ranked(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(dense rank of every code, the stable order that sorts them): ``numpy.unique``'s
+    inverse, and the order the bucket searches need, from one sort instead of three. The
+    order also sorts the ranks stably: ranks rise with the codes."""
+    order = np.argsort(codes, kind="stable")
+    ranked = codes[order]
+    rank = np.empty(codes.size, dtype=np.int64)
+    if codes.size:
+        rank[order] = np.cumsum(np.r_[False, ranked[1:] != ranked[:-1]])
+    return rank, order
 
 
 def confirmation_bound(n: int, tables: int) -> int:
@@ -488,10 +514,10 @@ def _band_dots(size: int) -> int:
     )
 
 
-def _small_pairs(bucket: np.ndarray) -> np.ndarray:
-    """Codes ``i·n + k`` (i < k) of the pairs in buckets of at most ``_PAIRED`` rows."""
+def _small_pairs(bucket: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """Codes ``i·n + k`` (i < k) of the pairs in buckets of at most ``_PAIRED`` rows
+    (``order``: the rows sorted stably by bucket)."""
     n = bucket.size
-    order = np.argsort(bucket, kind="stable")
     ranked = bucket[order]
     small = (np.bincount(bucket) <= _PAIRED)[ranked]
     codes: list[np.ndarray] = []
@@ -528,7 +554,11 @@ def _pair_hits(
 
 
 def _bucket_hits(
-    view: Rows, bucket: np.ndarray, threshold: float, negative: bool, tally: Tally
+    view: Rows,
+    table: tuple[np.ndarray, np.ndarray],
+    threshold: float,
+    negative: bool,
+    tally: Tally,
 ) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
     """Pairs inside buckets of more than ``_PAIRED`` rows passing the float32 filter, with
     their float32 cosines.
@@ -538,8 +568,9 @@ def _bucket_hits(
     (in index order) with itself and the next ``_BAND`` − 1 runs, a band of its Gram matrix:
     every pair of a bucket of up to ``_BAND``·``BUCKET_CAP`` rows, and beyond that every
     member meets at least the (``_BAND`` − 1)·``BUCKET_CAP`` >= ``PARTNERS`` members that
-    follow it (all of its capped partners when the bucket is a cluster of copies)."""
-    order = np.argsort(bucket, kind="stable")  # each bucket's members in index order
+    follow it (all of its capped partners when the bucket is a cluster of copies).
+    ``table`` is :func:`_table_buckets`'s (bucket of every row, rows in bucket order)."""
+    bucket, order = table  # the order keeps each bucket's members in index order
     sizes = np.bincount(bucket)
     starts = np.r_[0, np.cumsum(sizes)[:-1]]
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
@@ -622,9 +653,8 @@ def candidate_pairs(
     width = view.matrix.shape[1] + (0 if view.extra is None else 1)
     bits, tables = hash_plan(n, threshold)
     tally.bits, tally.tables = bits, tables
-    rng = np.random.default_rng(seed)
     # Every table's hyperplanes in one matrix, so the projection is a single BLAS product.
-    planes = rng.standard_normal((width, bits * tables), dtype=np.float32)
+    planes = _gaussian_planes((seed,), width, bits * tables)
     signs = view.project(planes) > 0
     outside = None if usable is None else ~np.asarray(usable, dtype=bool)
     buckets = [
@@ -633,8 +663,8 @@ def candidate_pairs(
     ]
     del signs
     # True twins collide in most tables: list the small buckets' pairs once.
-    paired = np.unique(np.concatenate([_small_pairs(b) for b in buckets]))
-    tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b in buckets)
+    paired = np.unique(np.concatenate([_small_pairs(*b) for b in buckets]))
+    tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b, _order in buckets)
     if tally.planned * BUCKET_DOT_COST > _exact_dots(members.size):
         return _gram_among(view, members, threshold, negative, seed, tally)
     tally.method = "hashed"

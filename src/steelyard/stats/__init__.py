@@ -216,7 +216,7 @@ class LayerStats:
                     # Folded weights beyond float32 become ±Inf (Inf·0 NaN), as the folded
                     # layer would compute them; the rules treat such rows as non-finite.
                     with np.errstate(over="ignore", invalid="ignore"):
-                        matrix = (self.matrix(layer) * scale[:, None]).astype(np.float32)
+                        matrix = np.multiply(self.matrix(layer), scale[:, None], dtype=np.float32)
                     cache.put(key, matrix)
         return Folded(matrix, bias, True)
 

@@ -32,8 +32,24 @@ MIB = 2**20
 
 
 # ---- checkpoints --------------------------------------------------------------------------
+class _Layout:
+    """What every layout derives from its tensor list."""
+
+    def tensors(self) -> Iterator[tuple[str, tuple[int, ...]]]:
+        raise NotImplementedError
+
+    @property
+    def parameters(self) -> int:
+        return sum(math.prod(shape) for _, shape in self.tensors())
+
+    @property
+    def largest(self) -> int:
+        """Elements of the largest tensor."""
+        return max(math.prod(shape) for _, shape in self.tensors())
+
+
 @dataclass(frozen=True)
-class Shape:
+class Shape(_Layout):
     """A decoder-only transformer in the usual PyTorch naming (q/k/v/o, gate/up/down)."""
 
     vocab: int
@@ -70,14 +86,62 @@ class Shape:
         if not self.tied:
             yield "lm_head.weight", (self.vocab, h)
 
-    @property
-    def parameters(self) -> int:
-        return sum(math.prod(shape) for _, shape in self.tensors())
+    def config(self) -> dict[str, Any] | None:
+        """The ``config.json`` written beside the weights (a llama model's keys)."""
+        config: dict[str, Any] = {
+            "model_type": "llama",
+            "hidden_act": "silu",
+            "hidden_size": self.hidden,
+            "intermediate_size": self.intermediate,
+            "num_hidden_layers": self.layers,
+            "vocab_size": self.vocab,
+        }
+        if self.heads:
+            config["num_attention_heads"] = self.heads
+            config["num_key_value_heads"] = self.heads * (self.kv or self.hidden) // self.hidden
+        if self.experts:
+            config["num_experts"] = self.experts
+        return config
 
-    @property
-    def largest(self) -> int:
-        """Elements of the largest tensor."""
-        return max(math.prod(shape) for _, shape in self.tensors())
+
+@dataclass(frozen=True)
+class ConvShape(_Layout):
+    """A bottleneck residual convolution network in torchvision's naming (``conv1``, ``bn1``,
+    ``layer<s>.<b>.conv<k>``, ``downsample``, ``fc``); the default stages are ResNet-50's
+    (He et al. 2016, "Deep residual learning for image recognition", CVPR: 3, 4, 6, 3
+    bottleneck blocks of widths 64-512, expansion 4, 25.6M parameters). Every convolution is
+    followed by an inference-form batch norm (weight, bias, running mean and variance), the
+    layout whose folding and twin search a transformer never exercises."""
+
+    stages: tuple[tuple[int, int], ...] = ((3, 64), (4, 128), (6, 256), (3, 512))
+    classes: int = 1000
+
+    def tensors(self) -> Iterator[tuple[str, tuple[int, ...]]]:
+        def norm(name: str, width: int) -> Iterator[tuple[str, tuple[int, ...]]]:
+            for part in ("weight", "bias", "running_mean", "running_var"):
+                yield f"{name}.{part}", (width,)
+
+        yield "conv1.weight", (64, 3, 7, 7)
+        yield from norm("bn1", 64)
+        inputs = 64
+        for stage, (blocks, width) in enumerate(self.stages, 1):
+            for block in range(blocks):
+                p = f"layer{stage}.{block}"
+                for k, (rows, cols, kernel) in enumerate(
+                    ((width, inputs, 1), (width, width, 3), (4 * width, width, 1)), 1
+                ):
+                    yield f"{p}.conv{k}.weight", (rows, cols, kernel, kernel)
+                    yield from norm(f"{p}.bn{k}", rows)
+                if block == 0:
+                    yield f"{p}.downsample.0.weight", (4 * width, inputs, 1, 1)
+                    yield from norm(f"{p}.downsample.1", 4 * width)
+                inputs = 4 * width
+        yield "fc.weight", (self.classes, inputs)
+        yield "fc.bias", (self.classes,)
+
+    def config(self) -> dict[str, Any] | None:
+        """No ``config.json``: the layout is inferred from the names."""
+        return None
 
 
 #: How synthetic weights are drawn: ``trained`` (the default) or ``gaussian``, the draws the
@@ -97,8 +161,11 @@ def _values(
     """Seeded weights. ``gaussian`` is an initializer's i.i.d. draw N(0, 1/fan_in), so every
     layer looks freshly initialised; ``trained`` gives each unit its own scale (log-normal,
     σ = 0.3: trained rows differ in norm) and adds a rank-4 component whose singular values
-    sit at 3× the Marchenko–Pastur edge (trained layers grow a few strong directions)."""
+    sit at 3× the Marchenko–Pastur edge (trained layers grow a few strong directions). A
+    convolution kernel ``[out, in, kh, kw]`` is drawn as its ``[out, in·kh·kw]`` matrix."""
     target = np.dtype(dtype or np.float32)
+    if len(shape) > 2:
+        return _values(rng, (shape[0], math.prod(shape[1:])), weights, target).reshape(shape)
     if len(shape) == 1:
         return (1.0 + 0.05 * rng.standard_normal(shape, dtype=np.float32)).astype(target)
     if weights in FAMILIES:
@@ -258,7 +325,7 @@ def family_matrix(rng: np.random.Generator, rows: int, cols: int, family: str) -
 
 def write_checkpoint(
     folder: Path,
-    shape: Shape,
+    shape: Shape | ConvShape,
     dtype: str,
     shard_bytes: int,
     seed: int = 0,
@@ -293,20 +360,9 @@ def write_checkpoint(
         names[-1].append(name)
         size += array.nbytes
     flush()
-    config = {
-        "model_type": "llama",
-        "hidden_act": "silu",
-        "hidden_size": shape.hidden,
-        "intermediate_size": shape.intermediate,
-        "num_hidden_layers": shape.layers,
-        "vocab_size": shape.vocab,
-    }
-    if shape.heads:
-        config["num_attention_heads"] = shape.heads
-        config["num_key_value_heads"] = shape.heads * (shape.kv or shape.hidden) // shape.hidden
-    if shape.experts:
-        config["num_experts"] = shape.experts
-    (folder / "config.json").write_text(json.dumps(config))
+    config = shape.config()
+    if config is not None:
+        (folder / "config.json").write_text(json.dumps(config))
     if len(files) == 1:
         single = folder / "model.safetensors"
         (folder / files[0]).rename(single)

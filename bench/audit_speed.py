@@ -5,12 +5,16 @@ Run from the repository root::
     python bench/audit_speed.py                 # fp32, 5 rounds
     python bench/audit_speed.py --dtype bf16 --rounds 7
     python bench/audit_speed.py --dtype bf16 --weights gaussian --shape deep-narrow
+    python bench/audit_speed.py --shape resnet50 --weights gaussian
 
 The checkpoint is a seeded transformer-shaped safetensors file, by default (``--shape base``)
 vocabulary 8000, width 512, 4 blocks with 1408-wide feed-forward layers, untied head: about
 21M parameters; ``mid`` (width 384, 6 blocks), ``deep-narrow`` (width 256, 20 blocks, 142
 layers) and ``wide-vocab`` (32,000 × 256 tables, 4 blocks) spend about the same budget on
-other layer counts (see ``SHAPES``). Each round
+other layer counts (see ``SHAPES``); ``resnet50`` is no transformer but a ResNet-50-shaped
+convolution network (53 convolutions each followed by a batch norm, torchvision's names, no
+``config.json``; 25.6M parameters), the layout whose batch-norm folding and twin search the
+transformer shapes never reach. Each round
 runs, each in a fresh child process, (1) the baseline: every tensor read with the
 ``safetensors`` package (``safetensors.numpy.load_file``), and (2) the full audit,
 ``steelyard.api.audit(path)`` with every rule enabled and default ``--jobs``. Each child
@@ -45,6 +49,7 @@ from typing import Any, TypeVar
 from _common import (
     MIB,
     WEIGHTS,
+    ConvShape,
     MemoryProbe,
     Shape,
     emit,
@@ -59,11 +64,13 @@ T = TypeVar("T")
 
 #: ~20M-parameter layouts: the same budget spent on few wide layers or many narrow ones (the
 #: audit's cost per layer is mostly fixed, so the layer count matters as much as the bytes).
-SHAPES = {
+SHAPES: dict[str, Shape | ConvShape] = {
     "base": Shape(vocab=8000, hidden=512, intermediate=1408, layers=4),
     "mid": Shape(vocab=8000, hidden=384, intermediate=1536, layers=6),
     "deep-narrow": Shape(vocab=4000, hidden=256, intermediate=1024, layers=20),
     "wide-vocab": Shape(vocab=32000, hidden=256, intermediate=768, layers=4),
+    # Not a transformer: 53 convolutions, each followed by a batch norm (25.6M parameters).
+    "resnet50": ConvShape(),
 }
 
 

@@ -23,7 +23,7 @@ def _counted(path: Path, reads: collections.Counter[str]) -> Checkpoint:
     plain = load(path)
 
     def wrap(tensor: Tensor) -> Tensor:
-        read, span = tensor.reader, tensor.read_span
+        read, span, fill = tensor.reader, tensor.read_span, tensor.fill_span
 
         def reader() -> np.ndarray:
             array = read()
@@ -36,8 +36,16 @@ def _counted(path: Path, reads: collections.Counter[str]) -> Checkpoint:
             reads[tensor.name] += array.size
             return array
 
+        def fill_span(start: int, stop: int, out: np.ndarray) -> None:
+            assert fill is not None
+            fill(start, stop, out)  # float32 parts read straight into the caller's array
+            reads[tensor.name] += out.size
+
         return dataclasses.replace(
-            tensor, reader=reader, read_span=read_span if span is not None else None
+            tensor,
+            reader=reader,
+            read_span=read_span if span is not None else None,
+            fill_span=fill_span if fill is not None else None,
         )
 
     tensors = {name: wrap(t) for name, t in plain.tensors.items()}

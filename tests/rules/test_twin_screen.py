@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from steelyard.rules import _similarity
-from steelyard.rules._similarity import Rows, Tally, exact_pairs, screen_limit, similar_pairs
+from steelyard.rules._similarity import Rows, Tally, exact_pairs
+from steelyard.rules._twin_search import SCREEN_DIMENSIONS, screen_limit, similar_pairs
 from tests.rules.test_twin_search import KINDS, THRESHOLD, _at_cosine, _planted
 
 
@@ -51,7 +52,7 @@ def test_the_screen_limit_still_separates_unrelated_rows() -> None:
     assert 0.9 < limit < THRESHOLD
     rng = np.random.default_rng(11)
     for cos in (0.0, 0.5, 0.8):
-        passed = np.mean(_projected_cosines(rng, cos, _similarity.SCREEN_DIMENSIONS, 100_000) >= limit)
+        passed = np.mean(_projected_cosines(rng, cos, SCREEN_DIMENSIONS, 100_000) >= limit)
         assert passed <= 1e-4, cos
     assert screen_limit(0.995, dimensions=8, miss=1e-9) == -1.0  # too few directions: no bound
 
@@ -101,7 +102,7 @@ def test_screened_search_with_a_bias_column_a_subset_and_extreme_scales() -> Non
     first, second, _cos, method = _searched(rows, negative=False, usable=usable)
     assert method[0] == "screened"
     members = np.flatnonzero(usable)
-    a, b, _ = _similarity._exact_among(rows, members, THRESHOLD, False, Tally())
+    a, b, _ = _similarity.exact_among(rows, members, THRESHOLD, False, Tally())
     np.testing.assert_array_equal(first, a)
     np.testing.assert_array_equal(second, b)
     pairs = set(zip(first.tolist(), second.tolist(), strict=True))

@@ -13,14 +13,8 @@ unchanged by scaling a row) and gathers only the rows of buckets with more than 
 
 * :func:`exact_pairs` multiplies blocks of normalised rows with every later row (BLAS) and
   keeps the entries past the threshold (``np.argwhere``). Cost n²·d/2, memory one block.
-* The *screened* search replaces it for wide rows (:func:`_screen_pays`): every row is
-  projected onto ``SCREEN_DIMENSIONS`` (128) seeded N(0, 1) directions, the short rows'
-  Gram matrix marks the pairs whose projected cosine passes :func:`screen_limit`, and only
-  those are confirmed from the rows themselves. The limit is set so that a pair at the
-  threshold is dropped with chance at most ``SCREEN_MISS`` (1e-9), whatever the rows are (a
-  bound from chi-square tails, not a fit to data); cost n·128·(d + n) instead of n²·d. When
-  so many pairs pass that confirming them one by one would cost more (a layer of near
-  copies), the exact search runs after all.
+  For wide rows :mod:`steelyard.rules._twin_search` screens the pairs through a short
+  Gaussian projection first, and picks which search a layer gets.
 * :func:`candidate_pairs` is sub-quadratic: random-hyperplane sign hashing (Charikar 2002,
   "Similarity estimation techniques from rounding algorithms", STOC) into ``tables`` tables of
   ``bits`` bits. Two rows at angle θ agree on one random hyperplane with probability 1 − θ/π,
@@ -59,12 +53,13 @@ and docs/performance.md.
 from __future__ import annotations
 
 import math
-import threading
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from steelyard.blas import blas_threads
+from steelyard.rules._planes import gaussian_planes
 
 #: Working-set bytes for one Gram block (rows of the block × all later rows, float32).
 BLOCK_BYTES = 32 * 2**20
@@ -94,22 +89,14 @@ _PAIRED = 4
 #: products times this are fewer than the exact search's; 3 errs towards the hashed search,
 #: by at most 1.5 × on the measured 1024-row layers, never on wide ones where time matters.
 BUCKET_DOT_COST = 3.0
-#: Gaussian directions the screened Gram search projects the rows onto (see :func:`screen_limit`).
-SCREEN_DIMENSIONS = 128
-#: Chance, per pair at the threshold, that the screen drops it (designed; see screen_limit).
-SCREEN_MISS = 1e-9
-#: The screen runs on rows of at least ``SCREEN_WIDTH`` entries when its multiply-adds, times
-#: this, are fewer than the full Gram's (whose search also copies every row normalised).
-#: Measured on one thread, 128-512 rows of 256-4608 i.i.d. entries: the screen took 0.41-0.89
-#: of the exact search's time where this picks it (0.41 at 512 x 4608; at most 1.11, 192 x
-#: 576), and 0.91-1.32 where it does not (docs/performance.md, "Twelfth session").
-SCREEN_COST = 0.8
-SCREEN_WIDTH = 512
 #: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
-_SLACK = 1e-4
+SLACK = 1e-4
 
-_EMPTY = np.zeros(0, np.int64)
+EMPTY = np.zeros(0, np.int64)
+#: A Gram search of the given members of the rows: (first, second, cosine) of every pair
+#: past the threshold, as :func:`exact_pairs` gives them.
+Searcher = Callable[["Rows", np.ndarray, float, bool, "Tally"], tuple[np.ndarray, np.ndarray, np.ndarray]]
 
 
 @dataclass(frozen=True)
@@ -210,14 +197,14 @@ class Tally:
     """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
 
 
-def _partner_mask(
+def partner_mask(
     first: np.ndarray, second: np.ndarray, certain: np.ndarray, seen: np.ndarray
 ) -> np.ndarray:
     """Hits (in row-major order) kept under the partner cap: the first ``PARTNERS`` of every
     row, and for a row not ``seen`` as a later member before, its first ``certain`` hit as the
     later member (and any uncertain one before it), so that no row with a twin is cut off
     from its group by the cap."""
-    starts = np.flatnonzero(np.r_[True, first[1:] != first[:-1]]) if first.size else _EMPTY
+    starts = np.flatnonzero(np.r_[True, first[1:] != first[:-1]]) if first.size else EMPTY
     rank = np.arange(first.size) - np.repeat(starts, np.diff(np.r_[starts, first.size]))
     keep = rank < PARTNERS
     unseen = ~seen[second]
@@ -229,9 +216,9 @@ def _partner_mask(
     return np.asarray(keep)
 
 
-def _passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
+def passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
     """Entries within slack of the threshold in float32 (candidates for the float64 check)."""
-    loose = threshold - _SLACK
+    loose = threshold - SLACK
     mask = gram >= loose
     if negative:
         mask |= gram <= -loose
@@ -253,16 +240,16 @@ def _gram_hits(
         stop = min(n, start + block)
         gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
         tally.dots += int(gram.size)
-        hits = np.argwhere(_passing(gram, threshold, negative))
+        hits = np.argwhere(passing(gram, threshold, negative))
         hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
         rough = gram[hits[:, 0], hits[:, 1]]
-        certain = _passing(rough, threshold + 2 * _SLACK, negative)
-        keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
+        certain = passing(rough, threshold + 2 * SLACK, negative)
+        keep = partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
         firsts.append(hits[keep, 0] + start)
         seconds.append(hits[keep, 1] + start)
         values.append(rough[keep])
     if not firsts:
-        return _EMPTY, _EMPTY, np.zeros(0, np.float32)
+        return EMPTY, EMPTY, np.zeros(0, np.float32)
     return (
         np.concatenate(firsts).astype(np.int64),
         np.concatenate(seconds).astype(np.int64),
@@ -270,7 +257,7 @@ def _gram_hits(
     )
 
 
-def _settle(
+def settle(
     rows: Rows,
     first: np.ndarray,
     second: np.ndarray,
@@ -281,7 +268,7 @@ def _settle(
     """Keep the pairs past the threshold: float32 cosines decide where they are more than
     the slack away from it, float64 cosines recomputed from the rows decide the rest."""
     cos = rough.astype(np.float64)
-    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < _SLACK)
+    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < SLACK)
     width = rows.matrix.shape[1] + 1
     step = max(1, BLOCK_BYTES // (16 * width))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -296,37 +283,18 @@ def _settle(
     return first[keep], second[keep], cos[keep]
 
 
-def _exact_dots(n: int) -> int:
+def exact_dots(n: int) -> int:
     """Dot products ``_gram_hits`` computes for ``n`` rows (each block times every later row)."""
     block = max(1, BLOCK_BYTES // max(1, 4 * n))
     return sum((min(n, s + block) - s) * (n - s) for s in range(0, n, block))
 
 
-def _exact_among(
+def exact_among(
     rows: Rows, members: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     tally.method = "exact"
     first, second, rough = _gram_hits(rows.unit(members), threshold, negative, tally)
-    return _settle(rows, members[first], members[second], rough, threshold, negative)
-
-
-def screen_limit(threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS) -> float:
-    """The projected cosine that every pair at cosine >= ``threshold`` keeps but with chance
-    ``miss``, after projecting both rows onto ``dimensions`` i.i.d. N(0, 1) directions.
-
-    For unit rows u, v at cosine c and a Gaussian G [d, k], X = Gᵀu and Y = Gᵀv are standard
-    normal in k dimensions, so A = ‖X − Y‖²/(2(1 − c)), B = ‖X‖² and C = ‖Y‖² are χ²_k, and
-    since (B + C)/(2√(BC)) >= 1 the projected cosine is at least 1 − (1 − c)·A/√(BC).
-    Laurent & Massart (2000, Ann. Statist. 28, Lemma 1) bound P(A >= k + 2√(kx) + 2x) and
-    P(B <= k − 2√(kx)) by e^(−x) each; with x = ln(3/miss) all three hold together but with
-    chance ``miss``, and then 1 − cos' <= (1 − c)·a/b. The rows' own distribution does not
-    enter: the bound holds for every pair. −1 when k is too small for any bound."""
-    x = math.log(3.0 / miss)
-    upper = dimensions + 2.0 * math.sqrt(dimensions * x) + 2.0 * x
-    lower = dimensions - 2.0 * math.sqrt(dimensions * x)
-    if lower <= 0:
-        return -1.0
-    return max(-1.0, 1.0 - (1.0 - threshold) * upper / lower)
+    return settle(rows, members[first], members[second], rough, threshold, negative)
 
 
 #: Row norms whose raw float32 products are safe: the dot product of two such rows, and its
@@ -335,90 +303,15 @@ def screen_limit(threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: fl
 _PLAIN_SCALE = (1e-15, 1e15)
 
 
-def _off_scale(norms: np.ndarray) -> np.ndarray:
+def off_scale(norms: np.ndarray) -> np.ndarray:
     """Rows whose norm lies outside :data:`_PLAIN_SCALE` (or is not finite)."""
     return np.asarray(~((norms >= _PLAIN_SCALE[0]) & (norms <= _PLAIN_SCALE[1])))
-_planes_lock = threading.Lock()
-_planes: dict[tuple[tuple[int, ...], int], np.ndarray] = {}
-#: Largest draw kept (entries), and most draws kept, for the process.
-_PLANES_KEPT = 2**22
-_PLANE_SETS = 8
-
-
-def _gaussian_planes(seed: tuple[int, ...], width: int, columns: int) -> np.ndarray:
-    """``numpy.random.default_rng(seed).standard_normal((width, columns))`` in float32, kept
-    for the process: a generator fills rows in order, so the first ``width`` rows of a wider
-    draw are the same values. Drawing them cost as much as the projection they serve (0.6M
-    values: 5.7 ms), and every layer of one width and plan draws the same ones."""
-    key = (seed, columns)
-    with _planes_lock:
-        drawn = _planes.get(key)
-        if drawn is not None and drawn.shape[0] >= width:
-            return drawn[:width]
-    fresh = np.random.default_rng(seed).standard_normal((width, columns), dtype=np.float32)
-    fresh.setflags(write=False)
-    if fresh.size <= _PLANES_KEPT:
-        with _planes_lock:
-            if len(_planes) >= _PLANE_SETS and key not in _planes:
-                _planes.pop(next(iter(_planes)))
-            _planes[key] = fresh
-    return fresh
-
-
-def _screen_planes(width: int, seed: int) -> np.ndarray:
-    """The screen's ``[width, SCREEN_DIMENSIONS]`` N(0, 1) directions for ``seed``."""
-    return _gaussian_planes((seed, SCREEN_DIMENSIONS), width, SCREEN_DIMENSIONS)
-
-
-def _screen_pays(count: int, width: int) -> bool:
-    """Whether the screened search of ``count`` rows of ``width`` costs less than the Gram."""
-    screened = count * SCREEN_DIMENSIONS * (width + count)
-    return width >= SCREEN_WIDTH and SCREEN_COST * screened < _exact_dots(count) * width
-
-
-def _gram_among(
-    rows: Rows, members: np.ndarray, threshold: float, negative: bool, seed: int, tally: Tally
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every pair of ``members`` past the threshold: the exact search, or the screened one
-    when that costs less (wide rows: the Gram's n²·d against n·k·(d + n))."""
-    width = rows.matrix.shape[1] + (0 if rows.extra is None else 1)
-    if not _screen_pays(members.size, width):
-        return _exact_among(rows, members, threshold, negative, tally)
-    limit = screen_limit(threshold)
-    planes = _screen_planes(width, seed)
-    everyone = members.size == rows.count
-    projected = rows.project(planes) if everyone else rows.project_rows(members, planes)
-    # Rows far from unit scale are projected normalised: float32 products of rows of
-    # subnormals would lose the digits the screen needs.
-    odd = np.flatnonzero(_off_scale(rows.norms[members]))
-    if odd.size:
-        projected[odd] = rows.unit(members[odd]) @ planes
-    short = normalise(projected)[0]
-    gram = short @ short.T
-    tally.dots += int(projected.size) + int(gram.size)
-    mask = gram >= limit
-    if negative:
-        mask |= gram <= -limit
-    hits = np.flatnonzero(np.triu(mask, 1))
-    first, second = np.divmod(hits, members.size)
-    if BUCKET_DOT_COST * hits.size > _exact_dots(members.size):
-        # So many rows pass the screen (a layer of near copies) that pairs would cost more.
-        return _exact_among(rows, members, threshold, negative, tally)
-    tally.method = "screened"
-    n = rows.count
-    codes = members[first] * n + members[second]  # row-major, as the exact search lists them
-    a, b, rough = _pair_hits(rows, codes, threshold, negative, tally)
-    certain = _passing(rough, threshold + 2 * _SLACK, negative)
-    keep = _partner_mask(a, b, certain, np.zeros(n, dtype=bool))
-    return _settle(rows, a[keep], b[keep], rough[keep], threshold, negative)
-
-
 def exact_pairs(
     rows: np.ndarray | Rows, threshold: float, negative: bool = False, tally: Tally | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Every pair ``i < k`` of rows past the cosine threshold, by blocked Gram products."""
     view = rows if isinstance(rows, Rows) else Rows.of(rows)
-    return _exact_among(view, np.arange(view.count), threshold, negative, tally or Tally())
+    return exact_among(view, np.arange(view.count), threshold, negative, tally or Tally())
 
 
 def hash_plan(n: int, threshold: float) -> tuple[int, int]:
@@ -525,10 +418,10 @@ def _small_pairs(bucket: np.ndarray, order: np.ndarray) -> np.ndarray:
         same = (ranked[offset:] == ranked[:-offset]) & small[offset:]
         a, b = order[:-offset][same], order[offset:][same]
         codes.append(np.minimum(a, b).astype(np.int64) * n + np.maximum(a, b))
-    return np.concatenate(codes) if codes else _EMPTY
+    return np.concatenate(codes) if codes else EMPTY
 
 
-def _pair_hits(
+def pair_hits(
     view: Rows, codes: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Float32 cosines of distinct candidate pairs (two gathered rows each), kept if passing."""
@@ -538,7 +431,7 @@ def _pair_hits(
     step = max(1, BLOCK_BYTES // (8 * width))
     rough = np.empty(codes.size, dtype=np.float32)
     inverse = _inverse(view.norms)
-    odd = _off_scale(view.norms)
+    odd = off_scale(view.norms)
     for start in range(0, codes.size, step):
         a, b = first[start : start + step], second[start : start + step]
         dots = np.einsum("ij,ij->i", view.take(a, np.float32), view.take(b, np.float32))
@@ -549,7 +442,7 @@ def _pair_hits(
             part[redo] = np.einsum("ij,ij->i", view.unit(a[redo]), view.unit(b[redo]))
         rough[start : start + step] = part
     tally.dots += int(codes.size)
-    keep = _passing(rough, threshold, negative)
+    keep = passing(rough, threshold, negative)
     return first[keep], second[keep], rough[keep]
 
 
@@ -606,7 +499,7 @@ def _block_hits(
     # Cosines from the raw rows' Gram matrix, scaled afterwards: b² multiplications instead of
     # a normalised copy of every gathered row.
     norms = view.norms[against]
-    if _off_scale(norms).any():  # raw products would underflow or overflow float32
+    if off_scale(norms).any():  # raw products would underflow or overflow float32
         raw, inverse = view.unit(against), np.ones(against.size, np.float32)
     else:
         raw, inverse = view.take(against, np.float32), _inverse(norms)
@@ -617,7 +510,7 @@ def _block_hits(
     tally.dots += int(gram.size)
     tally.largest = max(tally.largest, rows.size)
     # Flat positions split by divmod: ``nonzero`` of a 2-D mask is several times slower.
-    i, k = np.divmod(np.flatnonzero(_passing(gram, threshold, negative)), gram.shape[1])
+    i, k = np.divmod(np.flatnonzero(passing(gram, threshold, negative)), gram.shape[1])
     later = k > i
     i, k = i[later], k[later]
     _keep(found, rows[i], against[k], gram[i, k])
@@ -642,10 +535,11 @@ def candidate_pairs(
     seed: int = 0,
     usable: np.ndarray | None = None,
     tally: Tally | None = None,
+    instead: Searcher | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Pairs past the cosine threshold found through sign-hash buckets (see module docstring);
-    only rows where ``usable`` is true take part. Falls back to the exact search when that is
-    cheaper than confirming the buckets."""
+    only rows where ``usable`` is true take part. Falls back to ``instead`` (default: the
+    exact search) when that is cheaper than confirming the buckets."""
     view = rows if isinstance(rows, Rows) else Rows.of(rows)
     tally = tally or Tally()
     n = view.count
@@ -654,7 +548,7 @@ def candidate_pairs(
     bits, tables = hash_plan(n, threshold)
     tally.bits, tally.tables = bits, tables
     # Every table's hyperplanes in one matrix, so the projection is a single BLAS product.
-    planes = _gaussian_planes((seed,), width, bits * tables)
+    planes = gaussian_planes((seed,), width, bits * tables)
     signs = view.project(planes) > 0
     outside = None if usable is None else ~np.asarray(usable, dtype=bool)
     buckets = [
@@ -665,11 +559,11 @@ def candidate_pairs(
     # True twins collide in most tables: list the small buckets' pairs once.
     paired = np.unique(np.concatenate([_small_pairs(*b) for b in buckets]))
     tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b, _order in buckets)
-    if tally.planned * BUCKET_DOT_COST > _exact_dots(members.size):
-        return _gram_among(view, members, threshold, negative, seed, tally)
+    if tally.planned * BUCKET_DOT_COST > exact_dots(members.size):
+        return (instead or exact_among)(view, members, threshold, negative, tally)
     tally.method = "hashed"
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
-    _keep(found, *_pair_hits(view, paired, threshold, negative, tally))
+    _keep(found, *pair_hits(view, paired, threshold, negative, tally))
     # Bucket products are small: OpenBLAS threads would cost more than they do (measured: a
     # 32-row bucket of width 1024 took 8.8 ms on two threads, 0.2 ms on one).
     with blas_threads(1):
@@ -678,33 +572,13 @@ def candidate_pairs(
             for into, part in zip(found, hits, strict=True):
                 into += part
     if not found[0]:
-        return _EMPTY, _EMPTY, np.zeros(0)
+        return EMPTY, EMPTY, np.zeros(0)
     code, where = np.unique(
         np.concatenate(found[0]) * n + np.concatenate(found[1]), return_index=True
     )
     first, second = code // n, code % n
     rough = np.concatenate(found[2])[where]
     # The exact search's cap, on the same row-major order.
-    certain = _passing(rough, threshold + 2 * _SLACK, negative)
-    keep = _partner_mask(first, second, certain, np.zeros(n, dtype=bool))
-    return _settle(view, first[keep], second[keep], rough[keep], threshold, negative)
-
-
-def similar_pairs(
-    rows: Rows,
-    threshold: float,
-    negative: bool,
-    exact_limit: int,
-    seed: int = 0,
-    usable: np.ndarray | None = None,
-    tally: Tally | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
-    """Pairs among the ``usable`` rows: exact search up to ``exact_limit`` of them, hashed
-    candidates beyond (or exact when cheaper); names the method."""
-    tally = tally or Tally()
-    members = np.arange(rows.count) if usable is None else np.flatnonzero(usable)
-    if members.size < 2:
-        return _EMPTY, _EMPTY, np.zeros(0), "exact"
-    if members.size <= exact_limit:
-        return (*_gram_among(rows, members, threshold, negative, seed, tally), tally.method)
-    return (*candidate_pairs(rows, threshold, negative, seed, usable, tally), tally.method)
+    certain = passing(rough, threshold + 2 * SLACK, negative)
+    keep = partner_mask(first, second, certain, np.zeros(n, dtype=bool))
+    return settle(view, first[keep], second[keep], rough[keep], threshold, negative)

@@ -1,0 +1,138 @@
+"""Which search finds a layer's nearly parallel rows, and the screened Gram search.
+
+:func:`similar_pairs` is the entry point of ``twin-units``: up to ``exact_limit`` rows a Gram
+search of all pairs, beyond it the hashed candidate search of
+:mod:`steelyard.rules._similarity` (which falls back to the Gram search when confirming its
+buckets would cost more). The Gram search is exact, or *screened* for wide rows
+(:func:`gram_search`): every row is projected onto ``SCREEN_DIMENSIONS`` (128) seeded N(0, 1)
+directions, the short rows' Gram matrix marks the pairs whose projected cosine passes
+:func:`screen_limit`, and only those are confirmed from the rows themselves, as the exact
+search confirms its own (float32 cosines, float64 near the threshold, the same partner cap).
+The limit is set so that a pair at the threshold is dropped with chance at most
+``SCREEN_MISS`` (1e-9), whatever the rows are: a bound from chi-square tails, not a fit to
+data. Cost n·128·(d + n) multiply-adds instead of n²·d; when so many pairs pass that
+confirming them one by one would cost more (a layer of near copies), the exact search runs
+after all.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+
+import numpy as np
+
+from steelyard.rules._planes import gaussian_planes
+from steelyard.rules._similarity import (
+    BUCKET_DOT_COST,
+    EMPTY,
+    SLACK,
+    Rows,
+    Tally,
+    candidate_pairs,
+    exact_among,
+    exact_dots,
+    normalise,
+    off_scale,
+    pair_hits,
+    partner_mask,
+    passing,
+    settle,
+)
+
+#: Gaussian directions the screened Gram search projects the rows onto (see :func:`screen_limit`).
+SCREEN_DIMENSIONS = 128
+#: Chance, per pair at the threshold, that the screen drops it (designed; see screen_limit).
+SCREEN_MISS = 1e-9
+#: The screen runs on rows of at least ``SCREEN_WIDTH`` entries when its multiply-adds, times
+#: ``SCREEN_COST``, are fewer than the full Gram's (whose search also copies every row
+#: normalised). Measured on one thread, 128-512 rows of 256-4608 i.i.d. entries: the screen
+#: took 0.41-0.89 of the exact search's time where this picks it (0.41 at 512 x 4608; at most
+#: 1.11, 192 x 576), and 0.91-1.32 where it does not (docs/performance.md, "Twelfth session").
+SCREEN_COST = 0.8
+SCREEN_WIDTH = 512
+
+
+def screen_limit(threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS) -> float:
+    """The projected cosine that every pair at cosine >= ``threshold`` keeps but with chance
+    ``miss``, after projecting both rows onto ``dimensions`` i.i.d. N(0, 1) directions.
+
+    For unit rows u, v at cosine c and a Gaussian G [d, k], X = Gᵀu and Y = Gᵀv are standard
+    normal in k dimensions, so A = ‖X − Y‖²/(2(1 − c)), B = ‖X‖² and C = ‖Y‖² are χ²_k, and
+    since (B + C)/(2√(BC)) >= 1 the projected cosine is at least 1 − (1 − c)·A/√(BC).
+    Laurent & Massart (2000, Ann. Statist. 28, Lemma 1) bound P(A >= k + 2√(kx) + 2x) and
+    P(B <= k − 2√(kx)) by e^(−x) each; with x = ln(3/miss) all three hold together but with
+    chance ``miss``, and then 1 − cos' <= (1 − c)·a/b. The rows' own distribution does not
+    enter: the bound holds for every pair. −1 when k is too small for any bound."""
+    x = math.log(3.0 / miss)
+    upper = dimensions + 2.0 * math.sqrt(dimensions * x) + 2.0 * x
+    lower = dimensions - 2.0 * math.sqrt(dimensions * x)
+    if lower <= 0:
+        return -1.0
+    return max(-1.0, 1.0 - (1.0 - threshold) * upper / lower)
+
+
+def screen_pays(count: int, width: int) -> bool:
+    """Whether the screened search of ``count`` rows of ``width`` costs less than the Gram."""
+    screened = count * SCREEN_DIMENSIONS * (width + count)
+    return width >= SCREEN_WIDTH and SCREEN_COST * screened < exact_dots(count) * width
+
+
+def gram_search(
+    rows: Rows, members: np.ndarray, threshold: float, negative: bool, tally: Tally, seed: int = 0
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every pair of ``members`` past the threshold: the exact search, or the screened one
+    when that costs less (wide rows: the Gram's n²·d against n·k·(d + n))."""
+    width = rows.matrix.shape[1] + (0 if rows.extra is None else 1)
+    if not screen_pays(members.size, width):
+        return exact_among(rows, members, threshold, negative, tally)
+    limit = screen_limit(threshold)
+    planes = gaussian_planes((seed, SCREEN_DIMENSIONS), width, SCREEN_DIMENSIONS)
+    everyone = members.size == rows.count
+    projected = rows.project(planes) if everyone else rows.project_rows(members, planes)
+    # Rows far from unit scale are projected normalised: float32 products of rows of
+    # subnormals would lose the digits the screen needs.
+    odd = np.flatnonzero(off_scale(rows.norms[members]))
+    if odd.size:
+        projected[odd] = rows.unit(members[odd]) @ planes
+    short = normalise(projected)[0]
+    gram = short @ short.T
+    tally.dots += int(projected.size) + int(gram.size)
+    mask = gram >= limit
+    if negative:
+        mask |= gram <= -limit
+    hits = np.flatnonzero(np.triu(mask, 1))
+    if BUCKET_DOT_COST * hits.size > exact_dots(members.size):
+        # So many rows pass the screen (a layer of near copies) that pairs would cost more.
+        return exact_among(rows, members, threshold, negative, tally)
+    tally.method = "screened"
+    first, second = np.divmod(hits, members.size)
+    n = rows.count
+    codes = members[first] * n + members[second]  # row-major, as the exact search lists them
+    a, b, rough = pair_hits(rows, codes, threshold, negative, tally)
+    certain = passing(rough, threshold + 2 * SLACK, negative)
+    keep = partner_mask(a, b, certain, np.zeros(n, dtype=bool))
+    return settle(rows, a[keep], b[keep], rough[keep], threshold, negative)
+
+
+def similar_pairs(
+    rows: Rows,
+    threshold: float,
+    negative: bool,
+    exact_limit: int,
+    seed: int = 0,
+    usable: np.ndarray | None = None,
+    tally: Tally | None = None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
+    """Pairs among the ``usable`` rows: the Gram search up to ``exact_limit`` of them, hashed
+    candidates beyond (or the Gram search when cheaper); names the method (``exact``,
+    ``screened`` or ``hashed``)."""
+    tally = tally or Tally()
+    members = np.arange(rows.count) if usable is None else np.flatnonzero(usable)
+    if members.size < 2:
+        return EMPTY, EMPTY, np.zeros(0), "exact"
+    search = functools.partial(gram_search, seed=seed)
+    if members.size <= exact_limit:
+        return (*search(rows, members, threshold, negative, tally), tally.method)
+    found = candidate_pairs(rows, threshold, negative, seed, usable, tally, instead=search)
+    return (*found, tally.method)

@@ -12,6 +12,35 @@ from steelyard.stats import LayerStats, fold_scale
 from tests.stats._graph import Reads, batch_norm, checkpoint, dense, stored
 
 
+def test_folded_row_norms_from_the_scale_match_the_folded_rows(rng: np.random.Generator) -> None:
+    # |a_j|·‖w_j‖ without a folded copy, against numpy's norm of the folded rows in float64;
+    # a row whose folded weights leave float32 (γ = 1e30 on weights of 1e10) is measured on
+    # the folded rows themselves, where it is infinite, as the folded layer computes it.
+    arrays = {
+        "fc.weight": rng.normal(size=(64, 48)).astype(np.float32),
+        "bn.weight": rng.uniform(-2, 2, size=64).astype(np.float32),  # negative γ too
+        "bn.bias": rng.normal(size=64).astype(np.float32),
+        "bn.running_mean": rng.normal(size=64).astype(np.float32),
+        "bn.running_var": rng.uniform(1e-3, 3, size=64).astype(np.float32),
+    }
+
+    def folded_norms(values: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+        tensors = {name: stored(name, value, Reads()) for name, value in values.items()}
+        layer = dense("fc", tensors["fc.weight"], norm=batch_norm("bn", values))
+        stats = LayerStats(checkpoint(list(tensors.values()), [layer]))
+        with np.errstate(over="ignore"):
+            reference = np.linalg.norm(stats.folded(layer).matrix.astype(np.float64), axis=1)
+        return stats.folded_row_norms(layer), reference
+
+    got, reference = folded_norms(arrays)
+    np.testing.assert_allclose(got, reference, rtol=1e-6)
+    arrays["fc.weight"][5] *= np.float32(1e10)
+    arrays["bn.weight"][5] = np.float32(1e30)
+    got, reference = folded_norms(arrays)
+    assert np.isinf(got[5]) and np.isinf(reference[5])
+    np.testing.assert_allclose(np.delete(got, 5), np.delete(reference, 5), rtol=1e-6)
+
+
 def test_folded_layer_computes_what_the_layer_and_its_batch_norm_compute(
     rng: np.random.Generator,
 ) -> None:

@@ -146,3 +146,31 @@ def test_the_hashed_search_finds_twins_among_rows_of_extreme_scale() -> None:
     assert tally.method == "hashed"
     found = set(zip(first.tolist(), second.tolist(), strict=True))
     assert {(10, 20), (30, 40), (50, 60)} <= found
+
+
+@pytest.mark.parametrize(("units", "width"), [(304, 64), (400, 1024), (1504, 96)])
+def test_rows_with_folding_factors_search_as_the_folded_rows(units: int, width: int) -> None:
+    # twin-units hands the searches the stored rows and a batch norm's factors a_j instead
+    # of a folded copy; every search (exact, screened, hashed) must see the folded rows:
+    # the same float32 values (taken rows bit for bit) and the same pairs.
+    rng = np.random.default_rng(units)
+    # Twins planted among the deployed (folded) rows, stored divided by a_j.
+    planted = _planted(rng, "correlated", units, width).astype(np.float32)
+    scale = rng.uniform(0.2, 3.0, units).astype(np.float32) * rng.choice([-1, 1], units).astype(np.float32)
+    raw = (planted / scale[:, None]).astype(np.float32)
+    bias = 1e-4 * rng.normal(size=units).astype(np.float32)
+    folded = np.multiply(raw, scale[:, None], dtype=np.float32)  # stats.folded's product
+    joint = np.concatenate([folded, bias[:, None]], axis=1).astype(np.float64)
+    norms = np.sqrt(np.einsum("ij,ij->i", joint, joint))
+    plain, factored = Rows(folded, norms, bias), Rows(raw, norms, bias, scale)
+    some = rng.choice(units, 50, replace=False)
+    np.testing.assert_array_equal(factored.take(some, np.float32), plain.take(some, np.float32))
+    np.testing.assert_array_equal(factored.take(some), plain.take(some))
+    for negative in (False, True):
+        a = similar_pairs(plain, THRESHOLD, negative, 512, seed=3)
+        b = similar_pairs(factored, THRESHOLD, negative, 512, seed=3)
+        assert a[3] == b[3]
+        np.testing.assert_array_equal(a[0], b[0])
+        np.testing.assert_array_equal(a[1], b[1])
+        np.testing.assert_allclose(a[2], b[2], atol=1e-6)
+        assert a[0].size >= units // 8

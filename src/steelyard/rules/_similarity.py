@@ -109,6 +109,9 @@ class Rows:
     """‖r_j‖, float64 (non-finite for a row holding a NaN or an infinity)."""
     extra: np.ndarray | None = None
     """An optional last column ``[n]`` (a bias), part of every row."""
+    scale: np.ndarray | None = None
+    """Optional float32 factors ``[n]`` of the matrix part (a folded batch norm's a_j): row j
+    is then [scale_j·matrix_j (in float32), extra_j], never materialised as a whole."""
 
     @classmethod
     def of(cls, rows: np.ndarray) -> Rows:
@@ -123,11 +126,15 @@ class Rows:
     def take(self, index: np.ndarray | list[int], dtype: type = np.float64) -> np.ndarray:
         """The rows at ``index`` (extra column included), as ``dtype``."""
         index = np.asarray(index, dtype=np.int64)
+        part = self.matrix[index]
+        if self.scale is not None:  # rounded to float32 as the folded weights are
+            with np.errstate(over="ignore", invalid="ignore"):
+                part = np.multiply(part, self.scale[index, None], dtype=np.float32)
         if self.extra is None:
-            return np.asarray(self.matrix[index], dtype=dtype)
-        width = self.matrix.shape[1] + (0 if self.extra is None else 1)
+            return np.asarray(part, dtype=dtype)
+        width = self.matrix.shape[1] + 1
         out = np.empty((index.size, width), dtype=dtype)
-        out[:, : self.matrix.shape[1]] = self.matrix[index]
+        out[:, : self.matrix.shape[1]] = part
         if self.extra is not None:
             out[:, -1] = self.extra[index]
         return out
@@ -144,6 +151,9 @@ class Rows:
         """Every row times ``planes`` (``[d (+1), k]``), one BLAS product on the stored rows."""
         d = self.matrix.shape[1]
         out = np.asarray(self.matrix @ planes[:d])
+        if self.scale is not None:
+            with np.errstate(over="ignore", invalid="ignore"):
+                out *= self.scale[:, None]
         if self.extra is not None:
             out += self.extra[:, None].astype(np.float32) * planes[d]
         return out

@@ -169,14 +169,15 @@ def _eligible(layer: Layer, limits: TwinUnitsSettings) -> bool:
 
 
 def _rows(ctx: AuditContext, layer: Layer) -> Rows | None:
-    folded = ctx.stats.folded(layer)
-    if layer.norm is not None and not folded.folded:
+    scale, bias, folded = ctx.stats.fold_parts(layer)
+    if layer.norm is not None and not folded:
         return None  # a batch norm we could not fold: the deployed rows are unknown
-    bias = np.asarray(folded.bias, dtype=np.float32).reshape(-1)
+    bias = np.asarray(bias, dtype=np.float32).reshape(-1)
     # The weight part of each norm comes from the shared one-pass statistics (float64 sums).
     weights = ctx.stats.folded_row_norms(layer)
     norms = np.sqrt(weights**2 + bias.astype(np.float64) ** 2)
-    return Rows(folded.matrix, norms, bias)
+    # The folded rows are the stored ones times a_j, applied where rows are used.
+    return Rows(ctx.stats.matrix(layer), norms, bias, scale)
 
 
 def _consumers_known(ctx: AuditContext, layer: Layer) -> bool:
@@ -233,8 +234,9 @@ def _twin_pairs(
         if np.count_nonzero(valid[lo:hi]) < 2:
             continue
         extra = None if rows.extra is None else rows.extra[lo:hi]
+        scale = None if rows.scale is None else rows.scale[lo:hi]
         a, b, cos, method = similar_pairs(
-            Rows(rows.matrix[lo:hi], norms[lo:hi], extra),  # a view of the group's rows
+            Rows(rows.matrix[lo:hi], norms[lo:hi], extra, scale),  # a view of the group's rows
             cosine,
             negative,
             limits.exact_limit,

@@ -201,6 +201,17 @@ class LayerStats:
         (see :func:`.folding.fold_scale`)."""
         return fold_scale(layer, self.tensor)
 
+    def fold_parts(self, layer: Layer) -> tuple[np.ndarray | None, np.ndarray, bool]:
+        """(a_j, folded bias, folded?) without the folded weights: a rule that can use the
+        raw matrix with per-row factors a_j (float32; None when nothing is folded) saves the
+        folded copy. ``a_j·W[j]`` in float32 is :meth:`folded`'s row j bit for bit."""
+        if not self._foldable(layer):
+            bias = self.bias(layer)
+            return None, np.zeros(layer.units, np.float32) if bias is None else bias, False
+        scale = self.fold_scale(layer)
+        bias = self._memoized(layer, "folded-bias", lambda: self._fold_bias(layer))
+        return scale, bias, True
+
     def folded(self, layer: Layer) -> Folded:
         """Weights with a following inference-form batch norm folded in (else raw)."""
         if not self._foldable(layer):

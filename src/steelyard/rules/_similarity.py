@@ -91,12 +91,13 @@ _PAIRED = 4
 BUCKET_DOT_COST = 3.0
 #: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
 #: vectors are accurate to about 1e-6 at the widths seen here).
-SLACK = 1e-4
+_SLACK = 1e-4
 
 EMPTY = np.zeros(0, np.int64)
 #: A Gram search of the given members of the rows: (first, second, cosine) of every pair
 #: past the threshold, as :func:`exact_pairs` gives them.
-Searcher = Callable[["Rows", np.ndarray, float, bool, "Tally"], tuple[np.ndarray, np.ndarray, np.ndarray]]
+Pairs = tuple[np.ndarray, np.ndarray, np.ndarray]
+Searcher = Callable[["Rows", np.ndarray, float, bool, "Tally"], Pairs]
 
 
 @dataclass(frozen=True)
@@ -135,8 +136,7 @@ class Rows:
         width = self.matrix.shape[1] + 1
         out = np.empty((index.size, width), dtype=dtype)
         out[:, : self.matrix.shape[1]] = part
-        if self.extra is not None:
-            out[:, -1] = self.extra[index]
+        out[:, -1] = self.extra[index]
         return out
 
     def unit(self, index: np.ndarray) -> np.ndarray:
@@ -207,7 +207,7 @@ class Tally:
     """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
 
 
-def partner_mask(
+def _partner_mask(
     first: np.ndarray, second: np.ndarray, certain: np.ndarray, seen: np.ndarray
 ) -> np.ndarray:
     """Hits (in row-major order) kept under the partner cap: the first ``PARTNERS`` of every
@@ -226,9 +226,9 @@ def partner_mask(
     return np.asarray(keep)
 
 
-def passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
+def _passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
     """Entries within slack of the threshold in float32 (candidates for the float64 check)."""
-    loose = threshold - SLACK
+    loose = threshold - _SLACK
     mask = gram >= loose
     if negative:
         mask |= gram <= -loose
@@ -250,11 +250,11 @@ def _gram_hits(
         stop = min(n, start + block)
         gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
         tally.dots += int(gram.size)
-        hits = np.argwhere(passing(gram, threshold, negative))
+        hits = np.argwhere(_passing(gram, threshold, negative))
         hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
         rough = gram[hits[:, 0], hits[:, 1]]
-        certain = passing(rough, threshold + 2 * SLACK, negative)
-        keep = partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
+        certain = _passing(rough, threshold + 2 * _SLACK, negative)
+        keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
         firsts.append(hits[keep, 0] + start)
         seconds.append(hits[keep, 1] + start)
         values.append(rough[keep])
@@ -267,7 +267,7 @@ def _gram_hits(
     )
 
 
-def settle(
+def _settle(
     rows: Rows,
     first: np.ndarray,
     second: np.ndarray,
@@ -278,7 +278,7 @@ def settle(
     """Keep the pairs past the threshold: float32 cosines decide where they are more than
     the slack away from it, float64 cosines recomputed from the rows decide the rest."""
     cos = rough.astype(np.float64)
-    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < SLACK)
+    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < _SLACK)
     width = rows.matrix.shape[1] + 1
     step = max(1, BLOCK_BYTES // (16 * width))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -293,6 +293,17 @@ def settle(
     return first[keep], second[keep], cos[keep]
 
 
+def capped_settle(
+    rows: Rows, first: np.ndarray, second: np.ndarray, rough: np.ndarray, threshold: float,
+    negative: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Candidate pairs in row-major order with their float32 cosines, under the exact
+    search's partner cap, then :func:`_settle`d: how a candidate search ends."""
+    certain = _passing(rough, threshold + 2 * _SLACK, negative)
+    keep = _partner_mask(first, second, certain, np.zeros(rows.count, dtype=bool))
+    return _settle(rows, first[keep], second[keep], rough[keep], threshold, negative)
+
+
 def exact_dots(n: int) -> int:
     """Dot products ``_gram_hits`` computes for ``n`` rows (each block times every later row)."""
     block = max(1, BLOCK_BYTES // max(1, 4 * n))
@@ -304,7 +315,7 @@ def exact_among(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     tally.method = "exact"
     first, second, rough = _gram_hits(rows.unit(members), threshold, negative, tally)
-    return settle(rows, members[first], members[second], rough, threshold, negative)
+    return _settle(rows, members[first], members[second], rough, threshold, negative)
 
 
 #: Row norms whose raw float32 products are safe: the dot product of two such rows, and its
@@ -316,6 +327,8 @@ _PLAIN_SCALE = (1e-15, 1e15)
 def off_scale(norms: np.ndarray) -> np.ndarray:
     """Rows whose norm lies outside :data:`_PLAIN_SCALE` (or is not finite)."""
     return np.asarray(~((norms >= _PLAIN_SCALE[0]) & (norms <= _PLAIN_SCALE[1])))
+
+
 def exact_pairs(
     rows: np.ndarray | Rows, threshold: float, negative: bool = False, tally: Tally | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -452,16 +465,12 @@ def pair_hits(
             part[redo] = np.einsum("ij,ij->i", view.unit(a[redo]), view.unit(b[redo]))
         rough[start : start + step] = part
     tally.dots += int(codes.size)
-    keep = passing(rough, threshold, negative)
+    keep = _passing(rough, threshold, negative)
     return first[keep], second[keep], rough[keep]
 
 
 def _bucket_hits(
-    view: Rows,
-    table: tuple[np.ndarray, np.ndarray],
-    threshold: float,
-    negative: bool,
-    tally: Tally,
+    view: Rows, table: tuple[np.ndarray, np.ndarray], threshold: float, negative: bool, tally: Tally
 ) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
     """Pairs inside buckets of more than ``_PAIRED`` rows passing the float32 filter, with
     their float32 cosines.
@@ -520,7 +529,7 @@ def _block_hits(
     tally.dots += int(gram.size)
     tally.largest = max(tally.largest, rows.size)
     # Flat positions split by divmod: ``nonzero`` of a 2-D mask is several times slower.
-    i, k = np.divmod(np.flatnonzero(passing(gram, threshold, negative)), gram.shape[1])
+    i, k = np.divmod(np.flatnonzero(_passing(gram, threshold, negative)), gram.shape[1])
     later = k > i
     i, k = i[later], k[later]
     _keep(found, rows[i], against[k], gram[i, k])
@@ -587,8 +596,5 @@ def candidate_pairs(
         np.concatenate(found[0]) * n + np.concatenate(found[1]), return_index=True
     )
     first, second = code // n, code % n
-    rough = np.concatenate(found[2])[where]
-    # The exact search's cap, on the same row-major order.
-    certain = passing(rough, threshold + 2 * SLACK, negative)
-    keep = partner_mask(first, second, certain, np.zeros(n, dtype=bool))
-    return settle(view, first[keep], second[keep], rough[keep], threshold, negative)
+    return capped_settle(view, first, second, np.concatenate(found[2])[where], threshold, negative)
+

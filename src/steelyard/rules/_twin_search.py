@@ -26,18 +26,15 @@ from steelyard.rules._planes import gaussian_planes
 from steelyard.rules._similarity import (
     BUCKET_DOT_COST,
     EMPTY,
-    SLACK,
     Rows,
     Tally,
     candidate_pairs,
+    capped_settle,
     exact_among,
     exact_dots,
     normalise,
     off_scale,
     pair_hits,
-    partner_mask,
-    passing,
-    settle,
 )
 
 #: Gaussian directions the screened Gram search projects the rows onto (see :func:`screen_limit`).
@@ -53,7 +50,9 @@ SCREEN_COST = 0.8
 SCREEN_WIDTH = 512
 
 
-def screen_limit(threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS) -> float:
+def screen_limit(
+    threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS
+) -> float:
     """The projected cosine that every pair at cosine >= ``threshold`` keeps but with chance
     ``miss``, after projecting both rows onto ``dimensions`` i.i.d. N(0, 1) directions.
 
@@ -109,10 +108,8 @@ def gram_search(
     first, second = np.divmod(hits, members.size)
     n = rows.count
     codes = members[first] * n + members[second]  # row-major, as the exact search lists them
-    a, b, rough = pair_hits(rows, codes, threshold, negative, tally)
-    certain = passing(rough, threshold + 2 * SLACK, negative)
-    keep = partner_mask(a, b, certain, np.zeros(n, dtype=bool))
-    return settle(rows, a[keep], b[keep], rough[keep], threshold, negative)
+    candidates = pair_hits(rows, codes, threshold, negative, tally)
+    return capped_settle(rows, *candidates, threshold, negative)
 
 
 def similar_pairs(

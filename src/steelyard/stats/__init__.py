@@ -214,11 +214,9 @@ class LayerStats:
 
     def folded(self, layer: Layer) -> Folded:
         """Weights with a following inference-form batch norm folded in (else raw)."""
-        if not self._foldable(layer):
-            bias = self.bias(layer)
-            base = np.zeros(layer.units, np.float32) if bias is None else bias
-            return Folded(self.matrix(layer), base, False)
-        bias = self._memoized(layer, "folded-bias", lambda: self._fold_bias(layer))
+        scale, bias, folded = self.fold_parts(layer)
+        if scale is None or not folded:
+            return Folded(self.matrix(layer), bias, False)
         key = ("folded", layer.name)
         cache = self._passes.cache
         matrix = cache.get(key)
@@ -226,8 +224,6 @@ class LayerStats:
             with self._memo.lock_for((layer.name, "fold")):
                 matrix = cache.get(key)
                 if matrix is None:
-                    scale = self.fold_scale(layer)
-                    assert scale is not None
                     # Folded weights beyond float32 become ±Inf (Inf·0 NaN), as the folded
                     # layer would compute them; the rules treat such rows as non-finite.
                     with np.errstate(over="ignore", invalid="ignore"):

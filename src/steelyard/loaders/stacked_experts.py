@@ -20,6 +20,7 @@ import numpy as np
 from steelyard.graph import Activation, Layer, LayerKind, Tensor, TensorRole
 from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
 from steelyard.streaming import float32_from_parts
+from steelyard.tiled_copy import contiguous
 
 _LEAVES = ("gate_up_proj", "gate_proj", "up_proj", "down_proj")
 #: Stacks with more experts than this are left whole (real models have up to ~512).
@@ -46,7 +47,7 @@ class _Slice:
 
     def __call__(self, array: np.ndarray) -> np.ndarray:
         part = array[self.expert]
-        return np.ascontiguousarray(part.T) if self.transposed else part
+        return contiguous(part.T) if self.transposed else part
 
 
 class _Read:
@@ -65,7 +66,7 @@ class _Read:
             )
         else:
             block = self.tensor.read_float32()[self.expert]
-        return np.ascontiguousarray(block.T) if self.transposed else block
+        return contiguous(block.T) if self.transposed else block
 
 
 def _bias_reader(bias: Tensor, expert: int) -> Callable[[], np.ndarray]:

@@ -30,6 +30,7 @@ from steelyard.run_timeline.result import Drift
 from steelyard.stats.passes import row_run
 from steelyard.stats.reading import locked
 from steelyard.streaming import row_blocks
+from steelyard.tiled_copy import contiguous
 
 
 @dataclass(slots=True)
@@ -82,7 +83,7 @@ class RowReader:
         if self._source is None:
             if self._whole is None:
                 self._whole = locked(
-                    None, lambda: np.ascontiguousarray(layer.matrix(), dtype=np.float32)
+                    None, lambda: contiguous(layer.matrix(), np.float32)
                 )
                 self._whole = self._whole.reshape(layer.units, layer.fan_in)
             return self._whole[start:stop]

@@ -23,6 +23,7 @@ from steelyard.stats.nonfinite import NonfiniteCounts, count_into
 from steelyard.stats.numerics import FLOAT_NAMES, sorted_wide, sums_of_squares
 from steelyard.stats.reading import locked
 from steelyard.streaming import convert_into, row_blocks
+from steelyard.tiled_copy import contiguous
 
 #: One block of a pass: rows [a, b) of the canonical matrix as float32.
 Block = tuple[int, int, np.ndarray]
@@ -216,7 +217,7 @@ class WeightPasses:
     def _read_whole(self, layer: Layer) -> np.ndarray:
         """The canonical matrix through the loader's view, under the read lock: a view may
         read tensors other than the weight (a weight-norm gain, quantization scales)."""
-        return locked(None, lambda: np.ascontiguousarray(layer.matrix(), dtype=np.float32))
+        return locked(None, lambda: contiguous(layer.matrix(), np.float32))
 
     def _stream_rows(
         self,

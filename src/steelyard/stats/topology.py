@@ -10,6 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from steelyard.graph import Checkpoint, Layer, LayerKind
+from steelyard.tiled_copy import contiguous
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,7 +88,7 @@ class Topology:
                 cube = flat.reshape(consumer.units, spatial, producer.units).transpose(2, 0, 1)
             else:
                 cube = flat.reshape(consumer.units, producer.units, spatial).transpose(1, 0, 2)
-            return np.ascontiguousarray(cube.reshape(producer.units, -1), dtype=np.float32)
+            return contiguous(cube, np.float32).reshape(producer.units, -1)
         groups = max(1, consumer.groups)
         out_per_group = consumer.units // groups
         kernel = math.prod(consumer.kernel)

@@ -21,6 +21,7 @@ import numpy as np
 
 from steelyard.graph import RowSlice, Tensor
 from steelyard.loaders.layer_parts import WeightSource, weight_source
+from steelyard.tiled_copy import contiguous
 
 
 def float_reader(
@@ -30,7 +31,7 @@ def float_reader(
 
     def read() -> np.ndarray:
         array = tensor.read_float32()
-        return np.ascontiguousarray(transform(array)) if transform else array
+        return contiguous(transform(array)) if transform else array
 
     return read
 
@@ -123,4 +124,4 @@ class WeightNormView:
             scale = g.reshape(shape)
         with np.errstate(divide="ignore", invalid="ignore"):
             weight = (v * (scale / norm)).astype(np.float32)
-        return np.ascontiguousarray(self.transform(weight) if self.transform else weight)
+        return contiguous(self.transform(weight) if self.transform else weight)

@@ -12,6 +12,7 @@ from functools import partial
 import numpy as np
 
 from steelyard.graph import Tensor
+from steelyard.tiled_copy import contiguous
 
 
 @dataclass(frozen=True)
@@ -25,7 +26,7 @@ class View:
     transform: Callable[[np.ndarray], np.ndarray]
 
     def __call__(self) -> np.ndarray:
-        return np.ascontiguousarray(self.transform(self.tensor.read_float32()), dtype=np.float32)
+        return contiguous(self.transform(self.tensor.read_float32()), np.float32)
 
 
 def float_view(tensor: Tensor, transform: Callable[[np.ndarray], np.ndarray]) -> View:

@@ -13,6 +13,7 @@ from steelyard.graph import Activation, LayerKind
 from steelyard.loaders.onnx.lookthrough import View
 from steelyard.loaders.onnx.quantized import QuantWeight
 from steelyard.loaders.onnx.stored import Node
+from steelyard.tiled_copy import contiguous
 
 Array = Callable[[], np.ndarray]
 
@@ -58,6 +59,6 @@ def f32(
             array = transform(array)
         if shape is not None:
             array = array.reshape(shape)
-        return np.ascontiguousarray(array, dtype=np.float32)
+        return contiguous(array, np.float32)
 
     return view

@@ -19,6 +19,7 @@ import numpy as np
 
 from steelyard.loaders.onnx.lookthrough import Folder, View
 from steelyard.loaders.onnx.stored import DType, Node, dtype_of
+from steelyard.tiled_copy import contiguous
 
 
 def _f32_type() -> DType:
@@ -134,7 +135,7 @@ def _weight(
         # reference formula: ONNX QLinearConv/QLinearMatMul/ConvInteger/MatMulInteger,
         # real value = (quantized - zero_point) * scale, per output channel or per tensor
         out = (values - _along(z, rows_axis, rank)) * _along(s, rows_axis, rank)
-        return np.ascontiguousarray(out.T if transpose else out, dtype=np.float32)
+        return contiguous(out.T if transpose else out, np.float32)
 
     return read
 

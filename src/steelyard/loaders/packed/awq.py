@@ -21,6 +21,7 @@ from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.gptq import dequantize_groups, unpack_words
 from steelyard.loaders.packed.stored import ColumnWindow, Part
+from steelyard.tiled_copy import contiguous
 
 ORDER = (0, 2, 4, 6, 1, 3, 5, 7)
 _SLOT_OF_COLUMN = np.argsort(ORDER)
@@ -94,9 +95,8 @@ class AwqWeight:
         cut = slice(start - 8 * w0, stop - 8 * w0)
         # Codes fit a byte: transpose them as bytes, then widen once in [rows, in] order.
         codes = unpack_awq(self.qweight[:, w0:w1])[:, cut].astype(np.uint8).T
-        values = np.ascontiguousarray(codes, dtype=np.float32)
-        zeros = np.ascontiguousarray(unpack_awq(self.qzeros[:, w0:w1])[:, cut].T,
-                                     dtype=np.float32)
-        scales = np.ascontiguousarray(np.asarray(self.scales[:, start:stop]).T, dtype=np.float32)
+        values = contiguous(codes, np.float32)
+        zeros = contiguous(unpack_awq(self.qzeros[:, w0:w1])[:, cut].T, np.float32)
+        scales = contiguous(np.asarray(self.scales[:, start:stop]).T, np.float32)
         g = np.arange(self.shape[1]) // self.group_size
         return dequantize_groups(values, zeros, scales, g, self.group_size)

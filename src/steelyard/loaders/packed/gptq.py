@@ -24,6 +24,7 @@ import numpy as np
 from steelyard.budget import check_elements
 from steelyard.errors import LoadError
 from steelyard.loaders.packed.stored import ColumnWindow, Part
+from steelyard.tiled_copy import contiguous
 
 SUPPORTED_BITS = (2, 3, 4, 8)
 
@@ -192,7 +193,7 @@ class GptqWeight:
         # Codes come [in, rows]. Narrowed to bytes first, the transposing copy moves a quarter
         # of the memory (about 4x faster than transposing uint32), then widens to float32.
         codes = unpack_words(self.qweight[:, start:stop], self.bits, axis=0).astype(np.uint8).T
-        codes = np.ascontiguousarray(codes, dtype=np.float32)
-        zeros = np.ascontiguousarray(self.zeros()[:, start:stop].T, dtype=np.float32)
-        scales = np.ascontiguousarray(np.asarray(self.scales[:, start:stop]).T, dtype=np.float32)
+        codes = contiguous(codes, np.float32)
+        zeros = contiguous(self.zeros()[:, start:stop].T, np.float32)
+        scales = contiguous(np.asarray(self.scales[:, start:stop]).T, np.float32)
         return dequantize_groups(codes, zeros, scales, self.g_idx, self.group)

@@ -244,6 +244,24 @@ class RowSlice:
 
 
 @dataclass(frozen=True, slots=True)
+class ColumnSlice:
+    """An ``orient`` that takes columns ``[start, stop)`` of a 2-D stored tensor (every column
+    when ``stop`` is None) and transposes them: the canonical rows are stored columns, as in
+    GPT-2's Conv1D, a weight declared ``in-out``, or one gate of a transposed recurrent matrix.
+
+    The audit then reads the stored rows in cache-sized runs and transposes each into place
+    (:func:`steelyard.tiled_copy.transposed_from_parts`) instead of reading the whole tensor
+    and copying it across.
+    """
+
+    start: int = 0
+    stop: int | None = None
+
+    def __call__(self, array: np.ndarray) -> np.ndarray:
+        return np.asarray(array[:, self.start : self.stop].T)
+
+
+@dataclass(frozen=True, slots=True)
 class Norm:
     """A normalisation whose channels are one layer's units."""
 

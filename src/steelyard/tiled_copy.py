@@ -13,6 +13,8 @@ slab is one numpy assignment, so the values are exactly those of ``ascontiguousa
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 from numpy.typing import DTypeLike
 
@@ -55,4 +57,26 @@ def contiguous(array: np.ndarray, dtype: DTypeLike | None = None) -> np.ndarray:
         return np.ascontiguousarray(array, dtype=target)
     out = np.empty(array.shape, dtype=target)
     _copy_into(out, array)
+    return out
+
+
+def transposed_from_parts(
+    widen: Callable[[int, int, np.ndarray], None], shape: tuple[int, int], start: int, stop: int
+) -> np.ndarray:
+    """Columns ``[start, stop)`` of a stored ``[rows, width]`` tensor, transposed, as a
+    C-contiguous float32 ``[stop − start, rows]``: ``widen(a, b, into)`` writes elements
+    ``[a, b)`` of the flattened tensor as float32 into ``into``.
+
+    The stored rows are read a slab at a time into one reused buffer and each slab is
+    transposed into place while it is still in the cache, so the tensor is neither held whole
+    in its stored order nor copied across a second time."""
+    rows, width = shape
+    out = np.empty((stop - start, rows), dtype=np.float32)
+    step = max(1, min(rows, SLAB_BYTES // (4 * max(1, width))))
+    scratch = np.empty((step, width), dtype=np.float32)
+    for first in range(0, rows, step):
+        last = min(rows, first + step)
+        part = scratch[: last - first]
+        widen(first * width, last * width, part.reshape(-1))
+        out[:, first:last] = part[:, start:stop].T
     return out

@@ -17,13 +17,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from steelyard.dtypes import FLOAT_ITEMSIZE
-from steelyard.graph import Checkpoint, Layer, RowSlice, Tensor
+from steelyard.graph import Checkpoint, ColumnSlice, Layer, RowSlice, Tensor
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import NonfiniteCounts, count_into
 from steelyard.stats.numerics import FLOAT_NAMES, sorted_wide, sums_of_squares
 from steelyard.stats.reading import locked
 from steelyard.streaming import convert_into, row_blocks
-from steelyard.tiled_copy import contiguous
+from steelyard.tiled_copy import contiguous, transposed_from_parts
 
 #: One block of a pass: rows [a, b) of the canonical matrix as float32.
 Block = tuple[int, int, np.ndarray]
@@ -42,6 +42,22 @@ def row_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int] | None:
     if stop - orient.start != layer.units or math.prod(tensor.shape[1:]) != layer.fan_in:
         return None
     return tensor, orient.start
+
+
+def column_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int, int] | None:
+    """(weight tensor, first and last stored column) when ``layer``'s canonical matrix is a
+    run of its 2-D float weight tensor's columns, transposed (see :class:`ColumnSlice`), and
+    made from that tensor alone."""
+    tensor = checkpoint.tensors.get(layer.weight)
+    orient = layer.orient
+    if tensor is None or tensor.read_span is None or not isinstance(orient, ColumnSlice):
+        return None
+    if layer.aux or len(tensor.shape) != 2 or tensor.dtype not in FLOAT_NAMES:
+        return None
+    stop = tensor.shape[1] if orient.stop is None else min(orient.stop, tensor.shape[1])
+    if stop - orient.start != layer.units or tensor.shape[0] != layer.fan_in:
+        return None
+    return tensor, orient.start, stop
 
 
 @dataclass(frozen=True, slots=True)
@@ -216,7 +232,13 @@ class WeightPasses:
 
     def _read_whole(self, layer: Layer) -> np.ndarray:
         """The canonical matrix through the loader's view, under the read lock: a view may
-        read tensors other than the weight (a weight-norm gain, quantization scales)."""
+        read tensors other than the weight (a weight-norm gain, quantization scales). A run of
+        a tensor's columns is read by spans instead, transposed a slab at a time."""
+        columns = column_run(self.checkpoint, layer)
+        if columns is not None:
+            tensor, start, stop = columns
+            shape = (tensor.shape[0], tensor.shape[1])
+            return transposed_from_parts(tensor.widen_part, shape, start, stop)
         return locked(None, lambda: contiguous(layer.matrix(), np.float32))
 
     def _stream_rows(

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from steelyard.errors import LoadError
-from steelyard.graph import Activation, Layer, LayerKind, Link, Tensor, TensorRole
+from steelyard.graph import Activation, ColumnSlice, Layer, LayerKind, Link, Tensor, TensorRole
 from steelyard.loaders.base import MAX_METADATA_BYTES
 from steelyard.loaders.conventions.views import AS_STORED, float_reader, stored_source
 from steelyard.loaders.layer_parts import canonical_geometry, make_layer
@@ -290,8 +290,8 @@ def _adjusted(
         update.update(
             units=weight.shape[1],
             in_per_group=weight.shape[0],
-            weight_view=float_reader(weight, np.transpose),
-            orient=np.transpose,
+            weight_view=float_reader(weight, ColumnSlice()),
+            orient=ColumnSlice(),
         )
         bias = tensors.get(layer.bias) if layer.bias else None
         if bias is not None and bias.shape != (weight.shape[1],):

@@ -13,7 +13,16 @@ from collections.abc import Callable
 
 import numpy as np
 
-from steelyard.graph import Activation, Layer, LayerKind, Norm, NormKind, Tensor, TensorRole
+from steelyard.graph import (
+    Activation,
+    ColumnSlice,
+    Layer,
+    LayerKind,
+    Norm,
+    NormKind,
+    Tensor,
+    TensorRole,
+)
 from steelyard.loaders.conventions.module_names import Module
 from steelyard.loaders.conventions.views import (
     AS_STORED,
@@ -95,7 +104,7 @@ def weight_layer(module: Module, model_type: str) -> Layer | None:
     if len(shape) == 2:
         if model_type in _IN_OUT_MODELS and module.leaf in _IN_OUT_LEAVES:
             out, fan = shape[1], shape[0]
-            transform = np.transpose
+            transform = ColumnSlice()
         else:
             out, fan = shape
         kind = (

@@ -12,9 +12,9 @@ from collections.abc import Callable
 
 import numpy as np
 
-from steelyard.graph import Activation, Layer, LayerKind
+from steelyard.graph import Activation, ColumnSlice, Layer, LayerKind
 from steelyard.loaders.conventions.module_names import RECURRENT, Module
-from steelyard.loaders.conventions.views import TransposedColumns, row_slice, stored_source
+from steelyard.loaders.conventions.views import row_slice, stored_source
 from steelyard.loaders.layer_parts import layer_geometry, make_layer
 
 _GATES = {4: ("i", "f", "g", "o"), 3: ("r", "z", "n"), 1: ("h",)}
@@ -59,7 +59,7 @@ def recurrent_layers(module: Module) -> list[Layer]:
         for index, gate in enumerate(gates):
             sl = slice(index * hidden, (index + 1) * hidden)
             pick: Callable[[np.ndarray], np.ndarray] = (
-                TransposedColumns(sl.start, sl.stop) if transposed else row_slice(sl)
+                ColumnSlice(sl.start, sl.stop) if transposed else row_slice(sl)
             )
             name = f"{module.name + '.' if module.name else ''}{which}{level}{reverse or ''}.{gate}"
             source = stored_source(weight, pick, bias, row_slice(sl))

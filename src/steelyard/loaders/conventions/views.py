@@ -71,17 +71,6 @@ class SameOrientation:
         return array
 
 
-@dataclass(frozen=True, slots=True)
-class TransposedColumns:
-    """Columns ``[start, stop)`` of a transposed recurrent matrix ``[in, G·H]``, as ``[H, in]``."""
-
-    start: int
-    stop: int
-
-    def __call__(self, array: np.ndarray) -> np.ndarray:
-        return np.asarray(array[:, self.start : self.stop].T)
-
-
 def weight_norm_dim(g: tuple[int, ...], v: tuple[int, ...]) -> int | bool | None:
     """The ``dim`` of a weight-norm pair from the shapes of g and v: an axis, None (norm of
     the whole tensor), or False when the shapes are no weight-norm pair."""

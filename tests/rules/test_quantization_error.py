@@ -153,6 +153,26 @@ def test_gguf_block_grids_are_recognised_as_already_quantized(kind_name: str) ->
     assert stored_grid(matrix) is None
 
 
+@pytest.mark.parametrize("row", [0, 1000, 2047])
+def test_a_grid_is_checked_in_every_row_block(row: int) -> None:
+    """A matrix of many row blocks on the Q8_0 grid (gguf's own quantize/dequantize) is
+    recognised; one weight moved off the grid, in the first, a middle or the last block,
+    makes it not on the grid."""
+    gguf = pytest.importorskip("gguf")
+    from gguf.quants import dequantize, quantize
+
+    kind = gguf.GGMLQuantizationType.Q8_0
+    matrix = np.random.default_rng(2).standard_normal((2048, 512)).astype(np.float32)
+    stored = dequantize(quantize(matrix, kind), kind).reshape(matrix.shape).astype(np.float32)
+    assert stored_grid(stored) == "Q8_0-like (8-bit blocks of 32)"
+    moved = stored.copy()
+    block = moved[row, 64:96]
+    # half a grid step off, inside the block's range so its absmax (and scale) stays
+    step = np.abs(block).max() / 127
+    block[np.argmin(np.abs(block))] += 0.5 * step
+    assert stored_grid(moved) is None
+
+
 def test_quantized_gguf_layers_report_that_the_error_paid_cannot_be_measured(tmp_path: Path) -> None:
     pytest.importorskip("gguf")
     source = FIXTURES / "gguf" / "tiny-llama.gguf"

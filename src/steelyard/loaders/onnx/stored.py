@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import functools
 import math
-import mmap
 import struct
 import sys
 from collections.abc import Callable
@@ -143,7 +142,12 @@ class Stored:
 
 
 class FileBytes:
-    """Lazily opened, read-only memory maps of the model file and its external data files."""
+    """The model file and its external data files, read with positioned reads.
+
+    Reads into fresh arrays rather than memory maps: a mapped file's pages count in the
+    process's resident set once touched, so auditing a 650 MB float32 model held 938 MiB
+    (docs/performance.md, "Thirteenth session") and a model of several gigabytes would have
+    held all of them. A private file object per read keeps concurrent reads safe."""
 
     def __init__(self, path: Path) -> None:
         self.path = path
@@ -151,7 +155,6 @@ class FileBytes:
         self.size = file_size(path)
         self.files: dict[Path, int] = {}
         """External data files in first-use order → size."""
-        self._maps: dict[Path, mmap.mmap] = {}
         self.ledger = budget.Ledger(path)
         """Bytes this model makes steelyard compute beyond what it stores (densified sparse
         tensors, folded constants)."""
@@ -160,19 +163,21 @@ class FileBytes:
         """``count`` elements of ``dtype`` at ``offset`` of ``target`` (bounds already checked)."""
         if count == 0:
             return np.zeros(0, dtype=dtype)
-        mapped = self._maps.get(target)
-        if mapped is None:
-            try:
-                with open(target, "rb") as handle:
-                    mapped = mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ)
-            except (OSError, ValueError) as exc:
-                raise LoadError(target, f"cannot be mapped for reading ({exc})") from None
-            self._maps[target] = mapped
-        if offset + count * dtype.itemsize > len(mapped):
-            raise LoadError(target, "became shorter after it was opened")
-        array = np.frombuffer(mapped, dtype=dtype, count=count, offset=offset)
+        array = np.empty(count, dtype=dtype)
+        into = array.view(np.uint8).data
+        try:
+            with open(target, "rb", buffering=0) as handle:
+                handle.seek(offset)
+                done = 0
+                while done < into.nbytes:
+                    got = handle.readinto(into[done:])
+                    if not got:
+                        raise LoadError(target, "became shorter after it was opened")
+                    done += got
+        except OSError as exc:
+            raise LoadError(target, f"cannot be read ({exc})") from None
         if sys.byteorder == "big" and dtype.itemsize > 1:
-            array = array.byteswap()
+            array.byteswap(inplace=True)
         return array
 
     def external(self, location: str) -> tuple[Path, int]:

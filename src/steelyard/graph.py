@@ -163,10 +163,11 @@ class Tensor:
     fill_span: Callable[[int, int, np.ndarray], None] | None = field(
         default=None, repr=False, compare=False
     )
-    """Optional, for ``f32`` tensors with ``read_span`` whose bytes are little-endian float32:
-    writes elements ``[start, stop)`` into a C-contiguous float32 array of that many elements,
-    so a streamed pass reads the file straight into the layer's matrix instead of into a
-    fresh buffer it then copies (a third of a float32 layer's read time)."""
+    """Optional, for ``f32`` tensors with ``read_span`` (little-endian float32 bytes, or
+    blocks decoded to float32 such as a dequantized GGUF tensor): writes elements
+    ``[start, stop)`` into a C-contiguous float32 array of that many elements, so a streamed
+    pass fills the layer's matrix directly instead of a fresh buffer it then copies (a third
+    of a float32 layer's read time)."""
 
     @property
     def size(self) -> int:

@@ -78,6 +78,11 @@ def test_every_type_dequantizes_exactly_like_the_package() -> None:
         for start, stop in ((0, 1), (37, 700), (255, 257), (1000, 1024), (0, flat.size)):
             span = np.asarray(tensor.read_span(start, stop), dtype=np.float32)
             assert np.array_equal(span, flat[start:stop], equal_nan=True), (kind.name, start)
+            # the streamed pass's path: widened straight into a float32 block (fill_span
+            # for dequantized types), the block 2-D as a pass hands it over
+            into = np.full((1, stop - start), -7.0, dtype=np.float32)
+            tensor.widen_part(start, stop, into)
+            assert np.array_equal(into[0], flat[start:stop], equal_nan=True), (kind.name, start)
         assert tensor.role is TensorRole.PARAMETER
 
 

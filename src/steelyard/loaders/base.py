@@ -74,6 +74,7 @@ def float32_tensor(
     reader: Callable[[], np.ndarray],
     read_span: Callable[[int, int], np.ndarray] | None,
     stored_type: str | None = None,
+    fill_span: Callable[[int, int, np.ndarray], None] | None = None,
 ) -> Tensor:
     """A tensor computed as float32 when read (a dequantized GGUF block or packed weight, an
     adapter's update): ``f32`` whatever lies beneath it, which ``stored_type`` names."""
@@ -85,6 +86,7 @@ def float32_tensor(
         reader=reader,
         read_span=read_span,
         stored_type=stored_type,
+        fill_span=fill_span,
     )
 
 

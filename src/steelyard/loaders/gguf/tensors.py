@@ -124,6 +124,7 @@ def make_tensor(data: DataFile, info: TensorInfo) -> Tensor:
         _dequantized_reader(data, info),
         _dequantized_span(data, info),
         type_name(info.type_id),
+        fill_span=_dequantized_fill(data, info),
     )
 
 
@@ -150,7 +151,9 @@ def _plain_reader(
     return read
 
 
-def _dequantized_span(data: DataFile, info: TensorInfo) -> Callable[[int, int], np.ndarray]:
+def _dequantized_fill(data: DataFile, info: TensorInfo) -> Callable[[int, int, np.ndarray], None]:
+    """Dequantize elements ``[start, stop)`` straight into a float32 ``out`` of that size
+    (``Tensor.fill_span``: no second copy through a fresh array)."""
     from gguf.constants import GGML_QUANT_SIZES, GGMLQuantizationType
     from gguf.quants import dequantize
 
@@ -158,11 +161,11 @@ def _dequantized_span(data: DataFile, info: TensorInfo) -> Callable[[int, int], 
     block, type_size = GGML_QUANT_SIZES[kind]
     step = max(1, _STEP // block)
 
-    def read_span(start: int, stop: int) -> np.ndarray:
+    def fill_span(start: int, stop: int, out: np.ndarray) -> None:
         start, stop = max(0, start), min(info.elements, stop)
-        out = np.empty(max(0, stop - start), dtype=np.float32)
-        if not out.size:
-            return out
+        if stop <= start:
+            return
+        flat = out.reshape(-1)
         first, last = start // block, -(-stop // block)
         for a in range(first, last, step):
             b = min(last, a + step)
@@ -172,7 +175,17 @@ def _dequantized_span(data: DataFile, info: TensorInfo) -> Callable[[int, int], 
                 values = np.asarray(dequantize(raw.reshape(1, -1), kind), dtype=np.float32)
             values = values.reshape(-1)
             lo, hi = max(start, a * block), min(stop, b * block)
-            out[lo - start : hi - start] = values[lo - a * block : hi - a * block]
+            flat[lo - start : hi - start] = values[lo - a * block : hi - a * block]
+
+    return fill_span
+
+
+def _dequantized_span(data: DataFile, info: TensorInfo) -> Callable[[int, int], np.ndarray]:
+    fill = _dequantized_fill(data, info)
+
+    def read_span(start: int, stop: int) -> np.ndarray:
+        out = np.empty(max(0, min(info.elements, stop) - max(0, start)), dtype=np.float32)
+        fill(start, stop, out)
         return out
 
     return read_span

@@ -25,8 +25,8 @@ from collections.abc import Callable
 import numpy as np
 
 from steelyard.dtypes import to_float32
-from steelyard.graph import Activation, LayerKind
-from steelyard.loaders.onnx.layer_draft import Array, Draft, f32
+from steelyard.graph import Activation, ColumnSlice, LayerKind, RowSlice
+from steelyard.loaders.onnx.layer_draft import Array, Draft, f32, stored_as_is
 from steelyard.loaders.onnx.lookthrough import Folder, View
 from steelyard.loaders.onnx.node_graph import Graphs
 from steelyard.loaders.onnx.output_walk import per_unit
@@ -111,6 +111,8 @@ class LayerBuilder:
                 return array * np.float32(alpha)
 
         draft = self._simple(node, LayerKind.DENSE, b, (units, fan), weight, node.input(0))
+        if alpha == 1.0 and stored_as_is(b):
+            draft.orient = RowSlice() if trans_b else ColumnSlice()
         c = self.folder.fold(node.input(2)) if node.input(2) else None
         if node.input(2):
             draft.want_bias = False
@@ -131,15 +133,15 @@ class LayerBuilder:
         a, b = self.folder.fold(node.input(0)), self.folder.fold(node.input(1))
         if b is not None and a is None and len(b.shape) == 2:
             shape = (b.shape[1], b.shape[0])
-            return [
-                self._simple(
-                    node, LayerKind.DENSE, b, shape, f32(b.read, np.transpose), node.input(0)
-                )
-            ]
+            draft = self._simple(
+                node, LayerKind.DENSE, b, shape, f32(b.read, ColumnSlice()), node.input(0)
+            )
+            draft.orient = ColumnSlice() if stored_as_is(b) else None
+            return [draft]
         if a is not None and b is None and len(a.shape) == 2:
-            return [
-                self._simple(node, LayerKind.DENSE, a, a.shape, a.read, node.input(1), trailing=1)
-            ]
+            draft = self._simple(node, LayerKind.DENSE, a, a.shape, a.read, node.input(1), trailing=1)
+            draft.orient = RowSlice() if stored_as_is(a) else None
+            return [draft]
         return []
 
     def conv(self, node: Node) -> list[Draft]:
@@ -150,6 +152,7 @@ class LayerBuilder:
         draft = self._simple(
             node, LayerKind.CONV, w, w.shape, w.read, node.input(0), groups, len(w.shape) - 2
         )
+        draft.orient = RowSlice() if stored_as_is(w) else None
         self._node_bias(draft, node.input(2))
         return [draft]
 
@@ -200,6 +203,7 @@ class LayerBuilder:
         draft = self._simple(
             node, LayerKind.EMBEDDING, table, table.shape, table.read, node.input(1)
         )
+        draft.orient = RowSlice() if stored_as_is(table) else None
         draft.want_bias, draft.activation = False, Activation.IDENTITY
         return [draft]
 

@@ -9,7 +9,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from steelyard.dtypes import to_float32
-from steelyard.graph import Activation, LayerKind
+from steelyard.graph import Activation, ColumnSlice, LayerKind, RowSlice
 from steelyard.loaders.onnx.lookthrough import View
 from steelyard.loaders.onnx.quantized import QuantWeight
 from steelyard.loaders.onnx.stored import Node
@@ -43,6 +43,20 @@ class Draft:
     gate: str | None = None
     own_inputs: tuple[str, ...] | None = None
     opaque_next: bool = False
+    orient: RowSlice | ColumnSlice | None = None
+    """How the canonical matrix lies in the stored weight when it is a plain rearrangement
+    of it (no op, cast, scale or dequantization between them); None otherwise."""
+
+
+def stored_as_is(view: View | QuantWeight) -> bool:
+    """Whether ``view`` is its stored tensor itself, no op looked through."""
+    return (
+        isinstance(view, View)
+        and not view.via
+        and not view.quantized
+        and view.sources == (view.source,)
+        and view.stored_elements < 0
+    )
 
 
 def f32(

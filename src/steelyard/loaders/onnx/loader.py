@@ -26,6 +26,7 @@ from typing import TYPE_CHECKING
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Layer, LayerKind, Link, Tensor, mark_outputs
 from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
+from steelyard.loaders.onnx.file_bytes import FileBytes
 from steelyard.loaders.onnx.input_walk import InputWalk
 from steelyard.loaders.onnx.layer_builder import LayerBuilder, unique_names
 from steelyard.loaders.onnx.layer_draft import Draft, f32
@@ -34,7 +35,7 @@ from steelyard.loaders.onnx.node_graph import Graphs
 from steelyard.loaders.onnx.output_walk import OutputWalk
 from steelyard.loaders.onnx.quantized import dequantize
 from steelyard.loaders.onnx.recurrent import HIDDEN_GATE
-from steelyard.loaders.onnx.stored import FileBytes, text
+from steelyard.loaders.onnx.stored import text
 from steelyard.loaders.onnx.tensor_roles import tensor_roles
 from steelyard.loaders.onnx.wire import looks_like_model, parse_model
 
@@ -83,7 +84,9 @@ def _layers(graphs: Graphs, folder: Folder, drafts: list[Draft]) -> tuple[Layer,
         else:
             inputs = backward.sources(draft.data)
         weight = draft.weight.source if isinstance(draft.weight, View) else draft.weight.weight
-        source = weight_source(weight, draft.view, None, bias, None if bias is None else bias_view)
+        source = weight_source(
+            weight, draft.view, draft.orient, bias, None if bias is None else bias_view
+        )
         geometry = layer_geometry(draft.units, draft.in_per_group, draft.kernel, draft.groups)
         layers.append(
             make_layer(
@@ -167,7 +170,13 @@ class OnnxLoader:
         roles = tensor_roles(graphs, folder, drafts, builder.scale_uses)
         tensors = {
             key: Tensor(
-                name=key, shape=s.shape, dtype=s.dtype.name, role=roles[key], reader=s.reader
+                name=key,
+                shape=s.shape,
+                dtype=s.dtype.name,
+                role=roles[key],
+                reader=s.reader,
+                read_span=s.span,
+                fill_span=s.fill,
             )
             for key, s in graphs.stored.items()
         }

@@ -17,8 +17,9 @@ from pathlib import Path
 from typing import Any
 
 from steelyard.errors import LoadError
+from steelyard.loaders.onnx.file_bytes import FileBytes
 from steelyard.loaders.onnx.op_kinds import CONTROL_FLOW
-from steelyard.loaders.onnx.stored import FileBytes, Node, Stored, constant, sparse, tensor, text
+from steelyard.loaders.onnx.stored import Node, Stored, constant, sparse, tensor, text
 
 #: Deepest subgraph nesting walked (protobuf's own recursion limit stops far deeper files).
 MAX_NESTING = 32

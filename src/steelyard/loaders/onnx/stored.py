@@ -1,7 +1,8 @@
 """ONNX stored tensors and nodes: element types, lazy decoding, Constant values.
 
 A tensor's bytes are never copied at load time: ``raw_data`` payloads were replaced by file
-offsets (:mod:`steelyard.loaders.onnx.wire`) and external data is memory-mapped on first read.
+offsets (:mod:`steelyard.loaders.onnx.wire`), and every tensor, in the model file or in
+external data, is read by positioned reads when asked for (:mod:`.file_bytes`).
 Every claim of a TensorProto (type, shape, byte ranges) is checked before a byte is viewed.
 """
 
@@ -20,7 +21,7 @@ import numpy as np
 
 from steelyard import budget
 from steelyard.errors import LoadError
-from steelyard.loaders.base import file_size, inside
+from steelyard.loaders.onnx.file_bytes import FileBytes
 from steelyard.loaders.onnx.wire import MARK, MARK_LEN
 
 #: Highest tensor rank accepted (ONNX itself has no limit; real models stay under 10).
@@ -139,53 +140,12 @@ class Stored:
     shape: tuple[int, ...]
     dtype: DType
     reader: Callable[[], np.ndarray] = field(repr=False)
-
-
-class FileBytes:
-    """The model file and its external data files, read with positioned reads.
-
-    Reads into fresh arrays rather than memory maps: a mapped file's pages count in the
-    process's resident set once touched, so auditing a 650 MB float32 model held 938 MiB
-    (docs/performance.md, "Thirteenth session") and a model of several gigabytes would have
-    held all of them. A private file object per read keeps concurrent reads safe."""
-
-    def __init__(self, path: Path) -> None:
-        self.path = path
-        self.folder = path.parent
-        self.size = file_size(path)
-        self.files: dict[Path, int] = {}
-        """External data files in first-use order → size."""
-        self.ledger = budget.Ledger(path)
-        """Bytes this model makes steelyard compute beyond what it stores (densified sparse
-        tensors, folded constants)."""
-
-    def view(self, target: Path, offset: int, count: int, dtype: np.dtype[Any]) -> np.ndarray:
-        """``count`` elements of ``dtype`` at ``offset`` of ``target`` (bounds already checked)."""
-        if count == 0:
-            return np.zeros(0, dtype=dtype)
-        array = np.empty(count, dtype=dtype)
-        into = array.view(np.uint8).data
-        try:
-            with open(target, "rb", buffering=0) as handle:
-                handle.seek(offset)
-                done = 0
-                while done < into.nbytes:
-                    got = handle.readinto(into[done:])
-                    if not got:
-                        raise LoadError(target, "became shorter after it was opened")
-                    done += got
-        except OSError as exc:
-            raise LoadError(target, f"cannot be read ({exc})") from None
-        if sys.byteorder == "big" and dtype.itemsize > 1:
-            array.byteswap(inplace=True)
-        return array
-
-    def external(self, location: str) -> tuple[Path, int]:
-        """Resolve an external data location strictly inside the model's folder."""
-        target = inside(self.folder, location, self.path)
-        if target not in self.files:
-            self.files[target] = file_size(target)
-        return target, self.files[target]
+    span: Callable[[int, int], np.ndarray] | None = field(default=None, repr=False)
+    """Elements ``[start, stop)`` of the flattened tensor, for bytes at a known place of a
+    file in a whole-byte type (``Tensor.read_span``: the audit then streams the tensor)."""
+    fill: Callable[[int, int, np.ndarray], None] | None = field(default=None, repr=False)
+    """For float32 such bytes on a little-endian host: elements ``[start, stop)`` read
+    straight into a float32 array (``Tensor.fill_span``)."""
 
 
 def check_shape(dims: Any, where: str, path: Path) -> tuple[int, ...]:
@@ -303,7 +263,8 @@ def tensor(proto: Any, key: str, files: FileBytes) -> Stored | None:
                 f"({size} bytes)",
             )
         reader = _raw_reader(files, target, offset, dtype, shape, count)
-        return Stored(key, shape, dtype, reader)
+        span, fill = files.spans(target, offset, dtype.np, count, _whole_bytes(dtype))
+        return Stored(key, shape, dtype, reader, span, fill)
     if int(proto.data_location) != 0:
         raise LoadError(path, f"{where} has unknown data_location {proto.data_location}")
     if proto.HasField("raw_data"):
@@ -322,6 +283,8 @@ def tensor(proto: Any, key: str, files: FileBytes) -> Stored | None:
                     f"{list(shape)} needs {needed}",
                 )
             reader = _raw_reader(files, path, offset, dtype, shape, count)
+            span, fill = files.spans(path, offset, dtype.np, count, _whole_bytes(dtype))
+            return Stored(key, shape, dtype, reader, span, fill)
         else:
             if len(raw) != needed:
                 raise LoadError(
@@ -351,6 +314,11 @@ def _raw_reader(
         return files.view(target, offset, count, dtype.np).reshape(shape)
 
     return read
+
+
+def _whole_bytes(dtype: DType) -> bool:
+    """Whether each element of ``dtype`` is whole bytes (so has a byte offset)."""
+    return dtype.bits >= 8 and dtype.bits != 6
 
 
 def _inline_reader(

@@ -49,11 +49,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _common import FAMILIES, family_matrix
 
 from steelyard.rules import _similarity
+from steelyard.rules._rows import Rows, Tally
 from steelyard.rules._similarity import (
     MEASURED_RECALL,
     PARTNERS,
-    Rows,
-    Tally,
     candidate_pairs,
     exact_pairs,
 )

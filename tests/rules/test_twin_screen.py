@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from steelyard.rules import _similarity
-from steelyard.rules._similarity import Rows, Tally, exact_pairs
+from steelyard.rules._rows import Rows, Tally
+from steelyard.rules._similarity import exact_pairs
 from steelyard.rules._twin_search import SCREEN_DIMENSIONS, screen_limit, similar_pairs
 from tests.rules.test_twin_search import KINDS, THRESHOLD, _at_cosine, _planted
 

@@ -23,12 +23,11 @@ from steelyard.findings import Finding
 from steelyard.loaders import load
 from steelyard.policy import Policy
 from steelyard.rules import _similarity
+from steelyard.rules._bucket_gram import BUCKET_CAP
+from steelyard.rules._rows import Rows, Tally
 from steelyard.rules._similarity import (
-    BUCKET_CAP,
     MEASURED_RECALL,
     PARTNERS,
-    Rows,
-    Tally,
     candidate_pairs,
     confirmation_bound,
     exact_pairs,

@@ -20,11 +20,11 @@ from steelyard.findings import Finding, Severity
 from steelyard.loaders import load
 from steelyard.policy import Policy
 from steelyard.rules import _similarity
+from steelyard.rules._rows import normalise
 from steelyard.rules._similarity import (
     MEASURED_RECALL,
     candidate_pairs,
     exact_pairs,
-    normalise,
 )
 from steelyard.rules.twin_units import RULE
 

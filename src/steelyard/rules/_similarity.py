@@ -7,7 +7,7 @@ float64 from the rows themselves, so the two searches decide every pair alike. E
 its first ``PARTNERS`` later partners and its first earlier one (a layer of copies would
 otherwise give n²/2 pairs), in both searches, so neither cuts a row off from its twins.
 
-The rows are a :class:`Rows` view: a float32 matrix, an optional extra last column (a bias)
+The rows are a :class:`~steelyard.rules._rows.Rows` view: a float32 matrix, an optional extra last column (a bias)
 and float64 norms. The hashed search projects the stored rows directly (a sign hash is
 unchanged by scaling a row) and gathers only the rows of buckets with more than one row.
 
@@ -28,7 +28,7 @@ outlier input columns, near copies) agree on many hyperplanes, so they crowd a f
 confirming every colliding pair one at a time (two gathered rows each) then grows with the
 square of the bucket sizes. Instead:
 
-1. The pairs of buckets of at most ``_PAIRED`` (4) rows are listed, deduplicated across all
+1. The pairs of buckets of at most ``PAIRED`` (4) rows are listed, deduplicated across all
    tables (true twins collide in most of them) and confirmed once each.
 2. A bucket of up to ``BUCKET_CAP`` (128) rows is gathered once per table and confirmed by one
    Gram product (its raw rows' products, scaled by the inverse norms afterwards).
@@ -37,11 +37,13 @@ square of the bucket sizes. Instead:
    more, until every part is within the cap. Each added bit keeps a pair at the threshold
    together with probability 0.968, so this costs recall only where buckets were crowded.
 4. A bucket still larger (its rows agree on 40 hyperplanes: a cluster of near copies) compares
-   each run of ``BUCKET_CAP`` members, in index order, with the ``_BAND``·``BUCKET_CAP`` (512)
+   each run of ``BUCKET_CAP`` members, in index order, with the ``BAND``·``BUCKET_CAP`` (512)
    members from its start: every pair of a bucket up to 512 rows, a band of the Gram matrix
    beyond, which still gives each member its capped partners when the cluster is of copies.
 
-Hence at most ``_BAND``·``BUCKET_CAP`` float32 dot products per row and table
+Steps 2 and 4 are :mod:`steelyard.rules._bucket_gram`'s; its buckets of similar sizes share
+one gather and one batched product (a 4096 × 1024 layer of correlated rows: 96 → 68 ms).
+Hence at most ``BAND``·``BUCKET_CAP`` float32 dot products per row and table
 (:func:`confirmation_bound`, counted in :class:`Tally`), whatever the weights. The plan is
 counted before any product is computed; when it times ``BUCKET_DOT_COST`` (3; the measured
 time of a bucket confirmation's dot against one in the exact search's large blocks: 2.2–9)
@@ -54,12 +56,21 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import numpy as np
 
 from steelyard.blas import blas_threads
+from steelyard.rules._bucket_gram import BAND, BUCKET_CAP, PAIRED, bucket_hits, keep
 from steelyard.rules._planes import gaussian_planes
+from steelyard.rules._rows import (
+    EMPTY,
+    SLACK,
+    Rows,
+    Tally,
+    inverse_norms,
+    off_scale,
+    passing,
+)
 
 #: Working-set bytes for one Gram block (rows of the block × all later rows, float32).
 BLOCK_BYTES = 32 * 2**20
@@ -72,139 +83,19 @@ MEASURED_RECALL = 0.99
 #: Most later partners kept per row (plus each row's first earlier one). A layer of many
 #: identical rows (a constant initialisation, say) would otherwise yield n²/2 pairs.
 PARTNERS = 64
-#: Most rows compared all against all in one hash bucket; a larger bucket gets a longer key.
-BUCKET_CAP = 128
 #: Most bits added to a table's key to split an oversized bucket, ``_SPLIT_STEP`` at a time.
 EXTRA_BITS = 24
 _SPLIT_STEP = 4
-#: A bucket that longer keys cannot split compares each run of ``BUCKET_CAP`` members with
-#: the ``_BAND``·``BUCKET_CAP`` members from its start: every pair up to that size, a band beyond.
-_BAND = 4
-#: Buckets up to this size list their pairs, which are deduplicated across tables and
-#: confirmed once each; larger buckets are confirmed by one Gram product per table.
-_PAIRED = 4
 #: Time of one dot product of the bucket confirmation (gathers included) relative to one in the
 #: exact search's large blocks: 2.2 to 9 measured on one thread (lower for wide rows and large
 #: buckets; see docs/performance.md). The hashed search is used only when its planned dot
 #: products times this are fewer than the exact search's; 3 errs towards the hashed search,
 #: by at most 1.5 × on the measured 1024-row layers, never on wide ones where time matters.
 BUCKET_DOT_COST = 3.0
-#: Slack of the float32 pre-filters before the float64 check (float32 dot products of unit
-#: vectors are accurate to about 1e-6 at the widths seen here).
-_SLACK = 1e-4
-
-EMPTY = np.zeros(0, np.int64)
 #: A Gram search of the given members of the rows: (first, second, cosine) of every pair
 #: past the threshold, as :func:`exact_pairs` gives them.
 Pairs = tuple[np.ndarray, np.ndarray, np.ndarray]
 Searcher = Callable[["Rows", np.ndarray, float, bool, "Tally"], Pairs]
-
-
-@dataclass(frozen=True)
-class Rows:
-    """Rows r_j = [matrix_j, extra_j] and their float64 norms, viewed without copying."""
-
-    matrix: np.ndarray
-    """``[n, d]`` float32 (never written to)."""
-    norms: np.ndarray
-    """‖r_j‖, float64 (non-finite for a row holding a NaN or an infinity)."""
-    extra: np.ndarray | None = None
-    """An optional last column ``[n]`` (a bias), part of every row."""
-    scale: np.ndarray | None = None
-    """Optional float32 factors ``[n]`` of the matrix part (a folded batch norm's a_j): row j
-    is then [scale_j·matrix_j (in float32), extra_j], never materialised as a whole."""
-
-    @classmethod
-    def of(cls, rows: np.ndarray) -> Rows:
-        """A view of plain rows, with their norms computed in float64."""
-        matrix = np.asarray(rows, dtype=np.float32)
-        return cls(matrix, np.sqrt(np.einsum("ij,ij->i", matrix, matrix, dtype=np.float64)))
-
-    @property
-    def count(self) -> int:
-        return int(self.matrix.shape[0])
-
-    def take(self, index: np.ndarray | list[int], dtype: type = np.float64) -> np.ndarray:
-        """The rows at ``index`` (extra column included), as ``dtype``."""
-        index = np.asarray(index, dtype=np.int64)
-        part = self.matrix[index]
-        if self.scale is not None:  # rounded to float32 as the folded weights are
-            with np.errstate(over="ignore", invalid="ignore"):
-                part = np.multiply(part, self.scale[index, None], dtype=np.float32)
-        if self.extra is None:
-            return np.asarray(part, dtype=dtype)
-        width = self.matrix.shape[1] + 1
-        out = np.empty((index.size, width), dtype=dtype)
-        out[:, : self.matrix.shape[1]] = part
-        out[:, -1] = self.extra[index]
-        return out
-
-    def unit(self, index: np.ndarray) -> np.ndarray:
-        """r_j/‖r_j‖ at ``index`` as float32 (rows with a zero or non-finite norm become 0)."""
-        return scaled(self.take(index, np.float32), self.norms[index])
-
-    def project_rows(self, index: np.ndarray, planes: np.ndarray) -> np.ndarray:
-        """The rows at ``index`` times ``planes``."""
-        return np.asarray(self.take(index, np.float32) @ planes)
-
-    def project(self, planes: np.ndarray) -> np.ndarray:
-        """Every row times ``planes`` (``[d (+1), k]``), one BLAS product on the stored rows."""
-        d = self.matrix.shape[1]
-        out = np.asarray(self.matrix @ planes[:d])
-        if self.scale is not None:
-            with np.errstate(over="ignore", invalid="ignore"):
-                out *= self.scale[:, None]
-        if self.extra is not None:
-            out += self.extra[:, None].astype(np.float32) * planes[d]
-        return out
-
-
-def normalise(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Unit-norm float32 copies of ``rows`` and their float64 norms (zero rows stay zero)."""
-    view = Rows.of(rows)
-    return scaled(view.matrix, view.norms), view.norms
-
-
-def _inverse(norms: np.ndarray) -> np.ndarray:
-    """1/norms as float32, 0 where a norm is zero or not finite, +Inf where the inverse
-    leaves float32 (norms below 2.9e-39, rows of subnormals: see :func:`scaled`)."""
-    usable = np.isfinite(norms) & (norms > 0)
-    with np.errstate(over="ignore"):
-        return np.divide(1.0, norms, out=np.zeros_like(norms), where=usable).astype(np.float32)
-
-
-def scaled(rows: np.ndarray, norms: np.ndarray) -> np.ndarray:
-    """``rows / norms`` as a new float32 array; rows with a zero or non-finite norm become 0."""
-    usable = np.isfinite(norms) & (norms > 0)
-    scale = _inverse(norms)
-    out = np.empty(rows.shape, dtype=np.float32)
-    with np.errstate(invalid="ignore", over="ignore"):
-        np.multiply(rows, scale[:, None], out=out)
-    tiny = np.flatnonzero(usable & np.isinf(scale))
-    if tiny.size:  # rows of subnormals: divided in float64, where their norms are normal
-        out[tiny] = rows[tiny].astype(np.float64) / norms[tiny, None]
-    out[~usable] = 0.0
-    return out
-
-
-@dataclass
-class Tally:
-    """What a search spent, filled in as it goes (read by the tests and the benchmark)."""
-
-    method: str = "exact"
-    """``exact`` or ``hashed``: the search that produced the pairs."""
-    tables: int = 0
-    bits: int = 0
-    dots: int = 0
-    """Float32 dot products of normalised rows computed to find and confirm pairs."""
-    planned: int = 0
-    """Dot products the hashed plan needed (counted before any was computed)."""
-    largest: int = 0
-    """The largest set of rows compared all against all in the hashed search (<= BUCKET_CAP)."""
-    split: int = 0
-    """Buckets split by raising their key length."""
-    banded: int = 0
-    """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
 
 
 def _partner_mask(
@@ -226,15 +117,6 @@ def _partner_mask(
     return np.asarray(keep)
 
 
-def _passing(gram: np.ndarray, threshold: float, negative: bool) -> np.ndarray:
-    """Entries within slack of the threshold in float32 (candidates for the float64 check)."""
-    loose = threshold - _SLACK
-    mask = gram >= loose
-    if negative:
-        mask |= gram <= -loose
-    return np.asarray(mask)
-
-
 def _gram_hits(
     unit: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -250,10 +132,10 @@ def _gram_hits(
         stop = min(n, start + block)
         gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
         tally.dots += int(gram.size)
-        hits = np.argwhere(_passing(gram, threshold, negative))
+        hits = np.argwhere(passing(gram, threshold, negative))
         hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
         rough = gram[hits[:, 0], hits[:, 1]]
-        certain = _passing(rough, threshold + 2 * _SLACK, negative)
+        certain = passing(rough, threshold + 2 * SLACK, negative)
         keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
         firsts.append(hits[keep, 0] + start)
         seconds.append(hits[keep, 1] + start)
@@ -278,7 +160,7 @@ def _settle(
     """Keep the pairs past the threshold: float32 cosines decide where they are more than
     the slack away from it, float64 cosines recomputed from the rows decide the rest."""
     cos = rough.astype(np.float64)
-    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < _SLACK)
+    near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < SLACK)
     width = rows.matrix.shape[1] + 1
     step = max(1, BLOCK_BYTES // (16 * width))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -299,7 +181,7 @@ def capped_settle(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Candidate pairs in row-major order with their float32 cosines, under the exact
     search's partner cap, then :func:`_settle`d: how a candidate search ends."""
-    certain = _passing(rough, threshold + 2 * _SLACK, negative)
+    certain = passing(rough, threshold + 2 * SLACK, negative)
     keep = _partner_mask(first, second, certain, np.zeros(rows.count, dtype=bool))
     return _settle(rows, first[keep], second[keep], rough[keep], threshold, negative)
 
@@ -316,17 +198,6 @@ def exact_among(
     tally.method = "exact"
     first, second, rough = _gram_hits(rows.unit(members), threshold, negative, tally)
     return _settle(rows, members[first], members[second], rough, threshold, negative)
-
-
-#: Row norms whose raw float32 products are safe: the dot product of two such rows, and its
-#: terms down to a millionth of it, lie within float32's normal range. Rows outside it are
-#: normalised before any product.
-_PLAIN_SCALE = (1e-15, 1e15)
-
-
-def off_scale(norms: np.ndarray) -> np.ndarray:
-    """Rows whose norm lies outside :data:`_PLAIN_SCALE` (or is not finite)."""
-    return np.asarray(~((norms >= _PLAIN_SCALE[0]) & (norms <= _PLAIN_SCALE[1])))
 
 
 def exact_pairs(
@@ -409,35 +280,35 @@ def _ranked(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def confirmation_bound(n: int, tables: int) -> int:
     """Most dot products a hashed search of ``n`` rows in ``tables`` tables computes.
 
-    A table puts every row in one bucket: a row of a bucket of at most ``_PAIRED`` rows takes
+    A table puts every row in one bucket: a row of a bucket of at most ``PAIRED`` rows takes
     part in at most 3 pairs, of at most ``BUCKET_CAP`` rows in at most ``BUCKET_CAP`` Gram
-    entries, of a larger (banded) bucket in at most ``_BAND``·``BUCKET_CAP``. The exact search
+    entries, of a larger (banded) bucket in at most ``BAND``·``BUCKET_CAP``. The exact search
     replaces this plan only when it needs fewer than ``BUCKET_DOT_COST`` times its dots."""
-    return int(max(1.0, BUCKET_DOT_COST) * _BAND * BUCKET_CAP * tables * n)
+    return int(max(1.0, BUCKET_DOT_COST) * BAND * BUCKET_CAP * tables * n)
 
 
 def _planned_dots(sizes: np.ndarray) -> int:
     """Dot products ``_bucket_hits`` will compute for buckets of these sizes."""
-    middle = sizes[(sizes > _PAIRED) & (sizes <= BUCKET_CAP)].astype(np.int64)
+    middle = sizes[(sizes > PAIRED) & (sizes <= BUCKET_CAP)].astype(np.int64)
     dense = sizes[sizes > BUCKET_CAP].astype(np.int64)
     return int((middle * middle).sum()) + sum(_band_dots(int(b)) for b in dense)
 
 
 def _band_dots(size: int) -> int:
     return sum(
-        min(BUCKET_CAP, size - s) * min(_BAND * BUCKET_CAP, size - s)
+        min(BUCKET_CAP, size - s) * min(BAND * BUCKET_CAP, size - s)
         for s in range(0, size, BUCKET_CAP)
     )
 
 
 def _small_pairs(bucket: np.ndarray, order: np.ndarray) -> np.ndarray:
-    """Codes ``i·n + k`` (i < k) of the pairs in buckets of at most ``_PAIRED`` rows
+    """Codes ``i·n + k`` (i < k) of the pairs in buckets of at most ``PAIRED`` rows
     (``order``: the rows sorted stably by bucket)."""
     n = bucket.size
     ranked = bucket[order]
-    small = (np.bincount(bucket) <= _PAIRED)[ranked]
+    small = (np.bincount(bucket) <= PAIRED)[ranked]
     codes: list[np.ndarray] = []
-    for offset in range(1, _PAIRED):  # pairs at distance ``offset`` in sorted order
+    for offset in range(1, PAIRED):  # pairs at distance ``offset`` in sorted order
         same = (ranked[offset:] == ranked[:-offset]) & small[offset:]
         a, b = order[:-offset][same], order[offset:][same]
         codes.append(np.minimum(a, b).astype(np.int64) * n + np.maximum(a, b))
@@ -453,7 +324,7 @@ def pair_hits(
     width = view.matrix.shape[1] + (0 if view.extra is None else 1)
     step = max(1, BLOCK_BYTES // (8 * width))
     rough = np.empty(codes.size, dtype=np.float32)
-    inverse = _inverse(view.norms)
+    inverse = inverse_norms(view.norms)
     odd = off_scale(view.norms)
     for start in range(0, codes.size, step):
         a, b = first[start : start + step], second[start : start + step]
@@ -465,86 +336,8 @@ def pair_hits(
             part[redo] = np.einsum("ij,ij->i", view.unit(a[redo]), view.unit(b[redo]))
         rough[start : start + step] = part
     tally.dots += int(codes.size)
-    keep = _passing(rough, threshold, negative)
+    keep = passing(rough, threshold, negative)
     return first[keep], second[keep], rough[keep]
-
-
-def _bucket_hits(
-    view: Rows, table: tuple[np.ndarray, np.ndarray], threshold: float, negative: bool, tally: Tally
-) -> tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]]:
-    """Pairs inside buckets of more than ``_PAIRED`` rows passing the float32 filter, with
-    their float32 cosines.
-
-    A bucket of up to ``BUCKET_CAP`` rows gets one Gram product; a bucket still larger (its
-    rows agree on every bit of the longest key) compares each run of ``BUCKET_CAP`` members
-    (in index order) with itself and the next ``_BAND`` − 1 runs, a band of its Gram matrix:
-    every pair of a bucket of up to ``_BAND``·``BUCKET_CAP`` rows, and beyond that every
-    member meets at least the (``_BAND`` − 1)·``BUCKET_CAP`` >= ``PARTNERS`` members that
-    follow it (all of its capped partners when the bucket is a cluster of copies).
-    ``table`` is :func:`_table_buckets`'s (bucket of every row, rows in bucket order)."""
-    bucket, order = table  # the order keeps each bucket's members in index order
-    sizes = np.bincount(bucket)
-    starts = np.r_[0, np.cumsum(sizes)[:-1]]
-    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
-    for number in np.flatnonzero((sizes > _PAIRED) & (sizes <= BUCKET_CAP)):
-        members = order[starts[number] : starts[number] + sizes[number]]
-        _block_hits(view, members, members, threshold, negative, tally, found)
-    for number in np.flatnonzero(sizes > BUCKET_CAP):
-        members = order[starts[number] : starts[number] + sizes[number]]
-        tally.banded += int(members.size)
-        for at in range(0, members.size, BUCKET_CAP):
-            _block_hits(
-                view,
-                members[at : at + BUCKET_CAP],
-                members[at : at + _BAND * BUCKET_CAP],
-                threshold,
-                negative,
-                tally,
-                found,
-            )
-    return found
-
-
-def _block_hits(
-    view: Rows,
-    rows: np.ndarray,
-    against: np.ndarray,
-    threshold: float,
-    negative: bool,
-    tally: Tally,
-    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]],
-) -> None:
-    """Pairs (rows[i], against[k]) with k > i (``against`` starts with ``rows``)."""
-    # Cosines from the raw rows' Gram matrix, scaled afterwards: b² multiplications instead of
-    # a normalised copy of every gathered row.
-    norms = view.norms[against]
-    if off_scale(norms).any():  # raw products would underflow or overflow float32
-        raw, inverse = view.unit(against), np.ones(against.size, np.float32)
-    else:
-        raw, inverse = view.take(against, np.float32), _inverse(norms)
-    gram = raw[: rows.size] @ raw.T
-    with np.errstate(invalid="ignore", over="ignore"):
-        gram *= inverse[: rows.size, None]
-        gram *= inverse[None, :]
-    tally.dots += int(gram.size)
-    tally.largest = max(tally.largest, rows.size)
-    # Flat positions split by divmod: ``nonzero`` of a 2-D mask is several times slower.
-    i, k = np.divmod(np.flatnonzero(_passing(gram, threshold, negative)), gram.shape[1])
-    later = k > i
-    i, k = i[later], k[later]
-    _keep(found, rows[i], against[k], gram[i, k])
-
-
-def _keep(
-    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]],
-    a: np.ndarray,
-    b: np.ndarray,
-    cos: np.ndarray,
-) -> None:
-    if a.size:
-        found[0].append(np.minimum(a, b))
-        found[1].append(np.maximum(a, b))
-        found[2].append(cos)
 
 
 def candidate_pairs(
@@ -582,12 +375,12 @@ def candidate_pairs(
         return (instead or exact_among)(view, members, threshold, negative, tally)
     tally.method = "hashed"
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
-    _keep(found, *pair_hits(view, paired, threshold, negative, tally))
+    keep(found, *pair_hits(view, paired, threshold, negative, tally))
     # Bucket products are small: OpenBLAS threads would cost more than they do (measured: a
     # 32-row bucket of width 1024 took 8.8 ms on two threads, 0.2 ms on one).
     with blas_threads(1):
         for bucket in buckets:
-            hits = _bucket_hits(view, bucket, threshold, negative, tally)
+            hits = bucket_hits(view, bucket, threshold, negative, tally)
             for into, part in zip(found, hits, strict=True):
                 into += part
     if not found[0]:

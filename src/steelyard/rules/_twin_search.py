@@ -23,17 +23,13 @@ import math
 import numpy as np
 
 from steelyard.rules._planes import gaussian_planes
+from steelyard.rules._rows import EMPTY, Rows, Tally, normalise, off_scale
 from steelyard.rules._similarity import (
     BUCKET_DOT_COST,
-    EMPTY,
-    Rows,
-    Tally,
     candidate_pairs,
     capped_settle,
     exact_among,
     exact_dots,
-    normalise,
-    off_scale,
     pair_hits,
 )
 

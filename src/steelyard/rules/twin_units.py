@@ -106,7 +106,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Activation, Layer, LayerKind, NormKind
-from steelyard.rules._similarity import Rows
+from steelyard.rules._rows import Rows
 from steelyard.rules._twin_search import similar_pairs
 from steelyard.rules.base import (
     AuditContext,

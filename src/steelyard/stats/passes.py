@@ -45,9 +45,9 @@ def row_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int] | None:
 
 
 def column_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int, int] | None:
-    """(weight tensor, first and last stored column) when ``layer``'s canonical matrix is a
-    run of its 2-D float weight tensor's columns, transposed (see :class:`ColumnSlice`), and
-    made from that tensor alone."""
+    """(weight tensor, first stored column, the column after the last) when ``layer``'s
+    canonical matrix is a run of its 2-D float weight tensor's columns, transposed (see
+    :class:`ColumnSlice`), and made from that tensor alone."""
     tensor = checkpoint.tensors.get(layer.weight)
     orient = layer.orient
     if tensor is None or tensor.read_span is None or not isinstance(orient, ColumnSlice):

@@ -152,3 +152,26 @@ def test_a_nan_in_a_transposed_weight_is_counted_and_reported(
     assert [(f.layer, f.evidence["nan"], f.evidence["first_positions"]) for f in found] == [
         ("w_in_out", 1, [[5, 13]])
     ]
+
+
+def test_external_data_that_shrinks_after_loading_fails_with_the_reason(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    """The data file loses its tail after the model was listed: a span read, the whole-tensor
+    read and the transposed read of a column-run layer all stop with the loader's reason
+    instead of returning short or stale values."""
+    from steelyard.errors import LoadError
+
+    path = _save(_model(rng), tmp_path, external=True)
+    checkpoint = load(path)
+    stats = LayerStats(checkpoint)
+    (layer,) = [x for x in checkpoint.layers if x.weight == "w_in_out"]
+    data = tmp_path / "model.onnx.data"
+    data.write_bytes(data.read_bytes()[:16])
+    tensor = checkpoint.tensors["w_in_out"]
+    with pytest.raises(LoadError, match="became shorter"):
+        tensor.read()
+    with pytest.raises(LoadError, match="became shorter"):
+        tensor.widen_part(0, tensor.size, np.zeros(tensor.size, np.float32))
+    with pytest.raises(LoadError, match="became shorter"):
+        stats.matrix(layer)

@@ -51,7 +51,7 @@ outputs against the float one.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -214,6 +214,62 @@ def measure(
     )
 
 
+def measure_blocks(
+    blocks: Callable[[], Iterator[tuple[int, int, np.ndarray]]],
+    shape: tuple[int, int],
+    sigma: float,
+    row_squares: np.ndarray,
+) -> EssentialWeights:
+    """:func:`measure` of a layer too large to hold in float32, read in one pass of row
+    blocks (:meth:`steelyard.stats.LayerStats.streamed`): each block is scanned for
+    candidates against its rows' limits while every row's and column's float64 sum of squares
+    accumulates, so nothing is read twice and nothing larger than a block is held. The
+    float64 column sums are added in another order than :func:`measure`'s (to the last bits)."""
+    units, fan_in = shape
+    if units < _MIN_SIDE or fan_in < _MIN_SIDE:
+        return _NONE
+    rows = np.asarray(row_squares, np.float64)
+    s2 = sigma * sigma
+    with np.errstate(over="ignore"):
+        row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    row_sums = np.zeros(units)
+    column_sums = np.zeros(fan_in)
+    found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
+    for first, end, block in blocks():
+        for a, b in row_blocks(end - first, fan_in, _SCAN_BYTES):
+            part = block[a:b]
+            wide = part.astype(np.float64)
+            row_sums[first + a : first + b] = np.einsum("ij,ij->i", wide, wide)
+            column_sums += np.einsum("ij,ij->j", wide, wide)
+            hits = np.abs(part) > row_limit[first + a : first + b, None]
+            uu, kk = np.divmod(np.flatnonzero(hits), fan_in)
+            if uu.size:
+                found[0].append(uu + first + a)
+                found[1].append(kk)
+                found[2].append(part[uu, kk])
+    if not found[0]:
+        return _NONE
+    u, k, values = (np.concatenate(part) for part in found)
+    w2 = np.square(values.astype(np.float64))
+    keep = (w2 * (fan_in - 1 + s2) >= s2 * rows[u]) & (w2 * (units - 1 + s2) >= s2 * column_sums[k])
+    keep &= np.isfinite(w2) & (w2 > 0)
+    u, k, w2, values = u[keep], k[keep], w2[keep], values[keep]
+    if u.size == 0:
+        return _NONE
+    row_rms = np.sqrt(np.maximum(row_sums[u] - w2, 0.0) / (fan_in - 1))
+    col_rms = np.sqrt(np.maximum(column_sums[k] - w2, 0.0) / (units - 1))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        extremity = np.sqrt(w2) / np.maximum(row_rms, col_rms)
+    order = np.lexsort((k, u, -extremity))
+    return EssentialWeights(
+        u[order].astype(np.int64),
+        k[order].astype(np.int64),
+        values[order].astype(np.float64),
+        row_rms[order],
+        col_rms[order],
+    )
+
+
 def essential_weights(
     ctx: AuditContext,
     layer: Layer,
@@ -225,10 +281,15 @@ def essential_weights(
     if layer.kind not in _KINDS:
         return _NONE
     sigma = (settings or RuleSettings(RULE, ctx.policy)).for_layer(layer).sigma
-    return ctx.stats.shared(
-        f"{RULE.name}:{layer.name}:{sigma!r}",
-        lambda: measure(ctx.stats.matrix(layer), sigma, np.square(ctx.stats.row_norms(layer))),
-    )
+
+    def measured() -> EssentialWeights:
+        squares = np.square(ctx.stats.row_norms(layer))
+        streamed = ctx.stats.streamed(layer)
+        if streamed is not None:  # a table too large to cache: one pass, never assembled
+            return measure_blocks(streamed, (layer.units, layer.fan_in), sigma, squares)
+        return measure(ctx.stats.matrix(layer), sigma, squares)
+
+    return ctx.stats.shared(f"{RULE.name}:{layer.name}:{sigma!r}", measured)
 
 
 def check_layer(

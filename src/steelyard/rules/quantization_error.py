@@ -97,7 +97,7 @@ from __future__ import annotations
 
 import functools
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -120,6 +120,8 @@ from steelyard.stats.numerics import median_of, sums_of_squares
 from steelyard.streaming import row_blocks
 
 _BLOCK_BYTES = 2**18
+#: One pass over a layer too large to cache: float32 row blocks ``(first row, end row, block)``.
+Blocks = Callable[[], Iterator[tuple[int, int, np.ndarray]]]
 """Row blocks this small keep a block's several temporaries in the cache."""
 SCHEME = (
     "round-to-nearest, symmetric absmax scales: int8 per output channel (levels ±127), "
@@ -216,12 +218,13 @@ def sampled_rows(units: int, fan_in: int, budget: int, seed: int = 0) -> np.ndar
 
 
 def rtn_errors(
-    matrix: np.ndarray, group_size: int, rows: np.ndarray | None = None
+    matrix: np.ndarray, group_size: int, rows: np.ndarray | None = None, picked: bool = False
 ) -> tuple[RtnError, RtnError, float]:
     """(int8 per channel, int4 per group, int4 balanced error) of round-to-nearest on
     ``W[units, fan_in]``, as defined on this rule's page, over ``rows`` (default: all; the
-    worst channel is then the worst measured one), in cache-sized row blocks."""
-    if rows is not None:
+    worst channel is then the worst measured one), in cache-sized row blocks. ``picked``:
+    ``matrix`` already holds just those rows."""
+    if rows is not None and not picked:
         matrix = np.asarray(matrix, dtype=np.float32)[rows]
     units, fan_in = matrix.shape
     norms = np.zeros(units, np.float64)
@@ -276,24 +279,38 @@ def _on_grid(rows: np.ndarray, block: int, levels: float) -> bool:
     return float(np.max(np.abs(steps - np.rint(steps)), initial=0.0)) <= 1e-3
 
 
-def stored_grid(matrix: np.ndarray) -> str | None:
+def stored_grid(matrix: np.ndarray | Blocks) -> str | None:
     """The GGUF-style symmetric block grid every weight lies on (``W/(absmax/L)`` an integer
-    in each block of 32 along the input, to float32 rounding), or None.
+    in each block of 32 along the input, to float32 rounding), or None; of a matrix, or of
+    a layer read by passes of row blocks (:meth:`steelyard.stats.LayerStats.streamed`).
 
     Checked in cache-sized row blocks, stopping at the first block off the grid: weights
     stored as floats fail on the first one (a 330M-parameter F16 file: 4.8 s for the two
     grids over whole matrices, about 1 ms per layer this way)."""
-    units, fan_in = matrix.shape
     for name, block, levels in _GRIDS:
-        if fan_in % block:
-            continue
-        spans = row_blocks(units, fan_in, _BLOCK_BYTES)
-        if all(_on_grid(matrix[a:b], block, levels) for a, b in spans):
+        if all(
+            rows is not None and _on_grid(rows, block, levels)
+            for rows in _grid_parts(matrix, block)
+        ):
             return name
     return None
 
 
-def quantized_kind(ctx: AuditContext, layer: Layer, matrix: np.ndarray | None) -> str | None:
+def _grid_parts(matrix: np.ndarray | Blocks, block: int) -> Iterator[np.ndarray | None]:
+    """Cache-sized row blocks of ``matrix``; None when its width is no multiple of the
+    grid's block (it then lies on no such grid)."""
+    parts = [(0, 0, matrix)] if isinstance(matrix, np.ndarray) else matrix()
+    for _first, _end, rows in parts:
+        if rows.shape[1] % block:
+            yield None
+            return
+        for a, b in row_blocks(rows.shape[0], rows.shape[1], _BLOCK_BYTES):
+            yield rows[a:b]
+
+
+def quantized_kind(
+    ctx: AuditContext, layer: Layer, matrix: np.ndarray | Blocks | None
+) -> str | None:
     """How ``layer``'s weights are already stored quantized, or None when they are float."""
     tensor = ctx.checkpoint.tensors.get(layer.weight)
     if tensor is not None:
@@ -330,9 +347,12 @@ def check_layer(
     if layer.kind is LayerKind.RECURRENT or layer.units < 1 or layer.fan_in < 1:
         return
     limits = settings.for_layer(layer)
-    matrix = ctx.stats.matrix(layer)
+    # A table too large to cache is read by passes (the grid check) and its sampled rows
+    # gathered from one, never assembled whole in float32.
+    streamed = ctx.stats.streamed(layer)
+    matrix = ctx.stats.matrix(layer) if streamed is None else None
     row: dict[str, Any] = {"layer": layer.name, "shape": [layer.units, layer.fan_in]}
-    kind = quantized_kind(ctx, layer, matrix)
+    kind = quantized_kind(ctx, layer, matrix if streamed is None else streamed)
     if kind is not None:
         row.update(stored=kind, error_paid=None)
         ctx.notes.add(
@@ -346,7 +366,13 @@ def check_layer(
         return
     else:
         rows = sampled_rows(layer.units, layer.fan_in, limits.sample_elements)
-        int8, int4, balanced = rtn_errors(matrix, max(1, limits.group_size), rows)
+        group = max(1, limits.group_size)
+        if matrix is not None:
+            int8, int4, balanced = rtn_errors(matrix, group, rows)
+        elif rows is None:  # every row is measured: the table in one piece after all
+            int8, int4, balanced = rtn_errors(ctx.stats.matrix(layer), group)
+        else:
+            int8, int4, balanced = rtn_errors(ctx.stats.picked(layer, rows), group, rows, picked=True)
         row.update(
             int8_error=int8.relative,
             int8_worst_channel_error=int8.worst,

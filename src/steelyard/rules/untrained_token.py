@@ -19,8 +19,9 @@ singular vectors ``v_1..v_k`` of the centred matrix, each token is tested, first
 2. **at the mean**: ``‖c_i‖ ≤ mean-distance × median_i ‖c_i‖`` (mean-distance 0.05): a row left where
    resizing the vocabulary with mean initialisation put it;
 3. **identical rows**: rows bit-for-bit equal to another token's row (candidates are rows
-   whose norms agree to float32 rounding, each confirmed exactly): two tokens that were never
-   trained apart;
+   whose norms agree to float32 rounding, each confirmed exactly; in a table too large to
+   cache, which is read by passes of row blocks and never assembled, by equal BLAKE3 digests
+   of the two rows' bytes): two tokens that were never trained apart;
 4. **under-trained (low residual)**: ``r_i ≤ residual-share × median_i r_i``
    (residual-share 0.5), where ``r_i = ‖c_i − Σ_k (c_i·v_k) v_k‖`` is what is left of the
    row once the mean and the principal direction(s) shared by all rows are removed.
@@ -65,7 +66,7 @@ from __future__ import annotations
 import json
 import math
 import re
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -326,6 +327,69 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     return TokenRows(norms, np.sqrt(c2), residuals, duplicates)
 
 
+def measure_blocks(
+    blocks: Callable[[], Iterator[tuple[int, int, np.ndarray]]],
+    shape: tuple[int, int],
+    k: int,
+    row_squares: np.ndarray,
+) -> TokenRows:
+    """:func:`measure` of a token table too large to hold in float32, read in two passes of
+    row blocks (:meth:`steelyard.stats.LayerStats.streamed`): the first sums the mean row,
+    picks the sampled rows and digests the rows that may be duplicates, the second makes the
+    products with the mean and the principal directions. The mean is summed block by block
+    (float32 products added in float64), so lengths agree with :func:`measure`'s to float32
+    summation order. Candidate duplicates are confirmed by equal BLAKE3 digests of their
+    bytes (a 256-bit digest: a false match is as likely as a collision of the hash) instead
+    of a byte comparison, which would need both rows at once."""
+    import blake3
+
+    rows, width = shape
+    squares = np.asarray(row_squares, np.float64)
+    largest = math.sqrt(float(np.max(squares))) if squares.size else 0.0
+    scale = power_of_two_toward_one(largest, 2.0**40)  # as in measure
+    squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
+    sample_rows = np.arange(rows) if rows <= _SAMPLE else np.sort(
+        np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False)
+    )
+    norms = np.sqrt(squares)
+    order = _stable_order(norms)
+    ordered = norms[order]
+    close = np.flatnonzero(np.diff(ordered) <= 2e-7 * np.maximum(ordered[1:], 1e-30))
+    first, second = order[close], order[close + 1]
+    candidates = np.unique(np.concatenate((first, second)))
+    digests = np.empty(candidates.size, dtype="S32")
+    total = np.zeros(width, np.float64)
+    centred = np.empty((sample_rows.size, width), np.float32)
+    for a, b, block in blocks():
+        at_scale = block if scale == 1.0 else times_exactly(block, scale)
+        total += (np.ones(b - a, np.float32) @ at_scale).astype(np.float64)
+        lo, hi = np.searchsorted(sample_rows, (a, b))
+        centred[lo:hi] = at_scale[sample_rows[lo:hi] - a]
+        lo, hi = np.searchsorted(candidates, (a, b))
+        for at in range(lo, hi):  # the stored rows' bits, as measure compares them
+            digests[at] = blake3.blake3(block[candidates[at] - a].tobytes()).digest()
+    mean = total / max(1, rows)
+    centred -= mean.astype(np.float32)
+    directions = principal_directions(centred, k)
+    probes = np.vstack([mean[None, :], directions]).astype(np.float32)
+    products32 = np.empty((rows, probes.shape[0]), np.float32)
+    for a, b, block in blocks():
+        at_scale = block if scale == 1.0 else times_exactly(block, scale)
+        products32[a:b] = _products(at_scale, probes)
+    products = products32.astype(np.float64)
+    c2 = np.maximum(squares_at_scale - 2.0 * products[:, 0] + float(mean @ mean), 0.0)
+    projected = products[:, 1:] - (directions @ mean)[None, :]
+    residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
+    if scale != 1.0:
+        c2 /= scale * scale
+        residuals /= scale
+    duplicates = np.zeros(rows, dtype=bool)
+    same = digests[np.searchsorted(candidates, first)] == digests[np.searchsorted(candidates, second)]
+    duplicates[first[same]] = True
+    duplicates[second[same]] = True
+    return TokenRows(norms, np.sqrt(c2), residuals, duplicates)
+
+
 def _classify(found: TokenRows, limits: UntrainedTokenSettings) -> dict[int, tuple[str, float]]:
     """Token → (test, residual ratio) for every flagged token."""
     out: dict[int, tuple[str, float]] = {}
@@ -354,11 +418,16 @@ def check_layer(
     if role is None or layer.units < 4:
         return
     limits = settings.for_layer(layer)
-    matrix = ctx.stats.matrix(layer)
-    if not np.isfinite(ctx.stats.row_norms(layer)).all():
+    norms = ctx.stats.row_norms(layer)
+    if not np.isfinite(norms).all():
         ctx.notes.add(RULE.name, "not judged: the token matrix holds NaN or Inf", layer.name)
         return
-    found = measure(matrix, limits.principal_directions, np.square(ctx.stats.row_norms(layer)))
+    k, squares = limits.principal_directions, np.square(norms)
+    streamed = ctx.stats.streamed(layer)  # a table too large to cache is never assembled
+    if streamed is not None:
+        found = measure_blocks(streamed, (layer.units, layer.fan_in), k, squares)
+    else:
+        found = measure(ctx.stats.matrix(layer), k, squares)
     flagged = _classify(found, limits)
     if not flagged:
         return

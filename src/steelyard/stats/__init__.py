@@ -42,7 +42,7 @@ read under one lock (:data:`.reading.READ_LOCK`), which gradient support takes t
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from typing import TypeVar
 
 import numpy as np
@@ -114,6 +114,20 @@ class LayerStats:
     def matrix(self, layer: Layer) -> np.ndarray:
         """Canonical ``W[units, fan_in]`` as float32 (read once while it fits the cache)."""
         return self._passes.matrix(layer)
+
+    def streamed(self, layer: Layer) -> Callable[[], Iterator[tuple[int, int, np.ndarray]]] | None:
+        """For a layer too large to cache whose loader streams it (a large token table): a
+        function that reads it again, one pass of float32 row blocks ``(first row, end row,
+        block)`` per call, in one reused buffer (copy what you keep). None when
+        :meth:`matrix` holds the layer or would assemble it anyway: use that instead. Rules
+        that need every weight of such a layer read it this way, so that no rule holds a
+        whole table in float32 (a 128,256 × 4,096 vocabulary would take 2.1 GB)."""
+        return self._passes.streamed(layer)
+
+    def picked(self, layer: Layer, index: np.ndarray) -> np.ndarray:
+        """The rows at ``index`` (sorted, distinct) of ``W[units, fan_in]`` as contiguous
+        float32; gathered from one streamed pass when the layer is too large to cache."""
+        return self._passes.picked(layer, index)
 
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
         """Rows ``start``, ``start + step``, … of ``W[units, fan_in]`` as contiguous float32.

@@ -11,7 +11,7 @@ only streamed, and read whole again only when a rule asks for the full matrix.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -153,6 +153,32 @@ class WeightPasses:
             lo, hi = np.searchsorted(positions, (a * fan_in, b * fan_in))
             picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
         return sorted_wide(picked)
+
+    def streamed(self, layer: Layer) -> Callable[[], Iterator[Block]] | None:
+        """See :meth:`steelyard.stats.LayerStats.streamed`."""
+        source = self.streamable(layer)
+        units, fan_in = layer.units, layer.fan_in
+        if source is None or 4 * units * fan_in <= self.stream_bytes:
+            return None
+        if self.cache.get(("matrix", layer.name)) is not None:
+            return None
+
+        def blocks() -> Iterator[Block]:
+            scratch = np.empty(0, dtype=np.float32)
+            yield from self._stream_rows(source, units, fan_in, None, scratch, None)
+
+        return blocks
+
+    def picked(self, layer: Layer, index: np.ndarray) -> np.ndarray:
+        """See :meth:`steelyard.stats.LayerStats.picked`."""
+        blocks = self.streamed(layer)
+        if blocks is None:
+            return np.ascontiguousarray(self.matrix(layer)[index])
+        out = np.empty((index.size, layer.fan_in), dtype=np.float32)
+        for a, b, block in blocks():
+            lo, hi = np.searchsorted(index, (a, b))
+            out[lo:hi] = block[index[lo:hi] - a]
+        return out
 
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
         """See :meth:`steelyard.stats.LayerStats.rows`."""

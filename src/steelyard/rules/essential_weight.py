@@ -200,6 +200,21 @@ def measure(
     found_columns, column_of = np.unique(k, return_inverse=True)
     row_sums = _squares_f64(block, found_rows, None)[row_of]
     column_sums = _squares_f64(block, None, found_columns)[column_of]
+    return _ranked(u, k, block[u, k], w2, row_sums, column_sums, (units, fan_in))
+
+
+def _ranked(
+    u: np.ndarray,
+    k: np.ndarray,
+    values: np.ndarray,
+    w2: np.ndarray,
+    row_sums: np.ndarray,
+    column_sums: np.ndarray,
+    shape: tuple[int, int],
+) -> EssentialWeights:
+    """The found weights (unit, input, value, w², the float64 sums of squares of each one's
+    row and column) with their rows' and columns' RMS without them, most extreme first."""
+    units, fan_in = shape
     row_rms = np.sqrt(np.maximum(row_sums - w2, 0.0) / (fan_in - 1))
     col_rms = np.sqrt(np.maximum(column_sums - w2, 0.0) / (units - 1))
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -208,7 +223,7 @@ def measure(
     return EssentialWeights(
         u[order].astype(np.int64),
         k[order].astype(np.int64),
-        block[u[order], k[order]].astype(np.float64),
+        values[order].astype(np.float64),
         row_rms[order],
         col_rms[order],
     )
@@ -256,18 +271,7 @@ def measure_blocks(
     u, k, w2, values = u[keep], k[keep], w2[keep], values[keep]
     if u.size == 0:
         return _NONE
-    row_rms = np.sqrt(np.maximum(row_sums[u] - w2, 0.0) / (fan_in - 1))
-    col_rms = np.sqrt(np.maximum(column_sums[k] - w2, 0.0) / (units - 1))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        extremity = np.sqrt(w2) / np.maximum(row_rms, col_rms)
-    order = np.lexsort((k, u, -extremity))
-    return EssentialWeights(
-        u[order].astype(np.int64),
-        k[order].astype(np.int64),
-        values[order].astype(np.float64),
-        row_rms[order],
-        col_rms[order],
-    )
+    return _ranked(u, k, values, w2, row_sums[u], column_sums[k], shape)
 
 
 def essential_weights(

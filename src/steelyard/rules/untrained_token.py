@@ -299,14 +299,7 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     directions = principal_directions(centred, k)
     probes = np.vstack([mean[None, :], directions]).astype(np.float32)
     products = _products(block, probes).astype(np.float64)
-    mean_dot = products[:, 0]
-    mean_sq = float(mean @ mean)
-    c2 = np.maximum(squares_at_scale - 2.0 * mean_dot + mean_sq, 0.0)
-    projected = products[:, 1:] - (directions @ mean)[None, :]
-    residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
-    if scale != 1.0:
-        c2 /= scale * scale
-        residuals /= scale
+    c2, residuals = _lengths(products, mean, directions, squares_at_scale, scale)
     block = original  # duplicates are the stored rows' bits
     norms = np.sqrt(squares)
     # Identical rows have equal norms up to the summation order: candidates are neighbours in
@@ -325,6 +318,24 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
         duplicates[first[same]] = True
         duplicates[second[same]] = True
     return TokenRows(norms, np.sqrt(c2), residuals, duplicates)
+
+
+def _lengths(
+    products: np.ndarray,
+    mean: np.ndarray,
+    directions: np.ndarray,
+    squares: np.ndarray,
+    scale: float,
+) -> tuple[np.ndarray, np.ndarray]:
+    """(‖c_i‖², r_i) from the rows' products with ``[μ, v_1..v_k]`` (float64) and their sums
+    of squares, at ``scale``; returned at the table's own scale."""
+    c2 = np.maximum(squares - 2.0 * products[:, 0] + float(mean @ mean), 0.0)
+    projected = products[:, 1:] - (directions @ mean)[None, :]
+    residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
+    if scale != 1.0:
+        c2 /= scale * scale
+        residuals /= scale
+    return c2, residuals
 
 
 def measure_blocks(
@@ -377,12 +388,7 @@ def measure_blocks(
         at_scale = block if scale == 1.0 else times_exactly(block, scale)
         products32[a:b] = _products(at_scale, probes)
     products = products32.astype(np.float64)
-    c2 = np.maximum(squares_at_scale - 2.0 * products[:, 0] + float(mean @ mean), 0.0)
-    projected = products[:, 1:] - (directions @ mean)[None, :]
-    residuals = np.sqrt(np.maximum(c2 - np.einsum("ij,ij->i", projected, projected), 0.0))
-    if scale != 1.0:
-        c2 /= scale * scale
-        residuals /= scale
+    c2, residuals = _lengths(products, mean, directions, squares_at_scale, scale)
     duplicates = np.zeros(rows, dtype=bool)
     same = digests[np.searchsorted(candidates, first)] == digests[np.searchsorted(candidates, second)]
     duplicates[first[same]] = True

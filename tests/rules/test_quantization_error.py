@@ -173,6 +173,32 @@ def test_a_grid_is_checked_in_every_row_block(row: int) -> None:
     assert stored_grid(moved) is None
 
 
+def test_a_grid_is_checked_on_a_streamed_layer() -> None:
+    """The same check over passes of row blocks (a table too large to cache): gguf's Q8_0
+    grid recognised, one weight off it in the last block not, and rows whose width is no
+    multiple of 32 on no grid."""
+    gguf = pytest.importorskip("gguf")
+    from gguf.quants import dequantize, quantize
+
+    kind = gguf.GGMLQuantizationType.Q8_0
+    matrix = np.random.default_rng(3).standard_normal((1500, 64)).astype(np.float32)
+    stored = dequantize(quantize(matrix, kind), kind).reshape(matrix.shape).astype(np.float32)
+
+    def passes(table: np.ndarray):  # type: ignore[no-untyped-def]
+        def blocks():  # type: ignore[no-untyped-def]
+            for a in range(0, table.shape[0], 400):
+                yield a, min(a + 400, table.shape[0]), table[a : a + 400].copy()
+
+        return blocks
+
+    assert stored_grid(passes(stored)) == "Q8_0-like (8-bit blocks of 32)"
+    moved = stored.copy()
+    step = np.abs(moved[1499, 32:64]).max() / 127
+    moved[1499, 32 + int(np.argmin(np.abs(moved[1499, 32:64])))] += 0.5 * step
+    assert stored_grid(passes(moved)) is None
+    assert stored_grid(passes(stored[:, :48])) is None
+
+
 def test_quantized_gguf_layers_report_that_the_error_paid_cannot_be_measured(tmp_path: Path) -> None:
     pytest.importorskip("gguf")
     source = FIXTURES / "gguf" / "tiny-llama.gguf"

@@ -119,7 +119,8 @@ def test_views_and_shared_storages() -> None:
     np.testing.assert_array_equal(
         checkpoint.tensors["emb.weight"].read(), checkpoint.tensors["head.weight"].read()
     )
-    # Stored members are viewed in place, never copied or written.
+    # Stored tensors are read-only to the rules (a contiguous one is read by a positioned
+    # read into a fresh array, a view of a storage through the map).
     assert not checkpoint.tensors["base"].read().flags.writeable
 
 
@@ -889,3 +890,38 @@ def test_a_repeated_prefix_is_stripped_with_one_note(tmp_path: Path) -> None:
     checkpoint = load(_archive(tmp_path / "p.pt", data, {"0": _floats(np.ones(4))}))
     assert list(checkpoint.tensors) == ["fc.weight"]
     assert "the 'module.' prefix was stripped from every tensor name (3 times)" in checkpoint.notes
+
+
+@pytest.mark.parametrize(
+    "name",
+    [
+        "mlp_state_dict.pt", "views_shared.pt", "mlp_bf16.pt", "mlp_fp16.pt", "fp8_mixed.pt",
+        "legacy_mlp.pt", "cnn_bn_state_dict.pt", "ts_cnn.pt",
+    ],
+)
+def test_spans_of_contiguous_tensors(name: str) -> None:
+    """Tensors that are C-ordered runs of a storage stored as-is get read_span (and
+    fill_span for native float32), by positioned reads; strided views and storages that are
+    not spans do not. Reference: the tensors' whole reads, which test_tensors_match_torch and
+    the tests above check against torch's own values."""
+    checkpoint = load(TORCH / name)
+    spanned = 0
+    for key, tensor in checkpoint.tensors.items():
+        whole = np.asarray(tensor.read())
+        if tensor.read_span is None:
+            continue
+        spanned += 1
+        assert whole.flags.c_contiguous or whole.size <= 1, key
+        flat = whole.reshape(-1)
+        for start, stop in ((0, 1), (1, flat.size), (flat.size // 3, flat.size // 2), (0, flat.size)):
+            got = tensor.read_span(start, stop)
+            assert got.dtype == flat.dtype, key
+            assert got.tobytes() == flat[start:stop].tobytes(), (key, start, stop)
+        if tensor.dtype in ("f32", "f16", "bf16", "f64"):
+            into = np.full((1, flat.size), -9.0, np.float32)
+            tensor.widen_part(0, flat.size, into)
+            np.testing.assert_array_equal(into[0], flat.astype(np.float32), err_msg=key)
+    assert spanned > 0
+    if name == "views_shared.pt":
+        assert checkpoint.tensors["base_t"].read_span is None  # a transposed view
+        assert checkpoint.tensors["col"].read_span is None  # a strided column

@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 from safetensors.numpy import save_file
 
+from steelyard import tiled_copy
 from steelyard.loaders import load
 from steelyard.transformer.model import AttentionBlock
 
@@ -249,7 +250,7 @@ def test_other_families(tmp_path: Path, names: dict[str, tuple[int, int, int]], 
     assert found == {prefix[:-1]: (heads, dim) for prefix, (heads, dim, _) in names.items()}
 
 
-def test_stacked_experts_stored_in_out(tmp_path: Path) -> None:
+def test_stacked_experts_stored_in_out(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     # GPT-OSS stores gate_up_proj as [experts, in, out] with a bias [experts, out] (its
     # modeling code multiplies x @ gate_up_proj[e]; cited from memory): the partner shapes
     # (gate_up [E, d, 2I], down [E, I, d]) tell the orientation.
@@ -271,6 +272,13 @@ def test_stacked_experts_stored_in_out(tmp_path: Path) -> None:
     assert np.array_equal(layer.bias_vector(), tensors["model.layers.0.mlp.experts.gate_up_proj_bias"][1])  # type: ignore[arg-type]
     down = checkpoint.layer("model.layers.0.mlp.experts.2.down_proj")
     assert down is not None and (down.units, down.fan_in) == (width, inner)
+    # Each expert is read by its stored rows, slab by slab, and transposed into place: with a
+    # budget of two stored rows per slab the values are still the stored ones, every expert.
+    monkeypatch.setattr(tiled_copy, "SLAB_BYTES", 2 * 4 * 2 * inner)
+    stack = tensors["model.layers.0.mlp.experts.gate_up_proj"]
+    for expert in range(experts):
+        sliced = checkpoint.layer(f"model.layers.0.mlp.experts.{expert}.gate_up_proj")
+        assert sliced is not None and np.array_equal(sliced.matrix(), stack[expert].T)
     block = checkpoint.transformer.experts[0]  # type: ignore[union-attr]
     assert block.router == "model.layers.0.mlp.router" and len(block.experts) == experts
 

@@ -20,7 +20,7 @@ import numpy as np
 from steelyard.graph import Activation, Layer, LayerKind, Tensor, TensorRole
 from steelyard.loaders.layer_parts import layer_geometry, make_layer, weight_source
 from steelyard.streaming import float32_from_parts
-from steelyard.tiled_copy import contiguous
+from steelyard.tiled_copy import contiguous, transposed_from_parts
 
 _LEAVES = ("gate_up_proj", "gate_proj", "up_proj", "down_proj")
 #: Stacks with more experts than this are left whole (real models have up to ~512).
@@ -61,9 +61,13 @@ class _Read:
         tensor = self.tensor
         if tensor.read_span is not None:
             first = self.expert * shape[0] * shape[1]
-            block = float32_from_parts(
-                lambda a, b, into: tensor.widen_part(first + a, first + b, into), (shape[0], shape[1])
-            )
+
+            def widen(a: int, b: int, into: np.ndarray) -> None:
+                tensor.widen_part(first + a, first + b, into)
+
+            if self.transposed:  # [in, out]: read by stored rows, each slab transposed in place
+                return transposed_from_parts(widen, (shape[0], shape[1]), 0, shape[1])
+            block = float32_from_parts(widen, (shape[0], shape[1]))
         else:
             block = self.tensor.read_float32()[self.expert]
         return contiguous(block.T) if self.transposed else block

@@ -90,6 +90,25 @@ def float32_tensor(
     )
 
 
+def read_exactly(path: Path, offset: int, out: np.ndarray, short: str) -> None:
+    """Fill the C-contiguous ``out`` with the bytes at ``offset`` of ``path``; a file that
+    ends first raises ``LoadError(path, short)``.
+
+    Positioned reads into the caller's array rather than a memory map: mapped pages that were
+    read stay in the process's resident set until the kernel needs them back, so a map of a
+    3 GB checkpoint ends up counted as 3 GB however carefully it is streamed. A private file
+    object per call keeps concurrent reads from several threads safe."""
+    view = out.reshape(-1).view(np.uint8).data
+    with open(path, "rb", buffering=0) as handle:
+        handle.seek(offset)
+        done = 0
+        while done < view.nbytes:
+            got = handle.readinto(view[done:])
+            if not got:
+                raise LoadError(path, short)
+            done += got
+
+
 def inside(folder: Path, relative: str, source: Path) -> Path:
     """Resolve ``relative`` strictly inside ``folder``, or refuse.
 

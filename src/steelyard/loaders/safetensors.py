@@ -19,7 +19,7 @@ import numpy as np
 from steelyard.dtypes import ALL_DTYPES, FLOAT_DTYPES, itemsize_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
-from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json
+from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json, read_exactly
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
 
 #: safetensors dtype tag → our short name.
@@ -132,24 +132,10 @@ class _Shard:
             )
 
     def _read_into(self, buffer: np.ndarray, offset: int) -> np.ndarray:
-        """Fill ``buffer`` with the bytes at ``offset`` of the data section.
-
-        Positional reads into a fresh array rather than a memory map: mapped pages that were
-        read stay in the process's resident set until the kernel needs them back, so a
-        map of a 3 GB checkpoint ends up counted as 3 GB however carefully it is streamed.
-        A private file object per call keeps concurrent reads from several threads safe.
-        """
-        view = buffer.reshape(-1).view(np.uint8).data
-        with open(self.path, "rb", buffering=0) as handle:
-            handle.seek(self.data_start + offset)
-            done = 0
-            while done < view.nbytes:
-                got = handle.readinto(view[done:])
-                if not got:
-                    raise LoadError(
-                        self.path, "ended before the tensor data its header describes (truncated?)"
-                    )
-                done += got
+        """Fill ``buffer`` with the bytes at ``offset`` of the data section (positioned reads,
+        :func:`steelyard.loaders.base.read_exactly`)."""
+        short = "ended before the tensor data its header describes (truncated?)"
+        read_exactly(self.path, self.data_start + offset, buffer, short)
         return buffer
 
     # The numpy dtype is looked up when a tensor is read, not when it is listed: a bf16 or fp8

@@ -22,7 +22,7 @@ from steelyard import budget
 from steelyard.dtypes import FLOAT_DTYPES
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
-from steelyard.loaders.base import float32_tensor
+from steelyard.loaders.base import float32_tensor, read_exactly
 from steelyard.loaders.conventions import role_for
 from steelyard.loaders.gguf.header import Header, TensorInfo
 
@@ -78,15 +78,8 @@ class DataFile:
         positional reads (not a memory map) keep pages that were read out of the resident set.
         """
         buffer = np.empty(count, dtype=np.uint8)
-        view = buffer.data
-        with open(self.path, "rb", buffering=0) as handle:
-            handle.seek(self.start + offset)
-            done = 0
-            while done < count:
-                got = handle.readinto(view[done:])
-                if not got:
-                    raise LoadError(self.path, "ended before the tensor data its header describes")
-                done += got
+        short = "ended before the tensor data its header describes"
+        read_exactly(self.path, self.start + offset, buffer, short)
         return buffer
 
 

@@ -11,7 +11,7 @@ import numpy as np
 
 from steelyard import budget
 from steelyard.errors import LoadError
-from steelyard.loaders.base import file_size, inside
+from steelyard.loaders.base import file_size, inside, read_exactly
 
 
 class FileBytes:
@@ -44,16 +44,8 @@ class FileBytes:
 
     def read_into(self, target: Path, offset: int, array: np.ndarray) -> None:
         """Fill the C-contiguous ``array`` with the bytes at ``offset`` of ``target``."""
-        into = array.reshape(-1).view(np.uint8).data
         try:
-            with open(target, "rb", buffering=0) as handle:
-                handle.seek(offset)
-                done = 0
-                while done < into.nbytes:
-                    got = handle.readinto(into[done:])
-                    if not got:
-                        raise LoadError(target, "became shorter after it was opened")
-                    done += got
+            read_exactly(target, offset, array, "became shorter after it was opened")
         except OSError as exc:
             raise LoadError(target, f"cannot be read ({exc})") from None
 

@@ -32,7 +32,13 @@ from steelyard import budget
 from steelyard.dtypes import ALL_DTYPES, is_float_name
 from steelyard.errors import LoadError
 from steelyard.graph import Tensor, TensorRole
-from steelyard.loaders.base import file_size, member_expansion, read_zip_member, spill_member
+from steelyard.loaders.base import (
+    file_size,
+    member_expansion,
+    read_exactly,
+    read_zip_member,
+    spill_member,
+)
 from steelyard.loaders.conventions import role_for
 from steelyard.loaders.pytorch.stand_ins import StorageRef, TensorRef, Unsupported
 from steelyard.loaders.pytorch.unpickler import parse_storage_id
@@ -78,27 +84,14 @@ class StorageSource:
 
     def read_into(self, key: str, start: int, out: np.ndarray) -> None:
         """Fill the C-contiguous ``out`` with the bytes from ``start`` of a storage stored as
-        a span of the file, by a positioned read into it.
-
-        Positioned reads rather than the memory map: mapped pages stay in the process's
-        resident set once touched, so a map of a 1 GB checkpoint ends up counted as 1 GB
-        however the audit streams it. A private file object per call keeps concurrent reads
-        from several threads safe."""
+        a span of the file, by a positioned read into it (not the memory map, whose touched
+        pages stay in the resident set: :func:`steelyard.loaders.base.read_exactly`)."""
         offset, length = self.spans[key]
-        into = out.reshape(-1).view(np.uint8).data
-        if start < 0 or start + into.nbytes > length:
+        if start < 0 or start + out.nbytes > length:
             raise LoadError(self.path, f"a read of storage {key!r} would leave the storage")
         try:
-            with open(self.path, "rb", buffering=0) as handle:
-                handle.seek(offset + start)
-                done = 0
-                while done < into.nbytes:
-                    got = handle.readinto(into[done:])
-                    if not got:
-                        raise LoadError(
-                            self.path, f"storage {key!r} now lies past the end of the file"
-                        )
-                    done += got
+            short = f"storage {key!r} now lies past the end of the file"
+            read_exactly(self.path, offset + start, out, short)
         except OSError as exc:
             raise LoadError(self.path, f"cannot be read ({exc})") from None
 

@@ -266,7 +266,7 @@ def make_tensor(
         shape=ref.size,
         dtype=ref.dtype,
         role=role if role is not None else role_for(name, is_float),
-        reader=_reader(ref, dtype, total, source, order),
+        reader=_reader(ref, dtype, total, source, order, None if spans is None else spans[0]),
         read_span=None if spans is None else spans[0],
         fill_span=None if spans is None else spans[1],
     )
@@ -315,25 +315,26 @@ def _spans(
 
 
 def _reader(
-    ref: TensorRef, dtype: np.dtype[Any], total: int, source: StorageSource, order: str
+    ref: TensorRef,
+    dtype: np.dtype[Any],
+    total: int,
+    source: StorageSource,
+    order: str,
+    span: Callable[[int, int], np.ndarray] | None,
 ) -> Callable[[], np.ndarray]:
+    """The whole tensor: through ``span`` (positioned reads) when it is a contiguous run of a
+    stored storage, else viewed through the storage's buffer with its strides."""
     itemsize = dtype.itemsize
     native = order == sys.byteorder or itemsize == 1
     # Strides are applied to unsigned integers of the element size, then reinterpreted:
     # as_strided cannot handle ml_dtypes types, and a foreign byte order is swapped as ints.
     raw = np.dtype(f"{'<' if order == 'little' else '>'}u{itemsize}")
 
-    whole = _contiguous(ref, source)
-
     def read() -> np.ndarray:
         if math.prod(ref.size) == 0:
             return np.zeros(ref.size, dtype=dtype)
-        if whole:  # read into a fresh array, not viewed through the map (see read_into)
-            out = np.empty(math.prod(ref.size), dtype=raw)
-            source.read_into(ref.storage.key, ref.offset * itemsize, out)
-            if not native:
-                out = out.astype(raw.newbyteorder("="))
-            array = out.view(dtype).reshape(ref.size)
+        if span is not None:  # a fresh array, not a view through the map (see read_into)
+            array = span(0, math.prod(ref.size)).reshape(ref.size)
             array.flags.writeable = False  # as the mapped views: no rule writes stored data
             return array
         buffer, start = source.buffer(ref.storage.key)

@@ -51,7 +51,7 @@ outputs against the float one.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
@@ -69,6 +69,7 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.stats.numerics import sums_of_squares
+from steelyard.stats.passes import Blocks
 from steelyard.streaming import row_blocks
 
 _MIN_SIDE = 8
@@ -130,6 +131,14 @@ def _squares_f64(block: np.ndarray, rows: np.ndarray | None, columns: np.ndarray
     return out
 
 
+def _row_limits(rows: np.ndarray, fan_in: int, s2: float) -> np.ndarray:
+    """Per row the float32 limit of the row test |w| >= sqrt(sigma²·R_j/(n−1+sigma²)). A limit
+    beyond the float32 range (rows of weights near its top) becomes +Inf, which no weight
+    exceeds, without numpy's overflow warning."""
+    with np.errstate(over="ignore"):
+        return np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+
+
 _NONE = EssentialWeights(*(np.zeros(0, dtype) for dtype in (np.int64, np.int64, float, float, float)))
 
 
@@ -144,12 +153,9 @@ def measure(
     block = np.asarray(matrix, dtype=np.float32)
     rows = sums_of_squares(block, axis=1) if row_squares is None else row_squares
     s2 = sigma * sigma
-    # |w| >= sqrt(sigma²·R_j/(n−1+sigma²)) is the row test; in cache-sized row blocks, so
-    # |W| and the comparison never leave the cache (the matrix is read once).
-    # A limit beyond the float32 range (rows of weights near its top) becomes +Inf, which no
-    # weight exceeds, without numpy's overflow warning.
-    with np.errstate(over="ignore"):
-        row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    # The row test, in cache-sized row blocks, so |W| and the comparison never leave the
+    # cache (the matrix is read once).
+    row_limit = _row_limits(rows, fan_in, s2)
     # A row whose limit is 0 holds only zeros and one whose limit is NaN holds a NaN: neither
     # can have a weight strictly beyond it, so the smallest positive limit bounds the block.
     positive = np.where(row_limit > 0, row_limit, np.float32(np.inf))
@@ -230,7 +236,7 @@ def _ranked(
 
 
 def measure_blocks(
-    blocks: Callable[[], Iterator[tuple[int, int, np.ndarray]]],
+    blocks: Blocks,
     shape: tuple[int, int],
     sigma: float,
     row_squares: np.ndarray,
@@ -245,8 +251,7 @@ def measure_blocks(
         return _NONE
     rows = np.asarray(row_squares, np.float64)
     s2 = sigma * sigma
-    with np.errstate(over="ignore"):
-        row_limit = np.sqrt(s2 * rows / (fan_in - 1 + s2)).astype(np.float32)
+    row_limit = _row_limits(rows, fan_in, s2)
     row_sums = np.zeros(units)
     column_sums = np.zeros(fan_in)
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])

@@ -97,7 +97,7 @@ from __future__ import annotations
 
 import functools
 import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -117,11 +117,10 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.stats.numerics import median_of, sums_of_squares
+from steelyard.stats.passes import Blocks
 from steelyard.streaming import row_blocks
 
 _BLOCK_BYTES = 2**18
-#: One pass over a layer too large to cache: float32 row blocks ``(first row, end row, block)``.
-Blocks = Callable[[], Iterator[tuple[int, int, np.ndarray]]]
 """Row blocks this small keep a block's several temporaries in the cache."""
 SCHEME = (
     "round-to-nearest, symmetric absmax scales: int8 per output channel (levels ±127), "

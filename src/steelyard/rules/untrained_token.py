@@ -66,7 +66,7 @@ from __future__ import annotations
 import json
 import math
 import re
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -87,6 +87,7 @@ from steelyard.rules.base import (
 from steelyard.rules.scoring import score
 from steelyard.safepath import read_beside
 from steelyard.stats.numerics import median_of, power_of_two_toward_one, times_exactly
+from steelyard.stats.passes import Blocks
 
 _SAMPLE = 2048
 _POWER = 2
@@ -276,22 +277,12 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
         np.einsum("ij,ij->i", original, original, dtype=np.float64) if row_squares is None
         else np.asarray(row_squares, np.float64)
     )
-    # Every measurement below is a ratio to the table's own medians, so a table whose float32
-    # sums could overflow or vanish is measured scaled by a power of two (exact) and the
-    # lengths are scaled back at the end.
-    # (the largest row norm brought to [0.5, 1) when it lies outside [2^-40, 2^40], where
-    # float32 products of rows could overflow or vanish: a table near the top of the float32
-    # range, or of subnormals)
-    largest = math.sqrt(float(np.max(squares))) if squares.size else 0.0
-    scale = power_of_two_toward_one(largest, 2.0**40)
+    scale, squares_at_scale = _table_scale(squares)
     block = original if scale == 1.0 else times_exactly(original, scale)
-    squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
     # One float32 BLAS product: 4× faster than numpy's buffered float64 reduction on a
     # 8000 × 512 table, and the same mean to about 1e-6 of its size (measured).
     mean = (np.ones(rows, np.float32) @ block).astype(np.float64) / max(1, rows)
-    sample_rows = np.arange(rows) if rows <= _SAMPLE else np.sort(
-        np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False)
-    )
+    sample_rows = _sampled_rows(rows)
     # Centred in place: a second 4 MiB temporary made the allocator hand its pages back
     # and fault them in again on every call (4 ms against 0.5 ms per 8000 × 512 table).
     centred = block[sample_rows]
@@ -305,19 +296,46 @@ def measure(matrix: np.ndarray, k: int, row_squares: np.ndarray | None = None) -
     # Identical rows have equal norms up to the summation order: candidates are neighbours in
     # norm order within 2e-7 (float32 summation order), confirmed bit for bit.
     duplicates = np.zeros(rows, dtype=bool)
-    order = _stable_order(norms)
-    ordered = norms[order]
-    close = np.flatnonzero(np.diff(ordered) <= 2e-7 * np.maximum(ordered[1:], 1e-30))
+    pairs_first, pairs_second = _candidate_pairs(norms)
     # The pairs compared in chunks of about 4 MiB: one call per chunk rather than per pair
     # (a table of i.i.d. bf16 rows has ~100 such near-ties, each once ~10 small numpy calls).
     per_chunk = max(1, 2**20 // max(1, block.shape[1]))
-    for start in range(0, close.size, per_chunk):
-        at = close[start : start + per_chunk]
-        first, second = order[at], order[at + 1]
+    for start in range(0, pairs_first.size, per_chunk):
+        first = pairs_first[start : start + per_chunk]
+        second = pairs_second[start : start + per_chunk]
         same = (block[first].view(np.uint32) == block[second].view(np.uint32)).all(axis=1)
         duplicates[first[same]] = True
         duplicates[second[same]] = True
     return TokenRows(norms, np.sqrt(c2), residuals, duplicates)
+
+
+def _table_scale(squares: np.ndarray) -> tuple[float, np.ndarray]:
+    """(power-of-two scale, rows' sums of squares at it) for measuring a table.
+
+    Every measurement is a ratio to the table's own medians, so a table whose float32 sums
+    could overflow or vanish is measured scaled by a power of two (exact) and the lengths are
+    scaled back at the end: the largest row norm is brought to [0.5, 1) when it lies outside
+    [2^-40, 2^40], where float32 products of rows could overflow or vanish (a table near the
+    top of the float32 range, or of subnormals)."""
+    largest = math.sqrt(float(np.max(squares))) if squares.size else 0.0
+    scale = power_of_two_toward_one(largest, 2.0**40)
+    return scale, squares if scale == 1.0 else squares * (scale * scale)
+
+
+def _sampled_rows(rows: int) -> np.ndarray:
+    """The rows the principal directions are estimated from: all, or ``_SAMPLE`` seeded."""
+    if rows <= _SAMPLE:
+        return np.arange(rows)
+    return np.sort(np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False))
+
+
+def _candidate_pairs(norms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows that may be identical: neighbours in norm order whose norms agree within 2e-7
+    (identical rows have equal norms up to the float32 summation order)."""
+    order = _stable_order(norms)
+    ordered = norms[order]
+    close = np.flatnonzero(np.diff(ordered) <= 2e-7 * np.maximum(ordered[1:], 1e-30))
+    return order[close], order[close + 1]
 
 
 def _lengths(
@@ -339,7 +357,7 @@ def _lengths(
 
 
 def measure_blocks(
-    blocks: Callable[[], Iterator[tuple[int, int, np.ndarray]]],
+    blocks: Blocks,
     shape: tuple[int, int],
     k: int,
     row_squares: np.ndarray,
@@ -356,17 +374,10 @@ def measure_blocks(
 
     rows, width = shape
     squares = np.asarray(row_squares, np.float64)
-    largest = math.sqrt(float(np.max(squares))) if squares.size else 0.0
-    scale = power_of_two_toward_one(largest, 2.0**40)  # as in measure
-    squares_at_scale = squares if scale == 1.0 else squares * (scale * scale)
-    sample_rows = np.arange(rows) if rows <= _SAMPLE else np.sort(
-        np.random.default_rng(_SEED).choice(rows, _SAMPLE, replace=False)
-    )
+    scale, squares_at_scale = _table_scale(squares)
+    sample_rows = _sampled_rows(rows)
     norms = np.sqrt(squares)
-    order = _stable_order(norms)
-    ordered = norms[order]
-    close = np.flatnonzero(np.diff(ordered) <= 2e-7 * np.maximum(ordered[1:], 1e-30))
-    first, second = order[close], order[close + 1]
+    first, second = _candidate_pairs(norms)
     candidates = np.unique(np.concatenate((first, second)))
     digests = np.empty(candidates.size, dtype="S32")
     total = np.zeros(width, np.float64)

@@ -42,7 +42,7 @@ read under one lock (:data:`.reading.READ_LOCK`), which gradient support takes t
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from typing import TypeVar
 
 import numpy as np
@@ -52,7 +52,7 @@ from steelyard.stats.folding import Folded, fold_bias, fold_scale
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import Counts, NonfiniteCounts, NonfiniteScan, scan
 from steelyard.stats.numerics import row_norms, sums_of_squares
-from steelyard.stats.passes import WeightPasses
+from steelyard.stats.passes import Blocks, WeightPasses
 from steelyard.stats.reading import locked, read_float32, read_stored
 from steelyard.stats.spread import NormSpread, norm_spread
 from steelyard.stats.topology import Topology
@@ -115,7 +115,7 @@ class LayerStats:
         """Canonical ``W[units, fan_in]`` as float32 (read once while it fits the cache)."""
         return self._passes.matrix(layer)
 
-    def streamed(self, layer: Layer) -> Callable[[], Iterator[tuple[int, int, np.ndarray]]] | None:
+    def streamed(self, layer: Layer) -> Blocks | None:
         """For a layer too large to cache whose loader streams it (a large token table): a
         function that reads it again, one pass of float32 row blocks ``(first row, end row,
         block)`` per call, in one reused buffer (copy what you keep). None when

@@ -27,6 +27,8 @@ from steelyard.tiled_copy import contiguous, transposed_from_parts
 
 #: One block of a pass: rows [a, b) of the canonical matrix as float32.
 Block = tuple[int, int, np.ndarray]
+#: A layer read again, one pass of :data:`Block` per call (:meth:`WeightPasses.streamed`).
+Blocks = Callable[[], Iterator[Block]]
 
 
 def row_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int] | None:
@@ -154,7 +156,7 @@ class WeightPasses:
             picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
         return sorted_wide(picked)
 
-    def streamed(self, layer: Layer) -> Callable[[], Iterator[Block]] | None:
+    def streamed(self, layer: Layer) -> Blocks | None:
         """See :meth:`steelyard.stats.LayerStats.streamed`."""
         source = self.streamable(layer)
         units, fan_in = layer.units, layer.fan_in

@@ -141,23 +141,22 @@ class WeightPasses:
         # statistics are stated for, in 60 µs for 20,000; numpy's draw without replacement
         # took 130-210 µs and, below 20 × size weights, a permutation of all the positions.
         positions = np.random.default_rng(seed).integers(0, total, size)
-        source = self.streamable(layer)
-        cached = self.cache.get(("matrix", layer.name))
-        if cached is not None or source is None or 4 * total <= self.stream_bytes:
+        blocks = self.streamed(layer)
+        if blocks is None:
             # In memory the positions need no order (the values are sorted after): sorting
             # them took twice as long as the gather and the value sort together.
             flat = self.matrix(layer).reshape(-1)
             return sorted_wide(flat[positions])
         positions.sort()  # streamed: each row block takes its run of positions
         picked = np.empty(size, dtype=np.float32)
-        scratch = np.empty(0, dtype=np.float32)
-        for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
+        for a, b, block in blocks():
             lo, hi = np.searchsorted(positions, (a * fan_in, b * fan_in))
             picked[lo:hi] = block.reshape(-1)[positions[lo:hi] - a * fan_in]
         return sorted_wide(picked)
 
     def streamed(self, layer: Layer) -> Blocks | None:
-        """See :meth:`steelyard.stats.LayerStats.streamed`."""
+        """See :meth:`steelyard.stats.LayerStats.streamed`; the one place that decides whether
+        a layer is read by passes (``sample``, ``rows`` and ``picked`` ask it too)."""
         source = self.streamable(layer)
         units, fan_in = layer.units, layer.fan_in
         if source is None or 4 * units * fan_in <= self.stream_bytes:
@@ -185,13 +184,11 @@ class WeightPasses:
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
         """See :meth:`steelyard.stats.LayerStats.rows`."""
         units, fan_in = layer.units, layer.fan_in
-        source = self.streamable(layer)
-        cached = self.cache.get(("matrix", layer.name))
-        if step == 1 or cached is not None or source is None or 4 * units * fan_in <= self.stream_bytes:
+        blocks = None if step == 1 else self.streamed(layer)
+        if blocks is None:
             return np.ascontiguousarray(self.matrix(layer)[start::step])
         picked = np.empty((len(range(start, units, step)), fan_in), dtype=np.float32)
-        scratch = np.empty(0, dtype=np.float32)
-        for a, b, block in self._stream_rows(source, units, fan_in, None, scratch, None):
+        for a, b, block in blocks():
             first = a + (start - a) % step  # the first kept row at or after a
             if first < b:
                 picked[(first - start) // step : (b - 1 - start) // step + 1] = block[first - a :: step]

@@ -30,6 +30,12 @@ def test_bf16_widening_matches_ml_dtypes_on_every_bit_pattern() -> None:
     streaming.convert_into(patterns, out)
     # reference: ml_dtypes.bfloat16 -> float32 cast (NaN payloads and signed zeros included)
     assert np.array_equal(out.view(np.uint32), patterns.astype(np.float32).view(np.uint32))
+    # Past _SHIFT_IN_PLACE values the widening takes its one-call path: the same bits.
+    many = np.tile(patterns, 3)
+    assert many.size >= streaming._SHIFT_IN_PLACE
+    wide = np.empty(many.size, np.float32)
+    streaming.convert_into(many, wide)
+    assert np.array_equal(wide.view(np.uint32), many.astype(np.float32).view(np.uint32))
 
 
 def test_float16_widening_matches_numpy_on_every_bit_pattern(

@@ -41,12 +41,24 @@ def widen_bf16_bits(bits: np.ndarray, out: np.ndarray) -> None:
     """Write the bf16 values whose bit patterns are ``bits`` (native uint16) into the float32
     array ``out`` (same element count): each pattern is the upper half of the float32's.
 
-    Widened in place, a plain copy into the float32 words then a shift of them: numpy's
-    one-call ``left_shift(bits, 16, dtype=uint32)`` casts through a buffer and took 1.8 ×
-    as long (2.1 against 1.15 ms per 4M values, one thread)."""
+    One ``left_shift`` with the uint32 loop and ``out`` given: numpy casts the patterns in
+    cache-sized buffers, so the float32 words are written once. A copy into the words then
+    a shift of them in place passes twice over them, which costs more as soon as they leave
+    the cache: 0.36 against 0.25 ns a value at 590k values, 0.48 against 0.25 at 4M, 1.78
+    against 0.40 at 16M (one thread, docs/performance.md, "Fourteenth session"); below
+    ``_SHIFT_IN_PLACE`` values the two passes stay in the cache and are a little faster."""
     words = out.reshape(-1).view(np.uint32)
-    np.copyto(words, bits.reshape(-1), casting="safe")
-    np.left_shift(words, 16, out=words)
+    flat = bits.reshape(-1)
+    if flat.size < _SHIFT_IN_PLACE:
+        np.copyto(words, flat, casting="safe")
+        np.left_shift(words, 16, out=words)
+    else:
+        np.left_shift(flat, 16, out=words, dtype=np.uint32)
+
+
+#: Fewer bf16 values than this are widened by a copy and a shift in place (0.19 against
+#: 0.23 ns a value at 65,536).
+_SHIFT_IN_PLACE = 2**17
 
 
 #: Keeps the sign bit and the 15 magnitude bits of a float16 pattern shifted into place.
@@ -68,12 +80,14 @@ def widen_f16_bits(bits: np.ndarray, out: np.ndarray) -> None:
     float32 that is the value times 2^-112, subnormals included, so one multiplication by
     2^112 (exact: a power of two) finishes it. Inf and NaN (exponent all ones) come out as
     ±2^16·(1 + m/1024), beyond every finite float16 (65504), and get float32's all-ones
-    exponent back, payload kept. Four passes of plain integer and float arithmetic and two
-    reductions over cache-sized blocks: 1.3 against numpy's 1.7 ns per value into freshly
-    allocated arrays (8 × 4M values, one thread), 1.35 against 1.52 s for the 543M values of
-    an fp16 checkpoint inside the audit, where memory traffic outside the cache (the stored
-    bytes, the first writes to each layer matrix) takes the rest; checked on all 65,536
-    patterns against numpy in the tests."""
+    exponent back, payload kept. Three passes of plain integer and float arithmetic (the
+    sign extension and the shift in one, as in :func:`widen_bf16_bits`) and two reductions
+    over cache-sized blocks: 1.3 against numpy's 1.7 ns per value into freshly allocated
+    arrays (8 × 4M values, one thread), 1.35 against 1.52 s for the 543M values of an fp16
+    checkpoint inside the audit, where memory traffic outside the cache (the stored bytes,
+    the first writes to each layer matrix) takes the rest; with the shift in one pass 0.50
+    against 0.69 ns per value into a warm 4M-value array (numpy 0.85). Checked on all
+    65,536 patterns against numpy in the tests."""
     flat = out.reshape(-1)
     words = flat.view(np.int32)
     signed = bits.reshape(-1).view(np.int16)
@@ -82,8 +96,7 @@ def widen_f16_bits(bits: np.ndarray, out: np.ndarray) -> None:
     for start in range(0, signed.size, _F16_BLOCK):
         stop = min(signed.size, start + _F16_BLOCK)
         part, values = words[start:stop], flat[start:stop]
-        np.copyto(part, signed[start:stop], casting="safe")
-        np.left_shift(part, 13, out=part)
+        np.left_shift(signed[start:stop], 13, out=part, dtype=np.int32)  # one pass, as bf16
         np.bitwise_and(part, _F16_KEEP, out=part)
         np.multiply(values, _F16_REBIAS, out=values)
         special = special or bool(values.max() >= 65536.0 or values.min() <= -65536.0)

@@ -447,13 +447,17 @@ def test_jobs_must_be_positive(tmp_path: Path, rng: np.random.Generator) -> None
         api.audit(path, jobs=0)
 
 
+@pytest.mark.parametrize("path", ["sorted_wide", "_sorted_by_bf16_keys"])
 @pytest.mark.parametrize("kind", ["bf16", "float32", "bf16-with-nan", "bf16-edges"])
-def test_sorted_wide_is_numpys_sort(kind: str, rng: np.random.Generator) -> None:
-    # The bf16 fast path must give numpy's sorted float64 array bit for bit. Reference:
-    # numpy.sort; bf16 rounding by ml_dtypes (the reference bf16 implementation on PyPI).
+def test_sorted_wide_is_numpys_sort(kind: str, path: str, rng: np.random.Generator) -> None:
+    # Both paths (numpy 2's float32 sort, numpy 1's bf16 keys) must give numpy's sorted
+    # float64 array bit for bit. Reference: numpy.sort; bf16 rounding by ml_dtypes (the
+    # reference bf16 implementation on PyPI).
     import ml_dtypes
 
-    from steelyard.stats.numerics import sorted_wide
+    from steelyard.stats import numerics
+
+    sorted_wide = getattr(numerics, path)
 
     values = (rng.standard_normal(20_000) * 0.02).astype(np.float32)
     if kind != "float32":

@@ -126,7 +126,9 @@ def _squares_f64(block: np.ndarray, rows: np.ndarray | None, columns: np.ndarray
     assert columns is not None
     out = np.zeros(columns.size)
     for a, b in row_blocks(units, max(1, columns.size), _BLOCK_BYTES):
-        wide = block[a:b, columns].astype(np.float64)
+        # take, not block[a:b, columns]: the same values, 2.6 × faster (41 columns of a
+        # 2184 × 1024 block: 0.27 against 0.70 ms)
+        wide = np.take(block[a:b], columns, axis=1).astype(np.float64)
         out += np.einsum("ij,ij->j", wide, wide)
     return out
 
@@ -188,7 +190,12 @@ def measure(
     if not found_u:
         return _NONE
     cand_u, cand_k = np.concatenate(found_u), np.concatenate(found_k)
-    # Column sums only for the (rare) candidates' columns.
+    # Column sums only for the (rare) candidates' columns, exactly, in float64: subtracting
+    # w² from a float32 sum it dominates would leave mostly rounding error. Each column is
+    # summed once, however many candidates it holds (outlier channels put thousands in
+    # one), and the found weights keep their candidates' sums: gathering a column touches a
+    # cache line in every row, so a second gather took a third of the rule's time on a
+    # heavy-tailed 4096 × 1024 layer.
     wanted, where = np.unique(cand_k, return_inverse=True)
     columns = _squares_f64(block, None, wanted)[where]
     w2 = np.square(block[cand_u, cand_k].astype(np.float64))
@@ -196,16 +203,12 @@ def measure(
         w2 * (units - 1 + s2) >= s2 * columns
     )
     keep &= np.isfinite(w2) & (w2 > 0)
-    u, k, w2 = cand_u[keep], cand_k[keep], w2[keep]
+    u, k, w2, column_sums = cand_u[keep], cand_k[keep], w2[keep], columns[keep]
     if u.size == 0:
         return _NONE
-    # The scales of the found weights exactly, in float64: subtracting w² from a float32 sum
-    # it dominates would leave mostly rounding error. Each row and column holding a found
-    # weight is summed once, however many it holds (outlier channels put thousands in one).
+    # The found weights' rows, exactly too (a row is contiguous: cheap to gather).
     found_rows, row_of = np.unique(u, return_inverse=True)
-    found_columns, column_of = np.unique(k, return_inverse=True)
     row_sums = _squares_f64(block, found_rows, None)[row_of]
-    column_sums = _squares_f64(block, None, found_columns)[column_of]
     return _ranked(u, k, block[u, k], w2, row_sums, column_sums, (units, fan_in))
 
 

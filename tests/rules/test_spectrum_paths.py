@@ -74,3 +74,25 @@ def test_small_matrices_keep_the_full_svd() -> None:
         check = edge_check(a, 1.0, ALLOWED)
         assert check.method == "svd"
         assert check.top == pytest.approx(np.linalg.svd(a.astype(np.float64), compute_uv=False)[0])
+
+
+@pytest.mark.parametrize("shape", [(1024, 700), (2816, 256), (600, 2048), (333, 1000)])
+@pytest.mark.parametrize("step", [2, 4])
+def test_search_on_a_row_strided_view_is_the_copy_s_search(
+    shape: tuple[int, int], step: int
+) -> None:
+    # LayerStats.rows hands the spectrum search a view of every step-th row instead of a
+    # copy; numpy passes such a view to BLAS at its leading dimension. Reference: the same
+    # search on numpy.ascontiguousarray of the view, which must agree bit for bit (the
+    # report may not depend on whether the rows were copied).
+    rng = np.random.default_rng(shape[0] + step)
+    m, n = shape
+    weights = (rng.standard_normal((m, n)) / np.sqrt(n)).astype(np.float32)
+    weights[:, :3] += np.float32(4.0 / np.sqrt(n)) * rng.standard_normal((m, 1)).astype(np.float32)
+    sigma = 1.0 / np.sqrt(n)
+    for start in (0, step - 1):
+        view = weights[start::step]
+        assert not view.flags["C_CONTIGUOUS"]
+        assert edge_check(view, sigma, ALLOWED, seed=start) == edge_check(
+            np.ascontiguousarray(view), sigma, ALLOWED, seed=start
+        )

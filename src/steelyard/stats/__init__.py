@@ -130,9 +130,10 @@ class LayerStats:
         return self._passes.picked(layer, index)
 
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
-        """Rows ``start``, ``start + step``, … of ``W[units, fan_in]`` as contiguous float32.
-        A layer too large to cache is streamed in row blocks for them instead of being
-        assembled, so a row subsample of a large embedding costs its own memory only."""
+        """Rows ``start``, ``start + step``, … of ``W[units, fan_in]`` as float32 rows, each
+        contiguous: a read-only view of the matrix when it is in memory, else (a layer too
+        large to cache) picked from row blocks as they stream past, so a row subsample of a
+        large embedding costs its own memory only and the table is never assembled."""
         return self._passes.rows(layer, start, step)
 
     def sample(self, layer: Layer, size: int, seed: int) -> np.ndarray:

@@ -186,7 +186,12 @@ class WeightPasses:
         units, fan_in = layer.units, layer.fan_in
         blocks = None if step == 1 else self.streamed(layer)
         if blocks is None:
-            return np.ascontiguousarray(self.matrix(layer)[start::step])
+            # A view: BLAS reads rows a stride apart at their leading dimension, so the
+            # spectrum search on it gives the copy's values bit for bit without the copy
+            # (2816 × 1024, every 4th row: 1.9-2.4 against 1.7 ms with the copy).
+            view = self.matrix(layer)[start::step]
+            view.flags.writeable = False  # the cached matrix is every rule's
+            return view
         picked = np.empty((len(range(start, units, step)), fan_in), dtype=np.float32)
         for a, b, block in blocks():
             first = a + (start - a) % step  # the first kept row at or after a

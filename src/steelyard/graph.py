@@ -168,6 +168,14 @@ class Tensor:
     ``[start, stop)`` into a C-contiguous float32 array of that many elements, so a streamed
     pass fills the layer's matrix directly instead of a fresh buffer it then copies (a third
     of a float32 layer's read time)."""
+    factors: Callable[[], tuple[np.ndarray, np.ndarray]] | None = field(
+        default=None, repr=False, compare=False
+    )
+    """Optional, for a tensor computed as a low-rank product (an adapter's update ΔW): its
+    float64 factors ``(left [rows, r], right [r, row elements])``, the tensor being ``left @
+    right`` rounded to float32, rows in stored order. What the factors determine (row and
+    column sums of squares, a bound on every entry) the audit takes from them instead of a
+    pass over the product, which may be thousands of times the factors' size."""
 
     @property
     def size(self) -> int:

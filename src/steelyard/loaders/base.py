@@ -75,9 +75,11 @@ def float32_tensor(
     read_span: Callable[[int, int], np.ndarray] | None,
     stored_type: str | None = None,
     fill_span: Callable[[int, int, np.ndarray], None] | None = None,
+    factors: Callable[[], tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> Tensor:
     """A tensor computed as float32 when read (a dequantized GGUF block or packed weight, an
-    adapter's update): ``f32`` whatever lies beneath it, which ``stored_type`` names."""
+    adapter's update): ``f32`` whatever lies beneath it, which ``stored_type`` names;
+    ``factors`` when it is a low-rank product (see :attr:`Tensor.factors`)."""
     return Tensor(
         name=name,
         shape=shape,
@@ -87,6 +89,7 @@ def float32_tensor(
         read_span=read_span,
         stored_type=stored_type,
         fill_span=fill_span,
+        factors=factors,
     )
 
 

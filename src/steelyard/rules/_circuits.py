@@ -24,6 +24,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from steelyard.gram_spectrum import singular_values_from_grams
+
 SKETCH = 64
 _SEED = 20191
 
@@ -67,11 +69,7 @@ def circuit_norm(gram_a: np.ndarray, gram_b: np.ndarray) -> float:
 
 def circuit_spectrum(gram_a: np.ndarray, gram_b: np.ndarray) -> np.ndarray:
     """Singular values of the circuit, largest first, from its factors' Gram matrices."""
-    values, vectors = np.linalg.eigh(gram_b)
-    root = (vectors * np.sqrt(np.clip(values, 0.0, None))) @ vectors.T
-    middle = root @ gram_a @ root
-    eig = np.linalg.eigvalsh((middle + middle.T) / 2)
-    return np.sqrt(np.clip(eig[::-1], 0.0, None))
+    return singular_values_from_grams(gram_a, gram_b)
 
 
 def sketch_cosine(a: np.ndarray, b: np.ndarray) -> float:

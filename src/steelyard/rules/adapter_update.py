@@ -7,9 +7,12 @@ For each adapted module the update is ΔW = s·B·A in the layer's canonical ori
 (s = lora_alpha/r, or lora_alpha/√r with rank-stabilised LoRA; Hu et al. 2021, "LoRA:
 Low-Rank Adaptation of Large Language Models"; Kalajdzievski 2023, "A Rank Stabilization
 Scaling Factor for Fine-Tuning with LoRA"). Its singular values σ₁ ≥ … ≥ σ_k come from the
-small factors, never from the ``[out, in]`` product: with the reduced QR factorisations
-s·B = Q₁R₁ and Aᵀ = Q₂R₂, ΔW = Q₁(R₁R₂ᵀ)Q₂ᵀ has the singular values of the ``r×r`` core
-R₁R₂ᵀ (Golub & Van Loan, *Matrix Computations*, §5.2 and §8.6); ‖ΔW‖_F = √Σσᵢ².
+small factors, never from the ``[out, in]`` product: with the ``r×r`` Gram matrices
+G_B = (s·B)ᵀ(s·B) and G_A = A·Aᵀ, ΔWᵀΔW = Aᵀ G_B A has the non-zero eigenvalues of G_B·G_A,
+which are those of the symmetric G_A^{1/2} G_B G_A^{1/2}, so σᵢ² are its eigenvalues
+(σᵢ² to about machine epsilon times σ₁², so a zero value shows as about 1.5e-8 σ₁,
+far inside the unused-rank share);
+‖ΔW‖_F = √Σσᵢ².
 
 1. *Zero update.* σ₁ = 0 exactly: B (or A, or the scale) is all zeros. peft initialises B to
    zeros so that training starts from the base model (Hu et al. 2021, §4.1), so an all-zero

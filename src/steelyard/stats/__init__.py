@@ -52,8 +52,8 @@ from steelyard.stats.folding import Folded, fold_bias, fold_scale
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import Counts, NonfiniteCounts, NonfiniteScan, scan
 from steelyard.stats.numerics import row_norms, sums_of_squares
-from steelyard.stats.passes import Blocks, WeightPasses
-from steelyard.stats.reading import locked, read_float32, read_stored
+from steelyard.stats.passes import Blocks, WeightPasses, low_rank_run
+from steelyard.stats.reading import locked, read_float32, read_stored, stored_weight
 from steelyard.stats.spread import NormSpread, norm_spread
 from steelyard.stats.topology import Topology
 from steelyard.streaming import CHUNK_BYTES
@@ -121,12 +121,21 @@ class LayerStats:
         block)`` per call, in one reused buffer (copy what you keep). None when
         :meth:`matrix` holds the layer or would assemble it anyway: use that instead. Rules
         that need every weight of such a layer read it this way, so that no rule holds a
-        whole table in float32 (a 128,256 × 4,096 vocabulary would take 2.1 GB)."""
+        whole table in float32 (a 128,256 × 4,096 vocabulary would take 2.1 GB). A low-rank
+        product (an adapter's ΔW, see :meth:`factors`) is streamed whatever its size."""
         return self._passes.streamed(layer)
+
+    def factors(self, layer: Layer) -> tuple[np.ndarray, np.ndarray] | None:
+        """``(left [units, r], right [r, fan_in])``, float64, when the layer's matrix is the
+        low-rank product ``left @ right`` rounded to float32 (an adapter's update read on its
+        own): a rule can then bound or compute from the factors what a pass over the
+        product would cost units·fan_in for. None for every other layer."""
+        return low_rank_run(self.checkpoint, layer)
 
     def picked(self, layer: Layer, index: np.ndarray) -> np.ndarray:
         """The rows at ``index`` (sorted, distinct) of ``W[units, fan_in]`` as contiguous
-        float32; gathered from one streamed pass when the layer is too large to cache."""
+        float32; for a streamed layer read row by row when fewer than one row in eight is
+        wanted, else gathered from one streamed pass (the same values either way)."""
         return self._passes.picked(layer, index)
 
     def rows(self, layer: Layer, start: int, step: int) -> np.ndarray:
@@ -159,24 +168,8 @@ class LayerStats:
         return self._memo.once(("tensor", name), lambda: _frozen(read_float32(tensor)))
 
     def stored_weight(self, layer: Layer) -> np.ndarray | None:
-        """The stored weight tensor (stored dtype, e.g. quantized integers) as ``[units,
-        fan_in]`` in canonical order, by the loader's ``orient``; a layer without one is
-        taken as stored only when its tensor already has the canonical shape ``[units,
-        in/groups, *kernel]``. None when the tensor is absent or the order is not known."""
-        tensor = self.checkpoint.tensors.get(layer.weight)
-        if tensor is None:
-            return None
-        canonical = (layer.units, layer.in_per_group, *layer.kernel)
-        if layer.orient is None and tensor.shape not in (canonical, (layer.units, layer.fan_in)):
-            return None
-        stored = read_stored(tensor)
-        try:
-            view = np.asarray(stored if layer.orient is None else layer.orient(stored))
-        except (ValueError, IndexError):
-            return None
-        if view.size != layer.units * layer.fan_in:
-            return None
-        return view.reshape(layer.units, layer.fan_in)
+        """See :func:`steelyard.stats.reading.stored_weight`."""
+        return stored_weight(self.checkpoint.tensors.get(layer.weight), layer)
 
     # ---- tensor health --------------------------------------------------------------------
     def nonfinite(self, tensor: Tensor) -> Counts:

@@ -18,6 +18,7 @@ import numpy as np
 
 from steelyard.dtypes import FLOAT_ITEMSIZE
 from steelyard.graph import Checkpoint, ColumnSlice, Layer, RowSlice, Tensor
+from steelyard.stats.low_rank import factor_sums
 from steelyard.stats.memo import MatrixCache, Memo
 from steelyard.stats.nonfinite import NonfiniteCounts, count_into
 from steelyard.stats.numerics import FLOAT_NAMES, sorted_wide, sums_of_squares
@@ -62,6 +63,21 @@ def column_run(checkpoint: Checkpoint, layer: Layer) -> tuple[Tensor, int, int] 
     return tensor, orient.start, stop
 
 
+def low_rank_run(checkpoint: Checkpoint, layer: Layer) -> tuple[np.ndarray, np.ndarray] | None:
+    """The float64 factors ``(left [units, r], right [r, fan_in])`` of ``layer``'s canonical
+    matrix when it is a run of rows of a low-rank product tensor (:attr:`Tensor.factors`)."""
+    run = row_run(checkpoint, layer)
+    if run is None or run[0].factors is None:
+        return None
+    left, right = run[0].factors()
+    return left[run[1] : run[1] + layer.units], right
+
+
+#: A streamed layer's rows are picked by reads of their own when fewer than one in this many
+#: are wanted, instead of a pass over every row.
+_FEW_ROWS = 8
+
+
 @dataclass(frozen=True, slots=True)
 class Summary:
     """What one pass over a layer's weights leaves behind."""
@@ -104,10 +120,16 @@ class WeightPasses:
             with self._memo.lock_for((layer.name, "load")):
                 found = self._memo.get(key)
                 if found is None:
-                    keep = 4 * layer.units * layer.fan_in <= self.stream_bytes
-                    matrix = self._pass(layer, keep)
-                    if matrix is not None:
-                        self.cache.put(("matrix", layer.name), matrix)
+                    low = _low_rank_summary(self.checkpoint, layer, layer.name in self._columns_for)
+                    if low is not None:  # no pass: the factors bound every entry
+                        self._memo.put(key, low[0])
+                        if low[1] is not None:
+                            self._counts.record(low[1], (0, 0, 0))
+                    else:
+                        keep = 4 * layer.units * layer.fan_in <= self.stream_bytes
+                        matrix = self._pass(layer, keep)
+                        if matrix is not None:
+                            self.cache.put(("matrix", layer.name), matrix)
                     found = self._memo.get(key)
         assert isinstance(found, Summary)
         return found
@@ -159,7 +181,9 @@ class WeightPasses:
         a layer is read by passes (``sample``, ``rows`` and ``picked`` ask it too)."""
         source = self.streamable(layer)
         units, fan_in = layer.units, layer.fan_in
-        if source is None or 4 * units * fan_in <= self.stream_bytes:
+        # A low-rank product is never assembled, however small: its summary comes from the
+        # factors, and a rule's pass over it computes each row block once, for that pass.
+        if source is None or (4 * units * fan_in <= self.stream_bytes and source[0].factors is None):
             return None
         if self.cache.get(("matrix", layer.name)) is not None:
             return None
@@ -176,6 +200,9 @@ class WeightPasses:
         if blocks is None:
             return np.ascontiguousarray(self.matrix(layer)[index])
         out = np.empty((index.size, layer.fan_in), dtype=np.float32)
+        source = self.streamable(layer)
+        if source is not None and index.size * _FEW_ROWS <= layer.units:
+            return _read_rows(source, index, out)  # a few rows (a sample's): each on its own
         for a, b, block in blocks():
             lo, hi = np.searchsorted(index, (a, b))
             out[lo:hi] = block[index[lo:hi] - a]
@@ -307,3 +334,31 @@ class WeightPasses:
         for _block in self._stream_rows(source, layer.units, layer.fan_in, full, None, None):
             pass
         return full
+
+
+def _low_rank_summary(
+    checkpoint: Checkpoint, layer: Layer, with_columns: bool
+) -> tuple[Summary, Tensor | None] | None:
+    """A low-rank product's summary from its factors, without a pass
+    (:func:`steelyard.stats.low_rank.factor_sums`), with its tensor when the layer covers it
+    (whose non-finite counts are then zero: the factors bound every entry); None when the
+    layer is no such product or the factors cannot stand for a pass."""
+    factors = low_rank_run(checkpoint, layer)
+    sums = None if factors is None or layer.groups != 1 else factor_sums(*factors, with_columns)
+    if sums is None:
+        return None
+    rows, columns = sums
+    summary = Summary(rows, None if columns is None else columns.reshape(1, -1))
+    tensor, first = row_run(checkpoint, layer) or (None, 0)
+    covers = tensor is not None and first == 0 and layer.units == tensor.shape[0]
+    return summary, tensor if covers else None
+
+
+def _read_rows(source: tuple[Tensor, int], index: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Rows ``index`` of a streamable layer into ``out``, one read each: the same values a
+    pass gives, without reading the rows between them."""
+    tensor, first = source
+    fan_in = out.shape[1]
+    for position, row in enumerate(index.tolist()):
+        tensor.widen_part((first + row) * fan_in, (first + row + 1) * fan_in, out[position])
+    return out

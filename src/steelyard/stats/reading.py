@@ -16,7 +16,7 @@ from typing import TypeVar
 
 import numpy as np
 
-from steelyard.graph import Tensor
+from steelyard.graph import Layer, Tensor
 
 T = TypeVar("T")
 
@@ -42,3 +42,23 @@ def read_float32(tensor: Tensor) -> np.ndarray:
 def read_stored(tensor: Tensor) -> np.ndarray:
     """``tensor.read()`` (stored dtype and orientation) through the audit's read path."""
     return np.asarray(locked(tensor, tensor.read))
+
+
+def stored_weight(tensor: Tensor | None, layer: Layer) -> np.ndarray | None:
+    """``layer``'s stored weight ``tensor`` (stored dtype, e.g. quantized integers) as
+    ``[units, fan_in]`` in canonical order, by the loader's ``orient``; a layer without one is
+    taken as stored only when its tensor already has the canonical shape ``[units,
+    in/groups, *kernel]``. None when the tensor is absent or the order is not known."""
+    if tensor is None:
+        return None
+    canonical = (layer.units, layer.in_per_group, *layer.kernel)
+    if layer.orient is None and tensor.shape not in (canonical, (layer.units, layer.fan_in)):
+        return None
+    stored = read_stored(tensor)
+    try:
+        view = np.asarray(stored if layer.orient is None else layer.orient(stored))
+    except (ValueError, IndexError):
+        return None
+    if view.size != layer.units * layer.fan_in:
+        return None
+    return view.reshape(layer.units, layer.fan_in)

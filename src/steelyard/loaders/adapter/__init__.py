@@ -271,11 +271,13 @@ def _derived_tensor(
     canonical: tuple[int, ...],
     whole: Callable[[], np.ndarray],
     block: Callable[[int, int], np.ndarray] | None,
+    factors: Callable[[], tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> Tensor:
     """A float32 tensor computed from the factors (ΔW, or the merged W + ΔW), not counted as
-    parameters; streamed in spans of whole rows when ``block`` reads rows thread-safely."""
+    parameters; streamed in spans of whole rows when ``block`` reads rows thread-safely;
+    ``factors`` for ΔW itself, a low-rank product."""
     span = None if block is None else _span_from_rows(block, int(np.prod(canonical[1:])))
-    return float32_tensor(name, canonical, TensorRole.BOOKKEEPING, whole, span)
+    return float32_tensor(name, canonical, TensorRole.BOOKKEEPING, whole, span, factors=factors)
 
 
 def _delta_layer(module: AdaptedModule, aux: tuple[str, ...]) -> tuple[Layer, Tensor]:
@@ -288,7 +290,13 @@ def _delta_layer(module: AdaptedModule, aux: tuple[str, ...]) -> tuple[Layer, Te
     def whole() -> np.ndarray:
         return block(0, units).reshape(module.canonical)
 
-    tensor = _derived_tensor(f"{module.name}.delta_weight", module.canonical, whole, block)
+    def factors() -> tuple[np.ndarray, np.ndarray]:
+        found = module.factors()
+        return found.left, found.right
+
+    tensor = _derived_tensor(
+        f"{module.name}.delta_weight", module.canonical, whole, block, factors
+    )
     source = weight_source(tensor.name, whole, RowSlice())
     geometry = canonical_geometry(module.canonical)
     layer = make_layer(module.name, module.kind, Activation.UNKNOWN, geometry, source, aux=aux)

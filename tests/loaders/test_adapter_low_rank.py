@@ -179,3 +179,41 @@ def test_a_few_rows_of_a_streamed_table_are_read_alone(tmp_path: Path, dtype: st
     np.testing.assert_array_equal(stats.picked(layer, index), reference[index])
     many = np.arange(0, 4000, 3)  # one row in three: gathered from a pass
     np.testing.assert_array_equal(stats.picked(layer, many), reference[many])
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_the_bound_is_sound_on_varied_updates(seed: int) -> None:
+    # Random factors with the structures that make essential weights or defeat the bound:
+    # outlier input columns in A, a few strong rows of B, single spikes in both, zero rows.
+    # Wherever none_can_stand_out says "none", essential-weight's measure on the product (as
+    # stored: float64 product rounded to float32) must find none; and the bound must not be
+    # vacuous (it settles the plain draws).
+    rng = np.random.default_rng(100 + seed)
+    settled_plain = found_some = 0
+    for trial in range(25):
+        units, fan_in, rank = int(rng.integers(8, 200)), int(rng.integers(8, 200)), int(rng.integers(1, 8))
+        rank = min(rank, units - 1, fan_in - 1)
+        left = rng.standard_normal((units, rank)) * 0.01
+        right = rng.uniform(-1, 1, (rank, fan_in)) / np.sqrt(fan_in)
+        kind = trial % 5
+        if kind == 1:
+            right[:, rng.integers(0, fan_in)] *= float(rng.choice([10.0, 400.0]))
+        elif kind == 2:
+            left[rng.integers(0, units)] *= 50.0
+        elif kind == 3:
+            left[rng.integers(0, units), 0] = 5.0
+            right[0, rng.integers(0, fan_in)] = 8.0
+        elif kind == 4:
+            left[: units // 3] = 0.0
+        product = (left @ right).astype(np.float32)
+        squares = (product.astype(np.float64) ** 2).sum(axis=1)
+        for sigma in (2.0, 5.0, 20.0):
+            settled = none_can_stand_out(left, right, squares, sigma)
+            found = measure(product, sigma, squares).units.size
+            if settled:
+                assert found == 0, (trial, sigma)
+            found_some += found > 0
+            if kind == 0 and sigma == 20.0:
+                settled_plain += settled
+    assert settled_plain >= 4
+    assert found_some >= 3  # the draws do hold essential weights the bound must not hide

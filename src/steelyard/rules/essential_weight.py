@@ -51,7 +51,6 @@ outputs against the float one.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Iterator
 from dataclasses import dataclass
 
@@ -292,19 +291,42 @@ def none_can_stand_out(
     left: np.ndarray, right: np.ndarray, row_squares: np.ndarray, sigma: float
 ) -> bool:
     """Whether no weight of the low-rank product ``left @ right`` (float64 factors, rounded to
-    float32 as stored) can pass the row test, so :func:`measure` would find none: by
-    Cauchy–Schwarz |W_jk| <= ‖left_j‖·‖right_k‖ <= ‖left_j‖·max_k ‖right_k‖, and a row whose
-    bound lies below its limit holds no candidate (a row whose left factor is zero holds only
-    zeros, which the strict test never takes). An adapter's update of 11,008 × 4,096 from
-    rank-16 factors is then settled at O((units + fan_in)·r) instead of a pass over 45M
-    products."""
+    float32 as stored) can pass both of :func:`measure`'s tests, so it would find none.
+
+    By Cauchy–Schwarz |W_jk| <= ‖left_j‖·‖right_k‖. The row test needs |W_jk| above row j's
+    limit, the column test W_jk²·(units − 1 + σ²) >= σ²·C_k (C_k = Σ_j W_jk², exact from the
+    factors as Σ_k of :func:`steelyard.stats.low_rank.factor_sums`). A weight can pass both
+    only where the bound reaches both thresholds; rows sorted by ‖left_j‖ answer that for every
+    column at once. A row whose left factor is zero holds only zeros, which the strict row test
+    never takes. An adapter's update of 11,008 × 4,096 from rank-16 factors is then settled at
+    O((units + fan_in)·r²) instead of a pass over 45M products; an outlier input column (a
+    column large in every row) fails the column test everywhere, and is settled too."""
     units, fan_in = left.shape[0], right.shape[1]
     if units < _MIN_SIDE or fan_in < _MIN_SIDE:
         return True
-    limit = _row_limits(np.asarray(row_squares, np.float64), fan_in, sigma * sigma)
-    longest = math.sqrt(float(np.einsum("rk,rk->k", right, right).max(initial=0.0)))
-    bound = np.sqrt(np.einsum("jr,jr->j", left, left)) * longest
-    return bool(np.all((bound == 0) | (bound * (1 + _ROUNDING_ROOM) < limit)))
+    s2 = sigma * sigma
+    room = 1 + _ROUNDING_ROOM
+    limit = _row_limits(np.asarray(row_squares, np.float64), fan_in, s2).astype(np.float64)
+    row_length = np.sqrt(np.einsum("jr,jr->j", left, left))
+    column_length = np.sqrt(np.einsum("rk,rk->k", right, right))
+    if np.all((row_length == 0) | (row_length * column_length.max(initial=0.0) * room < limit)):
+        return True  # the row test alone rules every weight out
+    columns = np.maximum(np.einsum("rk,rk->k", (left.T @ left) @ right, right), 0.0)
+    # |W_jk| must reach this for the column test (C_k a little low: float32 rounding of W)
+    needed = np.sqrt(s2 * columns * (1 - _ROUNDING_ROOM) / (units - 1 + s2))
+    live = column_length > 0  # a zero column holds zeros only
+    order = np.argsort(-row_length, kind="stable")
+    longest_first = row_length[order]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        reach = np.where(row_length > 0, row_length / limit, -np.inf)[order]
+    best_reach = np.maximum.accumulate(np.nan_to_num(reach, nan=np.inf))
+    # rows whose bound can reach column k's need: a prefix of the longest-first order
+    enough = needed[live] / (column_length[live] * room)
+    prefix = np.searchsorted(-longest_first, -enough, side="right")
+    reached = prefix > 0
+    # and among them a row whose bound passes its own limit in column k
+    passes = best_reach[np.maximum(prefix - 1, 0)] * column_length[live] * room > 1.0
+    return not bool(np.any(reached & passes))
 
 
 def essential_weights(

@@ -63,6 +63,26 @@ def test_float16_widening_matches_numpy_on_every_bit_pattern(
     assert np.array_equal(out.view(np.uint32), reference)
 
 
+@pytest.mark.parametrize("dtype", [ml_dtypes.float8_e4m3fn, ml_dtypes.float8_e5m2])
+def test_float8_widening_matches_ml_dtypes_on_every_bit_pattern(dtype: type) -> None:
+    # Reference: ml_dtypes' cast to float32 (the reference implementation of these encodings),
+    # every one of the 256 patterns (NaNs, e5m2's ±Inf, subnormals, signed zeros), whole, in
+    # odd parts, and past one block of the widening loop.
+    patterns = np.arange(256, dtype=np.uint8).view(dtype)
+    reference = patterns.astype(np.float32).view(np.uint32)
+    out = np.empty(256, np.float32)
+    streaming.convert_into(patterns, out)
+    assert np.array_equal(out.view(np.uint32), reference)
+    for start, stop in ((0, 1), (120, 130), (250, 256)):
+        part = np.empty(stop - start, np.float32)
+        streaming.convert_into(patterns[start:stop], part)
+        assert np.array_equal(part.view(np.uint32), reference[start:stop])
+    many = np.tile(patterns, 1200)  # 307,200 values: more than one block of 2^18
+    wide = np.empty(many.size, np.float32)
+    streaming.convert_into(many, wide)
+    assert np.array_equal(wide.view(np.uint32), np.tile(reference, 1200))
+
+
 @pytest.mark.parametrize(
     "dtype", [np.float16, ml_dtypes.float8_e4m3fn, ml_dtypes.float8_e5m2, np.float64]
 )

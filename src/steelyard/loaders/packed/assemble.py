@@ -71,8 +71,16 @@ def logical_tensor(
     def read_span(start: int, stop: int) -> np.ndarray:
         start, stop = max(0, start), min(total, stop)
         out = np.empty(max(0, stop - start), dtype=np.float32)
-        if not out.size:
-            return out
+        fill_span(start, stop, out)
+        return out
+
+    def fill_span(start: int, stop: int, out: np.ndarray) -> None:
+        # Decoded blocks go straight into the caller's array (the streamed pass's block):
+        # no span-sized array between them (an invented FP8 300m model: 4.4 -> 3.3 s with the
+        # float8 widening, further with this).
+        if stop <= start:
+            return
+        flat = out.reshape(-1)
         first, last = start // n_in, -(-stop // n_in)
         # Layouts that keep output units as columns of the packed words read those columns
         # once for the whole request, then decode it step by step from memory.
@@ -84,8 +92,7 @@ def logical_tensor(
             with np.errstate(all="ignore"):
                 block = np.asarray(source.rows(a, b), dtype=np.float32).reshape(-1)
             lo, hi = max(start, a * n_in), min(stop, b * n_in)
-            out[lo - start : hi - start] = block[lo - a * n_in : hi - a * n_in]
-        return out
+            flat[lo - start : hi - start] = block[lo - a * n_in : hi - a * n_in]
 
     def read() -> np.ndarray:
         # The whole float32 copy is bytes the file does not store: an expansion.
@@ -93,7 +100,9 @@ def logical_tensor(
         return read_span(0, total).reshape(shape)
 
     shape = (experts, n_out // experts, n_in) if experts else (n_out, n_in)
-    return float32_tensor(name, shape, TensorRole.PARAMETER, read, read_span, decoder.stored_type)
+    return float32_tensor(
+        name, shape, TensorRole.PARAMETER, read, read_span, decoder.stored_type, fill_span
+    )
 
 
 def _unstack(

@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 
 from steelyard.loaders.packed.stored import Part
+from steelyard.streaming import convert_into
 
 
 def part_size(part: Part) -> int:
@@ -32,5 +33,9 @@ class UnpackedWeight:
         return (int(self.weight.shape[0]), int(self.weight.shape[1]))
 
     def codes(self, start: int, stop: int) -> np.ndarray:
-        """Rows ``[start, stop)`` of the stored codes as float32 (a fresh, writable copy)."""
-        return np.array(self.weight[start:stop], dtype=np.float32)
+        """Rows ``[start, stop)`` of the stored codes as float32 (a fresh, writable copy;
+        float8 widened from its bit patterns, :func:`steelyard.streaming.convert_into`)."""
+        stored = np.asarray(self.weight[start:stop])
+        out = np.empty(stored.shape, dtype=np.float32)
+        convert_into(stored, out)
+        return out

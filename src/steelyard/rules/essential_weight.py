@@ -294,11 +294,11 @@ def none_can_stand_out(
     float32 as stored) can pass both of :func:`measure`'s tests, so it would find none.
 
     By Cauchy–Schwarz |W_jk| <= ‖left_j‖·‖right_k‖. The row test needs |W_jk| above row j's
-    limit, the column test W_jk²·(units − 1 + σ²) >= σ²·C_k (C_k = Σ_j W_jk², exact from the
-    factors as Σ_k of :func:`steelyard.stats.low_rank.factor_sums`). A weight can pass both
-    only where the bound reaches both thresholds; rows sorted by ‖left_j‖ answer that for every
-    column at once. A row whose left factor is zero holds only zeros, which the strict row test
-    never takes. An adapter's update of 11,008 × 4,096 from rank-16 factors is then settled at
+    limit, the column test W_jk²·(units − 1 + σ²) >= σ²·C_k, C_k = Σ_j W_jk² taken exactly from
+    the factors as rightₖᵀ (leftᵀ left) rightₖ. A weight can pass both only where the bound
+    reaches both thresholds; rows sorted by ‖left_j‖ answer that for every column at once. A
+    row whose left factor is zero holds only zeros, which the strict row test never takes. An
+    adapter's update of 11,008 × 4,096 from rank-16 factors is then settled at
     O((units + fan_in)·r²) instead of a pass over 45M products; an outlier input column (a
     column large in every row) fails the column test everywhere, and is settled too."""
     units, fan_in = left.shape[0], right.shape[1]

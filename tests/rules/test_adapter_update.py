@@ -135,3 +135,28 @@ def test_committed_trained_adapter_update_sizes_are_noted(tmp_path: Path) -> Non
     listed = " ".join(bands)
     for layer in ("conv", "embed", "fc1", "fc2"):
         assert layer in listed
+
+
+def test_dead_unit_leaves_an_update_read_alone_to_this_rule(tmp_path: Path) -> None:
+    # An update's zero rows leave their units as the base has them: without the base,
+    # dead-unit does not judge them (a note says so) and this rule reports the zero update
+    # once per module. With --base the merged layers are judged as any (the committed
+    # untrained adapter merged onto its base leaves the base's weights, which are healthy).
+    rng = np.random.default_rng(7)
+    half = rng.standard_normal((8, 4)) * 0.01
+    half[:4] = 0.0  # half of fc1's units untouched by the update
+    folder = _write(
+        tmp_path / "partly",
+        {"fc1": (rng.standard_normal((4, 16)), half), "fc2": (rng.standard_normal((4, 8)), np.zeros((6, 4)))},
+        r=4,
+    )
+    audit = audit_checkpoint(load_adapter(folder), Policy(), None, jobs=1)
+    assert [f for f in audit.findings if f.rule == "dead-unit"] == []
+    assert [(f.rule, f.layer) for f in audit.findings if f.severity is Severity.ERROR] == [
+        (RULE, "fc2")
+    ]
+    assert any(note.startswith("dead-unit: not judged on an adapter's updates") for note in audit.notes)
+    merged = audit_checkpoint(
+        load_adapter(FIXTURES / "untrained_mlp", base=FIXTURES / "base_mlp"), Policy(), None, jobs=1
+    )
+    assert not any("dead-unit: not judged" in note for note in merged.notes)

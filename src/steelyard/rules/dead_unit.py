@@ -18,7 +18,11 @@ b' = (b−μ)·γ/sqrt(var+ε) + β), because that is what the deployed unit com
 * *silenced*: the unit's normalisation scale |γ_j| <= ``silenced`` 1e-3 × the layer's median
   |γ|: its output is then the constant β_j.
 
-Embeddings are skipped (a zero row is usually a padding index, by design).
+Embeddings are skipped (a zero row is usually a padding index, by design). So are the layers
+of a LoRA/DoRA adapter read without its base: their weight is the update ΔW, and a zero row of
+an update leaves its unit as the base model has it, which is no dead unit (a note says so;
+``adapter-update`` reports an update that is zero as a whole, and ``--base`` judges the
+merged layers as any others).
 
 **One dead channel, one finding.** A channel-wise convolution (depthwise: one input channel
 per group, as in MobileNet-style blocks) computes its output channel o from input channel
@@ -56,6 +60,7 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
+from steelyard.loaders.adapter.model import adapter_of
 from steelyard.numbers import count
 from steelyard.rules._bounds import IntervalBounds, finite_range
 from steelyard.rules.base import (
@@ -165,7 +170,7 @@ def dead_units(
     Embeddings have none (a zero row is usually a padding index); recurrent layers get the
     *constant* test only. The per-layer interval bounds are built once per ``ctx.stats``.
     """
-    if layer.kind is LayerKind.EMBEDDING:
+    if layer.kind is LayerKind.EMBEDDING or is_update_alone(ctx, layer):
         return DeadUnits()
     limits = (settings or RuleSettings(RULE, ctx.policy)).for_layer(layer)
     tests: dict[str, frozenset[int]] = {"constant": frozenset(_constant(ctx, limits, layer))}
@@ -225,11 +230,25 @@ def _store(ctx: AuditContext) -> _Store:
     return ctx.stats.shared(f"{RULE.name}:dead", _Store)
 
 
+def is_update_alone(ctx: AuditContext, layer: Layer) -> bool:
+    """Whether ``layer`` is an adapter's update ΔW read without the base it adapts."""
+    info = adapter_of(ctx.checkpoint)
+    return info is not None and info.base is None and layer.name in info.modules
+
+
 def check_layer(
     ctx: AuditContext, settings: RuleSettings[DeadUnitSettings], layer: Layer
 ) -> Iterator[Finding]:
     """Find one layer's dead units and keep them for :func:`finish`, which reports each dead
     channel once across a channel-wise (depthwise) convolution and the layer feeding it."""
+    if is_update_alone(ctx, layer):
+        ctx.notes.add(
+            RULE.name,
+            "not judged on an adapter's updates read without their base: a zero row of an "
+            "update leaves its unit as the base has it (pass --base to judge the merged layers)",
+            layer.name,
+        )
+        return
     found = dead_units(ctx, layer, settings)
     if not found.units:
         return

@@ -68,6 +68,7 @@ from steelyard.rules.base import (
     threshold,
 )
 from steelyard.rules.scoring import score
+from steelyard.stats.low_rank import column_squares, factor_squares
 from steelyard.stats.numerics import sums_of_squares
 from steelyard.stats.passes import Blocks
 from steelyard.streaming import row_blocks
@@ -294,24 +295,24 @@ def none_can_stand_out(
     float32 as stored) can pass both of :func:`measure`'s tests, so it would find none.
 
     By Cauchy–Schwarz |W_jk| <= ‖left_j‖·‖right_k‖. The row test needs |W_jk| above row j's
-    limit, the column test W_jk²·(units − 1 + σ²) >= σ²·C_k, C_k = Σ_j W_jk² taken exactly from
-    the factors as rightₖᵀ (leftᵀ left) rightₖ. A weight can pass both only where the bound
-    reaches both thresholds; rows sorted by ‖left_j‖ answer that for every column at once. A
-    row whose left factor is zero holds only zeros, which the strict row test never takes. An
-    adapter's update of 11,008 × 4,096 from rank-16 factors is then settled at
-    O((units + fan_in)·r²) instead of a pass over 45M products; an outlier input column (a
-    column large in every row) fails the column test everywhere, and is settled too."""
+    limit, the column test W_jk²·(units − 1 + σ²) >= σ²·C_k, C_k = Σ_j W_jk² taken exactly
+    from the factors (:func:`steelyard.stats.low_rank.column_squares`). A weight can pass
+    both only where the bound reaches both thresholds; rows sorted by ‖left_j‖ answer that for
+    every column at once. A row whose left factor is zero holds only zeros, which the strict
+    row test never takes. An adapter's update of 11,008 × 4,096 from rank-16 factors is then
+    settled at O((units + fan_in)·r²) instead of a pass over 45M products; an outlier input
+    column (a column large in every row) fails the column test everywhere, and is settled
+    too."""
     units, fan_in = left.shape[0], right.shape[1]
     if units < _MIN_SIDE or fan_in < _MIN_SIDE:
         return True
     s2 = sigma * sigma
     room = 1 + _ROUNDING_ROOM
     limit = _row_limits(np.asarray(row_squares, np.float64), fan_in, s2).astype(np.float64)
-    row_length = np.sqrt(np.einsum("jr,jr->j", left, left))
-    column_length = np.sqrt(np.einsum("rk,rk->k", right, right))
+    row_length, column_length = (np.sqrt(squares) for squares in factor_squares(left, right))
     if np.all((row_length == 0) | (row_length * column_length.max(initial=0.0) * room < limit)):
         return True  # the row test alone rules every weight out
-    columns = np.maximum(np.einsum("rk,rk->k", (left.T @ left) @ right, right), 0.0)
+    columns = column_squares(left, right)
     # |W_jk| must reach this for the column test (C_k a little low: float32 rounding of W)
     needed = np.sqrt(s2 * columns * (1 - _ROUNDING_ROOM) / (units - 1 + s2))
     live = column_length > 0  # a zero column holds zeros only

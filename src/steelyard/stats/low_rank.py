@@ -18,6 +18,17 @@ import numpy as np
 NO_OVERFLOW = 1e38
 
 
+def factor_squares(left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(‖L_j‖² per row of ``left``, ‖R_k‖² per column of ``right``): every entry of the
+    product obeys ΔW_jk² <= ‖L_j‖²·‖R_k‖² (Cauchy–Schwarz)."""
+    return np.einsum("jr,jr->j", left, left), np.einsum("rk,rk->k", right, right)
+
+
+def column_squares(left: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """Σ_j ΔW_jk² per column of ΔW = left·right, as R_kᵀ (Lᵀ L) R_k, float64."""
+    return np.maximum(np.einsum("rk,rk->k", (left.T @ left) @ right, right), 0.0)
+
+
 def factor_sums(
     left: np.ndarray, right: np.ndarray, with_columns: bool
 ) -> tuple[np.ndarray, np.ndarray | None] | None:
@@ -33,12 +44,10 @@ def factor_sums(
         return None
     if not (np.isfinite(left).all() and np.isfinite(right).all()):
         return None
-    longest_row = float(np.einsum("jr,jr->j", left, left).max(initial=0.0))
-    longest_column = float(np.einsum("rk,rk->k", right, right).max(initial=0.0))
+    row_lengths, column_lengths = factor_squares(left, right)
+    longest_row = float(row_lengths.max(initial=0.0))
+    longest_column = float(column_lengths.max(initial=0.0))
     if not math.sqrt(longest_row * longest_column) < NO_OVERFLOW:
         return None
     rows = np.maximum(np.einsum("jr,jr->j", left @ (right @ right.T), left), 0.0)
-    if not with_columns:
-        return rows, None
-    columns = np.maximum(np.einsum("rk,rk->k", (left.T @ left) @ right, right), 0.0)
-    return rows, columns
+    return rows, column_squares(left, right) if with_columns else None

@@ -183,7 +183,9 @@ class WeightPasses:
         units, fan_in = layer.units, layer.fan_in
         # A low-rank product is never assembled, however small: its summary comes from the
         # factors, and a rule's pass over it computes each row block once, for that pass.
-        if source is None or (4 * units * fan_in <= self.stream_bytes and source[0].factors is None):
+        if source is None:
+            return None
+        if 4 * units * fan_in <= self.stream_bytes and source[0].factors is None:
             return None
         if self.cache.get(("matrix", layer.name)) is not None:
             return None

@@ -138,6 +138,7 @@ def test_confirmation_work_is_bounded_by_the_bucket_cap(
     assert tally.largest <= BUCKET_CAP
     # The documented bound: at most 4·BUCKET_CAP dot products per row and table.
     assert 0 < tally.dots <= tally.planned <= 4 * BUCKET_CAP * tally.tables * n
+    assert tally.confirmed <= tally.planned  # pairs past the screen, each confirmed once
     assert tally.dots <= confirmation_bound(n, tally.tables)
     assert tally.split > 0 and tally.banded > 0
     a, b, _ = exact_pairs(Rows.of(rows), THRESHOLD)
@@ -221,3 +222,51 @@ def test_hashed_findings_are_the_same_for_one_and_two_jobs(tmp_path: Path) -> No
     path, _ = _near_duplicate_mlp(tmp_path)
     one = _findings(path, 16, jobs=1)
     assert one and one == _findings(path, 16, jobs=2)
+
+
+@pytest.mark.parametrize("negative", [False, True])
+def test_rows_sharing_a_bias_are_screened_on_their_projections_and_lose_no_pair(
+    negative: bool,
+) -> None:
+    # Every row carries the same large extra entry (a bias of about 1 beside weights of norm
+    # about 1, as in an invented checkpoint whose biases were drawn around 1): rows sit at
+    # cosine ~0.5 from each other and crowd the buckets. The screen on the hashing's own
+    # projections must drop those pairs before any row is gathered, and keep every planted
+    # twin (reference: the exact blocked search on the same rows).
+    rng = np.random.default_rng(41)
+    units, width = 3000, 96
+    weights = rng.normal(size=(units, width)) / np.sqrt(width)
+    bias = 1.0 + 0.05 * rng.normal(size=units)
+    full = np.concatenate([weights, bias[:, None]], axis=1)
+    pairs = rng.permutation(units)[:400].reshape(-1, 2)
+    for (a, b), cos in zip(pairs, rng.uniform(THRESHOLD, 1.0, len(pairs)), strict=True):
+        full[b] = _at_cosine(rng, full[a], cos) * rng.uniform(0.5, 2.0)
+    full = full.astype(np.float32)
+    view = Rows(
+        np.ascontiguousarray(full[:, :-1]),
+        np.sqrt(np.einsum("ij,ij->i", full, full, dtype=np.float64)),
+        extra=np.ascontiguousarray(full[:, -1]),
+    )
+    tally = Tally()
+    first, second, _ = candidate_pairs(view, THRESHOLD, negative, tally=tally)
+    a, b, _ = exact_pairs(full, THRESHOLD, negative)
+    assert tally.method == "hashed"
+    assert np.array_equal(first, a) and np.array_equal(second, b) and a.size >= 200
+    # Crowded: many colliding pairs per row, but only about the twins reach the rows.
+    assert tally.planned > 20 * units
+    assert a.size <= tally.confirmed <= 2 * a.size
+
+
+def test_a_cluster_of_copies_is_confirmed_by_gram_products_not_pair_by_pair(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Most colliding pairs of a cluster pass the screen; confirming them one by one would cost
+    # more than the buckets' Gram products on the rows, which the search then uses.
+    monkeypatch.setattr(_similarity, "BUCKET_DOT_COST", 0.0)
+    rng = np.random.default_rng(42)
+    rows = _planted(rng, "clustered", 3000, 64)
+    tally = Tally()
+    first, second, _ = candidate_pairs(Rows.of(rows), THRESHOLD, tally=tally)
+    assert tally.method == "hashed" and tally.confirmed == 0
+    a, b, _ = exact_pairs(Rows.of(rows), THRESHOLD)
+    assert max(_groups(first, second, 3000), key=len) == max(_groups(a, b, 3000), key=len)

@@ -56,6 +56,9 @@ def bucket_hits(
 
 #: Float32 bytes of the gathered rows of one stack of buckets.
 STACK_BYTES = 2**21
+#: Largest bucket of a stack over its smallest: every bucket is padded to the largest, so a
+#: stack of 5-row buckets ending in a 100-row one would compute 400 × the products it keeps.
+STACK_SPREAD = 1.5
 
 
 def _stacked_hits(
@@ -80,9 +83,10 @@ def _stacked_hits(
         widest = int(sizes[by_size[min(by_size.size, at + 1) - 1]])
         # as many buckets as fit the budget at the size of the largest one taken so far
         count = 1
+        smallest = int(sizes[by_size[at]])
         while at + count < by_size.size:
             widest = int(sizes[by_size[at + count]])
-            if (count + 1) * widest * width * 4 > STACK_BYTES:
+            if (count + 1) * widest * width * 4 > STACK_BYTES or widest > STACK_SPREAD * smallest:
                 break
             count += 1
         chosen = by_size[at : at + count]

@@ -137,3 +137,6 @@ class Tally:
     """Buckets split by raising their key length."""
     banded: int = 0
     """Rows of buckets still above BUCKET_CAP at the longest key (compared within a band)."""
+    confirmed: int = 0
+    """Pairs the hashed search's bucket screen passed, confirmed from the rows themselves
+    (their dot products are not in ``dots``, which counts the screen's)."""

@@ -41,10 +41,23 @@ square of the bucket sizes. Instead:
    members from its start: every pair of a bucket up to 512 rows, a band of the Gram matrix
    beyond, which still gives each member its capped partners when the cluster is of copies.
 
-Steps 2 and 4 are :mod:`steelyard.rules._bucket_gram`'s; its buckets of similar sizes share
-one gather and one batched product (a 4096 × 1024 layer of correlated rows: 96 → 68 ms).
+Steps 2 and 4 are :mod:`steelyard.rules._bucket_gram`'s; its buckets of similar sizes (the
+largest at most ``STACK_SPREAD`` × the smallest) share one gather and one batched product.
 Hence at most ``BAND``·``BUCKET_CAP`` float32 dot products per row and table
-(:func:`confirmation_bound`, counted in :class:`Tally`), whatever the weights. The plan is
+(:func:`confirmation_bound`, counted in :class:`Tally`), whatever the weights.
+
+**The screen.** Steps 1–4 compare the rows' *projections*, not the rows: the first
+``SCREEN_MOST`` (256) of the hashing's own Gaussian projections (176 at the default cosine),
+normalised, against :func:`steelyard.rules._screen.screen_limit` for that many directions
+(0.967 at cosine 0.995). A pair at the threshold falls below it with chance at most 1e-9,
+whatever the rows (a chi-square tail bound; see that module), and since the screen looks at
+the same projections whichever table the pair collided in, the chance that a pair at the
+threshold is missed is at most 1e-4 (no table) + 1e-9 (the screen), by the union bound; no
+independence is needed. Only the distinct pairs that pass are confirmed from the rows (two
+gathered rows each, :func:`pair_hits`, then float64 near the threshold as before). Rows that
+share a direction (a common bias, outlier input columns) crowd the buckets with pairs that
+are far from twins; comparing them 176 numbers wide instead of ``fan_in`` + 1 made such a
+4096 × 1024 layer 87 → 29 ms on one thread (docs/performance.md, "Fifteenth session"). The plan is
 counted before any product is computed; when it times ``BUCKET_DOT_COST`` (3; the measured
 time of a bucket confirmation's dot against one in the exact search's large blocks: 2.2–9)
 exceeds the exact search's dot products, the exact search runs instead, so the cost is the
@@ -71,9 +84,18 @@ from steelyard.rules._rows import (
     off_scale,
     passing,
 )
+from steelyard.rules._screen import screen_limit, units_of
 
 #: Working-set bytes for one Gram block (rows of the block × all later rows, float32).
 BLOCK_BYTES = 32 * 2**20
+#: Bytes of the rows gathered for a batch of pairs: small enough to stay in the core's cache
+#: (4096 pairs of 1024-wide rows: 0.48 µs a pair at 2^19, 1.23 µs at 2^25, one thread).
+PAIR_BYTES = 2**19
+#: A pair confirmed from its two gathered rows costs about this many dot products of a bucket's
+#: Gram product (measured on clusters of near copies, one thread: 10 at fan-in 1024, 12 at
+#: 4096); when more pairs pass the bucket screen than the plan's dot products over this, the
+#: buckets are confirmed from the rows instead (most colliding pairs there are twins).
+PAIR_DOT_COST = 12.0
 #: Recall the candidate search is designed for at the threshold angle (see module docstring).
 DESIGN_RECALL = 0.9999
 #: The recall the rule documents per layer, which ``bench/twin_recall.py`` checks (exit 1 below
@@ -95,6 +117,8 @@ BUCKET_DOT_COST = 3.0
 #: A Gram search of the given members of the rows: (first, second, cosine) of every pair
 #: past the threshold, as :func:`exact_pairs` gives them.
 Pairs = tuple[np.ndarray, np.ndarray, np.ndarray]
+#: Most of the hashing projections the bucket screen uses (its memory is n × this × 4 bytes).
+SCREEN_MOST = 256
 Searcher = Callable[["Rows", np.ndarray, float, bool, "Tally"], Pairs]
 
 
@@ -162,7 +186,7 @@ def _settle(
     cos = rough.astype(np.float64)
     near = np.flatnonzero(np.abs(np.abs(cos) - threshold) < SLACK)
     width = rows.matrix.shape[1] + 1
-    step = max(1, BLOCK_BYTES // (16 * width))
+    step = max(1, PAIR_BYTES // (16 * width))
     with np.errstate(divide="ignore", invalid="ignore"):
         for start in range(0, near.size, step):
             pick = near[start : start + step]
@@ -322,7 +346,7 @@ def pair_hits(
     n = view.count
     first, second = codes // n, codes % n
     width = view.matrix.shape[1] + (0 if view.extra is None else 1)
-    step = max(1, BLOCK_BYTES // (8 * width))
+    step = max(1, PAIR_BYTES // (8 * width))
     rough = np.empty(codes.size, dtype=np.float32)
     inverse = inverse_norms(view.norms)
     odd = off_scale(view.norms)
@@ -361,7 +385,8 @@ def candidate_pairs(
     tally.bits, tally.tables = bits, tables
     # Every table's hyperplanes in one matrix, so the projection is a single BLAS product.
     planes = gaussian_planes((seed,), width, bits * tables)
-    signs = view.project(planes) > 0
+    projected = view.project(planes)
+    signs = projected > 0
     outside = None if usable is None else ~np.asarray(usable, dtype=bool)
     buckets = [
         _table_buckets(view, signs[:, t * bits : (t + 1) * bits], negative, outside, t, seed, tally)
@@ -370,24 +395,79 @@ def candidate_pairs(
     del signs
     # True twins collide in most tables: list the small buckets' pairs once.
     paired = np.unique(np.concatenate([_small_pairs(*b) for b in buckets]))
-    tally.planned = paired.size + sum(_planned_dots(np.bincount(b)) for b, _order in buckets)
+    planned = [_planned_dots(np.bincount(b)) for b, _order in buckets]
+    tally.planned = paired.size + sum(planned)
     if tally.planned * BUCKET_DOT_COST > exact_dots(members.size):
         return (instead or exact_among)(view, members, threshold, negative, tally)
     tally.method = "hashed"
+    # The buckets are compared on the projections that keyed them (the first SCREEN_MOST,
+    # normalised), and only the pairs that pass the screen are confirmed from the rows
+    # themselves (see the module docstring, "The screen").
+    short = min(projected.shape[1], SCREEN_MOST)
+    limit = screen_limit(threshold, short)
+    first_table = None
+    if limit > 0:
+        kept = np.ascontiguousarray(projected[:, :short])
+        on = Rows.of(units_of(view, np.arange(n), kept, planes[:, :short]))
+        # The first table tells whether most colliding pairs pass the screen (a cluster of
+        # near copies): Gram products of the buckets' rows then cost less than confirming
+        # the pairs one by one.
+        probe = Tally()
+        with blas_threads(1):
+            first_table = bucket_hits(on, buckets[0], limit, negative, probe)
+        passed = sum(part.size for part in first_table[0])
+        if passed * PAIR_DOT_COST > max(1, planned[0]):
+            on, first_table = view, None  # (the probe's products are not counted then)
+        else:
+            tally.dots += probe.dots
+            tally.largest = max(tally.largest, probe.largest)
+            tally.banded += probe.banded
+    else:
+        on = view
+    del projected
+    screened = on is not view
+    code, rough = _bucket_pairs(
+        on, buckets, paired, limit if screened else threshold, negative, tally, first_table
+    )
+    if screened:
+        tally.confirmed = int(code.size)
+        first, second, rough = pair_hits(view, code, threshold, negative, Tally())
+    else:
+        first, second = code // n, code % n
+    if not first.size:
+        return EMPTY, EMPTY, np.zeros(0)
+    return capped_settle(view, first, second, rough, threshold, negative)
+
+
+def _bucket_pairs(
+    view: Rows,
+    buckets: list[tuple[np.ndarray, np.ndarray]],
+    paired: np.ndarray,
+    threshold: float,
+    negative: bool,
+    tally: Tally,
+    first_table: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Codes ``i·n + k`` (sorted, distinct) of the colliding pairs of ``view``'s rows that
+    pass the float32 filter at ``threshold``, with their float32 cosines: the small buckets'
+    listed ``paired`` codes, then every table's larger buckets (the first table's already
+    found when ``first_table`` is given)."""
+    n = view.count
     found: tuple[list[np.ndarray], list[np.ndarray], list[np.ndarray]] = ([], [], [])
     keep(found, *pair_hits(view, paired, threshold, negative, tally))
     # Bucket products are small: OpenBLAS threads would cost more than they do (measured: a
     # 32-row bucket of width 1024 took 8.8 ms on two threads, 0.2 ms on one).
     with blas_threads(1):
-        for bucket in buckets:
-            hits = bucket_hits(view, bucket, threshold, negative, tally)
+        for number, bucket in enumerate(buckets):
+            if number == 0 and first_table is not None:
+                hits = first_table
+            else:
+                hits = bucket_hits(view, bucket, threshold, negative, tally)
             for into, part in zip(found, hits, strict=True):
                 into += part
     if not found[0]:
-        return EMPTY, EMPTY, np.zeros(0)
+        return EMPTY, np.zeros(0, np.float32)
     code, where = np.unique(
         np.concatenate(found[0]) * n + np.concatenate(found[1]), return_index=True
     )
-    first, second = code // n, code % n
-    return capped_settle(view, first, second, np.concatenate(found[2])[where], threshold, negative)
-
+    return code, np.concatenate(found[2])[where]

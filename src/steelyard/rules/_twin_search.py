@@ -18,12 +18,12 @@ after all.
 from __future__ import annotations
 
 import functools
-import math
 
 import numpy as np
 
-from steelyard.rules._planes import gaussian_planes
-from steelyard.rules._rows import EMPTY, Rows, Tally, normalise, off_scale
+from steelyard.rules._rows import EMPTY, Rows, Tally
+from steelyard.rules._screen import SCREEN_DIMENSIONS as SCREEN_DIMENSIONS
+from steelyard.rules._screen import projected_units, screen_limit
 from steelyard.rules._similarity import (
     BUCKET_DOT_COST,
     candidate_pairs,
@@ -33,10 +33,6 @@ from steelyard.rules._similarity import (
     pair_hits,
 )
 
-#: Gaussian directions the screened Gram search projects the rows onto (see :func:`screen_limit`).
-SCREEN_DIMENSIONS = 128
-#: Chance, per pair at the threshold, that the screen drops it (designed; see screen_limit).
-SCREEN_MISS = 1e-9
 #: The screen runs on rows of at least ``SCREEN_WIDTH`` entries when its multiply-adds, times
 #: ``SCREEN_COST``, are fewer than the full Gram's (whose search also copies every row
 #: normalised). Measured on one thread, 128-512 rows of 256-4608 i.i.d. entries: the screen
@@ -44,27 +40,6 @@ SCREEN_MISS = 1e-9
 #: 1.11, 192 x 576), and 0.91-1.32 where it does not (docs/performance.md, "Twelfth session").
 SCREEN_COST = 0.8
 SCREEN_WIDTH = 512
-
-
-def screen_limit(
-    threshold: float, dimensions: int = SCREEN_DIMENSIONS, miss: float = SCREEN_MISS
-) -> float:
-    """The projected cosine that every pair at cosine >= ``threshold`` keeps but with chance
-    ``miss``, after projecting both rows onto ``dimensions`` i.i.d. N(0, 1) directions.
-
-    For unit rows u, v at cosine c and a Gaussian G [d, k], X = Gᵀu and Y = Gᵀv are standard
-    normal in k dimensions, so A = ‖X − Y‖²/(2(1 − c)), B = ‖X‖² and C = ‖Y‖² are χ²_k, and
-    since (B + C)/(2√(BC)) >= 1 the projected cosine is at least 1 − (1 − c)·A/√(BC).
-    Laurent & Massart (2000, Ann. Statist. 28, Lemma 1) bound P(A >= k + 2√(kx) + 2x) and
-    P(B <= k − 2√(kx)) by e^(−x) each; with x = ln(3/miss) all three hold together but with
-    chance ``miss``, and then 1 − cos' <= (1 − c)·a/b. The rows' own distribution does not
-    enter: the bound holds for every pair. −1 when k is too small for any bound."""
-    x = math.log(3.0 / miss)
-    upper = dimensions + 2.0 * math.sqrt(dimensions * x) + 2.0 * x
-    lower = dimensions - 2.0 * math.sqrt(dimensions * x)
-    if lower <= 0:
-        return -1.0
-    return max(-1.0, 1.0 - (1.0 - threshold) * upper / lower)
 
 
 def screen_pays(count: int, width: int) -> bool:
@@ -82,17 +57,9 @@ def gram_search(
     if not screen_pays(members.size, width):
         return exact_among(rows, members, threshold, negative, tally)
     limit = screen_limit(threshold)
-    planes = gaussian_planes((seed, SCREEN_DIMENSIONS), width, SCREEN_DIMENSIONS)
-    everyone = members.size == rows.count
-    projected = rows.project(planes) if everyone else rows.project_rows(members, planes)
-    # Rows far from unit scale are projected normalised: float32 products of rows of
-    # subnormals would lose the digits the screen needs.
-    odd = np.flatnonzero(off_scale(rows.norms[members]))
-    if odd.size:
-        projected[odd] = rows.unit(members[odd]) @ planes
-    short = normalise(projected)[0]
+    short = projected_units(rows, members, seed)
     gram = short @ short.T
-    tally.dots += int(projected.size) + int(gram.size)
+    tally.dots += int(short.size) + int(gram.size)
     mask = gram >= limit
     if negative:
         mask |= gram <= -limit

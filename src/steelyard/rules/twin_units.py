@@ -53,14 +53,21 @@ evidence then says ``screened`` (a 512 × 4608 layer: 18 against 7 ms). Wider la
 sub-quadratic candidate search: random-hyperplane sign hashing (SimHash, Charikar 2002) over
 several tables sized so that a pair exactly at the threshold collides in some table with
 probability >= 0.9999 (16 bits × 11 tables at cosine 0.995: 176 projections per row, one BLAS
-product, n·d·176). Candidates are confirmed in blocks, never one pair at a time across the
+product, n·d·176). Candidates are compared in blocks, never one pair at a time across the
 layer: the pairs of buckets of up to 4 rows are deduplicated across tables and confirmed once;
 a larger bucket gets one Gram product per table. *Bucket cap:* a bucket of more than 128 rows
 (rows that share directions, as trained rows do, or near copies) gets a longer key for its
 rows only, 4 more bits at a time up to 24 more; a bucket still larger (its rows agree on 40
 random hyperplanes: a cluster of near copies) compares each run of 128 members with the 512
-members from its start (all pairs up to 512 members, a band beyond). Confirmation thus costs
-at most 4 · 128 dot products per row and table whatever the weights; when the planned dot
+members from its start (all pairs up to 512 members, a band beyond). Buckets are compared on
+the rows' hashing projections (176 numbers, normalised), against the same chi-square screen
+limit (0.967 at the default cosine for 176 directions): rows that share a direction (a
+common bias, outlier input columns) crowd the buckets with pairs far from twins, and only the
+pairs that pass are confirmed from the rows themselves; a pair at the threshold is missed by
+the screen with chance at most 1e-9 on top of the hashing's 1e-4 (union bound). When most
+colliding pairs pass (a cluster of near copies, judged on the first table) the buckets' rows
+are compared directly instead. Confirmation thus costs at most 4 · 128 dot products per row
+and table whatever the weights; when the planned dot
 products, times 3 (their measured cost against the exact search's large blocks), exceed the
 exact search's, the layer is searched exactly (or screened) instead (the evidence says which).
 Seeded, so deterministic. Each row keeps its first 64 later partners and its first earlier

@@ -398,3 +398,37 @@ def test_a_layer_of_copies_stays_one_group(tmp_path: Path, limit: int) -> None:
     findings = _run(_write(tmp_path, t), Policy(rules={RULE.name: {"exact-limit": limit}}))
     assert [f.units for f in findings] == [tuple(range(300))]
     assert findings[0].evidence["merge"]["dropped"] == 299
+
+
+@pytest.mark.parametrize("act", ["relu", "gelu"])
+def test_many_twin_pairs_screened_together_give_the_per_group_findings(
+    tmp_path: Path, act: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A layer widened by duplicating units (each copy scaled, as a widening step makes them),
+    # its consumer splitting each pair's weight in one of four ways: evenly, lopsided beyond
+    # the ratio, just inside and just beyond it (3.99 and 4.01), cancelling, or not read at
+    # all. The batch screen of two-member groups may only skip the pairs the per-group path
+    # would not report: the findings must be the same with the screen switched off.
+    rng = np.random.default_rng(7)
+    base, copies = 300, 240
+    t = _mlp(rng, inputs=48, hidden=base, out=32)
+    w1, b1, w2 = t["fc1.weight"], t["fc1.bias"], t["fc2.weight"]
+    sources = rng.permutation(base)[:copies]
+    scale = rng.uniform(0.5, 2.0, copies) if act == "relu" else np.ones(copies)
+    w1 = np.concatenate([w1, scale[:, None] * w1[sources]])
+    b1 = np.concatenate([b1, scale * b1[sources]])
+    split = rng.choice([1.0, 0.1, 1 / 3.99, 1 / 4.01, -0.9, 0.0], copies)
+    new_columns = w2[:, sources] * split / scale
+    new_columns[:, split == 0.0] = 0.0
+    w2[:, sources[split == 0.0]] = 0.0  # neither copy read
+    w2 = np.concatenate([w2, new_columns], axis=1)
+    t = {"fc1.weight": w1, "fc1.bias": b1, "fc2.weight": w2, "fc2.bias": t["fc2.bias"]}
+    path = _write(tmp_path, t, act)
+    screened = _run(path)
+    from steelyard.rules import twin_units
+
+    monkeypatch.setattr(twin_units, "_quiet_pairs", lambda *args: set())
+    unscreened = _run(path)
+    assert [(f.units, f.evidence) for f in screened] == [(f.units, f.evidence) for f in unscreened]
+    kinds = {f.evidence["kind"] for f in screened}
+    assert kinds == {"lopsided", "cancelling"} and len(screened) >= copies // 3

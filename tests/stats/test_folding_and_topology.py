@@ -5,9 +5,11 @@ of a channels-last flattening (Keras ``Flatten`` order, common practice, no sour
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
-from steelyard.graph import Activation
+from steelyard.graph import Activation, LayerKind
 from steelyard.stats import LayerStats, fold_scale
 from tests.stats._graph import Reads, batch_norm, checkpoint, dense, stored
 
@@ -112,9 +114,30 @@ def test_column_norms_of_a_concatenation_and_a_channels_last_flattening(
     # concatenation [a | b]: a's units are columns 0..2, b's 3..6
     assert np.allclose(stats.column_norms(lb, lc), np.linalg.norm(c[:, 3:], axis=0))
     assert np.array_equal(stats.consumer_block(la, lc), concat.read()[:, :3].T)
+    assert np.array_equal(stats.consumer_block(lb, lc), concat.read()[:, 3:].T)
     # channels-last flattening of 4 positions × 3 channels: input s·3 + u belongs to unit u
     f = flat.read().astype(np.float64).reshape(2, 4, 3)
     assert np.allclose(stats.column_norms(la, lf), np.sqrt((f**2).sum(axis=(0, 1))))
     assert stats.consumer_block_width(la, lf) == 2 * 4
     assert stats.producers(lc) == [la, lb] and stats.consumers(la) == [lc, lf]
     assert la.activation is Activation.RELU and stats.inputs_non_negative(lc)  # ReLU ≥ 0
+
+
+def test_a_convolution_consumer_block_is_every_kernel_weight_reading_the_unit(
+    rng: np.random.Generator,
+) -> None:
+    # A 3 × 3 convolution over the concatenation [a | b] (3 + 4 channels): unit u of b is read
+    # by w[:, 3 + u, :, :] (reference: numpy slicing of the stored [out, in, kh, kw] kernel).
+    reads = Reads()
+    a = stored("a.weight", rng.normal(size=(3, 2)).astype(np.float32), reads)
+    b = stored("b.weight", rng.normal(size=(4, 2)).astype(np.float32), reads)
+    kernel = rng.normal(size=(5, 7, 3, 3)).astype(np.float32)
+    conv = stored("c.weight", kernel, reads)
+    layers = [dense("a", a), dense("b", b), dense("c", conv, inputs_from=["a", "b"])]
+    layers[2] = replace(layers[2], kind=LayerKind.CONV, in_per_group=7, kernel=(3, 3))
+    stats = LayerStats(checkpoint([a, b, conv], layers))
+    la, lb, lc = layers
+    for producer, channels in ((la, slice(0, 3)), (lb, slice(3, 7))):
+        expected = kernel[:, channels].transpose(1, 0, 2, 3).reshape(producer.units, -1)
+        assert np.array_equal(stats.consumer_block(producer, lc), expected)
+    assert stats.consumer_block_width(lb, lc) == 5 * 9

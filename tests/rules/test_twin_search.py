@@ -270,3 +270,28 @@ def test_a_cluster_of_copies_is_confirmed_by_gram_products_not_pair_by_pair(
     assert tally.method == "hashed" and tally.confirmed == 0
     a, b, _ = exact_pairs(Rows.of(rows), THRESHOLD)
     assert max(_groups(first, second, 3000), key=len) == max(_groups(a, b, 3000), key=len)
+
+
+@pytest.mark.parametrize("negative", [False, True])
+def test_crowded_gram_blocks_apply_the_partner_cap_on_the_mask_with_the_same_result(
+    negative: bool, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Rows of weights that are zero (or constant) beside a bias are all parallel: every pair
+    # is a hit, and the exact search caps them on the block's mask instead of listing them.
+    # The kept pairs must be those of the listed path, near-threshold pairs included.
+    rng = np.random.default_rng(43)
+    units, width = 1800, 48
+    rows = rng.normal(size=(units, width))
+    crowd = rng.permutation(units)[:1300]
+    anchor = rows[crowd[0]]
+    for member in crowd[1:]:
+        cos = rng.choice([rng.uniform(0.9999, 1.0), rng.uniform(THRESHOLD - 2e-4, THRESHOLD + 2e-4)])
+        rows[member] = _at_cosine(rng, anchor, cos) * rng.uniform(0.5, 2.0)
+        if negative and rng.random() < 0.3:
+            rows[member] *= -1.0
+    crowded = exact_pairs(Rows.of(rows), THRESHOLD, negative)
+    monkeypatch.setattr(_similarity, "_CROWDED_ROW", 10**12)
+    listed = exact_pairs(Rows.of(rows), THRESHOLD, negative)
+    assert crowded[0].size > 20_000
+    for a, b in zip(crowded, listed, strict=True):
+        assert np.array_equal(a, b)

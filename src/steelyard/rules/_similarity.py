@@ -141,6 +141,31 @@ def _partner_mask(
     return np.asarray(keep)
 
 
+#: Hits per row of a Gram block beyond which the partner cap is applied on the block's mask
+#: (:func:`_capped_mask`) rather than on the listed hits: a layer whose rows are all nearly
+#: parallel (weights zero or constant beside a bias) has n²/2 of them.
+_CROWDED_ROW = 4 * PARTNERS
+
+
+def _capped_mask(
+    mask: np.ndarray, gram: np.ndarray, start: int, threshold: float, negative: bool,
+    seen: np.ndarray,
+) -> np.ndarray:
+    """The hits of ``mask`` that :func:`_partner_mask` keeps, found on the block's mask
+    itself: each row's first ``PARTNERS`` (a running count along the row), every uncertain
+    hit of a column not yet ``seen``, and the first certain hit, in row order, of each such
+    column; ``seen`` is updated as :func:`_partner_mask` updates it. The same hits, without
+    listing the millions a crowded block holds."""
+    keep = mask & (np.cumsum(mask, axis=1, dtype=np.int32) <= PARTNERS)
+    unseen = ~seen[start:]
+    certain = mask & passing(gram, threshold + 2 * SLACK, negative)
+    keep |= mask & ~certain & unseen[None, :]
+    columns = np.flatnonzero(unseen & certain.any(axis=0))
+    keep[np.argmax(certain[:, columns], axis=0), columns] = True
+    seen[start + columns] = True
+    return keep
+
+
 def _gram_hits(
     unit: np.ndarray, threshold: float, negative: bool, tally: Tally
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -156,11 +181,18 @@ def _gram_hits(
         stop = min(n, start + block)
         gram = unit[start:stop] @ unit[start:].T  # [block, n - start]
         tally.dots += int(gram.size)
-        hits = np.argwhere(passing(gram, threshold, negative))
-        hits = hits[hits[:, 1] > hits[:, 0]]  # column c is row start + c: keep k > i only
-        rough = gram[hits[:, 0], hits[:, 1]]
-        certain = passing(rough, threshold + 2 * SLACK, negative)
-        keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
+        mask = passing(gram, threshold, negative)
+        # column c is row start + c: keep k > i only
+        mask &= np.arange(gram.shape[1])[None, :] > np.arange(gram.shape[0])[:, None]
+        if np.count_nonzero(mask) > _CROWDED_ROW * mask.shape[0]:
+            hits = np.argwhere(_capped_mask(mask, gram, start, threshold, negative, seen))
+            rough = gram[hits[:, 0], hits[:, 1]]
+            keep = np.ones(hits.shape[0], dtype=bool)
+        else:
+            hits = np.argwhere(mask)
+            rough = gram[hits[:, 0], hits[:, 1]]
+            certain = passing(rough, threshold + 2 * SLACK, negative)
+            keep = _partner_mask(hits[:, 0], hits[:, 1] + start, certain, seen)
         firsts.append(hits[keep, 0] + start)
         seconds.append(hits[keep, 1] + start)
         values.append(rough[keep])

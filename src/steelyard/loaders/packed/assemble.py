@@ -150,10 +150,11 @@ def unpack_checkpoint(
 ) -> tuple[dict[str, Tensor], list[str]]:
     """``tensors`` with each packed weight's parts replaced by its logical float weight,
     and notes for the report naming the layouts found. ``origin`` names each tensor's file."""
-    from steelyard.loaders.packed.builders import BUILDERS
-
     if not find_packed(tensors, Layout.GPTQ):  # side files are read only for packed files
         return dict(tensors), []
+    # The layouts' decoders only for a packed file (a float one skips their imports).
+    from steelyard.loaders.packed.builders import BUILDERS
+
     config = read_quant_config(checkpoint)
     modules = find_packed(tensors, detect_layout(tensors, config.settings))
     owner: dict[str, PackedModule] = {}

@@ -7,25 +7,29 @@ turn, and returns the :class:`~steelyard.graph.Checkpoint` of the first that rec
 from __future__ import annotations
 
 import importlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint
+from steelyard.loaders import signatures
 from steelyard.loaders.base import Loader
 from steelyard.safepath import kind_of, open_regular
 
-#: (module, class) of each loader, in sniffing order. Imported on first use so that a
-#: broken optional reader never stops the others.
-_REGISTRY: tuple[tuple[str, str], ...] = (
-    ("steelyard.loaders.adapter", "AdapterLoader"),
-    ("steelyard.loaders.safetensors", "SafetensorsLoader"),
-    ("steelyard.loaders.npz", "NpzLoader"),
-    ("steelyard.loaders.keras.archive", "KerasArchiveLoader"),
-    ("steelyard.loaders.pytorch.loader", "PytorchLoader"),
-    ("steelyard.loaders.keras.h5_loader", "KerasH5Loader"),
-    ("steelyard.loaders.onnx.loader", "OnnxLoader"),
-    ("steelyard.loaders.gguf", "GgufLoader"),
+#: (module, class, what the file's head must show) of each loader, in sniffing order. A loader
+#: is imported on first use, and only when its signature (a necessary condition of its
+#: ``sniff``, see :mod:`steelyard.loaders.signatures`) holds: an ONNX or GGUF file then never
+#: imports the Keras and PyTorch readers, and a broken optional reader never stops the others.
+#: None: the loader's own sniff is the test.
+_REGISTRY: tuple[tuple[str, str, Callable[[Path, bytes], bool] | None], ...] = (
+    ("steelyard.loaders.adapter", "AdapterLoader", signatures.adapter_candidate),
+    ("steelyard.loaders.safetensors", "SafetensorsLoader", None),
+    ("steelyard.loaders.npz", "NpzLoader", signatures.zip_archive),
+    ("steelyard.loaders.keras.archive", "KerasArchiveLoader", signatures.zip_archive),
+    ("steelyard.loaders.pytorch.loader", "PytorchLoader", signatures.torch_file),
+    ("steelyard.loaders.keras.h5_loader", "KerasH5Loader", signatures.has_hdf5_magic),
+    ("steelyard.loaders.onnx.loader", "OnnxLoader", signatures.onnx_model),
+    ("steelyard.loaders.gguf", "GgufLoader", signatures.gguf_file),
 )
 
 SUPPORTED = (
@@ -36,10 +40,13 @@ SUPPORTED = (
 _HEAD_BYTES = 4096
 
 
-def _each_loader() -> Iterator[Loader]:
+def _each_loader(path: Path | None = None, head: bytes = b"") -> Iterator[Loader]:
     """Every available loader, in sniffing order, each imported only when its turn comes: a
-    file the first loaders recognise never imports the others (docs/performance.md, Start-up)."""
-    for module_name, class_name in _REGISTRY:
+    file the first loaders recognise never imports the others (docs/performance.md, Start-up).
+    With ``path`` and ``head``, only the loaders whose signature they show."""
+    for module_name, class_name, signature in _REGISTRY:
+        if path is not None and signature is not None and not signature(path, head):
+            continue
         try:
             module = importlib.import_module(module_name)
         except ModuleNotFoundError as exc:
@@ -63,7 +70,7 @@ def sniff_format(path: Path) -> str | None:
         return None
     if not head:
         return None
-    for loader in _each_loader():
+    for loader in _each_loader(path, head):
         try:
             if loader.sniff(path, head):
                 return loader.format.value
@@ -99,7 +106,7 @@ def load(path: str | Path) -> Checkpoint:
         raise LoadError(target, f"cannot be opened ({exc.strerror})") from None
     if not head:
         raise LoadError(target, "is empty")
-    for loader in _each_loader():
+    for loader in _each_loader(target, head):
         if loader.sniff(target, head):
             try:
                 checkpoint = loader.load(target)

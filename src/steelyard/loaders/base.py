@@ -210,8 +210,6 @@ def spill_member(path: Path, info: zipfile.ZipInfo) -> Path:
     return spilled(key, lambda target: inflate_member(path, info, target))
 
 
-#: The first bytes of a zip archive (a local file header).
-ZIP_MAGIC = b"PK\x03\x04"
 #: What opening a file that is not, or not quite, a zip archive raises.
 _ZIP_OPEN_ERRORS = (zipfile.BadZipFile, OSError, ValueError, EOFError, NotImplementedError)
 

@@ -32,7 +32,6 @@ from steelyard.dtypes import FLOAT_DTYPES, name_of
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import (
-    ZIP_MAGIC,
     file_size,
     member_expansion,
     open_zip,
@@ -41,6 +40,7 @@ from steelyard.loaders.base import (
     zip_names_for_sniff,
 )
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
+from steelyard.loaders.signatures import ZIP_MAGIC
 
 _MAGIC = b"\x93NUMPY"
 _MAX_HEADER = 65_536

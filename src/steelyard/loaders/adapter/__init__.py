@@ -57,11 +57,11 @@ from steelyard.loaders.adapter.model import (
 )
 from steelyard.loaders.base import float32_tensor, parse_json
 from steelyard.loaders.layer_parts import canonical_geometry, make_layer, weight_source
+from steelyard.loaders.signatures import ADAPTER_FILES, adapter_candidate, safetensors_head
 from steelyard.safepath import read_beside
 
 CONFIG_NAME = "adapter_config.json"
 #: File names peft writes (``save_pretrained``), safetensors first.
-ADAPTER_FILES = ("adapter_model.safetensors", "adapter_model.bin")
 _PREFIX = "base_model.model."
 _PARTS = ("lora_A", "lora_B", "lora_embedding_A", "lora_embedding_B", "lora_magnitude_vector")
 _FACTOR = re.compile(r"^(?P<module>.+?)\.(?P<part>" + "|".join(_PARTS) + r")(?:\.(?P<rest>.+))?$")
@@ -82,13 +82,11 @@ def adapter_file_in(folder: Path) -> Path | None:
 def is_adapter_file(path: Path, head: bytes) -> bool:
     """Whether ``path`` (first bytes ``head``) is a LoRA adapter: peft's file name beside an
     ``adapter_config.json``, or a safetensors header naming LoRA factors."""
-    safetensors_head = len(head) >= 9 and head[8:9] == b"{"
-    zip_head = head[:4] == b"PK\x03\x04"
-    if not (safetensors_head or zip_head):
+    if not adapter_candidate(path, head):
         return False
     if path.name in ADAPTER_FILES and (path.parent / CONFIG_NAME).is_file():
         return True
-    return safetensors_head and any(marker in head for marker in _MARKERS)
+    return safetensors_head(head) and any(marker in head for marker in _MARKERS)
 
 
 class AdapterLoader:

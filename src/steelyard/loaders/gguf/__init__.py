@@ -17,9 +17,10 @@ from typing import Any
 from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Layer, Tensor, mark_outputs
-from steelyard.loaders.gguf.header import MAGIC, ArrayValue, Header, read_header
+from steelyard.loaders.gguf.header import ArrayValue, Header, read_header
 from steelyard.loaders.gguf.layers import Meta, build
 from steelyard.loaders.gguf.tensors import DataFile, make_tensor, type_name
+from steelyard.loaders.signatures import gguf_file
 
 _MISSING = "reading GGUF needs the gguf package: pip install 'steelyard[gguf]'"
 
@@ -30,7 +31,7 @@ class GgufLoader:
     format = Format.GGUF
 
     def sniff(self, path: Path, head: bytes) -> bool:
-        return head[:4] == MAGIC
+        return gguf_file(path, head)
 
     def load(self, path: Path) -> Checkpoint:
         try:

@@ -26,8 +26,8 @@ import numpy as np
 from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size
+from steelyard.loaders.signatures import GGUF_MAGIC as MAGIC
 
-MAGIC = b"GGUF"
 VERSIONS = (2, 3)
 DEFAULT_ALIGNMENT = 32
 #: GGML_MAX_DIMS (ggml.h; the gguf package writes at most 4 dims).

@@ -22,7 +22,6 @@ from steelyard import budget
 from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders.base import (
-    ZIP_MAGIC,
     checkpoint_from,
     file_size,
     member_expansion,
@@ -40,6 +39,7 @@ from steelyard.loaders.keras.hdf5_access import H5Store
 from steelyard.loaders.keras.model_config import parse_model
 from steelyard.loaders.keras.weights_h5 import read_weights_h5
 from steelyard.loaders.sandbox import isolated
+from steelyard.loaders.signatures import ZIP_MAGIC
 
 CONFIG = "config.json"
 METADATA = "metadata.json"

@@ -22,7 +22,6 @@ import h5py
 
 from steelyard.errors import LoadError
 
-MAGIC = b"\x89HDF\r\n\x1a\n"
 #: Objects one walk of the groups may list…
 MAX_NODES = 200_000
 #: …and all walks of one file together (each object is listed by at most a few walks).
@@ -239,21 +238,3 @@ def reason(exc: BaseException) -> str:
     """First line of an h5py error, for a one-line LoadError."""
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     return text[:200]
-
-
-def has_hdf5_magic(path: Path, head: bytes) -> bool:
-    """HDF5 signature at offset 0 or at a user-block boundary (512, 1024, 2048, …)."""
-    offsets = [0] + [512 << i for i in range(12)]
-    for offset in offsets:
-        if offset + 8 <= len(head):
-            if head[offset : offset + 8] == MAGIC:
-                return True
-        else:
-            try:
-                with open(path, "rb") as handle:
-                    handle.seek(offset)
-                    if handle.read(8) == MAGIC:
-                        return True
-            except OSError:
-                return False
-    return False

@@ -13,11 +13,12 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders.base import checkpoint_from, file_size
 from steelyard.loaders.keras import hdf5_access as kh
-from steelyard.loaders.keras.h5_file import H5_ERRORS, Location, has_hdf5_magic, reason
+from steelyard.loaders.keras.h5_file import H5_ERRORS, Location, reason
 from steelyard.loaders.keras.hdf5_access import H5Store
 from steelyard.loaders.keras.legacy_h5 import read_legacy
 from steelyard.loaders.keras.weights_h5 import WeightsRead, read_weights_h5
 from steelyard.loaders.sandbox import isolated
+from steelyard.loaders.signatures import has_hdf5_magic
 
 
 def load_h5_file(path: Path) -> Checkpoint:

@@ -37,7 +37,8 @@ from steelyard.loaders.onnx.quantized import dequantize
 from steelyard.loaders.onnx.recurrent import HIDDEN_GATE
 from steelyard.loaders.onnx.stored import text
 from steelyard.loaders.onnx.tensor_roles import tensor_roles
-from steelyard.loaders.onnx.wire import looks_like_model, parse_model
+from steelyard.loaders.onnx.wire import parse_model
+from steelyard.loaders.signatures import onnx_model
 
 if TYPE_CHECKING:
     from onnx import ModelProto
@@ -145,11 +146,7 @@ class OnnxLoader:
 
     def sniff(self, path: Path, head: bytes) -> bool:
         """True when the first bytes parse as ModelProto fields (content, not extension)."""
-        try:
-            size = path.stat().st_size
-        except OSError:
-            return False
-        return bool(head) and looks_like_model(head, size)
+        return onnx_model(path, head)
 
     def load(self, path: Path) -> Checkpoint:
         """Read the model's structure; tensor bytes stay on disk until read."""

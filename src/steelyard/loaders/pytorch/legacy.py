@@ -20,8 +20,6 @@ from steelyard.loaders.pytorch.state_dict import brief
 from steelyard.loaders.pytorch.storages import REREAD, StorageSource, StorageTable
 from steelyard.loaders.pytorch.unpickler import MAX_PICKLE_BYTES, restricted_load
 
-#: ``torch.serialization.MAGIC_NUMBER`` pickled with protocol 2 (legacy, pre-1.6 format).
-LEGACY_MAGIC = b"\x80\x02\x8a\x0a" + (0x1950A86A20F9469CFC6C).to_bytes(10, "little") + b"."
 _LEGACY_PROTOCOL = 1001
 
 

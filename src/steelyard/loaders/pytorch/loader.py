@@ -22,7 +22,7 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format
 from steelyard.loaders.base import file_size, open_zip, safe_zip_names
 from steelyard.loaders.conventions import inferred_checkpoint
-from steelyard.loaders.pytorch.legacy import LEGACY_MAGIC, read_legacy
+from steelyard.loaders.pytorch.legacy import read_legacy
 from steelyard.loaders.pytorch.optimizer import optimizer_state
 from steelyard.loaders.pytorch.stand_ins import ScriptObject, TensorRef
 from steelyard.loaders.pytorch.state_dict import (
@@ -34,7 +34,6 @@ from steelyard.loaders.pytorch.state_dict import (
 )
 from steelyard.loaders.pytorch.storages import (
     REREAD,
-    ZIP_MAGIC,
     StorageTable,
     make_tensor,
     zip_member,
@@ -42,6 +41,7 @@ from steelyard.loaders.pytorch.storages import (
 )
 from steelyard.loaders.pytorch.torchscript import script_checkpoint, script_code
 from steelyard.loaders.pytorch.unpickler import MAX_PICKLE_BYTES, restricted_load
+from steelyard.loaders.signatures import TORCH_LEGACY_MAGIC, ZIP_MAGIC, torch_tar
 
 
 class PytorchLoader:
@@ -50,7 +50,7 @@ class PytorchLoader:
     format = Format.PYTORCH
 
     def sniff(self, path: Path, head: bytes) -> bool:
-        if head.startswith(LEGACY_MAGIC) or _is_tar_checkpoint(head):
+        if head.startswith(TORCH_LEGACY_MAGIC) or torch_tar(head):
             return True
         if not head.startswith(ZIP_MAGIC):
             return False
@@ -64,17 +64,12 @@ class PytorchLoader:
     def load(self, path: Path) -> Checkpoint:
         with open(path, "rb") as handle:
             head = handle.read(512)
-        if _is_tar_checkpoint(head):
+        if torch_tar(head):
             raise LoadError(path, f"is a pre-0.4 PyTorch tar checkpoint; {REREAD}")
-        if head.startswith(LEGACY_MAGIC):
+        if head.startswith(TORCH_LEGACY_MAGIC):
             root, storages, order = read_legacy(path)
             return _checkpoint(path, root, storages, order, [])
         return _read_zip(path)
-
-
-def _is_tar_checkpoint(head: bytes) -> bool:
-    # torch < 0.4 wrote a tar whose first member is "sys_info" (ustar magic at byte 257).
-    return head[:9] == b"sys_info\x00" and head[257:262] == b"ustar"
 
 
 def _is_record(name: str) -> bool:

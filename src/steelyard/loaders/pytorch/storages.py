@@ -42,8 +42,8 @@ from steelyard.loaders.base import (
 from steelyard.loaders.conventions import role_for
 from steelyard.loaders.pytorch.stand_ins import StorageRef, TensorRef, Unsupported
 from steelyard.loaders.pytorch.unpickler import parse_storage_id
+from steelyard.loaders.signatures import ZIP_MAGIC
 
-ZIP_MAGIC = b"PK\x03\x04"
 #: The advice given with every format steelyard cannot read directly.
 REREAD = "re-save it with a current torch (torch.save(obj, path) writes the zip format since 1.6)"
 

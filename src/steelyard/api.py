@@ -27,6 +27,7 @@ from steelyard.gradients import GradientSource, GradsKind, optimizer_source, sid
 from steelyard.graph import Checkpoint
 from steelyard.loaders import SUPPORTED
 from steelyard.loaders import load as _load
+from steelyard.loaders.meanwhile import meanwhile
 from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
 from steelyard.run_timeline.result import Timeline
@@ -287,7 +288,16 @@ def _target(path: Path, base: Checkpoint | None) -> tuple[Checkpoint, bool]:
             from steelyard.loaders.adapter import load_adapter
 
             return load_adapter(path, base=base), True
-    return _load(path), False
+    # The audit's rule modules are imported while a sandboxed reader (HDF5) reads the file's
+    # structure in its child, rather than after it.
+    with meanwhile(_rule_modules):
+        return _load(path), False
+
+
+def _rule_modules() -> None:
+    from steelyard.rules import registry
+
+    registry()
 
 
 def _audit_target(

@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any, TypeVar
 
 from steelyard.errors import LoadError
+from steelyard.loaders.meanwhile import run_pending
 
 #: Address space a reader process may add to what it inherited.
 CHILD_MEMORY = 4 << 30
@@ -141,6 +142,7 @@ def isolated(
         return fn(*args)
     sender.close()
     try:
+        run_pending()
         if not _answered(receiver, process.pid, timeout):
             raise LoadError(
                 source,

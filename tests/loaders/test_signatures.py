@@ -126,3 +126,12 @@ def test_a_loader_without_a_signature_is_asked_for_every_file() -> None:
     unsigned = [name for _module, name, signature in _REGISTRY if signature is None]
     assert unsigned == ["SafetensorsLoader"]
     assert all(callable(getattr(loader, "sniff", None)) for loader in loaders())
+
+
+def test_a_signature_that_fails_asks_the_loader_anyway(tmp_path: Path) -> None:
+    from steelyard.loaders import _shows
+
+    def broken(path: Path, head: bytes) -> bool:
+        raise ValueError("a check that could not decide")
+
+    assert _shows(broken, tmp_path, b"") is True

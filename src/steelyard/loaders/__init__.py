@@ -45,7 +45,7 @@ def _each_loader(path: Path | None = None, head: bytes = b"") -> Iterator[Loader
     file the first loaders recognise never imports the others (docs/performance.md, Start-up).
     With ``path`` and ``head``, only the loaders whose signature they show."""
     for module_name, class_name, signature in _REGISTRY:
-        if path is not None and signature is not None and not signature(path, head):
+        if path is not None and signature is not None and not _shows(signature, path, head):
             continue
         try:
             module = importlib.import_module(module_name)
@@ -54,6 +54,15 @@ def _each_loader(path: Path | None = None, head: bytes = b"") -> Iterator[Loader
                 continue
             raise
         yield getattr(module, class_name)()
+
+
+def _shows(signature: Callable[[Path, bytes], bool], path: Path, head: bytes) -> bool:
+    """Whether the file's head shows ``signature``; when the check itself fails the loader
+    is asked anyway, as it was before signatures existed."""
+    try:
+        return signature(path, head)
+    except Exception:
+        return True
 
 
 def loaders() -> list[Loader]:

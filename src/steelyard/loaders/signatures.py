@@ -27,7 +27,7 @@ GGUF_MAGIC = b"GGUF"
 TORCH_LEGACY_MAGIC = b"\x80\x02\x8a\x0a" + (0x1950A86A20F9469CFC6C).to_bytes(10, "little") + b"."
 
 
-#: The file names peft saves an adapter under.
+#: The file names peft writes an adapter under (``save_pretrained``), safetensors first.
 ADAPTER_FILES = ("adapter_model.safetensors", "adapter_model.bin")
 
 

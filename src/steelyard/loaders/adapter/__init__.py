@@ -61,7 +61,6 @@ from steelyard.loaders.signatures import ADAPTER_FILES, adapter_candidate, safet
 from steelyard.safepath import read_beside
 
 CONFIG_NAME = "adapter_config.json"
-#: File names peft writes (``save_pretrained``), safetensors first.
 _PREFIX = "base_model.model."
 _PARTS = ("lora_A", "lora_B", "lora_embedding_A", "lora_embedding_B", "lora_magnitude_vector")
 _FACTOR = re.compile(r"^(?P<module>.+?)\.(?P<part>" + "|".join(_PARTS) + r")(?:\.(?P<rest>.+))?$")

@@ -36,10 +36,17 @@ def safetensors_head(head: bytes) -> bool:
     return len(head) >= 9 and head[8:9] == b"{"
 
 
+#: Tensor-name pieces of LoRA/DoRA factors, looked for in a safetensors header.
+ADAPTER_MARKERS = (b".lora_A.", b".lora_B.", b".lora_embedding_A", b".lora_magnitude_vector")
+
+
 def adapter_candidate(path: Path, head: bytes) -> bool:
-    """A safetensors file (whose header may name LoRA factors), or a zip saved under peft's
-    name (``adapter_model.bin``, read when an ``adapter_config.json`` lies beside it)."""
-    return safetensors_head(head) or (zip_archive(path, head) and path.name in ADAPTER_FILES)
+    """A safetensors or zip file saved under peft's names (read when an
+    ``adapter_config.json`` lies beside it), or a safetensors file whose header names LoRA
+    factors: a plain safetensors checkpoint never imports the adapter reader."""
+    if path.name in ADAPTER_FILES:
+        return safetensors_head(head) or zip_archive(path, head)
+    return safetensors_head(head) and any(marker in head for marker in ADAPTER_MARKERS)
 
 
 def zip_archive(path: Path, head: bytes) -> bool:

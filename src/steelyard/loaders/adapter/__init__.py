@@ -57,14 +57,18 @@ from steelyard.loaders.adapter.model import (
 )
 from steelyard.loaders.base import float32_tensor, parse_json
 from steelyard.loaders.layer_parts import canonical_geometry, make_layer, weight_source
-from steelyard.loaders.signatures import ADAPTER_FILES, adapter_candidate, safetensors_head
+from steelyard.loaders.signatures import (
+    ADAPTER_FILES,
+    ADAPTER_MARKERS,
+    adapter_candidate,
+    safetensors_head,
+)
 from steelyard.safepath import read_beside
 
 CONFIG_NAME = "adapter_config.json"
 _PREFIX = "base_model.model."
 _PARTS = ("lora_A", "lora_B", "lora_embedding_A", "lora_embedding_B", "lora_magnitude_vector")
 _FACTOR = re.compile(r"^(?P<module>.+?)\.(?P<part>" + "|".join(_PARTS) + r")(?:\.(?P<rest>.+))?$")
-_MARKERS = (b".lora_A.", b".lora_B.", b".lora_embedding_A", b".lora_magnitude_vector")
 
 
 def adapter_file_in(folder: Path) -> Path | None:
@@ -85,7 +89,7 @@ def is_adapter_file(path: Path, head: bytes) -> bool:
         return False
     if path.name in ADAPTER_FILES and (path.parent / CONFIG_NAME).is_file():
         return True
-    return safetensors_head(head) and any(marker in head for marker in _MARKERS)
+    return safetensors_head(head) and any(marker in head for marker in ADAPTER_MARKERS)
 
 
 class AdapterLoader:

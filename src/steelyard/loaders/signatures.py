@@ -13,7 +13,8 @@ The magic numbers are the formats' own: the zip local file header ``PK\\x03\\x04
 APPNOTE 4.3.7), the HDF5 superblock signature at offset 0 or a power-of-two user-block boundary
 from 512 on (HDF5 File Format Specification, "Format Signature"), GGUF's ``GGUF`` (the GGUF
 specification in the ggml repository), and PyTorch's legacy pickle magic number
-(``torch/serialization.py``, from memory, checked by the fixtures it wrote).
+(``MAGIC_NUMBER`` in ``torch/serialization.py``, from memory; torch's own legacy file
+``fixtures/real/torch/legacy_mlp.pt`` starts with it).
 """
 
 from __future__ import annotations
@@ -43,7 +44,7 @@ ADAPTER_MARKERS = (b".lora_A.", b".lora_B.", b".lora_embedding_A", b".lora_magni
 def adapter_candidate(path: Path, head: bytes) -> bool:
     """A safetensors or zip file saved under peft's names (read when an
     ``adapter_config.json`` lies beside it), or a safetensors file whose header names LoRA
-    factors: a plain safetensors checkpoint never imports the adapter reader."""
+    factors: a plain safetensors checkpoint is not sniffed by the adapter reader."""
     if path.name in ADAPTER_FILES:
         return safetensors_head(head) or zip_archive(path, head)
     return safetensors_head(head) and any(marker in head for marker in ADAPTER_MARKERS)

@@ -30,12 +30,14 @@ from steelyard.loaders import load as _load
 from steelyard.loaders.meanwhile import meanwhile
 from steelyard.policy import Policy, unmatched_globs
 from steelyard.report import CheckpointAudit, InputError, Report
-from steelyard.run_timeline.result import Timeline
 from steelyard.version import __version__
 
 if TYPE_CHECKING:
     # Imported by compare() itself: an audit never imports the comparison package.
     from steelyard.comparison.report import CompareReport
+
+    # Imported by timeline() itself: the timeline's records cost every command ~10 ms.
+    from steelyard.run_timeline.result import Timeline
 
 
 def _limits(budget: Budget | None, policy: Policy | None = None) -> AbstractContextManager[object]:
@@ -518,7 +520,8 @@ def timeline(
             or checkpoints that share no layer.
     """
     from steelyard.run_timeline.engine import RunSettings, build_timeline
-    from steelyard.run_timeline.ordering import Order, arrange
+    from steelyard.run_timeline.ordering import arrange
+    from steelyard.run_timeline.read_order import Order
 
     try:
         chosen_order = Order(order)

@@ -55,7 +55,7 @@ from steelyard.digest import Digest
 from steelyard.errors import LoadError, SteelyardError
 from steelyard.findings import FailOn
 from steelyard.grads_kind import GradsKind
-from steelyard.run_timeline.ordering import Order
+from steelyard.run_timeline.read_order import Order
 from steelyard.text_safety import shown
 from steelyard.version import __version__
 

@@ -6,7 +6,8 @@ The package is named ``run_timeline`` because ``steelyard.timeline`` is the API 
 (a subpackage of that name would replace the function on the package when imported, which
 is why the comparison engine is ``steelyard.comparison``).
 
-* :mod:`.ordering`: where each checkpoint sits in training, and the order read in;
+* :mod:`.ordering`: where each checkpoint sits in training, and the order read in
+  (:mod:`.read_order` the choices);
 * :mod:`.summary`: one audited checkpoint reduced to per-layer points and findings;
 * :mod:`.drift`: relative change and cosine, read side by side in row blocks;
 * :mod:`.spans`: each finding's first appearance, disappearance and return;
@@ -16,17 +17,45 @@ is why the comparison engine is ``steelyard.comparison``).
 
 from __future__ import annotations
 
-from steelyard.run_timeline.ordering import Order
-from steelyard.run_timeline.result import (
-    TIMELINE_SCHEMA,
-    CheckpointEntry,
-    Drift,
-    FindingSpan,
-    LayerPoint,
-    LayerSeries,
-    Position,
-    Timeline,
-)
+import importlib
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from steelyard.run_timeline.read_order import Order
+    from steelyard.run_timeline.result import (
+        TIMELINE_SCHEMA,
+        CheckpointEntry,
+        Drift,
+        FindingSpan,
+        LayerPoint,
+        LayerSeries,
+        Position,
+        Timeline,
+    )
+
+#: Public name -> the module defining it, imported on first use (PEP 562): a command that
+#: only needs ``Order`` (every command builds the ``--order`` choice) loads no timeline record.
+_HOMES = {"Order": "read_order"} | {
+    name: "result"
+    for name in (
+        "TIMELINE_SCHEMA",
+        "CheckpointEntry",
+        "Drift",
+        "FindingSpan",
+        "LayerPoint",
+        "LayerSeries",
+        "Position",
+        "Timeline",
+    )
+}
+
+
+def __getattr__(name: str) -> Any:
+    home = _HOMES.get(name)
+    if home is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    return getattr(importlib.import_module(f"{__name__}.{home}"), name)
+
 
 __all__ = [
     "TIMELINE_SCHEMA",

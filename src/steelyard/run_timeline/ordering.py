@@ -25,11 +25,11 @@ import re
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from enum import Enum
 from pathlib import Path
 from typing import Any
 
 from steelyard.errors import LoadError, SteelyardError
+from steelyard.run_timeline.read_order import Order
 from steelyard.run_timeline.result import Position
 
 #: Step in a name: ``checkpoint-1200``, ``ckpt_3``, ``step500``, ``global_step-8``, ``iter_30``.
@@ -43,17 +43,6 @@ STEP_KEYS = frozenset({"step", "global_step", "training_step"})
 TRAINER_STATE = "trainer_state.json"
 #: Largest step accepted from any source (beyond any real run; keeps JSON integers exact).
 _MAX_STEP = 2**53
-
-
-class Order(str, Enum):
-    """How the checkpoints of a timeline are ordered."""
-
-    step = "step"
-    """By training step (the default): every checkpoint must have one."""
-    name = "name"
-    """By path, numbers inside names compared as numbers (``ckpt-9`` before ``ckpt-10``)."""
-    given = "given"
-    """As named on the command line (folders in the order they were searched)."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -95,7 +95,7 @@ PAIR_BYTES = 2**19
 #: Gram product (measured on clusters of near copies, one thread: 10 at fan-in 1024, 12 at
 #: 4096); when more pairs pass the bucket screen than the plan's dot products over this, the
 #: buckets are confirmed from the rows instead (most colliding pairs there are twins).
-PAIR_DOT_COST = 12.0
+PAIR_BUCKET_DOT_COST = 12.0
 #: Recall the candidate search is designed for at the threshold angle (see module docstring).
 DESIGN_RECALL = 0.9999
 #: The recall the rule documents per layer, which ``bench/twin_recall.py`` checks (exit 1 below
@@ -448,7 +448,7 @@ def candidate_pairs(
         with blas_threads(1):
             first_table = bucket_hits(on, buckets[0], limit, negative, probe)
         passed = sum(part.size for part in first_table[0])
-        if passed * PAIR_DOT_COST > max(1, planned[0]):
+        if passed * PAIR_BUCKET_DOT_COST > max(1, planned[0]):
             on, first_table = view, None  # (the probe's products are not counted then)
         else:
             tally.dots += probe.dots

@@ -42,7 +42,7 @@ SCREEN_COST = 0.8
 #: search's large Gram blocks (one thread: 0.48 µs a pair at fan-in 1024 against 0.013-0.02 µs
 #: a dot; a layer whose rows are all parallel, weights zero beside a bias, sent 4.2M pairs of
 #: a 4096 × 1024 layer through pair confirmation with 3 here: 5.2 s against the exact 0.2 s).
-PAIR_DOT_COST = 24.0
+PAIR_EXACT_DOT_COST = 24.0
 SCREEN_WIDTH = 512
 
 
@@ -68,7 +68,7 @@ def gram_search(
     if negative:
         mask |= gram <= -limit
     upper = np.triu(mask, 1)
-    if PAIR_DOT_COST * np.count_nonzero(upper) > exact_dots(members.size):
+    if PAIR_EXACT_DOT_COST * np.count_nonzero(upper) > exact_dots(members.size):
         # So many rows pass the screen (a layer of near copies) that pairs would cost more.
         return exact_among(rows, members, threshold, negative, tally)
     hits = np.flatnonzero(upper)

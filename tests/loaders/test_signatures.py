@@ -20,7 +20,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from steelyard.loaders import _HEAD_BYTES, _REGISTRY, loaders, sniff_format
+from steelyard.loaders import _HEAD_BYTES, _REGISTRY, first_format, loaders, sniff_format
 from tests.conftest import FIXTURES
 
 
@@ -32,13 +32,7 @@ def _head(path: Path) -> bytes:
 def _first_claim(path: Path, head: bytes) -> str | None:
     """The format the first loader to sniff ``path`` gives, asking every loader (no
     signatures): what sniff_format answered before the signatures existed."""
-    for loader in loaders():
-        try:
-            if loader.sniff(path, head):
-                return loader.format.value
-        except Exception:
-            continue
-    return None
+    return first_format(loaders(), path, head)
 
 
 def _check(path: Path) -> None:

@@ -7,7 +7,7 @@ turn, and returns the :class:`~steelyard.graph.Checkpoint` of the first that rec
 from __future__ import annotations
 
 import importlib
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 
 from steelyard.errors import LoadError
@@ -79,7 +79,13 @@ def sniff_format(path: Path) -> str | None:
         return None
     if not head:
         return None
-    for loader in _each_loader(path, head):
+    return first_format(_each_loader(path, head), path, head)
+
+
+def first_format(candidates: Iterable[Loader], path: Path, head: bytes) -> str | None:
+    """The format of the first of ``candidates`` whose sniff claims the file (a sniff that
+    raises is a "no")."""
+    for loader in candidates:
         try:
             if loader.sniff(path, head):
                 return loader.format.value

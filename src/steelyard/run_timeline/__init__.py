@@ -17,8 +17,9 @@ is why the comparison engine is ``steelyard.comparison``).
 
 from __future__ import annotations
 
-import importlib
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
+
+from steelyard.lazy_exports import attribute_loader
 
 if TYPE_CHECKING:
     from steelyard.run_timeline.read_order import Order
@@ -50,13 +51,8 @@ _HOMES = {"Order": "read_order"} | {
 }
 
 
-def __getattr__(name: str) -> Any:
-    home = _HOMES.get(name)
-    if home is None:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    return getattr(importlib.import_module(f"{__name__}.{home}"), name)
-
-
+__getattr__ = attribute_loader(__name__, _HOMES)
+# Literal, so that linters and type checkers see the re-exports (tests check it equals _HOMES).
 __all__ = [
     "TIMELINE_SCHEMA",
     "CheckpointEntry",

@@ -12,7 +12,7 @@ import functools
 import math
 import struct
 import sys
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -51,7 +51,9 @@ class DType:
     is_float: bool
 
 
-_PLAIN: tuple[tuple[int, str, Any, int, bool], ...] = (
+#: (code, name, numpy type, bits, is_float) of each ONNX element type.
+_Row = tuple[int, str, Any, int, bool]
+_PLAIN: tuple[_Row, ...] = (
     (1, "f32", np.float32, 32, True),
     (2, "u8", np.uint8, 8, False),
     (3, "i8", np.int8, 8, False),
@@ -72,7 +74,7 @@ _PLAIN: tuple[tuple[int, str, Any, int, bool], ...] = (
 _EXTENDED_CODES = range(16, 29)
 
 
-def _table(rows: Any) -> dict[int, DType]:
+def _table(rows: Iterable[_Row]) -> dict[int, DType]:
     return {
         code: DType(code, name, np.dtype(kind), bits, is_float)
         for code, name, kind, bits, is_float in rows

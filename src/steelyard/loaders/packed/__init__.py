@@ -10,8 +10,9 @@ loader) replaces each packed layer's parts with one logical ``f32`` tensor carry
 
 from __future__ import annotations
 
-import importlib
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
+
+from steelyard.lazy_exports import attribute_loader
 
 if TYPE_CHECKING:
     from steelyard.loaders.packed.awq import AwqWeight
@@ -39,13 +40,8 @@ _HOMES = {
 }
 
 
-def __getattr__(name: str) -> Any:
-    home = _HOMES.get(name)
-    if home is None:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    return getattr(importlib.import_module(f"{__name__}.{home}"), name)
-
-
+__getattr__ = attribute_loader(__name__, _HOMES)
+# Literal, so that linters and type checkers see the re-exports (tests check it equals _HOMES).
 __all__ = [
     "AwqWeight",
     "Bnb4Weight",

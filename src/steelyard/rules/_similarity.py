@@ -85,6 +85,7 @@ from steelyard.rules._rows import (
     passing,
 )
 from steelyard.rules._screen import screen_limit, units_of
+from steelyard.stats.numerics import distinct
 
 #: Working-set bytes for one Gram block (rows of the block × all later rows, float32).
 BLOCK_BYTES = 32 * 2**20
@@ -312,7 +313,7 @@ def _table_buckets(
         big = sizes[bucket[members]] > BUCKET_CAP
         if not big.any():
             break
-        tally.split += int(np.unique(bucket[members[big]]).size)
+        tally.split += int(distinct(bucket[members[big]]).size)
         chunk = extra[big, step * _SPLIT_STEP : (step + 1) * _SPLIT_STEP].astype(np.int64) @ weights
         code = bucket.astype(np.int64) << _SPLIT_STEP  # other buckets keep their rows together
         code[members[big]] += chunk
@@ -426,7 +427,7 @@ def candidate_pairs(
     ]
     del signs
     # True twins collide in most tables: list the small buckets' pairs once.
-    paired = np.unique(np.concatenate([_small_pairs(*b) for b in buckets]))
+    paired = distinct(np.concatenate([_small_pairs(*b) for b in buckets]))
     planned = [_planned_dots(np.bincount(b)) for b, _order in buckets]
     tally.planned = paired.size + sum(planned)
     if tally.planned * BUCKET_DOT_COST > exact_dots(members.size):

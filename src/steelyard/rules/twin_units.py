@@ -126,6 +126,7 @@ from steelyard.rules.base import (
     threshold,
 )
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import distinct
 
 #: Rows below this fraction of the layer's largest row norm have no reliable direction.
 _TINY = 1e-6
@@ -278,7 +279,7 @@ def _components(first: np.ndarray, second: np.ndarray, units: int) -> list[np.nd
         label = label[label]  # pointer jumping
         if np.array_equal(label, before):
             break
-    involved = np.unique(np.concatenate([first, second]))
+    involved = distinct(np.concatenate([first, second]))
     groups: dict[int, list[int]] = {}
     for unit in involved.tolist():
         groups.setdefault(int(label[unit]), []).append(unit)

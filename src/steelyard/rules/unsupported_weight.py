@@ -107,7 +107,7 @@ from steelyard.rules.base import (
 from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
 from steelyard.stats.folding import fold_scale
-from steelyard.stats.numerics import median_of
+from steelyard.stats.numerics import distinct, median_of
 
 _TOP = 10
 _ADAM_EPS = 1e-8
@@ -172,7 +172,7 @@ def _unsupported(
     # Optimal brain damage: δE ≈ ½·h_kk·w_k² with the diagonal h_kk ≈ F ≈ s² (LeCun et al. 1990).
     saliency = 0.5 * s_hit**2 * w_hit**2
     order = np.lexsort((-np.abs(w_hit), saliency))[:_TOP]
-    units = tuple(int(u) for u in np.unique(rows))
+    units = tuple(int(u) for u in distinct(rows))
     largest = float(np.abs(w_hit).max())
     total = float(saliency.sum())
     where = "folded " if folded.folded else ""

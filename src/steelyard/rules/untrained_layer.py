@@ -195,6 +195,7 @@ from steelyard.rules._layer_results import LayerResults
 from steelyard.rules._spectrum import SUBSAMPLE, edge_check, row_stride
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
+from steelyard.stats.numerics import distinct
 
 #: Fewest units for the row-spread test (its limit relies on a large-sample standard error).
 SPREAD_ROWS = 64
@@ -211,7 +212,7 @@ def _steps(n: int) -> np.ndarray:
 @functools.lru_cache(maxsize=8)
 def _probe(n: int) -> np.ndarray:
     """The order statistics of :func:`best_fits`' lower bound, read-only."""
-    probe = np.unique(np.linspace(0, n - 1, _PROBES).astype(np.int64))
+    probe = distinct(np.linspace(0, n - 1, _PROBES).astype(np.int64))
     probe.flags.writeable = False
     return probe
 

@@ -86,7 +86,7 @@ from steelyard.rules.base import (
 )
 from steelyard.rules.scoring import score
 from steelyard.safepath import read_beside
-from steelyard.stats.numerics import median_of, power_of_two_toward_one, times_exactly
+from steelyard.stats.numerics import distinct, median_of, power_of_two_toward_one, times_exactly
 from steelyard.stats.passes import Blocks
 
 _SAMPLE = 2048
@@ -378,7 +378,7 @@ def measure_blocks(
     sample_rows = _sampled_rows(rows)
     norms = np.sqrt(squares)
     first, second = _candidate_pairs(norms)
-    candidates = np.unique(np.concatenate((first, second)))
+    candidates = distinct(np.concatenate((first, second)))
     digests = np.empty(candidates.size, dtype="S32")
     total = np.zeros(width, np.float64)
     centred = np.empty((sample_rows.size, width), np.float32)

@@ -11,7 +11,13 @@ import numpy as np
 import pytest
 from threadpoolctl import threadpool_limits
 
-from steelyard.stats.numerics import ROW_DOT_WIDTH, distinct, median_of, sums_of_squares
+from steelyard.stats.numerics import (
+    ROW_DOT_WIDTH,
+    distinct,
+    median_of,
+    quantile_of,
+    sums_of_squares,
+)
 
 
 @pytest.mark.parametrize("width", [8, 64, ROW_DOT_WIDTH - 1, ROW_DOT_WIDTH, 512, 5632, 14336])
@@ -122,8 +128,8 @@ def test_distinct_is_numpys_unique(dtype: type) -> None:
 
 
 def test_an_audit_does_not_import_numpy_ma(tmp_path: Path) -> None:
-    """numpy.unique imports numpy.ma on its first call (16 ms of every command's start-up);
-    the rules use :func:`distinct` instead. A fresh process audits a small never-trained model
+    """numpy.unique (and numpy.quantile through it) imports numpy.ma on its first call (16 ms
+    of every command's start-up); the rules use :func:`distinct` and :func:`quantile_of`. A fresh process audits a small never-trained model
     (every rule runs on it, untrained-layer's KS probes and the twin search included)."""
     from safetensors.numpy import save_file
 
@@ -134,13 +140,41 @@ def test_an_audit_does_not_import_numpy_ma(tmp_path: Path) -> None:
     }
     path = tmp_path / "model.safetensors"
     save_file(weights, str(path))
+    # The demo's Keras file carries optimizer state, so unsupported-weight's quantiles run.
+    demo = Path(__file__).resolve().parents[2] / "fixtures" / "demo" / "pumpwear-nightly-bad.keras"
     probe = (
         "import sys; from steelyard.api import audit; r = audit(sys.argv[1]); "
         "print(len(r.audits[0].findings), 'numpy.ma' in sys.modules)"
     )
-    done = subprocess.run(
-        [sys.executable, "-c", probe, str(path)], capture_output=True, text=True, check=True
-    )
-    findings, imported = done.stdout.split()
-    assert int(findings) > 0  # the rules really ran (the layers are never-trained draws)
-    assert imported == "False"
+    for audited in (path, demo):
+        done = subprocess.run(
+            [sys.executable, "-c", probe, str(audited)], capture_output=True, text=True,
+            check=True,
+        )
+        findings, imported = done.stdout.split()
+        assert int(findings) > 0  # the rules really ran (never-trained draws; the demo's faults)
+        assert imported == "False", audited
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_quantile_of_is_numpys_quantile_bit_for_bit(dtype: type) -> None:
+    # Reference: numpy.quantile, default (linear) method: the same value, dtype and type for
+    # scalar and sequence q, with infinities and NaNs among the values.
+    rng = np.random.default_rng(5)
+    qs: list[float | list[float]] = [0.0, 0.1, 0.25, 0.5, 0.75, 0.999, 1.0, [0.25, 0.75],
+                                     [1.0, 0.0, 0.5]]
+    with np.errstate(invalid="ignore"):
+        for size in (1, 2, 3, 10, 101, 4097):
+            for trial in range(12):
+                values = (rng.standard_normal(size) * rng.uniform(0.01, 100)).astype(dtype)
+                if trial % 4 == 1:
+                    values[rng.integers(0, size)] = np.inf
+                if trial % 4 == 2:
+                    values[rng.integers(0, size)] = -np.inf
+                if trial % 6 == 3:
+                    values[rng.integers(0, size)] = np.nan
+                for q in [*qs, float(rng.uniform())]:
+                    expected, got = np.quantile(values, q), quantile_of(values, q)
+                    assert type(got) is type(expected)
+                    assert np.asarray(got).dtype == np.asarray(expected).dtype
+                    np.testing.assert_array_equal(got, expected)

@@ -107,7 +107,7 @@ from steelyard.rules.base import (
 from steelyard.rules.essential_weight import essential_weights
 from steelyard.rules.scoring import score
 from steelyard.stats.folding import fold_scale
-from steelyard.stats.numerics import distinct, median_of
+from steelyard.stats.numerics import distinct, median_of, quantile_of
 
 _TOP = 10
 _ADAM_EPS = 1e-8
@@ -156,9 +156,9 @@ def _unsupported(
         return
     multiple = limits.rms_multiple
     weight_limit = max(
-        float(np.quantile(magnitude[finite], limits.weight_quantile)), multiple * rms
+        float(quantile_of(magnitude[finite], limits.weight_quantile)), multiple * rms
     )
-    support_limit = float(np.quantile(grads[finite], limits.support_quantile))
+    support_limit = float(quantile_of(grads[finite], limits.support_quantile))
     hit = finite & (magnitude >= weight_limit) & (grads <= support_limit)
     # Never advise pruning a weight essential-weight marks (a model can depend on it).
     essential = essential_weights(ctx, layer)
@@ -293,7 +293,7 @@ def _equilibrium(
     with np.errstate(divide="ignore", invalid="ignore"):
         ratios = np.where(grads[counted] > 0, pull / grads[counted], np.inf)
     ratio = median_of(ratios)
-    q25, q75 = (float(q) for q in np.quantile(ratios, [0.25, 0.75]))
+    q25, q75 = (float(q) for q in quantile_of(ratios, [0.25, 0.75]))
     band = limits.equilibrium_band
     inside = 1.0 / band <= ratio <= band
     lam_eff = median_of(lam[counted])

@@ -4,6 +4,8 @@ exact sums of squares, a lean median and exact power-of-two rescaling."""
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
@@ -151,6 +153,41 @@ def median_of(values: np.ndarray | list[float]) -> float:
     if inexact and np.isnan(parted[-1]):
         return math.nan
     return float(parted[middle[0] : middle[-1] + 1].mean())
+
+
+def quantile_of(values: np.ndarray, q: float | Sequence[float]) -> Any:
+    """``numpy.quantile(values, q)`` (its default, linear method) bit for bit: a float of the
+    array's dtype for a float ``q``, a float64 array for a sequence (numpy's promotion rules
+    for a weak scalar and an array of weights).
+
+    The same steps as numpy's: a partition at the order statistics either side of each
+    virtual index (n − 1)·q and numpy's linear interpolation, taken from the nearer end.
+    numpy's own passes those positions through ``numpy.unique``, whose first call imports
+    ``numpy.ma`` (see :func:`distinct`)."""
+    flat = np.asarray(values).reshape(-1)
+    n = flat.size
+    scalar = isinstance(q, (int, float))
+    virtual = ((n - 1) * np.asarray(q, dtype=np.float64)).reshape(-1)
+    below = np.floor(virtual)
+    above = below + 1
+    # Beyond the last position both neighbours are the last value, before the first both the
+    # first (numpy's _get_indexes), and gamma is taken from those adjusted positions.
+    last = virtual >= n - 1
+    below[last], above[last] = -1, -1
+    first = virtual < 0
+    below[first], above[first] = 0, 0
+    gamma = virtual - below
+    low, high = below.astype(np.intp), above.astype(np.intp)
+    parted = np.partition(flat, distinct(np.concatenate(([0, n - 1], low % n, high % n))))
+    a, b = parted[low], parted[high]
+    t: Any = float(gamma[0]) if scalar else gamma
+    diff = b - a
+    out = np.add(a, diff * t)
+    np.subtract(b, diff * (1 - t), out=out, where=np.asarray(t) >= 0.5,
+                casting="unsafe", dtype=type(out.dtype))
+    if np.issubdtype(flat.dtype, np.inexact) and np.isnan(parted[-1]):
+        out[...] = np.nan  # numpy: a NaN anywhere makes every quantile NaN
+    return out[0] if scalar else out
 
 
 def power_of_two_toward_one(peak: float, bound: float) -> float:

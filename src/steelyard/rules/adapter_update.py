@@ -63,14 +63,14 @@ import math
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
-from steelyard.loaders.adapter import AdaptedModule, adapter_of
-from steelyard.loaders.adapter.factors import singular_values
 from steelyard.numbers import count, measured
+from steelyard.rules._adapters import adapter_of
 from steelyard.rules.base import (
     AuditContext,
     RuleSettings,
@@ -81,6 +81,9 @@ from steelyard.rules.base import (
     threshold,
 )
 from steelyard.rules.scoring import score
+
+if TYPE_CHECKING:
+    from steelyard.loaders.adapter import AdaptedModule
 
 #: Bands of ‖ΔW‖/‖W‖ listed in the notes (upper bounds).
 _BANDS = (0.001, 0.01, 0.1, 1.0)
@@ -109,6 +112,9 @@ class Spectrum:
 
 def update_spectrum(module: AdaptedModule, share: float) -> Spectrum:
     """Singular values and effective rank of ``module``'s ΔW, from its factors alone."""
+    # Imported here: only an adapter's audit gets this far (see rules._adapters).
+    from steelyard.loaders.adapter.factors import singular_values
+
     values = singular_values(module.factors())
     top = float(values[0]) if values.size else 0.0
     effective = int(np.count_nonzero(values >= share * top)) if top > 0 else 0

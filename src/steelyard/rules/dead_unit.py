@@ -60,8 +60,8 @@ import numpy as np
 
 from steelyard.findings import Finding, Severity
 from steelyard.graph import Layer, LayerKind
-from steelyard.loaders.adapter.model import adapter_of
 from steelyard.numbers import count
+from steelyard.rules._adapters import adapter_of
 from steelyard.rules._bounds import IntervalBounds, finite_range
 from steelyard.rules.base import (
     AuditContext,

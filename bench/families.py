@@ -6,6 +6,7 @@ Run from the repository root::
     python bench/families.py                        # the quick size (34M), every family
     python bench/families.py --sizes quick,300m --rounds 3
     python bench/families.py --sizes 300m --families near-duplicate,gaussian
+    python bench/families.py --sizes 300m-narrow --rounds 1
 
 A benchmark whose weights all look alike can be tuned to. Every size is drawn here in five
 families (seeded, bf16, at least two shards, ``config.json`` of a llama model; the draws are
@@ -79,6 +80,10 @@ SIZES = {
     "quick": Shape(vocab=8000, hidden=512, intermediate=1408, layers=8),
     "300m": Shape(vocab=32000, hidden=1024, intermediate=2816, layers=20),
     "1.3b": Shape(vocab=32000, hidden=2048, intermediate=5632, layers=24),
+    # About 300M parameters spent on 83 narrow blocks (width 512): 581 matrices of 2^18 to
+    # 2^20 weights, every one a small layer, so the audit's per-layer work and its interpreter
+    # lock decide its time rather than its bytes (docs/performance.md, D, seventeenth session).
+    "300m-narrow": Shape(vocab=32000, hidden=512, intermediate=1408, layers=83),
     # A fine-grained mixture of experts: 32 experts of 512 per block, 576 expert matrices of
     # 512 x 1024 in 393M parameters (every one a small layer; see docs/performance.md, D).
     "moe": Shape(vocab=32000, hidden=1024, intermediate=512, layers=6, heads=16, experts=32),

@@ -1,5 +1,6 @@
-"""Float facts shared by the parts: the stored float names (widths in ``steelyard.dtypes``)
-exact sums of squares, a lean median and exact power-of-two rescaling."""
+"""Float facts shared by the parts: the stored float names (widths in ``steelyard.dtypes``),
+exact sums of squares, a lean median, numpy's ``unique`` and ``quantile`` without their
+import of ``numpy.ma``, and exact power-of-two rescaling."""
 
 from __future__ import annotations
 

@@ -6,6 +6,7 @@ Run from the repository root::
     python bench/audit_speed.py --dtype bf16 --rounds 7
     python bench/audit_speed.py --dtype bf16 --weights gaussian --shape deep-narrow
     python bench/audit_speed.py --shape resnet50 --weights gaussian
+    python bench/audit_speed.py --sweep --rounds 3  # every shape, bf16 and f32, two families
 
 The checkpoint is a seeded transformer-shaped safetensors file, by default (``--shape base``)
 vocabulary 8000, width 512, 4 blocks with 1408-wide feed-forward layers, untied head: about
@@ -27,6 +28,10 @@ call under the polling thread for the peak of anonymous memory.
 
 A third child per round runs the audit with ``twin-units`` and ``untrained-layer`` disabled
 by policy (``core``), separating the shared pass and the other rules from those two.
+
+``--sweep`` measures every shape in bf16 and f32, trained and never trained (``gaussian``), in
+one run, ``load_file`` and the audit only (no core audit, no per-rule shares), and prints one
+table; it exits 1 when any ratio is over 3.
 
 Targets: ratio <= 3 (issue 18; an earlier issue asked for < 5); peak memory (VmHWM −
 resident set before the warm-up call, the module's imports done) < 3 × the largest tensor +
@@ -140,6 +145,47 @@ def child(mode: str, path: str, jobs: str) -> None:
         emit(rule_shares(path))
 
 
+#: What ``--sweep`` measures: every shape in both storage types, trained and never trained.
+SWEEP_DTYPES = ("bf16", "f32")
+SWEEP_WEIGHTS = ("trained", "gaussian")
+
+
+def sweep(rounds: int, jobs: str) -> bool:
+    """Every shape × ``SWEEP_DTYPES`` × ``SWEEP_WEIGHTS``, each checkpoint written, measured
+    (``load_file`` and the audit in alternating fresh children, ``rounds`` each) and deleted
+    in turn; one table at the end. True when every ratio is within 3."""
+    rows = []
+    for shape_name, shape in SHAPES.items():
+        for dtype in SWEEP_DTYPES:
+            for weights in SWEEP_WEIGHTS:
+                folder = Path(tempfile.mkdtemp(prefix="steelyard-bench-"))
+                try:
+                    path = write_checkpoint(
+                        folder, shape, dtype, shard_bytes=2**40, seed=1, weights=weights
+                    )
+                    base, full = [], []
+                    for _ in range(rounds):
+                        base.append(run_child(Path(__file__), ["baseline", str(path), jobs]))
+                        full.append(run_child(Path(__file__), ["audit", str(path), jobs]))
+                finally:
+                    shutil.rmtree(folder, ignore_errors=True)
+                t_base = statistics.median(r["seconds"] for r in base)
+                t_full = statistics.median(r["seconds"] for r in full)
+                s_base = statistics.median(r["steady"] for r in base)
+                s_full = statistics.median(r["steady"] for r in full)
+                rows.append((shape_name, dtype, weights, t_base, t_full, s_full / s_base,
+                             full[0]["findings"]))
+                print(f"  {shape_name} {dtype} {weights}: {t_full / t_base:.2f}", flush=True)
+    print("| shape | dtype | weights | load_file | audit | ratio (<= 3) | steady ratio | findings |")
+    print("| --- | --- | --- | ---: | ---: | ---: | ---: | ---: |")
+    for name, dtype, weights, t_base, t_full, steady, findings in rows:
+        print(
+            f"| {name} | {dtype} | {weights} | {t_base * 1e3:.1f} ms | {t_full * 1e3:.1f} ms | "
+            f"**{t_full / t_base:.2f}** | {steady:.2f} | {findings} |"
+        )
+    return all(t_full / t_base <= 3 for _n, _d, _w, t_base, t_full, _s, _f in rows)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--dtype", choices=("f32", "bf16"), default="f32")
@@ -147,11 +193,18 @@ def main() -> None:
     parser.add_argument("--jobs", default="default")
     parser.add_argument("--weights", choices=WEIGHTS, default="trained")
     parser.add_argument("--shape", choices=tuple(SHAPES), default="base")
+    parser.add_argument(
+        "--sweep", action="store_true",
+        help="every shape in bf16 and f32, trained and gaussian: one table of ratios",
+    )
     parser.add_argument("--child", nargs=3, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
         child(*args.child)
         return
+    if args.sweep:
+        print(f"machine: {machine()}")
+        sys.exit(0 if sweep(args.rounds, args.jobs) else 1)
     folder = Path(tempfile.mkdtemp(prefix="steelyard-bench-"))
     try:
         shape = SHAPES[args.shape]

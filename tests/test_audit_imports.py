@@ -3,30 +3,14 @@ paid by every command, measured by bench/startup.py)."""
 
 from __future__ import annotations
 
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 from safetensors.numpy import save_file
 
+from tests._fresh_process import audited_imports
+
 DEMO = Path(__file__).resolve().parents[1] / "fixtures" / "demo" / "pumpwear-nightly-bad.keras"
-
-_PROBE = (
-    "import sys; from steelyard.api import audit; r = audit(sys.argv[1]); "
-    "print(len(r.audits[0].findings), *(m in sys.modules for m in sys.argv[2:]))"
-)
-
-
-def _audited(path: Path, *modules: str) -> tuple[int, list[bool]]:
-    """(findings, whether each module was imported) of an audit in a fresh process."""
-    done = subprocess.run(
-        [sys.executable, "-c", _PROBE, str(path), *modules],
-        capture_output=True, text=True, check=True,
-    )
-    findings, *imported = done.stdout.split()
-    return int(findings), [flag == "True" for flag in imported]
-
 
 def _never_trained(tmp_path: Path) -> Path:
     rng = np.random.default_rng(3)
@@ -44,9 +28,9 @@ def test_an_audit_does_not_import_numpy_ma(tmp_path: Path) -> None:
     rule runs: never-trained draws (untrained-layer's KS probes, the twin search) and the
     demo's Keras file, whose optimizer state makes unsupported-weight take its quantiles."""
     for path in (_never_trained(tmp_path), DEMO):
-        findings, (imported,) = _audited(path, "numpy.ma")
+        findings, imported = audited_imports(path, "numpy.ma")
         assert findings > 0  # the rules really ran
-        assert not imported, path
+        assert not imported["numpy.ma"], path
 
 
 def test_an_audit_of_a_plain_checkpoint_does_not_import_the_adapter_loader(
@@ -54,9 +38,9 @@ def test_an_audit_of_a_plain_checkpoint_does_not_import_the_adapter_loader(
 ) -> None:
     """dead-unit and adapter-update ask rules._adapters, which answers without the adapter
     package (about 8 ms of start-up) for a checkpoint that is no adapter."""
-    findings, (imported,) = _audited(_never_trained(tmp_path), "steelyard.loaders.adapter")
+    findings, imported = audited_imports(_never_trained(tmp_path), "steelyard.loaders.adapter")
     assert findings > 0
-    assert not imported
+    assert not imported["steelyard.loaders.adapter"]
 
 
 def test_the_adapter_view_answers_for_an_adapter() -> None:

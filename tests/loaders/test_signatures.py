@@ -120,3 +120,24 @@ def test_a_signature_that_fails_asks_the_loader_anyway(tmp_path: Path) -> None:
         raise ValueError("a check that could not decide")
 
     assert _shows(broken, tmp_path, b"") is True
+
+
+@pytest.mark.parametrize("userblock", [512, 8192, 65536])
+def test_the_hdf5_signature_is_found_after_a_user_block_beyond_the_head(
+    tmp_path: Path, userblock: int
+) -> None:
+    # Reference: h5py writes the user block; the HDF5 specification puts the superblock
+    # signature at 0 or at a power-of-two boundary from 512 on, here past the 4 KiB head too.
+    from steelyard.loaders.signatures import has_hdf5_magic
+
+    path = tmp_path / "weights.h5"
+    with h5py.File(path, "w", userblock_size=userblock) as h5:
+        h5["dense/kernel"] = np.ones((4, 3), np.float32)
+    head = path.read_bytes()[:_HEAD_BYTES]
+    assert has_hdf5_magic(path, head)
+    # The same bytes with the signature broken are not HDF5, whatever the file's length.
+    data = bytearray(path.read_bytes())
+    data[userblock : userblock + 8] = b"\x00" * 8
+    broken = tmp_path / "broken.h5"
+    broken.write_bytes(bytes(data) + b"\x00" * (2**21))
+    assert not has_hdf5_magic(broken, bytes(data[:_HEAD_BYTES]))

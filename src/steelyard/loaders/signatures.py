@@ -68,18 +68,19 @@ def torch_file(path: Path, head: bytes) -> bool:
 def has_hdf5_magic(path: Path, head: bytes) -> bool:
     """HDF5 signature at offset 0 or at a user-block boundary (512, 1024, 2048, …)."""
     offsets = [0] + [512 << i for i in range(12)]
-    for offset in offsets:
-        if offset + 8 <= len(head):
-            if head[offset : offset + 8] == HDF5_MAGIC:
-                return True
-        else:
-            try:
-                with open(path, "rb") as handle:
-                    handle.seek(offset)
-                    if handle.read(8) == HDF5_MAGIC:
-                        return True
-            except OSError:
-                return False
+    if any(head[at : at + 8] == HDF5_MAGIC for at in offsets if at + 8 <= len(head)):
+        return True
+    beyond = [at for at in offsets if at + 8 > len(head)]
+    if not beyond:
+        return False
+    try:
+        with open(path, "rb") as handle:  # once for every boundary past the head
+            for offset in beyond:
+                handle.seek(offset)
+                if handle.read(8) == HDF5_MAGIC:
+                    return True
+    except OSError:
+        return False
     return False
 
 

@@ -21,6 +21,7 @@ from steelyard.errors import LoadError
 from steelyard.graph import Checkpoint, Format, Tensor
 from steelyard.loaders.base import MAX_METADATA_BYTES, file_size, inside, parse_json, read_exactly
 from steelyard.loaders.conventions import inferred_checkpoint, role_for
+from steelyard.loaders.signatures import safetensors_head
 
 #: safetensors dtype tag → our short name.
 _DTYPES: dict[str, str] = {
@@ -199,10 +200,10 @@ class SafetensorsLoader:
             return True
         if path.suffix == ".safetensors":
             return True  # claim it so that a broken file gets a safetensors-specific reason
-        if len(head) < 9:
+        if not safetensors_head(head):
             return False
         (length,) = struct.unpack("<Q", head[:8])
-        return head[8:9] == b"{" and length > 1
+        return length > 1
 
     def load(self, path: Path) -> Checkpoint:
         shards = self._shards_from_index(path) if path.name.endswith(".json") else [_Shard(path)]

@@ -23,6 +23,8 @@ one delocalised learned direction θ·u·vᵀ of strength θ = c·σ(mn)^{1/4} (
 is reported as untrained (no folder needed: the draws are made here, seeded)::
 
     python bench/untrained_rates.py --planted [--draws 10] [--set spectrum-stride=1]
+    python bench/untrained_rates.py --planted --shapes 8192x4096,4096x11008 --draws 5 \
+        [--set spectrum-entries=0]
 """
 
 from __future__ import annotations
@@ -44,7 +46,7 @@ PLANTED_SHAPES = ((1024, 1024), (2816, 1024), (1024, 2816), (512, 512))
 PLANTED_STRENGTHS = (0.0, 1.5, 2.0, 2.5, 3.0, 4.0)
 
 
-def planted(draws: int, policy: Policy) -> None:
+def planted(draws: int, policy: Policy, shapes: tuple[tuple[int, int], ...] = PLANTED_SHAPES) -> None:
     """Print, per shape and strength c, how many of ``draws`` layers were reported."""
     import math
     import tempfile
@@ -56,7 +58,7 @@ def planted(draws: int, policy: Policy) -> None:
     print("shape".ljust(14) + "".join(f"c={c:g}".rjust(9) for c in PLANTED_STRENGTHS))
     with tempfile.TemporaryDirectory() as folder:
         path = Path(folder) / "layer.safetensors"
-        for m, n in PLANTED_SHAPES:
+        for m, n in shapes:
             bound = 1.0 / math.sqrt(n)  # PyTorch's Linear default, U(±1/√fan_in)
             sigma = bound / math.sqrt(3.0)
             row = f"{m}x{n}".ljust(14)
@@ -81,6 +83,11 @@ def main() -> int:
     parser.add_argument("--planted", action="store_true", help="large layers with a planted direction")
     parser.add_argument("--draws", type=int, default=10)
     parser.add_argument(
+        "--shapes", default="", metavar="MxN,...",
+        help="--planted shapes (default 1024x1024,2816x1024,1024x2816,512x512; 8192x4096 and "
+        "4096x11008 reach the subsample's entry cap, spectrum-entries)",
+    )
+    parser.add_argument(
         "--set", action="append", default=[], metavar="KEY=VALUE", help="a rule threshold"
     )
     parser.add_argument("--max-fp", type=float, default=0.0)
@@ -91,7 +98,10 @@ def main() -> int:
     overrides = {key: float(value) for key, value in (item.split("=", 1) for item in args.set)}
     policy = Policy(rules={RULE.name: overrides}) if overrides else Policy()
     if args.planted:
-        planted(args.draws, policy)
+        shapes = tuple(
+            (int(m), int(n)) for m, n in (item.split("x") for item in args.shapes.split(",") if item)
+        )
+        planted(args.draws, policy, shapes or PLANTED_SHAPES)
         return 0
     if args.folder is None:
         parser.error("the calibration folder is needed (or --planted)")

@@ -30,7 +30,9 @@ from steelyard.rules._initializers import (
     candidates,
     erf,
 )
+from steelyard.rules._significance import equivalence_p, holm, smallest_claimable
 from steelyard.rules._spectrum import (
+    SPECTRUM_ENTRIES,
     WHOLE_ENTRIES,
     edge_check,
     edge_fluctuation,
@@ -43,14 +45,11 @@ from steelyard.rules.untrained_layer import (
     RULE,
     SPREAD_ROWS,
     Ecdf,
-    equivalence_p,
-    holm,
     ks_distance,
     ks_limit,
     quartiles,
     row_spread,
     scale_z,
-    smallest_claimable,
     spread_limit,
 )
 
@@ -412,6 +411,23 @@ def test_row_strides_keep_enough_rows_and_entries() -> None:
         kept = -(-m // row_stride(m, n))
         assert kept >= 64 or kept == m
         assert kept * n >= WHOLE_ENTRIES // 2
+
+
+def test_the_subsample_of_a_large_matrix_keeps_at_most_the_entry_cap() -> None:
+    # Beyond 4 x SPECTRUM_ENTRIES the stride grows so that the search reads at most 2^22
+    # entries (16 MiB of float32), still at least 64 rows; below it nothing changes, and a cap
+    # of 0 or a stride of 1 gives the strides without the cap.
+    assert SPECTRUM_ENTRIES == 2**22
+    for m, n in ((50257, 768), (128256, 4096), (4096, 11008), (151936, 896), (8193, 2048)):
+        stride = row_stride(m, n)
+        kept = len(range(0, m, stride))
+        assert kept * n <= SPECTRUM_ENTRIES and kept >= 64
+        assert stride > 4 and row_stride(m, n, 4, 0) == 4 and row_stride(m, n, 1) == 1
+        # the smallest stride under the cap: one fewer would keep too many entries
+        assert len(range(0, m, stride - 1)) * n > SPECTRUM_ENTRIES
+    assert row_stride(2048, 8192) == 4  # exactly 4 x the cap: one row in 4 already fits
+    assert row_stride(64, 10**7) == 1  # 64 rows: no stride keeps enough of them
+    assert row_stride(1408, 512) == row_stride(1408, 512, 4, 0) == 4
 
 
 def test_a_row_subsample_never_shows_more_than_the_whole_matrix() -> None:

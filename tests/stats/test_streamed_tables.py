@@ -138,6 +138,27 @@ def test_streamed_measurements_match_the_whole_matrix(rng: np.random.Generator) 
     np.testing.assert_allclose(tokens.residuals, tokens_whole.residuals, rtol=1e-4, atol=3e-3 * scale)
 
 
+@pytest.mark.parametrize("dtype", ["f32", "bf16"])
+def test_strided_rows_of_a_streamed_table_are_its_rows(
+    tmp_path: Path, rng: np.random.Generator, dtype: str
+) -> None:
+    # The spectrum's subsample of a streamed table: rows far apart are read one by one, near
+    # ones by a pass; either way exactly the stored rows (the safetensors package's read).
+    table = rng.standard_normal((3000, 256)).astype(np.float32)
+    stored = table.astype(ml_dtypes.bfloat16) if dtype == "bf16" else table
+    path = tmp_path / "table.safetensors"
+    save_file({"lm_head.weight": stored}, str(path))
+    reference = np.asarray(stored, np.float32)
+    checkpoint = load(path)
+    stats = LayerStats(checkpoint, stream_bytes=4 * 256 * 100)
+    layer = checkpoint.layer("lm_head")
+    assert layer is not None and stats.streamed(layer) is not None
+    for start, step in ((0, 2), (1, 8), (3, 40), (7, 64), (0, 2999), (5, 5000)):
+        got = stats.rows(layer, start, step)
+        assert got.dtype == np.float32 and got.flags.c_contiguous
+        np.testing.assert_array_equal(got.view(np.uint32), reference[start::step].view(np.uint32))
+
+
 def test_picked_rows_are_the_rows(tmp_path: Path, rng: np.random.Generator) -> None:
     path = _checkpoint(tmp_path, rng)
     checkpoint = load(path)

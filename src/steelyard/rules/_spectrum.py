@@ -19,7 +19,10 @@ training, which grows a few strong directions, pushes outliers beyond it.
 tested on every ``stride``-th row (``stride`` up to ``SUBSAMPLE`` = 4 unless the caller says
 otherwise, keeping at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows), from a seeded
 offset, so that the search costs a few passes over the whole matrix instead of the 40–80 of
-a search on all of it. Two facts make this a test of the same hypothesis:
+a search on all of it; beyond ``4 × SPECTRUM_ENTRIES`` entries the stride grows further, so
+that no subsample holds more than ``SPECTRUM_ENTRIES`` (2^22) entries and the search on a
+token table or a 7B model's feed-forward layer costs what it costs on a 16 MiB matrix. Two
+facts make this a test of the same hypothesis:
 
 * *Null law.* The rows of a matrix of i.i.d. entries are a matrix of i.i.d. entries, so the
   subsample's top singular value has the edge and Tracy–Widom fluctuation of its own shape
@@ -62,6 +65,9 @@ WHOLE_ENTRIES = 2**17
 SUBSAMPLE = 4
 #: Fewest rows a subsample keeps (below, the Marchenko–Pastur edge describes it poorly).
 MIN_ROWS = 64
+#: Most entries a subsample keeps (16 MiB of float32): on larger matrices (a token table, the
+#: feed-forward layers of a 7B model) the stride grows past ``SUBSAMPLE`` to stay under it.
+SPECTRUM_ENTRIES = 2**22
 #: Most Lanczos steps (each one product with A and one with Aᵀ).
 STEPS = 40
 #: Steps taken before the stopping rule on small gains applies.
@@ -78,10 +84,15 @@ def edge_fluctuation(sigma: float, m: int, n: int) -> float:
     return 0.5 * sigma * (1.0 / math.sqrt(m) + 1.0 / math.sqrt(n)) ** (1.0 / 3.0)
 
 
-def row_stride(m: int, n: int, most: int = SUBSAMPLE) -> int:
+def row_stride(m: int, n: int, most: int = SUBSAMPLE, entries: int = SPECTRUM_ENTRIES) -> int:
     """Keep every ``row_stride``-th row: 1 up to ``WHOLE_ENTRIES`` entries, else up to
-    ``most`` while at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows remain."""
-    return max(1, min(most, (m * n) // WHOLE_ENTRIES, m // MIN_ROWS))
+    ``most`` while at least ``WHOLE_ENTRIES`` entries and ``MIN_ROWS`` rows remain; and, when
+    ``most`` > 1 and ``entries`` > 0, at least as many as keep at most ``entries`` entries (still
+    ``MIN_ROWS`` rows or more)."""
+    stride = max(1, min(most, (m * n) // WHOLE_ENTRIES, m // MIN_ROWS))
+    if most > 1 and entries > 0 and m * n > entries:
+        stride = max(stride, min(-(-m * n // entries), m // MIN_ROWS))
+    return max(1, stride)
 
 
 @dataclass(frozen=True)

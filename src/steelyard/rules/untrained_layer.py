@@ -86,7 +86,9 @@ across the checkpoint that decides which of the layers that passed are reported.
    bulk; a layer that matches an initializer's histogram but has such an outlier was trained
    and is not reported. Matrices of more than 2^17 entries (256 × 512) are searched on every
    k-th row (k up to ``spectrum-stride``, 4; at least 2^17 entries and 64 rows kept, from a
-   seeded offset), against the edge and fluctuation of that m' × n subsample: the rows of an
+   seeded offset; on matrices of more than 4 × ``spectrum-entries`` entries, 2^22, one row in
+   as many as keep at most 2^22 entries, 16 MiB of float32), against the edge and fluctuation
+   of that m' × n subsample: the rows of an
    i.i.d. matrix are an i.i.d. matrix, so a fresh draw passes as often as before, and a
    submatrix's top singular value never exceeds the whole one's (Thompson 1972), so what it
    shows beyond its edge the whole matrix has too. This bounds the search to a few passes over
@@ -99,7 +101,16 @@ across the checkpoint that decides which of the layers that passed are reported.
    2816 × 1024 in 0, 10 and 10 of 10. So a layer whose only learned part is one such weak
    direction (it moved the weights by a few per cent) can now be reported as untrained;
    ``spectrum-stride`` 1 (or 0) searches every row, as before this bound, at 40–80 passes
-   (``bench/untrained_rates.py --planted`` measures both). The top singular value comes from
+   (``bench/untrained_rates.py --planted`` measures both). The entry cap bounds the search on
+   the largest matrices (a token table, the feed-forward layers of a 7B model) to the same
+   few passes over 16 MiB whatever their size (a 50,257 × 768 table keeps one row in 10, a
+   128,256 × 4,096 one in 126), at the price of power there: a direction is seen from about
+   (mn/2^22)^{1/4} times the threshold σ(mn)^{1/4} (times f^{-1/4} for the kept share f),
+   1.8 × at 50,257 × 768 (about half the bulk edge σ(√m + √n)), 3.3 × at 128,256 × 4,096
+   (1.2 × the edge). Such a layer is reported only if its weights also fit an initializer's
+   histogram and scale; the planted-direction rates are in ``docs/performance.md``
+   ("Eighteenth session"), and ``spectrum-entries`` 0 lifts the cap.
+   The top singular value comes from
    ``numpy.linalg.svd`` for up to 2^13 entries (and for matrices of at most 8 rows or
    columns) and from seeded Golub–Kahan–Lanczos bidiagonalisation beyond (up to 40 steps, each
    one product with the rows and one with their transpose, stopping once the value passes the
@@ -192,7 +203,8 @@ from steelyard.graph import Layer, LayerKind
 from steelyard.numbers import count, measured
 from steelyard.rules._initializers import Candidate, candidates, cdf_table
 from steelyard.rules._layer_results import LayerResults
-from steelyard.rules._spectrum import SUBSAMPLE, edge_check, row_stride
+from steelyard.rules._significance import equivalence_p, holm
+from steelyard.rules._spectrum import SPECTRUM_ENTRIES, SUBSAMPLE, edge_check, row_stride
 from steelyard.rules.base import AuditContext, RuleSettings, RuleSpec, layer_finding, threshold
 from steelyard.rules.scoring import score
 from steelyard.stats.numerics import distinct
@@ -349,28 +361,6 @@ def spread_limit(units: int, sigmas: float) -> float:
     return 1.0 + sigmas * 2.33 / math.sqrt(units)
 
 
-def equivalence_p(distance: float, n: int, margin: float) -> float:
-    """p-value of "the sample's distribution is at least ``margin`` from the candidate's",
-    given the observed KS distance ``distance`` of ``n`` values: min(1, 2·exp(−2n(δ − D)²)).
-
-    If the truth lies δ or more from the candidate, D_n <= D can only happen when the
-    empirical CDF strays t = δ − D from the truth, whose chance is at most 2·exp(−2nt²) for
-    every n (Dvoretzky, Kiefer & Wolfowitz 1956, with Massart's 1990 constant 2); that bound
-    is the first term of Kolmogorov's (1933) limit series, so it is also the asymptotic KS
-    p-value wherever it is small.
-    """
-    gap = margin - distance
-    if gap <= 0:
-        return 1.0
-    return min(1.0, 2.0 * math.exp(-2.0 * n * gap * gap))
-
-
-def smallest_claimable(layers: int, candidates_per_layer: int, alpha: float, margin: float) -> int:
-    """Fewest weights at which even a perfect match (D = 0) can be claimed for a layer tested
-    among ``layers`` with that many candidates: n >= ln(2·K·L/α) / (2δ²)."""
-    return math.ceil(math.log(2.0 * candidates_per_layer * layers / alpha) / (2.0 * margin * margin))
-
-
 def scale_z(sample: np.ndarray, candidate: Candidate) -> float:
     """z = (mean(x²)/σ² − 1) / sqrt((κ − 1)/n): how many standard errors the sample's mean
     square lies from the candidate's variance σ² (the mean of n i.i.d. squares has variance
@@ -378,21 +368,6 @@ def scale_z(sample: np.ndarray, candidate: Candidate) -> float:
     n = sample.size
     ratio = float(np.dot(sample, sample)) / n / candidate.std**2
     return (ratio - 1.0) / math.sqrt((candidate.kurtosis - 1.0) / n)
-
-
-def holm(p_values: list[float], alpha: float) -> list[bool]:
-    """Holm's (1979) step-down: reject the k-th smallest p while p_(k) <= α/(L − k + 1).
-
-    Controls the chance of any false rejection among the L hypotheses at α, whatever their
-    dependence. Ties keep their input order, so the answer never depends on the thread count.
-    """
-    order = sorted(range(len(p_values)), key=lambda i: (p_values[i], i))
-    rejected = [False] * len(p_values)
-    for rank, index in enumerate(order):
-        if p_values[index] > alpha / (len(p_values) - rank):
-            break
-        rejected[index] = True
-    return rejected
 
 
 def _gates(ctx: AuditContext, layer: Layer) -> int:
@@ -429,6 +404,7 @@ class UntrainedLayerSettings:
     row_spread: float = threshold(10.0)
     edge_fluctuations: float = threshold(4.0)
     spectrum_stride: int = threshold(SUBSAMPLE)
+    spectrum_entries: int = threshold(SPECTRUM_ENTRIES)
     sample: int = threshold(20000)
     min_weights: int = threshold(256)
     min_dim: int = threshold(8)
@@ -479,7 +455,7 @@ def _layer(ctx: AuditContext, limits: UntrainedLayerSettings, layer: Layer) -> _
     allowed = limits.edge_fluctuations
     # Only a layer that matched an initializer is read for its spectrum: every stride-th row
     # (streamed when the layer is too large to cache).
-    stride = row_stride(m, n, limits.spectrum_stride)
+    stride = row_stride(m, n, limits.spectrum_stride, limits.spectrum_entries)
     check = edge_check(ctx.stats.rows(layer, seed % stride, stride), best.std, allowed, seed)
     top, edge, fluctuation, beyond = check.top, check.edge, check.fluctuation, check.beyond
     spectrum: dict[str, object] = {

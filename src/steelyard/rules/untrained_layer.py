@@ -86,10 +86,10 @@ across the checkpoint that decides which of the layers that passed are reported.
    bulk; a layer that matches an initializer's histogram but has such an outlier was trained
    and is not reported. Matrices of more than 2^17 entries (256 × 512) are searched on every
    k-th row (k up to ``spectrum-stride``, 4; at least 2^17 entries and 64 rows kept, from a
-   seeded offset; on matrices of more than 4 × ``spectrum-entries`` entries, 2^22, one row in
-   as many as keep at most 2^22 entries, 16 MiB of float32), against the edge and fluctuation
-   of that m' × n subsample: the rows of an
-   i.i.d. matrix are an i.i.d. matrix, so a fresh draw passes as often as before, and a
+   seeded offset; and never more than ``spectrum-entries`` entries, 2^22 or 16 MiB of
+   float32, which takes a longer stride only on matrices of more than 2^24 entries), against
+   the edge and fluctuation of that m' × n subsample: the rows of an i.i.d. matrix are an
+   i.i.d. matrix, so a fresh draw passes as often as before, and a
    submatrix's top singular value never exceeds the whole one's (Thompson 1972), so what it
    shows beyond its edge the whole matrix has too. This bounds the search to a few passes over
    the matrix (it took 40–80 on the whole one); the price is power against *weak* learned
@@ -109,9 +109,8 @@ across the checkpoint that decides which of the layers that passed are reported.
    1.8 × at 50,257 × 768 (about half the bulk edge σ(√m + √n)), 3.3 × at 128,256 × 4,096
    (1.2 × the edge). Such a layer is reported only if its weights also fit an initializer's
    histogram and scale; the planted-direction rates are in ``docs/performance.md``
-   ("Eighteenth session"), and ``spectrum-entries`` 0 lifts the cap.
-   The top singular value comes from
-   ``numpy.linalg.svd`` for up to 2^13 entries (and for matrices of at most 8 rows or
+   ("Eighteenth session"), and ``spectrum-entries`` 0 lifts the cap. The top singular value
+   comes from ``numpy.linalg.svd`` for up to 2^13 entries (and for matrices of at most 8 rows or
    columns) and from seeded Golub–Kahan–Lanczos bidiagonalisation beyond (up to 40 steps, each
    one product with the rows and one with their transpose, stopping once the value passes the
    limit or, after 16 steps on matrices of up to 2^16 entries and 8 on larger ones, when a

@@ -76,10 +76,10 @@ def low_rank_run(checkpoint: Checkpoint, layer: Layer) -> tuple[np.ndarray, np.n
 #: A streamed layer's rows are picked by reads of their own when fewer than one in this many
 #: are wanted, instead of a pass over every row.
 _FEW_ROWS = 8
-#: Rows of a streamed layer this many stored bytes apart or more (a token table's spectrum
-#: subsample) are read one by one, as ``picked`` reads them, rather than by a pass: a read of
-#: one row cost about 8 µs here, a pass about 4.4 GB/s (float32 rows), so one read pays for
-#: itself when it skips some 35 KB (docs/performance.md, "Eighteenth session").
+#: Strided rows of a streamed layer this many stored bytes apart or more (a token table's
+#: spectrum subsample) go through ``picked``, which reads them one by one when they are few:
+#: a read of one row cost about 8 µs here, a pass about 4.4 GB/s (float32 rows), so one read
+#: pays for itself when it skips some 35 KB (docs/performance.md, "Eighteenth session").
 _ROW_READ_BYTES = 32 * 2**10
 
 
@@ -220,7 +220,7 @@ class WeightPasses:
         units, fan_in = layer.units, layer.fan_in
         blocks = None if step == 1 else self.streamed(layer)
         if blocks is not None and _far_apart(self.streamable(layer), step, fan_in):
-            return self.picked(layer, np.arange(start, units, step))  # one by one
+            return self.picked(layer, np.arange(start, units, step))
         if blocks is None:
             # A view: BLAS reads rows a stride apart at their leading dimension, so the
             # spectrum search on it gives the copy's values bit for bit without the copy
@@ -365,7 +365,7 @@ def _low_rank_summary(
 
 def _far_apart(source: tuple[Tensor, int] | None, step: int, fan_in: int) -> bool:
     """Whether every ``step``-th row of a streamed layer lies ``_ROW_READ_BYTES`` or more of
-    stored bytes from the next (read one by one, then)."""
+    stored bytes from the next (worth reading one by one)."""
     if source is None:
         return False
     return step * fan_in * FLOAT_ITEMSIZE.get(source[0].dtype, 4) >= _ROW_READ_BYTES
